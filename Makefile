@@ -1,0 +1,35 @@
+# kidneysurv: two commands for a newcomer (README, Quick start): `make demo` and `make test`.
+PYTHON ?= python3
+VENV   := .venv
+BIN    := $(VENV)/bin
+STAMP  := $(VENV)/.installed
+
+export DO_NOT_TRACK := 1
+export PREFECT_HOME := $(CURDIR)/.prefect
+export PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS := 180
+export PREFECT_SERVER_ANALYTICS_ENABLED := false
+export PREFECT_LOGGING_LEVEL := WARNING
+
+.PHONY: setup demo test test-fast samples clean
+
+setup: $(STAMP)
+
+$(STAMP): pyproject.toml constraints.txt
+	test -x $(BIN)/python || $(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet -c constraints.txt -e '.[dev]'
+	touch $(STAMP)
+
+demo: setup
+	$(BIN)/kidneysurv demo --out out
+
+test: setup
+	$(BIN)/python -m pytest -q
+
+test-fast: setup
+	$(BIN)/python -m pytest -q -m "not slow"
+
+samples:
+	$(PYTHON) sample_extracts/generate.py
+
+clean:
+	rm -rf out .prefect .pytest_cache .hypothesis

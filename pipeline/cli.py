@@ -1,0 +1,156 @@
+"""The ``kidneysurv`` command: a thin front on the monthly flow.
+
+Exit codes: 0 success; 1 a source was held back by the quality gate (the others published);
+2 bad usage or configuration.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from pathlib import Path
+from typing import Annotated, Optional
+
+import typer
+from rich.console import Console
+from rich.table import Table
+
+from pipeline.periods import Period
+from pipeline.pseudonymise import KeyMissing
+from pipeline.settings import ConfigError, load_settings
+
+app = typer.Typer(
+    help="Population kidney surveillance from monthly lab extracts: eGFR, albuminuria, sustained "
+    "decline and diabetes screening coverage by district, with small counts suppressed.",
+    no_args_is_help=True,
+    add_completion=False,
+)
+sources_app = typer.Typer(help="Look at lab sources and their files.", no_args_is_help=True)
+app.add_typer(sources_app, name="sources")
+console = Console(highlight=False, width=None if sys.stdout.isatty() else 120)
+err = Console(stderr=True, highlight=False)
+
+EXIT_OK, EXIT_HELD_BACK, EXIT_USAGE = 0, 1, 2
+
+
+def _fail(message: str) -> None:
+    err.print(f"[bold red]error:[/] {message}", markup=True, soft_wrap=True)
+    raise typer.Exit(EXIT_USAGE)
+
+
+def _stage_line(name: str, seconds: float, text: str) -> None:
+    console.print(f"  {name:<10} {seconds:6.1f} s  {text}")
+
+
+def _print_summary(summary: dict, out: Path) -> None:
+    table = Table(title=f"Period {summary['period']}: rows per source", title_justify="left")
+    cols = ("read", "accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending")
+    table.add_column("source")
+    for c in cols:
+        table.add_column(c, justify="right")
+    for source, counts in summary["sources"].items():
+        table.add_row(source, *(f"{counts.get(c, 0):,}" for c in cols))
+    console.print(table)
+    console.print(f"  persons with results up to {summary['period']}: {summary['persons']:,}")
+    for path, message in summary["held_back_files"].items():
+        console.print(f"  [yellow]held back file[/] {path}: {message}")
+    for source, message in summary["held_back_sources"].items():
+        console.print(f"  [yellow]held back source[/] {source}: {message}")
+    console.print(f"  warehouse: {out / 'surveillance.duckdb'}")
+    console.print(f"  exports:   {out / summary['period']}/")
+    if summary.get("demo_key"):
+        console.print("  [dim]made with the public DEMO pseudonymisation key: not for real data[/]")
+
+
+def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose: bool) -> int:
+    try:
+        Period.parse(period)
+        settings = load_settings(config)
+    except (ValueError, ConfigError) as exc:
+        _fail(str(exc))
+    if not inbox.is_dir():
+        _fail(f"{inbox}: inbox folder not found")
+    from pipeline import prefect_env
+
+    prefect_env.configure(verbose=verbose)
+    from pipeline import flows
+
+    flows._REPORTER[0] = _stage_line
+    console.print(f"kidneysurv: monthly run for {period} ({len(settings.sources)} sources, inbox {inbox})")
+    started = time.perf_counter()
+    try:
+        summary = flows.monthly_surveillance(
+            period=period, config_dir=str(config), inbox=str(inbox), out=str(out), demo=demo
+        )
+    except KeyMissing as exc:
+        _fail(str(exc))
+    console.print(f"  {'total':<10} {time.perf_counter() - started:6.1f} s (with Prefect)")
+    _print_summary(summary, out)
+    held = summary["held_back_sources"] or summary["held_back_files"]
+    return EXIT_HELD_BACK if held else EXIT_OK
+
+
+@app.command()
+def run(
+    period: Annotated[str, typer.Option(help="Month to publish, YYYY-MM (indicators as of its last day).")],
+    config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
+    inbox: Annotated[Path, typer.Option(help="Inbox folder with one subfolder per source.")] = Path("sample_extracts"),
+    out: Annotated[Path, typer.Option(help="Output folder: warehouse and exports.")] = Path("out"),
+    verbose: Annotated[bool, typer.Option("--verbose", help="Show Prefect's own log lines.")] = False,
+) -> None:
+    """Ingest what is new in the inbox and publish the indicators for one month."""
+    raise typer.Exit(_run(period, config, inbox, out, demo=False, verbose=verbose))
+
+
+@app.command()
+def demo(
+    out: Annotated[Path, typer.Option(help="Output folder.")] = Path("out"),
+    config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
+    verbose: Annotated[bool, typer.Option("--verbose", help="Show Prefect's own log lines.")] = False,
+) -> None:
+    """Run the latest complete month of the shipped sample extracts (public demo key)."""
+    try:
+        settings = load_settings(config)
+    except ConfigError as exc:
+        _fail(str(exc))
+    inbox = Path(__file__).resolve().parent.parent / "sample_extracts"
+    code = _run(settings.pipeline.demo.period, config, inbox, out, demo=True, verbose=verbose)
+    raise typer.Exit(EXIT_OK if code == EXIT_HELD_BACK else code)
+
+
+@sources_app.command("check")
+def sources_check(
+    source_id: Annotated[str, typer.Argument(help="Source id, as in config/sources/<id>.yaml.")],
+    file: Annotated[Path, typer.Argument(help="An extract file (for FHIR: the Observation.ndjson).")],
+    config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
+    examples: Annotated[int, typer.Option(help="Examples shown per reason.")] = 3,
+) -> None:
+    """Show what a file would give: rows per outcome and reason, with file:line examples.
+
+    Reads the file into a throw-away in-memory database: the warehouse is not touched.
+    """
+    from pipeline.checks import check_file
+
+    try:
+        settings = load_settings(config)
+        settings.source(source_id)
+    except ConfigError as exc:
+        _fail(str(exc))
+    if not file.is_file():
+        _fail(f"{file}: file not found")
+    report = check_file(settings, source_id, file)
+    if report.fault:
+        err.print(f"[bold red]file held back:[/] {report.fault}", soft_wrap=True)
+        raise typer.Exit(EXIT_HELD_BACK)
+    console.print(f"{file}: {report.rows_read:,} rows read")
+    for outcome, n in report.outcomes.items():
+        console.print(f"  {outcome:<11} {n:>8,}")
+    for reason, (n, lines) in report.reasons.items():
+        console.print(f"  rejected {reason}: {n:,}")
+        for line_no, message in lines[:examples]:
+            console.print(f"      {file}:{line_no}: {message}", soft_wrap=True)
+    raise typer.Exit(EXIT_OK)
+
+
+def main() -> None:  # pragma: no cover
+    sys.exit(app())

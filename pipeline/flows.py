@@ -1,0 +1,216 @@
+"""The monthly flow: one Prefect task per stage, each a thin wrapper of a plain function.
+
+Tasks pass small things (the run id, counts, paths); the DuckDB connection that holds the run's
+transaction stays in this process, in :data:`_RUNS`. Only the I/O tasks (listing the inbox,
+writing exports) retry.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import time
+import uuid
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable
+
+from pipeline import prefect_env
+
+prefect_env.configure()
+
+import duckdb  # noqa: E402
+from prefect import flow, task  # noqa: E402
+
+from pipeline.disclosure import disclose_stage  # noqa: E402
+from pipeline.ingest import land_inbox, scan_inbox  # noqa: E402
+from pipeline.linkage import link_stage  # noqa: E402
+from pipeline.measures import measure_stage  # noqa: E402
+from pipeline.periods import Period  # noqa: E402
+from pipeline.pseudonymise import PseudonymKey, resolve_key  # noqa: E402
+from pipeline.publish import commit_month, open_warehouse, write_exports  # noqa: E402
+from pipeline.settings import Settings, load_settings  # noqa: E402
+from pipeline.summaries import summarise_stage  # noqa: E402
+from pipeline.validate import validate_stage  # noqa: E402
+from pipeline.warehouse import load_reference_tables  # noqa: E402
+
+
+@dataclass
+class RunContext:
+    settings: Settings
+    period: Period
+    inbox: Path
+    out: Path
+    key: PseudonymKey
+    con: duckdb.DuckDBPyConnection
+    report: Callable[[str, float, str], None]
+    stages: dict[str, dict[str, Any]] = field(default_factory=dict)
+
+
+_RUNS: dict[str, RunContext] = {}
+
+
+def _stage(run_id: str, name: str, work: Callable[[RunContext], dict[str, Any]]) -> dict[str, Any]:
+    ctx = _RUNS[run_id]
+    started = time.perf_counter()
+    result = work(ctx)
+    seconds = time.perf_counter() - started
+    ctx.stages[name] = {**result, "seconds": round(seconds, 3)}
+    ctx.report(name, seconds, ", ".join(f"{k} {v}" for k, v in result.items() if not isinstance(v, dict | list)))
+    return result
+
+
+@task(name="scan-inbox", retries=2, retry_delay_seconds=[2, 10])
+def scan_task(run_id: str) -> dict[str, Any]:
+    def work(ctx: RunContext) -> dict[str, Any]:
+        items = scan_inbox(ctx.con, ctx.settings, ctx.inbox)
+        return {"files": len(items), "new": sum(i.status != "already_ingested" for i in items)}
+
+    return _stage(run_id, "scan", work)
+
+
+@task(name="ingest")
+def ingest_task(run_id: str) -> dict[str, Any]:
+    def work(ctx: RunContext) -> dict[str, Any]:
+        load_reference_tables(ctx.con, ctx.settings)
+        s = land_inbox(ctx.con, ctx.settings, ctx.inbox, ctx.key, ctx.period.label, dt.date.today())
+        return {"new files": s.files_new, "skipped": s.files_skipped, "held back": s.files_held_back,
+                "rows": s.rows_landed, "held_back_files": s.held_back}  # fmt: skip
+
+    return _stage(run_id, "ingest", work)
+
+
+@task(name="validate")
+def validate_task(run_id: str) -> dict[str, Any]:
+    def work(ctx: RunContext) -> dict[str, Any]:
+        s = validate_stage(ctx.con, ctx.settings)
+        return {"valid": s.rows_valid, "rejected": s.rows_rejected, "lab_results": s.lab_results,
+                "by_source": s.by_source, "held_back_sources": s.held_back}  # fmt: skip
+
+    return _stage(run_id, "validate", work)
+
+
+@task(name="measure")
+def measure_task(run_id: str) -> dict[str, Any]:
+    def work(ctx: RunContext) -> dict[str, Any]:
+        s = measure_stage(ctx.con, ctx.settings)
+        return {"creatinine": s.egfr_rows, "eGFR": s.egfr_computed, "albuminuria": s.acr_rows,
+                "A category": s.acr_categorised}  # fmt: skip
+
+    return _stage(run_id, "measure", work)
+
+
+@task(name="link")
+def link_task(run_id: str) -> dict[str, Any]:
+    def work(ctx: RunContext) -> dict[str, Any]:
+        s = link_stage(ctx.con, ctx.settings, ctx.period)
+        return {"persons": s.persons, "events confirmed": s.events_confirmed, "pending": s.events_pending}
+
+    return _stage(run_id, "link", work)
+
+
+@task(name="summarise")
+def summarise_task(run_id: str) -> dict[str, Any]:
+    def work(ctx: RunContext) -> dict[str, Any]:
+        counts = summarise_stage(ctx.con, ctx.settings, ctx.period)
+        counts.update({f"published {k}": v for k, v in
+                       disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period).items()})
+        return counts
+
+    return _stage(run_id, "summarise", work)
+
+
+@task(name="publish")
+def publish_task(run_id: str) -> dict[str, Any]:
+    def work(ctx: RunContext) -> dict[str, Any]:
+        commit_month(ctx.con)
+        return {"warehouse": str(ctx.out / "surveillance.duckdb")}
+
+    return _stage(run_id, "publish", work)
+
+
+@task(name="export", retries=2, retry_delay_seconds=[2, 10])
+def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
+    def work(ctx: RunContext) -> dict[str, Any]:
+        folder = write_exports(ctx.con, ctx.out, ctx.period, summary)
+        return {"exports": str(folder)}
+
+    return _stage(run_id, "export", work)
+
+
+def _quiet(name: str, seconds: float, text: str) -> None:
+    pass
+
+
+def start_run(period: str, config_dir: str, inbox: str, out: str, demo: bool,
+              report: Callable[[str, float, str], None] = _quiet) -> str:
+    """Open the warehouse and register the run; the caller runs the stages."""
+    settings = load_settings(config_dir)
+    key = resolve_key(demo=demo)
+    ctx = RunContext(settings, Period.parse(period), Path(inbox), Path(out), key,
+                     open_warehouse(Path(out)), report)  # fmt: skip
+    run_id = uuid.uuid4().hex
+    _RUNS[run_id] = ctx
+    return run_id
+
+
+def finish_run(run_id: str) -> dict[str, Any]:
+    ctx = _RUNS.pop(run_id)
+    try:
+        ctx.con.execute("rollback")  # no-op after a commit; undoes a failed run
+    except duckdb.Error:
+        pass
+    ctx.con.close()
+    return ctx.stages
+
+
+@flow(name="monthly_surveillance", log_prints=False)
+def monthly_surveillance(period: str, config_dir: str = "config", inbox: str = "sample_extracts",
+                         out: str = "out", demo: bool = False) -> dict[str, Any]:
+    """Ingest what is new, validate, measure, link, summarise and publish one month."""
+    run_id = start_run(period, config_dir, inbox, out, demo, report=_REPORTER[0])
+    try:
+        return run_stages(run_id)
+    finally:
+        stages = finish_run(run_id)
+        _LAST[0] = stages
+
+
+def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
+    """Run every stage in order; ``plain`` calls the task functions without Prefect."""
+    ctx = _RUNS[run_id]
+
+    def call(t: Any, *args: Any) -> Any:
+        return t.fn(*args) if plain else t(*args)
+
+    call(scan_task, run_id)
+    ingest = call(ingest_task, run_id)
+    validate = call(validate_task, run_id)
+    call(measure_task, run_id)
+    link = call(link_task, run_id)
+    call(summarise_task, run_id)
+    call(publish_task, run_id)
+    summary = {
+        "period": ctx.period.label,
+        "demo_key": ctx.key.is_demo,
+        "sources": validate["by_source"],
+        "held_back_sources": validate["held_back_sources"],
+        "held_back_files": dict(ingest["held_back_files"]),
+        "persons": link["persons"],
+    }
+    call(export_task, run_id, summary)
+    return summary
+
+
+def run_month_plain(period: str, config_dir: str, inbox: str, out: str, demo: bool = False,
+                    report: Callable[[str, float, str], None] = _quiet) -> dict[str, Any]:
+    """The monthly run without Prefect (tests, ``sources check``-like tools, debugging)."""
+    run_id = start_run(period, config_dir, inbox, out, demo, report=report)
+    try:
+        return run_stages(run_id, plain=True)
+    finally:
+        finish_run(run_id)
+
+
+# The CLI sets the console reporter; kept out of the flow's parameters (not serialisable).
+_REPORTER: list[Callable[[str, float, str], None]] = [_quiet]
+_LAST: list[dict[str, Any]] = [{}]

@@ -1,0 +1,464 @@
+"""Ingest: find what is new in the inbox, read it into landed rows, record every file in the ledger.
+
+One reader per layout turns a lab's file into the same landed columns (all text, as reported),
+with the file's line number and the raw line (the person token masked) kept for every row. A
+fault that concerns the whole file (not UTF-8, a missing column, the wrong delimiter) holds that
+file back with a message naming it; the other files go on. Nothing here judges a value: that is
+the validate stage.
+"""
+
+from __future__ import annotations
+
+import calendar
+import csv
+import datetime as dt
+import difflib
+import hashlib
+import io
+import json
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import duckdb
+import polars as pl
+
+from pipeline.pseudonymise import SHARED_DOMAIN, PseudonymKey, add_person_keys
+from pipeline.settings import STANDARD_FIELDS, STANDARD_REQUIRED, Settings, SourceConfig
+
+#: Columns of the landed frame, all text except where typed.
+LANDED_COLUMNS = [
+    "source_id", "file_id", "line_no", "raw_text", "row_fault",
+    "linkage_domain", "person_token", "birth_year_text", "sex_text", "district_code",
+    "specimen_id", "collected_text", "test_code", "test_code_text", "value_text", "value_clean",
+    "unit_text", "status", "status_text", "height_text", "reported_text", "fasting_text",
+]  # fmt: skip
+
+CHUNK_ROWS = 200_000
+_MASK = "[person]"
+
+
+class FileFault(Exception):
+    """A whole file cannot be read; the message names the file and the reason."""
+
+
+@dataclass
+class InboxFile:
+    source_id: str
+    path: Path
+    rel_path: str
+    sha256: str
+    size_bytes: int
+    status: str = "new"  # new | already_ingested | duplicate_file
+    same_as: str | None = None
+    file_id: int | None = None
+
+
+@dataclass
+class IngestSummary:
+    files_new: int = 0
+    files_skipped: int = 0
+    files_held_back: int = 0
+    rows_landed: int = 0
+    held_back: list[tuple[str, str]] = field(default_factory=list)  # (path, message)
+
+
+def sha256_of(path: Path) -> str:
+    digest = hashlib.sha256()
+    with path.open("rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def scan_inbox(con: duckdb.DuckDBPyConnection | None, settings: Settings, inbox: Path) -> list[InboxFile]:
+    """List every file of every source, in a stable order, marked new or already ingested."""
+    seen: dict[tuple[str, str], str] = {}  # (source, sha) -> path already ingested
+    if con is not None:
+        for source_id, sha, path in con.execute(
+            "select source_id, sha256, file_path from ingest_files "
+            "where status in ('ingested', 'duplicate_file') order by file_id"
+        ).fetchall():
+            seen.setdefault((source_id, sha), path)
+    found: list[InboxFile] = []
+    for source in settings.sources:
+        folder = inbox / source.folder
+        if not folder.is_dir():
+            continue
+        for path in sorted(folder.glob(source.file_glob)):
+            if not path.is_file():
+                continue
+            rel = path.relative_to(inbox).as_posix()
+            sha = sha256_of(path)
+            item = InboxFile(source.id, path, rel, sha, path.stat().st_size)
+            earlier = seen.get((source.id, sha))
+            if earlier == rel:
+                item.status = "already_ingested"
+            elif earlier is not None:
+                item.status, item.same_as = "duplicate_file", earlier
+            else:
+                seen[(source.id, sha)] = rel
+            found.append(item)
+    return found
+
+
+# --------------------------------------------------------------------------- text files
+
+
+def _decode(path: Path, data: bytes, encoding: str) -> str:
+    if data.startswith(b"\xef\xbb\xbf"):
+        data = data[3:]
+    try:
+        return data.decode("utf-8" if encoding == "utf-8-sig" else encoding)
+    except UnicodeDecodeError as exc:
+        line = data[: exc.start].count(b"\n") + 1
+        raise FileFault(
+            f"{path}: line {line}: bytes that are not {encoding} ({data[exc.start:exc.start + 4]!r}); "
+            f"re-export the file as {encoding}, or set 'encoding' in the source config"
+        ) from None
+
+
+def _header_fault(path: Path, header: list[str], wanted: dict[str, str], delimiter: str) -> str | None:
+    missing = [col for col in wanted.values() if col not in header]
+    if not missing:
+        return None
+    if len(header) == 1 and any(d in header[0] for d in ",;\t|" if d != delimiter):
+        return (
+            f"{path}: line 1: the header has one column {header[0][:60]!r}; the file does not "
+            f"seem to use the delimiter {delimiter!r} set for this source"
+        )
+    hints = []
+    for col in missing:
+        close = difflib.get_close_matches(col, header, n=1)
+        hints.append(f"{col!r}" + (f" (found {close[0]!r}: a typo?)" if close else ""))
+    return f"{path}: line 1: missing required column(s) {', '.join(hints)}"
+
+
+def read_delimited(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
+    """Read a standard-layout or mapped delimited file into landed rows."""
+    path = item.path
+    text = _decode(path, path.read_bytes(), source.encoding)
+    if not text.strip():
+        raise FileFault(f"{path}: the file is empty")
+    if source.layout == "standard":
+        wanted = {f: f for f in STANDARD_FIELDS}
+        required = {f: f for f in STANDARD_REQUIRED}
+    else:
+        wanted = dict(source.columns)
+        required = {f: c for f, c in source.columns.items() if f in STANDARD_REQUIRED}
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=source.delimiter)
+    header = [h.strip() for h in next(reader)]
+    fault = _header_fault(path, header, required, source.delimiter)
+    if fault:
+        raise FileFault(fault)
+    index = {f: header.index(c) for f, c in wanted.items() if c in header}
+    token_idx = index["person_token"]
+    n_fields = len(header)
+    lines = text.splitlines()
+    columns: dict[str, list] = {f: [] for f in ("line_no", "raw_text", "row_fault", *index)}
+    chunks: list[pl.DataFrame] = []
+
+    def flush() -> None:
+        if columns["line_no"]:
+            chunks.append(pl.DataFrame(columns, schema={k: pl.Int64 if k == "line_no" else pl.String for k in columns}))
+            for values in columns.values():
+                values.clear()
+
+    start = 2
+    for row in reader:
+        end = reader.line_num
+        raw = "\n".join(lines[start - 1 : end])
+        line_no, start = start, end + 1
+        if not row or (len(row) == 1 and not row[0].strip()):
+            continue  # blank line: not a row
+        fault = None
+        if len(row) != n_fields:
+            fault = f"wrong_field_count:{len(row)} fields, the header has {n_fields}"
+            row = (row + [""] * n_fields)[:n_fields]
+        token = row[token_idx].strip()
+        if token:
+            raw = raw.replace(token, _MASK)
+        columns["line_no"].append(line_no)
+        columns["raw_text"].append(raw)
+        columns["row_fault"].append(fault)
+        for f, i in index.items():
+            columns[f].append(row[i])
+        if len(columns["line_no"]) >= CHUNK_ROWS:
+            flush()
+    flush()
+    if not chunks:
+        raise FileFault(f"{path}: the file has a header but no rows")
+    frame = pl.concat(chunks)
+    for f in STANDARD_FIELDS:
+        if f not in frame.columns:
+            frame = frame.with_columns(pl.lit(None, dtype=pl.String).alias(f))
+    return _to_landed(frame, source, item)
+
+
+def _to_landed(frame: pl.DataFrame, source: SourceConfig, item: InboxFile) -> pl.DataFrame:
+    """Trim, map the source's own codes to standard ones and name the landed columns."""
+    trimmed = frame.with_columns(pl.col(f).str.strip_chars() for f in STANDARD_FIELDS)
+    value = pl.col("value")
+    clean = value
+    if source.thousands_separator:
+        clean = clean.str.replace_all(re.escape(source.thousands_separator), "", literal=True)
+    if source.decimal_mark == ",":
+        clean = clean.str.replace_all(",", ".", literal=True)
+
+    def mapped(col: str, mapping: dict[str, str]) -> pl.Expr:
+        if not mapping:
+            return pl.col(col)
+        return pl.col(col).replace(mapping)
+
+    domain = SHARED_DOMAIN if source.linkage == "shared" else source.id
+    return trimmed.select(
+        pl.lit(source.id).alias("source_id"),
+        pl.lit(item.file_id, dtype=pl.Int64).alias("file_id"),
+        "line_no",
+        "raw_text",
+        "row_fault",
+        pl.lit(domain).alias("linkage_domain"),
+        pl.when(pl.col("person_token") != "").then(pl.col("person_token")).alias("person_token"),
+        pl.col("birth_year").alias("birth_year_text"),
+        mapped("sex", source.sex_codes).alias("sex_text"),
+        pl.col("district_code"),
+        pl.col("specimen_id"),
+        pl.col("collected_date").alias("collected_text"),
+        mapped("test_code", source.test_codes).alias("test_code"),
+        pl.col("test_code").alias("test_code_text"),
+        value.alias("value_text"),
+        clean.alias("value_clean"),
+        pl.col("unit").alias("unit_text"),
+        mapped("status", source.status_codes).str.to_lowercase().alias("status"),
+        pl.col("status").alias("status_text"),
+        pl.col("height_cm").alias("height_text"),
+        pl.col("reported_at").alias("reported_text"),
+        pl.col("fasting").alias("fasting_text"),
+    )
+
+
+# --------------------------------------------------------------------------- FHIR NDJSON
+
+
+def _read_patients(path: Path, source: SourceConfig) -> dict[str, dict]:
+    patients: dict[str, dict] = {}
+    if not path.is_file():
+        raise FileFault(f"{path}: Patient.ndjson is missing beside {path.parent / 'Observation.ndjson'}")
+    text = _decode(path, path.read_bytes(), "utf-8")
+    system = source.fhir.linkage_identifier_system
+    for line_no, line in enumerate(text.splitlines(), start=1):
+        if not line.strip():
+            continue
+        try:
+            res = json.loads(line)
+        except json.JSONDecodeError as exc:
+            raise FileFault(f"{path}: line {line_no}: not valid JSON ({exc.msg})") from None
+        if res.get("resourceType") != "Patient" or "id" not in res:
+            raise FileFault(f"{path}: line {line_no}: expected a Patient resource with an id")
+        token, domain = None, source.id
+        for ident in res.get("identifier") or []:
+            if system and ident.get("system") == system and ident.get("value"):
+                token, domain = ident["value"], SHARED_DOMAIN if source.linkage == "shared" else source.id
+                break
+        if token is None:
+            token = f"Patient/{res['id']}"
+        address = (res.get("address") or [{}])[0]
+        patients[res["id"]] = {
+            "person_token": token,
+            "linkage_domain": domain,
+            "birth_year_text": str(res.get("birthDate") or "")[:4],
+            "sex_text": res.get("gender") or "",
+            "district_name": address.get("district") or "",
+        }
+    return patients
+
+
+_FHIR_FIELDS = (
+    "line_no", "raw_text", "row_fault", "linkage_domain", "person_token", "birth_year_text",
+    "sex_text", "district_code", "specimen_id", "collected_text", "test_code", "test_code_text",
+    "value_text", "value_clean", "unit_text", "status", "status_text", "height_text",
+    "reported_text", "fasting_text",
+)  # fmt: skip
+
+
+def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) -> pl.DataFrame:
+    """Read one bulk-export folder (Observation.ndjson with its Patient.ndjson)."""
+    path = item.path
+    patients = _read_patients(path.parent / "Patient.ndjson", source)
+    by_name = {name.casefold(): code for code, name in settings.districts.items()}
+    text = _decode(path, path.read_bytes(), "utf-8")
+    rows: dict[str, list] = {f: [] for f in _FHIR_FIELDS}
+    for line_no, line in enumerate(text.splitlines(), start=1):
+        if not line.strip():
+            continue
+        rec = {f: None for f in _FHIR_FIELDS}
+        rec["line_no"] = line_no
+        try:
+            res = json.loads(line)
+            if not isinstance(res, dict) or res.get("resourceType") != "Observation":
+                raise ValueError("not an Observation resource")
+        except (json.JSONDecodeError, ValueError) as exc:
+            rec["row_fault"] = f"malformed_record:{getattr(exc, 'msg', str(exc))}"
+            rec["raw_text"] = line[:2000]
+            for f, v in rec.items():
+                rows[f].append(v)
+            continue
+        subject = str((res.get("subject") or {}).get("reference") or "")
+        patient = patients.get(subject.removeprefix("Patient/"))
+        raw = line
+        if patient is not None:
+            rec.update({k: v for k, v in patient.items() if k != "district_name"})
+            name = patient["district_name"]
+            rec["district_code"] = by_name.get(name.casefold(), name)
+        elif subject:
+            rec["row_fault"] = f"unknown_patient:{subject} is not in Patient.ndjson"
+        rec["raw_text"] = raw.replace(subject, _MASK) if subject else raw
+        if patient is not None and patient["person_token"] in rec["raw_text"]:
+            rec["raw_text"] = rec["raw_text"].replace(patient["person_token"], _MASK)
+        codings = (res.get("code") or {}).get("coding") or []
+        loinc = next((c.get("code") for c in codings if c.get("system") == "http://loinc.org"), None)
+        rec["test_code"] = rec["test_code_text"] = loinc
+        quantity = res.get("valueQuantity")
+        if isinstance(quantity, dict):
+            number = quantity.get("value")
+            comparator = quantity.get("comparator") or ""
+            rec["value_text"] = f"{comparator}{number if number is not None else ''}"
+            rec["value_clean"] = rec["value_text"]
+            rec["unit_text"] = quantity.get("code") or quantity.get("unit")
+        else:
+            rec["value_text"] = rec["value_clean"] = res.get("valueString")
+        rec["status"] = (res.get("status") or "").lower()
+        rec["status_text"] = res.get("status")
+        specimen = (res.get("specimen") or {}).get("reference") or ""
+        rec["specimen_id"] = specimen.rsplit("/", 1)[-1] or None
+        rec["collected_text"] = res.get("effectiveDateTime")
+        rec["reported_text"] = res.get("issued")
+        for f, v in rec.items():
+            rows[f].append(v)
+    if not rows["line_no"]:
+        raise FileFault(f"{path}: no Observation records")
+    frame = pl.DataFrame(rows, schema={f: pl.Int64 if f == "line_no" else pl.String for f in _FHIR_FIELDS})
+    return frame.with_columns(
+        pl.lit(source.id).alias("source_id"), pl.lit(item.file_id, dtype=pl.Int64).alias("file_id")
+    ).select(LANDED_COLUMNS)
+
+
+# --------------------------------------------------------------------------- dates
+
+
+def _month_end_from_name(name: str) -> dt.date | None:
+    match = re.search(r"(20\d{2})[-_]?(0[1-9]|1[0-2])(?!\d)", name)
+    if not match:
+        return None
+    year, month = int(match.group(1)), int(match.group(2))
+    return dt.date(year, month, calendar.monthrange(year, month)[1])
+
+
+def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, ingested_on: dt.date) -> pl.DataFrame:
+    """Parse the collection and report dates; keep the text as reported beside them."""
+    fmt = source.date_format or "%Y-%m-%d"
+
+    def parse(col: str) -> pl.Expr:
+        text = pl.col(col).str.strip_chars()
+        if source.date_format is None:
+            text = text.str.slice(0, 10)
+        return text.str.strptime(pl.Date, fmt, strict=False)
+
+    extract_date = _month_end_from_name(item.rel_path) or ingested_on
+    basis_extract = "file_name" if _month_end_from_name(item.rel_path) else "ingested"
+    return frame.with_columns(
+        parse("collected_text").alias("collected_date"),
+        pl.coalesce(parse("reported_text"), pl.lit(extract_date)).alias("reported_date"),
+        pl.when(parse("reported_text").is_not_null())
+        .then(pl.lit("reported"))
+        .otherwise(pl.lit(basis_extract))
+        .alias("reported_date_basis"),
+    )
+
+
+def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, ingested_on: dt.date) -> pl.DataFrame:
+    """Landed rows of one file, dates parsed, the person token still present."""
+    if source.layout == "fhir_ndjson":
+        frame = read_fhir_export(source, item, settings)
+    else:
+        frame = read_delimited(source, item)
+    return add_dates(frame.select(LANDED_COLUMNS), source, item, ingested_on)
+
+
+def count_rows(item: InboxFile, source: SourceConfig) -> int:
+    """Rows of a file, for the ledger of a file skipped as a copy of another."""
+    lines = [ln for ln in item.path.read_text(encoding="utf-8", errors="replace").splitlines() if ln.strip()]
+    return len(lines) - (0 if source.layout == "fhir_ndjson" else 1)
+
+
+def land_inbox(
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    inbox: Path,
+    key: PseudonymKey,
+    run_period: str,
+    ingested_on: dt.date,
+    items: list[InboxFile] | None = None,
+) -> IngestSummary:
+    """Read every new file into ``staging.landed_rows`` and record it in ``ingest_files``.
+
+    Person tokens are re-keyed before the rows reach DuckDB. ``items`` replaces the inbox scan
+    (``sources check`` reads one given file).
+    """
+    summary = IngestSummary()
+    if items is None:
+        items = scan_inbox(con, settings, inbox)
+    next_id = con.execute("select coalesce(max(file_id), 0) + 1 from ingest_files").fetchall()[0][0]
+    frames: list[pl.DataFrame] = []
+    for item in items:
+        if item.status == "already_ingested":
+            summary.files_skipped += 1
+            continue
+        source = settings.source(item.source_id)
+        item.file_id = next_id
+        next_id += 1
+        version = con.execute(
+            "select count(*) + 1 from ingest_files where source_id = ? and file_path = ?",
+            [item.source_id, item.rel_path],
+        ).fetchall()[0][0]
+        status, message, rows_read = "ingested", None, 0
+        if item.status == "duplicate_file":
+            status = "duplicate_file"
+            message = f"same content as {item.same_as}, already ingested; every row counted as duplicate"
+            rows_read = count_rows(item, source)
+            summary.files_skipped += 1
+        else:
+            try:
+                frame = read_inbox_file(source, item, settings, ingested_on)
+            except FileFault as fault:
+                status, message = "held_back", str(fault)
+                summary.files_held_back += 1
+                summary.held_back.append((item.rel_path, str(fault)))
+            else:
+                rows_read = frame.height
+                frames.append(add_person_keys(frame, key))
+                summary.files_new += 1
+                summary.rows_landed += rows_read
+        con.execute(
+            "insert into ingest_files (file_id, source_id, file_path, version, sha256, size_bytes, "
+            "status, message, rows_read, rows_duplicate, run_period, ingested_at) "
+            "values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, current_timestamp)",
+            [item.file_id, item.source_id, item.rel_path, version, item.sha256, item.size_bytes,
+             status, message, rows_read, rows_read if status == "duplicate_file" else 0, run_period],
+        )  # fmt: skip
+    landed = pl.concat(frames) if frames else empty_landed()
+    con.register("landed_frame", landed.to_arrow())
+    con.execute("create or replace table staging.landed_rows as select * from landed_frame")
+    con.unregister("landed_frame")
+    return summary
+
+
+def empty_landed() -> pl.DataFrame:
+    schema = {c: pl.String for c in LANDED_COLUMNS if c not in ("person_token", "linkage_domain")}
+    schema.update(file_id=pl.Int64, line_no=pl.Int64, person_key=pl.String)
+    frame = pl.DataFrame(schema=schema)
+    return frame.with_columns(
+        pl.lit(None, dtype=pl.Date).alias("collected_date"),
+        pl.lit(None, dtype=pl.Date).alias("reported_date"),
+        pl.lit(None, dtype=pl.String).alias("reported_date_basis"),
+    )

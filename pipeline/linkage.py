@@ -1,0 +1,71 @@
+"""Link: person trajectories across labs and months, events and person status at the period end.
+
+The rules are in ``sql/marts/kidney_events.sql`` and ``sql/marts/person_status.sql``; their
+numbers come from config/pipeline.yaml ("trajectories") through ``reference.trajectory_rules``
+and bound parameters.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import duckdb
+import polars as pl
+
+from pipeline.periods import Period
+from pipeline.settings import Settings
+from pipeline.warehouse import build_table, replace_period_rows
+
+
+@dataclass
+class LinkSummary:
+    persons: int
+    events_confirmed: int
+    events_pending: int
+
+
+def trajectory_rules(settings: Settings) -> pl.DataFrame:
+    """One row per event rule, from the trajectories settings."""
+    t = settings.pipeline.trajectories
+    rows = [
+        {"rule_id": f"sustained_decline_{round(x * 100)}", "event_type": "sustained_decline",
+         "measure": "egfr", "comparison": "at_or_below_fraction_of_baseline", "threshold": x,
+         "min_span_days": t.decline_min_span_days, "after_baseline": True}
+        for x in t.decline_thresholds
+    ]
+    rows += [
+        {"rule_id": "kidney_failure", "event_type": "kidney_failure", "measure": "egfr",
+         "comparison": "below", "threshold": t.kidney_failure_egfr,
+         "min_span_days": t.kidney_failure_min_span_days, "after_baseline": False},
+        {"rule_id": "ckd_egfr", "event_type": "ckd", "measure": "egfr", "comparison": "below",
+         "threshold": t.ckd_egfr_below, "min_span_days": t.ckd_min_span_days, "after_baseline": False},
+        {"rule_id": "ckd_acr", "event_type": "ckd", "measure": "acr", "comparison": "at_or_above",
+         "threshold": t.ckd_acr_at_or_above_mg_g, "min_span_days": t.ckd_min_span_days,
+         "after_baseline": False},
+    ]  # fmt: skip
+    return pl.DataFrame(rows)
+
+
+def link_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> LinkSummary:
+    m, t = settings.pipeline.measures, settings.pipeline.trajectories
+    con.register("_rules", trajectory_rules(settings).to_arrow())
+    con.execute("create or replace table reference.trajectory_rules as select * from _rules")
+    con.unregister("_rules")
+    end = {"period_end": period.end}
+    build_table(con, "int_daily_values_averaged", params=end)
+    replace_period_rows(
+        con, "kidney_events", period.label,
+        {**end, "period": period.label, "baseline_window_days": t.baseline_window_days},
+    )
+    persons = replace_period_rows(
+        con, "person_status", period.label,
+        {**end, "period": period.label, "hba1c_percent": m.diabetes_hba1c_percent,
+         "hba1c_mmol_mol": m.diabetes_hba1c_mmol_mol, "glucose_mg_dl": m.diabetes_fasting_glucose_mg_dl,
+         "glucose_mmol_l": m.diabetes_fasting_glucose_mmol_l, "risk_window_days": m.risk_pairing_window_days},
+    )  # fmt: skip
+    confirmed, pending = con.execute(
+        "select count(*) filter (where event_status = 'confirmed'), "
+        "count(*) filter (where event_status = 'pending') from kidney_events where period = ?",
+        [period.label],
+    ).fetchall()[0]
+    return LinkSummary(persons, confirmed, pending)

@@ -1,0 +1,200 @@
+"""Measure: eGFR, albuminuria and their KDIGO categories for every accepted result.
+
+eGFR is recomputed from every accepted serum creatinine with the equation configured for the
+person's age (project decision 3); a lab-reported eGFR is kept beside it for comparison only.
+Albuminuria is brought onto one scale (``acr_mg_g``) with ``acr_basis`` saying how. Anything not
+computable gets a null and a reason. The equations themselves are in :mod:`pipeline.equations`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import duckdb
+import polars as pl
+
+from pipeline import equations as eq
+from pipeline.settings import MeasureSettings, Settings
+from pipeline.warehouse import fetch_frame
+
+EQUATIONS = {
+    "ckd_epi_2021_creatinine": lambda scr, age, female, height: eq.ckd_epi_2021_creatinine(scr, age, female),
+    "ckd_epi_2009_creatinine": lambda scr, age, female, height: eq.ckd_epi_2009_creatinine(scr, age, female),
+    "ekfc_creatinine": lambda scr, age, female, height: eq.ekfc_creatinine(scr, age, female),
+    "ckid_u25_creatinine": lambda scr, age, female, height: eq.ckid_u25_creatinine(scr, height, age, female),
+}
+
+MEASURE_COLUMNS = [
+    "source_id", "file_id", "line_no", "person_key", "specimen_id", "collected_date",
+    "reported_date", "analyte", "sex", "age_years", "district_code",
+    "egfr", "egfr_equation", "g_category", "egfr_reason", "is_hyperfiltration", "lab_reported_egfr",
+    "acr_mg_g", "acr_comparator", "acr_basis", "is_acr_estimated", "a_category", "acr_reason",
+]  # fmt: skip
+
+
+@dataclass
+class MeasureSummary:
+    egfr_rows: int
+    egfr_computed: int
+    acr_rows: int
+    acr_categorised: int
+
+
+def equation_for(m: MeasureSettings) -> pl.Expr:
+    """Which equation applies to a creatinine row, or null (with a reason set elsewhere)."""
+    age = pl.col("age_years")
+    child = (age >= m.min_age_years) & (age < m.adult_min_age_years)
+    with_height = pl.col("height_cm").is_not_null() & pl.lit(m.use_height_for_children)
+    return (
+        pl.when(pl.col("comparator").is_not_null() | (pl.col("sex") == "U") | (age < m.min_age_years))
+        .then(None)
+        .when(age >= m.adult_min_age_years)
+        .then(pl.lit(m.adult_equation))
+        .when(child & with_height)
+        .then(pl.lit(m.child_equation_with_height))
+        .when(child)
+        .then(pl.lit(m.child_equation))
+        .cast(pl.String)
+    )
+
+
+def egfr_reason(m: MeasureSettings) -> pl.Expr:
+    age = pl.col("age_years")
+    return (
+        pl.when(pl.col("comparator").is_not_null())
+        .then(pl.lit("censored_creatinine"))
+        .when(age < m.min_age_years)
+        .then(pl.lit("age_under_minimum"))
+        .when(pl.col("sex") == "U")
+        .then(pl.lit("sex_unknown"))
+        .when(pl.col("egfr").is_null())
+        .then(pl.lit("outside_equation_range"))
+    )
+
+
+def compute_egfr(creatinine: pl.DataFrame, m: MeasureSettings) -> pl.DataFrame:
+    """eGFR per creatinine row: equation chosen by age, G category, hyperfiltration flag."""
+    female = pl.when(pl.col("sex") == "F").then(True).when(pl.col("sex") == "M").then(False)
+    scr, age, height = pl.col("value"), pl.col("age_years").cast(pl.Float64), pl.col("height_cm")
+    frame = creatinine.with_columns(equation_for(m).alias("egfr_equation"))
+    egfr = pl.lit(None, dtype=pl.Float64)
+    for name in dict.fromkeys([m.adult_equation, m.child_equation, m.child_equation_with_height]):
+        egfr = pl.when(pl.col("egfr_equation") == name).then(EQUATIONS[name](scr, age, female, height)).otherwise(egfr)
+    frame = frame.with_columns(egfr.alias("egfr"))
+    return frame.with_columns(
+        pl.when(pl.col("egfr").is_null()).then(None).otherwise(pl.col("egfr_equation")).alias("egfr_equation"),
+        eq.gfr_category(pl.col("egfr")).alias("g_category"),
+        egfr_reason(m).alias("egfr_reason"),
+        (pl.col("egfr") > m.hyperfiltration_ml_min_1_73m2).alias("is_hyperfiltration"),
+    )
+
+
+def censored_acr_category(m: MeasureSettings) -> pl.Expr:
+    """A category of a censored ACR, only when every value it admits falls in one category.
+
+    "<3 mg/mmol" (< 26.5 mg/g) is A1; ">300 mg/g" is A3; ">=300 mg/g" could be 300 (A2 by
+    default) or more (A3), so it stays uncategorised.
+    """
+    bound, cmp = pl.col("acr_mg_g"), pl.col("acr_comparator")
+    a2_top = 300.0
+    return (
+        pl.when((cmp == "<") & (bound <= 30)).then(pl.lit("A1"))
+        .when((cmp == "<=") & (bound < 30)).then(pl.lit("A1"))
+        .when((cmp == ">") & (bound >= a2_top)).then(pl.lit("A3"))
+        .when((cmp == ">=") & ((bound > a2_top) | ((bound == a2_top) & pl.lit(not m.acr_300_is_a2))))
+        .then(pl.lit("A3"))
+    )  # fmt: skip
+
+
+def compute_albuminuria(results: pl.DataFrame, m: MeasureSettings) -> pl.DataFrame:
+    """ACR on one scale (mg/g) with its basis, from measured ACR, albumin + creatinine or PCR."""
+    keys = ["source_id", "file_id", "line_no", "person_key", "specimen_id", "collected_date",
+            "reported_date", "analyte", "sex", "age_years", "district_code"]  # fmt: skip
+    measured = results.filter(pl.col("analyte") == "acr").select(
+        *keys,
+        pl.col("value").alias("acr_mg_g"),
+        pl.col("comparator").alias("acr_comparator"),
+        pl.lit("measured_acr").alias("acr_basis"),
+    )
+    pcr = results.filter(pl.col("analyte") == "pcr").select(
+        *keys,
+        pl.when(pl.col("comparator").is_null()).then(eq.acr_from_pcr_sumida(pl.col("value"))).alias("acr_mg_g"),
+        pl.lit(None, dtype=pl.String).alias("acr_comparator"),
+        pl.lit("estimated_from_pcr").alias("acr_basis"),
+    )
+    albumin = results.filter(pl.col("analyte") == "urine_albumin")
+    ucreat = results.filter(pl.col("analyte") == "urine_creatinine").select(
+        "source_id", "person_key", "specimen_id", "collected_date",
+        pl.col("value").alias("ucreat_mg_dl"), pl.col("comparator").alias("ucreat_cmp"),
+    )  # fmt: skip
+    # Same specimen; without a specimen id, same person and day (issue: albumin and creatinine
+    # reported separately). 100 x albumin (mg/L) / creatinine (mg/dL) = mg/g.
+    with_id = albumin.filter(pl.col("specimen_id").is_not_null()).join(
+        ucreat.filter(pl.col("specimen_id").is_not_null()).drop("collected_date"),
+        on=["source_id", "person_key", "specimen_id"], how="inner", maintain_order="left",
+    )
+    without_id = albumin.filter(pl.col("specimen_id").is_null()).join(
+        ucreat.filter(pl.col("specimen_id").is_null()).drop("specimen_id")
+        .unique(["source_id", "person_key", "collected_date"], keep="first", maintain_order=True),
+        on=["source_id", "person_key", "collected_date"], how="inner", maintain_order="left",
+    )
+    paired = pl.concat([with_id.select(sorted(with_id.columns)), without_id.select(sorted(with_id.columns))])
+    computed = paired.select(
+        *keys,
+        pl.when(pl.col("comparator").is_null() & pl.col("ucreat_cmp").is_null() & (pl.col("ucreat_mg_dl") > 0))
+        .then(100 * pl.col("value") / pl.col("ucreat_mg_dl"))
+        .alias("acr_mg_g"),
+        pl.lit(None, dtype=pl.String).alias("acr_comparator"),
+        pl.lit("computed_from_albumin_and_creatinine").alias("acr_basis"),
+    )
+    frame = pl.concat([measured, computed, pcr], how="vertical_relaxed")
+    uncensored = eq.albuminuria_category_acr(pl.col("acr_mg_g"), upper_a2_inclusive=m.acr_300_is_a2)
+    return frame.with_columns(
+        (pl.col("acr_basis") == "estimated_from_pcr").alias("is_acr_estimated"),
+        pl.when(pl.col("acr_comparator").is_null()).then(uncensored).otherwise(censored_acr_category(m))
+        .alias("a_category"),
+    ).with_columns(
+        pl.when(pl.col("a_category").is_not_null()).then(None)
+        .when(pl.col("acr_comparator").is_not_null()).then(pl.lit("censored_ambiguous"))
+        .otherwise(pl.lit("not_computable"))
+        .alias("acr_reason")
+    )  # fmt: skip
+
+
+def measure_frame(results: pl.DataFrame, settings: Settings) -> pl.DataFrame:
+    """kidney_measures rows from lab_results rows (plain function, no database)."""
+    m = settings.pipeline.measures
+    creatinine = compute_egfr(results.filter(pl.col("analyte") == "creatinine"), m)
+    reported = (
+        results.filter((pl.col("analyte") == "egfr_reported") & pl.col("specimen_id").is_not_null())
+        .group_by("source_id", "specimen_id")
+        .agg(pl.col("value").first().alias("lab_reported_egfr"))
+    )
+    creatinine = creatinine.join(reported, on=["source_id", "specimen_id"], how="left", maintain_order="left")
+    albuminuria = compute_albuminuria(results, m)
+    out = pl.concat(
+        [creatinine.select([c for c in MEASURE_COLUMNS if c in creatinine.columns]), albuminuria],
+        how="diagonal_relaxed",
+    )
+    return out.select(MEASURE_COLUMNS).sort("person_key", "collected_date", "analyte", "file_id", "line_no")
+
+
+def measure_stage(con: duckdb.DuckDBPyConnection, settings: Settings) -> MeasureSummary:
+    """Rebuild ``kidney_measures`` from ``lab_results``."""
+    results = fetch_frame(
+        con,
+        "select * from lab_results where analyte in "
+        "('creatinine', 'acr', 'pcr', 'urine_albumin', 'urine_creatinine', 'egfr_reported')",
+    )
+    frame = measure_frame(results, settings)
+    con.register("_measures", frame.to_arrow())
+    con.execute("create or replace table kidney_measures as select * from _measures")
+    con.unregister("_measures")
+    egfr = frame.filter(pl.col("analyte") == "creatinine")
+    acr = frame.filter(pl.col("acr_basis").is_not_null())
+    return MeasureSummary(
+        egfr_rows=egfr.height,
+        egfr_computed=egfr["egfr"].is_not_null().sum(),
+        acr_rows=acr.height,
+        acr_categorised=acr["a_category"].is_not_null().sum(),
+    )

@@ -1,0 +1,69 @@
+"""Publish: commit the month in one transaction, then write the exports of the published tables.
+
+The whole run works inside one DuckDB transaction opened by :func:`open_warehouse`; a crash or
+an error before :func:`commit_month` leaves the warehouse as it was. Exports are written to a
+temporary folder and renamed into ``out/<period>/`` only after the commit.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+from pathlib import Path
+
+import duckdb
+
+from pipeline.disclosure import PUBLISHED_TABLES
+from pipeline.periods import Period
+from pipeline.warehouse import WAREHOUSE_FILE, apply_comments, connect
+
+
+def open_warehouse(out_dir: Path) -> duckdb.DuckDBPyConnection:
+    """Open ``<out>/surveillance.duckdb`` (owner-only folder) and begin the run's transaction."""
+    out_dir.mkdir(parents=True, exist_ok=True)
+    os.chmod(out_dir, 0o700)
+    con = connect(out_dir / WAREHOUSE_FILE)
+    con.execute("begin transaction")
+    return con
+
+
+def commit_month(con: duckdb.DuckDBPyConnection) -> None:
+    apply_comments(con)
+    for table in ("landed_rows", "stg_landed_rows", "int_results_validated",
+                  "int_result_versions_resolved"):  # transient: not kept
+        con.execute(f"drop table if exists staging.{table}")
+    con.execute("commit")
+
+
+def write_exports(con: duckdb.DuckDBPyConnection, out_dir: Path, period: Period, extra: dict) -> Path:
+    """Parquet and CSV of every published table for the period, plus a small manifest."""
+    final = out_dir / period.label
+    work = out_dir / f".{period.label}.partial"
+    shutil.rmtree(work, ignore_errors=True)
+    work.mkdir(parents=True)
+    for table in PUBLISHED_TABLES:
+        order = ", ".join(table.keys)
+        query = f"select * from published.{table.name} where period = $period order by {order}"
+        con.execute(
+            f"copy ({query}) to {_literal(work / (table.name + '.parquet'))} (format parquet)", {"period": period.label}
+        )
+        con.execute(
+            f"copy ({query}) to {_literal(work / (table.name + '.csv'))} (format csv, header true)",
+            {"period": period.label},
+        )
+    (work / "run_summary.json").write_text(json.dumps(extra, indent=2, sort_keys=True, default=str) + "\n")
+    if final.exists():
+        old = out_dir / f".{period.label}.old"
+        shutil.rmtree(old, ignore_errors=True)
+        final.rename(old)
+        work.rename(final)
+        shutil.rmtree(old, ignore_errors=True)
+    else:
+        work.rename(final)
+    return final
+
+
+def _literal(path: Path) -> str:
+    """A file path as a SQL string literal (COPY takes no bound parameter for its target)."""
+    return "'" + str(path).replace("'", "''") + "'"

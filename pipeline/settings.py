@@ -1,0 +1,411 @@
+"""Validated settings: the pipeline config, the analyte table, the lab sources and the region.
+
+Everything under ``config/`` is read here, once, into typed objects. A mistake in a file (an
+unknown key, a wrong type, a missing file) raises :class:`ConfigError` with one message naming
+the file, the key and what was expected; the CLI prints it and exits with code 2.
+"""
+
+from __future__ import annotations
+
+import csv
+import re
+from pathlib import Path
+from typing import Any, Literal
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+
+#: Identifiers taken from config end up in SQL as table values or file names: keep them plain.
+IDENTIFIER_PATTERN = r"^[a-z][a-z0-9_]{0,62}$"
+
+#: Fields of the standard extract layout (DESIGN.md), required and optional.
+STANDARD_REQUIRED = (
+    "person_token",
+    "birth_year",
+    "sex",
+    "district_code",
+    "specimen_id",
+    "collected_date",
+    "test_code",
+    "value",
+    "unit",
+    "status",
+)
+STANDARD_OPTIONAL = ("height_cm", "reported_at", "fasting")
+STANDARD_FIELDS = STANDARD_REQUIRED + STANDARD_OPTIONAL
+
+FHIR_STATUSES = ("final", "amended", "corrected", "cancelled", "entered-in-error", "preliminary")
+
+
+class ConfigError(Exception):
+    """A configuration file is missing or invalid; the message names the file and the key."""
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+# --------------------------------------------------------------------------- sources
+
+
+class FhirOptions(_Strict):
+    linkage_identifier_system: str | None = Field(
+        default=None,
+        description="Patient.identifier system carrying the shared linkage token.",
+    )
+
+
+class SourceConfig(_Strict):
+    """One lab source: ``config/sources/<id>.yaml``."""
+
+    id: str = Field(pattern=IDENTIFIER_PATTERN)
+    layout: Literal["standard", "delimited", "fhir_ndjson"]
+    folder: str
+    description: str | None = None
+    files: str | None = Field(default=None, description="glob of files inside the folder")
+    linkage: Literal["shared", "lab_local"] = "shared"
+    delimiter: str = ","
+    decimal_mark: Literal[".", ","] = "."
+    thousands_separator: Literal["", ",", ".", " "] = ""
+    encoding: Literal["utf-8", "utf-8-sig", "latin-1", "cp1252"] = "utf-8"
+    date_format: str | None = Field(default=None, description="strftime format; ISO 8601 if unset")
+    columns: dict[str, str] = Field(default_factory=dict)
+    test_codes: dict[str, str] = Field(default_factory=dict)
+    status_codes: dict[str, str] = Field(default_factory=dict)
+    sex_codes: dict[str, str] = Field(default_factory=dict)
+    unit_aliases: dict[str, str] = Field(default_factory=dict)
+    max_rejection_rate: float | None = Field(default=None, ge=0, le=1)
+    fhir: FhirOptions = Field(default_factory=FhirOptions)
+
+    @field_validator("folder")
+    @classmethod
+    def _plain_folder(cls, value: str) -> str:
+        if value.startswith("/") or ".." in Path(value).parts:
+            raise ValueError("must be a subfolder of the inbox (no '/' at the start, no '..')")
+        return value
+
+    @field_validator("delimiter")
+    @classmethod
+    def _one_char(cls, value: str) -> str:
+        if len(value) != 1:
+            raise ValueError("must be a single character, e.g. ',' or ';'")
+        return value
+
+    @field_validator("columns")
+    @classmethod
+    def _known_fields(cls, value: dict[str, str]) -> dict[str, str]:
+        unknown = sorted(set(value) - set(STANDARD_FIELDS))
+        if unknown:
+            raise ValueError(
+                f"unknown standard field(s) {unknown}; expected keys among {list(STANDARD_FIELDS)}"
+            )
+        return value
+
+    @field_validator("status_codes")
+    @classmethod
+    def _fhir_statuses(cls, value: dict[str, str]) -> dict[str, str]:
+        bad = sorted(v for v in value.values() if v not in FHIR_STATUSES)
+        if bad:
+            raise ValueError(f"maps to {bad}; values must be FHIR statuses {list(FHIR_STATUSES)}")
+        return value
+
+    @model_validator(mode="after")
+    def _layout_needs(self) -> SourceConfig:
+        if self.layout == "delimited":
+            missing = [f for f in STANDARD_REQUIRED if f not in self.columns]
+            if missing:
+                raise ValueError(
+                    f"layout 'delimited' needs a 'columns' entry for every required field; "
+                    f"missing {missing}"
+                )
+        if self.layout != "delimited" and self.columns:
+            raise ValueError(f"'columns' is only for layout 'delimited', not '{self.layout}'")
+        return self
+
+    @property
+    def file_glob(self) -> str:
+        if self.files:
+            return self.files
+        return "*/Observation.ndjson" if self.layout == "fhir_ndjson" else "*.csv"
+
+
+# --------------------------------------------------------------------------- pipeline.yaml
+
+
+class DemoSettings(_Strict):
+    period: str = Field(pattern=r"^\d{4}-(0[1-9]|1[0-2])$")
+
+
+EquationName = Literal[
+    "ckd_epi_2021_creatinine",
+    "ckd_epi_2009_creatinine",
+    "ekfc_creatinine",
+    "ckid_u25_creatinine",
+]
+
+
+class MeasureSettings(_Strict):
+    adult_equation: EquationName = "ckd_epi_2021_creatinine"
+    child_equation: EquationName = "ekfc_creatinine"
+    child_equation_with_height: EquationName = "ckid_u25_creatinine"
+    use_height_for_children: bool = True
+    adult_min_age_years: int = Field(default=18, ge=2, le=25)
+    min_age_years: int = Field(default=2, ge=0, le=18)
+    hyperfiltration_ml_min_1_73m2: float = Field(default=130, gt=0)
+    acr_300_is_a2: bool = True
+    risk_pairing_window_days: int = Field(default=90, gt=0)
+    diabetes_hba1c_percent: float = 6.5
+    diabetes_hba1c_mmol_mol: float = 48
+    diabetes_fasting_glucose_mg_dl: float = 126
+    diabetes_fasting_glucose_mmol_l: float = 7.0
+
+
+class TrajectorySettings(_Strict):
+    baseline_window_days: int = Field(default=90, gt=0)
+    decline_thresholds: list[float] = Field(default=[0.30, 0.40, 0.57])
+    decline_min_span_days: int = Field(default=28, gt=0)
+    kidney_failure_egfr: float = 15
+    kidney_failure_min_span_days: int = Field(default=28, gt=0)
+    ckd_egfr_below: float = 60
+    ckd_acr_at_or_above_mg_g: float = 30
+    ckd_min_span_days: int = Field(default=90, gt=0)
+
+    @field_validator("decline_thresholds")
+    @classmethod
+    def _fractions(cls, value: list[float]) -> list[float]:
+        if not value or any(not 0 < t < 1 for t in value):
+            raise ValueError("each threshold is a fraction between 0 and 1, e.g. 0.40 for 40 %")
+        return sorted(value)
+
+
+class SummarySettings(_Strict):
+    window_months: int = Field(default=12, ge=1, le=60)
+    age_bands: list[int] = Field(default=[0, 5, 10, 15, 20, 25, 30, 35, 40, 45, 50, 55, 60, 65, 70, 75, 80, 85])
+
+    @field_validator("age_bands")
+    @classmethod
+    def _increasing(cls, value: list[int]) -> list[int]:
+        if not value or value[0] != 0 or any(b <= a for a, b in zip(value, value[1:])):
+            raise ValueError("lower bounds must start at 0 and increase, e.g. [0, 5, 10, ...]")
+        return value
+
+
+class DisclosureSettings(_Strict):
+    suppress_min: int = Field(default=1, ge=1)
+    suppress_max: int = Field(default=10, ge=1)
+
+
+class QualityGateSettings(_Strict):
+    max_rejection_rate: float = Field(default=0.05, ge=0, le=1)
+
+
+class RangeSetting(_Strict):
+    min: float
+    max: float
+    source: str
+
+    @model_validator(mode="after")
+    def _ordered(self) -> RangeSetting:
+        if self.min >= self.max:
+            raise ValueError(f"min ({self.min}) must be below max ({self.max})")
+        return self
+
+
+class PipelineConfig(_Strict):
+    demo: DemoSettings
+    measures: MeasureSettings = Field(default_factory=MeasureSettings)
+    trajectories: TrajectorySettings = Field(default_factory=TrajectorySettings)
+    summaries: SummarySettings = Field(default_factory=SummarySettings)
+    disclosure: DisclosureSettings = Field(default_factory=DisclosureSettings)
+    quality_gate: QualityGateSettings = Field(default_factory=QualityGateSettings)
+    ranges: dict[str, RangeSetting]
+
+
+# --------------------------------------------------------------------------- analytes.yaml
+
+
+class UnitFactor(_Strict):
+    factor: float = Field(gt=0)
+    offset: float = 0.0
+    source: str | None = None
+
+
+class Analyte(_Strict):
+    description: str
+    loinc: list[str]
+    canonical_unit: str
+    units: dict[str, UnitFactor]
+    fasting_loinc: list[str] = Field(default_factory=list)
+
+    @model_validator(mode="after")
+    def _canonical_listed(self) -> Analyte:
+        unit = self.units.get(self.canonical_unit)
+        if unit is None or unit.factor != 1.0 or unit.offset != 0.0:
+            raise ValueError(f"canonical unit {self.canonical_unit!r} must be listed with factor 1")
+        return self
+
+
+class AnalyteTable(_Strict):
+    analytes: dict[str, Analyte]
+    unit_aliases: dict[str, str]
+
+    @model_validator(mode="after")
+    def _unique_codes(self) -> AnalyteTable:
+        seen: dict[str, str] = {}
+        for name, analyte in self.analytes.items():
+            for code in analyte.loinc:
+                if code in seen:
+                    raise ValueError(f"LOINC {code} listed under both {seen[code]} and {name}")
+                seen[code] = name
+        return self
+
+
+# --------------------------------------------------------------------------- loading
+
+
+class Settings(BaseModel):
+    """All configuration of one run."""
+
+    model_config = ConfigDict(arbitrary_types_allowed=True, frozen=True)
+
+    config_dir: Path
+    pipeline: PipelineConfig
+    analytes: AnalyteTable
+    sources: list[SourceConfig]
+    districts: dict[str, str]  # district_code -> district_name
+    population: list[dict[str, Any]]  # rows: district_code, sex, age_band, population
+
+    def source(self, source_id: str) -> SourceConfig:
+        for src in self.sources:
+            if src.id == source_id:
+                return src
+        known = ", ".join(s.id for s in self.sources) or "none"
+        raise ConfigError(f"unknown source {source_id!r}; configured sources: {known}")
+
+
+def _describe_errors(path: Path, error: ValidationError) -> str:
+    lines = []
+    for item in error.errors():
+        key = ".".join(str(p) for p in item["loc"]) or "(top level)"
+        kind = item["type"]
+        if kind == "extra_forbidden":
+            reason = "unknown key (check its spelling against DEVELOPERS.md)"
+        elif kind == "missing":
+            reason = "required key is missing"
+        else:
+            reason = item["msg"]
+            if "input" in item and not isinstance(item["input"], dict | list):
+                reason += f" (got {item['input']!r})"
+        lines.append(f"{path}: key '{key}': {reason}")
+    return "\n".join(lines)
+
+
+def _read_yaml(path: Path) -> Any:
+    if not path.is_file():
+        raise ConfigError(f"{path}: file not found")
+    try:
+        return yaml.safe_load(path.read_text(encoding="utf-8"))
+    except yaml.YAMLError as exc:
+        mark = getattr(exc, "problem_mark", None)
+        where = f" line {mark.line + 1}" if mark else ""
+        raise ConfigError(f"{path}:{where} not valid YAML: {getattr(exc, 'problem', exc)}") from None
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"{path}: not UTF-8 text ({exc.reason})") from None
+
+
+def _parse(model: type[BaseModel], path: Path) -> Any:
+    data = _read_yaml(path)
+    if not isinstance(data, dict):
+        raise ConfigError(f"{path}: expected a mapping of keys to values at the top level")
+    try:
+        return model.model_validate(data)
+    except ValidationError as exc:
+        raise ConfigError(_describe_errors(path, exc)) from None
+
+
+def load_source(path: Path) -> SourceConfig:
+    """Read and validate one source config file."""
+    source = _parse(SourceConfig, path)
+    if source.id != path.stem:
+        raise ConfigError(f"{path}: key 'id': is {source.id!r} but the file name says {path.stem!r}")
+    return source
+
+
+def _read_region(config_dir: Path) -> tuple[dict[str, str], list[dict[str, Any]]]:
+    districts_path = config_dir / "regions" / "districts.csv"
+    population_path = config_dir / "regions" / "population.csv"
+    for path in (districts_path, population_path):
+        if not path.is_file():
+            raise ConfigError(f"{path}: file not found")
+    with districts_path.open(encoding="utf-8", newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    if not rows or set(rows[0]) != {"district_code", "district_name"}:
+        raise ConfigError(f"{districts_path}: expected columns district_code,district_name")
+    districts = {}
+    for line, row in enumerate(rows, start=2):
+        code = row["district_code"].strip()
+        if not re.fullmatch(r"[A-Za-z0-9_-]{1,16}", code):
+            raise ConfigError(f"{districts_path}:{line}: district_code {code!r} is not a plain code")
+        districts[code] = row["district_name"].strip()
+    with population_path.open(encoding="utf-8", newline="") as fh:
+        prow = list(csv.DictReader(fh))
+    expected = {"district_code", "sex", "age_band", "population"}
+    if not prow or set(prow[0]) != expected:
+        raise ConfigError(f"{population_path}: expected columns {','.join(sorted(expected))}")
+    population = []
+    for line, row in enumerate(prow, start=2):
+        if row["district_code"] not in districts:
+            raise ConfigError(
+                f"{population_path}:{line}: district_code {row['district_code']!r} "
+                f"is not in {districts_path.name}"
+            )
+        if row["sex"] not in ("F", "M"):
+            raise ConfigError(f"{population_path}:{line}: sex must be F or M, got {row['sex']!r}")
+        try:
+            count = int(row["population"])
+        except ValueError:
+            raise ConfigError(
+                f"{population_path}:{line}: population must be a whole number, got {row['population']!r}"
+            ) from None
+        population.append({**row, "population": count})
+    return districts, population
+
+
+def load_settings(config_dir: Path | str = "config") -> Settings:
+    """Read and validate everything under ``config_dir``."""
+    config_dir = Path(config_dir)
+    if not config_dir.is_dir():
+        raise ConfigError(f"{config_dir}: config folder not found")
+    pipeline = _parse(PipelineConfig, config_dir / "pipeline.yaml")
+    analytes = _parse(AnalyteTable, config_dir / "analytes.yaml")
+    missing_ranges = sorted(set(analytes.analytes) - set(pipeline.ranges))
+    if missing_ranges:
+        raise ConfigError(
+            f"{config_dir / 'pipeline.yaml'}: key 'ranges': no plausible range for {missing_ranges}"
+        )
+    source_paths = sorted((config_dir / "sources").glob("*.yaml"))
+    if not source_paths:
+        raise ConfigError(f"{config_dir / 'sources'}: no source configs (*.yaml) found")
+    sources = [load_source(p) for p in source_paths]
+    known_units = {u for a in analytes.analytes.values() for u in a.units}
+    for src, path in zip(sources, source_paths):
+        bad = sorted(v for v in src.unit_aliases.values() if v not in known_units)
+        if bad:
+            raise ConfigError(
+                f"{path}: key 'unit_aliases': maps to {bad}, which no analyte in analytes.yaml uses"
+            )
+        codes = {c for a in analytes.analytes.values() for c in a.loinc}
+        unknown = sorted(v for v in src.test_codes.values() if v not in codes)
+        if unknown:
+            raise ConfigError(
+                f"{path}: key 'test_codes': LOINC {unknown} not listed in analytes.yaml"
+            )
+    districts, population = _read_region(config_dir)
+    return Settings(
+        config_dir=config_dir,
+        pipeline=pipeline,
+        analytes=analytes,
+        sources=sources,
+        districts=districts,
+        population=population,
+    )

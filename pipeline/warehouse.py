@@ -1,0 +1,190 @@
+"""The DuckDB warehouse: connection, ledger tables, reference tables and the SQL runner.
+
+SQL lives in ``sql/`` as plain ``select`` statements, one file per table, the file name being
+the table name; :func:`build_table` adds ``create or replace table``. Values reach SQL as
+reference tables or bound parameters, never by string formatting; the only names put into SQL
+text are the file names under ``sql/`` and the table names of ``sql/catalog.yaml``, both checked
+against a plain-identifier pattern.
+"""
+
+from __future__ import annotations
+
+import re
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import polars as pl
+import yaml
+
+from pipeline.equations import KDIGO_GFR_LOWER_BOUNDS, KDIGO_RISK
+from pipeline.settings import Settings
+
+SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
+WAREHOUSE_FILE = "surveillance.duckdb"
+_NAME = re.compile(r"^[a-z][a-z0-9_]{0,62}$")
+LEDGER_TABLES = ("ingest_files", "result_versions", "rejected_rows")
+
+
+def sql_path(name: str) -> Path:
+    """The file of a table in sql/ (any layer)."""
+    if not _NAME.match(name):
+        raise ValueError(f"not a plain table name: {name!r}")
+    matches = sorted(SQL_DIR.glob(f"*/{name}.sql"))
+    if len(matches) != 1:
+        raise FileNotFoundError(f"expected one sql/*/{name}.sql, found {len(matches)}")
+    return matches[0]
+
+
+def read_sql(name: str) -> str:
+    return sql_path(name).read_text(encoding="utf-8")
+
+
+def connect(path: Path | str, memory_limit: str = "4GB") -> duckdb.DuckDBPyConnection:
+    """Open (or create) a warehouse file with the ledger tables in place."""
+    path = Path(path)
+    con = duckdb.connect(str(path))
+    temp_dir = path.parent / ".duckdb_tmp" if str(path) != ":memory:" else None
+    con.execute(f"set memory_limit = '{memory_limit}'")
+    if temp_dir is not None:
+        temp_dir.mkdir(parents=True, exist_ok=True)
+        con.execute("set temp_directory = ?", [str(temp_dir)])
+    con.execute("set preserve_insertion_order = true")
+    ensure_schema(con)
+    return con
+
+
+def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
+    for schema in ("staging", "reference", "published"):
+        con.execute(f"create schema if not exists {schema}")
+    for table in LEDGER_TABLES:
+        con.execute(read_sql(table))
+
+
+def build_table(con: duckdb.DuckDBPyConnection, name: str, target: str | None = None,
+                params: dict[str, Any] | None = None) -> int:
+    """Run ``sql/*/<name>.sql`` into a table (``target`` defaults to ``name``); return its rows."""
+    target = target or name
+    if not all(_NAME.match(part) for part in target.split(".")):
+        raise ValueError(f"not a plain table name: {target!r}")
+    sql = read_sql(name)
+    used = {k: v for k, v in (params or {}).items() if re.search(rf"\${k}\b", sql)}
+    con.execute(f"create or replace table {target} as\n{sql}", used)
+    return con.execute(f"select count(*) from {target}").fetchall()[0][0]
+
+
+def load_reference_tables(con: duckdb.DuckDBPyConnection, settings: Settings) -> None:
+    """Write the config the SQL needs as tables in schema ``reference`` (replaced every run)."""
+    analytes = settings.analytes.analytes
+    frames = {
+        "analytes": pl.DataFrame(
+            [{"analyte": n, "canonical_unit": a.canonical_unit, "description": a.description}
+             for n, a in analytes.items()]
+        ),
+        "analyte_codes": pl.DataFrame(
+            [{"loinc": c, "analyte": n, "is_fasting_code": c in a.fasting_loinc}
+             for n, a in analytes.items() for c in a.loinc]
+        ),
+        "unit_factors": pl.DataFrame(
+            [{"analyte": n, "unit": u, "factor": f.factor, "offset": f.offset,
+              "is_canonical": u == a.canonical_unit, "factor_source": f.source}
+             for n, a in analytes.items() for u, f in a.units.items()],
+            schema_overrides={"factor_source": pl.String},
+        ),
+        "ranges": pl.DataFrame(
+            [{"analyte": n, "min_value": r.min, "max_value": r.max, "range_source": r.source}
+             for n, r in settings.pipeline.ranges.items()]
+        ),
+        "unit_aliases": pl.DataFrame(
+            [{"source_id": "*", "alias_key": k, "unit": v} for k, v in settings.analytes.unit_aliases.items()]
+            + [{"source_id": s.id, "alias_key": k.strip().lower().replace("µ", "u").replace("μ", "u"), "unit": v}
+               for s in settings.sources for k, v in s.unit_aliases.items()]
+        ),
+        "districts": pl.DataFrame(
+            [{"district_code": c, "district_name": n} for c, n in settings.districts.items()]
+        ),
+        "population": pl.DataFrame(settings.population).select(
+            "district_code", "sex", "age_band", pl.col("population").cast(pl.Int64)
+        ),
+        "age_bands": _age_bands(settings.pipeline.summaries.age_bands),
+        "gfr_categories": _gfr_categories(),
+        "kdigo_risk": pl.DataFrame(
+            [{"g_category": g, "a_category": a, "risk_category": r} for (g, a), r in KDIGO_RISK.items()]
+        ),
+    }  # fmt: skip
+    for name, frame in frames.items():
+        con.register("_ref", frame.to_arrow())
+        con.execute(f"create or replace table reference.{name} as select * from _ref")
+        con.unregister("_ref")
+
+
+def _gfr_categories() -> pl.DataFrame:
+    """KDIGO GFR categories as [lower, upper) bounds, from the one table in pipeline.equations."""
+    rows, upper = [], float("inf")
+    for category, lower in KDIGO_GFR_LOWER_BOUNDS:
+        rows.append({"g_category": category, "lower_bound": lower, "upper_bound": upper})
+        upper = lower
+    return pl.DataFrame(rows)
+
+
+def _age_bands(lower_bounds: list[int]) -> pl.DataFrame:
+    rows = []
+    for i, low in enumerate(lower_bounds):
+        high = lower_bounds[i + 1] - 1 if i + 1 < len(lower_bounds) else None
+        rows.append({"age_band": f"{low}-{high}" if high is not None else f"{low}+",
+                     "age_min": low, "age_max": high if high is not None else 200, "band_order": i})
+    return pl.DataFrame(rows)
+
+
+def load_catalog() -> dict[str, Any]:
+    with (SQL_DIR / "catalog.yaml").open(encoding="utf-8") as fh:
+        return yaml.safe_load(fh)["tables"]
+
+
+def apply_comments(con: duckdb.DuckDBPyConnection) -> None:
+    """Write the catalog's descriptions as COMMENTs on every table and column it documents."""
+    existing = {
+        (s, t) for s, t in con.execute(
+            "select schema_name, table_name from duckdb_tables() where database_name = current_database()"
+        ).fetchall()
+    }
+    for qualified, entry in load_catalog().items():
+        schema, _, table = qualified.rpartition(".")
+        schema = schema or "main"
+        if (schema, table) not in existing:
+            continue
+        target = f"{schema}.{table}"
+        if not all(_NAME.match(p) for p in (schema, table)):
+            raise ValueError(f"catalog.yaml: not a plain table name {qualified!r}")
+        text = f"{entry['description'].strip()} Grain: {entry['grain'].strip()}"
+        con.execute(f"comment on table {target} is {_quote(text)}")
+        columns = {c for (c,) in con.execute(
+            "select column_name from duckdb_columns() where schema_name = ? and table_name = ?",
+            [schema, table]).fetchall()}
+        for column, description in (entry.get("columns") or {}).items():
+            if column in columns:
+                con.execute(f'comment on column {target}."{column}" is {_quote(str(description))}')
+
+
+def _quote(text: str) -> str:
+    # COMMENT ON does not take bound parameters; the text comes from our own catalog file.
+    return "'" + text.replace("'", "''") + "'"
+
+
+def replace_period_rows(con: duckdb.DuckDBPyConnection, name: str, period: str, params: dict) -> int:
+    """Rebuild this period's rows of a per-period table, keeping the other periods."""
+    build_table(con, name, f"staging.{name}_new", params)
+    exists = con.execute(
+        "select count(*) from duckdb_tables() where schema_name = 'main' and table_name = ?", [name]
+    ).fetchall()[0][0]
+    if not exists:
+        con.execute(f"create table {name} as select * from staging.{name}_new")
+    else:
+        con.execute(f"delete from {name} where period = ?", [period])
+        con.execute(f"insert into {name} select * from staging.{name}_new")
+    return con.execute(f"select count(*) from staging.{name}_new").fetchall()[0][0]
+
+
+def fetch_frame(con: duckdb.DuckDBPyConnection, query: str, params: list | dict | None = None) -> pl.DataFrame:
+    """A query's result as a polars frame (through Arrow, no extra copy)."""
+    return con.sql(query, params=params).pl()

@@ -1,0 +1,49 @@
+-- int_result_versions_resolved: one row per row of result_versions, with its outcome.
+-- Rules (DEVELOPERS.md, "Statuses and duplicates"):
+--   * a row identical to an earlier row of the same source (same person, specimen, analyte, date,
+--     status, value and unit) is a duplicate, whichever file it came in;
+--   * the other rows of one result (same source + specimen + analyte; without a specimen id,
+--     same source + person + collection date + analyte) are its versions: the latest report wins
+--     (report date, then file order, then line);
+--   * the winner is accepted when final, amended or corrected; withdrawn when cancelled or
+--     entered-in-error; pending when preliminary (it waits for its final);
+--   * every earlier version is superseded: kept as history, never counted.
+with copies as (
+    select
+        v.file_id,
+        v.line_no,
+        v.status,
+        v.reported_date,
+        coalesce(
+            v.source_id || '|s|' || v.specimen_id || '|' || v.analyte,
+            v.source_id || '|p|' || v.person_key || '|' || v.collected_date::varchar || '|' || v.analyte
+        ) as version_key,
+        row_number() over (
+            partition by v.source_id, v.person_key, v.specimen_id, v.analyte, v.collected_date,
+                         v.status, v.value_text, v.reported_unit
+            order by v.file_id, v.line_no
+        ) as copy_number
+    from result_versions as v
+),
+versions as (
+    select
+        c.*,
+        row_number() over (
+            partition by c.version_key
+            order by c.reported_date desc, c.file_id desc, c.line_no desc
+        ) as recency
+    from copies as c
+    where c.copy_number = 1
+)
+select
+    c.file_id,
+    c.line_no,
+    case
+        when c.copy_number > 1 then 'duplicate'
+        when v.recency > 1 then 'superseded'
+        when c.status in ('final', 'amended', 'corrected') then 'accepted'
+        when c.status in ('cancelled', 'entered-in-error') then 'withdrawn'
+        when c.status = 'preliminary' then 'pending'
+    end as outcome
+from copies as c
+left join versions as v on v.file_id = c.file_id and v.line_no = c.line_no

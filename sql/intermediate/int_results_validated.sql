@@ -1,0 +1,90 @@
+-- int_results_validated: one row per landed row of this run, with its value in the canonical
+-- unit and the first rule it breaks (reason_code null = well-formed). The order of the CASE is
+-- the order in which rules are checked; DEVELOPERS.md lists every code.
+with converted as (
+    select
+        s.*,
+        f.factor is not null as unit_allowed,
+        s.reported_value * f.factor + f."offset" as value,
+        a.canonical_unit as unit,
+        r.min_value,
+        r.max_value,
+        (select count(*) > 0 from reference.unit_factors as u where u.unit = s.reported_unit) as unit_known,
+        year(s.collected_date) - s.birth_year as age_years
+    from stg_landed_rows as s
+    left join reference.unit_factors as f on f.analyte = s.analyte and f.unit = s.reported_unit
+    left join reference.analytes as a on a.analyte = s.analyte
+    left join reference.ranges as r on r.analyte = s.analyte
+),
+alternative as (
+    -- the value would be plausible in another unit of the same analyte: most likely mislabelled
+    select c.file_id, c.line_no, min(o.unit) as other_unit,
+           min(c.reported_value * o.factor + o."offset") as other_value
+    from converted as c
+    join reference.unit_factors as o on o.analyte = c.analyte and o.unit <> c.reported_unit
+    where c.unit_allowed
+      and not (c.value between c.min_value and c.max_value)
+      and c.reported_value * o.factor + o."offset" between c.min_value and c.max_value
+    group by c.file_id, c.line_no
+),
+judged as (
+    select
+        c.*,
+        alt.other_unit,
+        alt.other_value,
+        case
+            when c.row_fault is not null then split_part(c.row_fault, ':', 1)
+            when c.person_key is null then 'missing_person'
+            when c.loinc is null or c.analyte is null then 'unknown_test_code'
+            when c.status not in ('final', 'amended', 'corrected', 'cancelled',
+                                  'entered-in-error', 'preliminary')
+                 or c.status is null then 'unknown_status'
+            when c.collected_date is null then 'invalid_date'
+            when c.collected_date > c.reported_date then 'future_date'
+            when c.birth_year is null then 'invalid_birth_year'
+            when c.birth_year > year(c.collected_date) then 'collected_before_birth'
+            when c.age_years > 120 then 'age_over_120'
+            when c.status in ('cancelled', 'entered-in-error') then null
+            when c.reported_value is null or isnan(c.reported_value) then 'not_numeric'
+            when c.unit_text is null or trim(c.unit_text) = '' then 'unit_missing'
+            when c.reported_unit is null or not c.unit_known then 'unit_unknown'
+            when not c.unit_allowed then 'unit_incompatible'
+            when not (c.value between c.min_value and c.max_value) and alt.other_unit is not null
+                then 'implausible_for_unit'
+            when not (c.value between c.min_value and c.max_value) then 'out_of_range'
+        end as reason_code
+    from converted as c
+    left join alternative as alt on alt.file_id = c.file_id and alt.line_no = c.line_no
+)
+select
+    j.*,
+    case j.reason_code
+        when 'wrong_field_count' then 'row has ' || split_part(j.row_fault, ':', 2)
+        when 'malformed_record' then 'record is not a readable Observation: ' || split_part(j.row_fault, ':', 2)
+        when 'unknown_patient' then 'subject ' || split_part(j.row_fault, ':', 2)
+        when 'missing_person' then 'no person token on the row'
+        when 'unknown_test_code' then 'test code ' || coalesce('"' || j.test_code_text || '"', '(blank)')
+             || ' is not mapped to an analyte (add it to the source''s test_codes or analytes.yaml)'
+        when 'unknown_status' then 'status ' || coalesce('"' || j.status_text || '"', '(blank)')
+             || ' is not a FHIR Observation status (map it under status_codes)'
+        when 'invalid_date' then 'collection date ' || coalesce('"' || j.collected_text || '"', '(blank)')
+             || ' is not a valid date'
+        when 'future_date' then 'collected ' || strftime(j.collected_date, '%Y-%m-%d')
+             || ', after its report date ' || strftime(j.reported_date, '%Y-%m-%d')
+        when 'invalid_birth_year' then 'birth year ' || coalesce('"' || j.birth_year_text || '"', '(blank)')
+             || ' is not a year'
+        when 'collected_before_birth' then 'collected in ' || year(j.collected_date)::varchar
+             || ', before the birth year ' || j.birth_year::varchar
+        when 'age_over_120' then 'age at test ' || j.age_years::varchar || ' years is over 120'
+        when 'not_numeric' then 'value ' || coalesce('"' || j.value_text || '"', '(blank)') || ' is not a number'
+        when 'unit_missing' then 'no unit given for ' || j.analyte
+        when 'unit_unknown' then 'unit "' || j.unit_text || '" is not known (add a unit alias to the source config)'
+        when 'unit_incompatible' then 'unit ' || coalesce(j.reported_unit, j.unit_text) || ' cannot express '
+             || j.analyte || ' (expected one of the units in analytes.yaml)'
+        when 'implausible_for_unit' then j.analyte || ' ' || j.value_text || ' ' || j.reported_unit
+             || ' is implausible; as ' || j.other_unit || ' it would be plausible: check the unit'
+        when 'out_of_range' then j.analyte || ' ' || j.value_text || ' ' || coalesce(j.reported_unit, '')
+             || ' is outside the plausible range ' || j.min_value::varchar || '-' || j.max_value::varchar
+             || ' ' || j.unit
+    end as message
+from judged as j

@@ -1,0 +1,21 @@
+-- ingest_files: one row per input file version (the ledger). Counts are brought up to date by
+-- every run, because a later file can supersede or withdraw the rows of an earlier one.
+create table if not exists ingest_files (
+    file_id          bigint primary key,
+    source_id        varchar not null,
+    file_path        varchar not null,
+    version          integer not null,
+    sha256           varchar not null,
+    size_bytes       bigint not null,
+    status           varchar not null,
+    message          varchar,
+    rows_read        bigint not null default 0,
+    rows_accepted    bigint not null default 0,
+    rows_rejected    bigint not null default 0,
+    rows_superseded  bigint not null default 0,
+    rows_duplicate   bigint not null default 0,
+    rows_withdrawn   bigint not null default 0,
+    rows_pending     bigint not null default 0,
+    run_period       varchar not null,
+    ingested_at      timestamp not null
+);

@@ -1,0 +1,191 @@
+"""End to end: the Prefect flow on the shipped sample extracts, under one Prefect test harness.
+
+Checks the accounting (every input row in lab_results or rejected_rows, or counted superseded,
+duplicate, withdrawn or pending, exactly once), that a second run of the month changes nothing,
+and that the same measurement sent in the three lab layouts arrives with one canonical value.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import duckdb
+import pytest
+from typer.testing import CliRunner
+
+from pipeline.cli import app
+from pipeline.pseudonymise import DEMO_KEY
+
+REPO = Path(__file__).resolve().parents[2]
+SAMPLES = REPO / "sample_extracts"
+PERIOD = "2026-10"
+SOURCE_FOLDERS = ("westerfold_general_lab", "corvale_lab_chain", "fallowmere_reference_lab")
+
+pytestmark = pytest.mark.slow
+
+
+@pytest.fixture(scope="session")
+def prefect_harness():
+    from pipeline import prefect_env
+
+    prefect_env.configure()
+    from prefect.testing.utilities import prefect_test_harness
+
+    with prefect_test_harness(server_startup_timeout=180):
+        yield
+
+
+def _count_input_rows(inbox: Path) -> dict[str, int]:
+    """Rows per file, counted independently of the pipeline's readers."""
+    counts = {}
+    for path in sorted(p for d in SOURCE_FOLDERS for p in (inbox / d).rglob("*")):
+        if path.suffix == ".csv":
+            lines = [ln for ln in path.read_text(encoding="utf-8").splitlines() if ln.strip()]
+            counts[path.relative_to(inbox).as_posix()] = len(lines) - 1
+        elif path.name == "Observation.ndjson":
+            lines = [ln for ln in path.read_text(encoding="utf-8").splitlines() if ln.strip()]
+            counts[path.relative_to(inbox).as_posix()] = len(lines)
+    return counts
+
+
+def _table_dump(con: duckdb.DuckDBPyConnection, table: str, order: str) -> list[tuple]:
+    return con.execute(f"select * exclude (ingested_at) from {table} order by {order}").fetchall() \
+        if table == "ingest_files" else con.execute(f"select * from {table} order by {order}").fetchall()
+
+
+@pytest.fixture(scope="module")
+def demo_run(prefect_harness, tmp_path_factory):
+    out = tmp_path_factory.mktemp("demo_out")
+    runner = CliRunner()
+    first = runner.invoke(app, ["demo", "--out", str(out)], env={"KIDNEYSURV_PSEUDONYM_KEY": DEMO_KEY})
+    assert first.exit_code == 0, first.output
+    con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
+    yield out, first.output, con
+    con.close()
+
+
+def test_demo_prints_summary_and_writes_warehouse(demo_run):
+    out, output, _ = demo_run
+    assert "rows per source" in output
+    assert "surveillance.duckdb" in output
+    assert (out / "surveillance.duckdb").is_file()
+    assert (out / PERIOD / "district_ckd_prevalence.parquet").is_file()
+    summary = json.loads((out / PERIOD / "run_summary.json").read_text())
+    assert summary["demo_key"] is True
+
+
+def test_every_input_row_accounted_once(demo_run):
+    _, _, con = demo_run
+    expected = _count_input_rows(SAMPLES)
+    ledger = {
+        path: (read, acc, rej, sup, dup, wd, pend, status)
+        for path, read, acc, rej, sup, dup, wd, pend, status in con.execute(
+            "select file_path, rows_read, rows_accepted, rows_rejected, rows_superseded, "
+            "rows_duplicate, rows_withdrawn, rows_pending, status from ingest_files"
+        ).fetchall()
+    }
+    assert set(ledger) == set(expected)
+    for path, n in expected.items():
+        read, acc, rej, sup, dup, wd, pend, status = ledger[path]
+        assert status in ("ingested", "duplicate_file"), path
+        assert read == n, path
+        assert acc + rej + sup + dup + wd + pend == read, path
+    # row level: each (file, line) is in exactly one place
+    versions, rejected = con.execute(
+        "select (select count(*) from result_versions), (select count(*) from rejected_rows)"
+    ).fetchall()[0]
+    overlap = con.execute(
+        "select count(*) from result_versions v join rejected_rows r using (file_id, line_no)"
+    ).fetchall()[0][0]
+    assert overlap == 0
+    dup_files = con.execute(
+        "select coalesce(sum(rows_read), 0) from ingest_files where status = 'duplicate_file'"
+    ).fetchall()[0][0]
+    assert versions + rejected + dup_files == sum(expected.values())
+    accepted = con.execute("select count(*) from lab_results").fetchall()[0][0]
+    assert accepted == sum(v[1] for v in ledger.values())
+
+
+def test_no_incoming_token_in_warehouse(demo_run):
+    _, _, con = demo_run
+    token = con.execute("select count(*) from rejected_rows where raw_text like '%WF-%'").fetchall()[0][0]
+    assert token == 0
+    columns = {c for (c,) in con.execute("select column_name from duckdb_columns()").fetchall()}
+    assert "person_token" not in columns
+
+
+def test_second_run_of_the_month_changes_nothing(demo_run):
+    out, _, con = demo_run
+    before = {
+        "ingest_files": _table_dump(con, "ingest_files", "file_id"),
+        "lab_results": _table_dump(con, "lab_results", "file_id, line_no"),
+        "rejected_rows": _table_dump(con, "rejected_rows", "file_id, line_no"),
+        "person_status": _table_dump(con, "person_status", "period, person_key"),
+        "published.district_ckd_prevalence": _table_dump(
+            con, "published.district_ckd_prevalence", "period, district_code, sex, age_band"),
+    }  # fmt: skip
+    con.close()
+    again = CliRunner().invoke(app, ["demo", "--out", str(out)])
+    assert again.exit_code == 0, again.output
+    con2 = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
+    try:
+        for table, rows in before.items():
+            order = {"ingest_files": "file_id", "lab_results": "file_id, line_no",
+                     "rejected_rows": "file_id, line_no", "person_status": "period, person_key"}.get(
+                table, "period, district_code, sex, age_band")  # fmt: skip
+            assert _table_dump(con2, table, order) == rows, table
+    finally:
+        con2.close()
+
+
+THREE_LAYOUTS = {
+    "westerfold_general_lab/results_2026-01.csv": (
+        "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,"
+        "status,height_cm,reported_at,fasting\n"
+        "WF-0000aaaa,1966,F,WF01,WGH1,2026-01-10,2160-0,1.00,mg/dL,final,,2026-01-11,\n"
+    ),
+    "corvale_lab_chain/export_202601.csv": (
+        "PatientRef;YearOfBirth;Gender;AreaCode;SampleNo;SampleDate;TestCode;Result;Units;State;ReportDate\n"
+        "WF-0000aaaa;1966;F;WF01;CV-1;10/01/2026;CREA;88,4;µmol/l;F;11/01/2026\n"
+    ),
+    "fallowmere_reference_lab/2026-01/Patient.ndjson": (
+        '{"resourceType":"Patient","id":"fr-1","identifier":[{"system":"urn:westerfold:linkage-token",'
+        '"value":"WF-0000aaaa"}],"gender":"female","birthDate":"1966","address":[{"district":"Alderbank"}]}\n'
+    ),
+    "fallowmere_reference_lab/2026-01/Observation.ndjson": (
+        '{"resourceType":"Observation","id":"o1","status":"final","code":{"coding":[{"system":'
+        '"http://loinc.org","code":"14682-9"}]},"subject":{"reference":"Patient/fr-1"},"specimen":'
+        '{"reference":"Specimen/FR1"},"effectiveDateTime":"2026-01-10","issued":"2026-01-11",'
+        '"valueQuantity":{"value":88.4,"unit":"umol/L","system":"http://unitsofmeasure.org","code":"umol/L"}}\n'
+    ),
+}
+
+
+def test_same_measurement_in_three_layouts_gives_one_canonical_value(prefect_harness, tmp_path):
+    """88.4 µmol/L = 1.00 mg/dL (1 mg/dL = 88.4 µmol/L; REFERENCES.md, confirmed)."""
+    from pipeline.flows import monthly_surveillance
+
+    inbox = tmp_path / "inbox"
+    for rel, text in THREE_LAYOUTS.items():
+        path = inbox / rel
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(text, encoding="utf-8")
+    out = tmp_path / "out"
+    monthly_surveillance(period="2026-01", config_dir=str(REPO / "config"), inbox=str(inbox),
+                         out=str(out), demo=True)  # fmt: skip
+    con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
+    try:
+        rows = con.execute(
+            "select source_id, value, unit, count(distinct person_key) over () from lab_results "
+            "where analyte = 'creatinine' order by source_id"
+        ).fetchall()
+        egfr = con.execute("select distinct round(egfr, 9) from kidney_measures").fetchall()
+    finally:
+        con.close()
+    assert [r[0] for r in rows] == sorted(s.split("/")[0] for s in THREE_LAYOUTS if "Patient" not in s)
+    assert {(round(v, 9), u) for _, v, u, _ in rows} == {(1.0, "mg/dL")}
+    assert rows[0][3] == 1  # one person: the shared linkage token links the three labs
+    assert len(egfr) == 1
+    shutil.rmtree(out)
