@@ -16,7 +16,7 @@ from rich.console import Console
 from rich.table import Table
 
 from pipeline.periods import Period
-from pipeline.pseudonymise import KeyMissing
+from pipeline.pseudonymise import KeyMissing, resolve_key
 from pipeline.settings import ConfigError, load_settings
 
 app = typer.Typer(
@@ -52,6 +52,19 @@ def _print_summary(summary: dict, out: Path) -> None:
         table.add_row(source, *(f"{counts.get(c, 0):,}" for c in cols))
     console.print(table)
     console.print(f"  persons with results up to {summary['period']}: {summary['persons']:,}")
+    h = summary.get("headline", {})
+    if h.get("persons_tested_12m") is not None:
+        share = h.get("ckd_share_of_tested")
+        console.print(
+            f"  tested in the last 12 months: {h['persons_tested_12m']:,}; confirmed CKD: "
+            f"{h.get('persons_confirmed_ckd') or 0:,}" + (f" ({share:.1%} of tested)" if share is not None else "")
+        )
+    if h.get("persons_with_diabetes") is not None:
+        share = h.get("diabetes_share_with_both")
+        console.print(
+            f"  people with diabetes: {h['persons_with_diabetes']:,}; with both eGFR and ACR in 12 months: "
+            f"{h.get('diabetes_with_egfr_and_acr') or 0:,}" + (f" ({share:.1%})" if share is not None else "")
+        )
     for path, message in summary["held_back_files"].items():
         console.print(f"  [yellow]held back file[/] {path}: {message}")
     for source, message in summary["held_back_sources"].items():
@@ -70,6 +83,10 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
         _fail(str(exc))
     if not inbox.is_dir():
         _fail(f"{inbox}: inbox folder not found")
+    try:
+        resolve_key(demo=demo)  # before Prefect starts: a missing key is a usage error
+    except KeyMissing as exc:
+        _fail(str(exc))
     from pipeline import prefect_env
 
     prefect_env.configure(verbose=verbose)

@@ -137,6 +137,27 @@ def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
     return _stage(run_id, "export", work)
 
 
+def headline(ctx: RunContext) -> dict[str, Any]:
+    """All-district headline numbers from the published (suppressed) tables."""
+    prevalence = ctx.con.execute(
+        "select persons_tested, persons_ckd, ckd_share_of_tested from published.district_ckd_prevalence "
+        "where period = ? and district_code = 'ALL' and sex = 'ALL' and age_band = 'ALL'",
+        [ctx.period.label],
+    ).fetchall()
+    coverage = ctx.con.execute(
+        "select persons_with_diabetes, with_egfr_and_acr, share_with_both "
+        "from published.district_screening_coverage where period = ? and district_code = 'ALL'",
+        [ctx.period.label],
+    ).fetchall()
+    out: dict[str, Any] = {}
+    if prevalence:
+        out.update(zip(("persons_tested_12m", "persons_confirmed_ckd", "ckd_share_of_tested"), prevalence[0]))
+    if coverage:
+        out.update(zip(("persons_with_diabetes", "diabetes_with_egfr_and_acr", "diabetes_share_with_both"),
+                       coverage[0]))  # fmt: skip
+    return out
+
+
 def _quiet(name: str, seconds: float, text: str) -> None:
     pass
 
@@ -196,6 +217,7 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
         "held_back_sources": validate["held_back_sources"],
         "held_back_files": dict(ingest["held_back_files"]),
         "persons": link["persons"],
+        "headline": headline(ctx),
     }
     call(export_task, run_id, summary)
     return summary

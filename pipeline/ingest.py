@@ -201,7 +201,7 @@ def _to_landed(frame: pl.DataFrame, source: SourceConfig, item: InboxFile) -> pl
     value = pl.col("value")
     clean = value
     if source.thousands_separator:
-        clean = clean.str.replace_all(re.escape(source.thousands_separator), "", literal=True)
+        clean = clean.str.replace_all(source.thousands_separator, "", literal=True)
     if source.decimal_mark == ",":
         clean = clean.str.replace_all(",", ".", literal=True)
 

@@ -1,0 +1,84 @@
+"""The command line: help, exit codes, `sources check` on every configured source's samples."""
+
+from __future__ import annotations
+
+import shutil
+from pathlib import Path
+
+import pytest
+from typer.testing import CliRunner
+
+from pipeline.cli import app
+from pipeline.settings import load_settings
+
+REPO = Path(__file__).resolve().parents[2]
+SETTINGS = load_settings(REPO / "config")
+runner = CliRunner()
+
+
+def test_help_lists_the_commands():
+    result = runner.invoke(app, ["--help"])
+    assert result.exit_code == 0
+    for command in ("run", "demo", "sources"):
+        assert command in result.output
+
+
+@pytest.mark.parametrize("source", SETTINGS.sources, ids=lambda s: s.id)
+def test_every_source_has_samples_that_read_cleanly(source):
+    """A new source is one YAML file plus samples: picked up here by glob, no new test code."""
+    files = sorted((REPO / "sample_extracts" / source.folder).glob(source.file_glob))
+    assert files, f"no sample extract for {source.id}"
+    result = runner.invoke(app, ["sources", "check", source.id, str(files[0]),
+                                 "--config", str(REPO / "config")])  # fmt: skip
+    assert result.exit_code == 0, result.output
+    assert "rows read" in result.output and "accepted" in result.output
+
+
+def test_sources_check_shows_reasons_with_file_and_line(tmp_path):
+    path = tmp_path / "results_2026-01.csv"
+    path.write_text(
+        "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status\n"
+        "T1,1960,F,WF01,S1,2026-01-10,2160-0,see note,mg/dL,final\n"
+        "T2,1960,F,WF01,S2,2026-01-10,2160-0,1.0,mg/dL,final\n",
+        encoding="utf-8",
+    )
+    result = runner.invoke(app, ["sources", "check", "westerfold_general_lab", str(path),
+                                 "--config", str(REPO / "config")])  # fmt: skip
+    assert result.exit_code == 0, result.output
+    assert "not_numeric" in result.output
+    assert f"{path}:2:" in result.output
+
+
+def test_sources_check_names_a_whole_file_fault(tmp_path):
+    path = tmp_path / "bad.csv"
+    path.write_text("person_token;birth_year\nT1;1960\n", encoding="utf-8")
+    result = runner.invoke(app, ["sources", "check", "westerfold_general_lab", str(path),
+                                 "--config", str(REPO / "config")])  # fmt: skip
+    assert result.exit_code == 1
+    assert "bad.csv" in result.output and "delimiter" in result.output
+
+
+def test_bad_period_is_a_usage_error():
+    result = runner.invoke(app, ["run", "--period", "2026-13", "--config", str(REPO / "config")])
+    assert result.exit_code == 2
+    assert "YYYY-MM" in result.output
+
+
+def test_run_without_key_refuses_to_start(tmp_path, monkeypatch):
+    monkeypatch.delenv("KIDNEYSURV_PSEUDONYM_KEY", raising=False)
+    result = runner.invoke(app, ["run", "--period", "2026-10", "--config", str(REPO / "config"),
+                                 "--inbox", str(REPO / "sample_extracts"), "--out", str(tmp_path)])
+    assert result.exit_code == 2
+    assert "KIDNEYSURV_PSEUDONYM_KEY" in result.output
+    assert not (tmp_path / "surveillance.duckdb").exists()
+
+
+def test_config_error_names_file_and_key_without_traceback(tmp_path):
+    config = tmp_path / "config"
+    shutil.copytree(REPO / "config", config)
+    bad = config / "sources" / "westerfold_general_lab.yaml"
+    bad.write_text(bad.read_text() + "delimeter: ';'\n")
+    result = runner.invoke(app, ["run", "--period", "2026-10", "--config", str(config)])
+    assert result.exit_code == 2
+    assert "westerfold_general_lab.yaml" in result.output and "delimeter" in result.output
+    assert "Traceback" not in result.output
