@@ -192,8 +192,7 @@ def monthly_surveillance(period: str, config_dir: str = "config", inbox: str = "
     try:
         return run_stages(run_id)
     finally:
-        stages = finish_run(run_id)
-        _LAST[0] = stages
+        finish_run(run_id)
 
 
 def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
@@ -235,4 +234,3 @@ def run_month_plain(period: str, config_dir: str, inbox: str, out: str, demo: bo
 
 # The CLI sets the console reporter; kept out of the flow's parameters (not serialisable).
 _REPORTER: list[Callable[[str, float, str], None]] = [_quiet]
-_LAST: list[dict[str, Any]] = [{}]

@@ -36,6 +36,7 @@ LANDED_COLUMNS = [
 
 CHUNK_ROWS = 200_000
 _MASK = "[person]"
+_PATIENT_REF = re.compile(r"Patient/[^\"\s,}]+")
 
 
 class FileFault(Exception):
@@ -73,13 +74,16 @@ def sha256_of(path: Path) -> str:
 
 def scan_inbox(con: duckdb.DuckDBPyConnection | None, settings: Settings, inbox: Path) -> list[InboxFile]:
     """List every file of every source, in a stable order, marked new or already ingested."""
-    seen: dict[tuple[str, str], str] = {}  # (source, sha) -> path already ingested
+    seen: dict[tuple[str, str], str] = {}  # (source, sha) -> path first ingested with it
+    recorded: set[tuple[str, str, str]] = set()  # (source, sha, path) already in the ledger
     if con is not None:
-        for source_id, sha, path in con.execute(
-            "select source_id, sha256, file_path from ingest_files "
+        for source_id, sha, path, status in con.execute(
+            "select source_id, sha256, file_path, status from ingest_files "
             "where status in ('ingested', 'duplicate_file') order by file_id"
         ).fetchall():
-            seen.setdefault((source_id, sha), path)
+            recorded.add((source_id, sha, path))
+            if status == "ingested":
+                seen.setdefault((source_id, sha), path)
     found: list[InboxFile] = []
     for source in settings.sources:
         folder = inbox / source.folder
@@ -92,7 +96,7 @@ def scan_inbox(con: duckdb.DuckDBPyConnection | None, settings: Settings, inbox:
             sha = sha256_of(path)
             item = InboxFile(source.id, path, rel, sha, path.stat().st_size)
             earlier = seen.get((source.id, sha))
-            if earlier == rel:
+            if (source.id, sha, rel) in recorded:
                 item.status = "already_ingested"
             elif earlier is not None:
                 item.status, item.same_as = "duplicate_file", earlier
@@ -299,7 +303,7 @@ def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) 
                 raise ValueError("not an Observation resource")
         except (json.JSONDecodeError, ValueError) as exc:
             rec["row_fault"] = f"malformed_record:{getattr(exc, 'msg', str(exc))}"
-            rec["raw_text"] = line[:2000]
+            rec["raw_text"] = _PATIENT_REF.sub(_MASK, line[:2000])
             for f, v in rec.items():
                 rows[f].append(v)
             continue
@@ -312,7 +316,7 @@ def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) 
             rec["district_code"] = by_name.get(name.casefold(), name)
         elif subject:
             rec["row_fault"] = f"unknown_patient:{subject} is not in Patient.ndjson"
-        rec["raw_text"] = raw.replace(subject, _MASK) if subject else raw
+        rec["raw_text"] = _PATIENT_REF.sub(_MASK, raw)
         if patient is not None and patient["person_token"] in rec["raw_text"]:
             rec["raw_text"] = rec["raw_text"].replace(patient["person_token"], _MASK)
         codings = (res.get("code") or {}).get("coding") or []
@@ -417,15 +421,26 @@ def land_inbox(
         source = settings.source(item.source_id)
         item.file_id = next_id
         next_id += 1
+        # a file held back earlier is tried again: its old ledger row (no rows stored) goes
+        con.execute(
+            "delete from ingest_files where source_id = ? and file_path = ? and sha256 = ? "
+            "and status = 'held_back'",
+            [item.source_id, item.rel_path, item.sha256],
+        )
         version = con.execute(
-            "select count(*) + 1 from ingest_files where source_id = ? and file_path = ?",
+            "select count(distinct sha256) + 1 from ingest_files where source_id = ? and file_path = ?",
             [item.source_id, item.rel_path],
         ).fetchall()[0][0]
         status, message, rows_read = "ingested", None, 0
         if item.status == "duplicate_file":
             status = "duplicate_file"
             message = f"same content as {item.same_as}, already ingested; every row counted as duplicate"
-            rows_read = count_rows(item, source)
+            original = con.execute(
+                "select rows_read from ingest_files where source_id = ? and sha256 = ? "
+                "and status = 'ingested' order by file_id limit 1",
+                [item.source_id, item.sha256],
+            ).fetchall()
+            rows_read = original[0][0] if original else count_rows(item, source)
             summary.files_skipped += 1
         else:
             try:

@@ -182,7 +182,9 @@ def replace_period_rows(con: duckdb.DuckDBPyConnection, name: str, period: str, 
     else:
         con.execute(f"delete from {name} where period = ?", [period])
         con.execute(f"insert into {name} select * from staging.{name}_new")
-    return con.execute(f"select count(*) from staging.{name}_new").fetchall()[0][0]
+    rows = con.execute(f"select count(*) from staging.{name}_new").fetchall()[0][0]
+    con.execute(f"drop table staging.{name}_new")
+    return rows
 
 
 def fetch_frame(con: duckdb.DuckDBPyConnection, query: str, params: list | dict | None = None) -> pl.DataFrame:

@@ -29,7 +29,9 @@ in_scope as (
     select r.rule_id, r.event_type, r.threshold, r.min_span_days,
            d.person_key, d.day, d.value, b.baseline_egfr,
            case r.comparison
-               when 'at_or_below_fraction_of_baseline' then d.value <= (1 - r.threshold) * b.baseline_egfr
+               when 'at_or_below_fraction_of_baseline'
+                   -- 1e-9: (1 - 0.3) x 90 is 62.99999999999999 in binary floating point
+                   then d.value <= (1 - r.threshold) * b.baseline_egfr + 1e-9
                when 'below' then d.value < r.threshold
                when 'at_or_above' then d.value >= r.threshold
            end as qualifies

@@ -1,0 +1,100 @@
+"""Shared fixtures: a small copy of the config, tiny inboxes, and a helper that runs one month.
+
+Every test that writes files works under pytest's ``tmp_path``; nothing is written into the
+working tree. ``small_config`` does not depend on ``config/regions/`` (another part of the
+project ships it): it writes its own four-district region.
+"""
+
+from __future__ import annotations
+
+import shutil
+import sys
+from pathlib import Path
+
+import duckdb
+import pytest
+import yaml
+
+ROOT = Path(__file__).resolve().parent.parent
+if str(ROOT) not in sys.path:  # the project is importable from the repo root
+    sys.path.insert(0, str(ROOT))
+
+CONFIG_DIR = ROOT / "config"
+FIXTURES = Path(__file__).resolve().parent / "fixtures"
+
+#: The small region of every unit test (invented names in the fictional region Westerfold).
+SMALL_DISTRICTS = {"WF01": "Alderbank", "WF02": "Brimcote", "WF03": "Corvale", "WF04": "Dunfarrow"}
+#: The 18 five-year bands 0-4 .. 85+ of config/pipeline.yaml (summaries.age_bands).
+AGE_BANDS = [f"{low}-{low + 4}" for low in range(0, 85, 5)] + ["85+"]
+
+
+def write_region(config_dir: Path, population: int = 100) -> None:
+    """Write districts.csv (WF01..WF04) and population.csv (every band, F and M) under regions/."""
+    regions = config_dir / "regions"
+    shutil.rmtree(regions, ignore_errors=True)
+    regions.mkdir(parents=True)
+    lines = ["district_code,district_name"] + [f"{c},{n}" for c, n in SMALL_DISTRICTS.items()]
+    (regions / "districts.csv").write_text("\n".join(lines) + "\n", encoding="utf-8")
+    rows = ["district_code,sex,age_band,population"]
+    for code in SMALL_DISTRICTS:
+        for sex in ("F", "M"):
+            rows += [f"{code},{sex},{band},{population}" for band in AGE_BANDS]
+    (regions / "population.csv").write_text("\n".join(rows) + "\n", encoding="utf-8")
+
+
+def edit_pipeline_yaml(config_dir: Path, section: str, key: str, value: object) -> None:
+    """Set one key of config_dir/pipeline.yaml (comments are lost; the copy is throw-away)."""
+    path = config_dir / "pipeline.yaml"
+    data = yaml.safe_load(path.read_text(encoding="utf-8"))
+    data.setdefault(section, {})[key] = value
+    path.write_text(yaml.safe_dump(data, sort_keys=False, allow_unicode=True), encoding="utf-8")
+
+
+def make_small_config(target: Path, max_rejection_rate: float = 1.0) -> Path:
+    """Copy config/ to ``target`` with the small region and the given rejection gate."""
+    shutil.copytree(CONFIG_DIR, target, ignore=shutil.ignore_patterns("regions"))
+    write_region(target)
+    edit_pipeline_yaml(target, "quality_gate", "max_rejection_rate", max_rejection_rate)
+    return target
+
+
+@pytest.fixture
+def small_config(tmp_path: Path) -> Path:
+    """A copy of config/ with a four-district region and the quality gate off (rate 1.0)."""
+    return make_small_config(tmp_path / "config")
+
+
+def write_inbox(tmp_path: Path, files: dict[str, str | bytes], name: str = "inbox") -> Path:
+    """Write ``{relative path: content}`` under ``tmp_path/name``; return the inbox folder.
+
+    ``str`` content is written as UTF-8 exactly as given (no newline added); ``bytes`` as is.
+    """
+    inbox = tmp_path / name
+    inbox.mkdir(parents=True, exist_ok=True)
+    for rel, content in files.items():
+        path = inbox / rel
+        path.parent.mkdir(parents=True, exist_ok=True)
+        if isinstance(content, bytes):
+            path.write_bytes(content)
+        else:
+            path.write_text(content, encoding="utf-8", newline="")
+    return inbox
+
+
+def run_month(
+    config_dir: Path, inbox: Path, out: Path, period: str = "2026-01"
+) -> duckdb.DuckDBPyConnection:
+    """Run the month without Prefect (demo key) and open ``<out>/surveillance.duckdb`` read-only.
+
+    Close the connection (``with run_month(...) as con:``) before running into the same ``out``
+    again: DuckDB refuses a read-write connection to a file open read-only in the same process.
+    """
+    from pipeline.flows import run_month_plain
+
+    run_month_plain(period, str(config_dir), str(inbox), str(out), demo=True)
+    return duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
+
+
+def rows(con: duckdb.DuckDBPyConnection, query: str, params: list | None = None) -> list[tuple]:
+    """All rows of a query (always fetchall: a half-read result blocks the next ``con.sql``)."""
+    return con.execute(query, params or []).fetchall()

@@ -1,0 +1,235 @@
+"""Tests for the link stage's SQL (int_daily_values_averaged.sql, kidney_events.sql) on crafted
+daily eGFR and ACR trajectories inserted straight into ``kidney_measures``.
+
+Outside references: sustained 30 % / 40 % eGFR decline endpoints (Levey et al., AJKD
+2014;64:821); kidney failure = GFR category G5, below 15 (KDIGO 2012); CKD = eGFR below 60 or
+ACR at or above 30 mg/g present for more than 3 months (KDIGO 2012). The 28-day and 90-day spans
+and the 90-day baseline window are the project's settings (config/pipeline.yaml)."""
+
+from __future__ import annotations
+
+import datetime as dt
+from pathlib import Path
+
+import pytest
+
+from pipeline.linkage import trajectory_rules
+from pipeline.settings import load_settings
+from pipeline.warehouse import build_table, connect, load_reference_tables
+from tests.conftest import rows
+
+DAY0 = dt.date(2025, 1, 1)
+PERIOD, PERIOD_END = "2025-12", dt.date(2025, 12, 31)
+BASELINE_WINDOW = 90
+
+
+@pytest.fixture(scope="module")
+def settings(tmp_path_factory):
+    from tests.conftest import make_small_config
+
+    return load_settings(make_small_config(tmp_path_factory.mktemp("link") / "config"))
+
+
+@pytest.fixture
+def warehouse(settings):
+    con = connect(":memory:")
+    load_reference_tables(con, settings)
+    con.register("_rules", trajectory_rules(settings).to_arrow())
+    con.execute("create or replace table reference.trajectory_rules as select * from _rules")
+    con.unregister("_rules")
+    con.execute(
+        """
+        create table kidney_measures (
+            person_key varchar, collected_date date, reported_date date, analyte varchar,
+            egfr double, acr_mg_g double, is_acr_estimated boolean
+        )
+        """
+    )
+    yield con
+    con.close()
+
+
+def day(offset: int) -> dt.date:
+    return DAY0 + dt.timedelta(days=offset)
+
+
+def insert(con, person: str, egfr: list[tuple[int, float]] = (), acr: list[tuple[int, float]] = (),
+           estimated_acr: bool = False, reported_lag: int = 1) -> None:  # fmt: skip
+    for offset, value in egfr:
+        con.execute(
+            "insert into kidney_measures values (?, ?, ?, 'creatinine', ?, null, null)",
+            [person, day(offset), day(offset + reported_lag), value],
+        )
+    for offset, value in acr:
+        con.execute(
+            "insert into kidney_measures values (?, ?, ?, 'acr', null, ?, ?)",
+            [person, day(offset), day(offset + reported_lag), value, estimated_acr],
+        )
+
+
+def build(con, period_end: dt.date = PERIOD_END) -> dict[tuple[str, str], dict]:
+    build_table(con, "int_daily_values_averaged", params={"period_end": period_end})
+    build_table(con, "kidney_events", params={"period": PERIOD, "baseline_window_days": BASELINE_WINDOW})
+    frame = con.sql("select * from kidney_events").pl()
+    return {(r["person_key"], r["rule_id"]): r for r in frame.iter_rows(named=True)}
+
+
+def status(events: dict, person: str, rule: str) -> str | None:
+    event = events.get((person, rule))
+    return event["event_status"] if event else None
+
+
+BASE = [(0, 100.0)]  # one baseline value: baseline eGFR 100
+
+
+# --------------------------------------------------------------------------- sustained decline
+
+
+def test_decline_confirmed_at_exactly_28_days(warehouse):
+    insert(warehouse, "p", BASE + [(100, 60.0), (128, 60.0)])
+    event = build(warehouse)[("p", "sustained_decline_40")]
+    assert event["event_status"] == "confirmed"
+    assert event["baseline_egfr"] == 100.0
+    assert event["event_date"] == day(100)
+    assert event["confirmation_date"] == day(128)
+    assert event["n_values"] == 2
+
+
+def test_decline_27_days_is_pending_when_latest(warehouse):
+    insert(warehouse, "p", BASE + [(100, 60.0), (127, 60.0)])
+    event = build(warehouse)[("p", "sustained_decline_40")]
+    assert event["event_status"] == "pending" and event["confirmation_date"] is None
+
+
+def test_decline_27_days_then_recovered_is_no_event(warehouse):
+    insert(warehouse, "p", BASE + [(100, 60.0), (127, 60.0), (140, 95.0)])
+    assert status(build(warehouse), "p", "sustained_decline_40") is None
+
+
+def test_exactly_at_fraction_of_baseline_counts_just_above_does_not(warehouse):
+    insert(warehouse, "at", BASE + [(100, 60.0), (128, 60.0)])  # (1 - 0.40) x 100
+    insert(warehouse, "above", BASE + [(100, 60.1), (128, 60.1)])
+    events = build(warehouse)
+    assert status(events, "at", "sustained_decline_40") == "confirmed"
+    assert status(events, "above", "sustained_decline_40") is None
+    assert status(events, "above", "sustained_decline_30") == "confirmed"  # 60.1 <= 70
+
+
+@pytest.mark.parametrize(("baseline", "at_threshold", "rule"), [
+    (90.0, 63.0, "sustained_decline_30"),
+    (101.0, 60.6, "sustained_decline_40"),
+])  # fmt: skip
+def test_exactly_at_fraction_of_other_baselines_counts(warehouse, baseline, at_threshold, rule):
+    insert(warehouse, "p", [(0, baseline), (100, at_threshold), (128, at_threshold)])
+    assert status(build(warehouse), "p", rule) == "confirmed"
+
+
+def test_recovery_between_low_values_breaks_the_run(warehouse):
+    insert(warehouse, "broken", BASE + [(100, 55.0), (115, 80.0), (130, 55.0)])
+    insert(warehouse, "unbroken", BASE + [(100, 55.0), (130, 55.0)])
+    events = build(warehouse)
+    assert status(events, "unbroken", "sustained_decline_40") == "confirmed"
+    # neither low run spans 28 days; the last one is the latest value, so it may still confirm
+    assert status(events, "broken", "sustained_decline_40") == "pending"
+    assert events[("broken", "sustained_decline_40")]["event_date"] == day(130)
+
+
+def test_low_values_inside_baseline_window_do_not_count(warehouse):
+    # ten values of 100 then two of 50 within the 90-day window: baseline (1000 + 100) / 12 = 91.7;
+    # 50 is below 0.6 x 91.7 = 55 and the two span 29 days, but they are baseline, not decline
+    insert(warehouse, "p", [(d, 100.0) for d in range(10)] + [(60, 50.0), (89, 50.0), (120, 95.0)])
+    events = build(warehouse)
+    assert status(events, "p", "sustained_decline_40") is None
+    assert status(events, "p", "sustained_decline_30") is None
+
+
+def test_baseline_is_the_mean_of_the_window(warehouse):
+    insert(warehouse, "p", [(0, 100.0), (90, 80.0), (91, 40.0), (120, 40.0)])  # day 90 is inside
+    event = build(warehouse)[("p", "sustained_decline_40")]
+    assert event["baseline_egfr"] == 90.0 and event["event_status"] == "confirmed"
+
+
+def test_several_results_on_one_day_are_averaged(warehouse):
+    insert(warehouse, "p", BASE + [(100, 50.0), (100, 70.0), (128, 60.0)])
+    events = build(warehouse)
+    daily = rows(warehouse, "select day, value, n_results from int_daily_values_averaged "
+                            "where person_key = 'p' and measure = 'egfr' order by day")  # fmt: skip
+    assert daily == [(day(0), 100.0, 1), (day(100), 60.0, 2), (day(128), 60.0, 1)]
+    # the day's mean (60), not its lowest value (50), meets the 40 % rule
+    event = events[("p", "sustained_decline_40")]
+    assert event["event_status"] == "confirmed" and event["run_values"] == [60.0, 60.0]
+
+
+# --------------------------------------------------------------------------- kidney failure, CKD
+
+
+def test_kidney_failure_below_15_for_28_days(warehouse):
+    insert(warehouse, "g5", [(0, 14.0), (28, 14.0)])
+    insert(warehouse, "at15", [(0, 15.0), (28, 15.0)])  # 15 is G4, not G5 (KDIGO 2012)
+    insert(warehouse, "short", [(0, 14.0), (27, 14.0)])
+    events = build(warehouse)
+    assert status(events, "g5", "kidney_failure") == "confirmed"
+    assert events[("g5", "kidney_failure")]["confirmation_date"] == day(28)
+    assert status(events, "at15", "kidney_failure") is None
+    assert status(events, "short", "kidney_failure") == "pending"
+
+
+def test_ckd_egfr_below_60_for_90_days(warehouse):
+    insert(warehouse, "ckd", [(0, 59.0), (45, 58.0), (90, 59.0)])
+    insert(warehouse, "at60", [(0, 60.0), (90, 60.0)])  # 60 is G2 (KDIGO 2012)
+    insert(warehouse, "short", [(0, 59.0), (89, 59.0)])
+    events = build(warehouse)
+    event = events[("ckd", "ckd_egfr")]
+    assert event["event_status"] == "confirmed"
+    assert (event["event_date"], event["confirmation_date"]) == (day(0), day(90))
+    assert status(events, "at60", "ckd_egfr") is None
+    assert status(events, "short", "ckd_egfr") == "pending"
+
+
+def test_ckd_acr_at_or_above_30_for_90_days(warehouse):
+    insert(warehouse, "a2", acr=[(0, 30.0), (90, 45.0)])  # 30 mg/g is A2 (KDIGO 2012)
+    insert(warehouse, "a1", acr=[(0, 29.9), (90, 29.9)])
+    insert(warehouse, "estimated", acr=[(0, 300.0), (90, 300.0)], estimated_acr=True)
+    events = build(warehouse)
+    assert status(events, "a2", "ckd_acr") == "confirmed"
+    assert status(events, "a1", "ckd_acr") is None
+    # ACR estimated from a protein ratio stays out (project decision 4)
+    assert not any(p == "estimated" for p, _ in events)
+
+
+def test_single_value_has_no_confirmed_event(warehouse):
+    insert(warehouse, "p", [(0, 10.0)])
+    events = build(warehouse)
+    assert all(e["event_status"] != "confirmed" for e in events.values())
+    assert status(events, "p", "kidney_failure") == "pending"
+
+
+def test_values_after_the_period_end_wait(warehouse):
+    insert(warehouse, "late_collected", [(0, 14.0), (40, 14.0)])
+    insert(warehouse, "late_reported", [(0, 14.0)])
+    insert(warehouse, "late_reported", [(30, 14.0)], reported_lag=20)
+    events = build(warehouse, period_end=day(35))
+    assert status(events, "late_collected", "kidney_failure") == "pending"
+    assert status(events, "late_reported", "kidney_failure") == "pending"
+    events = build(warehouse, period_end=day(60))
+    assert status(events, "late_collected", "kidney_failure") == "confirmed"
+    assert status(events, "late_reported", "kidney_failure") == "confirmed"
+
+
+def test_rules_follow_the_settings(settings):
+    rules = trajectory_rules(settings)
+    by_id = {r["rule_id"]: r for r in rules.iter_rows(named=True)}
+    assert set(by_id) == {"sustained_decline_30", "sustained_decline_40", "sustained_decline_57",
+                          "kidney_failure", "ckd_egfr", "ckd_acr"}  # fmt: skip
+    assert by_id["sustained_decline_40"]["threshold"] == 0.40
+    assert by_id["sustained_decline_40"]["after_baseline"] is True
+    assert by_id["ckd_egfr"]["min_span_days"] == 90
+
+
+def test_file_warehouse_works_too(settings, tmp_path: Path):
+    con = connect(tmp_path / "w.duckdb")
+    try:
+        load_reference_tables(con, settings)
+        assert rows(con, "select count(*) from reference.districts") == [(4,)]
+    finally:
+        con.close()
