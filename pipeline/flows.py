@@ -112,9 +112,9 @@ def link_task(run_id: str) -> dict[str, Any]:
 def summarise_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         counts = summarise_stage(ctx.con, ctx.settings, ctx.period)
-        counts.update({f"published {k}": v for k, v in
-                       disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period).items()})
-        return counts
+        published = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period)
+        return {"tables": len(counts), "rows": sum(counts.values()),
+                "published rows": sum(published.values()), "by_table": counts}  # fmt: skip
 
     return _stage(run_id, "summarise", work)
 
