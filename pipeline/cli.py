@@ -92,7 +92,7 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
     prefect_env.configure(verbose=verbose)
     from pipeline import flows
 
-    flows._REPORTER[0] = _stage_line
+    flows.set_reporter(_stage_line)
     console.print(f"kidneysurv: monthly run for {period} ({len(settings.sources)} sources, inbox {inbox})")
     started = time.perf_counter()
     try:

@@ -188,7 +188,7 @@ def finish_run(run_id: str) -> dict[str, Any]:
 def monthly_surveillance(period: str, config_dir: str = "config", inbox: str = "sample_extracts",
                          out: str = "out", demo: bool = False) -> dict[str, Any]:
     """Ingest what is new, validate, measure, link, summarise and publish one month."""
-    run_id = start_run(period, config_dir, inbox, out, demo, report=_REPORTER[0])
+    run_id = start_run(period, config_dir, inbox, out, demo, report=_reporter)
     try:
         return run_stages(run_id)
     finally:
@@ -232,5 +232,12 @@ def run_month_plain(period: str, config_dir: str, inbox: str, out: str, demo: bo
         finish_run(run_id)
 
 
-# The CLI sets the console reporter; kept out of the flow's parameters (not serialisable).
-_REPORTER: list[Callable[[str, float, str], None]] = [_quiet]
+# The console reporter of the flow: kept out of the flow's parameters (a function is not a
+# parameter Prefect can record); the CLI sets it with set_reporter.
+_reporter: Callable[[str, float, str], None] = _quiet
+
+
+def set_reporter(report: Callable[[str, float, str], None]) -> None:
+    """Where the flow writes its one line per stage."""
+    global _reporter
+    _reporter = report

@@ -158,7 +158,9 @@ def read_delimited(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
     index = {f: header.index(c) for f, c in wanted.items() if c in header}
     token_idx = index["person_token"]
     n_fields = len(header)
-    lines = text.splitlines()
+    # the csv reader counts a line at \r\n, \n or \r only (str.splitlines would also split at
+    # form feeds and Unicode separators and put raw text and line numbers out of step)
+    lines = re.split(r"\r\n|\n|\r", text)
     columns: dict[str, list] = {f: [] for f in ("line_no", "raw_text", "row_fault", *index)}
     chunks: list[pl.DataFrame] = []
 

@@ -9,12 +9,18 @@ with converted as (
         a.canonical_unit as unit,
         r.min_value,
         r.max_value,
-        (select count(*) > 0 from reference.unit_factors as u where u.unit = s.reported_unit) as unit_known,
+        k.unit is not null as unit_known,
+        a.allowed_units,
         year(s.collected_date) - s.birth_year as age_years
     from stg_landed_rows as s
     left join reference.unit_factors as f on f.analyte = s.analyte and f.unit = s.reported_unit
-    left join reference.analytes as a on a.analyte = s.analyte
+    left join (
+        select a.analyte, a.canonical_unit, string_agg(u.unit, ', ' order by u.unit) as allowed_units
+        from reference.analytes as a join reference.unit_factors as u on u.analyte = a.analyte
+        group by a.analyte, a.canonical_unit
+    ) as a on a.analyte = s.analyte
     left join reference.ranges as r on r.analyte = s.analyte
+    left join (select distinct unit from reference.unit_factors) as k on k.unit = s.reported_unit
 ),
 alternative as (
     -- the value would be plausible in another unit of the same analyte: most likely mislabelled
@@ -80,7 +86,7 @@ select
         when 'unit_missing' then 'no unit given for ' || j.analyte
         when 'unit_unknown' then 'unit "' || j.unit_text || '" is not known (add a unit alias to the source config)'
         when 'unit_incompatible' then 'unit ' || coalesce(j.reported_unit, j.unit_text) || ' cannot express '
-             || j.analyte || ' (expected one of the units in analytes.yaml)'
+             || j.analyte || ' (expected ' || j.allowed_units || ')'
         when 'implausible_for_unit' then j.analyte || ' ' || j.value_text || ' ' || j.reported_unit
              || ' is implausible; as ' || j.other_unit || ' it would be plausible: check the unit'
         when 'out_of_range' then j.analyte || ' ' || j.value_text || ' ' || coalesce(j.reported_unit, '')

@@ -50,9 +50,22 @@ def _count_input_rows(inbox: Path) -> dict[str, int]:
     return counts
 
 
-def _table_dump(con: duckdb.DuckDBPyConnection, table: str, order: str) -> list[tuple]:
-    return con.execute(f"select * exclude (ingested_at) from {table} order by {order}").fetchall() \
-        if table == "ingest_files" else con.execute(f"select * from {table} order by {order}").fetchall()
+#: Tables compared before and after a re-run, with their order (ingested_at is wall time).
+RERUN_TABLES = {
+    "ingest_files": "file_id",
+    "lab_results": "file_id, line_no",
+    "rejected_rows": "file_id, line_no",
+    "kidney_measures": "file_id, line_no, analyte",
+    "person_status": "period, person_key",
+    "kidney_events": "period, person_key, rule_id",
+    "published.district_ckd_prevalence": "period, district_code, sex, age_band",
+    "published.district_screening_coverage": "period, district_code",
+}
+
+
+def _table_dump(con: duckdb.DuckDBPyConnection, table: str) -> list[tuple]:
+    columns = "* exclude (ingested_at)" if table == "ingest_files" else "*"
+    return con.execute(f"select {columns} from {table} order by {RERUN_TABLES[table]}").fetchall()
 
 
 @pytest.fixture(scope="module")
@@ -118,26 +131,18 @@ def test_no_incoming_token_in_warehouse(demo_run):
 
 def test_second_run_of_the_month_changes_nothing(demo_run):
     out, _, con = demo_run
-    before = {
-        "ingest_files": _table_dump(con, "ingest_files", "file_id"),
-        "lab_results": _table_dump(con, "lab_results", "file_id, line_no"),
-        "rejected_rows": _table_dump(con, "rejected_rows", "file_id, line_no"),
-        "person_status": _table_dump(con, "person_status", "period, person_key"),
-        "published.district_ckd_prevalence": _table_dump(
-            con, "published.district_ckd_prevalence", "period, district_code, sex, age_band"),
-    }  # fmt: skip
+    before = {table: _table_dump(con, table) for table in RERUN_TABLES}
+    exports = {p.name: p.read_bytes() for p in sorted((out / PERIOD).glob("*.csv"))}
     con.close()
     again = CliRunner().invoke(app, ["demo", "--out", str(out)])
     assert again.exit_code == 0, again.output
     con2 = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
     try:
         for table, rows in before.items():
-            order = {"ingest_files": "file_id", "lab_results": "file_id, line_no",
-                     "rejected_rows": "file_id, line_no", "person_status": "period, person_key"}.get(
-                table, "period, district_code, sex, age_band")  # fmt: skip
-            assert _table_dump(con2, table, order) == rows, table
+            assert _table_dump(con2, table) == rows, table
     finally:
         con2.close()
+    assert {p.name: p.read_bytes() for p in sorted((out / PERIOD).glob("*.csv"))} == exports
 
 
 THREE_LAYOUTS = {

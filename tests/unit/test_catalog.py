@@ -95,3 +95,15 @@ def test_no_undocumented_table_left_in_staging(warehouse):
     leftovers = [f"{s}.{t}" for s, t, c in tables(warehouse, "schema_name = 'staging'")
                  if qualified(s, t) not in catalog or not (c or "").strip()]  # fmt: skip
     assert leftovers == []
+
+
+def test_every_documented_column_exists(warehouse):
+    """No drift the other way: the catalog documents no column a table does not have."""
+    catalog = load_catalog()
+    for schema, table, _ in tables(warehouse):
+        entry = catalog.get(qualified(schema, table))
+        if entry is None:
+            continue
+        present = {name for name, _ in columns(warehouse, schema, table)}
+        extra = sorted(set(entry.get("columns") or {}) - present)
+        assert not extra, f"{qualified(schema, table)}: catalog documents missing columns {extra}"
