@@ -93,8 +93,8 @@ def validate_task(run_id: str) -> dict[str, Any]:
 def measure_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         s = measure_stage(ctx.con, ctx.settings)
-        return {"creatinine": s.egfr_rows, "eGFR": s.egfr_computed, "albuminuria": s.acr_rows,
-                "A category": s.acr_categorised}  # fmt: skip
+        return {"creatinine/cystatin": s.egfr_rows, "eGFR": s.egfr_computed,
+                "albuminuria": s.acr_rows, "A category": s.acr_categorised}  # fmt: skip
 
     return _stage(run_id, "measure", work)
 

@@ -27,9 +27,17 @@ EQUATIONS = {
 MEASURE_COLUMNS = [
     "source_id", "file_id", "line_no", "person_key", "specimen_id", "collected_date",
     "reported_date", "analyte", "sex", "age_years", "district_code",
-    "egfr", "egfr_equation", "g_category", "egfr_reason", "is_hyperfiltration", "lab_reported_egfr",
-    "acr_mg_g", "acr_comparator", "acr_basis", "is_acr_estimated", "a_category", "acr_reason",
+    "egfr", "egfr_equation", "g_category", "egfr_reason", "is_hyperfiltration",
+    "egfr_creatinine", "lab_reported_egfr", "lab_reported_egfr_comparator",
+    "acr_mg_g", "acr_comparator", "aer_mg_24h", "acr_basis", "is_acr_estimated", "a_category",
+    "acr_reason",
 ]  # fmt: skip
+
+#: Analytes read from lab_results by this stage.
+MEASURED_ANALYTES = (
+    "creatinine", "cystatin_c", "acr", "pcr", "urine_albumin", "urine_creatinine",
+    "urine_albumin_24h", "urine_protein_dipstick", "egfr_reported",
+)  # fmt: skip
 
 
 @dataclass
@@ -83,19 +91,77 @@ def compute_egfr(creatinine: pl.DataFrame, m: MeasureSettings) -> pl.DataFrame:
     frame = frame.with_columns(egfr.alias("egfr"))
     return frame.with_columns(
         pl.when(pl.col("egfr").is_null()).then(None).otherwise(pl.col("egfr_equation")).alias("egfr_equation"),
-        eq.gfr_category(pl.col("egfr")).alias("g_category"),
         egfr_reason(m).alias("egfr_reason"),
+        pl.col("egfr").alias("egfr_creatinine"),
+    )
+
+
+def _female() -> pl.Expr:
+    return pl.when(pl.col("sex") == "F").then(True).when(pl.col("sex") == "M").then(False)
+
+
+def add_cystatin(creatinine: pl.DataFrame, cystatin: pl.DataFrame, m: MeasureSettings) -> tuple[pl.DataFrame, pl.DataFrame]:
+    """Cystatin C eGFR, and the combined equation on creatinine rows with a same-day cystatin C.
+
+    CKD-EPI 2012 cystatin C (Inker et al., NEJM 2012) for each uncensored cystatin C from 18; on a
+    day with both markers the creatinine row carries CKD-EPI 2021 creatinine-cystatin C (Inker
+    et al., NEJM 2021) and the cystatin row no eGFR of its own (reason ``combined_with_creatinine``),
+    so the day is counted once.
+    """
+    age = pl.col("age_years").cast(pl.Float64)
+    adult = pl.col("age_years") >= m.adult_min_age_years
+    cystatin = cystatin.with_columns(
+        pl.when(pl.col("comparator").is_null() & adult)
+        .then(eq.ckd_epi_2012_cystatin(pl.col("value"), age, _female()))
+        .alias("egfr_cys_only")
+    )
+    if not m.combine_same_day_cystatin:
+        same_day = cystatin.head(0).select("person_key", "collected_date", pl.col("value").alias("scys"))
+    else:
+        same_day = (
+            cystatin.filter(pl.col("comparator").is_null())
+            .group_by("person_key", "collected_date")
+            .agg(pl.col("value").mean().alias("scys"))
+        )
+    creatinine = creatinine.join(same_day, on=["person_key", "collected_date"], how="left", maintain_order="left")
+    combined = eq.ckd_epi_2021_creatinine_cystatin(pl.col("value"), pl.col("scys"), age, _female())
+    use_combined = pl.col("scys").is_not_null() & pl.col("egfr").is_not_null() & adult
+    creatinine = creatinine.with_columns(
+        pl.when(use_combined).then(combined).otherwise(pl.col("egfr")).alias("egfr"),
+        pl.when(use_combined).then(pl.lit("ckd_epi_2021_creatinine_cystatin"))
+        .otherwise(pl.col("egfr_equation")).alias("egfr_equation"),
+    ).drop("scys")
+    paired_days = creatinine.filter(pl.col("egfr_equation") == "ckd_epi_2021_creatinine_cystatin").select(
+        "person_key", "collected_date", pl.lit(True).alias("has_combined")
+    ).unique()
+    cystatin = cystatin.join(paired_days, on=["person_key", "collected_date"], how="left", maintain_order="left")
+    cystatin = cystatin.with_columns(
+        pl.when(pl.col("has_combined").is_null()).then(pl.col("egfr_cys_only")).alias("egfr"),
+    ).with_columns(
+        pl.when(pl.col("egfr").is_not_null()).then(pl.lit("ckd_epi_2012_cystatin")).alias("egfr_equation"),
+        pl.when(pl.col("has_combined").is_not_null()).then(pl.lit("combined_with_creatinine"))
+        .when(pl.col("comparator").is_not_null()).then(pl.lit("censored_cystatin"))
+        .when(pl.col("egfr").is_null()).then(pl.lit("outside_equation_range"))
+        .alias("egfr_reason"),
+    ).drop("egfr_cys_only", "has_combined")
+    return creatinine, cystatin
+
+
+def _categorise_egfr(frame: pl.DataFrame, m: MeasureSettings) -> pl.DataFrame:
+    return frame.with_columns(
+        eq.gfr_category(pl.col("egfr")).alias("g_category"),
         (pl.col("egfr") > m.hyperfiltration_ml_min_1_73m2).alias("is_hyperfiltration"),
     )
 
 
-def censored_acr_category(m: MeasureSettings) -> pl.Expr:
+def censored_acr_category(m: MeasureSettings, bound: pl.Expr | None = None) -> pl.Expr:
     """A category of a censored ACR, only when every value it admits falls in one category.
 
     "<3 mg/mmol" (< 26.5 mg/g) is A1; ">300 mg/g" is A3; ">=300 mg/g" could be 300 (A2 by
     default) or more (A3), so it stays uncategorised.
     """
-    bound, cmp = pl.col("acr_mg_g"), pl.col("acr_comparator")
+    bound = pl.col("acr_mg_g") if bound is None else bound
+    cmp = pl.col("acr_comparator")
     a2_top = 300.0
     return (
         pl.when((cmp == "<") & (bound <= 30)).then(pl.lit("A1"))
@@ -106,8 +172,14 @@ def censored_acr_category(m: MeasureSettings) -> pl.Expr:
     )  # fmt: skip
 
 
-def compute_albuminuria(results: pl.DataFrame, m: MeasureSettings) -> pl.DataFrame:
-    """ACR on one scale (mg/g) with its basis, from measured ACR, albumin + creatinine or PCR."""
+def compute_albuminuria(results: pl.DataFrame, m: MeasureSettings, readings_map: dict[str, str]) -> pl.DataFrame:
+    """Albuminuria on one scale with its basis.
+
+    ACR in mg/g from a measured ACR, from urine albumin and creatinine on the same specimen, or
+    estimated from a protein ratio (Sumida et al. 2020, flagged). A timed 24-hour albumin
+    excretion keeps its own scale (``aer_mg_24h``) and thresholds; a dipstick reading gives an
+    estimated category only (``readings_map``: spelling -> reading, from analytes.yaml).
+    """
     keys = ["source_id", "file_id", "line_no", "person_key", "specimen_id", "collected_date",
             "reported_date", "analyte", "sex", "age_years", "district_code"]  # fmt: skip
     measured = results.filter(pl.col("analyte") == "acr").select(
@@ -147,13 +219,35 @@ def compute_albuminuria(results: pl.DataFrame, m: MeasureSettings) -> pl.DataFra
         pl.lit(None, dtype=pl.String).alias("acr_comparator"),
         pl.lit("computed_from_albumin_and_creatinine").alias("acr_basis"),
     )
-    frame = pl.concat([measured, computed, pcr], how="vertical_relaxed")
-    uncensored = eq.albuminuria_category_acr(pl.col("acr_mg_g"), upper_a2_inclusive=m.acr_300_is_a2)
+    timed = results.filter(pl.col("analyte") == "urine_albumin_24h").select(
+        *keys,
+        pl.col("value").alias("aer_mg_24h"),
+        pl.col("comparator").alias("acr_comparator"),
+        pl.lit("timed_albumin_excretion").alias("acr_basis"),
+    )
+    readings = {k.strip().lower(): v for k, v in readings_map.items()}
+    dipstick = results.filter(pl.col("analyte") == "urine_protein_dipstick").select(
+        *keys,
+        pl.lit(None, dtype=pl.String).alias("acr_comparator"),
+        pl.lit("estimated_from_dipstick").alias("acr_basis"),
+        pl.col("value_text").str.strip_chars().str.to_lowercase()
+        .replace_strict(readings, default=None, return_dtype=pl.String).alias("reading"),
+    )
+    frame = pl.concat([measured, computed, pcr, timed, dipstick], how="diagonal_relaxed")
+    # 30/300 thresholds apply to ACR in mg/g and to AER in mg/24 h alike (KDIGO 2012)
+    scale = pl.coalesce(pl.col("acr_mg_g"), pl.col("aer_mg_24h"))
+    uncensored = (
+        pl.when(pl.col("acr_basis") == "timed_albumin_excretion")
+        .then(eq.albuminuria_category_aer(pl.col("aer_mg_24h"), upper_a2_inclusive=m.acr_300_is_a2))
+        .when(pl.col("acr_basis") == "estimated_from_dipstick")
+        .then(eq.albuminuria_category_dipstick(pl.col("reading")))
+        .otherwise(eq.albuminuria_category_acr(pl.col("acr_mg_g"), upper_a2_inclusive=m.acr_300_is_a2))
+    )
     return frame.with_columns(
-        (pl.col("acr_basis") == "estimated_from_pcr").alias("is_acr_estimated"),
-        pl.when(pl.col("acr_comparator").is_null()).then(uncensored).otherwise(censored_acr_category(m))
-        .alias("a_category"),
-    ).with_columns(
+        pl.col("acr_basis").is_in(["estimated_from_pcr", "estimated_from_dipstick"]).alias("is_acr_estimated"),
+        pl.when(pl.col("acr_comparator").is_null()).then(uncensored)
+        .otherwise(censored_acr_category(m, scale)).alias("a_category"),
+    ).drop("reading").with_columns(
         pl.when(pl.col("a_category").is_not_null()).then(None)
         .when(pl.col("acr_comparator").is_not_null()).then(pl.lit("censored_ambiguous"))
         .otherwise(pl.lit("not_computable"))
@@ -165,16 +259,23 @@ def measure_frame(results: pl.DataFrame, settings: Settings) -> pl.DataFrame:
     """kidney_measures rows from lab_results rows (plain function, no database)."""
     m = settings.pipeline.measures
     creatinine = compute_egfr(results.filter(pl.col("analyte") == "creatinine"), m)
+    frames = []
+    if m.use_cystatin:
+        creatinine, cystatin = add_cystatin(creatinine, results.filter(pl.col("analyte") == "cystatin_c"), m)
+        frames.append(_categorise_egfr(cystatin, m))
     reported = (
         results.filter((pl.col("analyte") == "egfr_reported") & pl.col("specimen_id").is_not_null())
-        .group_by("source_id", "specimen_id")
-        .agg(pl.col("value").first().alias("lab_reported_egfr"))
-    )
+        .sort("file_id", "line_no")
+        .group_by("source_id", "specimen_id", maintain_order=True)
+        .agg(pl.col("value").first().alias("lab_reported_egfr"),
+             pl.col("comparator").first().alias("lab_reported_egfr_comparator"))
+    )  # fmt: skip
     creatinine = creatinine.join(reported, on=["source_id", "specimen_id"], how="left", maintain_order="left")
-    albuminuria = compute_albuminuria(results, m)
+    frames.insert(0, _categorise_egfr(creatinine, m))
+    readings = settings.analytes.analytes.get("urine_protein_dipstick")
+    frames.append(compute_albuminuria(results, m, readings.readings if readings else {}))
     out = pl.concat(
-        [creatinine.select([c for c in MEASURE_COLUMNS if c in creatinine.columns]), albuminuria],
-        how="diagonal_relaxed",
+        [f.select([c for c in MEASURE_COLUMNS if c in f.columns]) for f in frames], how="diagonal_relaxed"
     )
     return out.select(MEASURE_COLUMNS).sort("person_key", "collected_date", "analyte", "file_id", "line_no")
 
@@ -182,15 +283,14 @@ def measure_frame(results: pl.DataFrame, settings: Settings) -> pl.DataFrame:
 def measure_stage(con: duckdb.DuckDBPyConnection, settings: Settings) -> MeasureSummary:
     """Rebuild ``kidney_measures`` from ``lab_results``."""
     results = fetch_frame(
-        con,
-        "select * from lab_results where analyte in "
-        "('creatinine', 'acr', 'pcr', 'urine_albumin', 'urine_creatinine', 'egfr_reported')",
+        con, "select * from lab_results where list_contains($analytes, analyte)",
+        {"analytes": list(MEASURED_ANALYTES)},
     )
     frame = measure_frame(results, settings)
     con.register("_measures", frame.to_arrow())
     con.execute("create or replace table kidney_measures as select * from _measures")
     con.unregister("_measures")
-    egfr = frame.filter(pl.col("analyte") == "creatinine")
+    egfr = frame.filter(pl.col("analyte").is_in(["creatinine", "cystatin_c"]))
     acr = frame.filter(pl.col("acr_basis").is_not_null())
     return MeasureSummary(
         egfr_rows=egfr.height,

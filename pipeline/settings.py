@@ -152,6 +152,8 @@ class MeasureSettings(_Strict):
     adult_min_age_years: int = Field(default=18, ge=2, le=25)
     min_age_years: int = Field(default=2, ge=0, le=18)
     hyperfiltration_ml_min_1_73m2: float = Field(default=130, gt=0)
+    use_cystatin: bool = True
+    combine_same_day_cystatin: bool = True
     acr_300_is_a2: bool = True
     risk_pairing_window_days: int = Field(default=90, gt=0)
     diabetes_hba1c_percent: float = 6.5
@@ -233,12 +235,20 @@ class UnitFactor(_Strict):
 class Analyte(_Strict):
     description: str
     loinc: list[str]
-    canonical_unit: str
-    units: dict[str, UnitFactor]
+    units: dict[str, UnitFactor] = Field(default_factory=dict)
+    canonical_unit: str | None = None
     fasting_loinc: list[str] = Field(default_factory=list)
+    result_type: Literal["numeric", "ordinal"] = "numeric"
+    readings: dict[str, str] = Field(default_factory=dict, description="ordinal spellings")
 
     @model_validator(mode="after")
     def _canonical_listed(self) -> Analyte:
+        if self.result_type == "ordinal":
+            if not self.readings or self.units:
+                raise ValueError("an ordinal analyte lists 'readings' and no 'units'")
+            return self
+        if self.canonical_unit is None:
+            raise ValueError("a numeric analyte needs 'canonical_unit'")
         unit = self.units.get(self.canonical_unit)
         if unit is None or unit.factor != 1.0 or unit.offset != 0.0:
             raise ValueError(f"canonical unit {self.canonical_unit!r} must be listed with factor 1")
@@ -378,7 +388,8 @@ def load_settings(config_dir: Path | str = "config") -> Settings:
         raise ConfigError(f"{config_dir}: config folder not found")
     pipeline = _parse(PipelineConfig, config_dir / "pipeline.yaml")
     analytes = _parse(AnalyteTable, config_dir / "analytes.yaml")
-    missing_ranges = sorted(set(analytes.analytes) - set(pipeline.ranges))
+    numeric = {n for n, a in analytes.analytes.items() if a.result_type == "numeric"}
+    missing_ranges = sorted(numeric - set(pipeline.ranges))
     if missing_ranges:
         raise ConfigError(
             f"{config_dir / 'pipeline.yaml'}: key 'ranges': no plausible range for {missing_ranges}"

@@ -78,8 +78,14 @@ def load_reference_tables(con: duckdb.DuckDBPyConnection, settings: Settings) ->
     analytes = settings.analytes.analytes
     frames = {
         "analytes": pl.DataFrame(
-            [{"analyte": n, "canonical_unit": a.canonical_unit, "description": a.description}
-             for n, a in analytes.items()]
+            [{"analyte": n, "canonical_unit": a.canonical_unit, "result_type": a.result_type,
+              "description": a.description} for n, a in analytes.items()],
+            schema_overrides={"canonical_unit": pl.String},
+        ),
+        "ordinal_readings": pl.DataFrame(
+            [{"analyte": n, "spelling": k.strip().lower(), "reading": v}
+             for n, a in analytes.items() for k, v in a.readings.items()],
+            schema={"analyte": pl.String, "spelling": pl.String, "reading": pl.String},
         ),
         "analyte_codes": pl.DataFrame(
             [{"loinc": c, "analyte": n, "is_fasting_code": c in a.fasting_loinc}

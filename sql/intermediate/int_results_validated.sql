@@ -51,6 +51,8 @@ judged as (
             when c.birth_year > year(c.collected_date) then 'collected_before_birth'
             when c.age_years > 120 then 'age_over_120'
             when c.status in ('cancelled', 'entered-in-error') then null
+            when c.result_type = 'ordinal' and c.reading is null then 'unknown_reading'
+            when c.result_type = 'ordinal' then null
             when c.reported_value is null or isnan(c.reported_value) then 'not_numeric'
             when c.unit_text is null or trim(c.unit_text) = '' then 'unit_missing'
             when c.reported_unit is null or not c.unit_known then 'unit_unknown'
@@ -82,6 +84,8 @@ select
         when 'collected_before_birth' then 'collected in ' || year(j.collected_date)::varchar
              || ', before the birth year ' || j.birth_year::varchar
         when 'age_over_120' then 'age at test ' || j.age_years::varchar || ' years is over 120'
+        when 'unknown_reading' then 'reading ' || coalesce('"' || j.value_text || '"', '(blank)')
+             || ' is not a known ' || j.analyte || ' reading (add its spelling under readings in analytes.yaml)'
         when 'not_numeric' then 'value ' || coalesce('"' || j.value_text || '"', '(blank)') || ' is not a number'
         when 'unit_missing' then 'no unit given for ' || j.analyte
         when 'unit_unknown' then 'unit "' || j.unit_text || '" is not known (add a unit alias to the source config)'

@@ -32,6 +32,8 @@ select
     n.test_code as loinc,
     n.test_code_text,
     c.analyte,
+    an.result_type,
+    rd.reading,
     n.status,
     n.status_text,
     n.value_text,
@@ -56,6 +58,9 @@ select
     nullif(trim(n.district_code), '') as district_code
 from numbers as n
 left join reference.analyte_codes as c on c.loinc = n.test_code
+left join reference.analytes as an on an.analyte = c.analyte
+left join reference.ordinal_readings as rd
+    on rd.analyte = c.analyte and rd.spelling = lower(trim(n.value_clean))
 left join reference.unit_aliases as sa on sa.source_id = n.source_id and sa.alias_key = n.unit_key
 left join reference.unit_aliases as ga on ga.source_id = '*' and ga.alias_key = n.unit_key
 left join (select distinct unit from reference.unit_factors) as ku on ku.unit = trim(n.unit_text)
