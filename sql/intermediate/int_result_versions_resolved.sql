@@ -7,7 +7,12 @@
 --     (report date, then file order, then line);
 --   * the winner is accepted when final, amended or corrected; withdrawn when cancelled or
 --     entered-in-error; pending when preliminary (it waits for its final);
---   * every earlier version is superseded: kept as history, never counted.
+--   * every earlier version is superseded: kept as history, never counted;
+--   * the same result arriving from two sources (a lab that forwards another lab's result, or
+--     sends it on behalf of a hospital): an accepted result with the same person, analyte,
+--     collection date, comparator and canonical value (to 4 decimals) as an accepted result of
+--     ANOTHER source is a duplicate; the one reported first is kept (then the source id, file
+--     and line decide), so the counts do not depend on which lab's file arrived first.
 with copies as (
     select
         v.file_id,
@@ -34,16 +39,42 @@ versions as (
         ) as recency
     from copies as c
     where c.copy_number = 1
+),
+within_source as (
+    select
+        c.file_id,
+        c.line_no,
+        case
+            when c.copy_number > 1 then 'duplicate'
+            when v.recency > 1 then 'superseded'
+            when c.status in ('final', 'amended', 'corrected') then 'accepted'
+            when c.status in ('cancelled', 'entered-in-error') then 'withdrawn'
+            when c.status = 'preliminary' then 'pending'
+        end as outcome
+    from copies as c
+    left join versions as v on v.file_id = c.file_id and v.line_no = c.line_no
+),
+across_sources as (
+    select
+        r.file_id,
+        r.line_no,
+        r.source_id,
+        first_value(r.source_id) over same_result as kept_source
+    from (
+        select w.file_id, w.line_no, x.source_id, x.person_key, x.analyte, x.collected_date,
+               x.comparator, round(x.value, 4) as value_key, x.reported_date
+        from within_source as w
+        join result_versions as x on x.file_id = w.file_id and x.line_no = w.line_no
+        where w.outcome = 'accepted' and x.value is not null
+    ) as r
+    window same_result as (
+        partition by r.person_key, r.analyte, r.collected_date, r.comparator, r.value_key
+        order by r.reported_date, r.source_id, r.file_id, r.line_no
+    )
 )
 select
-    c.file_id,
-    c.line_no,
-    case
-        when c.copy_number > 1 then 'duplicate'
-        when v.recency > 1 then 'superseded'
-        when c.status in ('final', 'amended', 'corrected') then 'accepted'
-        when c.status in ('cancelled', 'entered-in-error') then 'withdrawn'
-        when c.status = 'preliminary' then 'pending'
-    end as outcome
-from copies as c
-left join versions as v on v.file_id = c.file_id and v.line_no = c.line_no
+    w.file_id,
+    w.line_no,
+    case when a.source_id <> a.kept_source then 'duplicate' else w.outcome end as outcome
+from within_source as w
+left join across_sources as a on a.file_id = w.file_id and a.line_no = w.line_no

@@ -183,14 +183,19 @@ def test_same_measurement_in_three_layouts_gives_one_canonical_value(prefect_har
     con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
     try:
         rows = con.execute(
-            "select source_id, value, unit, count(distinct person_key) over () from lab_results "
-            "where analyte = 'creatinine' order by source_id"
+            "select source_id, value, unit, outcome, count(distinct person_key) over () "
+            "from result_versions where analyte = 'creatinine' order by source_id"
         ).fetchall()
+        accepted = con.execute("select source_id from lab_results where analyte = 'creatinine'").fetchall()
         egfr = con.execute("select distinct round(egfr, 9) from kidney_measures").fetchall()
     finally:
         con.close()
     assert [r[0] for r in rows] == sorted(s.split("/")[0] for s in THREE_LAYOUTS if "Patient" not in s)
-    assert {(round(v, 9), u) for _, v, u, _ in rows} == {(1.0, "mg/dL")}
-    assert rows[0][3] == 1  # one person: the shared linkage token links the three labs
+    assert {(round(v, 9), u) for _, v, u, _, _ in rows} == {(1.0, "mg/dL")}
+    assert rows[0][4] == 1  # one person: the shared linkage token links the three labs
+    # the same result from three sources is counted once (DEVELOPERS.md: reported first, then
+    # source id); the other two are duplicates
+    assert sorted(r[3] for r in rows) == ["accepted", "duplicate", "duplicate"]
+    assert accepted == [("corvale_lab_chain",)]
     assert len(egfr) == 1
     shutil.rmtree(out)
