@@ -360,6 +360,12 @@ def _month_end_from_name(name: str) -> dt.date | None:
     return dt.date(year, month, calendar.monthrange(year, month)[1])
 
 
+def extract_month(rel_path: str, run_period: str) -> str:
+    """The month an extract belongs to: from its file name (YYYY-MM or YYYYMM), else the run's."""
+    end = _month_end_from_name(rel_path)
+    return f"{end.year:04d}-{end.month:02d}" if end else run_period
+
+
 def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, ingested_on: dt.date) -> pl.DataFrame:
     """Parse the collection and report dates; keep the text as reported beside them."""
     fmt = source.date_format or "%Y-%m-%d"
@@ -458,10 +464,11 @@ def land_inbox(
                 summary.rows_landed += rows_read
         con.execute(
             "insert into ingest_files (file_id, source_id, file_path, version, sha256, size_bytes, "
-            "status, message, rows_read, rows_duplicate, run_period, ingested_at) "
-            "values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, current_timestamp)",
+            "status, message, rows_read, rows_duplicate, run_period, extract_month, ingested_at) "
+            "values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, current_timestamp)",
             [item.file_id, item.source_id, item.rel_path, version, item.sha256, item.size_bytes,
-             status, message, rows_read, rows_read if status == "duplicate_file" else 0, run_period],
+             status, message, rows_read, rows_read if status == "duplicate_file" else 0, run_period,
+             extract_month(item.rel_path, run_period)],
         )  # fmt: skip
     landed = pl.concat(frames) if frames else empty_landed()
     con.register("landed_frame", landed.to_arrow())

@@ -9,7 +9,13 @@ from pipeline.settings import Settings
 from pipeline.warehouse import replace_period_rows
 
 #: Internal summary tables, in the order they are built (each is sql/reports/<name>.sql).
-SUMMARY_TABLES = ("district_ckd_prevalence", "district_screening_coverage", "lab_egfr_agreement")
+SUMMARY_TABLES = (
+    "district_ckd_prevalence",
+    "district_screening_coverage",
+    "lab_egfr_agreement",
+    "source_quality",
+    "source_rejection_reasons",
+)
 
 
 def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> dict[str, int]:

@@ -59,6 +59,8 @@ def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
         con.execute(f"create schema if not exists {schema}")
     for table in LEDGER_TABLES:
         con.execute(read_sql(table))
+    # columns added after a table was first written (warehouses made by an earlier version)
+    con.execute("alter table ingest_files add column if not exists extract_month varchar")
 
 
 def build_table(con: duckdb.DuckDBPyConnection, name: str, target: str | None = None,

@@ -17,5 +17,6 @@ create table if not exists ingest_files (
     rows_withdrawn   bigint not null default 0,
     rows_pending     bigint not null default 0,
     run_period       varchar not null,
+    extract_month    varchar,
     ingested_at      timestamp not null
 );

@@ -1,0 +1,30 @@
+"""The quality report tables agree with the ledger and with rejected_rows (no row lost)."""
+
+from __future__ import annotations
+
+from tests.conftest import make_small_config, rows, run_month, write_inbox
+
+STD = "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status,reported_at\n"
+
+
+def test_source_quality_and_reasons_balance(tmp_path):
+    config = make_small_config(tmp_path / "config")
+    inbox = write_inbox(tmp_path, {
+        "westerfold_general_lab/results_2026-01.csv": STD
+        + "WF-q1,1960,F,WF01,S1,2026-01-10,2160-0,1.0,mg/dL,final,2026-01-11\n"
+        + "WF-q1,1960,F,WF01,S2,2026-01-10,2160-0,ND,mg/dL,final,2026-01-11\n"
+        + "WF-q1,1960,F,WF01,S3,2026-01-10,2160-0,1.0,mmol/L,final,2026-01-11\n",
+        "westerfold_general_lab/results_2026-02.csv": STD
+        + "WF-q1,1960,F,WF01,S4,2026-02-10,2160-0,see note,mg/dL,final,2026-02-11\n",
+    })  # fmt: skip
+    with run_month(config, inbox, tmp_path / "out", period="2026-02") as con:
+        quality = rows(con, "select extract_month, files, rows_read, rows_accepted, rows_rejected, "
+                            "rejected_share from source_quality order by extract_month")  # fmt: skip
+        reasons = rows(con, "select extract_month, reason_code, rows, example_line "
+                            "from source_rejection_reasons order by all")  # fmt: skip
+    assert quality == [("2026-01", 1, 3, 1, 2, round(2 / 3, 4)), ("2026-02", 1, 1, 0, 1, 1.0)]
+    assert reasons == [
+        ("2026-01", "not_numeric", 1, "westerfold_general_lab/results_2026-01.csv:3"),
+        ("2026-01", "unit_incompatible", 1, "westerfold_general_lab/results_2026-01.csv:4"),
+        ("2026-02", "not_numeric", 1, "westerfold_general_lab/results_2026-02.csv:2"),
+    ]
