@@ -46,23 +46,34 @@ def trajectory_rules(settings: Settings) -> pl.DataFrame:
     return pl.DataFrame(rows)
 
 
-def link_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> LinkSummary:
+def event_params(settings: Settings, period: Period) -> dict:
+    """Bound parameters of kidney_events.sql and person_status.sql, from the settings."""
     m, t = settings.pipeline.measures, settings.pipeline.trajectories
+    return {
+        "period": period.label, "period_end": period.end,
+        "baseline_window_days": t.baseline_window_days,
+        "rapid_slope": t.rapid_decline_ml_min_per_year, "rapid_min_values": t.rapid_decline_min_values,
+        "rapid_min_span_days": t.rapid_decline_min_span_days,
+        "progression_fraction": t.progression_decline,
+        "hba1c_percent": m.diabetes_hba1c_percent, "hba1c_mmol_mol": m.diabetes_hba1c_mmol_mol,
+        "glucose_mg_dl": m.diabetes_fasting_glucose_mg_dl,
+        "glucose_mmol_l": m.diabetes_fasting_glucose_mmol_l,
+        "risk_window_days": m.risk_pairing_window_days,
+    }  # fmt: skip
+
+
+def write_trajectory_rules(con: duckdb.DuckDBPyConnection, settings: Settings) -> None:
     con.register("_rules", trajectory_rules(settings).to_arrow())
     con.execute("create or replace table reference.trajectory_rules as select * from _rules")
     con.unregister("_rules")
-    end = {"period_end": period.end}
-    build_table(con, "int_daily_values_averaged", params=end)
-    replace_period_rows(
-        con, "kidney_events", period.label,
-        {**end, "period": period.label, "baseline_window_days": t.baseline_window_days},
-    )
-    persons = replace_period_rows(
-        con, "person_status", period.label,
-        {**end, "period": period.label, "hba1c_percent": m.diabetes_hba1c_percent,
-         "hba1c_mmol_mol": m.diabetes_hba1c_mmol_mol, "glucose_mg_dl": m.diabetes_fasting_glucose_mg_dl,
-         "glucose_mmol_l": m.diabetes_fasting_glucose_mmol_l, "risk_window_days": m.risk_pairing_window_days},
-    )  # fmt: skip
+
+
+def link_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> LinkSummary:
+    write_trajectory_rules(con, settings)
+    params = event_params(settings, period)
+    build_table(con, "int_daily_values_averaged", params=params)
+    replace_period_rows(con, "kidney_events", period.label, params)
+    persons = replace_period_rows(con, "person_status", period.label, params)
     confirmed, pending = con.execute(
         "select count(*) filter (where event_status = 'confirmed'), "
         "count(*) filter (where event_status = 'pending') from kidney_events where period = ?",

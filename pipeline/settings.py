@@ -171,6 +171,10 @@ class TrajectorySettings(_Strict):
     ckd_egfr_below: float = 60
     ckd_acr_at_or_above_mg_g: float = 30
     ckd_min_span_days: int = Field(default=90, gt=0)
+    rapid_decline_ml_min_per_year: float = Field(default=5, gt=0)
+    rapid_decline_min_values: int = Field(default=3, ge=2)
+    rapid_decline_min_span_days: int = Field(default=365, gt=0)
+    progression_decline: float = Field(default=0.25, gt=0, lt=1)
 
     @field_validator("decline_thresholds")
     @classmethod

@@ -116,6 +116,7 @@ def load_reference_tables(con: duckdb.DuckDBPyConnection, settings: Settings) ->
         ),
         "age_bands": _age_bands(settings.pipeline.summaries.age_bands),
         "gfr_categories": _gfr_categories(),
+        "gfr_categories_ordered": _gfr_categories().with_row_index("band_order"),
         "kdigo_risk": pl.DataFrame(
             [{"g_category": g, "a_category": a, "risk_category": r} for (g, a), r in KDIGO_RISK.items()]
         ),

@@ -9,6 +9,13 @@
 -- Event date = first day of the first run that reaches the span; confirmation date = the first
 -- day on which it reached the span. A run that qualifies but is still short of the span and ends
 -- at the person's latest value is 'pending': a later month's value can confirm or break it.
+-- Also (KDIGO 2012):
+--   rapid decline: least-squares slope of the daily eGFRs below -$rapid_slope per year, over at
+--     least $rapid_min_values daily values spanning at least $rapid_min_span_days days;
+--   progression: the first daily eGFR after the baseline window that is in a worse G category
+--     than the baseline AND at least $progression_fraction below the baseline;
+--   new-onset albuminuria among people with lab-evidenced diabetes: the first measured A2 or A3
+--     after diabetes was first evidenced, when there was none on or before that day.
 with daily as (
     select * from int_daily_values_averaged
 ),
@@ -69,20 +76,106 @@ ranked as (
            ) as pick
     from runs
     where confirmation_date is not null or run_end = last_day
+),
+run_events as (
+    select
+        person_key,
+        event_type,
+        rule_id,
+        threshold,
+        case when confirmation_date is not null then 'confirmed' else 'pending' end as event_status,
+        round(baseline_egfr, 2) as baseline_egfr,
+        run_start as event_date,
+        confirmation_date,
+        run_end as last_qualifying_date,
+        n_values,
+        run_values,
+        cast(null as double) as slope_ml_min_per_year,
+        cast(null as integer) as days_since_diabetes
+    from ranked
+    where pick = 1
+),
+slopes as (
+    select person_key,
+           regr_slope(value, (day - date '2000-01-01') / 365.25) as slope,
+           count(*) as n_values,
+           min(day) as first_day,
+           max(day) as last_day,
+           list(round(value, 1) order by day) as run_values
+    from daily
+    where measure = 'egfr'
+    group by person_key
+),
+rapid as (
+    select s.person_key, 'rapid_decline' as event_type, 'rapid_decline' as rule_id,
+           -cast($rapid_slope as double) as threshold, 'confirmed' as event_status,
+           round(b.baseline_egfr, 2) as baseline_egfr, s.first_day as event_date,
+           s.last_day as confirmation_date, s.last_day as last_qualifying_date, s.n_values,
+           s.run_values, round(s.slope, 2) as slope_ml_min_per_year,
+           cast(null as integer) as days_since_diabetes
+    from slopes as s
+    left join baseline as b on b.person_key = s.person_key
+    where s.n_values >= $rapid_min_values
+      and s.last_day - s.first_day >= $rapid_min_span_days
+      and s.slope < -cast($rapid_slope as double)
+),
+graded as (
+    select d.person_key, d.day, d.value, b.baseline_egfr,
+           (select g.band_order from reference.gfr_categories_ordered as g
+            where d.value >= g.lower_bound and d.value < g.upper_bound) as g_rank,
+           (select g.band_order from reference.gfr_categories_ordered as g
+            where b.baseline_egfr >= g.lower_bound and b.baseline_egfr < g.upper_bound) as baseline_rank
+    from daily as d
+    join baseline as b on b.person_key = d.person_key
+    where d.measure = 'egfr' and d.day > b.baseline_end
+),
+progression as (
+    select person_key, 'progression' as event_type, 'progression' as rule_id,
+           cast($progression_fraction as double) as threshold, 'confirmed' as event_status,
+           round(any_value(baseline_egfr), 2) as baseline_egfr, min(day) as event_date,
+           min(day) as confirmation_date, min(day) as last_qualifying_date, 1 as n_values,
+           [round(arg_min(value, day), 1)] as run_values,
+           cast(null as double) as slope_ml_min_per_year, cast(null as integer) as days_since_diabetes
+    from graded
+    where g_rank > baseline_rank and value <= (1 - cast($progression_fraction as double)) * baseline_egfr + 1e-9
+    group by person_key
+),
+diabetes as (
+    select person_key, min(collected_date) as diabetes_date
+    from lab_results
+    where collected_date <= $period_end and reported_date <= $period_end
+      and comparator is distinct from '<' and comparator is distinct from '<='
+      and ((analyte = 'hba1c' and ((reported_unit = '%' and reported_value >= $hba1c_percent)
+                                or (reported_unit = 'mmol/mol' and reported_value >= $hba1c_mmol_mol)))
+        or (analyte = 'glucose' and is_fasting and ((reported_unit = 'mg/dL' and reported_value >= $glucose_mg_dl)
+                                or (reported_unit = 'mmol/L' and reported_value >= $glucose_mmol_l))))
+    group by person_key
+),
+albuminuric as (
+    select person_key, collected_date as day, acr_mg_g, aer_mg_24h
+    from kidney_measures
+    where a_category in ('A2', 'A3') and not is_acr_estimated
+      and collected_date <= $period_end and reported_date <= $period_end
+),
+new_onset as (
+    select x.person_key, 'new_onset_albuminuria' as event_type, 'new_onset_albuminuria' as rule_id,
+           cast(null as double) as threshold, 'confirmed' as event_status,
+           cast(null as double) as baseline_egfr, min(a.day) as event_date,
+           min(a.day) as confirmation_date, min(a.day) as last_qualifying_date, 1 as n_values,
+           [round(arg_min(coalesce(a.acr_mg_g, a.aer_mg_24h), a.day), 1)] as run_values,
+           cast(null as double) as slope_ml_min_per_year,
+           cast(min(a.day) - any_value(x.diabetes_date) as integer) as days_since_diabetes
+    from diabetes as x
+    join albuminuric as a on a.person_key = x.person_key and a.day > x.diabetes_date
+    where not exists (
+        select 1 from albuminuric as e where e.person_key = x.person_key and e.day <= x.diabetes_date
+    )
+    group by x.person_key
 )
-select
-    $period as period,
-    person_key,
-    event_type,
-    rule_id,
-    threshold,
-    case when confirmation_date is not null then 'confirmed' else 'pending' end as event_status,
-    round(baseline_egfr, 2) as baseline_egfr,
-    run_start as event_date,
-    confirmation_date,
-    run_end as last_qualifying_date,
-    n_values,
-    run_values
-from ranked
-where pick = 1
+select $period as period, * from (
+    select * from run_events
+    union all by name select * from rapid
+    union all by name select * from progression
+    union all by name select * from new_onset
+)
 order by person_key, rule_id

@@ -13,10 +13,11 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.linkage import trajectory_rules
+from pipeline.linkage import event_params, trajectory_rules, write_trajectory_rules
+from pipeline.periods import Period
 from pipeline.settings import load_settings
 from pipeline.warehouse import build_table, connect, load_reference_tables
-from tests.conftest import rows
+from tests.conftest import CONFIG_DIR, rows
 
 DAY0 = dt.date(2025, 1, 1)
 PERIOD, PERIOD_END = "2025-12", dt.date(2025, 12, 31)
@@ -34,16 +35,21 @@ def settings(tmp_path_factory):
 def warehouse(settings):
     con = connect(":memory:")
     load_reference_tables(con, settings)
-    con.register("_rules", trajectory_rules(settings).to_arrow())
-    con.execute("create or replace table reference.trajectory_rules as select * from _rules")
-    con.unregister("_rules")
+    write_trajectory_rules(con, settings)
     con.execute(
         """
         create table kidney_measures (
             person_key varchar, collected_date date, reported_date date, analyte varchar,
-            egfr double, acr_mg_g double, is_acr_estimated boolean
+            egfr double, acr_mg_g double, is_acr_estimated boolean, a_category varchar,
+            aer_mg_24h double
         )
         """
+    )
+    # no results of other analytes: the diabetes rules see an empty lab_results
+    con.execute(
+        "create table lab_results (person_key varchar, collected_date date, reported_date date, "
+        "analyte varchar, comparator varchar, reported_unit varchar, reported_value double, "
+        "is_fasting boolean)"
     )
     yield con
     con.close()
@@ -57,19 +63,21 @@ def insert(con, person: str, egfr: list[tuple[int, float]] = (), acr: list[tuple
            estimated_acr: bool = False, reported_lag: int = 1) -> None:  # fmt: skip
     for offset, value in egfr:
         con.execute(
-            "insert into kidney_measures values (?, ?, ?, 'creatinine', ?, null, null)",
+            "insert into kidney_measures values (?, ?, ?, 'creatinine', ?, null, null, null, null)",
             [person, day(offset), day(offset + reported_lag), value],
         )
     for offset, value in acr:
         con.execute(
-            "insert into kidney_measures values (?, ?, ?, 'acr', null, ?, ?)",
-            [person, day(offset), day(offset + reported_lag), value, estimated_acr],
+            "insert into kidney_measures values (?, ?, ?, 'acr', null, ?, ?, ?, null)",
+            [person, day(offset), day(offset + reported_lag), value, estimated_acr,
+             "A1" if value < 30 else "A2" if value <= 300 else "A3"],
         )
 
 
 def build(con, period_end: dt.date = PERIOD_END) -> dict[tuple[str, str], dict]:
-    build_table(con, "int_daily_values_averaged", params={"period_end": period_end})
-    build_table(con, "kidney_events", params={"period": PERIOD, "baseline_window_days": BASELINE_WINDOW})
+    params = {**event_params(load_settings(CONFIG_DIR), Period.parse(PERIOD)), "period_end": period_end}
+    build_table(con, "int_daily_values_averaged", params=params)
+    build_table(con, "kidney_events", params=params)
     frame = con.sql("select * from kidney_events").pl()
     return {(r["person_key"], r["rule_id"]): r for r in frame.iter_rows(named=True)}
 
@@ -233,3 +241,47 @@ def test_file_warehouse_works_too(settings, tmp_path: Path):
         assert rows(con, "select count(*) from reference.districts") == [(4,)]
     finally:
         con.close()
+
+
+# --------------------------------------------------------------------------- KDIGO slope and progression
+
+
+def test_rapid_decline_slope_matches_scipy_least_squares(warehouse):
+    """KDIGO 2012: rapid progression = a sustained decline of more than 5 mL/min/1.73 m2 per
+    year. The slope is the least-squares slope; checked against scipy.stats.linregress."""
+    from scipy.stats import linregress
+
+    points = [(0, 70.0), (120, 66.0), (250, 61.5), (400, 58.0)]
+    insert(warehouse, "fast", points)
+    insert(warehouse, "slow", [(0, 70.0), (200, 68.5), (400, 67.0)])  # about -2.7 per year
+    insert(warehouse, "short", [(0, 70.0), (100, 60.0), (200, 50.0)])  # steep, but under a year
+    events = build(warehouse, period_end=day(420))
+    expected = linregress([d / 365.25 for d, _ in points], [v for _, v in points]).slope
+    assert events[("fast", "rapid_decline")]["slope_ml_min_per_year"] == pytest.approx(expected, abs=0.01)
+    assert ("slow", "rapid_decline") not in events
+    assert ("short", "rapid_decline") not in events
+
+
+def test_progression_needs_a_worse_category_and_a_25_percent_fall(warehouse):
+    # KDIGO 2012: progression = a drop in GFR category with >= 25 % decline from baseline
+    insert(warehouse, "prog", [(0, 62.0), (200, 46.0)])  # G2 -> G3a, 25.8 % below 62
+    insert(warehouse, "same_g", [(0, 58.0), (200, 46.0)])  # G3a -> G3a: no category drop
+    insert(warehouse, "small", [(0, 62.0), (200, 55.0)])  # G2 -> G3a but only 11 %
+    events = build(warehouse)
+    assert events[("prog", "progression")]["event_date"] == day(200)
+    assert ("same_g", "progression") not in events
+    assert ("small", "progression") not in events
+
+
+def test_new_onset_albuminuria_after_diabetes(warehouse):
+    # ADA: HbA1c >= 6.5 % evidences diabetes; new-onset = first A2/A3 after that, none before
+    for person, hba1c_day in (("onset", 10), ("before", 100)):
+        warehouse.execute(
+            "insert into lab_results values (?, ?, ?, 'hba1c', null, '%', 7.2, null)",
+            [person, day(hba1c_day), day(hba1c_day + 1)],
+        )
+    insert(warehouse, "onset", acr=[(5, 12.0), (60, 45.0)])
+    insert(warehouse, "before", acr=[(50, 45.0), (150, 60.0)])  # albuminuric before diabetes
+    events = build(warehouse)
+    assert events[("onset", "new_onset_albuminuria")]["days_since_diabetes"] == 50
+    assert ("before", "new_onset_albuminuria") not in events
