@@ -14,7 +14,8 @@ import polars as pl
 
 from pipeline.periods import Period
 from pipeline.settings import Settings
-from pipeline.warehouse import build_table, replace_period_rows
+from pipeline.measures import MEASURED_ANALYTES, measure_frame
+from pipeline.warehouse import build_table, fetch_frame, replace_period_rows
 
 
 @dataclass
@@ -68,9 +69,27 @@ def write_trajectory_rules(con: duckdb.DuckDBPyConnection, settings: Settings) -
     con.unregister("_rules")
 
 
+def build_known_at_period_end(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> int:
+    """The results and measures as known at the period end (``int_results_known``,
+    ``int_measures_known``): versions reported later do not count, so a past period is rebuilt
+    as it was known then."""
+    build_table(con, "int_result_versions_resolved", "staging.int_versions_as_of", {"as_of": period.end})
+    n = build_table(con, "int_results_known", params={"period_end": period.end})
+    results = fetch_frame(
+        con, "select * from int_results_known where list_contains($analytes, analyte)",
+        {"analytes": list(MEASURED_ANALYTES)},
+    )
+    con.register("_known", measure_frame(results, settings).to_arrow())
+    con.execute("create or replace table int_measures_known as select * from _known")
+    con.unregister("_known")
+    con.execute("drop table staging.int_versions_as_of")
+    return n
+
+
 def link_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> LinkSummary:
     write_trajectory_rules(con, settings)
     params = event_params(settings, period)
+    build_known_at_period_end(con, settings, period)
     build_table(con, "int_daily_values_averaged", params=params)
     replace_period_rows(con, "kidney_events", period.label, params)
     persons = replace_period_rows(con, "person_status", period.label, params)

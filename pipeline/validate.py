@@ -10,12 +10,16 @@ ledger's counts are brought up to date. A file whose counts do not balance stops
 
 from __future__ import annotations
 
+import datetime as dt
 from dataclasses import dataclass, field
 
 import duckdb
 
 from pipeline.settings import Settings
 from pipeline.warehouse import build_table
+
+#: The as-of date of "everything received so far".
+NO_LIMIT = dt.date(9999, 12, 31)
 
 OUTCOMES = ("accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending")
 
@@ -99,7 +103,8 @@ def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str
 
 def resolve_versions(con: duckdb.DuckDBPyConnection) -> int:
     """Settle the outcome of every version and rebuild lab_results; return its rows."""
-    build_table(con, "int_result_versions_resolved", "staging.int_result_versions_resolved")
+    build_table(con, "int_result_versions_resolved", "staging.int_result_versions_resolved",
+                params={"as_of": NO_LIMIT})
     con.execute(
         """
         update result_versions as v set outcome = r.outcome

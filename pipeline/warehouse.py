@@ -70,7 +70,8 @@ def build_table(con: duckdb.DuckDBPyConnection, name: str, target: str | None = 
     if not all(_NAME.match(part) for part in target.split(".")):
         raise ValueError(f"not a plain table name: {target!r}")
     sql = read_sql(name)
-    used = {k: v for k, v in (params or {}).items() if re.search(rf"\${k}\b", sql)}
+    code = re.sub(r"--[^\n]*", "", sql)  # a $name in a comment is not a parameter
+    used = {k: v for k, v in (params or {}).items() if re.search(rf"\${k}\b", code)}
     con.execute(f"create or replace table {target} as\n{sql}", used)
     return con.execute(f"select count(*) from {target}").fetchall()[0][0]
 

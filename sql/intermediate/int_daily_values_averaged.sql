@@ -1,15 +1,15 @@
 -- int_daily_values_averaged: one row per person, measure (egfr or acr) and collection day,
--- as known at the period end ($period_end): results collected or reported later are left out.
+-- as known at the period end (int_measures_known: results collected or reported later, and
+-- amendments or cancellations reported later, are left out).
 -- Daily value = the mean of that person's values on that day, across labs.
 -- ACR estimated from a protein ratio is left out (project decision 4).
 select person_key, 'egfr' as measure, collected_date as day, avg(egfr) as value, count(*) as n_results
-from kidney_measures
-where egfr is not null and collected_date <= $period_end and reported_date <= $period_end
+from int_measures_known
+where egfr is not null
 group by person_key, collected_date
 union all
 select person_key, 'acr' as measure, collected_date as day, avg(acr_mg_g) as value, count(*) as n_results
-from kidney_measures
+from int_measures_known
 where acr_mg_g is not null and not is_acr_estimated
-  and collected_date <= $period_end and reported_date <= $period_end
 group by person_key, collected_date
 order by person_key, measure, day

@@ -1,4 +1,8 @@
--- int_result_versions_resolved: one row per row of result_versions, with its outcome.
+-- int_result_versions_resolved: one row per row of result_versions reported by $as_of, with its
+-- outcome as known on that day. The validate stage runs it with no limit ($as_of far in the
+-- future: today's outcomes, stored in result_versions.outcome); the link stage runs it with the
+-- period end, so a past period is rebuilt as it was known then (an amendment or cancellation
+-- reported later does not reach back).
 -- Rules (DEVELOPERS.md, "Statuses and duplicates"):
 --   * a row identical to an earlier row of the same source (same person, specimen, analyte, date,
 --     status, value and unit) is a duplicate, whichever file it came in;
@@ -29,6 +33,7 @@ with copies as (
             order by v.file_id, v.line_no
         ) as copy_number
     from result_versions as v
+    where v.reported_date <= $as_of
 ),
 versions as (
     select

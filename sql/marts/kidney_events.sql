@@ -142,9 +142,8 @@ progression as (
 ),
 diabetes as (
     select person_key, min(collected_date) as diabetes_date
-    from lab_results
-    where collected_date <= $period_end and reported_date <= $period_end
-      and comparator is distinct from '<' and comparator is distinct from '<='
+    from int_results_known
+    where comparator is distinct from '<' and comparator is distinct from '<='
       and ((analyte = 'hba1c' and ((reported_unit = '%' and reported_value >= $hba1c_percent)
                                 or (reported_unit = 'mmol/mol' and reported_value >= $hba1c_mmol_mol)))
         or (analyte = 'glucose' and is_fasting and ((reported_unit = 'mg/dL' and reported_value >= $glucose_mg_dl)
@@ -153,9 +152,8 @@ diabetes as (
 ),
 albuminuric as (
     select person_key, collected_date as day, acr_mg_g, aer_mg_24h
-    from kidney_measures
+    from int_measures_known
     where a_category in ('A2', 'A3') and not is_acr_estimated
-      and collected_date <= $period_end and reported_date <= $period_end
 ),
 new_onset as (
     select x.person_key, 'new_onset_albuminuria' as event_type, 'new_onset_albuminuria' as rule_id,

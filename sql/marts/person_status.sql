@@ -2,14 +2,13 @@
 -- ($period_end): demographics from the latest result, latest eGFR and ACR with their KDIGO
 -- categories, confirmed CKD, lab-evidenced diabetes and the KDIGO risk category.
 with known as (
-    select * from lab_results
-    where collected_date <= $period_end and reported_date <= $period_end
+    select * from int_results_known
 ),
 demographics as (
     select person_key,
-           arg_max(sex, (collected_date, reported_date, file_id, line_no)) as sex,
-           arg_max(birth_year, (collected_date, reported_date, file_id, line_no)) as birth_year,
-           arg_max(district_code, (collected_date, reported_date, file_id, line_no)) as district_code,
+           arg_max(sex, (collected_date, reported_date, source_id, file_id, line_no)) as sex,
+           arg_max(birth_year, (collected_date, reported_date, source_id, file_id, line_no)) as birth_year,
+           arg_max(district_code, (collected_date, reported_date, source_id, file_id, line_no)) as district_code,
            max(collected_date) as last_test_date
     from known
     group by person_key
@@ -24,12 +23,11 @@ latest_egfr as (
 ),
 latest_acr as (
     select person_key,
-           arg_max(a_category, (collected_date, file_id, line_no)) as a_category,
-           arg_max(acr_mg_g, (collected_date, file_id, line_no)) as acr_mg_g,
+           arg_max(a_category, (collected_date, source_id, file_id, line_no)) as a_category,
+           arg_max(acr_mg_g, (collected_date, source_id, file_id, line_no)) as acr_mg_g,
            max(collected_date) as last_acr_date
-    from kidney_measures
+    from int_measures_known
     where a_category is not null and not is_acr_estimated
-      and collected_date <= $period_end and reported_date <= $period_end
     group by person_key
 ),
 diabetes as (

@@ -12,9 +12,8 @@ with window_values as (
 ),
 active as (
     select distinct person_key
-    from lab_results
-    where collected_date <= $period_end and reported_date <= $period_end
-      and collected_date > $period_end - to_months(cast($window_months as integer))
+    from int_results_known
+    where collected_date > $period_end - to_months(cast($window_months as integer))
 ),
 diabetic as (
     select p.district_code, coalesce(w.has_egfr, false) as has_egfr, coalesce(w.has_acr, false) as has_acr

@@ -12,10 +12,9 @@ with pairs as (
         egfr_creatinine as ours,
         lab_reported_egfr as lab,
         lab_reported_egfr_comparator as lab_comparator
-    from kidney_measures
+    from int_measures_known
     where analyte = 'creatinine'
       and egfr_creatinine is not null and lab_reported_egfr is not null
-      and collected_date <= $period_end and reported_date <= $period_end
 )
 select
     $period as period,

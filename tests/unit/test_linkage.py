@@ -1,5 +1,5 @@
 """Tests for the link stage's SQL (int_daily_values_averaged.sql, kidney_events.sql) on crafted
-daily eGFR and ACR trajectories inserted straight into ``kidney_measures``.
+daily eGFR and ACR trajectories inserted straight into the measures table the SQL reads.
 
 Outside references: sustained 30 % / 40 % eGFR decline endpoints (Levey et al., AJKD
 2014;64:821); kidney failure = GFR category G5, below 15 (KDIGO 2012); CKD = eGFR below 60 or
@@ -38,16 +38,16 @@ def warehouse(settings):
     write_trajectory_rules(con, settings)
     con.execute(
         """
-        create table kidney_measures (
+        create table measures_base (
             person_key varchar, collected_date date, reported_date date, analyte varchar,
             egfr double, acr_mg_g double, is_acr_estimated boolean, a_category varchar,
             aer_mg_24h double
         )
         """
     )
-    # no results of other analytes: the diabetes rules see an empty lab_results
+    # no results of other analytes: the diabetes rules see an empty int_results_known
     con.execute(
-        "create table lab_results (person_key varchar, collected_date date, reported_date date, "
+        "create table int_results_known (person_key varchar, collected_date date, reported_date date, "
         "analyte varchar, comparator varchar, reported_unit varchar, reported_value double, "
         "is_fasting boolean)"
     )
@@ -63,12 +63,12 @@ def insert(con, person: str, egfr: list[tuple[int, float]] = (), acr: list[tuple
            estimated_acr: bool = False, reported_lag: int = 1) -> None:  # fmt: skip
     for offset, value in egfr:
         con.execute(
-            "insert into kidney_measures values (?, ?, ?, 'creatinine', ?, null, null, null, null)",
+            "insert into measures_base values (?, ?, ?, 'creatinine', ?, null, null, null, null)",
             [person, day(offset), day(offset + reported_lag), value],
         )
     for offset, value in acr:
         con.execute(
-            "insert into kidney_measures values (?, ?, ?, 'acr', null, ?, ?, ?, null)",
+            "insert into measures_base values (?, ?, ?, 'acr', null, ?, ?, ?, null)",
             [person, day(offset), day(offset + reported_lag), value, estimated_acr,
              "A1" if value < 30 else "A2" if value <= 300 else "A3"],
         )
@@ -76,6 +76,11 @@ def insert(con, person: str, egfr: list[tuple[int, float]] = (), acr: list[tuple
 
 def build(con, period_end: dt.date = PERIOD_END) -> dict[tuple[str, str], dict]:
     params = {**event_params(load_settings(CONFIG_DIR), Period.parse(PERIOD)), "period_end": period_end}
+    # what int_results_known / int_measures_known do upstream: only what is known by the period end
+    con.execute(
+        "create or replace table int_measures_known as select * from measures_base "
+        "where collected_date <= ? and reported_date <= ?", [period_end, period_end],
+    )
     build_table(con, "int_daily_values_averaged", params=params)
     build_table(con, "kidney_events", params=params)
     frame = con.sql("select * from kidney_events").pl()
@@ -277,7 +282,7 @@ def test_new_onset_albuminuria_after_diabetes(warehouse):
     # ADA: HbA1c >= 6.5 % evidences diabetes; new-onset = first A2/A3 after that, none before
     for person, hba1c_day in (("onset", 10), ("before", 100)):
         warehouse.execute(
-            "insert into lab_results values (?, ?, ?, 'hba1c', null, '%', 7.2, null)",
+            "insert into int_results_known values (?, ?, ?, 'hba1c', null, '%', 7.2, null)",
             [person, day(hba1c_day), day(hba1c_day + 1)],
         )
     insert(warehouse, "onset", acr=[(5, 12.0), (60, 45.0)])

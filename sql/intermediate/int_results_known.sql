@@ -1,0 +1,9 @@
+-- int_results_known: the accepted results as known at the period end ($period_end): for each
+-- result, the latest version reported by then, if it is final, amended or corrected, collected
+-- by then, and not the same result already received from another source. The as-of twin of
+-- lab_results; every person-level table of a period reads this, not lab_results.
+select v.*
+from result_versions as v
+join staging.int_versions_as_of as k on k.file_id = v.file_id and k.line_no = v.line_no
+where k.outcome = 'accepted' and v.collected_date <= $period_end
+order by v.person_key, v.collected_date, v.analyte, v.source_id, v.file_id, v.line_no
