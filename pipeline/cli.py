@@ -135,6 +135,39 @@ def demo(
     raise typer.Exit(EXIT_OK if code == EXIT_HELD_BACK else code)
 
 
+@app.command()
+def backfill(
+    from_period: Annotated[str, typer.Option("--from", help="First month, YYYY-MM.")],
+    to_period: Annotated[str, typer.Option("--to", help="Last month, YYYY-MM.")],
+    config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
+    inbox: Annotated[Path, typer.Option(help="Inbox folder.")] = Path("sample_extracts"),
+    out: Annotated[Path, typer.Option(help="Output folder.")] = Path("out"),
+    force: Annotated[bool, typer.Option("--force", help="Run months already published again.")] = False,
+    demo_key: Annotated[bool, typer.Option("--demo-key", help="Use the public demo key (samples only).")] = False,
+    verbose: Annotated[bool, typer.Option("--verbose", help="Show Prefect's own log lines.")] = False,
+) -> None:
+    """Run a range of months in order, skipping those already published (unless --force)."""
+    from pipeline.backfill import months_to_run
+
+    try:
+        first, last = Period.parse(from_period), Period.parse(to_period)
+        load_settings(config)
+    except (ValueError, ConfigError) as exc:
+        _fail(str(exc))
+    if last < first:
+        _fail(f"--to {last} is before --from {first}")
+    plan = months_to_run(out, first, last, force)
+    worst = EXIT_OK
+    for i, (period, skip) in enumerate(plan, start=1):
+        if skip:
+            console.print(f"[{i}/{len(plan)}] {period}: already published, skipped (--force runs it again)")
+            continue
+        console.print(f"[{i}/{len(plan)}] {period}")
+        code = _run(period.label, config, inbox, out, demo=demo_key, verbose=verbose)
+        worst = max(worst, code)
+    raise typer.Exit(worst)
+
+
 @sources_app.command("check")
 def sources_check(
     source_id: Annotated[str, typer.Argument(help="Source id, as in config/sources/<id>.yaml.")],

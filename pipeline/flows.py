@@ -24,10 +24,17 @@ from prefect import flow, task  # noqa: E402
 from pipeline.disclosure import disclose_stage  # noqa: E402
 from pipeline.ingest import land_inbox, scan_inbox  # noqa: E402
 from pipeline.linkage import link_stage  # noqa: E402
+from pipeline.manifest import build_manifest, input_files, record_run  # noqa: E402
 from pipeline.measures import measure_stage  # noqa: E402
 from pipeline.periods import Period  # noqa: E402
 from pipeline.pseudonymise import PseudonymKey, resolve_key  # noqa: E402
-from pipeline.publish import commit_month, open_warehouse, write_exports  # noqa: E402
+from pipeline.publish import (  # noqa: E402
+    commit_month,
+    open_warehouse,
+    quality_docs_dir,
+    write_exports,
+    write_json,
+)
 from pipeline.settings import Settings, load_settings  # noqa: E402
 from pipeline.summaries import summarise_stage  # noqa: E402
 from pipeline.validate import validate_stage  # noqa: E402
@@ -43,7 +50,11 @@ class RunContext:
     key: PseudonymKey
     con: duckdb.DuckDBPyConnection
     report: Callable[[str, float, str], None]
+    run_id: str = ""
+    started_at: dt.datetime = field(default_factory=lambda: dt.datetime.now(dt.timezone.utc))
     stages: dict[str, dict[str, Any]] = field(default_factory=dict)
+    manifest: dict[str, Any] = field(default_factory=dict)
+    batch_checks: dict[str, dict[str, Any]] = field(default_factory=dict)
 
 
 _RUNS: dict[str, RunContext] = {}
@@ -82,11 +93,29 @@ def ingest_task(run_id: str) -> dict[str, Any]:
 @task(name="validate")
 def validate_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        s = validate_stage(ctx.con, ctx.settings)
+        s = validate_stage(ctx.con, ctx.settings, batch_gate=lambda con: _expectations(ctx, con))
         return {"valid": s.rows_valid, "rejected": s.rows_rejected, "lab_results": s.lab_results,
+                "batches checked": len(ctx.batch_checks),
                 "by_source": s.by_source, "held_back_sources": s.held_back}  # fmt: skip
 
     return _stage(run_id, "validate", work)
+
+
+def _expectations(ctx: RunContext, con: duckdb.DuckDBPyConnection) -> dict[str, str]:
+    """Run the Great Expectations suites on this run's batches; the failed sources and why."""
+    gate = ctx.settings.pipeline.quality_gate
+    if not gate.great_expectations:
+        return {}
+    from pipeline.quality import check_batches  # imported here: GX takes seconds to import
+
+    docs = quality_docs_dir(ctx.out, ctx.period) if gate.data_docs else None
+    checks = check_batches(con, ctx.settings, docs)
+    ctx.batch_checks = {
+        s: {"success": c.success, "evaluated": c.evaluated, "failed": c.failed,
+            "unexpected_row_ids": c.unexpected_row_ids, "seconds": round(c.seconds, 3)}
+        for s, c in checks.items()
+    }  # fmt: skip
+    return {s: "; ".join(c.failed[:3]) for s, c in checks.items() if not c.success}
 
 
 @task(name="measure")
@@ -131,10 +160,15 @@ def publish_task(run_id: str) -> dict[str, Any]:
 @task(name="export", retries=2, retry_delay_seconds=[2, 10])
 def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        folder = write_exports(ctx.con, ctx.out, ctx.period, summary)
+        folder = write_exports(ctx.con, ctx.out, ctx.period, {"run_summary.json": summary,
+                                                                "run_manifest.json": ctx.manifest})
         return {"exports": str(folder)}
 
-    return _stage(run_id, "export", work)
+    result = _stage(run_id, "export", work)
+    ctx = _RUNS[run_id]
+    ctx.manifest["durations_seconds"] = {name: info["seconds"] for name, info in ctx.stages.items()}
+    write_json(Path(result["exports"]) / "run_manifest.json", ctx.manifest)
+    return result
 
 
 def headline(ctx: RunContext) -> dict[str, Any]:
@@ -170,6 +204,7 @@ def start_run(period: str, config_dir: str, inbox: str, out: str, demo: bool,
     ctx = RunContext(settings, Period.parse(period), Path(inbox), Path(out), key,
                      open_warehouse(Path(out)), report)  # fmt: skip
     run_id = uuid.uuid4().hex
+    ctx.run_id = run_id
     _RUNS[run_id] = ctx
     return run_id
 
@@ -208,7 +243,6 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
     call(measure_task, run_id)
     link = call(link_task, run_id)
     call(summarise_task, run_id)
-    call(publish_task, run_id)
     summary = {
         "period": ctx.period.label,
         "demo_key": ctx.key.is_demo,
@@ -217,7 +251,14 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
         "held_back_files": dict(ingest["held_back_files"]),
         "persons": link["persons"],
         "headline": headline(ctx),
+        "batch_checks": ctx.batch_checks,
     }
+    ctx.manifest = build_manifest(ctx.run_id, ctx.started_at, ctx.settings, ctx.period.label,
+                                  ctx.key.is_demo, ctx.stages, summary,
+                                  input_files(ctx.con, ctx.period.label))  # fmt: skip
+    record_run(ctx.con, ctx.manifest)
+    call(publish_task, run_id)
+    summary["exit_code"] = ctx.manifest["exit_code"]
     call(export_task, run_id, summary)
     return summary
 

@@ -36,8 +36,21 @@ def commit_month(con: duckdb.DuckDBPyConnection) -> None:
     con.execute("commit")
 
 
-def write_exports(con: duckdb.DuckDBPyConnection, out_dir: Path, period: Period, extra: dict) -> Path:
-    """Parquet and CSV of every published table for the period, plus a small manifest."""
+def write_json(path: Path, data: object) -> None:
+    """JSON with sorted keys, written to a temporary file and renamed into place."""
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_text(json.dumps(data, indent=2, sort_keys=True, default=str) + "\n", encoding="utf-8")
+    tmp.replace(path)
+
+
+def quality_docs_dir(out_dir: Path, period: Period) -> Path:
+    """Where this run's Data Docs are built; moved into ``out/<period>/quality/`` with the exports."""
+    return out_dir / f".{period.label}.quality"
+
+
+def write_exports(con: duckdb.DuckDBPyConnection, out_dir: Path, period: Period,
+                  documents: dict[str, object]) -> Path:
+    """Parquet and CSV of every published table for the period, plus the run's JSON documents."""
     final = out_dir / period.label
     work = out_dir / f".{period.label}.partial"
     shutil.rmtree(work, ignore_errors=True)
@@ -52,7 +65,11 @@ def write_exports(con: duckdb.DuckDBPyConnection, out_dir: Path, period: Period,
             f"copy ({query}) to {_literal(work / (table.name + '.csv'))} (format csv, header true)",
             {"period": period.label},
         )
-    (work / "run_summary.json").write_text(json.dumps(extra, indent=2, sort_keys=True, default=str) + "\n")
+    for name, data in documents.items():
+        write_json(work / name, data)
+    docs = quality_docs_dir(out_dir, period)
+    if docs.is_dir():
+        docs.rename(work / "quality")
     if final.exists():
         old = out_dir / f".{period.label}.old"
         shutil.rmtree(old, ignore_errors=True)

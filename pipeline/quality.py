@@ -1,17 +1,19 @@
 """Quality gate per source batch: one Great Expectations suite per source, and its Data Docs.
 
-Runs inside the validate stage after this run's rows were judged (``staging.int_results_validated``).
-For every source with rows in this run, its well-formed rows (``reason_code`` null) form one batch,
-a pandas frame with a ``row_id`` column (``"<file_id>:<line_no>"``). One expectation suite, built
-in code from the reference tables, is validated against the batch in one call (a validation
-definition in an ephemeral context: no files, no network, progress bars off). The suite checks:
+Runs inside the validate stage after this run's rows were judged
+(``staging.int_results_validated``). For every source with rows in this run, its well-formed rows
+(``reason_code`` null) form one batch, a pandas frame with a ``row_id`` column
+(``"<file_id>:<line_no>"``). One expectation suite, built in code from the reference tables, is
+validated against the batch in one call (a validation definition in an ephemeral context: no
+files, no network, progress bars off). The suite checks:
 
 - the schema of the standardised table: the column set, and the type of every column;
-- analytes among ``reference.analytes``; each analyte's unit equal to its canonical unit (a pair
-  expectation on ``analyte, unit``);
-- the value of each analyte within ``reference.ranges`` (canonical unit), leaving out
-  cancellations and entered-in-error rows, which carry no result; a value present on every other
-  row;
+- analytes among ``reference.analytes``; each analyte's unit equal to its canonical unit (an
+  in-set expectation on the derived column ``analyte_unit``, "creatinine [mg/dL]");
+- the value within the plausible range of its analyte in the canonical unit (``reference.ranges``,
+  carried on each row as ``value_min`` and ``value_max``; null on cancellations and
+  entered-in-error rows, which carry no result), as two column-pair expectations; a value present
+  on every other row;
 - no null key (person_key, collected_date, analyte, source_id, file_id, line_no); ``row_id``
   unique; status in the FHIR Observation status value set; sex in F, M, U.
 
@@ -41,7 +43,6 @@ import os
 import re
 import shutil
 import time
-import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -53,7 +54,8 @@ from pipeline.settings import FHIR_STATUSES, Settings
 log = logging.getLogger(__name__)
 
 #: Rows per validation call; a larger batch is validated in chunks (proposed setting
-#: ``quality_gate.chunk_rows``). At 1M rows one call peaks at about 1 GB over the frame.
+#: ``quality_gate.chunk_rows``). Measured on 2 cores: 1M rows in one call about 9 s and +1.3 GB
+#: peak (frame included); in chunks of 500k about 7 s and +1.0 GB.
 DEFAULT_CHUNK_ROWS = 1_000_000
 #: How many failing row ids a BatchCheck carries (every failing id is in the GX result).
 MAX_UNEXPECTED_IDS = 20
@@ -64,11 +66,11 @@ SEX_CODES = ("F", "M", "U")
 #: Columns that must never be null on a well-formed row.
 KEY_COLUMNS = ("person_key", "collected_date", "analyte", "source_id", "file_id", "line_no")
 
-#: The standardised table (the columns of result_versions, before the outcome is settled) plus
-#: row_id, with the pandas dtype each has once read through polars: strings ``str`` (pandas 3),
-#: dates ``datetime64[ms]``, the nullable flag ``boolean``.
-BATCH_COLUMNS: dict[str, str] = {
-    "row_id": "str",
+#: The standardised table (the columns of result_versions, before the outcome is settled) with
+#: the pandas dtype each has once read through polars: strings ``str`` (pandas 3), dates
+#: ``datetime64[ms]``, the flag ``bool`` (held as pandas' nullable ``boolean``; GX compares the
+#: scalar type, so both pass and ``object`` fails).
+STANDARD_COLUMNS: dict[str, str] = {
     "source_id": "str",
     "file_id": "int64",
     "line_no": "int64",
@@ -86,12 +88,37 @@ BATCH_COLUMNS: dict[str, str] = {
     "reported_unit": "str",
     "value": "float64",
     "unit": "str",
-    "is_fasting": "boolean",
+    "is_fasting": "bool",
     "height_cm": "float64",
     "sex": "str",
     "birth_year": "int32",
     "age_years": "int64",
     "district_code": "str",
+}
+_WITHDRAWN_SQL = "v.status in ('cancelled', 'entered-in-error')"
+#: Columns added to the batch (SQL over staging.int_results_validated as v, reference.ranges as r)
+#: and the columns they are made from. GX's own pair-in-set and row-condition expectations walk
+#: or copy the whole frame on pandas (about 8 s per 40k rows; about 6 s per 1M rows for nine
+#: per-analyte ranges), so the pairs are put on each row and checked column-wise.
+#: name: (dtype, SQL, columns it is made from)
+DERIVED_COLUMNS: dict[str, tuple[str, str, tuple[str, ...]]] = {
+    "row_id": ("str", "v.file_id::varchar || ':' || v.line_no::varchar", ("file_id", "line_no")),
+    "analyte_unit": (
+        "str", "coalesce(v.analyte, '(none)') || ' [' || coalesce(v.unit, '(none)') || ']'",
+        ("analyte", "unit"),
+    ),
+    "value_min": (
+        "float64", f"case when {_WITHDRAWN_SQL} then null else r.min_value end", ("analyte", "status"),
+    ),
+    "value_max": (
+        "float64", f"case when {_WITHDRAWN_SQL} then null else r.max_value end", ("analyte", "status"),
+    ),
+}  # fmt: skip
+#: Every column of a batch and its expected dtype: row_id, the standard ones, the derived ones.
+BATCH_COLUMNS: dict[str, str] = {
+    "row_id": "str",
+    **STANDARD_COLUMNS,
+    **{c: dtype for c, (dtype, _, _) in DERIVED_COLUMNS.items() if c != "row_id"},
 }
 
 ROW_COUNT_CHECK = "row_count_balance"
@@ -139,6 +166,7 @@ _GX_IMAGE_FALLBACK = "logo-long.png"
 _TAG = re.compile(r"<(link|script)\b[^>]*>", re.IGNORECASE)
 _TAG_URL = re.compile(r"""\b(href|src)\s*=\s*(["'])(.*?)\2""", re.IGNORECASE)
 _SRI = re.compile(r"""\s+(integrity|crossorigin)(\s*=\s*(["']).*?\3)?""", re.IGNORECASE)
+_SITE_STATIC = re.compile(r"^(\./|(\.\./)+)static/")
 _GX_IMAGE = re.compile(re.escape(_GX_IMAGE_HOST) + r"([A-Za-z0-9_.-]+)(\?[^\"')\s]*)?")
 #: External stylesheet / script / font references left in a page or stylesheet.
 EXTERNAL_ASSET = re.compile(
@@ -204,35 +232,33 @@ def check_batches(
     columns = _batch_columns(con)
     spec = _SuiteSpec.from_reference(con)
 
-    with warnings.catch_warnings():
-        # GX 1.24 on pandas 3 / numpy 2: nothing observed yet; kept narrow on purpose.
-        context = _ephemeral_context(docs_dir)
-        datasource = context.data_sources.add_pandas(_DATASOURCE)
-        results: dict[str, BatchCheck] = {}
-        for source_id, (well_formed, rejected) in counts.items():
-            started = time.perf_counter()
-            suite = context.suites.add(spec.build_suite(source_id))
-            definition = _validation_definition(context, datasource, source_id, suite)
-            merged: dict[str, _Merged] = {}
-            rows_seen = 0
-            chunks = _chunks(con, source_id, well_formed, chunk_rows)
-            for number, bounds in enumerate(chunks, start=1):
-                frame = _batch_frame(con, source_id, columns, bounds)
-                rows_seen += len(frame)
-                result = definition.run(
-                    batch_parameters={"dataframe": frame},
-                    result_format={"result_format": "COMPLETE",
-                                   "unexpected_index_column_names": ["row_id"]},
-                    run_id=_run_id(number, len(chunks)),
-                )  # fmt: skip
-                del frame
-                _merge(merged, result)
-            balance = _balance(rows_seen, rejected, expected_read.get(source_id, 0))
-            merged[ROW_COUNT_CHECK] = balance
-            results[source_id] = _verdict(source_id, merged, time.perf_counter() - started,
-                                          rows_seen, len(chunks))  # fmt: skip
-        if docs_dir is not None:
-            build_docs(context, Path(docs_dir))
+    context = _ephemeral_context(docs_dir)
+    datasource = context.data_sources.add_pandas(_DATASOURCE)
+    results: dict[str, BatchCheck] = {}
+    for source_id, (well_formed, rejected) in counts.items():
+        started = time.perf_counter()
+        suite = context.suites.add(spec.build_suite(source_id))
+        definition = _validation_definition(context, datasource, source_id, suite)
+        merged: dict[str, _Merged] = {}
+        rows_seen = 0
+        chunks = _chunks(con, source_id, well_formed, chunk_rows)
+        for number, bounds in enumerate(chunks, start=1):
+            frame = _batch_frame(con, source_id, columns, bounds)
+            rows_seen += len(frame)
+            result = definition.run(
+                batch_parameters={"dataframe": frame},
+                result_format={"result_format": "COMPLETE",
+                               "unexpected_index_column_names": ["row_id"]},
+                run_id=_run_id(number, len(chunks)),
+            )  # fmt: skip
+            del frame
+            _merge(merged, result)
+        balance = _balance(rows_seen, rejected, expected_read.get(source_id, 0))
+        merged[ROW_COUNT_CHECK] = balance
+        results[source_id] = _verdict(source_id, merged, time.perf_counter() - started,
+                                      rows_seen, len(chunks))  # fmt: skip
+    if docs_dir is not None:
+        build_docs(context, Path(docs_dir))
     return results
 
 
@@ -278,7 +304,12 @@ def _batch_columns(con: duckdb.DuckDBPyConnection) -> list[str]:
         "select column_name from duckdb_columns() "
         "where schema_name = 'staging' and table_name = 'int_results_validated'"
     ).fetchall()}  # fmt: skip
-    return [c for c in BATCH_COLUMNS if c == "row_id" or c in present]
+    def available(column: str) -> bool:
+        if column in DERIVED_COLUMNS:
+            return set(DERIVED_COLUMNS[column][2]) <= present
+        return column in present
+
+    return [c for c in BATCH_COLUMNS if available(c)]
 
 
 def _chunks(con: duckdb.DuckDBPyConnection, source_id: str, rows: int,
@@ -322,17 +353,17 @@ def _batch_frame(con: duckdb.DuckDBPyConnection, source_id: str, columns: list[s
     """
     import polars as pl
 
-    select = ", ".join(
-        "file_id::varchar || ':' || line_no::varchar as row_id" if c == "row_id" else c
-        for c in columns
-    )
-    where = "source_id = $source and reason_code is null"
+    select = ", ".join(f"{DERIVED_COLUMNS[c][1]} as {c}" if c in DERIVED_COLUMNS else f"v.{c}"
+                       for c in columns)  # fmt: skip
+    where = "v.source_id = $source and v.reason_code is null"
     params: dict[str, Any] = {"source": source_id}
     if bounds is not None:
-        where += (" and (file_id > $f0 or (file_id = $f0 and line_no >= $l0))"
-                  " and (file_id < $f1 or (file_id = $f1 and line_no <= $l1))")  # fmt: skip
+        where += (" and (v.file_id > $f0 or (v.file_id = $f0 and v.line_no >= $l0))"
+                  " and (v.file_id < $f1 or (v.file_id = $f1 and v.line_no <= $l1))")  # fmt: skip
         params.update(f0=bounds[0], l0=bounds[1], f1=bounds[2], l1=bounds[3])
-    query = f"select {select} from staging.int_results_validated where {where} order by file_id, line_no"
+    query = (f"select {select} from staging.int_results_validated as v "
+             f"left join reference.ranges as r on r.analyte = v.analyte "
+             f"where {where} order by v.file_id, v.line_no")  # fmt: skip
     frame = con.sql(query, params=params).pl()
     flags = [name for name, dtype in frame.schema.items() if dtype == pl.Boolean]
     out = frame.to_pandas()
@@ -377,12 +408,19 @@ class _SuiteSpec:
 
         e = gx.expectations
         result_bearing = Column("status").is_not_in(list(WITHDRAWN_STATUSES))
+        ranges = "; ".join(f"{a} {lo:g}-{hi:g} {self.canonical_units.get(a, '')}".rstrip()
+                           for a, (lo, hi) in sorted(self.ranges.items()))  # fmt: skip
+        range_note = (
+            "value_min and value_max are the plausible range of the row's analyte in its canonical "
+            f"unit (reference.ranges), null on withdrawn results: {ranges}"
+        )
         checks: list[tuple[str, Any]] = [
             ("expect_table_columns_to_match_set",
              e.ExpectTableColumnsToMatchSet(column_set=list(BATCH_COLUMNS), exact_match=True)),
         ]  # fmt: skip
         checks += [
-            (f"expect_column_values_to_be_of_type({c}, {t})", e.ExpectColumnValuesToBeOfType(column=c, type_=t))
+            (f"expect_column_values_to_be_of_type({c}, {t})",
+             e.ExpectColumnValuesToBeOfType(column=c, type_=t))
             for c, t in BATCH_COLUMNS.items()
         ]
         checks += [
@@ -390,27 +428,31 @@ class _SuiteSpec:
             for c in KEY_COLUMNS
         ]
         checks += [
-            ("expect_column_values_to_be_unique(row_id)", e.ExpectColumnValuesToBeUnique(column="row_id")),
+            ("expect_column_values_to_be_unique(row_id)",
+             e.ExpectColumnValuesToBeUnique(column="row_id")),
             ("expect_column_values_to_be_in_set(analyte)",
-             e.ExpectColumnValuesToBeInSet(column="analyte", value_set=sorted(self.canonical_units))),
-            ("expect_column_pair_values_to_be_in_set(analyte, unit)",
-             e.ExpectColumnPairValuesToBeInSet(
-                 column_A="analyte", column_B="unit",
-                 value_pairs_set=sorted(self.canonical_units.items()),
-                 ignore_row_if="neither")),
+             e.ExpectColumnValuesToBeInSet(column="analyte",
+                                           value_set=sorted(self.canonical_units))),
+            ("expect_column_values_to_be_in_set(analyte_unit)",
+             e.ExpectColumnValuesToBeInSet(
+                 column="analyte_unit",
+                 value_set=[f"{a} [{u}]" for a, u in sorted(self.canonical_units.items())],
+                 notes="each analyte in its canonical unit (reference.analytes)")),
             ("expect_column_values_to_be_in_set(status)",
              e.ExpectColumnValuesToBeInSet(column="status", value_set=list(FHIR_STATUSES))),
             ("expect_column_values_to_be_in_set(sex)",
              e.ExpectColumnValuesToBeInSet(column="sex", value_set=list(SEX_CODES))),
+            # a null value is allowed only on a withdrawn result; between-checks skip nulls
             ("expect_column_values_to_not_be_null(value, status not withdrawn)",
              e.ExpectColumnValuesToNotBeNull(column="value", row_condition=result_bearing)),
-        ]  # fmt: skip
-        checks += [
-            (f"expect_column_values_to_be_between(value, analyte={analyte})",
-             e.ExpectColumnValuesToBeBetween(
-                 column="value", min_value=lo, max_value=hi,
-                 row_condition=(Column("analyte") == analyte) & result_bearing))
-            for analyte, (lo, hi) in self.ranges.items()
+            ("expect_column_pair_values_a_to_be_greater_than_b(value, value_min)",
+             e.ExpectColumnPairValuesAToBeGreaterThanB(
+                 column_A="value", column_B="value_min", or_equal=True,
+                 ignore_row_if="either_value_is_missing", notes=range_note)),
+            ("expect_column_pair_values_a_to_be_greater_than_b(value_max, value)",
+             e.ExpectColumnPairValuesAToBeGreaterThanB(
+                 column_A="value_max", column_B="value", or_equal=True,
+                 ignore_row_if="either_value_is_missing", notes=range_note)),
         ]  # fmt: skip
         suite = gx.ExpectationSuite(name=source_id)
         for name, expectation in checks:
@@ -538,13 +580,13 @@ def localise_docs(docs_dir: Path) -> list[Path]:
     A stylesheet, script or font still loaded from the network afterwards (a template changed
     with a GX upgrade) is logged as a warning, with its URL.
     """
-    vendor = docs_dir.joinpath(*_VENDOR_DIR)
-    shutil.copytree(ASSETS_DIR, vendor, dirs_exist_ok=True, ignore=shutil.ignore_patterns("README.md"))
-    images = docs_dir / "static" / "images"
+    static = docs_dir / _VENDOR_DIR[0]
+    shutil.copytree(ASSETS_DIR, docs_dir.joinpath(*_VENDOR_DIR), dirs_exist_ok=True,
+                    ignore=shutil.ignore_patterns("README.md"))  # fmt: skip
     pages = sorted(docs_dir.rglob("*.html"))
-    for path in pages + sorted((docs_dir / "static" / "styles").glob("*.css")):
+    for path in pages + sorted((static / "styles").glob("*.css")):
         text = path.read_text(encoding="utf-8")
-        new = _rewrite(text, os.path.relpath(vendor, path.parent), os.path.relpath(images, path.parent), images)
+        new = _rewrite(text, static, path.parent)
         if new != text:
             path.write_text(new, encoding="utf-8")
     leftovers = external_assets(docs_dir)
@@ -554,8 +596,12 @@ def localise_docs(docs_dir: Path) -> list[Path]:
     return pages
 
 
-def _rewrite(text: str, vendor_rel: str, images_rel: str, images: Path) -> str:
-    vendor_rel, images_rel = vendor_rel.replace(os.sep, "/"), images_rel.replace(os.sep, "/")
+def _rewrite(text: str, static: Path, page_dir: Path) -> str:
+    """The text of a page or stylesheet with every asset link pointing at the site's static/."""
+    static_rel = Path(os.path.relpath(static, page_dir)).as_posix()
+    vendor_rel = f"{static_rel}/{'/'.join(_VENDOR_DIR[1:])}"
+    images_rel = f"{static_rel}/images"
+    images = static / "images"
 
     def tag(match: re.Match[str]) -> str:
         whole = match.group(0)
@@ -567,12 +613,16 @@ def _rewrite(text: str, vendor_rel: str, images_rel: str, images: Path) -> str:
             local = f"{vendor_rel}/{CDN_ASSETS[url]}"
             whole = whole[: found.start(3)] + local + whole[found.end(3):]
             return _SRI.sub("", whole)  # the CDN's integrity hash and CORS mode do not apply
+        in_site = _SITE_STATIC.match(url)
+        if in_site:  # GX counts one folder too few for validation pages' favicon
+            local = f"{static_rel}/{url[in_site.end():]}"
+            return whole[: found.start(3)] + local + whole[found.end(3):]
         return whole
 
     def script_drop(text: str) -> str:
         for url in DROPPED_SCRIPTS:
-            text = re.sub(r"<script\b[^>]*\bsrc\s*=\s*[\"']" + re.escape(url) + r"[\"'][^>]*>\s*</script>\s*",
-                          "", text, flags=re.IGNORECASE)  # fmt: skip
+            script = r"<script\b[^>]*\bsrc\s*=\s*[\"']" + re.escape(url) + r"[\"'][^>]*>\s*</script>\s*"
+            text = re.sub(script, "", text, flags=re.IGNORECASE)
         return text
 
     def image(match: re.Match[str]) -> str:

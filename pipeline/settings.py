@@ -203,6 +203,9 @@ class DisclosureSettings(_Strict):
 
 class QualityGateSettings(_Strict):
     max_rejection_rate: float = Field(default=0.05, ge=0, le=1)
+    great_expectations: bool = True
+    chunk_rows: int = Field(default=500_000, ge=10_000)
+    data_docs: bool = True
 
 
 class RangeSetting(_Strict):

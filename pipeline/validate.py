@@ -11,6 +11,7 @@ ledger's counts are brought up to date. A file whose counts do not balance stops
 from __future__ import annotations
 
 import datetime as dt
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import duckdb
@@ -38,19 +39,23 @@ class ValidateSummary:
 
 
 def validate_landed(
-    con: duckdb.DuckDBPyConnection, rejection_limits: dict[str, float]
+    con: duckdb.DuckDBPyConnection,
+    rejection_limits: dict[str, float],
+    batch_gate: Callable[[duckdb.DuckDBPyConnection], dict[str, str]] | None = None,
 ) -> tuple[int, int, dict[str, str]]:
     """Judge this run's landed rows; append them to rejected_rows or result_versions.
 
     A source whose share of rejected rows in this run exceeds its limit is held back: its files
     are marked ``held_back`` with the reason and none of their rows is stored, so the next run
-    tries them again.
+    tries them again. ``batch_gate`` (the Great Expectations suites) returns the sources whose
+    batch failed, with the reason; they are held back the same way.
     """
     build_table(con, "stg_landed_rows", "staging.stg_landed_rows")
     con.execute("create or replace view stg_landed_rows as select * from staging.stg_landed_rows")
     build_table(con, "int_results_validated", "staging.int_results_validated")
     con.execute("drop view stg_landed_rows")
-    held = hold_back_sources(con, rejection_limits)
+    failed_batches = batch_gate(con) if batch_gate is not None else {}
+    held = hold_back_sources(con, rejection_limits, failed_batches)
     rejected = con.execute(
         """
         insert into rejected_rows
@@ -76,8 +81,10 @@ def validate_landed(
     return valid, rejected, held
 
 
-def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str, float]) -> dict[str, str]:
-    """The quality gate on rejection rates: mark the files of sources over their limit."""
+def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str, float],
+                      failed_batches: dict[str, str] | None = None) -> dict[str, str]:
+    """The quality gate: mark the files of sources over their rejection limit, or whose batch
+    failed its expectation suite."""
     rates = con.execute(
         """
         select source_id, count(*) as n, count(*) filter (where reason_code is not null) as rejected
@@ -87,12 +94,16 @@ def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str
     held: dict[str, str] = {}
     for source_id, n, rejected in rates:
         limit = rejection_limits.get(source_id, 1.0)
+        reasons = []
         if n and rejected / n > limit:
-            held[source_id] = (
+            reasons.append(
                 f"{rejected} of {n} rows rejected ({rejected / n:.1%}), above the limit of "
-                f"{limit:.1%}: held back this month; see rejected reasons with "
-                f"'kidneysurv sources check'"
+                f"{limit:.1%}; see rejected reasons with 'kidneysurv sources check'"
             )
+        if failed_batches and source_id in failed_batches:
+            reasons.append(f"batch failed its expectation suite: {failed_batches[source_id]}")
+        if reasons:
+            held[source_id] = "held back this month: " + "; ".join(reasons)
             con.execute(
                 "update ingest_files set status = 'held_back', message = ? "
                 "where source_id = ? and file_id in (select distinct file_id from staging.landed_rows)",
@@ -176,14 +187,18 @@ def outcome_counts(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, int]]:
     return {r[0]: {k: int(v or 0) for k, v in zip(keys, r[1:])} for r in rows}
 
 
-def validate_stage(con: duckdb.DuckDBPyConnection, settings: Settings) -> ValidateSummary:
+def validate_stage(
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    batch_gate: Callable[[duckdb.DuckDBPyConnection], dict[str, str]] | None = None,
+) -> ValidateSummary:
     """The whole validate stage: rules, quality gate, versions, lab_results, ledger balance."""
     default = settings.pipeline.quality_gate.max_rejection_rate
     limits = {
         s.id: s.max_rejection_rate if s.max_rejection_rate is not None else default
         for s in settings.sources
     }
-    valid, rejected, held = validate_landed(con, limits)
+    valid, rejected, held = validate_landed(con, limits, batch_gate)
     n_results = resolve_versions(con)
     update_ledger_counts(con)
     return ValidateSummary(valid, rejected, n_results, outcome_counts(con), held)

@@ -199,3 +199,27 @@ def test_same_measurement_in_three_layouts_gives_one_canonical_value(prefect_har
     assert accepted == [("corvale_lab_chain",)]
     assert len(egfr) == 1
     shutil.rmtree(out)
+
+
+def test_backfill_runs_in_order_skips_published_and_force_reruns(prefect_harness, tmp_path):
+    out = tmp_path / "out"
+    args = ["backfill", "--from", "2025-11", "--to", "2026-01", "--config", str(REPO / "config"),
+            "--inbox", str(SAMPLES), "--out", str(out), "--demo-key"]  # fmt: skip
+    runner = CliRunner()
+    first = runner.invoke(app, args[:4] + ["2025-12"] + args[5:])
+    assert first.exit_code == 0, first.output
+    assert "[1/2] 2025-11" in first.output and "[2/2] 2025-12" in first.output
+    second = runner.invoke(app, args)
+    assert second.exit_code == 0, second.output
+    assert "2025-11: already published, skipped" in second.output
+    assert "2025-12: already published, skipped" in second.output
+    assert "[3/3] 2026-01" in second.output and "2026-01: already" not in second.output
+    forced = runner.invoke(app, args[:4] + ["2025-11", "--force"] + args[5:])
+    assert forced.exit_code == 0, forced.output
+    assert "already published" not in forced.output
+    con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
+    try:
+        periods = [p for (p,) in con.execute("select period from runs order by started_at, period").fetchall()]
+    finally:
+        con.close()
+    assert periods == ["2025-11", "2025-12", "2026-01", "2025-11"]

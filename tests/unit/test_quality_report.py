@@ -28,3 +28,27 @@ def test_source_quality_and_reasons_balance(tmp_path):
         ("2026-01", "unit_incompatible", 1, "westerfold_general_lab/results_2026-01.csv:4"),
         ("2026-02", "not_numeric", 1, "westerfold_general_lab/results_2026-02.csv:2"),
     ]
+
+
+def test_a_failed_batch_is_held_back_and_the_others_publish(tmp_path, monkeypatch):
+    """The gate's wiring: a source whose batch fails its expectation suite is held back
+    (its files marked, none of its rows stored), another source publishes, exit code 1."""
+    import pipeline.flows as flows
+
+    monkeypatch.setattr(flows, "_expectations", lambda ctx, con: {"westerfold_general_lab": "suite failed"})
+    config = make_small_config(tmp_path / "config")
+    semi = "PatientRef;YearOfBirth;Gender;AreaCode;SampleNo;SampleDate;TestCode;Result;Units;State;ReportDate\n"
+    inbox = write_inbox(tmp_path, {
+        "westerfold_general_lab/results_2026-01.csv": STD
+        + "WF-q1,1960,F,WF01,S1,2026-01-10,2160-0,1.0,mg/dL,final,2026-01-11\n",
+        "corvale_lab_chain/export_202601.csv": semi + "WF-q2;1970;M;WF02;C1;10/01/2026;CREA;80;µmol/l;F;11/01/2026\n",
+    })  # fmt: skip
+    with run_month(config, inbox, tmp_path / "out") as con:
+        files = rows(con, "select source_id, status, message from ingest_files order by source_id")
+        results = rows(con, "select source_id from lab_results")
+        exit_code = rows(con, "select exit_code from runs")[0][0]
+    assert files[0][:2] == ("corvale_lab_chain", "ingested")
+    assert files[1][:2] == ("westerfold_general_lab", "held_back")
+    assert "expectation suite" in files[1][2]
+    assert results == [("corvale_lab_chain",)]
+    assert exit_code == 1
