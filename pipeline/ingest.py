@@ -171,7 +171,14 @@ def read_delimited(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
                 values.clear()
 
     start = 2
-    for row in reader:
+    rows_iter = iter(reader)
+    while True:
+        try:
+            row = next(rows_iter)
+        except StopIteration:
+            break
+        except csv.Error as exc:
+            raise FileFault(f"{path}: line {reader.line_num}: cannot be read as CSV ({exc})") from None
         end = reader.line_num
         raw = "\n".join(lines[start - 1 : end])
         line_no, start = start, end + 1
@@ -246,37 +253,105 @@ def _to_landed(frame: pl.DataFrame, source: SourceConfig, item: InboxFile) -> pl
 # --------------------------------------------------------------------------- FHIR NDJSON
 
 
+class _Malformed(ValueError):
+    """A FHIR field of the wrong JSON type."""
+
+
+def _obj(parent: dict, key: str) -> dict:
+    value = parent.get(key)
+    if value is None:
+        return {}
+    if not isinstance(value, dict):
+        raise _Malformed(f"{key} is not a JSON object")
+    return value
+
+
+def _objects(parent: dict, key: str) -> list[dict]:
+    value = parent.get(key)
+    if value is None:
+        return []
+    if not isinstance(value, list) or not all(isinstance(v, dict) for v in value):
+        raise _Malformed(f"{key} is not a list of JSON objects")
+    return value
+
+
+def _text(parent: dict, key: str) -> str | None:
+    value = parent.get(key)
+    if value is None:
+        return None
+    if not isinstance(value, str):
+        raise _Malformed(f"{key} is not text")
+    return value
+
+
+def _ndjson_lines(text: str) -> list[str]:
+    """Records of an NDJSON text: split at line feeds only (JSON strings may hold U+2028)."""
+    return [line.removesuffix("\r") for line in text.split("\n")]
+
+
 def _read_patients(path: Path, source: SourceConfig) -> dict[str, dict]:
     patients: dict[str, dict] = {}
     if not path.is_file():
         raise FileFault(f"{path}: Patient.ndjson is missing beside {path.parent / 'Observation.ndjson'}")
     text = _decode(path, path.read_bytes(), "utf-8")
     system = source.fhir.linkage_identifier_system
-    for line_no, line in enumerate(text.splitlines(), start=1):
+    for line_no, line in enumerate(_ndjson_lines(text), start=1):
         if not line.strip():
             continue
         try:
             res = json.loads(line)
         except json.JSONDecodeError as exc:
             raise FileFault(f"{path}: line {line_no}: not valid JSON ({exc.msg})") from None
-        if res.get("resourceType") != "Patient" or "id" not in res:
+        if not isinstance(res, dict) or res.get("resourceType") != "Patient" or not isinstance(res.get("id"), str):
             raise FileFault(f"{path}: line {line_no}: expected a Patient resource with an id")
-        token, domain = None, source.id
-        for ident in res.get("identifier") or []:
-            if system and ident.get("system") == system and ident.get("value"):
-                token, domain = ident["value"], SHARED_DOMAIN if source.linkage == "shared" else source.id
-                break
-        if token is None:
-            token = f"Patient/{res['id']}"
-        address = (res.get("address") or [{}])[0]
-        patients[res["id"]] = {
-            "person_token": token,
-            "linkage_domain": domain,
-            "birth_year_text": str(res.get("birthDate") or "")[:4],
-            "sex_text": res.get("gender") or "",
-            "district_name": address.get("district") or "",
-        }
+        try:
+            token, domain = None, source.id
+            for ident in _objects(res, "identifier"):
+                value = _text(ident, "value")
+                if system and _text(ident, "system") == system and value:
+                    token, domain = value, SHARED_DOMAIN if source.linkage == "shared" else source.id
+                    break
+            addresses = _objects(res, "address")
+            patients[res["id"]] = {
+                "person_token": token if token is not None else f"Patient/{res['id']}",
+                "linkage_domain": domain,
+                "birth_year_text": (_text(res, "birthDate") or "")[:4],
+                "sex_text": _text(res, "gender") or "",
+                "district_name": (_text(addresses[0], "district") if addresses else None) or "",
+            }
+        except _Malformed as exc:
+            raise FileFault(f"{path}: line {line_no}: Patient {res['id']}: {exc}") from None
     return patients
+
+
+def _observation_fields(res: dict) -> dict[str, str | None]:
+    """The standard fields of one Observation; ``_Malformed`` when a field has the wrong type."""
+    loinc = next(
+        (_text(c, "code") for c in _objects(_obj(res, "code"), "coding") if _text(c, "system") == "http://loinc.org"),
+        None,
+    )
+    fields: dict[str, str | None] = {"test_code": loinc, "test_code_text": loinc}
+    quantity = res.get("valueQuantity")
+    if quantity is not None:
+        quantity = _obj(res, "valueQuantity")
+        number = quantity.get("value")
+        if number is not None and (isinstance(number, bool) or not isinstance(number, int | float)):
+            raise _Malformed("valueQuantity.value is not a number")
+        text = f"{_text(quantity, 'comparator') or ''}{number if number is not None else ''}"
+        fields.update(value_text=text, value_clean=text,
+                      unit_text=_text(quantity, "code") or _text(quantity, "unit"))  # fmt: skip
+    else:
+        fields.update(value_text=_text(res, "valueString"), value_clean=_text(res, "valueString"))
+    status = _text(res, "status")
+    specimen = _text(_obj(res, "specimen"), "reference") or ""
+    fields.update(
+        status=(status or "").lower(),
+        status_text=status,
+        specimen_id=specimen.rsplit("/", 1)[-1] or None,
+        collected_text=_text(res, "effectiveDateTime"),
+        reported_text=_text(res, "issued"),
+    )
+    return fields
 
 
 _FHIR_FIELDS = (
@@ -294,51 +369,33 @@ def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) 
     by_name = {name.casefold(): code for code, name in settings.districts.items()}
     text = _decode(path, path.read_bytes(), "utf-8")
     rows: dict[str, list] = {f: [] for f in _FHIR_FIELDS}
-    for line_no, line in enumerate(text.splitlines(), start=1):
+    for line_no, line in enumerate(_ndjson_lines(text), start=1):
         if not line.strip():
             continue
-        rec = {f: None for f in _FHIR_FIELDS}
+        rec: dict = {f: None for f in _FHIR_FIELDS}
         rec["line_no"] = line_no
         try:
             res = json.loads(line)
             if not isinstance(res, dict) or res.get("resourceType") != "Observation":
-                raise ValueError("not an Observation resource")
-        except (json.JSONDecodeError, ValueError) as exc:
+                raise _Malformed("not an Observation resource")
+            subject = _text(_obj(res, "subject"), "reference") or ""
+            rec.update(_observation_fields(res))
+        except (json.JSONDecodeError, _Malformed) as exc:
             rec["row_fault"] = f"malformed_record:{getattr(exc, 'msg', str(exc))}"
             rec["raw_text"] = _PATIENT_REF.sub(_MASK, line[:2000])
             for f, v in rec.items():
                 rows[f].append(v)
             continue
-        subject = str((res.get("subject") or {}).get("reference") or "")
         patient = patients.get(subject.removeprefix("Patient/"))
-        raw = line
         if patient is not None:
             rec.update({k: v for k, v in patient.items() if k != "district_name"})
             name = patient["district_name"]
             rec["district_code"] = by_name.get(name.casefold(), name)
         elif subject:
             rec["row_fault"] = f"unknown_patient:{subject} is not in Patient.ndjson"
-        rec["raw_text"] = _PATIENT_REF.sub(_MASK, raw)
+        rec["raw_text"] = _PATIENT_REF.sub(_MASK, line)
         if patient is not None and patient["person_token"] in rec["raw_text"]:
             rec["raw_text"] = rec["raw_text"].replace(patient["person_token"], _MASK)
-        codings = (res.get("code") or {}).get("coding") or []
-        loinc = next((c.get("code") for c in codings if c.get("system") == "http://loinc.org"), None)
-        rec["test_code"] = rec["test_code_text"] = loinc
-        quantity = res.get("valueQuantity")
-        if isinstance(quantity, dict):
-            number = quantity.get("value")
-            comparator = quantity.get("comparator") or ""
-            rec["value_text"] = f"{comparator}{number if number is not None else ''}"
-            rec["value_clean"] = rec["value_text"]
-            rec["unit_text"] = quantity.get("code") or quantity.get("unit")
-        else:
-            rec["value_text"] = rec["value_clean"] = res.get("valueString")
-        rec["status"] = (res.get("status") or "").lower()
-        rec["status_text"] = res.get("status")
-        specimen = (res.get("specimen") or {}).get("reference") or ""
-        rec["specimen_id"] = specimen.rsplit("/", 1)[-1] or None
-        rec["collected_text"] = res.get("effectiveDateTime")
-        rec["reported_text"] = res.get("issued")
         for f, v in rec.items():
             rows[f].append(v)
     if not rows["line_no"]:
@@ -397,12 +454,6 @@ def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, i
     return add_dates(frame.select(LANDED_COLUMNS), source, item, ingested_on)
 
 
-def count_rows(item: InboxFile, source: SourceConfig) -> int:
-    """Rows of a file, for the ledger of a file skipped as a copy of another."""
-    lines = [ln for ln in item.path.read_text(encoding="utf-8", errors="replace").splitlines() if ln.strip()]
-    return len(lines) - (0 if source.layout == "fhir_ndjson" else 1)
-
-
 def land_inbox(
     con: duckdb.DuckDBPyConnection,
     settings: Settings,
@@ -440,17 +491,17 @@ def land_inbox(
             [item.source_id, item.rel_path],
         ).fetchall()[0][0]
         status, message, rows_read = "ingested", None, 0
-        if item.status == "duplicate_file":
+        original = con.execute(
+            "select rows_read from ingest_files where source_id = ? and sha256 = ? "
+            "and status = 'ingested' order by file_id limit 1",
+            [item.source_id, item.sha256],
+        ).fetchall() if item.status == "duplicate_file" else []  # fmt: skip
+        if original:
             status = "duplicate_file"
             message = f"same content as {item.same_as}, already ingested; every row counted as duplicate"
-            original = con.execute(
-                "select rows_read from ingest_files where source_id = ? and sha256 = ? "
-                "and status = 'ingested' order by file_id limit 1",
-                [item.source_id, item.sha256],
-            ).fetchall()
-            rows_read = original[0][0] if original else count_rows(item, source)
+            rows_read = original[0][0]
             summary.files_skipped += 1
-        else:
+        else:  # new, or a copy of a file that was not ingested (held back): read it
             try:
                 frame = read_inbox_file(source, item, settings, ingested_on)
             except FileFault as fault:

@@ -109,6 +109,13 @@ def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str
                 "where source_id = ? and file_id in (select distinct file_id from staging.landed_rows)",
                 [held[source_id], source_id],
             )
+            # a copy of a held-back file, recorded as its duplicate, is held back with it
+            con.execute(
+                "update ingest_files set status = 'held_back', message = ? "
+                "where source_id = ? and status = 'duplicate_file' and sha256 in "
+                "(select sha256 from ingest_files where source_id = ? and status = 'held_back')",
+                [held[source_id], source_id, source_id],
+            )
     return held
 
 

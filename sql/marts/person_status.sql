@@ -55,7 +55,9 @@ select
     d.birth_year,
     year($period_end) - d.birth_year as age_years,
     b.age_band,
-    coalesce(d.district_code, 'unknown') as district_code,
+    -- a code not in the region's district list (or none) is summarised as 'unknown'
+    case when d.district_code in (select district_code from reference.districts)
+         then d.district_code else 'unknown' end as district_code,
     round(e.egfr, 2) as egfr,
     g.g_category,
     e.last_egfr_date,
