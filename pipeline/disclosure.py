@@ -93,7 +93,13 @@ PUBLISHED_TABLES = (
         keys=("period", "district_code", "sex", "age_band"),
         counts=("persons_tested", "persons_ckd", "persons_ckd_g3_g5"),
         rates={"ckd_share_of_tested": ("persons_ckd", "persons_tested"),
+               "ckd_share_of_tested_low": ("persons_ckd", "persons_tested"),
+               "ckd_share_of_tested_high": ("persons_ckd", "persons_tested"),
                "ckd_per_1000_residents": ("persons_ckd",)},
+        # a standardised rate is a weighted sum of its cells: blank it when any cell is blank
+        group_rates={"ckd_per_1000_standardised": ("persons_ckd",),
+                     "ckd_per_1000_standardised_low": ("persons_ckd",),
+                     "ckd_per_1000_standardised_high": ("persons_ckd",)},
         public=("population",),
         levels=(("district_code",), ("sex", "age_band")),
     ),
@@ -101,7 +107,9 @@ PUBLISHED_TABLES = (
         "district_screening_coverage",
         keys=("period", "district_code"),
         counts=("persons_with_diabetes", "with_egfr", "with_acr", "with_egfr_and_acr"),
-        rates={"share_with_both": ("with_egfr_and_acr", "persons_with_diabetes")},
+        rates={"share_with_both": ("with_egfr_and_acr", "persons_with_diabetes"),
+               "share_with_both_low": ("with_egfr_and_acr", "persons_with_diabetes"),
+               "share_with_both_high": ("with_egfr_and_acr", "persons_with_diabetes")},
         levels=(("district_code",),),
     ),
 )  # fmt: skip
@@ -335,9 +343,9 @@ def suppress(frame: pl.DataFrame, table: PublishedTable, rules: DisclosureSettin
     out = frame.with_columns(
         [pl.when(blank[c]).then(None).otherwise(pl.col(c)).alias(c) for c in table.counts]
         + [pl.when(pl.any_horizontal([blank[s] for s in srcs])).then(None).otherwise(pl.col(r)).alias(r)
-           for r, srcs in table.rates.items()]
+           for r, srcs in table.rates.items() if r in frame.columns]
         + [pl.when(pl.any_horizontal([below[s] for s in srcs])).then(None).otherwise(pl.col(r)).alias(r)
-           for r, srcs in table.group_rates.items()]
+           for r, srcs in table.group_rates.items() if r in frame.columns]
         + [pl.sum_horizontal([blank[c].cast(pl.Int32) for c in table.counts]).alias("n_suppressed"),
            pl.Series("suppression", [state.row_flag(r) for r in range(frame.height)], dtype=pl.String)]
     )  # fmt: skip

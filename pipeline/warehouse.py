@@ -181,9 +181,23 @@ def _quote(text: str) -> str:
     return "'" + text.replace("'", "''") + "'"
 
 
+def replace_period_frame(con: duckdb.DuckDBPyConnection, name: str, period: str, frame: pl.DataFrame) -> int:
+    """Replace this period's rows of a per-period table by ``frame``, keeping the other periods."""
+    if not _NAME.match(name):
+        raise ValueError(f"not a plain table name: {name!r}")
+    con.register("_period_frame", frame.to_arrow())
+    con.execute(f"create or replace table staging.{name}_new as select * from _period_frame")
+    con.unregister("_period_frame")
+    return _swap_period_rows(con, name, period)
+
+
 def replace_period_rows(con: duckdb.DuckDBPyConnection, name: str, period: str, params: dict) -> int:
     """Rebuild this period's rows of a per-period table, keeping the other periods."""
     build_table(con, name, f"staging.{name}_new", params)
+    return _swap_period_rows(con, name, period)
+
+
+def _swap_period_rows(con: duckdb.DuckDBPyConnection, name: str, period: str) -> int:
     exists = con.execute(
         "select count(*) from duckdb_tables() where schema_name = 'main' and table_name = ?", [name]
     ).fetchall()[0][0]

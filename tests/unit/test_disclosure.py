@@ -265,7 +265,7 @@ def check_published(frame: pl.DataFrame, out: pl.DataFrame, table) -> None:
     expected_flag = [("primary" if s else "secondary" if b else "") for s, b in zip(small, blanked_any)]
     assert out["suppression"].to_list() == expected_flag
     # a rate is blanked exactly when a count it is built on is blanked
-    for rate, sources in table.rates.items():
+    for rate, sources in ((r, s) for r, s in table.rates.items() if r in frame.columns):
         hidden = out.select(pl.any_horizontal(pl.col(s).is_null() for s in sources)).to_series()
         assert (out[rate].is_null() == (hidden | frame[rate].is_null())).all(), rate
         assert (hidden | (out[rate] == frame[rate]) | frame[rate].is_null()).all(), rate
