@@ -112,6 +112,15 @@ PUBLISHED_TABLES = (
                "share_with_both_high": ("with_egfr_and_acr", "persons_with_diabetes")},
         levels=(("district_code",),),
     ),
+    PublishedTable(
+        "district_decline_incidence",
+        keys=("period", "district_code"),
+        counts=("persons_tested", "persons_decline_30", "persons_decline_40", "persons_decline_57"),
+        rates={f"decline_{t}_per_1000_tested": (f"persons_decline_{t}", "persons_tested") for t in (30, 40, 57)}
+        | {f"decline_{t}_per_1000_person_years": (f"persons_decline_{t}", "persons_tested")
+           for t in (30, 40, 57)},
+        levels=(("district_code",),),
+    ),
 )  # fmt: skip
 
 
@@ -367,11 +376,22 @@ def _below(state: _Table, table: PublishedTable, blank: dict[str, pl.Series]) ->
     return out
 
 
+def _exists(con: duckdb.DuckDBPyConnection, name: str) -> bool:
+    return con.execute(
+        "select count(*) from duckdb_tables() where schema_name = 'published' and table_name = ?", [name]
+    ).fetchall()[0][0] > 0
+
+
 def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, period: Period) -> dict[str, int]:
     """Replace this period's rows of every published table."""
     counts = {}
     for table in PUBLISHED_TABLES:
         frame = fetch_frame(con, f"select * from {table.name} where period = ?", [period.label])
+        if frame.height == 0:  # nothing this period: drop what an earlier run published for it
+            if _exists(con, table.name):
+                con.execute(f"delete from published.{table.name} where period = ?", [period.label])
+            counts[table.name] = 0
+            continue
         published = suppress(frame, table, rules)
         con.register("_pub", published.to_arrow())
         exists = con.execute(

@@ -188,6 +188,9 @@ class SummarySettings(_Strict):
     window_months: int = Field(default=12, ge=1, le=60)
     standard_population: Literal["who_world_2000_2025"] = "who_world_2000_2025"
     confidence: float = Field(default=0.95, gt=0.5, lt=1)
+    drift_months: int = Field(default=6, ge=1, le=24)
+    drift_threshold: float = Field(default=0.10, gt=0, lt=1)
+    drift_min_results: int = Field(default=30, ge=1)
     age_bands: list[int] = Field(default=[0, 5, 10, 15, 20, 25, 30, 35, 40, 45, 50, 55, 60, 65, 70, 75, 80, 85])
 
     @field_validator("age_bands")

@@ -17,6 +17,8 @@ SUMMARY_TABLES = (
     "lab_egfr_agreement",
     "source_quality",
     "source_rejection_reasons",
+    "district_decline_incidence",
+    "source_creatinine_drift",
 )
 
 
@@ -67,6 +69,9 @@ def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: 
         "period": period.label,
         "period_end": period.end,
         "window_months": settings.pipeline.summaries.window_months,
+        "drift_months": settings.pipeline.summaries.drift_months,
+        "drift_threshold": settings.pipeline.summaries.drift_threshold,
+        "drift_min_results": settings.pipeline.summaries.drift_min_results,
     }
     confidence = settings.pipeline.summaries.confidence
     counts = {}

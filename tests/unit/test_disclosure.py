@@ -421,6 +421,10 @@ def test_disclose_stage_adds_new_columns_to_an_older_published_table():
     con.execute("create table district_screening_coverage as select * from _frame")
     con.register("_empty", one_column(PREVALENCE, {("WF01", "F", "0-4"): 4}).clear().to_arrow())
     con.execute("create table district_ckd_prevalence as select * from _empty")  # an empty period
+    for table in PUBLISHED_TABLES[2:]:  # the other published tables: empty too
+        con.register("_none", pl.DataFrame({"period": [], "district_code": []},
+                                            schema={"period": pl.String, "district_code": pl.String}).to_arrow())
+        con.execute(f"create table {table.name} as select * from _none")
     con.execute("create schema published")
     con.execute("create table published.district_screening_coverage as "
                 "select * replace ('2025-05' as period), 0::integer as n_suppressed from _frame")  # fmt: skip
