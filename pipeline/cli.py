@@ -168,6 +168,34 @@ def backfill(
     raise typer.Exit(worst)
 
 
+@app.command()
+def schedule(
+    config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
+    inbox: Annotated[Path, typer.Option(help="Inbox folder.")] = Path("sample_extracts"),
+    out: Annotated[Path, typer.Option(help="Output folder.")] = Path("out"),
+) -> None:
+    """Serve the monthly run on its cron schedule (config/pipeline.yaml, schedule) against the
+    Prefect server in PREFECT_API_URL; runs are listed in the Prefect UI. Ctrl-C stops it."""
+    import os
+
+    from pipeline.schedule import serve
+
+    try:
+        settings = load_settings(config)
+        resolve_key(demo=False)
+    except (ConfigError, KeyMissing) as exc:
+        _fail(str(exc))
+    if not os.environ.get("PREFECT_API_URL"):
+        _fail("set PREFECT_API_URL to a running Prefect server (start one with 'prefect server "
+              "start'; it prints the URL); a temporary server never fires schedules")
+    from pipeline import prefect_env
+
+    prefect_env.configure()
+    s = settings.pipeline.schedule
+    console.print(f"serving monthly_surveillance/monthly: cron '{s.cron}' ({s.timezone}), previous month each time")
+    serve(settings, config, inbox, out)
+
+
 @sources_app.command("check")
 def sources_check(
     source_id: Annotated[str, typer.Argument(help="Source id, as in config/sources/<id>.yaml.")],

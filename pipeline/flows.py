@@ -220,9 +220,12 @@ def finish_run(run_id: str) -> dict[str, Any]:
 
 
 @flow(name="monthly_surveillance", log_prints=False)
-def monthly_surveillance(period: str, config_dir: str = "config", inbox: str = "sample_extracts",
-                         out: str = "out", demo: bool = False) -> dict[str, Any]:
-    """Ingest what is new, validate, measure, link, summarise and publish one month."""
+def monthly_surveillance(period: str | None = None, config_dir: str = "config",
+                         inbox: str = "sample_extracts", out: str = "out",
+                         demo: bool = False) -> dict[str, Any]:
+    """Ingest what is new, validate, measure, link, summarise and publish one month
+    (``period`` None: the previous month, as a scheduled run does)."""
+    period = period or Period.previous_month(dt.date.today()).label
     run_id = start_run(period, config_dir, inbox, out, demo, report=_reporter)
     try:
         return run_stages(run_id)

@@ -32,6 +32,12 @@ class Period:
     def end(self) -> dt.date:
         return dt.date(self.year, self.month, calendar.monthrange(self.year, self.month)[1])
 
+    @classmethod
+    def previous_month(cls, today: dt.date) -> Period:
+        """The last complete month before ``today``."""
+        first = today.replace(day=1) - dt.timedelta(days=1)
+        return cls(first.year, first.month)
+
     def next(self) -> Period:
         return Period(self.year + self.month // 12, self.month % 12 + 1)
 

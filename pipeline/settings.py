@@ -225,6 +225,29 @@ class RangeSetting(_Strict):
         return self
 
 
+class ScheduleSettings(_Strict):
+    cron: str = "0 6 3 * *"  # the 3rd of each month at 06:00
+    timezone: str = "UTC"
+
+    @field_validator("cron")
+    @classmethod
+    def _five_fields(cls, value: str) -> str:
+        if len(value.split()) != 5:
+            raise ValueError("a cron expression has 5 fields: minute hour day-of-month month day-of-week")
+        return value
+
+    @field_validator("timezone")
+    @classmethod
+    def _known_zone(cls, value: str) -> str:
+        from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+        try:
+            ZoneInfo(value)
+        except (ZoneInfoNotFoundError, ValueError):
+            raise ValueError("not an IANA time zone name, e.g. UTC or Europe/Lisbon") from None
+        return value
+
+
 class PipelineConfig(_Strict):
     demo: DemoSettings
     measures: MeasureSettings = Field(default_factory=MeasureSettings)
@@ -232,6 +255,7 @@ class PipelineConfig(_Strict):
     summaries: SummarySettings = Field(default_factory=SummarySettings)
     disclosure: DisclosureSettings = Field(default_factory=DisclosureSettings)
     quality_gate: QualityGateSettings = Field(default_factory=QualityGateSettings)
+    schedule: ScheduleSettings = Field(default_factory=ScheduleSettings)
     ranges: dict[str, RangeSetting]
 
 

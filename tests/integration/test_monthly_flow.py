@@ -223,3 +223,37 @@ def test_backfill_runs_in_order_skips_published_and_force_reruns(prefect_harness
     finally:
         con.close()
     assert periods == ["2025-11", "2025-12", "2026-01", "2025-11"]
+
+
+def test_deployment_has_its_cron_and_a_triggered_run_publishes(prefect_harness, tmp_path, monkeypatch):
+    """The schedule exists with the configured cron, and triggering the deployment runs the flow
+    (without waiting for the 3rd of the month): a Runner picks the run up once."""
+    import asyncio
+
+    from prefect.client.orchestration import get_client
+    from prefect.deployments import run_deployment
+    from prefect.runner import Runner
+
+    from pipeline.schedule import DEPLOYMENT_NAME, FLOW_NAME, build_deployment
+    from pipeline.settings import load_settings
+
+    monkeypatch.setenv("KIDNEYSURV_PSEUDONYM_KEY", "a-test-key-that-is-not-the-demo-key")
+    inbox = tmp_path / "inbox"
+    for rel, text in THREE_LAYOUTS.items():
+        (inbox / rel).parent.mkdir(parents=True, exist_ok=True)
+        (inbox / rel).write_text(text, encoding="utf-8")
+    out = tmp_path / "out"
+    deployment = build_deployment(load_settings(REPO / "config"), REPO / "config", inbox, out)
+    deployment_id = deployment.apply()
+    with get_client(sync_client=True) as client:
+        stored = client.read_deployment(deployment_id)
+    assert [s.schedule.cron for s in stored.schedules] == ["0 6 3 * *"]  # config/pipeline.yaml
+    flow_run = run_deployment(f"{FLOW_NAME}/{DEPLOYMENT_NAME}", parameters={"period": "2026-01"}, timeout=0)
+    runner = Runner(query_seconds=1)
+    runner.add_deployment(deployment)
+    asyncio.run(runner.start(run_once=True))
+    with get_client(sync_client=True) as client:
+        state = client.read_flow_run(flow_run.id).state
+    assert state.is_completed(), state
+    manifest = json.loads((out / "2026-01" / "run_manifest.json").read_text())
+    assert manifest["demo_key"] is False
