@@ -76,6 +76,17 @@ class SourceConfig(_Strict):
     unit_aliases: dict[str, str] = Field(default_factory=dict)
     max_rejection_rate: float | None = Field(default=None, ge=0, le=1)
     fhir: FhirOptions = Field(default_factory=FhirOptions)
+    #: Columns the identifier screen would refuse but that this source may send, each with the
+    #: written reason (recorded in the run manifest), e.g. {"birth_year": "year only, reviewed"}.
+    allowed_identifier_columns: dict[str, str] = Field(default_factory=dict)
+
+    @field_validator("allowed_identifier_columns")
+    @classmethod
+    def _reasons_written(cls, value: dict[str, str]) -> dict[str, str]:
+        short = sorted(c for c, why in value.items() if len(why.strip()) < 10)
+        if short:
+            raise ValueError(f"each allowed column needs a written reason (10 characters or more): {short}")
+        return value
 
     @field_validator("folder")
     @classmethod
