@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import sys
 import time
+from enum import Enum
 from pathlib import Path
 from typing import Annotated, Optional
 
@@ -31,6 +32,12 @@ console = Console(highlight=False, width=None if sys.stdout.isatty() else 120)
 err = Console(stderr=True, highlight=False)
 
 EXIT_OK, EXIT_HELD_BACK, EXIT_USAGE = 0, 1, 2
+
+
+class Executor(str, Enum):
+    local = "local"
+    shards = "shards"
+    dask = "dask"
 
 
 def _fail(message: str) -> None:
@@ -75,7 +82,8 @@ def _print_summary(summary: dict, out: Path) -> None:
         console.print("  [dim]made with the public DEMO pseudonymisation key: not for real data[/]")
 
 
-def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose: bool) -> int:
+def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose: bool,
+         executor: str | None = None) -> int:
     try:
         Period.parse(period)
         settings = load_settings(config)
@@ -97,7 +105,8 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
     started = time.perf_counter()
     try:
         summary = flows.monthly_surveillance(
-            period=period, config_dir=str(config), inbox=str(inbox), out=str(out), demo=demo
+            period=period, config_dir=str(config), inbox=str(inbox), out=str(out), demo=demo,
+            executor=executor,
         )
     except KeyMissing as exc:
         _fail(str(exc))
@@ -114,9 +123,11 @@ def run(
     inbox: Annotated[Path, typer.Option(help="Inbox folder with one subfolder per source.")] = Path("sample_extracts"),
     out: Annotated[Path, typer.Option(help="Output folder: warehouse and exports.")] = Path("out"),
     verbose: Annotated[bool, typer.Option("--verbose", help="Show Prefect's own log lines.")] = False,
+    executor: Annotated[Optional[Executor], typer.Option(help="Person-level work: local, shards or dask (default: config).")] = None,
 ) -> None:
     """Ingest what is new in the inbox and publish the indicators for one month."""
-    raise typer.Exit(_run(period, config, inbox, out, demo=False, verbose=verbose))
+    raise typer.Exit(_run(period, config, inbox, out, demo=False, verbose=verbose,
+                          executor=executor.value if executor else None))
 
 
 @app.command()

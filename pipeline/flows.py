@@ -28,6 +28,7 @@ from pipeline.manifest import build_manifest, input_files, record_run  # noqa: E
 from pipeline.measures import measure_stage  # noqa: E402
 from pipeline.periods import Period  # noqa: E402
 from pipeline.pseudonymise import PseudonymKey, resolve_key  # noqa: E402
+from pipeline.report import write_report  # noqa: E402
 from pipeline.publish import (  # noqa: E402
     commit_month,
     open_warehouse,
@@ -131,7 +132,7 @@ def measure_task(run_id: str) -> dict[str, Any]:
 @task(name="link")
 def link_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        s = link_stage(ctx.con, ctx.settings, ctx.period)
+        s = link_stage(ctx.con, ctx.settings, ctx.period, work=ctx.out / ".work" / ctx.period.label)
         return {"persons": s.persons, "events confirmed": s.events_confirmed, "pending": s.events_pending}
 
     return _stage(run_id, "link", work)
@@ -162,7 +163,8 @@ def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         folder = write_exports(ctx.con, ctx.out, ctx.period, {"run_summary.json": summary,
                                                                 "run_manifest.json": ctx.manifest})
-        return {"exports": str(folder)}
+        write_report(ctx.con, ctx.period.label, folder / "report.html")
+        return {"exports": str(folder), "report": str(folder / "report.html")}
 
     result = _stage(run_id, "export", work)
     ctx = _RUNS[run_id]
@@ -197,9 +199,10 @@ def _quiet(name: str, seconds: float, text: str) -> None:
 
 
 def start_run(period: str, config_dir: str, inbox: str, out: str, demo: bool,
-              report: Callable[[str, float, str], None] = _quiet) -> str:
-    """Open the warehouse and register the run; the caller runs the stages."""
-    settings = load_settings(config_dir)
+              report: Callable[[str, float, str], None] = _quiet, executor: str | None = None) -> str:
+    """Open the warehouse and register the run; the caller runs the stages. ``executor``
+    overrides ``execution.executor`` of the config (local, shards or dask)."""
+    settings = with_executor(load_settings(config_dir), executor)
     key = resolve_key(demo=demo)
     ctx = RunContext(settings, Period.parse(period), Path(inbox), Path(out), key,
                      open_warehouse(Path(out)), report)  # fmt: skip
@@ -207,6 +210,15 @@ def start_run(period: str, config_dir: str, inbox: str, out: str, demo: bool,
     ctx.run_id = run_id
     _RUNS[run_id] = ctx
     return run_id
+
+
+def with_executor(settings: Settings, executor: str | None) -> Settings:
+    if executor is None:
+        return settings
+    execution = settings.pipeline.execution.model_validate(
+        {**settings.pipeline.execution.model_dump(), "executor": executor})
+    pipeline = settings.pipeline.model_copy(update={"execution": execution})
+    return settings.model_copy(update={"pipeline": pipeline})
 
 
 def finish_run(run_id: str) -> dict[str, Any]:
@@ -222,11 +234,11 @@ def finish_run(run_id: str) -> dict[str, Any]:
 @flow(name="monthly_surveillance", log_prints=False)
 def monthly_surveillance(period: str | None = None, config_dir: str = "config",
                          inbox: str = "sample_extracts", out: str = "out",
-                         demo: bool = False) -> dict[str, Any]:
+                         demo: bool = False, executor: str | None = None) -> dict[str, Any]:
     """Ingest what is new, validate, measure, link, summarise and publish one month
     (``period`` None: the previous month, as a scheduled run does)."""
     period = period or Period.previous_month(dt.date.today()).label
-    run_id = start_run(period, config_dir, inbox, out, demo, report=_reporter)
+    run_id = start_run(period, config_dir, inbox, out, demo, report=_reporter, executor=executor)
     try:
         return run_stages(run_id)
     finally:
@@ -267,9 +279,10 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
 
 
 def run_month_plain(period: str, config_dir: str, inbox: str, out: str, demo: bool = False,
-                    report: Callable[[str, float, str], None] = _quiet) -> dict[str, Any]:
-    """The monthly run without Prefect (tests, ``sources check``-like tools, debugging)."""
-    run_id = start_run(period, config_dir, inbox, out, demo, report=report)
+                    report: Callable[[str, float, str], None] = _quiet,
+                    executor: str | None = None) -> dict[str, Any]:
+    """The monthly run without Prefect (tests, benchmarks, debugging)."""
+    run_id = start_run(period, config_dir, inbox, out, demo, report=report, executor=executor)
     try:
         return run_stages(run_id, plain=True)
     finally:

@@ -259,6 +259,13 @@ class ScheduleSettings(_Strict):
         return value
 
 
+class ExecutionSettings(_Strict):
+    executor: Literal["local", "shards", "dask"] = "local"
+    shards: int = Field(default=4, ge=1, le=4096)
+    dask_workers: int = Field(default=2, ge=1, le=256)
+    scheduler_address: str | None = None
+
+
 class PipelineConfig(_Strict):
     demo: DemoSettings
     measures: MeasureSettings = Field(default_factory=MeasureSettings)
@@ -267,6 +274,7 @@ class PipelineConfig(_Strict):
     disclosure: DisclosureSettings = Field(default_factory=DisclosureSettings)
     quality_gate: QualityGateSettings = Field(default_factory=QualityGateSettings)
     schedule: ScheduleSettings = Field(default_factory=ScheduleSettings)
+    execution: ExecutionSettings = Field(default_factory=ExecutionSettings)
     ranges: dict[str, RangeSetting]
 
 

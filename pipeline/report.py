@@ -1,0 +1,1107 @@
+"""Report: the month's static HTML report, and its headline numbers as plain text.
+
+One self-contained file: CSS inline, charts drawn here as inline SVG, no script, no font, image
+or style sheet fetched from anywhere (a Content-Security-Policy meta tells the browser so too).
+
+What it reads is fixed in :data:`READABLE_TABLES`: the publishable tables (schema ``published``,
+every period present, for the trend), the quality tables per lab (no person-level value), the
+district names and the run manifest (``runs``). It never reads a person-level table; every query
+goes through :func:`_select`, which refuses any other table. Counts blanked by disclosure control
+are shown as "s" in the tables and "suppressed" elsewhere, never as a number.
+
+The output depends only on the warehouse (no wall-clock time), so the same run gives the same file.
+"""
+
+from __future__ import annotations
+
+import html
+import json
+import math
+import os
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable, Sequence
+
+import duckdb
+
+from pipeline.disclosure import PUBLISHED_TABLES
+from pipeline.periods import Period
+
+__all__ = ["READABLE_TABLES", "build_report_html", "headline_text", "write_report"]
+
+PREVALENCE = "published.district_ckd_prevalence"
+COVERAGE = "published.district_screening_coverage"
+#: The only tables the report reads: publishable, quality per lab, reference and the manifest.
+READABLE_TABLES = (
+    PREVALENCE,
+    COVERAGE,
+    "source_quality",
+    "source_rejection_reasons",
+    "lab_egfr_agreement",
+    "reference.districts",
+    "runs",
+)
+
+TOTAL = "ALL"
+UNKNOWN_DISTRICT = "unknown"
+#: Okabe and Ito's colour-blind-safe palette (Okabe and Ito, "Color Universal Design", 2008;
+#: common practice in scientific graphics): blue, orange, bluish green, vermillion, purple.
+PALETTE = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#CC79A7", "#56B4E9")
+INK, MUTED, GRID = "#1f2328", "#59636e", "#d8dee4"
+MONTHS = ("January", "February", "March", "April", "May", "June", "July", "August", "September",
+          "October", "November", "December")  # fmt: skip
+#: How the equation ids of config/pipeline.yaml read in the report, with their source.
+EQUATION_NAMES = {
+    "ckd_epi_2021_creatinine": "CKD-EPI 2021 creatinine, without race (Inker et al., NEJM 2021)",
+    "ckd_epi_2009_creatinine": "CKD-EPI 2009 creatinine, race term not used (Levey et al., Ann Intern Med 2009)",
+    "ekfc_creatinine": "EKFC creatinine (Pottel et al., Ann Intern Med 2021)",
+    "ckid_u25_creatinine": "CKiD U25 creatinine (Pierce et al., Kidney Int 2021)",
+    "ckd_epi_2012_cystatin": "CKD-EPI 2012 cystatin C (Inker et al., NEJM 2012)",
+    "ckd_epi_2021_creatinine_cystatin": "CKD-EPI 2021 creatinine–cystatin C (Inker et al., NEJM 2021)",
+}
+EQUATION_ROLES = {
+    "adult": "Adults (from age {adult_min_age})",
+    "child": "Children and adolescents (ages {min_age}–{child_max_age})",
+    "child_with_height": "Children when a height is reported{height_note}",
+    "cystatin": "Cystatin C (from age {adult_min_age})",
+    "creatinine_with_cystatin": "Creatinine and cystatin C collected on the same day",
+}
+
+_RATES = {t.name: t.rates for t in PUBLISHED_TABLES}
+_PUBLIC = {c for t in PUBLISHED_TABLES for c in t.public}  # never suppressed (resident population)
+_GROUP_RATES = {t.name: t.group_rates for t in PUBLISHED_TABLES}
+
+
+# --------------------------------------------------------------------------- public API
+
+
+def write_report(con: duckdb.DuckDBPyConnection, period: str, path: Path) -> Path:
+    """Write the period's report to ``path`` (one self-contained HTML file) and return the path.
+
+    The file is written beside its target and renamed into place, so a reader never sees half.
+    """
+    text = build_report_html(con, period)
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(path.name + ".tmp")
+    tmp.write_text(text, encoding="utf-8")
+    os.replace(tmp, path)
+    return path
+
+
+def headline_text(con: duckdb.DuckDBPyConnection, period: str) -> str:
+    """The report's headline numbers as a few plain lines (the CLI may print them)."""
+    data = _collect(con, Period.parse(period))
+    lines = [f"Kidney surveillance, {data.period_words} (period {data.period.label})"]
+    if data.demo_key is not False:
+        lines.append("  " + data.key_notice)
+    for h in _headlines(data):
+        lines.append(f"  {h.label}: {h.value}" + (f" ({h.detail})" if h.detail else ""))
+    return "\n".join(lines).replace("\u00a0", " ")
+
+
+def build_report_html(con: duckdb.DuckDBPyConnection, period: str) -> str:
+    """The report as an HTML string."""
+    return _render(_collect(con, Period.parse(period)))
+
+
+# --------------------------------------------------------------------------- reading
+
+
+def _select(con: duckdb.DuckDBPyConnection, table: str, query: str,
+            params: Sequence[Any] = ()) -> list[dict[str, Any]]:  # fmt: skip
+    """Rows of ``query`` (which reads ``{t}`` = ``table``) as dicts; only READABLE_TABLES."""
+    if table not in READABLE_TABLES:
+        raise ValueError(f"the report does not read {table!r}")
+    if not _exists(con, table):
+        return []
+    cur = con.execute(query.format(t=table), list(params))
+    names = [d[0] for d in cur.description]
+    return [dict(zip(names, row)) for row in cur.fetchall()]
+
+
+def _exists(con: duckdb.DuckDBPyConnection, table: str) -> bool:
+    schema, _, name = table.rpartition(".")
+    found = con.execute(
+        "select count(*) from duckdb_tables() where schema_name = ? and table_name = ? "
+        "and database_name = current_database()",
+        [schema or "main", name],
+    ).fetchall()
+    return bool(found[0][0])
+
+
+def _columns(con: duckdb.DuckDBPyConnection, table: str) -> set[str]:
+    schema, _, name = table.rpartition(".")
+    rows = con.execute(
+        "select column_name from duckdb_columns() where schema_name = ? and table_name = ? "
+        "and database_name = current_database()",
+        [schema or "main", name],
+    ).fetchall()
+    return {r[0] for r in rows}
+
+
+@dataclass
+class _Data:
+    period: Period
+    districts: dict[str, str]
+    run: dict[str, Any] | None
+    manifest: dict[str, Any]
+    prevalence: list[dict[str, Any]]
+    prevalence_columns: set[str]
+    suppressed_below: dict[str, int]  # district -> blanked counts in its rows (ALL: the table)
+    coverage: list[dict[str, Any]]
+    coverage_columns: set[str]
+    coverage_trend: list[dict[str, Any]]
+    quality: list[dict[str, Any]]
+    reasons: list[dict[str, Any]]
+    agreement: list[dict[str, Any]]
+
+    @property
+    def demo_key(self) -> bool | None:
+        return None if self.run is None else bool(self.run["demo_key"])
+
+    @property
+    def key_notice(self) -> str:
+        if self.demo_key is None:
+            return "No published run is recorded for this period: the key and settings cannot be shown."
+        return "Made with the public demo key: invented data, not for real use."
+
+    @property
+    def period_words(self) -> str:
+        return f"{MONTHS[self.period.month - 1]} {self.period.year}"
+
+    @property
+    def end_words(self) -> str:
+        end = self.period.end
+        return f"{end.day} {MONTHS[end.month - 1]} {end.year}"
+
+    def threshold(self, section: str, key: str, default: Any) -> Any:
+        value = self.manifest.get("thresholds", {}).get(section, {}).get(key)
+        return default if value is None else value
+
+    @property
+    def suppress_max(self) -> int:
+        return int(self.threshold("disclosure", "suppress_max", 10))
+
+    @property
+    def suppress_min(self) -> int:
+        return int(self.threshold("disclosure", "suppress_min", 1))
+
+    @property
+    def confidence(self) -> float:
+        return float(self.threshold("summaries", "confidence", 0.95))
+
+    def district_name(self, code: str) -> str:
+        if code == TOTAL:
+            return "All districts"
+        if code == UNKNOWN_DISTRICT:
+            return "District not known"
+        return self.districts.get(code, code)
+
+
+def _collect(con: duckdb.DuckDBPyConnection, period: Period) -> _Data:
+    p = period.label
+    districts = {r["district_code"]: r["district_name"] for r in
+                 _select(con, "reference.districts", "select * from {t} order by district_code")}  # fmt: skip
+    runs = _select(con, "runs", "select run_id, period, started_at, status, package_version, git_commit, "
+                   "config_sha256, demo_key, manifest from {t} where period = ? "
+                   "order by started_at desc, run_id desc limit 1", [p])  # fmt: skip
+    run = runs[0] if runs else None
+    manifest = {}
+    if run is not None:
+        raw = run["manifest"]
+        manifest = json.loads(raw) if isinstance(raw, str) else dict(raw or {})
+    prevalence = _select(con, PREVALENCE, "select * from {t} where period = ? and sex = 'ALL' "
+                         "and age_band = 'ALL'", [p])  # fmt: skip
+    below = {r["district_code"]: int(r["n"] or 0) for r in _select(
+        con, PREVALENCE, "select district_code, sum(n_suppressed) as n from {t} where period = ? group by 1", [p])}
+    below[TOTAL] = sum(below.values())
+    coverage = _select(con, COVERAGE, "select * from {t} where period = ?", [p])
+    trend = _select(con, COVERAGE, "select * from {t} where district_code = 'ALL' and period <= ? "
+                    "order by period", [p])  # fmt: skip
+    quality = _select(con, "source_quality", "select * from {t} where period = ? "
+                      "order by source_id, extract_month", [p])  # fmt: skip
+    reasons = _select(con, "source_rejection_reasons",
+                      "select source_id, reason_code, sum(rows)::bigint as rows from {t} where period = ? "
+                      "group by all order by source_id, rows desc, reason_code", [p])  # fmt: skip
+    agreement = _select(con, "lab_egfr_agreement", "select * from {t} where period = ? "
+                        "order by source_id, month", [p])  # fmt: skip
+    return _Data(
+        period=period, districts=districts, run=run, manifest=manifest,
+        prevalence=_district_order(prevalence), prevalence_columns=_columns(con, PREVALENCE),
+        suppressed_below=below, coverage=_district_order(coverage), coverage_columns=_columns(con, COVERAGE),
+        coverage_trend=trend, quality=quality, reasons=reasons, agreement=agreement,
+    )  # fmt: skip
+
+
+def _district_order(rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """Districts by code, then the unknown district, then the total."""
+    rank = {UNKNOWN_DISTRICT: 1, TOTAL: 2}
+    return sorted(rows, key=lambda r: (rank.get(r["district_code"], 0), str(r["district_code"])))
+
+
+# --------------------------------------------------------------------------- cells and formats
+
+
+def _int(value: Any) -> str:
+    return f"{int(value):,}"
+
+
+def _pct(share: float, digits: int = 1) -> str:
+    return f"{share * 100:.{digits}f}\u00a0%"
+
+
+def _dec(value: float, digits: int = 1) -> str:
+    return f"{float(value):,.{digits}f}"
+
+
+def _is_blanked(row: dict[str, Any], column: str) -> bool:
+    """A count of a published row is blanked when it is empty in a row that suppressed counts
+    (a public count, the resident population, is never blanked: empty means there is none)."""
+    return column not in _PUBLIC and row.get(column) is None and bool(row.get("suppression"))
+
+
+def _rate_blanked(table: str, row: dict[str, Any], rate: str, data: _Data) -> bool:
+    """A rate is shown only when none of the counts it is built on is blanked (even if a value is
+    there: the report does not rely on the disclosure step having blanked it)."""
+    sources = _RATES.get(table, {}).get(rate)
+    if sources is not None:
+        return any(_is_blanked(row, s) for s in sources)
+    if rate in _GROUP_RATES.get(table, {}):
+        return row.get(rate) is None and data.suppressed_below.get(row["district_code"], 0) > 0
+    return row.get(rate) is None and bool(row.get("suppression"))
+
+
+@dataclass
+class _Cell:
+    text: str
+    column: str
+    kind: str = "num"  # num, s (suppressed), na (not available), text
+
+
+def _count_cell(row: dict[str, Any], column: str) -> _Cell:
+    if _is_blanked(row, column):
+        return _Cell("s", column, "s")
+    if row.get(column) is None:
+        return _Cell("–", column, "na")
+    return _Cell(_int(row[column]), column)
+
+
+def _rate_cell(table: str, row: dict[str, Any], rate: str, data: _Data,
+               fmt: Callable[[float], str], with_interval: bool) -> _Cell:  # fmt: skip
+    if _rate_blanked(table, row, rate, data):
+        return _Cell("s", rate, "s")
+    value = row.get(rate)
+    if value is None:
+        return _Cell("–", rate, "na")
+    text = fmt(value)
+    low, high = row.get(f"{rate}_low"), row.get(f"{rate}_high")
+    if with_interval and low is not None and high is not None:
+        text += f' <span class="ci">({fmt(low)}–{fmt(high)})</span>'
+    return _Cell(text, rate)
+
+
+def _share_number(value: float) -> str:
+    return f"{value * 100:.1f}"
+
+
+def _rate_number(value: float) -> str:
+    return _dec(value, 1)
+
+
+def _has_interval(columns: set[str], rate: str) -> bool:
+    return f"{rate}_low" in columns and f"{rate}_high" in columns
+
+
+# --------------------------------------------------------------------------- headline
+
+
+@dataclass
+class _Headline:
+    key: str
+    label: str
+    value: str
+    detail: str = ""
+
+
+def _headline_value(row: dict[str, Any] | None, column: str, data: _Data) -> str:
+    if row is None:
+        return "not available"
+    if _is_blanked(row, column):
+        return f"suppressed (≤{data.suppress_max})"
+    if row.get(column) is None:
+        return "not available"
+    return _int(row[column])
+
+
+def _headline_share(table: str, row: dict[str, Any] | None, rate: str, data: _Data) -> str:
+    if row is None:
+        return "not available"
+    if _rate_blanked(table, row, rate, data):
+        return "suppressed"
+    if row.get(rate) is None:
+        return "not available"
+    return _pct(row[rate])
+
+
+def _headlines(data: _Data) -> list[_Headline]:
+    prev = next((r for r in data.prevalence if r["district_code"] == TOTAL), None)
+    cov = next((r for r in data.coverage if r["district_code"] == TOTAL), None)
+    window = int(data.threshold("summaries", "window_months", 12))
+    share = _headline_share("district_ckd_prevalence", prev, "ckd_share_of_tested", data)
+    both = _headline_share("district_screening_coverage", cov, "share_with_both", data)
+    both_n = _headline_value(cov, "with_egfr_and_acr", data)
+    if share == "suppressed":
+        share_detail = "share of persons tested suppressed"
+    else:
+        share_detail = "" if share == "not available" else f"{share} of persons tested"
+    if both == "suppressed":
+        both_detail = "share with both an eGFR and an ACR suppressed"
+    elif both == "not available":
+        both_detail = ""
+    else:
+        both_detail = f"{both} had both an eGFR and an ACR" + (f": {both_n} persons" if both_n[:1].isdigit() else "")
+    return [
+        _Headline("persons_tested", f"Persons tested (eGFR or ACR) in the {window} months to {data.end_words}",
+                  _headline_value(prev, "persons_tested", data)),
+        _Headline("persons_ckd", "Persons with confirmed CKD", _headline_value(prev, "persons_ckd", data),
+                  share_detail),
+        _Headline("persons_ckd_g3_g5", "Confirmed CKD with latest eGFR in G3a–G5",
+                  _headline_value(prev, "persons_ckd_g3_g5", data)),
+        _Headline("persons_with_diabetes", "Persons with lab-evidenced diabetes",
+                  _headline_value(cov, "persons_with_diabetes", data), both_detail),
+    ]  # fmt: skip
+
+
+# --------------------------------------------------------------------------- SVG charts
+
+
+def _e(text: Any) -> str:
+    return html.escape(str(text), quote=True)
+
+
+def _nice_ticks(low: float, high: float, count: int = 5) -> list[float]:
+    """Round tick values covering [low, high] (steps of 1, 2, 2.5 or 5 times a power of ten)."""
+    if not math.isfinite(low) or not math.isfinite(high):
+        low, high = 0.0, 1.0
+    if high - low < 1e-9:
+        high = low + (abs(low) or 1.0)
+    raw = (high - low) / count
+    magnitude = 10 ** math.floor(math.log10(raw))
+    step = magnitude * 10
+    for m in (1, 2, 2.5, 5, 10):
+        if (high - low) / (m * magnitude) <= count:
+            step = m * magnitude
+            break
+    start = math.floor(low / step + 1e-9) * step
+    stop = math.ceil(high / step - 1e-9) * step
+    n = int(round((stop - start) / step))
+    return [round(start + i * step, 10) for i in range(n + 1)]
+
+
+def _tick_label(value: float, ticks: list[float], suffix: str = "") -> str:
+    step = ticks[1] - ticks[0] if len(ticks) > 1 else 1.0
+    digits = next((d for d in range(3) if abs(round(step, d) - step) < 1e-9), 3)
+    text = f"{value:,.{digits}f}"
+    return ("−" + text[1:] if text.startswith("-") else text) + suffix
+
+
+class _Svg:
+    """A small SVG builder: a titled, described chart that stands alone."""
+
+    def __init__(self, chart_id: str, width: int, height: int, title: str, desc: str):
+        self.id, self.width, self.height = chart_id, width, height
+        self.parts: list[str] = [
+            f'<title id="{chart_id}-title">{_e(title)}</title>',
+            f'<desc id="{chart_id}-desc">{_e(desc)}</desc>',
+            f'<text class="chart-title" x="0" y="18">{_e(title)}</text>',
+        ]
+
+    def add(self, markup: str) -> None:
+        self.parts.append(markup)
+
+    def text(self, x: float, y: float, text: str, anchor: str = "start", cls: str = "",
+             extra: str = "") -> None:  # fmt: skip
+        klass = f' class="{cls}"' if cls else ""
+        self.add(f'<text x="{x:.1f}" y="{y:.1f}" text-anchor="{anchor}"{klass}{extra}>{_e(text)}</text>')
+
+    def line(self, x1: float, y1: float, x2: float, y2: float, stroke: str = INK, width: float = 1,
+             dash: str = "") -> None:  # fmt: skip
+        d = f' stroke-dasharray="{dash}"' if dash else ""
+        self.add(f'<line x1="{x1:.1f}" y1="{y1:.1f}" x2="{x2:.1f}" y2="{y2:.1f}" stroke="{stroke}" '
+                 f'stroke-width="{width}"{d}/>')  # fmt: skip
+
+    def legend(self, names: Sequence[str], x: float, y: float, swatch: bool = False) -> None:
+        """Colour keys; ``swatch`` draws squares (bars) instead of the series' point markers."""
+        for i, name in enumerate(names):
+            colour = PALETTE[i % len(PALETTE)]
+            self.add(f'<rect x="{x:.1f}" y="{y - 9:.1f}" width="11" height="11" fill="{colour}"/>' if swatch
+                     else _marker(i, x + 6, y - 4, colour, 5))
+            self.text(x + 16, y, name, cls="legend")
+            x += 26 + 7 * len(name)
+
+    def render(self) -> str:
+        return (f'<svg class="chart" id="{self.id}" viewBox="0 0 {self.width} {self.height}" '
+                f'width="{self.width}" height="{self.height}" role="img" '
+                f'aria-labelledby="{self.id}-title {self.id}-desc">' + "".join(self.parts) + "</svg>")  # fmt: skip
+
+
+def _marker(index: int, x: float, y: float, colour: str, r: float, tip: str = "") -> str:
+    """A point marker whose shape differs by series (colour is not the only cue)."""
+    title = f"<title>{_e(tip)}</title>" if tip else ""
+    shape = index % 4
+    if shape == 0:
+        return f'<circle cx="{x:.1f}" cy="{y:.1f}" r="{r}" fill="{colour}">{title}</circle>'
+    if shape == 1:
+        return f'<rect x="{x - r:.1f}" y="{y - r:.1f}" width="{2 * r}" height="{2 * r}" fill="{colour}">{title}</rect>'
+    if shape == 2:
+        pts = f"{x:.1f},{y - r * 1.2:.1f} {x + r * 1.1:.1f},{y + r * 0.9:.1f} {x - r * 1.1:.1f},{y + r * 0.9:.1f}"
+        return f'<polygon points="{pts}" fill="{colour}">{title}</polygon>'
+    pts = f"{x:.1f},{y - r * 1.3:.1f} {x + r * 1.3:.1f},{y:.1f} {x:.1f},{y + r * 1.3:.1f} {x - r * 1.3:.1f},{y:.1f}"
+    return f'<polygon points="{pts}" fill="{colour}">{title}</polygon>'
+
+
+@dataclass
+class _Bar:
+    value: float | None
+    low: float | None = None
+    high: float | None = None
+    note: str = "suppressed"  # shown instead of a bar when value is None
+
+
+@dataclass
+class _Reference:
+    value: float
+    label: str
+
+
+def _bar_chart(chart_id: str, title: str, desc: str, categories: list[str], series: list[tuple[str, list[_Bar]]],
+               axis_label: str, suffix: str, fmt: Callable[[float], str],
+               references: Sequence[_Reference] = ()) -> str:  # fmt: skip
+    """Horizontal bars, one band per category, one bar per series; error bars when given."""
+    left, right, top, bottom = 176, 80, 40 + (18 if len(series) > 1 else 0), 50
+    bar_h, gap = 16, 10
+    band = bar_h * len(series) + gap
+    plot_w = 720 - left - right
+    height = top + band * max(1, len(categories)) + bottom
+    svg = _Svg(chart_id, 720, height, title, desc)
+    if len(series) > 1:
+        svg.legend([name for name, _ in series], left, 44, swatch=True)
+    highs = [b.high if b.high is not None else b.value for _, bars in series for b in bars if b.value is not None]
+    highs += [r.value for r in references]
+    ticks = _nice_ticks(0.0, max(highs, default=1.0) or 1.0)
+    top_tick = ticks[-1]
+
+    def x_of(v: float) -> float:
+        return left + plot_w * max(0.0, min(v, top_tick)) / top_tick
+
+    plot_bottom = top + band * max(1, len(categories))
+    for t in ticks:
+        svg.line(x_of(t), top - 4, x_of(t), plot_bottom, GRID)
+        svg.text(x_of(t), plot_bottom + 16, _tick_label(t, ticks), "middle", "tick")
+    svg.line(left, plot_bottom, left + plot_w, plot_bottom, MUTED)
+    svg.text(left + plot_w / 2, plot_bottom + 38, axis_label, "middle", "axis-label")
+    for k, ref in enumerate(references):
+        x = x_of(ref.value)
+        svg.line(x, top - 6, x, plot_bottom, INK, 1.2, "5 3")
+        svg.text(x, top - 10 - 12 * k, ref.label, "middle" if x < left + plot_w - 60 else "end", "ref")
+    for i, name in enumerate(categories):
+        y0 = top + i * band + gap / 2
+        svg.text(left - 8, y0 + band / 2 - gap / 2 + 4, name, "end", "category")
+        for j, (series_name, bars) in enumerate(series):
+            bar, y = bars[i], y0 + j * bar_h
+            colour = PALETTE[j % len(PALETTE)]
+            if bar.value is None:
+                svg.text(left + 6, y + bar_h - 4, bar.note, cls="note")
+                continue
+            label = f"{name}{', ' + series_name if len(series) > 1 else ''}: {fmt(bar.value)}{suffix}"
+            tip = label + (f" (interval {fmt(bar.low)}–{fmt(bar.high)}{suffix})"
+                           if bar.low is not None and bar.high is not None else "")  # fmt: skip
+            width = max(0.5, x_of(bar.value) - left)
+            svg.add(f'<rect class="bar" x="{left}" y="{y + 2:.1f}" width="{width:.1f}" height="{bar_h - 4}" '
+                    f'fill="{colour}"><title>{_e(tip)}</title></rect>')  # fmt: skip
+            end = x_of(bar.value)
+            if bar.low is not None and bar.high is not None:
+                lo, hi, mid = x_of(bar.low), x_of(bar.high), y + bar_h / 2
+                svg.line(lo, mid, hi, mid, INK, 1.2)
+                svg.line(lo, mid - 4, lo, mid + 4, INK, 1.2)
+                svg.line(hi, mid - 4, hi, mid + 4, INK, 1.2)
+                end = max(end, hi)
+            svg.text(end + 5, y + bar_h - 4, f"{fmt(bar.value)}{suffix}", cls="value")
+    return svg.render()
+
+
+def _line_chart(chart_id: str, title: str, desc: str, x_labels: list[str],
+                series: list[tuple[str, list[float | None], list[tuple[float, float] | None] | None]],
+                axis_label: str, x_axis_label: str, suffix: str, fmt: Callable[[float], str],
+                y_range: tuple[float, float] | None = None, zero_line: bool = False,
+                height: int = 280) -> str:  # fmt: skip
+    """Lines over categories on the x axis (months), a gap where a value is missing; a shaded
+    band where an interval is given."""
+    left, right, top, bottom = 70, 24, 40 + (18 if len(series) > 1 else 0), 56
+    width = 720
+    plot_w, plot_h = width - left - right, height - top - bottom
+    svg = _Svg(chart_id, width, height, title, desc)
+    if len(series) > 1:
+        svg.legend([name for name, _, _ in series], left, 44)
+    values = [v for _, vs, _ in series for v in vs if v is not None]
+    values += [b for _, _, iv in series for pair in (iv or []) if pair for b in pair]
+    if y_range is not None:
+        low, high = y_range
+    else:
+        low, high = min(values + [0.0] if zero_line else values or [0.0]), max(values or [1.0])
+        pad = (high - low) * 0.1 or 1.0
+        low, high = low - (pad if low < 0 else 0), high + pad
+    ticks = _nice_ticks(low, high)
+    y_lo, y_hi = ticks[0], ticks[-1]
+    n = len(x_labels)
+
+    def x_of(i: int) -> float:
+        return left + plot_w / 2 if n == 1 else left + plot_w * i / (n - 1)
+
+    def y_of(v: float) -> float:
+        return top + plot_h * (1 - (v - y_lo) / (y_hi - y_lo))
+
+    for t in ticks:
+        svg.line(left, y_of(t), left + plot_w, y_of(t), GRID)
+        svg.text(left - 6, y_of(t) + 4, _tick_label(t, ticks), "end", "tick")
+    if zero_line and y_lo < 0 < y_hi:
+        svg.line(left, y_of(0), left + plot_w, y_of(0), MUTED, 1.2)
+    svg.line(left, top + plot_h, left + plot_w, top + plot_h, MUTED)
+    svg.line(left, top, left, top + plot_h, MUTED)
+    every = max(1, math.ceil(n / 8))
+    for i, label in enumerate(x_labels):
+        if (n - 1 - i) % every == 0:  # counted from the last month, which is always labelled
+            svg.line(x_of(i), top + plot_h, x_of(i), top + plot_h + 4, MUTED)
+            svg.text(x_of(i), top + plot_h + 17, label, "middle", "tick")
+    svg.text(left + plot_w / 2, height - 10, x_axis_label, "middle", "axis-label")
+    svg.text(14, top + plot_h / 2, axis_label, "middle", "axis-label",
+             f' transform="rotate(-90 14 {top + plot_h / 2:.1f})"')  # fmt: skip
+    for j, (name, vs, intervals) in enumerate(series):
+        colour = PALETTE[j % len(PALETTE)]
+        if intervals:
+            for segment in _segments([i for i, pair in enumerate(intervals) if pair]):
+                if len(segment) == 1:
+                    i = segment[0]
+                    lo, hi = intervals[i]  # type: ignore[misc]
+                    svg.line(x_of(i), y_of(lo), x_of(i), y_of(hi), colour, 1.5)
+                    continue
+                upper = [f"{x_of(i):.1f},{y_of(intervals[i][1]):.1f}" for i in segment]  # type: ignore[index]
+                lower = [f"{x_of(i):.1f},{y_of(intervals[i][0]):.1f}" for i in reversed(segment)]  # type: ignore[index]
+                svg.add(f'<polygon class="band" points="{" ".join(upper + lower)}" fill="{colour}" '
+                        f'fill-opacity="0.18" stroke="none"/>')  # fmt: skip
+        for segment in _segments([i for i, v in enumerate(vs) if v is not None]):
+            if len(segment) > 1:
+                pts = " ".join(f"{x_of(i):.1f},{y_of(vs[i]):.1f}" for i in segment)  # type: ignore[arg-type]
+                dash = ' stroke-dasharray="6 3"' if j % 2 else ""
+                svg.add(f'<polyline class="series" points="{pts}" fill="none" stroke="{colour}" '
+                        f'stroke-width="2"{dash}/>')  # fmt: skip
+        for i, v in enumerate(vs):
+            if v is not None:
+                prefix = f"{name}, " if len(series) > 1 else ""
+                svg.add(_marker(j, x_of(i), y_of(v), colour, 4, f"{prefix}{x_labels[i]}: {fmt(v)}{suffix}"))
+        if n == 1 and vs and vs[0] is not None:
+            svg.text(x_of(0) + 10, y_of(vs[0]) - 8, f"{fmt(vs[0])}{suffix}", cls="value")
+    return svg.render()
+
+
+def _segments(indices: list[int]) -> list[list[int]]:
+    """Runs of consecutive indices."""
+    out: list[list[int]] = []
+    for i in indices:
+        if out and out[-1][-1] == i - 1:
+            out[-1].append(i)
+        else:
+            out.append([i])
+    return out
+
+
+# --------------------------------------------------------------------------- sections
+
+
+def _table(table_id: str, caption: str, head: list[str], rows: list[tuple[str, str, list[_Cell]]],
+           notes: list[str]) -> str:  # fmt: skip
+    """A table with a text first column; rows are (district code, label, cells); the last row in
+    a tfoot when its code is the total."""
+    out = [f'<div class="table-wrap"><table id="{table_id}"><caption>{caption}</caption><thead><tr>']
+    out += [f'<th scope="col"{" class=num" if i else ""}>{h}</th>' for i, h in enumerate(head)]
+    out.append("</tr></thead><tbody>")
+    for code, label, cells in rows:
+        if code == TOTAL:
+            out.append("</tbody><tfoot>")
+        out.append(f'<tr data-district="{_e(code)}"><th scope="row">{label}</th>')
+        for c in cells:
+            out.append(f'<td class="{c.kind}" data-col="{_e(c.column)}">{c.text}</td>')
+        out.append("</tr>")
+    out.append("</tfoot>" if rows and rows[-1][0] == TOTAL else "</tbody>")
+    out.append("</table></div>")
+    if notes:
+        out.append('<p class="table-notes">' + "<br>".join(notes) + "</p>")
+    return "".join(out)
+
+
+def _district_label(data: _Data, code: str) -> str:
+    name = _e(data.district_name(code))
+    if code in (TOTAL, UNKNOWN_DISTRICT) or code not in data.districts:
+        return name
+    return f'{name} <span class="code">{_e(code)}</span>'
+
+
+def _suppression_notes(data: _Data, intervals: bool) -> list[str]:
+    notes = [f"<b>s</b> suppressed: a count from {data.suppress_min} to {data.suppress_max}, a count "
+             "blanked so that such a count cannot be worked out from the totals, or a rate built on one.",
+             "<b>–</b> not available (no denominator, e.g. no resident population)."]  # fmt: skip
+    if intervals:
+        notes.append(f"In brackets: {_confidence(data)} confidence interval.")
+    return notes
+
+
+def _prevalence_section(data: _Data) -> str:
+    table = "district_ckd_prevalence"
+    cols = data.prevalence_columns
+    share_ci = _has_interval(cols, "ckd_share_of_tested")
+    std = "ckd_per_1000_standardised" in cols
+    std_ci = _has_interval(cols, "ckd_per_1000_standardised")
+    head = ["District", "Persons tested", "Confirmed CKD", "Share of tested (%)", "CKD G3a–G5",
+            "Per 1,000 residents"] + (["Age-standardised per 1,000"] if std else []) + ["Population"]  # fmt: skip
+    rows = []
+    for r in data.prevalence:
+        cells = [
+            _count_cell(r, "persons_tested"),
+            _count_cell(r, "persons_ckd"),
+            _rate_cell(table, r, "ckd_share_of_tested", data, _share_number, share_ci),
+            _count_cell(r, "persons_ckd_g3_g5"),
+            _rate_cell(table, r, "ckd_per_1000_residents", data, _rate_number, False),
+        ]
+        if std:
+            cells.append(_rate_cell(table, r, "ckd_per_1000_standardised", data, _rate_number, std_ci))
+        cells.append(_count_cell(r, "population"))
+        rows.append((r["district_code"], _district_label(data, r["district_code"]), cells))
+    caption = f"Confirmed CKD among persons tested, by district, {_e(data.period_words)}"
+    notes = _suppression_notes(data, share_ci or std_ci)
+    if std:
+        notes.append("Age-standardised: direct method, WHO World Standard Population 2000–2025, sexes pooled.")
+    return _table("table-prevalence", caption, head, rows, notes) if rows else _missing("prevalence")
+
+
+def _coverage_section(data: _Data) -> str:
+    table = "district_screening_coverage"
+    ci = _has_interval(data.coverage_columns, "share_with_both")
+    head = ["District", "With diabetes", "With eGFR", "With ACR", "With both", "Share with both (%)"]
+    rows = []
+    for r in data.coverage:
+        cells = [_count_cell(r, c) for c in ("persons_with_diabetes", "with_egfr", "with_acr", "with_egfr_and_acr")]
+        cells.append(_rate_cell(table, r, "share_with_both", data, _share_number, ci))
+        rows.append((r["district_code"], _district_label(data, r["district_code"]), cells))
+    caption = f"Kidney testing among persons with lab-evidenced diabetes, by district, {_e(data.period_words)}"
+    return (_table("table-coverage", caption, head, rows, _suppression_notes(data, ci))
+            if rows else _missing("screening coverage"))  # fmt: skip
+
+
+def _missing(what: str) -> str:
+    return f'<p class="notice">No published {what} table for this period.</p>'
+
+
+def _share_chart(data: _Data) -> str:
+    table = "district_ckd_prevalence"
+    ci = _has_interval(data.prevalence_columns, "ckd_share_of_tested")
+    names, bars, words = [], [], []
+    total = None
+    for r in data.prevalence:
+        code = r["district_code"]
+        blanked = _rate_blanked(table, r, "ckd_share_of_tested", data)
+        value = None if blanked or r.get("ckd_share_of_tested") is None else r["ckd_share_of_tested"] * 100
+        if code == TOTAL:
+            total = value
+            continue
+        if code == UNKNOWN_DISTRICT:
+            continue
+        low = r.get("ckd_share_of_tested_low") if ci and value is not None else None
+        high = r.get("ckd_share_of_tested_high") if ci and value is not None else None
+        name = data.district_name(code)
+        names.append(name)
+        bars.append(_Bar(value, None if low is None else low * 100, None if high is None else high * 100,
+                         "suppressed" if blanked else "no data"))  # fmt: skip
+        words.append(f"{name} {'suppressed' if value is None else _dec(value) + ' %'}")
+    if not names:
+        return ""
+    refs = [_Reference(total, f"all districts {_dec(total)} %")] if total is not None else []
+    desc = (f"Horizontal bars: share of persons tested with confirmed CKD, per district, {data.period_words}"
+            + (f", with {_confidence(data)} confidence intervals as error bars" if ci else "")
+            + f". {'; '.join(words)}."
+            + (f" All districts: {_dec(total)} %." if total is not None else ""))  # fmt: skip
+    return _bar_chart("chart-ckd-share", "Confirmed CKD, share of persons tested, by district", desc, names,
+                      [("share", bars)], "Confirmed CKD (% of persons tested)", " %", _dec, refs)  # fmt: skip
+
+
+def _trend_chart(data: _Data) -> str:
+    table = "district_screening_coverage"
+    ci = _has_interval(data.coverage_columns, "share_with_both")
+    labels, values, intervals, words = [], [], [], []
+    for r in data.coverage_trend:
+        blanked = _rate_blanked(table, r, "share_with_both", data)
+        v = None if blanked or r.get("share_with_both") is None else r["share_with_both"] * 100
+        labels.append(r["period"])
+        values.append(v)
+        low, high = r.get("share_with_both_low"), r.get("share_with_both_high")
+        intervals.append((low * 100, high * 100) if ci and v is not None and low is not None and high is not None
+                         else None)  # fmt: skip
+        words.append(f"{r['period']} {'suppressed' if v is None else _dec(v) + ' %'}")
+    if not labels:
+        return ""
+    one = " Only one period is published so far." if len(labels) == 1 else ""
+    desc = ("Line: share of persons with lab-evidenced diabetes who had both an eGFR and an ACR in the "
+            f"12 months ending each period, all districts. {'; '.join(words)}.{one}")  # fmt: skip
+    return _line_chart("chart-coverage-trend", "Persons with diabetes tested for both eGFR and ACR, all districts",
+                       desc, labels, [("all districts", values, intervals if ci else None)],
+                       "Both eGFR and ACR (%)", "Period (12 months ending that month)", " %", _dec,
+                       y_range=(0.0, 100.0))  # fmt: skip
+
+
+def _quality_by_source(data: _Data) -> list[dict[str, Any]]:
+    out: dict[str, dict[str, Any]] = {}
+    for r in data.quality:
+        s = out.setdefault(r["source_id"], {"source_id": r["source_id"], "months": [], "files": 0, "held": 0,
+                                             "read": 0, "accepted": 0, "rejected": 0, "this_read": None,
+                                             "this_rejected": None})  # fmt: skip
+        s["months"].append(r["extract_month"])
+        s["files"] += int(r["files"] or 0)
+        s["held"] += int(r["files_held_back"] or 0)
+        s["read"] += int(r["rows_read"] or 0)
+        s["accepted"] += int(r["rows_accepted"] or 0)
+        s["rejected"] += int(r["rows_rejected"] or 0)
+        if r["extract_month"] == data.period.label:
+            s["this_read"], s["this_rejected"] = int(r["rows_read"] or 0), int(r["rows_rejected"] or 0)
+    return [out[k] for k in sorted(out)]
+
+
+def _quality_chart(data: _Data, sources: list[dict[str, Any]]) -> str:
+    if not sources:
+        return ""
+    this, every, words = [], [], []
+    for s in sources:
+        v_this = 100 * s["this_rejected"] / s["this_read"] if s["this_read"] else None
+        v_all = 100 * s["rejected"] / s["read"] if s["read"] else None
+        this.append(_Bar(v_this, note=f"no extract for {data.period.label}"))
+        every.append(_Bar(v_all, note="no rows read"))
+        words.append(f"{s['source_id']}: {data.period.label} extract "
+                     f"{'none' if v_this is None else _dec(v_this, 2) + ' %'}, all extract months "
+                     f"{'none' if v_all is None else _dec(v_all, 2) + ' %'}")  # fmt: skip
+    gate = data.manifest.get("thresholds", {}).get("quality_gate", {}).get("max_rejection_rate")
+    refs = [_Reference(100 * float(gate), f"quality gate {_dec(100 * float(gate))} %")] if gate is not None else []
+    desc = f"Horizontal bars: share of rows rejected per lab source. {'; '.join(words)}."
+    return _bar_chart("chart-rejected-share", "Rows rejected, share of rows read, by lab", desc,
+                      [s["source_id"] for s in sources],
+                      [(f"extract month {data.period.label}", this), ("all extract months", every)],
+                      "Rejected rows (% of rows read)", " %", lambda v: _dec(v, 2), refs)  # fmt: skip
+
+
+def _agreement_chart(data: _Data) -> str:
+    months = sorted({r["month"] for r in data.agreement})
+    sources = sorted({r["source_id"] for r in data.agreement})
+    if not months:
+        return '<p class="notice">No lab-reported eGFR to compare in this period.</p>'
+    by = {(r["source_id"], r["month"]): r["median_difference"] for r in data.agreement}
+    series, words = [], []
+    for s in sources:
+        vs = [by.get((s, m)) for m in months]
+        series.append((s, [None if v is None else float(v) for v in vs], None))
+        shown = [v for v in vs if v is not None]
+        if shown:
+            words.append(f"{s}: from {_dec(min(shown), 2)} to {_dec(max(shown), 2)}")
+    desc = ("Lines: median of the lab-reported minus the recomputed creatinine eGFR, mL/min/1.73 m², per lab "
+            f"and collection month, {months[0]} to {months[-1]}. " + "; ".join(words) + ".")  # fmt: skip
+    return _line_chart("chart-egfr-agreement", "Lab-reported minus recomputed eGFR, median by lab and month",
+                       desc, months, series, "Median difference (mL/min/1.73 m²)", "Collection month", "",
+                       lambda v: _dec(v, 2), zero_line=True, height=300)  # fmt: skip
+
+
+def _quality_table(data: _Data, sources: list[dict[str, Any]]) -> str:
+    if not sources:
+        return '<p class="notice">No data quality rows for this period.</p>'
+    reasons: dict[str, list[str]] = {}
+    for r in data.reasons:
+        reasons.setdefault(r["source_id"], []).append(f"{_e(r['reason_code'])}&nbsp;{_int(r['rows'])}")
+    head = ["Lab source", "Extract months", "Files", "Held back", "Rows read", "Accepted", "Rejected",
+            "Rejected (%)", "Main rejection reasons"]  # fmt: skip
+    out = ['<div class="table-wrap"><table id="table-quality"><caption>Rows per lab source, all extract '
+           f'months in the warehouse at {_e(data.period.label)}</caption><thead><tr>']  # fmt: skip
+    out += [f'<th scope="col"{" class=num" if 1 < i < 8 else ""}>{h}</th>' for i, h in enumerate(head)]
+    out.append("</tr></thead><tbody>")
+    for s in sources:
+        months = f"{s['months'][0]} – {s['months'][-1]}" if len(s["months"]) > 1 else s["months"][0]
+        share = _dec(100 * s["rejected"] / s["read"], 2) if s["read"] else "–"
+        cells = [_int(s["files"]), _int(s["held"]), _int(s["read"]), _int(s["accepted"]), _int(s["rejected"]), share]
+        out.append(f'<tr><th scope="row">{_e(s["source_id"])}</th><td class="text nowrap">{_e(months)}</td>')
+        out += [f'<td class="num">{c}</td>' for c in cells]
+        out.append(f'<td class="text reasons">{"<br>".join(reasons.get(s["source_id"], [])[:3]) or "–"}</td></tr>')
+    out.append("</tbody></table></div>")
+    out.append('<p class="table-notes">Counts of data rows, not of persons. Reason codes are listed in the '
+               "project's developer guide.</p>")  # fmt: skip
+    return "".join(out)
+
+
+def _equations_table(data: _Data) -> str:
+    equations = data.manifest.get("equations") or {}
+    if not equations:
+        return '<p class="notice">The run manifest lists no equations.</p>'
+    adult = int(data.threshold("measures", "adult_min_age_years", 18))
+    context = {"adult_min_age": adult, "min_age": int(data.threshold("measures", "min_age_years", 2)),
+               "child_max_age": adult - 1,
+               "height_note": ("" if equations.get("use_height_for_children", True)
+                               else " (not used in this run)")}  # fmt: skip
+    out = ['<table id="table-equations"><caption>Equations in force for this run</caption><thead><tr>'
+           '<th scope="col">Used for</th><th scope="col">Equation</th></tr></thead><tbody>']  # fmt: skip
+    for role, equation in equations.items():
+        if not isinstance(equation, str):
+            continue
+        used_for = EQUATION_ROLES.get(role, role.replace("_", " ")).format(**context)
+        out.append(f'<tr><th scope="row">{_e(used_for)}</th>'
+                   f'<td class="text">{_e(EQUATION_NAMES.get(equation, equation))}</td></tr>')  # fmt: skip
+    out.append("</tbody></table>")
+    return "".join(out)
+
+
+def _methods_section(data: _Data) -> str:
+    t = data.threshold
+    window = int(t("summaries", "window_months", 12))
+    ckd_egfr = _num(t("trajectories", "ckd_egfr_below", 60))
+    ckd_acr = _num(t("trajectories", "ckd_acr_at_or_above_mg_g", 30))
+    ckd_days = int(t("trajectories", "ckd_min_span_days", 90))
+    base_days = int(t("trajectories", "baseline_window_days", 90))
+    decline = ", ".join(f"{_num(100 * float(x))} %" for x in t("trajectories", "decline_thresholds", [0.3, 0.4, 0.57]))
+    decline_days = int(t("trajectories", "decline_min_span_days", 28))
+    hba1c = _num(t("measures", "diabetes_hba1c_percent", 6.5))
+    hba1c_ifcc = _num(t("measures", "diabetes_hba1c_mmol_mol", 48))
+    glucose = _num(t("measures", "diabetes_fasting_glucose_mg_dl", 126))
+    glucose_si = f'{float(t("measures", "diabetes_fasting_glucose_mmol_l", 7.0)):.1f}'
+    intervals = (_has_interval(data.prevalence_columns, "ckd_share_of_tested")
+                 or _has_interval(data.coverage_columns, "share_with_both"))  # fmt: skip
+    definitions = [
+        ("Persons tested", f"Persons with at least one eGFR or urine ACR collected in the {window} months "
+         f"ending {_e(data.end_words)}, counted once whichever labs they used."),
+        ("Confirmed CKD", f"An eGFR below {ckd_egfr} mL/min/1.73 m², or ACR at or above {ckd_acr} mg/g, on "
+         f"consecutive days of testing spanning at least {ckd_days} days: kidney damage or reduced function "
+         "lasting more than three months, as KDIGO 2012 defines CKD. One low value is not enough."),
+        ("Share of tested and per 1,000 residents", "The share is among persons tested, who are not a random "
+         "sample of residents; per 1,000 residents divides the same count by the whole resident population. "
+         "Neither is the prevalence of CKD in the population."),
+        ("Sustained decline", f"A person's daily eGFRs after a baseline (the mean of the eGFRs in the first "
+         f"{base_days} days) stay at or below the baseline less {decline} for at least {decline_days} days "
+         "(Levey et al. 2014). Followed in the warehouse; not among this report's tables."),
+        ("Lab-evidenced diabetes", f"An HbA1c at or above {hba1c} % ({hba1c_ifcc} mmol/mol) or fasting glucose at "
+         f"or above {glucose} mg/dL ({glucose_si} mmol/L) on any result (ADA Standards of Care)."),
+        ("Screening coverage", f"Among persons with lab-evidenced diabetes and any result in the {window} "
+         "months, the share who had an eGFR, a urine ACR, and both, in that window. An ACR estimated from a "
+         "protein ratio or a dipstick (Sumida et al. 2020) does not count: a dipstick misses moderately "
+         "increased albuminuria."),
+        ("Suppression", f"Every published count from {data.suppress_min} to {data.suppress_max} is blanked, "
+         "and so are the counts that would let it be worked out from a total and the rates built on any "
+         "blanked count. Zeros are shown."),
+    ]  # fmt: skip
+    if intervals:
+        definitions.append(("Intervals", f"{_confidence(data)} Wilson score intervals for shares (Wilson 1927; "
+                            "Newcombe 1998); Fay–Feuer gamma intervals for age-standardised rates (Fay and "
+                            "Feuer 1997)."))  # fmt: skip
+    used = set((data.manifest.get("equations") or {}).values())
+    sources = [
+        "Inker LA, et al. N Engl J Med 2021;385:1737 (CKD-EPI 2021, without race).",
+        "KDIGO 2012 Clinical Practice Guideline for the Evaluation and Management of CKD. "
+        "Kidney Int Suppl 2013;3:1 (definition of CKD, GFR and albuminuria categories).",
+        "Levey AS, et al. Am J Kidney Dis 2014;64:821 (30 % and 40 % eGFR decline as end points).",
+        "Sumida K, et al. Ann Intern Med 2020;173:426 (ACR from protein ratio and dipstick).",
+        "American Diabetes Association. Standards of Care in Diabetes: classification and diagnosis "
+        "(HbA1c and fasting glucose thresholds).",
+    ]
+    if "ekfc_creatinine" in used:
+        sources.append("Pottel H, et al. Ann Intern Med 2021;174:183 (EKFC).")
+    if "ckid_u25_creatinine" in used:
+        sources.append("Pierce CB, et al. Kidney Int 2021;99:948 (CKiD U25).")
+    if "ckd_epi_2012_cystatin" in used:
+        sources.append("Inker LA, et al. N Engl J Med 2012;367:20 (CKD-EPI 2012 cystatin C).")
+    if intervals:
+        sources.append("Wilson EB. J Am Stat Assoc 1927;22:209; Newcombe RG. Stat Med 1998;17:857; "
+                       "Fay MP, Feuer EJ. Stat Med 1997;16:791 (intervals).")  # fmt: skip
+    out = ['<section id="methods"><h2>Methods</h2>',
+           "<p>eGFR is recomputed from every accepted serum creatinine (and cystatin C) with the equations "
+           "below, the same way for every lab; a lab's own eGFR is used only for the agreement chart above. "
+           "GFR categories follow KDIGO 2012 on the unrounded eGFR; albuminuria is put on one scale, ACR in "
+           "mg/g.</p>", _equations_table(data), "<h3>Definitions</h3><dl>"]  # fmt: skip
+    out += [f"<dt>{_e(term)}</dt><dd>{text}</dd>" for term, text in definitions]
+    out.append("</dl><h3>Sources</h3><ul class=\"sources\">")
+    out += [f"<li>{_e(s)}</li>" for s in sources]
+    out.append("</ul></section>")
+    return "".join(out)
+
+
+def _confidence(data: _Data) -> str:
+    return f"{data.confidence * 100:g}\u00a0%"
+
+
+def _num(value: Any) -> str:
+    v = float(value)
+    return f"{v:g}"
+
+
+CAUTIONS = (
+    "These are surveillance indicators for populations, <strong>not a diagnosis of any individual</strong>. "
+    "A lab value is not a clinical assessment.",
+    "eGFR equations estimate kidney function in a steady state and have known limits: acute illness or acute "
+    "kidney injury, extremes of muscle mass or diet, pregnancy, amputation, and children, who need their own "
+    "equations and heights.",
+    "Local data-protection law, local guidelines and licensed clinical practice take precedence over "
+    "anything this report or the pipeline computes.",
+    "Only disclosure-controlled tables are published: this report is built from them alone, and small counts "
+    "are suppressed.",
+)
+
+
+def _cautions_section() -> str:
+    items = "".join(f"<li>{c}</li>" for c in CAUTIONS)
+    return f'<section id="cautions" class="cautions"><h2>Cautions</h2><ul>{items}</ul></section>'
+
+
+def _run_footer(data: _Data) -> str:
+    if data.run is None:
+        return '<footer><p>No run manifest is recorded for this period.</p></footer>'
+    r = data.run
+    held = data.manifest.get("quality_gate", {}).get("held_back_sources") or {}
+    parts = [f"Run {_e(r['run_id'])}", f"started {_e(r['started_at'])} UTC", f"status {_e(r['status'])}",
+             f"kidneysurv {_e(r['package_version'])}"]  # fmt: skip
+    if r.get("git_commit"):
+        parts.append(f"commit {_e(str(r['git_commit'])[:12])}")
+    parts.append(f"configuration {_e(str(r['config_sha256'])[:12])}")
+    text = " · ".join(parts)
+    if held:
+        text += "<br>Held back by the quality gate: " + "; ".join(f"{_e(k)} ({_e(v)})" for k, v in sorted(held.items()))
+    return f"<footer><p>{text}</p></footer>"
+
+
+# --------------------------------------------------------------------------- page
+
+CSS = """
+:root { --ink: #1f2328; --muted: #59636e; --rule: #d8dee4; --band: #f6f8fa; --accent: #0072B2;
+        --warn: #D55E00; }
+* { box-sizing: border-box; }
+html { font-family: system-ui, -apple-system, "Segoe UI", Roboto, "Noto Sans", "Liberation Sans",
+       "DejaVu Sans", Arial, sans-serif; color: var(--ink); background: #fff; line-height: 1.45; }
+body { margin: 0; }
+main { max-width: 980px; margin: 0 auto; padding: 24px 28px 40px; }
+header h1 { font-size: 1.7rem; margin: 0 0 4px; }
+header .sub { color: var(--muted); margin: 0 0 4px; }
+h2 { font-size: 1.25rem; margin: 34px 0 10px; padding-bottom: 4px; border-bottom: 2px solid var(--accent); }
+h3 { font-size: 1.02rem; margin: 20px 0 8px; }
+.banner { border: 3px solid var(--warn); background: #fdf0e8; color: #7a2e00; font-weight: 700;
+          padding: 10px 14px; margin: 14px 0; border-radius: 4px; font-size: 1.05rem; }
+.lead-caution { font-size: .92rem; margin: 8px 0 0; }
+a { color: var(--accent); }
+.notice { border-left: 4px solid var(--warn); padding: 6px 10px; background: #fdf6f2; }
+.headline { display: grid; grid-template-columns: repeat(auto-fit, minmax(200px, 1fr)); gap: 12px;
+            margin: 12px 0 4px; }
+.card { border: 1px solid var(--rule); border-top: 4px solid var(--accent); border-radius: 4px;
+        padding: 10px 12px; background: #fff; }
+.card .value { font-size: 1.7rem; font-weight: 700; font-variant-numeric: tabular-nums; }
+.card .value.suppressed { font-size: 1.1rem; color: var(--muted); }
+.card .label { font-size: .9rem; }
+.card .detail { font-size: .85rem; color: var(--muted); margin-top: 4px; }
+table { border-collapse: collapse; width: 100%; margin: 8px 0 4px; font-size: .9rem; }
+caption { text-align: left; font-weight: 600; padding: 4px 0 6px; }
+th, td { padding: 5px 8px; border-bottom: 1px solid var(--rule); vertical-align: top; }
+thead th { border-bottom: 2px solid var(--ink); text-align: left; font-weight: 600; }
+tbody tr:nth-child(even) { background: var(--band); }
+th.num { text-align: right; }
+td.num, td.s, td.na { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+.table-wrap { overflow-x: auto; }
+td.s, td.na { color: var(--muted); }
+tfoot th, tfoot td { font-weight: 700; border-top: 2px solid var(--ink); }
+th[scope=row] { text-align: left; font-weight: 500; white-space: nowrap; }
+td.reasons { font-size: .8rem; white-space: nowrap; }
+td.nowrap { white-space: nowrap; }
+.code { color: var(--muted); font-size: .8em; }
+.ci { color: var(--muted); font-size: .85em; }
+.table-notes { font-size: .8rem; color: var(--muted); margin: 2px 0 14px; }
+figure { margin: 18px 0; }
+figcaption { font-size: .82rem; color: var(--muted); max-width: 720px; }
+svg.chart { display: block; width: 100%; max-width: 720px; height: auto; font-family: inherit; }
+svg .chart-title { font-size: 14px; font-weight: 700; fill: var(--ink); }
+svg .tick, svg .legend, svg .value, svg .category { font-size: 11.5px; fill: var(--ink); }
+svg .value { paint-order: stroke; stroke: #fff; stroke-width: 3px; stroke-linejoin: round; }
+svg .tick { fill: var(--muted); }
+svg .axis-label { font-size: 12px; fill: var(--ink); }
+svg .note { font-size: 11px; font-style: italic; fill: var(--muted); }
+svg .ref { font-size: 11px; fill: var(--ink); }
+dl dt { font-weight: 600; margin-top: 8px; }
+dl dd { margin: 2px 0 0 18px; }
+.cautions { border: 1px solid var(--rule); border-left: 5px solid var(--accent); background: var(--band);
+            padding: 2px 18px 10px; margin-top: 30px; }
+.cautions h2 { border: none; }
+ul.sources li { margin-bottom: 4px; }
+footer { margin-top: 30px; font-size: .78rem; color: var(--muted); border-top: 1px solid var(--rule); }
+@media print {
+  main { max-width: none; padding: 0; }
+  .banner, .card, .cautions { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
+  figure, table, .card, .cautions { break-inside: avoid; }
+  h2, h3 { break-after: avoid; }
+  tbody tr:nth-child(even) { background: none; }
+}
+@page { margin: 16mm 14mm; }
+"""
+
+#: Nothing may be fetched: no script, no font, no image except inline data, styles inline only.
+CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:"
+
+
+def _render(data: _Data) -> str:
+    title = f"Kidney surveillance report, {data.period_words}"
+    names = [data.districts[c] for c in sorted(data.districts)]
+    region = (f"Region of {len(names)} district{'s' if len(names) != 1 else ''}: " + ", ".join(names)
+              if names else "Region: districts not listed")  # fmt: skip
+    banner = ""
+    if data.demo_key is not False:
+        banner = f'<p class="banner" id="demo-banner" role="alert">{_e(data.key_notice)}</p>'
+    held = data.manifest.get("quality_gate", {}).get("held_back_sources") or {}
+    held_note = ""
+    if held:
+        held_note = ('<p class="notice">Held back by the quality gate this month (not in the counts): '
+                     + ", ".join(_e(s) for s in sorted(held)) + ".</p>")  # fmt: skip
+    cards = []
+    for h in _headlines(data):
+        klass = " suppressed" if h.value.startswith(("suppressed", "not available")) else ""
+        detail = f'<div class="detail">{_e(h.detail)}</div>' if h.detail else ""
+        cards.append(f'<div class="card" data-key="{h.key}"><div class="value{klass}">{_e(h.value)}</div>'
+                     f'<div class="label">{_e(h.label)}</div>{detail}</div>')  # fmt: skip
+    sources = _quality_by_source(data)
+
+    def figure(svg: str, caption: str) -> str:
+        return f"<figure>{svg}<figcaption>{caption}</figcaption></figure>" if svg else ""
+
+    body = [
+        "<header>", f"<h1>{_e(title)}</h1>",
+        f'<p class="sub">{_e(region)}</p>',
+        f'<p class="sub">Indicators as of {_e(data.end_words)} (period {_e(data.period.label)}), from the '
+        "disclosure-controlled tables only.</p>", "</header>", banner, held_note,
+        '<p class="lead-caution">Surveillance indicators for populations, not a diagnosis of any '
+        'individual: read the <a href="#cautions">cautions</a> and <a href="#methods">methods</a>.</p>',
+        '<section id="headline"><h2>Headline, all districts</h2><div class="headline">', *cards, "</div></section>",
+        '<section id="prevalence"><h2>Chronic kidney disease by district</h2>',
+        figure(_share_chart(data), "Dashed line: all districts. Suppressed districts have no bar."),
+        _prevalence_section(data), "</section>",
+        '<section id="coverage"><h2>Kidney testing in diabetes</h2>',
+        figure(_trend_chart(data), "One point per published period; each covers the 12 months ending that month."),
+        _coverage_section(data), "</section>",
+        '<section id="quality"><h2>Data quality by lab</h2>',
+        figure(_quality_chart(data, sources), "Rows the row-level rules rejected, for this month's extract and "
+               "for every extract month received so far. Dashed line: the share above which a lab is held back."),
+        figure(_agreement_chart(data), "Each lab's own eGFR against the one recomputed here (CKD-EPI 2021 for "
+               "adults). A steady offset suggests the lab reports another equation; a sudden step, an assay or "
+               "calibration change."),
+        _quality_table(data, sources), "</section>",
+        _methods_section(data), _cautions_section(), _run_footer(data),
+    ]  # fmt: skip
+    return ("<!DOCTYPE html>\n"
+            '<html lang="en"><head><meta charset="utf-8">'
+            f'<meta http-equiv="Content-Security-Policy" content="{CSP}">'
+            '<meta name="viewport" content="width=device-width, initial-scale=1">'
+            f'<meta name="generator" content="kidneysurv">'
+            f"<title>{_e(title)}</title><style>{CSS}</style></head>"
+            "<body><main>" + "\n".join(part for part in body if part) + "</main></body></html>\n")  # fmt: skip

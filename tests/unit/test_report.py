@@ -1,0 +1,365 @@
+"""Tests for pipeline.report: the monthly HTML report on a warehouse built from the shipped
+sample extracts (two months, so the trend has two points).
+
+What is checked and against what:
+- the numbers shown are those of the published (disclosure-controlled) tables, read here with
+  plain SQL, and a suppressed cell never shows its internal count: counts from 1 to 10 are
+  suppressed (common practice in official statistics; config/pipeline.yaml, disclosure);
+- the file is self-contained: no http(s) reference in any ``src``, ``href`` or ``url(``, no script,
+  no linked style sheet (the report's own contract);
+- the report reads no person-level table: rendered from an in-memory database holding only the
+  tables it may read, it is byte-identical;
+- the cautions of the README and the demo-key banner are there.
+"""
+
+from __future__ import annotations
+
+import re
+import shutil
+from html.parser import HTMLParser
+from pathlib import Path
+
+import duckdb
+import pytest
+
+from pipeline.flows import run_month_plain
+from pipeline.report import READABLE_TABLES, _nice_ticks, _select, build_report_html, headline_text, write_report
+from tests.conftest import CONFIG_DIR, ROOT, edit_pipeline_yaml, rows
+
+PERIODS = ("2026-09", "2026-10")
+PERIOD = PERIODS[-1]
+#: HTML elements without an end tag (WHATWG HTML, "void elements").
+VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source", "track", "wbr"}
+COUNTS = {
+    "table-prevalence": ("district_ckd_prevalence", ("persons_tested", "persons_ckd", "persons_ckd_g3_g5")),
+    "table-coverage": ("district_screening_coverage",
+                       ("persons_with_diabetes", "with_egfr", "with_acr", "with_egfr_and_acr")),
+}  # fmt: skip
+
+
+@pytest.fixture(scope="module")
+def warehouse(tmp_path_factory) -> Path:
+    """The shipped samples run for two months into one warehouse (Great Expectations off: its
+    suites are tested elsewhere and cost seconds)."""
+    base = tmp_path_factory.mktemp("report")
+    config = base / "config"
+    shutil.copytree(CONFIG_DIR, config)
+    edit_pipeline_yaml(config, "quality_gate", "great_expectations", False)
+    for period in PERIODS:
+        run_month_plain(period, str(config), str(ROOT / "sample_extracts"), str(base / "out"), demo=True)
+    return base / "out" / "surveillance.duckdb"
+
+
+@pytest.fixture(scope="module")
+def con(warehouse):
+    connection = duckdb.connect(str(warehouse), read_only=True)
+    yield connection
+    connection.close()
+
+
+@pytest.fixture(scope="module")
+def report(con, tmp_path_factory) -> str:
+    path = write_report(con, PERIOD, tmp_path_factory.mktemp("html") / "report.html")
+    return path.read_text(encoding="utf-8")
+
+
+def restricted_copy(warehouse: Path, tables=READABLE_TABLES) -> duckdb.DuckDBPyConnection:
+    """An in-memory database with only ``tables`` copied from the warehouse."""
+    mem = duckdb.connect()
+    mem.execute("attach '" + str(warehouse).replace("'", "''") + "' as src (read_only)")
+    for table in tables:
+        schema, _, name = table.rpartition(".")
+        mem.execute(f"create schema if not exists {schema or 'main'}")
+        mem.execute(f"create table {schema or 'main'}.{name} as select * from src.{schema or 'main'}.{name}")
+    mem.execute("detach src")
+    return mem
+
+
+class StrictParser(HTMLParser):
+    """Collects every element and the text of table cells; records a misnested end tag."""
+
+    def __init__(self):
+        super().__init__(convert_charrefs=True)
+        self.stack: list[str] = []
+        self.errors: list[str] = []
+        self.elements: list[tuple[str, dict[str, str | None]]] = []
+        self.cells: dict[str, list[tuple[str, str, str]]] = {}  # table id -> (district, column, text)
+        self._table = self._district = self._column = None
+        self._text: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        self.elements.append((tag, a))
+        if tag not in VOID:
+            self.stack.append(tag)
+        if tag == "table":
+            self._table = a.get("id")
+        elif tag == "tr":
+            self._district = a.get("data-district")
+        elif tag == "td" and a.get("data-col"):
+            self._column, self._text = a["data-col"], []
+
+    def handle_startendtag(self, tag, attrs):
+        self.elements.append((tag, dict(attrs)))
+
+    def handle_endtag(self, tag):
+        if tag in VOID:
+            return
+        if not self.stack or self.stack[-1] != tag:
+            self.errors.append(f"</{tag}> closes <{self.stack[-1] if self.stack else None}>")
+            return
+        self.stack.pop()
+        if tag == "td" and self._column:
+            self.cells.setdefault(self._table, []).append((self._district, self._column, "".join(self._text)))
+            self._column = None
+        if tag == "table":
+            self._table = None
+
+    def handle_data(self, data):
+        self._text.append(data)
+
+
+def parse(text: str) -> StrictParser:
+    parser = StrictParser()
+    parser.feed(text)
+    parser.close()
+    return parser
+
+
+def card_text(report: str, key: str) -> str:
+    # a card is flat: <div class="card"> holding value, label and detail divs
+    match = re.search(rf'<div class="card" data-key="{key}">(.*?)</div></div>', report)
+    assert match, key
+    return re.sub(r"<[^>]+>", " ", match.group(0)).replace("\u00a0", " ")
+
+
+def published_total(con, table: str) -> dict:
+    where = "and sex = 'ALL' and age_band = 'ALL'" if table == "district_ckd_prevalence" else ""
+    cur = con.execute(f"select * from published.{table} where period = ? and district_code = 'ALL' {where}", [PERIOD])
+    names = [d[0] for d in cur.description]
+    return dict(zip(names, cur.fetchone()))
+
+
+# --------------------------------------------------------------------------- structure
+
+
+def test_html_parses_with_every_element_closed(report):
+    parser = parse(report)
+    assert parser.errors == []
+    assert parser.stack == []
+    tags = [t for t, _ in parser.elements]
+    assert tags.count("html") == 1 and tags.count("title") >= 1 and "main" in tags
+
+
+def test_every_chart_is_inline_svg_with_title_and_desc(report):
+    charts = re.findall(r'<svg class="chart" id="([^"]+)"[^>]*>(.*?)</svg>', report, re.S)
+    ids = [c[0] for c in charts]
+    assert ids == ["chart-ckd-share", "chart-coverage-trend", "chart-rejected-share", "chart-egfr-agreement"]
+    for chart_id, body in charts:
+        assert f'<title id="{chart_id}-title">' in body and f'<desc id="{chart_id}-desc">' in body
+        assert 'class="axis-label"' in body, chart_id
+
+
+def test_trend_has_one_point_per_published_period(con, report):
+    periods = [p for (p,) in rows(con, "select distinct period from published.district_screening_coverage "
+                                       "where period <= ? order by 1", [PERIOD])]  # fmt: skip
+    assert periods == list(PERIODS)
+    trend = re.search(r'<svg class="chart" id="chart-coverage-trend".*?</svg>', report, re.S).group(0)
+    points = re.findall(r"<title>(\d{4}-\d{2}): ", trend)
+    assert points == periods
+    assert "<polyline" in trend  # two points: a line
+
+
+def test_is_deterministic(con):
+    assert build_report_html(con, PERIOD) == build_report_html(con, PERIOD)
+
+
+# --------------------------------------------------------------------------- numbers
+
+
+def test_headline_shows_the_published_all_district_numbers(con, report):
+    prev = published_total(con, "district_ckd_prevalence")
+    cov = published_total(con, "district_screening_coverage")
+    expected = {
+        "persons_tested": [prev["persons_tested"]],
+        "persons_ckd": [prev["persons_ckd"]],
+        "persons_ckd_g3_g5": [prev["persons_ckd_g3_g5"]],
+        "persons_with_diabetes": [cov["persons_with_diabetes"], cov["with_egfr_and_acr"]],
+    }
+    for key, values in expected.items():
+        text = card_text(report, key)
+        for v in values:
+            assert v is not None, "the sample's all-district counts are large: none suppressed"
+            assert f"{v:,}" in text, (key, v, text)
+    assert f"{prev['ckd_share_of_tested'] * 100:.1f} %" in card_text(report, "persons_ckd")
+    assert f"{cov['share_with_both'] * 100:.1f} %" in card_text(report, "persons_with_diabetes")
+
+
+def test_headline_text_has_the_same_numbers(con):
+    text = headline_text(con, PERIOD)
+    prev = published_total(con, "district_ckd_prevalence")
+    cov = published_total(con, "district_screening_coverage")
+    for v in (prev["persons_tested"], prev["persons_ckd"], prev["persons_ckd_g3_g5"],
+              cov["persons_with_diabetes"], cov["with_egfr_and_acr"]):  # fmt: skip
+        assert f"{v:,}" in text
+    assert f"{prev['ckd_share_of_tested'] * 100:.1f} %" in text
+    assert "public demo key" in text
+    assert len(text.splitlines()) <= 8
+
+
+def test_district_tables_show_the_published_cells(con, report):
+    cells = parse(report).cells
+    for table_id, (table, counts) in COUNTS.items():
+        where = "and sex = 'ALL' and age_band = 'ALL'" if table == "district_ckd_prevalence" else ""
+        query = f"select district_code, {', '.join(counts)} from published.{table} where period = ? {where}"
+        published = {r[0]: r[1:] for r in rows(con, query, [PERIOD])}
+        shown = {(d, c): t for d, c, t in cells[table_id]}
+        assert {d for d, _ in shown} == set(published)
+        for district, values in published.items():
+            for column, value in zip(counts, values):
+                assert shown[(district, column)] == ("s" if value is None else f"{value:,}"), (district, column)
+
+
+def test_no_suppressed_small_count_appears_in_any_table_cell(con, report):
+    """Every internal count from 1 to 10 is blanked in the published tables (common practice:
+    counts 1-10 suppressed); none of them may show in the cell it belongs to, and no count cell of
+    the district tables may hold a number from 1 to 10 at all."""
+    cells = parse(report).cells
+    checked = 0
+    for table_id, (table, counts) in COUNTS.items():
+        where = "and sex = 'ALL' and age_band = 'ALL'" if table == "district_ckd_prevalence" else ""
+        internal = {r[0]: r[1:] for r in rows(
+            con, f"select district_code, {', '.join(counts)} from main.{table} where period = ? {where}", [PERIOD])}
+        shown = {(d, c): t for d, c, t in cells[table_id]}
+        for district, values in internal.items():
+            for column, value in zip(counts, values):
+                if value is not None and 1 <= value <= 10:
+                    assert shown[(district, column)] == "s", (table, district, column)
+                    checked += 1
+        for (_, column), text in shown.items():
+            if column in counts and text.replace(",", "").isdigit():
+                assert not 1 <= int(text.replace(",", "")) <= 10, (table_id, column, text)
+    assert checked > 0, "the samples have small district counts: the check must have something to check"
+
+
+def test_suppressed_districts_have_no_bar_and_no_rate(con, report):
+    suppressed = [name for (name,) in rows(con, """
+        select d.district_name from published.district_ckd_prevalence p
+        join reference.districts d using (district_code)
+        where p.period = ? and p.sex = 'ALL' and p.age_band = 'ALL' and p.ckd_share_of_tested is null""", [PERIOD])]
+    chart = re.search(r'<svg class="chart" id="chart-ckd-share".*?</svg>', report, re.S).group(0)
+    desc = re.search(r"<desc[^>]*>(.*?)</desc>", chart, re.S).group(1)
+    assert suppressed, "the samples have a district whose share is suppressed"
+    for name in suppressed:
+        assert f"{name} suppressed" in desc
+        assert f"<title>{name}: " not in chart  # no bar (bars carry "<name>: <value>" tooltips)
+
+
+def test_a_suppressed_headline_shows_no_number(warehouse):
+    mem = restricted_copy(warehouse)
+    mem.execute("update published.district_ckd_prevalence set persons_ckd_g3_g5 = null, suppression = 'primary', "
+                "n_suppressed = 1 where period = ? and district_code = 'ALL' and sex = 'ALL' and age_band = 'ALL'",
+                [PERIOD])  # fmt: skip
+    html = build_report_html(mem, PERIOD)
+    card = card_text(html, "persons_ckd_g3_g5")
+    assert "suppressed (≤10)" in card
+    assert not re.search(r"\d", card.replace("G3a–G5", "").replace("10", ""))
+    assert "suppressed (≤10)" in headline_text(mem, PERIOD)
+
+
+# --------------------------------------------------------------------------- self-contained
+
+
+def test_no_external_reference(report):
+    refs = re.findall(r"""(?:src|href)\s*=\s*["']?([^"'\s>]+)|url\(\s*["']?([^"')]+)""", report, re.I)
+    for ref in (a or b for a, b in refs):
+        assert not re.match(r"(?i)(https?:)?//", ref), ref
+    for tag, attrs in parse(report).elements:
+        for name, value in attrs.items():
+            assert not re.match(r"(?i)\s*(https?:)?//", value or ""), (tag, name, value)
+        assert tag not in ("script", "link", "iframe", "object", "embed", "img"), tag
+    assert "http://" not in report and "https://" not in report
+    assert "@import" not in report and "@font-face" not in report
+    assert "default-src 'none'" in report  # the browser is told to fetch nothing
+
+
+def test_reads_only_the_publishable_and_quality_tables(con, warehouse, report):
+    """Rendered from a database holding only READABLE_TABLES, the report is byte-identical: it
+    cannot have read a person-level table."""
+    person_level = {"person_status", "kidney_events", "lab_results", "kidney_measures", "result_versions",
+                    "rejected_rows", "int_results_known", "int_measures_known",
+                    "int_daily_values_averaged"}  # fmt: skip
+    assert not person_level & {t.rpartition(".")[2] for t in READABLE_TABLES}
+    mem = restricted_copy(warehouse)
+    assert build_report_html(mem, PERIOD) == report
+    with pytest.raises(ValueError, match="does not read"):
+        _select(con, "person_status", "select * from {t}")
+
+
+def test_interval_columns_are_optional(warehouse):
+    """Error bars and bracketed intervals when <rate>_low/_high exist; none when they do not."""
+    mem = restricted_copy(warehouse)
+    for table, rate in (("district_ckd_prevalence", "ckd_share_of_tested"),
+                        ("district_ckd_prevalence", "ckd_per_1000_standardised"),
+                        ("district_screening_coverage", "share_with_both")):  # fmt: skip
+        for end in ("low", "high"):
+            mem.execute(f"alter table published.{table} drop column if exists {rate}_{end}")
+    without = build_report_html(mem, PERIOD)
+    assert 'class="ci"' not in without and "confidence interval" not in without
+    for table, rate in (("district_ckd_prevalence", "ckd_share_of_tested"),
+                        ("district_screening_coverage", "share_with_both")):  # fmt: skip
+        mem.execute(f"alter table published.{table} add column {rate}_low double")
+        mem.execute(f"alter table published.{table} add column {rate}_high double")
+        mem.execute(f"update published.{table} set {rate}_low = {rate} * 0.9, {rate}_high = least({rate} * 1.1, 1)")
+    with_ci = build_report_html(mem, PERIOD)
+    chart = re.search(r'<svg class="chart" id="chart-ckd-share".*?</svg>', with_ci, re.S).group(0)
+    assert "(interval " in chart and 'class="ci"' in with_ci
+    assert "confidence intervals as error bars" in chart
+
+
+# --------------------------------------------------------------------------- words
+
+
+def test_cautions_methods_and_demo_banner(con, report):
+    text = re.sub(r"<[^>]+>", "", report).replace("\u00a0", " ")
+    text = re.sub(r"\s+", " ", text)
+    # the README's cautions, in substance
+    for phrase in ("not a diagnosis of any individual", "acute illness", "acute kidney injury",
+                   "extremes of muscle mass", "pregnancy", "amputation", "children",
+                   "Local data-protection law, local guidelines and licensed clinical practice take precedence",
+                   "Only disclosure-controlled tables are published"):  # fmt: skip
+        assert phrase in text, phrase
+    for source in ("Inker LA, et al. N Engl J Med 2021", "KDIGO 2012", "Levey AS, et al. Am J Kidney Dis 2014",
+                   "Sumida K, et al. Ann Intern Med 2020", "American Diabetes Association"):  # fmt: skip
+        assert source in text, source
+    for term in ("Confirmed CKD", "Sustained decline", "Screening coverage", "Suppression"):
+        assert f"<dt>{term}</dt>" in report
+    assert rows(con, "select demo_key from runs where period = ?", [PERIOD]) == [(True,)]
+    assert "Made with the public demo key: invented data, not for real use." in text
+    assert 'id="demo-banner"' in report
+
+
+def test_equations_in_force_come_from_the_manifest(warehouse):
+    mem = restricted_copy(warehouse)
+    html = build_report_html(mem, PERIOD)
+    assert "CKD-EPI 2021 creatinine, without race" in html  # config/pipeline.yaml: adult equation
+    mem.execute("update runs set manifest = json_merge_patch(manifest, "
+                "'{\"equations\": {\"adult\": \"ckd_epi_2009_creatinine\"}}') where period = ?", [PERIOD])
+    assert "CKD-EPI 2009 creatinine" in build_report_html(mem, PERIOD)
+
+
+def test_no_banner_for_a_run_with_the_region_key(warehouse):
+    mem = restricted_copy(warehouse)
+    mem.execute("update runs set demo_key = false where period = ?", [PERIOD])
+    html = build_report_html(mem, PERIOD)
+    assert 'id="demo-banner"' not in html and "public demo key" not in html
+    assert "public demo key" not in headline_text(mem, PERIOD)
+
+
+def test_nice_ticks_are_round_and_cover_the_range():
+    # round steps of 1, 2, 2.5 or 5 times a power of ten (common practice for chart axes)
+    assert _nice_ticks(0, 19.3) == [0, 5, 10, 15, 20]
+    assert _nice_ticks(-4.3, 0.3) == [-5, -4, -3, -2, -1, 0, 1]
+    assert _nice_ticks(0, 100) == [0, 20, 40, 60, 80, 100]
+    ticks = _nice_ticks(0.0, 0.0316)
+    assert ticks[0] == 0 and ticks[-1] >= 0.0316 and len(ticks) <= 6
