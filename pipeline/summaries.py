@@ -18,6 +18,7 @@ SUMMARY_TABLES = (
     "source_quality",
     "source_rejection_reasons",
     "district_decline_incidence",
+    "district_ckd_stages",
     "source_creatinine_drift",
 )
 
