@@ -18,7 +18,7 @@ import html
 import json
 import math
 import os
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Sequence
 
@@ -31,10 +31,12 @@ __all__ = ["READABLE_TABLES", "build_report_html", "headline_text", "write_repor
 
 PREVALENCE = "published.district_ckd_prevalence"
 COVERAGE = "published.district_screening_coverage"
+INCIDENCE = "published.district_decline_incidence"
 #: The only tables the report reads: publishable, quality per lab, reference and the manifest.
 READABLE_TABLES = (
     PREVALENCE,
     COVERAGE,
+    INCIDENCE,
     "source_quality",
     "source_rejection_reasons",
     "lab_egfr_agreement",
@@ -155,6 +157,7 @@ class _Data:
     quality: list[dict[str, Any]]
     reasons: list[dict[str, Any]]
     agreement: list[dict[str, Any]]
+    incidence: list[dict[str, Any]] = field(default_factory=list)
 
     @property
     def demo_key(self) -> bool | None:
@@ -226,11 +229,14 @@ def _collect(con: duckdb.DuckDBPyConnection, period: Period) -> _Data:
                       "group by all order by source_id, rows desc, reason_code", [p])  # fmt: skip
     agreement = _select(con, "lab_egfr_agreement", "select * from {t} where period = ? "
                         "order by source_id, month", [p])  # fmt: skip
+    incidence = (_select(con, INCIDENCE, "select * from {t} where period = ?", [p])
+                 if _exists(con, INCIDENCE) else [])  # fmt: skip
     return _Data(
         period=period, districts=districts, run=run, manifest=manifest,
         prevalence=_district_order(prevalence), prevalence_columns=_columns(con, PREVALENCE),
         suppressed_below=below, coverage=_district_order(coverage), coverage_columns=_columns(con, COVERAGE),
         coverage_trend=trend, quality=quality, reasons=reasons, agreement=agreement,
+        incidence=_district_order(incidence),
     )  # fmt: skip
 
 
@@ -698,6 +704,23 @@ def _coverage_section(data: _Data) -> str:
             if rows else _missing("screening coverage"))  # fmt: skip
 
 
+def _incidence_section(data: _Data) -> str:
+    table = "district_decline_incidence"
+    head = ["District", "Persons with an eGFR", "Person-years", "Decline ≥30 %", "≥40 %", "≥57 %",
+            "≥40 % per 1,000 person-years"]  # fmt: skip
+    rows = []
+    for r in data.incidence:
+        cells = [_count_cell(r, "persons_tested"),
+                 _Cell(_dec(r["person_years"], 1) if r.get("person_years") is not None else "–", "person_years")]
+        cells += [_count_cell(r, f"persons_decline_{t}") for t in (30, 40, 57)]
+        cells.append(_rate_cell(table, r, "decline_40_per_1000_person_years", data, _rate_number, False))
+        rows.append((r["district_code"], _district_label(data, r["district_code"]), cells))
+    caption = (f"Sustained eGFR decline with its event in the 12 months to {_e(data.end_words)}, by district "
+               "(confirmed: every daily eGFR of the run at or below the threshold for at least 28 days)")
+    return (_table("table-incidence", caption, head, rows, _suppression_notes(data, False))
+            if rows else _missing("sustained-decline incidence"))  # fmt: skip
+
+
 def _missing(what: str) -> str:
     return f'<p class="notice">No published {what} table for this period.</p>'
 
@@ -1089,6 +1112,7 @@ def _render(data: _Data) -> str:
         '<section id="coverage"><h2>Kidney testing in diabetes</h2>',
         figure(_trend_chart(data), "One point per published period; each covers the 12 months ending that month."),
         _coverage_section(data), "</section>",
+        '<section id="decline"><h2>Sustained eGFR decline</h2>', _incidence_section(data), "</section>",
         '<section id="quality"><h2>Data quality by lab</h2>',
         figure(_quality_chart(data, sources), "Rows the row-level rules rejected, for this month's extract and "
                "for every extract month received so far. Dashed line: the share above which a lab is held back."),
