@@ -10,7 +10,7 @@ export PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS := 180
 export PREFECT_SERVER_ANALYTICS_ENABLED := false
 export PREFECT_LOGGING_LEVEL := WARNING
 
-.PHONY: setup demo test test-fast samples clean
+.PHONY: setup demo test test-fast bench samples clean
 
 setup: $(STAMP)
 
@@ -27,6 +27,11 @@ test: setup
 
 test-fast: setup
 	$(BIN)/python -m pytest -q -m "not slow"
+
+# Benchmark (bench/README.md): BENCH_ROWS results, the pipeline against a one-script floor.
+BENCH_ROWS ?= 1000000
+bench: setup
+	$(BIN)/python bench/run.py --rows $(BENCH_ROWS)
 
 samples:
 	$(PYTHON) sample_extracts/generate.py

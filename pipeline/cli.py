@@ -18,6 +18,7 @@ from rich.table import Table
 
 from pipeline.periods import Period
 from pipeline.pseudonymise import KeyMissing, resolve_key
+from pipeline.runlock import EXIT_LOCKED, RunLocked, run_lock
 from pipeline.settings import ConfigError, load_settings
 
 app = typer.Typer(
@@ -95,25 +96,30 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
         resolve_key(demo=demo)  # before Prefect starts: a missing key is a usage error
     except KeyMissing as exc:
         _fail(str(exc))
-    from pipeline import prefect_env
-
-    prefect_env.configure(verbose=verbose)
-    from pipeline import flows
-
-    flows.set_reporter(_stage_line)
-    console.print(f"kidneysurv: monthly run for {period} ({len(settings.sources)} sources, inbox {inbox})")
-    started = time.perf_counter()
     try:
-        summary = flows.monthly_surveillance(
-            period=period, config_dir=str(config), inbox=str(inbox), out=str(out), demo=demo,
-            executor=executor,
-        )
-    except KeyMissing as exc:
-        _fail(str(exc))
-    console.print(f"  {'total':<10} {time.perf_counter() - started:6.1f} s (with Prefect)")
-    _print_summary(summary, out)
-    held = summary["held_back_sources"] or summary["held_back_files"]
-    return EXIT_HELD_BACK if held else EXIT_OK
+        with run_lock(out, period):  # before Prefect starts: a second run stops at once
+            from pipeline import prefect_env
+
+            prefect_env.configure(verbose=verbose)
+            from pipeline import flows
+
+            flows.set_reporter(_stage_line)
+            console.print(f"kidneysurv: monthly run for {period} ({len(settings.sources)} sources, inbox {inbox})")
+            started = time.perf_counter()
+            try:
+                summary = flows.monthly_surveillance(
+                    period=period, config_dir=str(config), inbox=str(inbox), out=str(out), demo=demo,
+                    executor=executor,
+                )
+            except KeyMissing as exc:
+                _fail(str(exc))
+            console.print(f"  {'total':<10} {time.perf_counter() - started:6.1f} s (with Prefect)")
+            _print_summary(summary, out)
+            held = summary["held_back_sources"] or summary["held_back_files"]
+            return EXIT_HELD_BACK if held else EXIT_OK
+    except RunLocked as exc:
+        err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
+        raise typer.Exit(EXIT_LOCKED) from None
 
 
 @app.command()

@@ -22,6 +22,7 @@ import duckdb  # noqa: E402
 from prefect import flow, task  # noqa: E402
 
 from pipeline.disclosure import disclose_stage  # noqa: E402
+from pipeline.faults import maybe_fail  # noqa: E402
 from pipeline.ingest import land_inbox, scan_inbox  # noqa: E402
 from pipeline.linkage import link_stage  # noqa: E402
 from pipeline.manifest import build_manifest, input_files, record_run  # noqa: E402
@@ -36,6 +37,7 @@ from pipeline.publish import (  # noqa: E402
     write_exports,
     write_json,
 )
+from pipeline.runlock import commit_and_install, recover_interrupted_run, run_lock  # noqa: E402
 from pipeline.settings import Settings, load_settings  # noqa: E402
 from pipeline.summaries import summarise_stage  # noqa: E402
 from pipeline.validate import validate_stage  # noqa: E402
@@ -64,7 +66,9 @@ _RUNS: dict[str, RunContext] = {}
 def _stage(run_id: str, name: str, work: Callable[[RunContext], dict[str, Any]]) -> dict[str, Any]:
     ctx = _RUNS[run_id]
     started = time.perf_counter()
+    maybe_fail(f"{name}:before")
     result = work(ctx)
+    maybe_fail(f"{name}:after")
     seconds = time.perf_counter() - started
     ctx.stages[name] = {**result, "seconds": round(seconds, 3)}
     ctx.report(name, seconds, ", ".join(f"{k} {v}" for k, v in result.items() if not isinstance(v, dict | list)))
@@ -86,7 +90,8 @@ def ingest_task(run_id: str) -> dict[str, Any]:
         load_reference_tables(ctx.con, ctx.settings)
         s = land_inbox(ctx.con, ctx.settings, ctx.inbox, ctx.key, ctx.period.label, dt.date.today())
         return {"new files": s.files_new, "skipped": s.files_skipped, "held back": s.files_held_back,
-                "rows": s.rows_landed, "held_back_files": s.held_back}  # fmt: skip
+                "rows": s.rows_landed, "held_back_files": s.held_back,
+                "allowed_identifiers": s.allowed_identifiers}  # fmt: skip
 
     return _stage(run_id, "ingest", work)
 
@@ -152,7 +157,7 @@ def summarise_task(run_id: str) -> dict[str, Any]:
 @task(name="publish")
 def publish_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        commit_month(ctx.con)
+        commit_and_install(ctx.out, ctx.period.label, ctx.run_id, lambda: commit_month(ctx.con))
         return {"warehouse": str(ctx.out / "surveillance.duckdb")}
 
     return _stage(run_id, "publish", work)
@@ -206,6 +211,7 @@ def start_run(period: str, config_dir: str, inbox: str, out: str, demo: bool,
     key = resolve_key(demo=demo)
     ctx = RunContext(settings, Period.parse(period), Path(inbox), Path(out), key,
                      open_warehouse(Path(out)), report)  # fmt: skip
+    recover_interrupted_run(ctx.out, ctx.con)
     run_id = uuid.uuid4().hex
     ctx.run_id = run_id
     _RUNS[run_id] = ctx
@@ -238,11 +244,12 @@ def monthly_surveillance(period: str | None = None, config_dir: str = "config",
     """Ingest what is new, validate, measure, link, summarise and publish one month
     (``period`` None: the previous month, as a scheduled run does)."""
     period = period or Period.previous_month(dt.date.today()).label
-    run_id = start_run(period, config_dir, inbox, out, demo, report=_reporter, executor=executor)
-    try:
-        return run_stages(run_id)
-    finally:
-        finish_run(run_id)
+    with run_lock(Path(out), period):
+        run_id = start_run(period, config_dir, inbox, out, demo, report=_reporter, executor=executor)
+        try:
+            return run_stages(run_id)
+        finally:
+            finish_run(run_id)
 
 
 def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
@@ -272,9 +279,11 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
                                   ctx.key.is_demo, ctx.stages, summary,
                                   input_files(ctx.con, ctx.period.label))  # fmt: skip
     record_run(ctx.con, ctx.manifest)
-    call(publish_task, run_id)
     summary["exit_code"] = ctx.manifest["exit_code"]
-    call(export_task, run_id, summary)
+    call(export_task, run_id, summary)  # into <out>/.<period>.partial, inside the transaction
+    call(publish_task, run_id)  # commit, then the exports move into <out>/<period>/
+    ctx.manifest["durations_seconds"] = {name: info["seconds"] for name, info in ctx.stages.items()}
+    write_json(ctx.out / ctx.period.label / "run_manifest.json", ctx.manifest)
     return summary
 
 
@@ -282,11 +291,12 @@ def run_month_plain(period: str, config_dir: str, inbox: str, out: str, demo: bo
                     report: Callable[[str, float, str], None] = _quiet,
                     executor: str | None = None) -> dict[str, Any]:
     """The monthly run without Prefect (tests, benchmarks, debugging)."""
-    run_id = start_run(period, config_dir, inbox, out, demo, report=report, executor=executor)
-    try:
-        return run_stages(run_id, plain=True)
-    finally:
-        finish_run(run_id)
+    with run_lock(Path(out), period):
+        run_id = start_run(period, config_dir, inbox, out, demo, report=report, executor=executor)
+        try:
+            return run_stages(run_id, plain=True)
+        finally:
+            finish_run(run_id)
 
 
 # The console reporter of the flow: kept out of the flow's parameters (a function is not a

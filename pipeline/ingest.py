@@ -3,8 +3,12 @@
 One reader per layout turns a lab's file into the same landed columns (all text, as reported),
 with the file's line number and the raw line (the person token masked) kept for every row. A
 fault that concerns the whole file (not UTF-8, a missing column, the wrong delimiter) holds that
-file back with a message naming it; the other files go on. Nothing here judges a value: that is
-the validate stage.
+file back with a message naming it; the other files go on, and so does a file that cannot be
+read at all (permission denied, an I/O error). Before anything is stored, every file passes the
+identifier screen (:mod:`pipeline.identifiers`): a file whose columns or sampled values look like
+direct identifiers is held back the same way, unless the source config allows the column with a
+written reason (recorded in the ledger message, hence in the run manifest). Nothing here judges
+a value: that is the validate stage.
 """
 
 from __future__ import annotations
@@ -23,6 +27,7 @@ from pathlib import Path
 import duckdb
 import polars as pl
 
+from pipeline import identifiers
 from pipeline.pseudonymise import SHARED_DOMAIN, PseudonymKey, add_person_keys
 from pipeline.settings import STANDARD_FIELDS, STANDARD_REQUIRED, Settings, SourceConfig
 
@@ -50,9 +55,15 @@ class InboxFile:
     rel_path: str
     sha256: str
     size_bytes: int
-    status: str = "new"  # new | already_ingested | duplicate_file
+    status: str = "new"  # new | already_ingested | duplicate_file | unreadable
     same_as: str | None = None
     file_id: int | None = None
+    #: why the file could not be read at the scan (status unreadable)
+    fault: str | None = None
+    #: columns the identifier screen flagged and the source config allows, with the reason
+    allowed_identifiers: list[identifiers.Finding] = field(default_factory=list)
+    #: things worth telling about a file that was ingested (e.g. columns it ignored)
+    notes: list[str] = field(default_factory=list)
 
 
 @dataclass
@@ -62,6 +73,22 @@ class IngestSummary:
     files_held_back: int = 0
     rows_landed: int = 0
     held_back: list[tuple[str, str]] = field(default_factory=list)  # (path, message)
+    #: (path, column, pattern, reason) of every flagged column a source config allows
+    allowed_identifiers: list[tuple[str, str, str, str]] = field(default_factory=list)
+
+
+def _unreadable(path: Path, exc: OSError) -> FileFault:
+    reason = exc.strerror or type(exc).__name__
+    hint = "check the file's owner and permissions" if isinstance(exc, PermissionError) else "check the file"
+    return FileFault(f"{path}: the file cannot be read ({reason}); {hint}, it is tried again next run")
+
+
+def read_file_bytes(path: Path) -> bytes:
+    """The file's bytes; a file that cannot be read is a :class:`FileFault` naming it."""
+    try:
+        return path.read_bytes()
+    except OSError as exc:
+        raise _unreadable(path, exc) from None
 
 
 def sha256_of(path: Path) -> str:
@@ -93,8 +120,14 @@ def scan_inbox(con: duckdb.DuckDBPyConnection | None, settings: Settings, inbox:
             if not path.is_file():
                 continue
             rel = path.relative_to(inbox).as_posix()
-            sha = sha256_of(path)
-            item = InboxFile(source.id, path, rel, sha, path.stat().st_size)
+            try:
+                sha = sha256_of(path)
+                size = path.stat().st_size
+            except OSError as exc:  # held back by land_inbox, with the reason
+                found.append(InboxFile(source.id, path, rel, "", 0, status="unreadable",
+                                       fault=str(_unreadable(path, exc))))  # fmt: skip
+                continue
+            item = InboxFile(source.id, path, rel, sha, size)
             earlier = seen.get((source.id, sha))
             if (source.id, sha, rel) in recorded:
                 item.status = "already_ingested"
@@ -141,7 +174,7 @@ def _header_fault(path: Path, header: list[str], wanted: dict[str, str], delimit
 def read_delimited(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
     """Read a standard-layout or mapped delimited file into landed rows."""
     path = item.path
-    text = _decode(path, path.read_bytes(), source.encoding)
+    text = _decode(path, read_file_bytes(path), source.encoding)
     if not text.strip():
         raise FileFault(f"{path}: the file is empty")
     if source.layout == "standard":
@@ -156,6 +189,9 @@ def read_delimited(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
     if fault:
         raise FileFault(fault)
     index = {f: header.index(c) for f, c in wanted.items() if c in header}
+    extra = [h for h in header if h not in wanted.values()]
+    if extra:
+        item.notes.append(f"columns not in the layout, ignored: {', '.join(extra)}")
     token_idx = index["person_token"]
     n_fields = len(header)
     # the csv reader counts a line at \r\n, \n or \r only (str.splitlines would also split at
@@ -172,6 +208,8 @@ def read_delimited(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
 
     start = 2
     rows_iter = iter(reader)
+    sample: list[tuple[int, list[str]]] = []
+    n_rows = 0
     while True:
         try:
             row = next(rows_iter)
@@ -184,6 +222,9 @@ def read_delimited(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
         line_no, start = start, end + 1
         if not row or (len(row) == 1 and not row[0].strip()):
             continue  # blank line: not a row
+        if identifiers.sampled(n_rows):
+            sample.append((line_no, row))
+        n_rows += 1
         fault = None
         if len(row) != n_fields:
             fault = f"wrong_field_count:{len(row)} fields, the header has {n_fields}"
@@ -201,11 +242,23 @@ def read_delimited(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
     flush()
     if not chunks:
         raise FileFault(f"{path}: the file has a header but no rows")
+    aliases = {c: f for f, c in wanted.items()}
+    births = [c for f, c in wanted.items() if f == "birth_year"]
+    _apply_screen(source, item, path, identifiers.screen_table(header, sample, births), aliases)
     frame = pl.concat(chunks)
     for f in STANDARD_FIELDS:
         if f not in frame.columns:
             frame = frame.with_columns(pl.lit(None, dtype=pl.String).alias(f))
     return _to_landed(frame, source, item)
+
+
+def _apply_screen(source: SourceConfig, item: InboxFile, path: Path,
+                  findings: list[identifiers.Finding], aliases: dict[str, str] | None = None) -> None:
+    """Refuse the file (a FileFault) for any finding the source does not allow; keep the rest."""
+    refused, allowed = identifiers.split_allowed(findings, source.allowed_identifier_columns, aliases)
+    if refused:
+        raise FileFault(identifiers.refusal_message(path, refused, source.id))
+    item.allowed_identifiers.extend(allowed)
 
 
 def _to_landed(frame: pl.DataFrame, source: SourceConfig, item: InboxFile) -> pl.DataFrame:
@@ -289,11 +342,12 @@ def _ndjson_lines(text: str) -> list[str]:
     return [line.removesuffix("\r") for line in text.split("\n")]
 
 
-def _read_patients(path: Path, source: SourceConfig) -> dict[str, dict]:
+def _read_patients(path: Path, source: SourceConfig, item: InboxFile) -> dict[str, dict]:
     patients: dict[str, dict] = {}
     if not path.is_file():
         raise FileFault(f"{path}: Patient.ndjson is missing beside {path.parent / 'Observation.ndjson'}")
-    text = _decode(path, path.read_bytes(), "utf-8")
+    text = _decode(path, read_file_bytes(path), "utf-8")
+    sample: list[tuple[int, dict]] = []
     system = source.fhir.linkage_identifier_system
     for line_no, line in enumerate(_ndjson_lines(text), start=1):
         if not line.strip():
@@ -304,6 +358,8 @@ def _read_patients(path: Path, source: SourceConfig) -> dict[str, dict]:
             raise FileFault(f"{path}: line {line_no}: not valid JSON ({exc.msg})") from None
         if not isinstance(res, dict) or res.get("resourceType") != "Patient" or not isinstance(res.get("id"), str):
             raise FileFault(f"{path}: line {line_no}: expected a Patient resource with an id")
+        if identifiers.sampled(len(patients)):
+            sample.append((line_no, res))
         try:
             token, domain = None, source.id
             for ident in _objects(res, "identifier"):
@@ -321,6 +377,7 @@ def _read_patients(path: Path, source: SourceConfig) -> dict[str, dict]:
             }
         except _Malformed as exc:
             raise FileFault(f"{path}: line {line_no}: Patient {res['id']}: {exc}") from None
+    _apply_screen(source, item, path, identifiers.screen_resources("Patient", sample))
     return patients
 
 
@@ -365,10 +422,11 @@ _FHIR_FIELDS = (
 def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) -> pl.DataFrame:
     """Read one bulk-export folder (Observation.ndjson with its Patient.ndjson)."""
     path = item.path
-    patients = _read_patients(path.parent / "Patient.ndjson", source)
+    patients = _read_patients(path.parent / "Patient.ndjson", source, item)
     by_name = {name.casefold(): code for code, name in settings.districts.items()}
-    text = _decode(path, path.read_bytes(), "utf-8")
+    text = _decode(path, read_file_bytes(path), "utf-8")
     rows: dict[str, list] = {f: [] for f in _FHIR_FIELDS}
+    sample: list[tuple[int, object]] = []
     for line_no, line in enumerate(_ndjson_lines(text), start=1):
         if not line.strip():
             continue
@@ -376,6 +434,8 @@ def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) 
         rec["line_no"] = line_no
         try:
             res = json.loads(line)
+            if identifiers.sampled(len(rows["line_no"])):
+                sample.append((line_no, res))
             if not isinstance(res, dict) or res.get("resourceType") != "Observation":
                 raise _Malformed("not an Observation resource")
             subject = _text(_obj(res, "subject"), "reference") or ""
@@ -400,6 +460,7 @@ def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) 
             rows[f].append(v)
     if not rows["line_no"]:
         raise FileFault(f"{path}: no Observation records")
+    _apply_screen(source, item, path, identifiers.screen_resources("Observation", sample))
     frame = pl.DataFrame(rows, schema={f: pl.Int64 if f == "line_no" else pl.String for f in _FHIR_FIELDS})
     return frame.with_columns(
         pl.lit(source.id).alias("source_id"), pl.lit(item.file_id, dtype=pl.Int64).alias("file_id")
@@ -477,6 +538,7 @@ def land_inbox(
         if item.status == "already_ingested":
             summary.files_skipped += 1
             continue
+        item.allowed_identifiers.clear()
         source = settings.source(item.source_id)
         item.file_id = next_id
         next_id += 1
@@ -496,7 +558,11 @@ def land_inbox(
             "and status = 'ingested' order by file_id limit 1",
             [item.source_id, item.sha256],
         ).fetchall() if item.status == "duplicate_file" else []  # fmt: skip
-        if original:
+        if item.status == "unreadable":
+            status, message = "held_back", item.fault
+            summary.files_held_back += 1
+            summary.held_back.append((item.rel_path, item.fault or ""))
+        elif original:
             status = "duplicate_file"
             message = f"same content as {item.same_as}, already ingested; every row counted as duplicate"
             rows_read = original[0][0]
@@ -513,6 +579,15 @@ def land_inbox(
                 frames.append(add_person_keys(frame, key))
                 summary.files_new += 1
                 summary.rows_landed += rows_read
+                if item.notes:
+                    message = "; ".join(item.notes)
+                if item.allowed_identifiers:
+                    note = identifiers.allowance_note(item.allowed_identifiers)
+                    message = f"{message}; {note}" if message else note
+                    summary.allowed_identifiers.extend(
+                        (item.rel_path, f.column, f.pattern, f.allowed_reason or "")
+                        for f in item.allowed_identifiers
+                    )
         con.execute(
             "insert into ingest_files (file_id, source_id, file_path, version, sha256, size_bytes, "
             "status, message, rows_read, rows_duplicate, run_period, extract_month, ingested_at) "

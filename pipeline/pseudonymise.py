@@ -3,6 +3,11 @@
 The warehouse never holds the token a lab sent: ``person_key`` is the HMAC of the token under a
 secret key, so the same token gives the same key in every run and every lab that shares the
 linkage domain, and nobody without the key can go back from a key to a token.
+
+The key comes from ``KIDNEYSURV_PSEUDONYM_KEY`` or from the file named by
+``KIDNEYSURV_PSEUDONYM_KEY_FILE``, which must be readable by its owner only (mode 0600 or 0400):
+a key file that its group or other users could read is refused. The key is never logged, printed
+or stored; only whether it was the public demo key is (``demo_key`` in every run's outputs).
 """
 
 from __future__ import annotations
@@ -10,11 +15,14 @@ from __future__ import annotations
 import hashlib
 import hmac
 import os
+import stat
 from dataclasses import dataclass
+from pathlib import Path
 
 import polars as pl
 
 KEY_ENV = "KIDNEYSURV_PSEUDONYM_KEY"
+KEY_FILE_ENV = "KIDNEYSURV_PSEUDONYM_KEY_FILE"
 
 #: The demo key is public on purpose: it is written in this file and in the README, and every
 #: output made with it says so. Never use it for real data.
@@ -25,7 +33,11 @@ SHARED_DOMAIN = "shared"
 
 
 class KeyMissing(Exception):
-    """No pseudonymisation key was given for a non-demo run."""
+    """No pseudonymisation key was given for a non-demo run (or it cannot be used)."""
+
+
+class KeyFileUnsafe(KeyMissing):
+    """The key file cannot be read, is empty, or others than its owner may read it."""
 
 
 @dataclass(frozen=True)
@@ -37,16 +49,48 @@ class PseudonymKey:
         return f"PseudonymKey(is_demo={self.is_demo})"
 
 
+def read_key_file(path: Path) -> bytes:
+    """The key in ``path`` (one line; the line end is not part of it), if only its owner may read it."""
+    try:
+        info = path.stat()
+    except OSError as exc:
+        raise KeyFileUnsafe(f"{KEY_FILE_ENV}={path}: the key file cannot be used ({exc.strerror})") from None
+    if not stat.S_ISREG(info.st_mode):
+        raise KeyFileUnsafe(f"{KEY_FILE_ENV}={path}: not a regular file")
+    mode = stat.S_IMODE(info.st_mode)
+    if mode & 0o077:
+        raise KeyFileUnsafe(
+            f"{KEY_FILE_ENV}={path}: the key file has mode {mode:04o}, so users other than its owner "
+            f"may read or change it; make it owner-only (chmod 600 {path}) and keep it outside the "
+            "inbox and the output folder"
+        )
+    if hasattr(os, "geteuid") and info.st_uid != os.geteuid():
+        raise KeyFileUnsafe(f"{KEY_FILE_ENV}={path}: the key file belongs to another user (uid {info.st_uid})")
+    try:
+        secret = path.read_bytes().rstrip(b"\r\n")
+    except OSError as exc:
+        raise KeyFileUnsafe(f"{KEY_FILE_ENV}={path}: the key file cannot be read ({exc.strerror})") from None
+    if not secret.strip():
+        raise KeyFileUnsafe(f"{KEY_FILE_ENV}={path}: the key file is empty")
+    return secret
+
+
 def resolve_key(demo: bool) -> PseudonymKey:
-    """Return the key from ``KIDNEYSURV_PSEUDONYM_KEY``, or the demo key for a demo run."""
+    """The key from ``KIDNEYSURV_PSEUDONYM_KEY``, else from the owner-only file named by
+    ``KIDNEYSURV_PSEUDONYM_KEY_FILE``, else the public demo key for a demo run; a non-demo run
+    without a key raises :class:`KeyMissing`."""
     value = os.environ.get(KEY_ENV, "")
     if value:
         return PseudonymKey(secret=value.encode("utf-8"), is_demo=value == DEMO_KEY)
+    key_file = os.environ.get(KEY_FILE_ENV, "")
+    if key_file:
+        secret = read_key_file(Path(key_file))
+        return PseudonymKey(secret=secret, is_demo=secret == DEMO_KEY.encode("utf-8"))
     if demo:
         return PseudonymKey(secret=DEMO_KEY.encode("utf-8"), is_demo=True)
     raise KeyMissing(
-        f"set {KEY_ENV} to the region's pseudonymisation key before a run "
-        "(the demo uses a public demo key; real data must not)"
+        f"set {KEY_ENV} to the region's pseudonymisation key, or {KEY_FILE_ENV} to an owner-only "
+        "file holding it, before a run (the demo uses a public demo key; real data must not)"
     )
 
 

@@ -54,7 +54,7 @@ def write_exports(con: duckdb.DuckDBPyConnection, out_dir: Path, period: Period,
     final = out_dir / period.label
     work = out_dir / f".{period.label}.partial"
     shutil.rmtree(work, ignore_errors=True)
-    work.mkdir(parents=True)
+    work.mkdir(parents=True, mode=0o700)
     for table in PUBLISHED_TABLES:
         order = ", ".join(table.keys)
         query = f"select * from published.{table.name} where period = $period order by {order}"
@@ -70,15 +70,7 @@ def write_exports(con: duckdb.DuckDBPyConnection, out_dir: Path, period: Period,
     docs = quality_docs_dir(out_dir, period)
     if docs.is_dir():
         docs.rename(work / "quality")
-    if final.exists():
-        old = out_dir / f".{period.label}.old"
-        shutil.rmtree(old, ignore_errors=True)
-        final.rename(old)
-        work.rename(final)
-        shutil.rmtree(old, ignore_errors=True)
-    else:
-        work.rename(final)
-    return final
+    return work  # moved into out/<period>/ after the commit (runlock.commit_and_install)
 
 
 def _literal(path: Path) -> str:

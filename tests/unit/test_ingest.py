@@ -312,3 +312,16 @@ def test_blank_token_gives_null_key(settings: Settings, tmp_path: Path):
     inbox = write_inbox(tmp_path, {"x.csv": HEADER + "\n" + ROW.replace("WF-tok00001", "") + "\n"})
     keyed = add_person_keys(read(STANDARD, inbox / "x.csv", settings), KEY)
     assert keyed["person_key"].to_list() == [None]
+
+
+def test_extra_columns_are_ignored_and_named_in_the_ledger(tmp_path):
+    from tests.conftest import make_small_config, rows, run_month, write_inbox
+
+    config = make_small_config(tmp_path / "config")
+    text = ("person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,"
+            "status,ward\nWF-x1,1960,F,WF01,S1,2026-01-10,2160-0,1.0,mg/dL,final,B4\n")
+    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": text})
+    with run_month(config, inbox, tmp_path / "out") as con:
+        status, message, accepted = rows(con, "select status, message, rows_accepted from ingest_files")[0]
+    assert (status, accepted) == ("ingested", 1)
+    assert "ignored: ward" in message

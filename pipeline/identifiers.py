@@ -1,0 +1,347 @@
+"""The identifier screen: refuse a file that carries direct identifiers, before anything is stored.
+
+A lab extract for surveillance carries a pseudonymous token, a birth year, sex and a district:
+never a person's name, full date of birth, phone number, e-mail address, national ID number or
+street address. The screen looks at every column name of a file and at a sample of its values
+(the first :data:`SAMPLE_FIRST` rows, then every :data:`SAMPLE_EVERY`-th, at most
+:data:`SAMPLE_MAX`) and reports each column that looks like one of these, with the pattern found.
+A FHIR export is screened by element path (``Patient.name``, ``Observation.subject.display``)
+and by the values of every text element.
+
+The screen never copies a value into its findings: messages name the column, the pattern and
+line numbers only, because they are stored in the ledger and the run manifest.
+
+What the screen is not: a proof that a file holds no identifier. It catches the usual ways an
+over-broad export goes wrong (an extra column, a mapping to the wrong column, a token field
+filled with a national ID, a contact block in a FHIR Patient). The patterns are common practice
+for data-minimisation checks; the thresholds below are this project's choice.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import re
+from collections.abc import Iterable, Iterator, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+#: What each pattern means, as written in messages.
+PATTERNS = {
+    "person_name": "person names",
+    "birth_date": "full dates of birth",
+    "phone": "phone numbers",
+    "email": "e-mail addresses",
+    "national_id": "national-ID-like numbers",
+    "street_address": "street addresses",
+}
+
+SAMPLE_FIRST = 1000
+SAMPLE_EVERY = 50
+SAMPLE_MAX = 5000
+
+# --------------------------------------------------------------------------- column names
+
+#: Column names (normalised to snake_case words) that say what the column holds.
+_NAME_RULES: list[tuple[str, re.Pattern[str]]] = [
+    ("person_name", re.compile(
+        r"^(?:patient|person|client|subject|full|display)?_?names?$"
+        r"|(?:^|_)(?:first|last|given|family|middle|maiden|birth|sur|fore|christian|full|patient"
+        r"|person)_?names?(?:$|_)"
+        r"|(?:^|_)(?:surname|forenames?|initials)(?:$|_)")),
+    ("birth_date", re.compile(
+        r"(?:^|_)(?:dob|birth_?date|birth_?day|date_of_birth|birth_dt|born_on|born_date)(?:$|_)")),
+    ("email", re.compile(r"(?:^|_)(?:e_?mail|e_?mail_address|mail_address)(?:$|_)")),
+    ("phone", re.compile(
+        r"(?:^|_)(?:phone|telephone|tel|tel_no|mobile|mobile_no|cellphone|cell_phone|fax"
+        r"|contact_number|phone_number)(?:$|_)")),
+    ("national_id", re.compile(
+        r"(?:^|_)(?:ssn|national_?id|national_?number|national_?no|national_insurance"
+        r"|social_security|passport(?:_no|_number)?|id_card|identity_card|identity_number"
+        r"|personal_?id|personal_?number|personal_code|citizen_?id|insurance_number"
+        r"|health_?card|health_number|tax_?id)(?:$|_)")),
+    ("street_address", re.compile(
+        r"(?:^|_)(?:address|addr|street|address_line\d?|house_number|house_no|postcode|post_code"
+        r"|postal_code|zip|zip_code|zipcode)(?:$|_)")),
+]
+
+#: FHIR element paths (resource type dropped, list positions ignored) that are identifiers by
+#: definition, matched at the end of the path so that contained resources are caught too.
+_FHIR_PATH_RULES: list[tuple[str, re.Pattern[str]]] = [
+    ("person_name", re.compile(r"(?:^|\.)name(?:\.(?:family|given|text|prefix|suffix))?$")),
+    ("person_name", re.compile(r"(?:^|\.)subject\.display$")),
+    ("phone", re.compile(r"(?:^|\.)telecom\.value$")),
+    ("street_address", re.compile(r"(?:^|\.)address\.(?:line|text|postalCode)$")),
+]
+
+
+def normalise_column(name: str) -> str:
+    """``PatientName`` / ``patient-name`` / ``Patient Name`` -> ``patient_name``."""
+    spaced = re.sub(r"([a-z0-9])([A-Z])", r"\1_\2", name.strip())
+    spaced = re.sub(r"([A-Z]+)([A-Z][a-z])", r"\1_\2", spaced)
+    return re.sub(r"[^a-z0-9]+", "_", spaced.lower()).strip("_")
+
+
+def column_name_pattern(name: str) -> str | None:
+    """The pattern a column's name announces, or None."""
+    norm = normalise_column(name)
+    for pattern, rule in _NAME_RULES:
+        if rule.search(norm):
+            return pattern
+    return None
+
+
+# --------------------------------------------------------------------------- values
+
+_EMAIL = re.compile(r"[A-Za-z0-9._%+-]+@[A-Za-z0-9-]+(?:\.[A-Za-z0-9-]+)*\.[A-Za-z]{2,}")
+#: International form (+ and a country code) or a national form with a leading 0 and separators.
+_PHONE = re.compile(r"\+[1-9][0-9 ().-]{6,20}|\(?0\d{1,4}\)?[ .-]?\d{3,4}[ .-]\d{3,4}")
+_NATIONAL_ID = re.compile(
+    r"\d{3}-\d{2}-\d{4}"                  # 3-2-4 digit groups
+    r"|\d{6}[-+]\d{4}"                     # six digits (a birth date), a sign, four digits
+    r"|\d{3} \d{3} \d{3,4}"                # 9 or 10 digits in groups of three
+    r"|\d{3}\.\d{3}\.\d{3}-\d{2}"          # 3.3.3-2
+    r"|[A-Z]{2} ?\d{2} ?\d{2} ?\d{2} ?[A-D]"  # two letters, six digits, a letter
+)
+_STREET_WORDS = (
+    "Street|St|Road|Rd|Lane|Ln|Avenue|Ave|Way|Drive|Dr|Close|Court|Ct|Place|Pl|Crescent|"
+    "Terrace|Gardens|Row|Square|Sq|Hill|Boulevard|Blvd|Walk|Mews|Parade|Grove"
+)
+_STREET = re.compile(rf"\b\d{{1,5}}[A-Za-z]?,? (?:[A-Z][a-z]+ ){{1,3}}(?:{_STREET_WORDS})\b\.?")
+_NAME_TITLE = re.compile(r"[A-Z][a-z'’-]+(?: [A-Z][a-z'’-]+){1,3}|[A-Z][a-z'’-]+, [A-Z][a-z'’-]+(?: [A-Z][a-z'’-]+)?")
+_NAME_UPPER = re.compile(r"[A-Z]{2,}(?: [A-Z]{2,}){1,3}|[A-Z]{2,}, [A-Z]{2,}")
+#: Words of lab reports and places that make a two-word capitalised value not a name.
+_NOT_NAME_WORDS = {
+    "serum", "plasma", "urine", "blood", "whole", "random", "fasting", "spot", "total", "ratio",
+    "creatinine", "cystatin", "albumin", "protein", "glucose", "haemoglobin", "hemoglobin",
+    "glycated", "estimated", "see", "note", "not", "done", "test", "sample", "result", "lab",
+    "laboratory", "hospital", "general", "reference", "district", "north", "south", "east",
+    "west", "upper", "lower", "new", "old", "final", "amended", "corrected", "cancelled",
+    "preliminary", "entered", "error", "unknown", "other", "female", "male", "nd", "na",
+}
+_DATE_FORMS = (
+    re.compile(r"(\d{4})-(\d{1,2})-(\d{1,2})(?:[T ][\d:.+Z-]*)?"),
+    re.compile(r"(\d{1,2})[./-](\d{1,2})[./-](\d{4})"),
+    re.compile(r"(\d{4})(\d{2})(\d{2})"),
+)
+
+
+def _full_date(value: str) -> bool:
+    """A whole calendar date (day, month and year), in ISO, d/m/y or yyyymmdd form."""
+    for i, form in enumerate(_DATE_FORMS):
+        m = form.fullmatch(value)
+        if not m:
+            continue
+        a, b, c = (int(g) for g in m.groups())
+        year, month, day = (a, b, c) if i != 1 else (c, b, a)
+        if i == 1 and b > 12:  # m/d/y
+            month, day = a, b
+        if not 1880 <= year <= 2100:
+            return False
+        try:
+            dt.date(year, month, day)
+        except ValueError:
+            return False
+        return True
+    return False
+
+
+def _digits(value: str) -> int:
+    return sum(ch.isdigit() for ch in value)
+
+
+def _looks_like_name(value: str) -> bool:
+    if not (_NAME_TITLE.fullmatch(value) or _NAME_UPPER.fullmatch(value)):
+        return False
+    words = re.split(r"[ ,]+", value.lower())
+    return not any(w in _NOT_NAME_WORDS for w in words)
+
+
+def value_patterns(value: str) -> set[str]:
+    """The patterns one value matches (birth dates are judged with the column, not here)."""
+    found: set[str] = set()
+    if "@" in value and _EMAIL.search(value):
+        found.add("email")
+    if any(ch.isdigit() for ch in value):
+        if _PHONE.fullmatch(value) and 8 <= _digits(value) <= 15:
+            found.add("phone")
+        if _NATIONAL_ID.fullmatch(value):
+            found.add("national_id")
+        if _STREET.search(value):
+            found.add("street_address")
+    elif " " in value and _looks_like_name(value):
+        found.add("person_name")
+    return found
+
+
+# --------------------------------------------------------------------------- findings
+
+
+@dataclass(frozen=True)
+class Finding:
+    """One column that looks like a direct identifier."""
+
+    column: str
+    pattern: str
+    evidence: str
+    allowed_reason: str | None = None
+
+    def describe(self) -> str:
+        return f"column {self.column!r}: {PATTERNS[self.pattern]} ({self.evidence})"
+
+
+def sampled(index: int) -> bool:
+    """Whether the ``index``-th row (0-based) of a file is in the screen's sample."""
+    if index < SAMPLE_FIRST:
+        return True
+    step, rest = divmod(index - SAMPLE_FIRST, SAMPLE_EVERY)
+    return rest == 0 and SAMPLE_FIRST + step < SAMPLE_MAX
+
+
+@dataclass
+class _Column:
+    values: int = 0
+    hits: dict[str, list[int]] = field(default_factory=dict)  # pattern -> line numbers
+    names: set[str] = field(default_factory=set)  # distinct name-like values (for diversity)
+
+    def add(self, line: int, value: str, birth_column: bool) -> None:
+        value = value.strip()
+        if not value:
+            return
+        self.values += 1
+        found = value_patterns(value)
+        if birth_column and _full_date(value):
+            found.add("birth_date")
+        for pattern in found:
+            self.hits.setdefault(pattern, []).append(line)
+        if "person_name" in found and len(self.names) < 1000:
+            self.names.add(value)
+
+
+#: A pattern flags a column when at least this share of its sampled non-empty values match.
+#: One e-mail address, street address or full birth date is enough; phone and ID numbers
+#: and names must be the column's usual content (specimen numbers and test names look alike).
+_MIN_SHARE = {"email": 0.0, "street_address": 0.0, "birth_date": 0.0,
+              "phone": 0.5, "national_id": 0.5, "person_name": 0.5}  # fmt: skip
+#: Names must also be varied: at least 5 distinct values, half of the matching values distinct.
+_MIN_DISTINCT_NAMES = 5
+
+
+def _column_findings(column: str, col: _Column) -> list[Finding]:
+    out = []
+    for pattern in PATTERNS:
+        lines = col.hits.get(pattern)
+        if not lines or len(lines) < _MIN_SHARE[pattern] * col.values:
+            continue
+        if pattern == "person_name" and (
+            len(col.names) < _MIN_DISTINCT_NAMES or len(col.names) < 0.5 * len(lines)
+        ):
+            continue
+        where = ", ".join(str(n) for n in lines[:3])
+        out.append(Finding(column, pattern, f"{len(lines)} of {col.values} sampled values, line {where}"
+                           + (" ..." if len(lines) > 3 else "")))  # fmt: skip
+    return out
+
+
+def screen_table(header: Sequence[str], rows: Iterable[tuple[int, Sequence[str]]],
+                 birth_columns: Iterable[str] = ()) -> list[Finding]:  # fmt: skip
+    """Findings of a delimited file: its ``header`` and sampled ``rows`` as (line, fields).
+
+    ``birth_columns`` are the columns mapped to the birth year: a full date there is a date of
+    birth whatever the column is called. Fields beyond the header are screened as well (they
+    are kept in the raw text of a rejected row).
+    """
+    findings: list[Finding] = []
+    flagged: set[str] = set()
+    for name in header:
+        pattern = column_name_pattern(name)
+        if pattern:
+            findings.append(Finding(name, pattern, "column name"))
+            flagged.add(name)
+    births = set(birth_columns) | {h for h in header if re.search(r"birth|born|dob", normalise_column(h))}
+    columns: dict[int, _Column] = {}
+    for line, fields in rows:
+        for i, value in enumerate(fields):
+            if value:
+                name = header[i] if i < len(header) else None
+                columns.setdefault(i, _Column()).add(line, value, name in births)
+    for i, col in sorted(columns.items()):
+        name = header[i] if i < len(header) else f"(field {i + 1}, beyond the header)"
+        if name in flagged:
+            continue
+        findings.extend(_column_findings(name, col))
+    return findings
+
+
+def _leaves(value: Any, path: str) -> Iterator[tuple[str, str]]:
+    if isinstance(value, dict):
+        for key, child in value.items():
+            if isinstance(key, str):
+                yield from _leaves(child, f"{path}.{key}")
+    elif isinstance(value, list):
+        for child in value:
+            yield from _leaves(child, path)
+    elif isinstance(value, str):
+        yield path, value
+
+
+def screen_resources(resource_type: str, records: Iterable[tuple[int, Any]]) -> list[Finding]:
+    """Findings of FHIR resources given as (line, parsed JSON), by element path and value.
+
+    A Patient's ``birthDate`` is not judged: the reader keeps its year only and Patient
+    records are never stored (see DEVELOPERS.md, Threat model).
+    """
+    by_path: dict[str, _Column] = {}
+    path_hits: dict[str, tuple[str, list[int]]] = {}
+    for line, record in records:
+        if not isinstance(record, dict):
+            continue
+        for path, value in _leaves(record, resource_type):
+            if path == "Patient.birthDate" or not value.strip():
+                continue
+            relative = path.split(".", 1)[1] if "." in path else path
+            rule = next((p for p, r in _FHIR_PATH_RULES if r.search(relative)), None)
+            if rule:
+                path_hits.setdefault(path, (rule, []))[1].append(line)
+            else:
+                by_path.setdefault(path, _Column()).add(line, value, birth_column=False)
+    findings = []
+    for path, (pattern, lines) in sorted(path_hits.items()):
+        where = ", ".join(str(n) for n in lines[:3])
+        findings.append(Finding(path, pattern, f"element present, line {where}" + (" ..." if len(lines) > 3 else "")))
+    for path, col in sorted(by_path.items()):
+        findings.extend(_column_findings(path, col))
+    return findings
+
+
+def split_allowed(findings: Iterable[Finding], allowed: Mapping[str, str],
+                  aliases: Mapping[str, str] | None = None) -> tuple[list[Finding], list[Finding]]:  # fmt: skip
+    """(refused, allowed) findings. ``allowed`` maps a column (or the standard field it is
+    mapped to, via ``aliases`` column -> field; or a FHIR path prefix) to the written reason."""
+    aliases = aliases or {}
+    refused, kept = [], []
+    for f in findings:
+        reason = allowed.get(f.column) or allowed.get(aliases.get(f.column, "\0"))
+        if reason is None:
+            reason = next((why for key, why in allowed.items() if f.column.startswith(key + ".")), None)
+        if reason is None:
+            refused.append(f)
+        else:
+            kept.append(Finding(f.column, f.pattern, f.evidence, reason))
+    return refused, kept
+
+
+def refusal_message(path: object, refused: Sequence[Finding], source_id: str) -> str:
+    """The held-back message: every column refused, with its pattern; no value is quoted."""
+    what = "; ".join(f.describe() for f in refused)
+    return (
+        f"{path}: refused by the identifier screen, nothing stored: {what}. Ask the lab for an "
+        f"extract without direct identifiers, or list the column under allowed_identifier_columns "
+        f"in the config of source {source_id!r} with the written reason"
+    )
+
+
+def allowance_note(allowed: Sequence[Finding]) -> str:
+    """The ledger note of a file ingested with allowed columns (it reaches the run manifest)."""
+    return "identifier screen: " + "; ".join(
+        f"{f.describe()} allowed by the source config: {f.allowed_reason}" for f in allowed
+    )
