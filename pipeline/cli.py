@@ -233,7 +233,11 @@ def sources_check(
         _fail(str(exc))
     if not file.is_file():
         _fail(f"{file}: file not found")
-    report = check_file(settings, source_id, file)
+    try:
+        report = check_file(settings, source_id, file)
+    except OSError as exc:
+        err.print(f"[bold red]file held back:[/] {file}: cannot be read ({exc.strerror or exc})", soft_wrap=True)
+        raise typer.Exit(EXIT_HELD_BACK) from None
     if report.fault:
         err.print(f"[bold red]file held back:[/] {report.fault}", soft_wrap=True)
         raise typer.Exit(EXIT_HELD_BACK)

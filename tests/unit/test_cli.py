@@ -82,3 +82,18 @@ def test_config_error_names_file_and_key_without_traceback(tmp_path):
     assert result.exit_code == 2
     assert "westerfold_general_lab.yaml" in result.output and "delimeter" in result.output
     assert "Traceback" not in result.output
+
+
+def test_sources_check_names_an_unreadable_file(tmp_path, monkeypatch):
+    path = tmp_path / "results_2026-01.csv"
+    path.write_text("person_token\n", encoding="utf-8")
+
+    def denied(*args, **kwargs):
+        raise PermissionError(13, "Permission denied")
+
+    monkeypatch.setattr("pipeline.checks.sha256_of", denied)  # root can read a mode-0 file
+    result = runner.invoke(app, ["sources", "check", "westerfold_general_lab", str(path),
+                                 "--config", str(REPO / "config")])  # fmt: skip
+    assert result.exit_code == 1
+    assert "results_2026-01.csv" in result.output and "Permission denied" in result.output
+    assert "Traceback" not in result.output
