@@ -169,13 +169,11 @@ def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
         folder = write_exports(ctx.con, ctx.out, ctx.period, {"run_summary.json": summary,
                                                                 "run_manifest.json": ctx.manifest})
         write_report(ctx.con, ctx.period.label, folder / "report.html")
-        return {"exports": str(folder), "report": str(folder / "report.html")}
+        # staged beside the warehouse; moved into out/<period>/ once the month is committed
+        final = ctx.out / ctx.period.label
+        return {"exports": f"{final}/", "report": str(final / "report.html")}
 
-    result = _stage(run_id, "export", work)
-    ctx = _RUNS[run_id]
-    ctx.manifest["durations_seconds"] = {name: info["seconds"] for name, info in ctx.stages.items()}
-    write_json(Path(result["exports"]) / "run_manifest.json", ctx.manifest)
-    return result
+    return _stage(run_id, "export", work)
 
 
 def headline(ctx: RunContext) -> dict[str, Any]:
