@@ -1,8 +1,9 @@
 """Publish: commit the month in one transaction, then write the exports of the published tables.
 
 The whole run works inside one DuckDB transaction opened by :func:`open_warehouse`; a crash or
-an error before :func:`commit_month` leaves the warehouse as it was. Exports are written to a
-temporary folder and renamed into ``out/<period>/`` only after the commit.
+an error before :func:`commit_month` leaves the warehouse as it was. Exports are staged in a
+temporary folder inside the transaction and moved into ``out/<period>/`` only after the commit
+(``pipeline.runlock``), so a kill at any point leaves the published exports as they were.
 """
 
 from __future__ import annotations
@@ -50,8 +51,9 @@ def quality_docs_dir(out_dir: Path, period: Period) -> Path:
 
 def write_exports(con: duckdb.DuckDBPyConnection, out_dir: Path, period: Period,
                   documents: dict[str, object]) -> Path:
-    """Parquet and CSV of every published table for the period, plus the run's JSON documents."""
-    final = out_dir / period.label
+    """Parquet and CSV of every published table for the period, plus the run's JSON documents,
+    staged in ``<out>/.<period>.partial/``; ``runlock.commit_and_install`` moves them into
+    ``<out>/<period>/`` after the commit."""
     work = out_dir / f".{period.label}.partial"
     shutil.rmtree(work, ignore_errors=True)
     work.mkdir(parents=True, mode=0o700)

@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.conftest import edit_pipeline_yaml, make_small_config, rows, run_month, write_inbox
+from tests.conftest import make_small_config, rows, run_month, write_inbox
 
 LAB = "westerfold_general_lab"  # the shipped standard-layout source (three-key config)
 HEADER = "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status,reported_at"
