@@ -54,15 +54,17 @@ def _self_maxrss_mb() -> float:
 #: that holds it, by a wrapper adding up its wall time; calls nest (a build_table inside a
 #: replace_period_rows counts in both), so the figures show where the time goes, not a partition.
 TRACED = {
-    "pipeline.ingest": ("scan_inbox", "sha256_of", "read_delimited", "_to_landed", "add_dates"),
+    "pipeline.ingest": ("scan_inbox", "sha256_of", "read_delimited", "_rows_in_bulk", "_rows_by_csv",
+                        "read_parquet", "_to_landed", "add_dates", "_insert_landed"),
     "pipeline.pseudonymise": ("add_person_keys",),
-    "pipeline.identifiers": ("screen_table",),
+    "pipeline.identifiers": ("screen_table", "screen_values"),
     "pipeline.warehouse": ("build_table", "replace_period_rows", "fetch_frame", "load_reference_tables",
                            "apply_comments"),
-    "pipeline.validate": ("validate_landed", "hold_back_sources", "resolve_versions", "update_ledger_counts"),
+    "pipeline.validate": ("validate_landed", "hold_back_sources", "settle_scope", "close_over_partitions",
+                          "resolve_versions", "update_ledger_counts"),
     "pipeline.quality": ("check_batches", "_batch_frame", "build_docs"),
-    "pipeline.measures": ("measure_frame",),
-    "pipeline.linkage": ("build_known_at_period_end",),
+    "pipeline.measures": ("measure_frame", "measure_stage"),
+    "pipeline.linkage": ("build_known_at_period_end", "changed_persons", "carry_over_events"),
     "pipeline.disclosure": ("disclose_stage",),
     "pipeline.publish": ("commit_month", "write_exports"),
     "pipeline.manifest": ("build_manifest", "record_run", "input_files"),
@@ -218,7 +220,7 @@ def main() -> None:
     ap.add_argument("--profile", help="write a cProfile summary of the plain run to this file")
     ap.add_argument("--input-glob")
     ap.add_argument("--period-end")
-    ap.add_argument("--memory-limit", default="4GB")
+    ap.add_argument("--memory-limit", default="2GB")
     args = ap.parse_args()
     result = run_pipeline(args) if args.mode == "pipeline" else run_floor(args)
     Path(args.stats).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")

@@ -65,7 +65,7 @@ def main() -> None:
         copy = Path(tmp) / "surveillance.duckdb"
         shutil.copy(args.warehouse, copy)
         con = duckdb.connect(str(copy))
-        con.execute("set memory_limit = '4GB'")
+        con.execute("set memory_limit = '2GB'")
         con.execute("set preserve_insertion_order = true")
         for name in FILES:
             sql = read_sql(name)

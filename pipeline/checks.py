@@ -35,8 +35,8 @@ def check_file(settings: Settings, source_id: str, path: Path) -> CheckReport:
             report.fault = summary.held_back[0][1]
             return report
         validate_landed(con, {})
-        resolve_versions(con)
-        update_ledger_counts(con)
+        _, scope = resolve_versions(con)
+        update_ledger_counts(con, scope)
         row = con.execute(
             "select rows_read, rows_accepted, rows_rejected, rows_superseded, rows_duplicate, "
             "rows_withdrawn, rows_pending from ingest_files"

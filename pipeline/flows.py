@@ -58,6 +58,7 @@ class RunContext:
     stages: dict[str, dict[str, Any]] = field(default_factory=dict)
     manifest: dict[str, Any] = field(default_factory=dict)
     batch_checks: dict[str, dict[str, Any]] = field(default_factory=dict)
+    touched_only: bool = False  # the validate stage settled only the versions new rows touch
 
 
 _RUNS: dict[str, RunContext] = {}
@@ -100,7 +101,9 @@ def ingest_task(run_id: str) -> dict[str, Any]:
 def validate_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         s = validate_stage(ctx.con, ctx.settings, batch_gate=lambda con: _expectations(ctx, con))
+        ctx.touched_only = s.scope is not None and s.scope.kind == "touched"
         return {"valid": s.rows_valid, "rejected": s.rows_rejected, "lab_results": s.lab_results,
+                "versions settled": f"{s.scope.versions} ({s.scope.kind})",
                 "batches checked": len(ctx.batch_checks),
                 "by_source": s.by_source, "held_back_sources": s.held_back}  # fmt: skip
 
@@ -112,10 +115,10 @@ def _expectations(ctx: RunContext, con: duckdb.DuckDBPyConnection) -> dict[str, 
     gate = ctx.settings.pipeline.quality_gate
     if not gate.great_expectations:
         return {}
-    from pipeline.quality import check_batches  # imported here: GX takes seconds to import
+    from pipeline.quality import check_batches  # GX itself is imported inside (it takes seconds)
 
-    docs = quality_docs_dir(ctx.out, ctx.period) if gate.data_docs else None
-    checks = check_batches(con, ctx.settings, docs)
+    docs = quality_docs_dir(ctx.out, ctx.period) if gate.data_docs != "never" else None
+    checks = check_batches(con, ctx.settings, docs, data_docs=gate.data_docs)
     ctx.batch_checks = {
         s: {"success": c.success, "evaluated": c.evaluated, "failed": c.failed,
             "unexpected_row_ids": c.unexpected_row_ids, "seconds": round(c.seconds, 3)}
@@ -127,7 +130,7 @@ def _expectations(ctx: RunContext, con: duckdb.DuckDBPyConnection) -> dict[str, 
 @task(name="measure")
 def measure_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        s = measure_stage(ctx.con, ctx.settings)
+        s = measure_stage(ctx.con, ctx.settings, touched_only=ctx.touched_only)
         return {"creatinine/cystatin": s.egfr_rows, "eGFR": s.egfr_computed,
                 "albuminuria": s.acr_rows, "A category": s.acr_categorised}  # fmt: skip
 
@@ -138,7 +141,8 @@ def measure_task(run_id: str) -> dict[str, Any]:
 def link_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         s = link_stage(ctx.con, ctx.settings, ctx.period, work=ctx.out / ".work" / ctx.period.label)
-        return {"persons": s.persons, "events confirmed": s.events_confirmed, "pending": s.events_pending}
+        return {"persons": s.persons, "events confirmed": s.events_confirmed, "pending": s.events_pending,
+                "recomputed": s.persons_recomputed}
 
     return _stage(run_id, "link", work)
 
@@ -167,7 +171,8 @@ def publish_task(run_id: str) -> dict[str, Any]:
 def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         folder = write_exports(ctx.con, ctx.out, ctx.period, {"run_summary.json": summary,
-                                                                "run_manifest.json": ctx.manifest})
+                                                                "run_manifest.json": ctx.manifest},
+                               demo_key=ctx.key.is_demo)
         write_report(ctx.con, ctx.period.label, folder / "report.html")
         # staged beside the warehouse; moved into out/<period>/ once the month is committed
         final = ctx.out / ctx.period.label
@@ -208,7 +213,7 @@ def start_run(period: str, config_dir: str, inbox: str, out: str, demo: bool,
     settings = with_executor(load_settings(config_dir), executor)
     key = resolve_key(demo=demo)
     ctx = RunContext(settings, Period.parse(period), Path(inbox), Path(out), key,
-                     open_warehouse(Path(out)), report)  # fmt: skip
+                     open_warehouse(Path(out), settings.pipeline.execution.memory_limit), report)  # fmt: skip
     recover_interrupted_run(ctx.out, ctx.con)
     run_id = uuid.uuid4().hex
     ctx.run_id = run_id

@@ -6,7 +6,10 @@ street address. The screen looks at every column name of a file and at a sample 
 (the first :data:`SAMPLE_FIRST` rows, then every :data:`SAMPLE_EVERY`-th, at most
 :data:`SAMPLE_MAX`) and reports each column that looks like one of these, with the pattern found.
 A FHIR export is screened by element path (``Patient.name``, ``Observation.subject.display``)
-and by the values of every text element.
+and by the values of every text element. The sample is judged in bulk: the patterns run as
+polars regular expressions over the printable-ASCII values and :func:`value_patterns` judges
+any other value, with the same findings as judging every value by itself
+(tests/unit/test_identifiers_vectorised.py).
 
 The screen never copies a value into its findings: messages name the column, the pattern and
 line numbers only, because they are stored in the ledger and the run manifest.
@@ -24,6 +27,8 @@ import re
 from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
+
+import polars as pl
 
 #: What each pattern means, as written in messages.
 PATTERNS = {
@@ -197,24 +202,120 @@ def sampled(index: int) -> bool:
     return rest == 0 and SAMPLE_FIRST + step < SAMPLE_MAX
 
 
+#: Printable ASCII only: for such a value Python's ``re`` and the Rust regex engine behind polars
+#: agree on every pattern here (``\\d``, ``\\b``, ``isdigit`` and ``strip`` differ only outside
+#: ASCII), so the patterns run vectorised over the sample, in the engine's ASCII mode (``(?-u)``,
+#: ten times faster than its Unicode classes); any other value (an accent, a tab, a control
+#: character) is judged by :func:`value_patterns` itself.
+_PRINTABLE_ASCII = r"\A[\x20-\x7E]*\z"
+
+
+def _ascii(pattern: re.Pattern[str] | str, whole: bool = False) -> str:
+    """``pattern`` for polars over printable-ASCII values; ``whole``: what ``fullmatch`` does.
+    The one non-ASCII character of the patterns (the typographic apostrophe of names) cannot
+    occur in such a value, and ASCII mode refuses it, so it is left out."""
+    text = (pattern if isinstance(pattern, str) else pattern.pattern).replace("’", "")
+    return rf"(?-u)\A(?:{text})\z" if whole else f"(?-u){text}"
+
+
+_NOT_NAME = r"(?:\A|[ ,])(?:" + "|".join(re.escape(w) for w in sorted(_NOT_NAME_WORDS)) + r")(?:[ ,]|\z)"
+
+
+def _vector_flags(value: pl.Expr, birth: pl.Expr) -> list[pl.Expr]:
+    """One boolean per pattern for printable-ASCII stripped values: the shapes of
+    :func:`value_patterns` (and of :func:`_full_date` in birth columns) as polars expressions.
+    Three are candidates only, refined on the few rows that have them (:func:`_refine`): a
+    phone number's digit count, a name's words, a birth date's calendar."""
+    digit = value.str.contains(r"(?-u)[0-9]")
+    name = value.str.contains(_ascii(_NAME_TITLE, whole=True)) | value.str.contains(_ascii(_NAME_UPPER, whole=True))
+    dated = pl.any_horizontal([value.str.contains(_ascii(form, whole=True)) for form in _DATE_FORMS])
+    return [
+        value.str.contains(_ascii(_EMAIL)).alias("email"),
+        (digit & value.str.contains(_ascii(_PHONE, whole=True))).alias("phone"),
+        (digit & value.str.contains(_ascii(_NATIONAL_ID, whole=True))).alias("national_id"),
+        (digit & value.str.contains(_ascii(_STREET))).alias("street_address"),
+        (~digit & value.str.contains(" ", literal=True) & name).alias("person_name"),
+        (birth & dated).alias("birth_date"),
+    ]
+
+
+def _refine(fast: pl.DataFrame) -> pl.DataFrame:
+    """Settle the candidate flags of :func:`_vector_flags` on the rows that carry them."""
+    value = pl.col("value")
+    checks = {
+        "phone": value.str.count_matches(r"(?-u)[0-9]").is_between(8, 15),
+        "person_name": ~value.str.to_lowercase().str.contains(_ascii(_NOT_NAME)),
+    }
+    for flag, check in checks.items():
+        candidates = fast.filter(pl.col(flag))
+        if candidates.height:
+            failed = candidates.filter(~check)["seq"]
+            fast = fast.with_columns(pl.col(flag) & ~pl.col("seq").is_in(failed))
+    candidates = fast.filter(pl.col("birth_date"))
+    if candidates.height:  # the few date-shaped values of a birth column: a real calendar date?
+        failed = candidates.filter(pl.Series([not _full_date(v) for v in candidates["value"]]))["seq"]
+        fast = fast.with_columns(pl.col("birth_date") & ~pl.col("seq").is_in(failed))
+    return fast
+
+
+def sampled_mask(index: pl.Expr) -> pl.Expr:
+    """:func:`sampled` as a polars expression over 0-based row indexes."""
+    later = index - SAMPLE_FIRST
+    return (index < SAMPLE_FIRST) | ((later % SAMPLE_EVERY == 0) & (later // SAMPLE_EVERY < SAMPLE_MAX - SAMPLE_FIRST))
+
+
 @dataclass
 class _Column:
-    values: int = 0
-    hits: dict[str, list[int]] = field(default_factory=dict)  # pattern -> line numbers
-    names: set[str] = field(default_factory=set)  # distinct name-like values (for diversity)
+    """What the sample of one column showed: its non-empty values, and per pattern the number
+    of matching values with the first line numbers, and how many distinct name-like values."""
 
-    def add(self, line: int, value: str, birth_column: bool) -> None:
+    values: int = 0
+    hits: dict[str, tuple[int, list[int]]] = field(default_factory=dict)  # pattern -> (count, first lines)
+    names: int = 0  # distinct name-like values, counted up to 1000
+
+
+_VALUES_SCHEMA = {"key": pl.Int64, "line": pl.Int64, "value": pl.String, "birth": pl.Boolean}
+
+
+def _judge(values: pl.DataFrame) -> dict[int, _Column]:
+    """Judge sampled values given in sample order as columns ``key`` (the column), ``line``,
+    ``value`` (as read) and ``birth`` (a birth column): a :class:`_Column` per key with a
+    non-empty value. The same as running :func:`value_patterns` on every value, in bulk."""
+    values = values.with_row_index("seq").filter(pl.col("value") != "")
+    ascii_ = pl.col("value").str.contains(_PRINTABLE_ASCII)
+    fast = values.filter(ascii_).with_columns(pl.col("value").str.strip_chars(" ")).filter(pl.col("value") != "")
+    fast = _refine(fast.with_columns(_vector_flags(pl.col("value"), pl.col("birth"))))
+    slow_rows = []
+    judged_once: dict[tuple[str, bool], tuple[bool, ...]] = {}  # values repeat (units, names)
+    others = values.filter(~ascii_).select("seq", "key", "line", "value", "birth")
+    for seq, key, line, value, birth in others.iter_rows():
         value = value.strip()
         if not value:
-            return
-        self.values += 1
-        found = value_patterns(value)
-        if birth_column and _full_date(value):
-            found.add("birth_date")
-        for pattern in found:
-            self.hits.setdefault(pattern, []).append(line)
-        if "person_name" in found and len(self.names) < 1000:
-            self.names.add(value)
+            continue
+        flags = judged_once.get((value, birth))
+        if flags is None:
+            found = value_patterns(value)
+            if birth and _full_date(value):
+                found.add("birth_date")
+            flags = judged_once[(value, birth)] = tuple(p in found for p in PATTERNS)
+        slow_rows.append((seq, key, line, value, birth, *flags))
+    judged = fast.select("seq", "key", "line", "value", "birth", *PATTERNS)
+    if slow_rows:
+        slow = pl.DataFrame(slow_rows, schema=judged.schema, orient="row")
+        judged = pl.concat([judged, slow]).sort("seq")
+    out = {key: _Column(n) for key, n in judged.group_by("key").len().iter_rows()}
+    hits = judged.filter(pl.any_horizontal(*PATTERNS))  # usually none
+    if hits.height:
+        summary = hits.group_by("key").agg(
+            *(pl.col(p).sum().alias(f"{p}:n") for p in PATTERNS),
+            *(pl.col("line").filter(pl.col(p)).head(3).alias(f"{p}:lines") for p in PATTERNS),
+            pl.col("value").filter(pl.col("person_name")).n_unique().alias("names"),
+        )
+        for r in summary.iter_rows(named=True):
+            col = out[r["key"]]
+            col.hits = {p: (r[f"{p}:n"], r[f"{p}:lines"]) for p in PATTERNS if r[f"{p}:n"]}
+            col.names = min(r["names"], 1000)
+    return out
 
 
 #: A pattern flags a column when at least this share of its sampled non-empty values match.
@@ -229,17 +330,24 @@ _MIN_DISTINCT_NAMES = 5
 def _column_findings(column: str, col: _Column) -> list[Finding]:
     out = []
     for pattern in PATTERNS:
-        lines = col.hits.get(pattern)
-        if not lines or len(lines) < _MIN_SHARE[pattern] * col.values:
+        count, lines = col.hits.get(pattern, (0, []))
+        if not count or count < _MIN_SHARE[pattern] * col.values:
             continue
-        if pattern == "person_name" and (
-            len(col.names) < _MIN_DISTINCT_NAMES or len(col.names) < 0.5 * len(lines)
-        ):
+        if pattern == "person_name" and (col.names < _MIN_DISTINCT_NAMES or col.names < 0.5 * count):
             continue
         where = ", ".join(str(n) for n in lines[:3])
-        out.append(Finding(column, pattern, f"{len(lines)} of {col.values} sampled values, line {where}"
-                           + (" ..." if len(lines) > 3 else "")))  # fmt: skip
+        out.append(Finding(column, pattern, f"{count} of {col.values} sampled values, line {where}"
+                           + (" ..." if count > 3 else "")))  # fmt: skip
     return out
+
+
+def _name_findings(header: Sequence[str]) -> tuple[list[Finding], set[str]]:
+    findings = []
+    for name in header:
+        pattern = column_name_pattern(name)
+        if pattern:
+            findings.append(Finding(name, pattern, "column name"))
+    return findings, {f.column for f in findings}
 
 
 def screen_table(header: Sequence[str], rows: Iterable[tuple[int, Sequence[str]]],
@@ -250,21 +358,29 @@ def screen_table(header: Sequence[str], rows: Iterable[tuple[int, Sequence[str]]
     birth whatever the column is called. Fields beyond the header are screened as well (they
     are kept in the raw text of a rejected row).
     """
-    findings: list[Finding] = []
-    flagged: set[str] = set()
-    for name in header:
-        pattern = column_name_pattern(name)
-        if pattern:
-            findings.append(Finding(name, pattern, "column name"))
-            flagged.add(name)
-    births = set(birth_columns) | {h for h in header if re.search(r"birth|born|dob", normalise_column(h))}
-    columns: dict[int, _Column] = {}
+    lines, positions, values = [], [], []
     for line, fields in rows:
         for i, value in enumerate(fields):
             if value:
-                name = header[i] if i < len(header) else None
-                columns.setdefault(i, _Column()).add(line, value, name in births)
-    for i, col in sorted(columns.items()):
+                lines.append(line)
+                positions.append(i)
+                values.append(value)
+    frame = pl.DataFrame({"line": lines, "position": positions, "value": values},
+                         schema={"line": pl.Int64, "position": pl.Int64, "value": pl.String})  # fmt: skip
+    return screen_values(header, frame, birth_columns)
+
+
+def screen_values(header: Sequence[str], values: pl.DataFrame, birth_columns: Iterable[str] = ()) -> list[Finding]:
+    """:func:`screen_table` with the sampled fields as a frame in sample order: ``line``,
+    ``position`` (0-based field index, beyond the header too) and ``value`` as read."""
+    findings, flagged = _name_findings(header)
+    births = set(birth_columns) | {h for h in header if re.search(r"birth|born|dob", normalise_column(h))}
+    birth_positions = [i for i, h in enumerate(header) if h in births]
+    judged = _judge(values.select(
+        pl.col("position").cast(pl.Int64).alias("key"), pl.col("line").cast(pl.Int64), "value",
+        pl.col("position").is_in(birth_positions).alias("birth"),
+    ))  # fmt: skip
+    for i, col in sorted(judged.items()):
         name = header[i] if i < len(header) else f"(field {i + 1}, beyond the header)"
         if name in flagged:
             continue
@@ -290,7 +406,10 @@ def screen_resources(resource_type: str, records: Iterable[tuple[int, Any]]) -> 
     A Patient's ``birthDate`` is not judged: the reader keeps its year only and Patient
     records are never stored (see DEVELOPERS.md, Threat model).
     """
-    by_path: dict[str, _Column] = {}
+    paths: dict[str, int] = {}
+    keys: list[int] = []
+    lines: list[int] = []
+    values: list[str] = []
     path_hits: dict[str, tuple[str, list[int]]] = {}
     for line, record in records:
         if not isinstance(record, dict):
@@ -303,7 +422,12 @@ def screen_resources(resource_type: str, records: Iterable[tuple[int, Any]]) -> 
             if rule:
                 path_hits.setdefault(path, (rule, []))[1].append(line)
             else:
-                by_path.setdefault(path, _Column()).add(line, value, birth_column=False)
+                keys.append(paths.setdefault(path, len(paths)))
+                lines.append(line)
+                values.append(value)
+    judged = _judge(pl.DataFrame({"key": keys, "line": lines, "value": values, "birth": [False] * len(keys)},
+                                 schema=_VALUES_SCHEMA))  # fmt: skip
+    by_path = {path: judged[k] for path, k in paths.items() if k in judged}
     findings = []
     for path, (pattern, lines) in sorted(path_hits.items()):
         where = ", ".join(str(n) for n in lines[:3])

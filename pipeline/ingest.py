@@ -1,14 +1,17 @@
 """Ingest: find what is new in the inbox, read it into landed rows, record every file in the ledger.
 
-One reader per layout turns a lab's file into the same landed columns (all text, as reported),
-with the file's line number and the raw line (the person token masked) kept for every row. A
-fault that concerns the whole file (not UTF-8, a missing column, the wrong delimiter) holds that
-file back with a message naming it; the other files go on, and so does a file that cannot be
-read at all (permission denied, an I/O error). Before anything is stored, every file passes the
-identifier screen (:mod:`pipeline.identifiers`): a file whose columns or sampled values look like
-direct identifiers is held back the same way, unless the source config allows the column with a
-written reason (recorded in the ledger message, hence in the run manifest). Nothing here judges
-a value: that is the validate stage.
+One reader per layout (delimited text, FHIR NDJSON, Parquet) turns a lab's file into the same
+landed columns (all text, as reported), with the file's line number and the raw line (the person
+token masked) kept for every row. A delimited file without quotes is split in bulk (polars), any
+other goes through the csv module; both give the same rows. Each file's rows are keyed and
+inserted into ``landed_rows`` as soon as it is read, so one file at a time is held in
+memory. A fault that concerns the whole file (not UTF-8, a missing column, the wrong delimiter,
+a truncated or corrupt Parquet file) holds that file back with a message naming it; the other
+files go on, and so does a file that cannot be read at all (permission denied, an I/O error).
+Before anything is stored, every file passes the identifier screen (:mod:`pipeline.identifiers`):
+a file whose columns or sampled values look like direct identifiers is held back the same way,
+unless the source config allows the column with a written reason (recorded in the ledger
+message, hence in the run manifest). Nothing here judges a value: that is the validate stage.
 """
 
 from __future__ import annotations
@@ -28,7 +31,7 @@ import duckdb
 import polars as pl
 
 from pipeline import identifiers
-from pipeline.pseudonymise import SHARED_DOMAIN, PseudonymKey, add_person_keys
+from pipeline.pseudonymise import SHARED_DOMAIN, PersonKeyCache, PseudonymKey, add_person_keys
 from pipeline.settings import STANDARD_FIELDS, STANDARD_REQUIRED, Settings, SourceConfig
 
 #: Columns of the landed frame, all text except where typed.
@@ -155,11 +158,13 @@ def _decode(path: Path, data: bytes, encoding: str) -> str:
         ) from None
 
 
-def _header_fault(path: Path, header: list[str], wanted: dict[str, str], delimiter: str) -> str | None:
+def _header_fault(path: Path, header: list[str], wanted: dict[str, str], delimiter: str | None) -> str | None:
+    """Why the header lacks a required column, or None; ``delimiter`` None: a Parquet schema."""
     missing = [col for col in wanted.values() if col not in header]
     if not missing:
         return None
-    if len(header) == 1 and any(d in header[0] for d in ",;\t|" if d != delimiter):
+    where = "line 1" if delimiter is not None else "the file's schema"
+    if delimiter is not None and len(header) == 1 and any(d in header[0] for d in ",;\t|" if d != delimiter):
         return (
             f"{path}: line 1: the header has one column {header[0][:60]!r}; the file does not "
             f"seem to use the delimiter {delimiter!r} set for this source"
@@ -168,41 +173,47 @@ def _header_fault(path: Path, header: list[str], wanted: dict[str, str], delimit
     for col in missing:
         close = difflib.get_close_matches(col, header, n=1)
         hints.append(f"{col!r}" + (f" (found {close[0]!r}: a typo?)" if close else ""))
-    return f"{path}: line 1: missing required column(s) {', '.join(hints)}"
+    return f"{path}: {where}: missing required column(s) {', '.join(hints)}"
 
 
-def read_delimited(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
-    """Read a standard-layout or mapped delimited file into landed rows."""
-    path = item.path
-    text = _decode(path, read_file_bytes(path), source.encoding)
-    if not text.strip():
-        raise FileFault(f"{path}: the file is empty")
-    if source.layout == "standard":
-        wanted = {f: f for f in STANDARD_FIELDS}
-        required = {f: f for f in STANDARD_REQUIRED}
-    else:
-        wanted = dict(source.columns)
-        required = {f: c for f, c in source.columns.items() if f in STANDARD_REQUIRED}
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=source.delimiter)
-    header = [h.strip() for h in next(reader)]
-    fault = _header_fault(path, header, required, source.delimiter)
-    if fault:
-        raise FileFault(fault)
-    index = {f: header.index(c) for f, c in wanted.items() if c in header}
-    extra = [h for h in header if h not in wanted.values()]
-    if extra:
-        item.notes.append(f"columns not in the layout, ignored: {', '.join(extra)}")
+#: The characters Python's ``str.strip()`` removes (``str.isspace``): Unicode White_Space plus
+#: the information separators U+001C..U+001F, which polars' own ``strip_chars()`` keeps. The
+#: bulk reader strips with these so that a token or a blank line is judged as the csv reader's
+#: path judges it (test_reader_paths.py checks the set against ``str.isspace``).
+PY_WHITESPACE = (
+    "\t\n\x0b\x0c\r\x1c\x1d\x1e\x1f \x85\xa0\u1680\u2000\u2001\u2002\u2003\u2004\u2005\u2006"
+    "\u2007\u2008\u2009\u200a\u2028\u2029\u202f\u205f\u3000"
+)
+
+
+def fast_path_applies(text: str, delimiter: str) -> bool:
+    """Whether a decoded file can be split line by line and field by field in bulk.
+
+    Without the quote character, a CSV record is one line and a field is what lies between two
+    delimiters (RFC 4180), which is all the csv module does then too. Anything else (a quote
+    anywhere, a delimiter that is a quote or a line break) goes through the csv module, and so
+    does a file with a line longer than the csv module's field limit, which it reports as a
+    fault (:func:`_rows_in_bulk` declines it).
+    """
+    return '"' not in text and delimiter not in '"\r\n'
+
+
+def _rows_by_csv(path: Path, text: str, delimiter: str, n_fields: int,
+                 index: dict[str, int]) -> tuple[pl.DataFrame, list[tuple[int, list[str]]]]:  # fmt: skip
+    """Rows of a file through the csv module: quoted fields, line breaks inside quotes."""
     token_idx = index["person_token"]
-    n_fields = len(header)
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+    next(reader)  # the header
     # the csv reader counts a line at \r\n, \n or \r only (str.splitlines would also split at
     # form feeds and Unicode separators and put raw text and line numbers out of step)
     lines = re.split(r"\r\n|\n|\r", text)
     columns: dict[str, list] = {f: [] for f in ("line_no", "raw_text", "row_fault", *index)}
+    schema = {k: pl.Int64 if k == "line_no" else pl.String for k in columns}
     chunks: list[pl.DataFrame] = []
 
     def flush() -> None:
         if columns["line_no"]:
-            chunks.append(pl.DataFrame(columns, schema={k: pl.Int64 if k == "line_no" else pl.String for k in columns}))
+            chunks.append(pl.DataFrame(columns, schema=schema))
             for values in columns.values():
                 values.clear()
 
@@ -240,12 +251,104 @@ def read_delimited(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
         if len(columns["line_no"]) >= CHUNK_ROWS:
             flush()
     flush()
-    if not chunks:
+    return (pl.concat(chunks) if chunks else pl.DataFrame(schema=schema)), sample
+
+
+def _rows_in_bulk(text: str, delimiter: str, n_fields: int,
+                  index: dict[str, int]) -> tuple[pl.DataFrame, pl.DataFrame] | None:  # fmt: skip
+    """The same rows as :func:`_rows_by_csv`, for a file :func:`fast_path_applies` to: every
+    line split at once in polars. Returns the rows and the identifier screen's sample (line,
+    field position, value: the fields as read, before any padding), or None for a file with a
+    line over the csv module's field limit (left to the csv module, which names the line)."""
+    if "\r" in text:  # a line ends at \r\n, \n or \r, as for the csv module
+        text = text.replace("\r\n", "\n").replace("\r", "\n")
+    lines = pl.DataFrame({"raw_text": [text]}).select(pl.col("raw_text").str.split("\n")).explode("raw_text")
+    limit = csv.field_size_limit()
+    if len(text) > limit and lines["raw_text"].str.len_chars().max() > limit:
+        return None
+    fields = pl.col("fields")
+    n = fields.list.len()
+    frame = (
+        lines.with_row_index("line_no", offset=1)
+        .slice(1)  # the header
+        .with_columns(pl.col("line_no").cast(pl.Int64), pl.col("raw_text").str.split(delimiter).alias("fields"))
+        # a blank line (nothing but white space) is not a row; its number is still counted
+        .filter(~((n == 1) & (fields.list.first().str.strip_chars(PY_WHITESPACE) == "")))
+    )
+    sample = (
+        frame.with_row_index("row")
+        .filter(identifiers.sampled_mask(pl.col("row").cast(pl.Int64)))
+        .select(pl.col("line_no").alias("line"), fields.alias("value"),
+                pl.int_ranges(0, fields.list.len(), dtype=pl.Int64).alias("position"))
+        .explode("value", "position")
+        .filter(pl.col("value") != "")
+    )  # fmt: skip
+
+    def field(i: int) -> pl.Expr:  # a short row is padded with empty fields
+        return fields.list.get(i, null_on_oob=True).fill_null("")
+
+    token = field(index["person_token"]).str.strip_chars(PY_WHITESPACE)
+    rows = frame.select(
+        "line_no",
+        # str.replace, in bulk: the token's every occurrence in the line becomes the mask
+        pl.when(token != "").then(pl.col("raw_text").str.split(token).list.join(_MASK))
+        .otherwise(pl.col("raw_text")).alias("raw_text"),
+        pl.when(n != n_fields)
+        .then(pl.format("wrong_field_count:{} fields, the header has {}", n, pl.lit(n_fields)))
+        .otherwise(pl.lit(None, dtype=pl.String)).alias("row_fault"),
+        *(field(i).alias(f) for f, i in index.items()),
+    )  # fmt: skip
+    return rows, sample
+
+
+def read_delimited(source: SourceConfig, item: InboxFile, reader: str = "auto") -> pl.DataFrame:
+    """Read a standard-layout or mapped delimited file into landed rows.
+
+    ``reader``: ``auto`` splits a file without quotes in bulk and reads any other through the
+    csv module; ``csv`` always uses the csv module, ``bulk`` requires the bulk path (both for
+    tests: the two give the same rows).
+    """
+    path = item.path
+    text = _decode(path, read_file_bytes(path), source.encoding)
+    if not text.strip():
+        raise FileFault(f"{path}: the file is empty")
+    if source.layout == "standard":
+        wanted = {f: f for f in STANDARD_FIELDS}
+        required = {f: f for f in STANDARD_REQUIRED}
+    else:
+        wanted = dict(source.columns)
+        required = {f: c for f, c in source.columns.items() if f in STANDARD_REQUIRED}
+    try:
+        first = next(csv.reader(io.StringIO(text, newline=""), delimiter=source.delimiter))
+    except csv.Error as exc:
+        raise FileFault(f"{path}: line 1: the header cannot be read as CSV ({exc})") from None
+    header = [h.strip() for h in first]
+    fault = _header_fault(path, header, required, source.delimiter)
+    if fault:
+        raise FileFault(fault)
+    index = {f: header.index(c) for f, c in wanted.items() if c in header}
+    extra = [h for h in header if h not in wanted.values()]
+    if extra:
+        item.notes.append(f"columns not in the layout, ignored: {', '.join(extra)}")
+    bulk = fast_path_applies(text, source.delimiter)
+    split = _rows_in_bulk(text, source.delimiter, len(header), index) if bulk and reader != "csv" else None
+    if reader == "bulk" and split is None:
+        raise ValueError(f"{path}: the bulk reader does not apply to this file")
+    if split is not None:
+        frame, sample = split
+    else:
+        frame, sample_rows = _rows_by_csv(path, text, source.delimiter, len(header), index)
+        sample = None
+    del text
+    if not frame.height:
         raise FileFault(f"{path}: the file has a header but no rows")
     aliases = {c: f for f, c in wanted.items()}
     births = [c for f, c in wanted.items() if f == "birth_year"]
-    _apply_screen(source, item, path, identifiers.screen_table(header, sample, births), aliases)
-    frame = pl.concat(chunks)
+    if sample is None:
+        findings = identifiers.screen_table(header, sample_rows, births)
+    else:
+        findings = identifiers.screen_values(header, sample, births)
+    _apply_screen(source, item, path, findings, aliases)
     for f in STANDARD_FIELDS:
         if f not in frame.columns:
             frame = frame.with_columns(pl.lit(None, dtype=pl.String).alias(f))
@@ -301,6 +404,96 @@ def _to_landed(frame: pl.DataFrame, source: SourceConfig, item: InboxFile) -> pl
         pl.col("reported_at").alias("reported_text"),
         pl.col("fasting").alias("fasting_text"),
     )
+
+
+# --------------------------------------------------------------------------- Parquet
+
+
+def _parquet_fault(path: Path, exc: BaseException) -> FileFault:
+    reason = re.sub(r"^Could not open Parquet input source '[^']*': ", "", str(exc).strip())
+    reason = " ".join(reason.split())[:200] or type(exc).__name__
+    return FileFault(
+        f"{path}: not a readable Parquet file ({reason}); it may be truncated or corrupt: ask the lab "
+        "to send it again, it is tried again next run"
+    )
+
+
+def _as_text(path: Path, frame: pl.DataFrame) -> pl.DataFrame:
+    """Every column as text, as reported (numbers and dates in their usual text form); a
+    missing value is an empty field, as in a delimited file."""
+    out = []
+    for name, dtype in frame.schema.items():
+        if dtype.is_nested() or dtype == pl.Object:
+            raise FileFault(f"{path}: column {name!r} holds {dtype} values; the parquet layout reads "
+                            "text, numbers, booleans and dates only")  # fmt: skip
+        out.append(pl.col(name).cast(pl.String))
+    try:
+        return frame.select(out).with_columns(pl.all().fill_null(""))
+    except pl.exceptions.PolarsError as exc:  # e.g. a binary column that is not UTF-8
+        raise FileFault(f"{path}: a column cannot be read as text ({str(exc).splitlines()[0][:160]})") from None
+
+
+def read_parquet(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
+    """Read one Parquet file (layout ``parquet``) into landed rows, mapped by ``columns``.
+
+    ``line_no`` is the row's 1-based number in the file; ``raw_text`` the row as compact JSON of
+    its columns as text, the person token masked. A file that is not Parquet, truncated, or with
+    a page that does not decode (or fails its page checksum, when the writer stored one) is a
+    :class:`FileFault`: nothing of it is landed.
+    """
+    import pyarrow as pa  # imported here: only a source with this layout needs it
+    import pyarrow.parquet as pq
+
+    path = item.path
+    data = read_file_bytes(path)
+    if not data:
+        raise FileFault(f"{path}: the file is empty")
+    try:
+        table = pq.read_table(pa.BufferReader(data), page_checksum_verification=True)
+        del data
+        header = list(table.column_names)
+        if len(set(header)) != len(header):
+            twice = sorted({h for h in header if header.count(h) > 1})
+            raise FileFault(f"{path}: the file's schema has the column(s) {twice} more than once")
+        frame = pl.from_arrow(table, rechunk=False)
+    except (pa.ArrowException, OSError, ValueError, TypeError, pl.exceptions.PolarsError) as exc:
+        raise _parquet_fault(path, exc) from None
+    del table
+    assert isinstance(frame, pl.DataFrame)
+    wanted = dict(source.columns)
+    required = {f: c for f, c in wanted.items() if f in STANDARD_REQUIRED}
+    fault = _header_fault(path, header, required, None)
+    if fault:
+        raise FileFault(fault)
+    extra = [h for h in header if h not in wanted.values()]
+    if extra:
+        item.notes.append(f"columns not in the layout, ignored: {', '.join(extra)}")
+    if not frame.height:
+        raise FileFault(f"{path}: the file has a schema but no rows")
+    text = _as_text(path, frame).with_row_index("line_no", offset=1).with_columns(pl.col("line_no").cast(pl.Int64))
+    del frame
+    sample = pl.concat([
+        text.with_row_index("row").filter(identifiers.sampled_mask(pl.col("row").cast(pl.Int64)))
+        .select(pl.col("line_no").alias("line"), pl.lit(i, dtype=pl.Int64).alias("position"), pl.col(c).alias("value"))
+        for i, c in enumerate(header)
+    ]).sort("line", "position", maintain_order=True).filter(pl.col("value") != "")  # fmt: skip
+    births = [c for f, c in wanted.items() if f == "birth_year"]
+    findings = identifiers.screen_values(header, sample, births)
+    _apply_screen(source, item, path, findings, {c: f for f, c in wanted.items()})
+    token = pl.col(wanted["person_token"]).str.strip_chars(PY_WHITESPACE)
+
+    def masked(col: str) -> pl.Expr:  # str.replace of the token in every value, as in a line of text
+        value = pl.col(col)
+        return pl.when(token != "").then(value.str.split(token).list.join(_MASK)).otherwise(value).alias(col)
+
+    rows = text.select(
+        "line_no",
+        pl.struct([masked(c) for c in header]).struct.json_encode().alias("raw_text"),
+        pl.lit(None, dtype=pl.String).alias("row_fault"),
+        *(pl.col(c).alias(f) for f, c in wanted.items() if c in header),
+    )
+    rows = rows.with_columns(pl.lit(None, dtype=pl.String).alias(f) for f in STANDARD_FIELDS if f not in rows.columns)
+    return _to_landed(rows, source, item)
 
 
 # --------------------------------------------------------------------------- FHIR NDJSON
@@ -510,6 +703,8 @@ def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, i
     """Landed rows of one file, dates parsed, the person token still present."""
     if source.layout == "fhir_ndjson":
         frame = read_fhir_export(source, item, settings)
+    elif source.layout == "parquet":
+        frame = read_parquet(source, item)
     else:
         frame = read_delimited(source, item)
     return add_dates(frame.select(LANDED_COLUMNS), source, item, ingested_on)
@@ -524,16 +719,18 @@ def land_inbox(
     ingested_on: dt.date,
     items: list[InboxFile] | None = None,
 ) -> IngestSummary:
-    """Read every new file into ``staging.landed_rows`` and record it in ``ingest_files``.
+    """Read every new file into ``landed_rows`` and record it in ``ingest_files``.
 
-    Person tokens are re-keyed before the rows reach DuckDB. ``items`` replaces the inbox scan
-    (``sources check`` reads one given file).
+    Person tokens are re-keyed before the rows reach DuckDB, each distinct token once per run.
+    Each file's rows are inserted as soon as it is read, so only one file is held in memory.
+    ``items`` replaces the inbox scan (``sources check`` reads one given file).
     """
     summary = IngestSummary()
     if items is None:
         items = scan_inbox(con, settings, inbox)
     next_id = con.execute("select coalesce(max(file_id), 0) + 1 from ingest_files").fetchall()[0][0]
-    frames: list[pl.DataFrame] = []
+    _create_landed_table(con)
+    keys = PersonKeyCache(key)
     for item in items:
         if item.status == "already_ingested":
             summary.files_skipped += 1
@@ -576,7 +773,8 @@ def land_inbox(
                 summary.held_back.append((item.rel_path, str(fault)))
             else:
                 rows_read = frame.height
-                frames.append(add_person_keys(frame, key))
+                _insert_landed(con, add_person_keys(frame, key, keys))
+                del frame
                 summary.files_new += 1
                 summary.rows_landed += rows_read
                 if item.notes:
@@ -596,19 +794,33 @@ def land_inbox(
              status, message, rows_read, rows_read if status == "duplicate_file" else 0, run_period,
              extract_month(item.rel_path, run_period)],
         )  # fmt: skip
-    landed = pl.concat(frames) if frames else empty_landed()
-    con.register("landed_frame", landed.to_arrow())
-    con.execute("create or replace table staging.landed_rows as select * from landed_frame")
-    con.unregister("landed_frame")
     return summary
 
 
 def empty_landed() -> pl.DataFrame:
-    schema = {c: pl.String for c in LANDED_COLUMNS if c not in ("person_token", "linkage_domain")}
-    schema.update(file_id=pl.Int64, line_no=pl.Int64, person_key=pl.String)
-    frame = pl.DataFrame(schema=schema)
-    return frame.with_columns(
-        pl.lit(None, dtype=pl.Date).alias("collected_date"),
-        pl.lit(None, dtype=pl.Date).alias("reported_date"),
-        pl.lit(None, dtype=pl.String).alias("reported_date_basis"),
-    )
+    """The columns of ``landed_rows``, in order: the landed columns without the token,
+    the parsed dates, then the person key (the order a read and keyed file has)."""
+    schema = {c: pl.Int64 if c in ("file_id", "line_no") else pl.String
+              for c in LANDED_COLUMNS if c not in ("person_token", "linkage_domain")}  # fmt: skip
+    schema.update(collected_date=pl.Date, reported_date=pl.Date, reported_date_basis=pl.String, person_key=pl.String)
+    return pl.DataFrame(schema=schema)
+
+
+def _create_landed_table(con: duckdb.DuckDBPyConnection) -> None:
+    con.register("landed_frame", empty_landed().to_arrow())
+    try:
+        con.execute("create or replace temp table landed_rows as select * from landed_frame")
+    finally:
+        con.unregister("landed_frame")
+
+
+def _insert_landed(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> None:
+    """Append one file's keyed rows to ``landed_rows`` (same columns, same order)."""
+    expected = empty_landed().schema
+    if frame.schema != expected:
+        raise AssertionError(f"landed columns {dict(frame.schema)} differ from {dict(expected)}")
+    con.register("landed_frame", frame.to_arrow())
+    try:
+        con.execute("insert into landed_rows select * from landed_frame")
+    finally:
+        con.unregister("landed_frame")

@@ -7,6 +7,7 @@ and bound parameters.
 
 from __future__ import annotations
 
+import hashlib
 import shutil
 from dataclasses import dataclass
 from pathlib import Path
@@ -17,7 +18,8 @@ import polars as pl
 from pipeline.periods import Period
 from pipeline.settings import Settings
 from pipeline.measures import MEASURED_ANALYTES, measure_frame
-from pipeline.warehouse import build_table, fetch_frame, replace_period_frame, replace_period_rows
+from pipeline.warehouse import (build_table, fetch_frame, replace_period_frame, replace_period_rows,
+                                drop_relation, sql_path, swap_period_rows)
 
 
 @dataclass
@@ -25,6 +27,7 @@ class LinkSummary:
     persons: int
     events_confirmed: int
     events_pending: int
+    persons_recomputed: int = 0
 
 
 def trajectory_rules(settings: Settings) -> pl.DataFrame:
@@ -71,35 +74,208 @@ def write_trajectory_rules(con: duckdb.DuckDBPyConnection, settings: Settings) -
     con.unregister("_rules")
 
 
-def build_known_at_period_end(con: duckdb.DuckDBPyConnection, period: Period) -> int:
+def build_known_at_period_end(con: duckdb.DuckDBPyConnection, period: Period) -> bool:
     """The results as known at the period end (``int_results_known``): versions reported later
-    do not count, so a past period is rebuilt as it was known then."""
-    build_table(con, "int_result_versions_resolved", "staging.int_versions_as_of", {"as_of": period.end})
-    n = build_table(con, "int_results_known", params={"period_end": period.end})
-    con.execute("drop table staging.int_versions_as_of")
-    return n
+    do not count, so a past period is rebuilt as it was known then.
+
+    Returns True when nothing in the warehouse is reported after the period end (the usual
+    monthly run): the outcomes as known then are the stored ones, and the accepted rows are
+    taken as they are, without settling the versions a second time.
+    """
+    later = con.execute(
+        "select count(*) from result_versions where reported_date > ?", [period.end]
+    ).fetchall()[0][0]
+    drop_relation(con, "int_results_known")
+    if later == 0:
+        # the same rows as sql/intermediate/int_results_known.sql gives in this case, as a view
+        # (no copy); the date is a datetime.date, written as an ISO literal
+        con.execute(
+            "create view int_results_known as select * from result_versions "
+            f"where outcome = 'accepted' and collected_date <= date '{period.end.isoformat()}'"
+        )
+        return True
+    con.execute("create or replace temp view versions_in_scope as select * from result_versions")
+    build_table(con, "int_result_versions_resolved", "int_versions_as_of", {"as_of": period.end}, temporary=True)
+    con.execute("drop view versions_in_scope")
+    build_table(con, "int_results_known", params={"period_end": period.end})
+    con.execute("drop table int_versions_as_of")
+    return False
 
 
 def build_person_tables(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period,
-                        sharded: bool = False) -> None:
+                        sharded: bool = False, as_stored: bool = False,
+                        snapshot: Snapshot | None = None) -> int:
     """From ``int_results_known``: the measures known at the period end, daily values, events
-    and person status. ``sharded``: a shard's own throw-away database (plain tables, no other
-    periods to keep)."""
+    and person status; returns the persons whose events were computed.
+
+    ``as_stored``: the results known at the period end are those of ``lab_results``, so their
+    measures are ``kidney_measures`` as they are (not computed a second time). ``snapshot``: an
+    earlier period whose person-level rows can be carried over for every person whose results
+    did not change since (:func:`carry_over`). ``sharded``: a shard's own throw-away database
+    (plain tables, no other periods to keep).
+    """
     params = event_params(settings, period)
-    results = fetch_frame(
-        con, "select * from int_results_known where list_contains($analytes, analyte)",
-        {"analytes": list(MEASURED_ANALYTES)},
-    )
-    con.register("_known", measure_frame(results, settings).to_arrow())
-    con.execute("create or replace table int_measures_known as select * from _known")
-    con.unregister("_known")
+    drop_relation(con, "int_measures_known")
+    if as_stored:
+        con.execute(
+            "create view int_measures_known as select * from kidney_measures "
+            f"where collected_date <= date '{period.end.isoformat()}'"
+        )
+    else:
+        results = fetch_frame(
+            con, "select * from int_results_known where list_contains($analytes, analyte)",
+            {"analytes": list(MEASURED_ANALYTES)},
+        )
+        con.register("_known", measure_frame(results, settings).to_arrow())
+        del results
+        con.execute("create table int_measures_known as select * from _known")
+        con.unregister("_known")
+    if snapshot is not None:
+        return carry_over(con, settings, period, snapshot)
     build_table(con, "int_daily_values_averaged", params=params)
     if sharded:
         build_table(con, "kidney_events", params=params)
         build_table(con, "person_status", params=params)
-    else:
-        replace_period_rows(con, "kidney_events", period.label, params)
-        replace_period_rows(con, "person_status", period.label, params)
+        return -1
+    replace_period_rows(con, "kidney_events", period.label, params)
+    replace_period_rows(con, "person_status", period.label, params)
+    return -1
+
+
+@dataclass
+class Snapshot:
+    period: str
+    period_end: object
+    max_file_id: int
+
+
+def logic_fingerprint(settings: Settings) -> str:
+    """What the person-level tables depend on besides the data: settings, rules, code and SQL."""
+    digest = hashlib.sha256()
+    for part in (settings.pipeline.measures, settings.pipeline.trajectories, settings.analytes):
+        digest.update(part.model_dump_json().encode())
+    for path in LOGIC_FILES:
+        digest.update(path.read_bytes())
+    return digest.hexdigest()
+
+
+#: Code and SQL whose change makes every person's events be recomputed.
+LOGIC_FILES = tuple(
+    [Path(__file__).with_name(n) for n in ("measures.py", "equations.py", "linkage.py")]
+    + [sql_path(n) for n in ("int_results_known", "int_daily_values_averaged", "kidney_events",
+                             "int_result_versions_resolved")]
+)  # fmt: skip
+
+
+def usable_snapshot(con: duckdb.DuckDBPyConnection, period: Period, fingerprint: str) -> Snapshot | None:
+    """The latest built period, when it ends before this one and was built by the same logic."""
+    rows = con.execute(
+        "select period, period_end, max_file_id, fingerprint from link_snapshots "
+        "order by period_end desc limit 1"
+    ).fetchall()
+    if not rows:
+        return None
+    label, end, max_file_id, built_with = rows[0]
+    if end >= period.end or built_with != fingerprint:
+        return None
+    return Snapshot(label, end, max_file_id)
+
+
+def changed_persons(con: duckdb.DuckDBPyConnection, period: Period, snapshot: Snapshot) -> int:
+    """``link_persons``: the persons whose results as known at this period end may differ
+    from those known when the snapshot was built: a version ingested since, or reported between
+    the two period ends, and (as in the validate stage's scope) every person sharing a version
+    partition with one of those. Every other person's events are the snapshot's."""
+    from pipeline.validate import close_over_partitions
+
+    seed = (
+        "select person_key, source_id, specimen_id, analyte from result_versions "
+        "where file_id > $max_file_id or (reported_date > $snap_end and reported_date <= $period_end)"
+    )
+    close_over_partitions(con, seed, {"max_file_id": snapshot.max_file_id, "snap_end": snapshot.period_end,
+                                      "period_end": period.end}, "link_persons")  # fmt: skip
+    return con.execute("select count(*) from link_persons").fetchall()[0][0]
+
+
+def carry_over(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period,
+               snapshot: Snapshot) -> int:
+    """This period's person-level rows from the snapshot's, for every person whose results did
+    not change since it was built; the changed persons' rows computed from their own results in
+    a scratch database with the same SQL (daily values, events, person status). Returns the
+    changed persons.
+
+    Why this equals a full rebuild: daily values and events depend on a person's values only;
+    of person status only the age and age band depend on the period end, and they are
+    recomputed here as in ``sql/marts/person_status.sql``.
+    """
+    n = changed_persons(con, period, snapshot)
+    params = event_params(settings, period)
+    scratch = duckdb.connect(":memory:")
+    try:
+        for schema in ("staging", "reference"):
+            scratch.execute(f"create schema {schema}")
+        tables = [f"reference.{t}" for (t,) in con.execute(
+            "select table_name from duckdb_tables() where schema_name = 'reference' order by table_name"
+        ).fetchall()]  # fmt: skip
+        for table in tables:
+            _copy_into(scratch, table, con.sql(f"select * from {table}").to_arrow_table())
+        for table in ("int_results_known", "int_measures_known"):
+            rows = con.sql(f"select * from {table} semi join link_persons using (person_key)").to_arrow_table()
+            _copy_into(scratch, table, rows)
+        build_table(scratch, "int_daily_values_averaged", params=params)
+        build_table(scratch, "kidney_events", params=params)
+        build_table(scratch, "person_status", params=params)
+        fresh = {t: scratch.sql(f"select * from {t}").to_arrow_table()
+                 for t in ("int_daily_values_averaged", "kidney_events", "person_status")}  # fmt: skip
+    finally:
+        scratch.close()
+    con.execute("delete from int_daily_values_averaged where person_key in (select person_key from link_persons)")
+    _insert_arrow(con, "int_daily_values_averaged", fresh["int_daily_values_averaged"])
+    con.execute(
+        "create or replace temp table kidney_events_new as "
+        "select * replace ($period as period) from kidney_events "
+        "where period = $snapshot and person_key not in (select person_key from link_persons)",
+        {"period": period.label, "snapshot": snapshot.period},
+    )
+    _insert_arrow(con, "kidney_events_new", fresh["kidney_events"])
+    swap_period_rows(con, "kidney_events", period.label)
+    con.execute(
+        """
+        create or replace temp table person_status_new as
+        select p.* replace ($period as period, year($period_end) - p.birth_year as age_years,
+                            b.age_band as age_band)
+        from person_status as p
+        left join reference.age_bands as b
+            on year($period_end) - p.birth_year between b.age_min and b.age_max
+        where p.period = $snapshot and p.person_key not in (select person_key from link_persons)
+        """,
+        {"period": period.label, "period_end": period.end, "snapshot": snapshot.period},
+    )
+    _insert_arrow(con, "person_status_new", fresh["person_status"])
+    swap_period_rows(con, "person_status", period.label)
+    return n
+
+
+def _insert_arrow(con: duckdb.DuckDBPyConnection, table: str, rows: object) -> None:
+    con.register("_rows", rows)
+    con.execute(f"insert into {table} by name select * from _rows")
+    con.unregister("_rows")
+
+
+def _copy_into(con: duckdb.DuckDBPyConnection, table: str, rows: object) -> None:
+    con.register("_rows", rows)
+    con.execute(f"create table {table} as select * from _rows")
+    con.unregister("_rows")
+
+
+def record_snapshot(con: duckdb.DuckDBPyConnection, period: Period, fingerprint: str, recomputed: int) -> None:
+    persons = con.execute("select count(*) from person_status where period = ?", [period.label]).fetchall()[0][0]
+    con.execute("delete from link_snapshots where period = ?", [period.label])
+    con.execute(
+        "insert into link_snapshots select ?, ?, (select coalesce(max(file_id), 0) from ingest_files), "
+        "?, ?, ?",
+        [period.label, period.end, fingerprint, persons, persons if recomputed < 0 else recomputed],
+    )
 
 
 #: Row order of the person-level tables (as their SQL orders them), for putting shards together.
@@ -124,7 +300,8 @@ def build_person_tables_sharded(con: duckdb.DuckDBPyConnection, settings: Settin
             replace_period_frame(con, table, period.label, frame)
         else:
             con.register("_shards", frame.to_arrow())
-            con.execute(f"create or replace table {table} as select * from _shards")
+            drop_relation(con, table)
+            con.execute(f"create table {table} as select * from _shards")
             con.unregister("_shards")
     shutil.rmtree(work, ignore_errors=True)
     return len(done)
@@ -135,15 +312,19 @@ def link_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Perio
     """The link stage; with executor ``shards`` or ``dask`` the person-level tables are built
     per person-hash shard in ``work`` (pipeline/shards.py)."""
     write_trajectory_rules(con, settings)
-    build_known_at_period_end(con, period)
+    as_stored = build_known_at_period_end(con, period)
+    fingerprint = logic_fingerprint(settings)
     if settings.pipeline.execution.executor == "local" or work is None:
-        build_person_tables(con, settings, period)
+        snapshot = usable_snapshot(con, period, fingerprint) if as_stored else None
+        recomputed = build_person_tables(con, settings, period, as_stored=as_stored, snapshot=snapshot)
     else:
         build_person_tables_sharded(con, settings, period, work)
+        recomputed = -1
+    record_snapshot(con, period, fingerprint, recomputed)
     persons = con.execute("select count(*) from person_status where period = ?", [period.label]).fetchall()[0][0]
     confirmed, pending = con.execute(
         "select count(*) filter (where event_status = 'confirmed'), "
         "count(*) filter (where event_status = 'pending') from kidney_events where period = ?",
         [period.label],
     ).fetchall()[0]
-    return LinkSummary(persons, confirmed, pending)
+    return LinkSummary(persons, confirmed, pending, persons if recomputed < 0 else recomputed)

@@ -100,21 +100,55 @@ def person_key(key: PseudonymKey, domain: str, token: str) -> str:
     return hmac.new(key.secret, message, hashlib.sha256).hexdigest()[:32]
 
 
-def add_person_keys(frame: pl.DataFrame, key: PseudonymKey) -> pl.DataFrame:
+def _hash_pairs(key: PseudonymKey, pairs: pl.DataFrame) -> pl.DataFrame:
+    """``pairs`` (linkage_domain, person_token) with their ``person_key``: :func:`person_key` of
+    each, the HMAC's key schedule done once (``hmac.copy``, the same digest)."""
+    base = hmac.new(key.secret, digestmod=hashlib.sha256)
+    keys = []
+    for domain, token in zip(pairs["linkage_domain"], pairs["person_token"]):
+        mac = base.copy()
+        mac.update(f"{domain}\x1f{token}".encode())
+        keys.append(mac.hexdigest()[:32])
+    return pairs.with_columns(pl.Series("person_key", keys, dtype=pl.String))
+
+
+class PersonKeyCache:
+    """The person keys computed so far in one run, so that each (linkage domain, token) is
+    hashed once per run however many files carry it. Held in memory only, for the run: it is
+    never written, logged or printed (its repr gives the count only)."""
+
+    def __init__(self, key: PseudonymKey) -> None:
+        self.key = key
+        self._known = pl.DataFrame(schema={"linkage_domain": pl.String, "person_token": pl.String,
+                                           "person_key": pl.String})  # fmt: skip
+
+    def __len__(self) -> int:
+        return self._known.height
+
+    def __repr__(self) -> str:
+        return f"PersonKeyCache({len(self)} keys)"
+
+    def keys_for(self, pairs: pl.DataFrame) -> pl.DataFrame:
+        """Distinct ``pairs`` with their keys, hashing only those not seen before in the run."""
+        on = ["linkage_domain", "person_token"]
+        new = _hash_pairs(self.key, pairs.join(self._known, on=on, how="anti"))
+        seen = pairs.join(self._known, on=on, how="inner")
+        if new.height:
+            self._known = pl.concat([self._known, new], rechunk=False)
+        return pl.concat([seen, new])
+
+
+def add_person_keys(frame: pl.DataFrame, key: PseudonymKey, cache: PersonKeyCache | None = None) -> pl.DataFrame:
     """Replace ``person_token`` (with ``linkage_domain``) by ``person_key``.
 
     Only the distinct tokens are hashed, then joined back, so the cost follows the number of
-    persons, not of rows. A blank token gives a null key (rejected later as ``missing_person``).
+    persons, not of rows; with a ``cache`` (one per run) a token already keyed in the run is
+    not hashed again. A blank token gives a null key (rejected later as ``missing_person``).
     """
+    if cache is not None and cache.key != key:
+        raise ValueError("the key cache was made for another key")
     pairs = frame.select("linkage_domain", "person_token").unique().drop_nulls()
-    keys = pairs.with_columns(
-        pl.struct("linkage_domain", "person_token")
-        .map_elements(
-            lambda r: person_key(key, r["linkage_domain"], r["person_token"]),
-            return_dtype=pl.String,
-        )
-        .alias("person_key")
-    )
+    keys = cache.keys_for(pairs) if cache is not None else _hash_pairs(key, pairs)
     return frame.join(keys, on=["linkage_domain", "person_token"], how="left", maintain_order="left").drop(
         "person_token", "linkage_domain"
     )

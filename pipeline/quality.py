@@ -1,39 +1,55 @@
-"""Quality gate per source batch: one Great Expectations suite per source, and its Data Docs.
+"""Quality gate per source batch: Great Expectations suites on a summary of the run's batches.
 
 Runs inside the validate stage after this run's rows were judged
-(``staging.int_results_validated``). For every source with rows in this run, its well-formed rows
-(``reason_code`` null) form one batch, a pandas frame with a ``row_id`` column
-(``"<file_id>:<line_no>"``). One expectation suite, built in code from the reference tables, is
-validated against the batch in one call (a validation definition in an ephemeral context: no
-files, no network, progress bars off). The suite checks:
+(``int_results_validated``). A source's batch is its well-formed rows of this run
+(``reason_code`` null). The row-level rules in SQL already judge every row; this gate is the
+batch-level check that the standardised table is what the marts expect, so that a rule that
+slips (a join that fans out, a unit factor or range left out, a mapping gone wrong) shows up
+as a failed batch, not as a wrong indicator.
 
-- the schema of the standardised table: the column set, and the type of every column;
-- analytes among ``reference.analytes``; each analyte's unit equal to its canonical unit (an
-  in-set expectation on the derived column ``analyte_unit``, "creatinine [mg/dL]");
-- the value within the plausible range of its analyte in the canonical unit (``reference.ranges``,
-  carried on each row as ``value_min`` and ``value_max``; null on cancellations and
-  entered-in-error rows, which carry no result), as two column-pair expectations; a value present
-  on every other row;
-- no null key (person_key, collected_date, analyte, source_id, file_id, line_no); ``row_id``
-  unique; status in the FHIR Observation status value set; sex in F, M, U.
+Its cost hardly grows with the rows: DuckDB summarises the batches (three aggregations over the
+table, about 0.2 s per million rows on 2 cores) into three small frames, and Great Expectations validates those, one validation call per frame
+for every source at once (a validation definition in an ephemeral context: no files, no
+network, progress bars off):
 
-One more check runs in plain Python (not in GX, so it is absent from the Data Docs): rows in the
-batch + the source's rejected rows = the sum of ``rows_read`` of this run's files of the source in
-``ingest_files`` (this run's files: every file from the run's first file id on, except
-``duplicate_file`` rows, whose rows are never landed). It is reported as ``row_count_balance``.
+- ``standardised_columns``, one row per standard column of the table (``duckdb_columns()``):
+  every column of the standardised table present, each with its DuckDB type;
+- ``batch_cells``, one row per source x analyte x unit x status x sex code among the batch's
+  rows, with the row count, the least and greatest value (over result-bearing rows; withdrawn
+  results, cancelled and entered-in-error, carry none and are not range-checked), the plausible
+  range of the analyte in its canonical unit (``reference.ranges``), the rows of a result-bearing
+  status without a value, and the null count of each key column. Expectations: analyte among
+  ``reference.analytes``; "analyte [unit]" among each analyte in its canonical unit; status in
+  the FHIR Observation status value set; sex in F, M, U; least value >= range minimum and
+  greatest value <= range maximum; no result-bearing row without a value; no null key;
+- ``batch_totals``, one row per source: well-formed and rejected rows, rows whose row id
+  (``"<file_id>:<line_no>"``) occurs more than once, and the rows read by this run's files in
+  ``ingest_files`` (every file from the run's first file id on, except ``duplicate_file`` rows,
+  whose rows are never landed). Expectations: no duplicated row id; well-formed + rejected =
+  rows read (``row_count_balance``).
 
-A batch above ``chunk_rows`` rows is validated in chunks of whole (file_id, line_no) keys, so rows
-sharing a ``row_id`` always meet in one chunk and the uniqueness check stays exact; the chunks'
-results are merged. Great Expectations is imported inside :func:`check_batches` (the import takes
-several seconds) and only when there is a batch to check.
+Each failing summary row names its source (the frames' index columns), so each source gets its
+own verdict; a failed column check fails every source (they share the table). For a failed
+row-level check the exact failing rows are then counted in DuckDB (the predicate beside each
+expectation in :func:`_checks`), and the first MAX_UNEXPECTED_IDS row ids are reported, to join
+back to the rows. Those look-ups run only for a failed check.
+
+Great Expectations is imported inside :func:`check_batches`, and only when there is a batch to
+check: the import (about 2 s warm on 2 cores) is now most of the gate's time. Importing it in a
+background thread at run start was measured and left out: on 2 cores the import's CPU is taken
+from ingest and DuckDB (a DuckDB query overlapped with it slowed by as much as the import took),
+so the run was no faster.
 
 Data Docs: with ``docs_dir`` given, the HTML report is built there (the caller passes
-``out/<period>/quality/``). Pages load their stylesheets, scripts and fonts from CDNs by default;
-the copies vendored in ``pipeline/quality_assets/`` are put beside the pages (``static/vendor/``)
-and every such link is rewritten to a relative path, so the report renders offline.
+``out/<period>/quality/``) when a batch failed, or on every run with ``data_docs="always"``
+(setting ``quality_gate.data_docs``). Pages load their stylesheets, scripts and fonts from CDNs
+by default; the copies vendored in ``pipeline/quality_assets/`` are put beside the pages
+(``static/vendor/``) and every such link is rewritten to a relative path, so the report renders
+offline.
 
-**The quality folder is restricted output**: Data Docs show sample values and row ids of failing
-rows (person keys among them). Keep it with the other restricted outputs; never publish it.
+**The quality folder is restricted output**: Data Docs show failing values and source ids,
+and the gate's verdicts row ids of failing rows. Keep it with the other restricted outputs;
+never publish it.
 """
 
 from __future__ import annotations
@@ -43,7 +59,7 @@ import os
 import re
 import shutil
 import time
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -53,11 +69,7 @@ from pipeline.settings import FHIR_STATUSES, Settings
 
 log = logging.getLogger(__name__)
 
-#: Rows per validation call; a larger batch is validated in chunks (proposed setting
-#: ``quality_gate.chunk_rows``). Measured on 2 cores: 1M rows in one call about 9 s and +1.3 GB
-#: peak (frame included); in chunks of 500k about 7 s and +1.0 GB.
-DEFAULT_CHUNK_ROWS = 1_000_000
-#: How many failing row ids a BatchCheck carries (every failing id is in the GX result).
+#: How many failing row ids a BatchCheck carries.
 MAX_UNEXPECTED_IDS = 20
 #: Statuses that withdraw a result: no value is expected and none is range-checked.
 WITHDRAWN_STATUSES = ("cancelled", "entered-in-error")
@@ -65,61 +77,45 @@ WITHDRAWN_STATUSES = ("cancelled", "entered-in-error")
 SEX_CODES = ("F", "M", "U")
 #: Columns that must never be null on a well-formed row.
 KEY_COLUMNS = ("person_key", "collected_date", "analyte", "source_id", "file_id", "line_no")
+#: When the Data Docs are built (setting ``quality_gate.data_docs``).
+DATA_DOCS_CHOICES = ("on_failure", "always", "never")
 
-#: The standardised table (the columns of result_versions, before the outcome is settled) with
-#: the pandas dtype each has once read through polars: strings ``str`` (pandas 3), dates
-#: ``datetime64[ms]``, the flag ``bool`` (held as pandas' nullable ``boolean``; GX compares the
-#: scalar type, so both pass and ``object`` fails).
+#: The standardised table (the columns of result_versions, before the outcome is settled) and
+#: the DuckDB type of each.
 STANDARD_COLUMNS: dict[str, str] = {
-    "source_id": "str",
-    "file_id": "int64",
-    "line_no": "int64",
-    "person_key": "str",
-    "specimen_id": "str",
-    "collected_date": "datetime64[ms]",
-    "reported_date": "datetime64[ms]",
-    "reported_date_basis": "str",
-    "analyte": "str",
-    "loinc": "str",
-    "status": "str",
-    "value_text": "str",
-    "comparator": "str",
-    "reported_value": "float64",
-    "reported_unit": "str",
-    "value": "float64",
-    "unit": "str",
-    "is_fasting": "bool",
-    "height_cm": "float64",
-    "sex": "str",
-    "birth_year": "int32",
-    "age_years": "int64",
-    "district_code": "str",
+    "source_id": "VARCHAR",
+    "file_id": "BIGINT",
+    "line_no": "BIGINT",
+    "person_key": "VARCHAR",
+    "specimen_id": "VARCHAR",
+    "collected_date": "DATE",
+    "reported_date": "DATE",
+    "reported_date_basis": "VARCHAR",
+    "analyte": "VARCHAR",
+    "loinc": "VARCHAR",
+    "status": "VARCHAR",
+    "value_text": "VARCHAR",
+    "comparator": "VARCHAR",
+    "reported_value": "DOUBLE",
+    "reported_unit": "VARCHAR",
+    "value": "DOUBLE",
+    "unit": "VARCHAR",
+    "is_fasting": "BOOLEAN",
+    "height_cm": "DOUBLE",
+    "sex": "VARCHAR",
+    "birth_year": "INTEGER",
+    "age_years": "BIGINT",
+    "district_code": "VARCHAR",
 }
-_WITHDRAWN_SQL = "v.status in ('cancelled', 'entered-in-error')"
-#: Columns added to the batch (SQL over staging.int_results_validated as v, reference.ranges as r)
-#: and the columns they are made from. GX's own pair-in-set and row-condition expectations walk
-#: or copy the whole frame on pandas (about 8 s per 40k rows; about 6 s per 1M rows for nine
-#: per-analyte ranges), so the pairs are put on each row and checked column-wise.
-#: name: (dtype, SQL, columns it is made from)
-DERIVED_COLUMNS: dict[str, tuple[str, str, tuple[str, ...]]] = {
-    "row_id": ("str", "v.file_id::varchar || ':' || v.line_no::varchar", ("file_id", "line_no")),
-    "analyte_unit": (
-        "str", "coalesce(v.analyte, '(none)') || ' [' || coalesce(v.unit, '(none)') || ']'",
-        ("analyte", "unit"),
-    ),
-    "value_min": (
-        "float64", f"case when {_WITHDRAWN_SQL} then null else r.min_value end", ("analyte", "status"),
-    ),
-    "value_max": (
-        "float64", f"case when {_WITHDRAWN_SQL} then null else r.max_value end", ("analyte", "status"),
-    ),
-}  # fmt: skip
-#: Every column of a batch and its expected dtype: row_id, the standard ones, the derived ones.
-BATCH_COLUMNS: dict[str, str] = {
-    "row_id": "str",
-    **STANDARD_COLUMNS,
-    **{c: dtype for c, (dtype, _, _) in DERIVED_COLUMNS.items() if c != "row_id"},
+#: The three frames and the columns that name a row of each in a GX result.
+FRAMES: dict[str, tuple[str, ...]] = {
+    "standardised_columns": ("column_name",),
+    "batch_cells": ("source_id", "analyte_unit", "status", "sex"),
+    "batch_totals": ("source_id",),
 }
+_TABLE = "int_results_validated"  # a temporary table of the run's connection
+_WITHDRAWN = "coalesce(v.status, '') in ('cancelled', 'entered-in-error')"
+_NUMBER = "v.value is not null and not isnan(v.value)"
 
 ROW_COUNT_CHECK = "row_count_balance"
 _SITE = "quality"
@@ -178,14 +174,18 @@ EXTERNAL_ASSET = re.compile(
 )
 
 
+
 @dataclass
 class BatchCheck:
     """The quality gate's verdict on one source's batch of this run.
 
-    ``evaluated`` counts the checks run (the suite's expectations and the row-count balance);
+    ``evaluated`` counts the checks run on the batch (every expectation of the three suites);
     ``failed`` names each failing check with a short reason; ``unexpected_row_ids`` lists up to
     MAX_UNEXPECTED_IDS failing ``row_id`` values (``"<file_id>:<line_no>"``), to join back to
-    the rows; ``rows`` is the size of the batch, ``chunks`` the validation calls it took.
+    the rows; ``rows`` is the size of the batch, ``cells`` its rows in ``batch_cells``.
+    ``seconds`` is the source's share of the gate's time: the shared work (GX import,
+    summaries, validation, Data Docs) split evenly over the sources plus its own row-id
+    look-ups, so that the seconds of all sources add up to the gate's wall time.
     """
 
     source_id: str
@@ -195,18 +195,22 @@ class BatchCheck:
     unexpected_row_ids: list[str]
     seconds: float
     rows: int = 0
-    chunks: int = 1
+    cells: int = 0
 
 
-@dataclass
-class _Merged:
-    """One check's results merged over the chunks of a batch."""
+@dataclass(frozen=True)
+class _Check:
+    """One expectation, the frame it runs on, and the rows of a batch that break it.
 
-    success: bool = True
-    unexpected: int = 0
-    elements: int = 0
-    reason: str | None = None
-    row_ids: list[str] = field(default_factory=list)
+    ``rows`` is a SQL predicate over ``int_results_validated as v`` (left-joined to
+    ``reference.ranges as r``) that holds exactly on the well-formed rows behind a failing
+    summary row; None for a check that is not about rows (columns, row-count balance).
+    """
+
+    name: str
+    frame: str
+    expectation: Any
+    rows: str | None = None
 
 
 def check_batches(
@@ -214,180 +218,192 @@ def check_batches(
     settings: Settings,
     docs_dir: Path | None,
     *,
-    chunk_rows: int | None = None,
+    data_docs: str | None = None,
 ) -> dict[str, BatchCheck]:
-    """Validate each source's well-formed rows of this run with one GX suite; build Data Docs.
+    """Validate the summary of every source's batch of this run; build Data Docs if asked.
 
-    Returns one :class:`BatchCheck` per source with rows in ``staging.int_results_validated``.
-    ``docs_dir`` (restricted output: see the module docstring) receives the Data Docs, rebuilt
-    on every call; None skips them. ``chunk_rows`` defaults to the setting
-    ``quality_gate.chunk_rows`` if present, else DEFAULT_CHUNK_ROWS.
+    Returns one :class:`BatchCheck` per source with rows in ``int_results_validated``.
+    ``docs_dir`` (restricted output: see the module docstring) receives the Data Docs; None
+    skips them. ``data_docs`` (default: the setting ``quality_gate.data_docs``): on_failure
+    builds them only when some batch failed (a clean run leaves no report there), always on
+    every call, never not at all.
     """
-    chunk_rows = int(chunk_rows or getattr(settings.pipeline.quality_gate, "chunk_rows", None)
-                     or DEFAULT_CHUNK_ROWS)  # fmt: skip
-    counts = _source_counts(con)
-    if not counts:
+    started = time.perf_counter()
+    mode = data_docs or getattr(settings.pipeline.quality_gate, "data_docs", "on_failure")
+    if mode not in DATA_DOCS_CHOICES:
+        raise ValueError(f"data_docs must be one of {', '.join(DATA_DOCS_CHOICES)}, not {mode!r}")
+    present = _present_columns(con)
+    frames = {
+        "standardised_columns": _schema_frame(con),
+        "batch_cells": _cells_frame(con, present),
+        "batch_totals": _totals_frame(con),
+    }
+    totals = {r["source_id"]: r for r in frames["batch_totals"].to_dict("records")
+              if isinstance(r["source_id"], str)}  # fmt: skip
+    if not totals:
         return {}
-    expected_read = _rows_read(con)
-    columns = _batch_columns(con)
     spec = _SuiteSpec.from_reference(con)
-
+    checks = _checks(spec)
     context = _ephemeral_context(docs_dir)
     datasource = context.data_sources.add_pandas(_DATASOURCE)
-    results: dict[str, BatchCheck] = {}
-    for source_id, (well_formed, rejected) in counts.items():
-        started = time.perf_counter()
-        suite = context.suites.add(spec.build_suite(source_id))
-        definition = _validation_definition(context, datasource, source_id, suite)
-        merged: dict[str, _Merged] = {}
-        rows_seen = 0
-        chunks = _chunks(con, source_id, well_formed, chunk_rows)
-        for number, bounds in enumerate(chunks, start=1):
-            frame = _batch_frame(con, source_id, columns, bounds)
-            rows_seen += len(frame)
-            result = definition.run(
-                batch_parameters={"dataframe": frame},
-                result_format={"result_format": "COMPLETE",
-                               "unexpected_index_column_names": ["row_id"]},
-                run_id=_run_id(number, len(chunks)),
-            )  # fmt: skip
-            del frame
-            _merge(merged, result)
-        balance = _balance(rows_seen, rejected, expected_read.get(source_id, 0))
-        merged[ROW_COUNT_CHECK] = balance
-        results[source_id] = _verdict(source_id, merged, time.perf_counter() - started,
-                                      rows_seen, len(chunks))  # fmt: skip
-    if docs_dir is not None:
-        build_docs(context, Path(docs_dir))
-    return results
-
-
-# --------------------------------------------------------------------------- batches
-
-
-def _source_counts(con: duckdb.DuckDBPyConnection) -> dict[str, tuple[int, int]]:
-    """Well-formed and rejected rows per source in this run."""
-    rows = con.execute(
-        """
-        select source_id,
-               count(*) filter (where reason_code is null) as well_formed,
-               count(*) filter (where reason_code is not null) as rejected
-        from staging.int_results_validated
-        group by source_id order by source_id
-        """
-    ).fetchall()
-    return {s: (int(w), int(r)) for s, w, r in rows}
-
-
-def _rows_read(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
-    """Sum of rows_read of this run's files per source.
-
-    This run's files: every ledger row from the run's first file id on (ids are given in
-    order, so a file whose rows all went missing is still counted), except ``duplicate_file``
-    rows, whose rows are counted duplicate at ingest and never landed.
-    """
-    rows = con.execute(
-        """
-        select source_id, sum(rows_read)
-        from ingest_files
-        where status <> 'duplicate_file'
-          and file_id >= (select min(file_id) from staging.int_results_validated)
-        group by source_id
-        """
-    ).fetchall()
-    return {s: int(n or 0) for s, n in rows}
-
-
-def _batch_columns(con: duckdb.DuckDBPyConnection) -> list[str]:
-    """The standardised columns present in the table (a missing one fails the schema check)."""
-    present = {c for (c,) in con.execute(
-        "select column_name from duckdb_columns() "
-        "where schema_name = 'staging' and table_name = 'int_results_validated'"
-    ).fetchall()}  # fmt: skip
-    def available(column: str) -> bool:
-        if column in DERIVED_COLUMNS:
-            return set(DERIVED_COLUMNS[column][2]) <= present
-        return column in present
-
-    return [c for c in BATCH_COLUMNS if available(c)]
-
-
-def _chunks(con: duckdb.DuckDBPyConnection, source_id: str, rows: int,
-            chunk_rows: int) -> list[tuple[int, int, int, int] | None]:  # fmt: skip
-    """Key ranges (first file, first line, last file, last line) of the batch's chunks.
-
-    None = the whole batch in one call. Chunks are cut between (file_id, line_no) keys, never
-    inside one, so duplicated row ids fall in the same chunk.
-    """
-    if rows <= chunk_rows:
-        return [None]
-    ranges = con.execute(
-        """
-        with keys as (
-            select file_id, line_no, count(*) as n
-            from staging.int_results_validated
-            where source_id = $source and reason_code is null
-            group by file_id, line_no
-        ),
-        placed as (
-            select file_id, line_no,
-                   (sum(n) over (order by file_id, line_no rows unbounded preceding) - n)
-                       // $chunk_rows as chunk_no
-            from keys
+    outcomes: dict[str, Any] = {}
+    for frame_name, index in FRAMES.items():
+        suite = context.suites.add(_suite(frame_name, [c for c in checks if c.frame == frame_name]))
+        definition = _validation_definition(context, datasource, frame_name, suite)
+        result = definition.run(
+            batch_parameters={"dataframe": frames[frame_name]},
+            result_format={"result_format": "COMPLETE", "unexpected_index_column_names": list(index)},
+            run_id=_run_id(),
         )
-        select first(file_id order by file_id, line_no), first(line_no order by file_id, line_no),
-               last(file_id order by file_id, line_no), last(line_no order by file_id, line_no)
-        from placed group by chunk_no order by chunk_no
-        """,
-        {"source": source_id, "chunk_rows": chunk_rows},
-    ).fetchall()
-    return [(int(f0), int(l0), int(f1), int(l1)) for f0, l0, f1, l1 in ranges]
+        for item in result.results:
+            outcomes[(item.expectation_config.meta or {}).get("check")] = item
+
+    sources = sorted(totals)
+    failures: dict[str, dict[str, str]] = {s: {} for s in sources}
+    row_ids: dict[str, list[str]] = {s: [] for s in sources}
+    own_seconds = dict.fromkeys(sources, 0.0)
+    for check in checks:
+        item = outcomes.get(check.name)
+        if item is None or item.success:
+            continue
+        for source_id, cells in _failing_sources(item, check, sources).items():
+            began = time.perf_counter()
+            reason, ids = _reason(con, check, item, cells, totals[source_id], present)
+            own_seconds[source_id] += time.perf_counter() - began
+            failures[source_id][check.name] = reason
+            row_ids[source_id] += [i for i in dict.fromkeys(ids) if i not in row_ids[source_id]]
+
+    any_failed = any(failures.values())
+    if docs_dir is not None and (mode == "always" or (mode == "on_failure" and any_failed)):
+        build_docs(context, Path(docs_dir))
+    elif docs_dir is not None:
+        clear_docs(Path(docs_dir))
+    shared = time.perf_counter() - started - sum(own_seconds.values())
+    cells_per_source = frames["batch_cells"]["source_id"].value_counts().to_dict()
+    return {
+        s: BatchCheck(
+            source_id=s,
+            success=not failures[s],
+            evaluated=len(checks),
+            failed=[f"{name}: {reason}" for name, reason in failures[s].items()],
+            unexpected_row_ids=row_ids[s][:MAX_UNEXPECTED_IDS],
+            seconds=round(shared / len(sources) + own_seconds[s], 3),
+            rows=int(totals[s]["rows"]),
+            cells=int(cells_per_source.get(s, 0)),
+        )
+        for s in sources
+    }
 
 
-def _batch_frame(con: duckdb.DuckDBPyConnection, source_id: str, columns: list[str],
-                 bounds: tuple[int, int, int, int] | None) -> Any:  # fmt: skip
-    """One batch (or chunk) as a pandas frame, in file and line order.
+# --------------------------------------------------------------------------- the summaries
 
-    Read through polars: DuckDB's own ``.df()`` took about 5 s at 1M rows, polars' Arrow path
-    0.7 s. Booleans map to pandas' nullable ``boolean`` (a null would make them ``object``).
+
+def _present_columns(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
+    """Columns of the table and their DuckDB types."""
+    return dict(con.execute(
+        "select column_name, data_type from duckdb_columns() "
+        "where database_name = 'temp' and schema_name = 'main' and table_name = 'int_results_validated'"
+    ).fetchall())  # fmt: skip
+
+
+def _col(present: dict[str, str], name: str) -> str:
+    """``v.<name>``; a typed null where the column is missing, a TRY_CAST where its type is
+    wrong (the column checks fail then, and the other checks still run)."""
+    want = STANDARD_COLUMNS[name]
+    if name not in present:
+        return f"null::{want}"
+    return f"v.{name}" if present[name] == want else f"try_cast(v.{name} as {want})"
+
+
+def _frame(con: duckdb.DuckDBPyConnection, query: str) -> Any:
+    """A small query result as a pandas frame (through polars' Arrow path)."""
+    return con.sql(query).pl().to_pandas()
+
+
+def _schema_frame(con: duckdb.DuckDBPyConnection) -> Any:
+    names = ", ".join(f"'{c}'" for c in STANDARD_COLUMNS)
+    return _frame(con, f"""
+        select column_name, data_type, column_name || ' ' || data_type as column_type
+        from duckdb_columns()
+        where database_name = 'temp' and schema_name = 'main' and table_name = 'int_results_validated'
+          and column_name in ({names})
+        order by column_index
+    """)  # fmt: skip
+
+
+def _cells_frame(con: duckdb.DuckDBPyConnection, present: dict[str, str]) -> Any:
+    """One row per source x analyte x unit x status x sex of the well-formed rows (one scan).
+
+    NaN counts as no value (``nullif``: DuckDB sorts NaN above every number, so it would
+    otherwise hide in the greatest value); the status is a key of the cell, so withdrawn cells
+    are told apart after the aggregation, where the plausible range is joined on too.
     """
-    import polars as pl
-
-    select = ", ".join(f"{DERIVED_COLUMNS[c][1]} as {c}" if c in DERIVED_COLUMNS else f"v.{c}"
-                       for c in columns)  # fmt: skip
-    where = "v.source_id = $source and v.reason_code is null"
-    params: dict[str, Any] = {"source": source_id}
-    if bounds is not None:
-        where += (" and (v.file_id > $f0 or (v.file_id = $f0 and v.line_no >= $l0))"
-                  " and (v.file_id < $f1 or (v.file_id = $f1 and v.line_no <= $l1))")  # fmt: skip
-        params.update(f0=bounds[0], l0=bounds[1], f1=bounds[2], l1=bounds[3])
-    query = (f"select {select} from staging.int_results_validated as v "
-             f"left join reference.ranges as r on r.analyte = v.analyte "
-             f"where {where} order by v.file_id, v.line_no")  # fmt: skip
-    frame = con.sql(query, params=params).pl()
-    flags = [name for name, dtype in frame.schema.items() if dtype == pl.Boolean]
-    out = frame.to_pandas()
-    for name in flags:
-        out[name] = out[name].astype("boolean")
-    return out
-
-
-def _balance(batch_rows: int, rejected: int, rows_read: int) -> _Merged:
-    if batch_rows + rejected == rows_read:
-        return _Merged()
-    return _Merged(
-        success=False,
-        reason=f"batch {batch_rows} + rejected {rejected} = {batch_rows + rejected} rows, "
-        f"but this run's files read {rows_read}",
-    )
+    c = {name: _col(present, name) for name in STANDARD_COLUMNS}
+    number = f"nullif({c['value']}, 'nan'::double)"
+    withdrawn = f"coalesce(g.status, '') in ({', '.join(repr(s) for s in WITHDRAWN_STATUSES)})"
+    nulls = "".join(f",\n                   count(*) - count({c[k]}) as null_{k}" for k in KEY_COLUMNS)
+    null_columns = "".join(f", g.null_{k}" for k in KEY_COLUMNS)
+    return _frame(con, f"""
+        with g as (
+            select {c['source_id']} as source_id, {c['analyte']} as analyte, {c['unit']} as unit,
+                   {c['status']} as status, {c['sex']} as sex, count(*) as rows,
+                   min({number}) as least, max({number}) as greatest, count({number}) as numbers{nulls}
+            from {_TABLE} as v
+            where v.reason_code is null
+            group by 1, 2, 3, 4, 5
+        )
+        select g.source_id,
+               coalesce(g.analyte, '(none)') || ' [' || coalesce(g.unit, '(none)') || ']' as analyte_unit,
+               g.analyte, g.unit, g.status, g.sex, g.rows,
+               case when {withdrawn} then null else g.least end as value_min,
+               case when {withdrawn} then null else g.greatest end as value_max,
+               case when {withdrawn} then null else r.min_value end as range_min,
+               case when {withdrawn} then null else r.max_value end as range_max,
+               case when {withdrawn} then 0 else g.rows - g.numbers end as missing_value{null_columns}
+        from g
+        left join reference.ranges as r on r.analyte = g.analyte
+        order by 1, 2, 3, 4, 5, 6
+    """)  # fmt: skip
 
 
-# --------------------------------------------------------------------------- the suite
+def _totals_frame(con: duckdb.DuckDBPyConnection) -> Any:
+    """One row per source with rows in the run: batch, rejected, duplicated ids, rows read."""
+    return _frame(con, f"""
+        with batch as (
+            select source_id,
+                   count(*) filter (where reason_code is null) as rows,
+                   count(*) filter (where reason_code is not null) as rejected
+            from {_TABLE} group by source_id
+        ),
+        copies as (
+            select source_id, sum(n) as duplicate_row_ids
+            from (select source_id, file_id, line_no, count(*) as n
+                  from {_TABLE} where reason_code is null
+                  group by source_id, file_id, line_no having count(*) > 1)
+            group by source_id
+        ),
+        files as (
+            select source_id, sum(rows_read) as rows_read
+            from ingest_files
+            where status <> 'duplicate_file' and file_id >= (select min(file_id) from {_TABLE})
+            group by source_id
+        )
+        select b.source_id, b.rows, b.rejected, b.rows + b.rejected as rows_landed,
+               coalesce(f.rows_read, 0)::bigint as rows_read,
+               coalesce(c.duplicate_row_ids, 0)::bigint as duplicate_row_ids
+        from batch as b
+        left join files as f on f.source_id = b.source_id
+        left join copies as c on c.source_id = b.source_id
+        order by b.source_id
+    """)  # fmt: skip
+
+
+# --------------------------------------------------------------------------- the suites
 
 
 @dataclass
 class _SuiteSpec:
-    """What the suite needs from the reference tables."""
+    """What the suites need from the reference tables."""
 
     canonical_units: dict[str, str]  # analyte -> canonical unit
     ranges: dict[str, tuple[float, float]]  # analyte -> (min, max) in the canonical unit
@@ -402,63 +418,167 @@ class _SuiteSpec:
         ).fetchall()
         return cls(dict(units), {a: (float(lo), float(hi)) for a, lo, hi in ranges})
 
-    def build_suite(self, source_id: str) -> Any:
-        import great_expectations as gx
-        from great_expectations.expectations.row_conditions import Column
 
-        e = gx.expectations
-        result_bearing = Column("status").is_not_in(list(WITHDRAWN_STATUSES))
-        ranges = "; ".join(f"{a} {lo:g}-{hi:g} {self.canonical_units.get(a, '')}".rstrip()
-                           for a, (lo, hi) in sorted(self.ranges.items()))  # fmt: skip
-        range_note = (
-            "value_min and value_max are the plausible range of the row's analyte in its canonical "
-            f"unit (reference.ranges), null on withdrawn results: {ranges}"
-        )
-        checks: list[tuple[str, Any]] = [
-            ("expect_table_columns_to_match_set",
-             e.ExpectTableColumnsToMatchSet(column_set=list(BATCH_COLUMNS), exact_match=True)),
-        ]  # fmt: skip
-        checks += [
-            (f"expect_column_values_to_be_of_type({c}, {t})",
-             e.ExpectColumnValuesToBeOfType(column=c, type_=t))
-            for c, t in BATCH_COLUMNS.items()
-        ]
-        checks += [
-            (f"expect_column_values_to_not_be_null({c})", e.ExpectColumnValuesToNotBeNull(column=c))
-            for c in KEY_COLUMNS
-        ]
-        checks += [
-            ("expect_column_values_to_be_unique(row_id)",
-             e.ExpectColumnValuesToBeUnique(column="row_id")),
-            ("expect_column_values_to_be_in_set(analyte)",
-             e.ExpectColumnValuesToBeInSet(column="analyte",
-                                           value_set=sorted(self.canonical_units))),
-            ("expect_column_values_to_be_in_set(analyte_unit)",
-             e.ExpectColumnValuesToBeInSet(
-                 column="analyte_unit",
-                 value_set=[f"{a} [{u}]" for a, u in sorted(self.canonical_units.items())],
-                 notes="each analyte in its canonical unit (reference.analytes)")),
-            ("expect_column_values_to_be_in_set(status)",
-             e.ExpectColumnValuesToBeInSet(column="status", value_set=list(FHIR_STATUSES))),
-            ("expect_column_values_to_be_in_set(sex)",
-             e.ExpectColumnValuesToBeInSet(column="sex", value_set=list(SEX_CODES))),
-            # a null value is allowed only on a withdrawn result; between-checks skip nulls
-            ("expect_column_values_to_not_be_null(value, status not withdrawn)",
-             e.ExpectColumnValuesToNotBeNull(column="value", row_condition=result_bearing)),
-            ("expect_column_pair_values_a_to_be_greater_than_b(value, value_min)",
-             e.ExpectColumnPairValuesAToBeGreaterThanB(
-                 column_A="value", column_B="value_min", or_equal=True,
-                 ignore_row_if="either_value_is_missing", notes=range_note)),
-            ("expect_column_pair_values_a_to_be_greater_than_b(value_max, value)",
-             e.ExpectColumnPairValuesAToBeGreaterThanB(
-                 column_A="value_max", column_B="value", or_equal=True,
-                 ignore_row_if="either_value_is_missing", notes=range_note)),
-        ]  # fmt: skip
-        suite = gx.ExpectationSuite(name=source_id)
-        for name, expectation in checks:
-            expectation.meta = {"check": name}
-            suite.add_expectation(expectation)
-        return suite
+def _checks(spec: _SuiteSpec) -> list[_Check]:
+    """Every expectation of the three suites, each with the rows that break it."""
+    import great_expectations as gx
+
+    e = gx.expectations
+    ranges = "; ".join(f"{a} {lo:g}-{hi:g} {spec.canonical_units.get(a, '')}".rstrip()
+                       for a, (lo, hi) in sorted(spec.ranges.items()))  # fmt: skip
+    range_note = ("range_min and range_max are the plausible range of the cell's analyte in its "
+                  f"canonical unit (reference.ranges), null on withdrawn results: {ranges}")  # fmt: skip
+    statuses = ", ".join(f"'{s}'" for s in FHIR_STATUSES)
+    sexes = ", ".join(f"'{s}'" for s in SEX_CODES)
+    checks = [
+        _Check("expect_column_distinct_values_to_equal_set(column_name)", "standardised_columns",
+               e.ExpectColumnDistinctValuesToEqualSet(
+                   column="column_name", value_set=list(STANDARD_COLUMNS),
+                   notes="every column of the standardised table is present")),
+        _Check("expect_column_values_to_be_in_set(column_type)", "standardised_columns",
+               e.ExpectColumnValuesToBeInSet(
+                   column="column_type", value_set=[f"{c} {t}" for c, t in STANDARD_COLUMNS.items()],
+                   notes="each column of the standardised table has its DuckDB type")),
+        _Check("expect_column_values_to_be_in_set(analyte)", "batch_cells",
+               e.ExpectColumnValuesToBeInSet(column="analyte", value_set=sorted(spec.canonical_units)),
+               "v.analyte not in (select analyte from reference.analytes)"),
+        _Check("expect_column_values_to_be_in_set(analyte_unit)", "batch_cells",
+               e.ExpectColumnValuesToBeInSet(
+                   column="analyte_unit",
+                   value_set=[f"{a} [{u}]" for a, u in sorted(spec.canonical_units.items())],
+                   notes="each analyte in its canonical unit (reference.analytes)"),
+               "not exists (select 1 from reference.analytes as a "
+               "where a.analyte = v.analyte and a.canonical_unit = v.unit)"),
+        _Check("expect_column_values_to_be_in_set(status)", "batch_cells",
+               e.ExpectColumnValuesToBeInSet(column="status", value_set=list(FHIR_STATUSES)),
+               f"v.status not in ({statuses})"),
+        _Check("expect_column_values_to_be_in_set(sex)", "batch_cells",
+               e.ExpectColumnValuesToBeInSet(column="sex", value_set=list(SEX_CODES)),
+               f"v.sex not in ({sexes})"),
+        # a null value is allowed only on a withdrawn result
+        _Check("expect_column_values_to_be_between(missing_value, 0, 0)", "batch_cells",
+               e.ExpectColumnValuesToBeBetween(
+                   column="missing_value", min_value=0, max_value=0,
+                   notes="rows of a result-bearing status without a (finite) value"),
+               f"not {_WITHDRAWN} and not ({_NUMBER})"),
+        _Check("expect_column_pair_values_a_to_be_greater_than_b(value_min, range_min)", "batch_cells",
+               e.ExpectColumnPairValuesAToBeGreaterThanB(
+                   column_A="value_min", column_B="range_min", or_equal=True,
+                   ignore_row_if="either_value_is_missing", notes=range_note),
+               f"not {_WITHDRAWN} and {_NUMBER} and v.value < r.min_value"),
+        _Check("expect_column_pair_values_a_to_be_greater_than_b(range_max, value_max)", "batch_cells",
+               e.ExpectColumnPairValuesAToBeGreaterThanB(
+                   column_A="range_max", column_B="value_max", or_equal=True,
+                   ignore_row_if="either_value_is_missing", notes=range_note),
+               f"not {_WITHDRAWN} and {_NUMBER} and v.value > r.max_value"),
+    ]  # fmt: skip
+    checks += [
+        _Check(f"expect_column_values_to_be_between(null_{k}, 0, 0)", "batch_cells",
+               e.ExpectColumnValuesToBeBetween(column=f"null_{k}", min_value=0, max_value=0,
+                                               notes=f"rows without {k} (a key column)"),
+               f"v.{k} is null")
+        for k in KEY_COLUMNS
+    ]  # fmt: skip
+    checks += [
+        _Check("expect_column_values_to_be_between(duplicate_row_ids, 0, 0)", "batch_totals",
+               e.ExpectColumnValuesToBeBetween(
+                   column="duplicate_row_ids", min_value=0, max_value=0,
+                   notes="rows whose row id (file_id:line_no) occurs more than once in the batch"),
+               f"(v.file_id, v.line_no) in (select (file_id, line_no) from {_TABLE} "
+               "where source_id = $source and reason_code is null "
+               "group by file_id, line_no having count(*) > 1)"),
+        _Check(ROW_COUNT_CHECK, "batch_totals",
+               e.ExpectColumnPairValuesToBeEqual(
+                   column_A="rows_landed", column_B="rows_read",
+                   notes="well-formed + rejected rows = rows read by this run's files (ingest_files)")),
+    ]  # fmt: skip
+    return checks
+
+
+def _suite(name: str, checks: list[_Check]) -> Any:
+    import great_expectations as gx
+
+    suite = gx.ExpectationSuite(name=name)
+    for check in checks:
+        check.expectation.meta = {"check": check.name}
+        suite.add_expectation(check.expectation)
+    return suite
+
+
+# --------------------------------------------------------------------------- verdicts
+
+
+def _failing_sources(item: Any, check: _Check, sources: list[str]) -> dict[str, list[dict[str, Any]]]:
+    """The sources a failed expectation names, each with its failing summary rows.
+
+    A failed column check, an expectation that raised, or a failing row without a source id
+    fails every source: they share the table.
+    """
+    outcome = item.result or {}
+    indices = outcome.get("unexpected_index_list") or []
+    raised = (item.exception_info or {}).get("raised_exception")
+    if check.frame == "standardised_columns" or raised or not indices:
+        return {s: [] for s in sources}
+    found: dict[str, list[dict[str, Any]]] = {}
+    for index in indices:
+        source = index.get("source_id") if isinstance(index, dict) else None
+        targets = [source] if isinstance(source, str) and source in sources else sources
+        for s in targets:
+            found.setdefault(s, []).append(index)
+    return found
+
+
+def _reason(con: duckdb.DuckDBPyConnection, check: _Check, item: Any, cells: list[dict[str, Any]],
+            totals: dict[str, Any], present: dict[str, str]) -> tuple[str, list[str]]:  # fmt: skip
+    """Why the check failed for one source, and the first failing row ids."""
+    info = item.exception_info or {}
+    if info.get("raised_exception"):
+        return f"error: {str(info.get('exception_message'))[:200]}", []
+    if check.name == ROW_COUNT_CHECK:
+        return (f"batch {totals['rows']} + rejected {totals['rejected']} = {totals['rows_landed']} rows, "
+                f"but this run's files read {totals['rows_read']}"), []  # fmt: skip
+    if check.rows is None or any(present.get(c) != t for c, t in STANDARD_COLUMNS.items()):
+        outcome = item.result or {}
+        unexpected = outcome.get("partial_unexpected_list")
+        if unexpected:
+            return f"unexpected {_short(unexpected)}", []
+        return f"observed {_short(outcome.get('observed_value'))}", []
+    count, ids = _failing_rows(con, check.rows, totals["source_id"])
+    where = "; ".join(_describe(c) for c in cells[:3]) + (f"; {len(cells) - 3} more" if len(cells) > 3 else "")
+    return f"{where}: {count} of {totals['rows']} rows unexpected", ids
+
+
+def _failing_rows(con: duckdb.DuckDBPyConnection, predicate: str, source_id: str) -> tuple[int, list[str]]:
+    """How many of the source's well-formed rows break a check, and the first row ids."""
+    base = (f"from {_TABLE} as v left join reference.ranges as r on r.analyte = v.analyte "
+            f"where v.source_id = $source and v.reason_code is null and ({predicate})")  # fmt: skip
+    params = {"source": source_id}
+    count = con.execute(f"select count(*) {base}", params).fetchall()[0][0]
+    ids = con.execute(
+        f"select v.file_id::varchar || ':' || v.line_no::varchar {base} "
+        f"order by v.file_id, v.line_no limit {MAX_UNEXPECTED_IDS}",
+        params,
+    ).fetchall()
+    return int(count), [i for (i,) in ids]
+
+
+def _describe(cell: dict[str, Any]) -> str:
+    """A failing summary row in a few words: its cell, then the values checked."""
+    def text(value: Any) -> str:
+        if isinstance(value, float):
+            return f"{value:g}"
+        return "(none)" if value is None or value != value else str(value)
+
+    where = ", ".join(text(cell[k]) for k in ("analyte_unit", "status", "sex") if k in cell)
+    shown = ", ".join(f"{k} {text(v)}" for k, v in cell.items() if k not in FRAMES["batch_cells"])
+    if not where:
+        return shown
+    return f"{where} ({shown})" if shown else where
+
+
+def _short(value: Any, limit: int = 120) -> str:
+    text = repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
 
 
 # --------------------------------------------------------------------------- GX plumbing
@@ -490,71 +610,19 @@ def _ephemeral_context(docs_dir: Path | None) -> Any:
     return gx.get_context(mode="ephemeral", project_config=config)
 
 
-def _validation_definition(context: Any, datasource: Any, source_id: str, suite: Any) -> Any:
-    """A validation definition of the source's suite on a whole in-memory frame."""
+
+def _validation_definition(context: Any, datasource: Any, name: str, suite: Any) -> Any:
+    """A validation definition of a suite on a whole in-memory frame."""
     import great_expectations as gx
 
-    batch = datasource.add_dataframe_asset(source_id).add_batch_definition_whole_dataframe("run")
-    return context.validation_definitions.add(
-        gx.ValidationDefinition(name=source_id, data=batch, suite=suite)
-    )
+    batch = datasource.add_dataframe_asset(name).add_batch_definition_whole_dataframe("run")
+    return context.validation_definitions.add(gx.ValidationDefinition(name=name, data=batch, suite=suite))
 
 
-def _run_id(number: int, total: int) -> Any:
+def _run_id() -> Any:
     from great_expectations.core.run_identifier import RunIdentifier
 
-    return RunIdentifier(run_name="whole_batch" if total == 1 else f"chunk_{number}_of_{total}")
-
-
-def _merge(merged: dict[str, _Merged], result: Any) -> None:
-    """Fold one validation result into the per-check totals."""
-    for item in result.results:
-        config = item.expectation_config
-        name = (config.meta or {}).get("check") or config.type
-        entry = merged.setdefault(name, _Merged())
-        outcome = item.result or {}
-        entry.unexpected += int(outcome.get("unexpected_count") or 0)
-        entry.elements += int(outcome.get("element_count") or 0)
-        if item.success:
-            continue
-        entry.success = False
-        info = item.exception_info or {}
-        if info.get("raised_exception"):
-            entry.reason = f"error: {str(info.get('exception_message'))[:200]}"
-        elif "unexpected_count" not in outcome and entry.reason is None:
-            entry.reason = f"observed {_short(outcome.get('observed_value'))}"
-        for index in outcome.get("unexpected_index_list") or []:
-            if len(entry.row_ids) >= MAX_UNEXPECTED_IDS:
-                break
-            row_id = index.get("row_id") if isinstance(index, dict) else None
-            if row_id is not None:
-                entry.row_ids.append(str(row_id))
-
-
-def _short(value: Any, limit: int = 120) -> str:
-    text = repr(value)
-    return text if len(text) <= limit else text[: limit - 3] + "..."
-
-
-def _verdict(source_id: str, merged: dict[str, _Merged], seconds: float, rows: int,
-             chunks: int) -> BatchCheck:  # fmt: skip
-    failed, row_ids = [], []
-    for name, entry in merged.items():
-        if entry.success:
-            continue
-        reason = entry.reason or f"{entry.unexpected} of {entry.elements} rows unexpected"
-        failed.append(f"{name}: {reason}")
-        row_ids += [r for r in entry.row_ids if r not in row_ids]
-    return BatchCheck(
-        source_id=source_id,
-        success=not failed,
-        evaluated=len(merged),
-        failed=failed,
-        unexpected_row_ids=row_ids[:MAX_UNEXPECTED_IDS],
-        seconds=round(seconds, 3),
-        rows=rows,
-        chunks=chunks,
-    )
+    return RunIdentifier(run_name="batch_summary")
 
 
 # --------------------------------------------------------------------------- Data Docs
@@ -572,6 +640,17 @@ def build_docs(context: Any, docs_dir: Path) -> list[Path]:
     (docs_dir / "index.html").unlink(missing_ok=True)
     context.build_data_docs(site_names=[_SITE])
     return localise_docs(docs_dir)
+
+
+def clear_docs(docs_dir: Path) -> None:
+    """Remove an earlier report from ``docs_dir`` (a clean run with on_failure builds none)."""
+    if not docs_dir.is_dir():
+        return
+    for name in ("expectations", "validations", "static"):
+        shutil.rmtree(docs_dir / name, ignore_errors=True)
+    (docs_dir / "index.html").unlink(missing_ok=True)
+    if not any(docs_dir.iterdir()):
+        docs_dir.rmdir()
 
 
 def localise_docs(docs_dir: Path) -> list[Path]:

@@ -32,11 +32,13 @@ __all__ = ["READABLE_TABLES", "build_report_html", "headline_text", "write_repor
 PREVALENCE = "published.district_ckd_prevalence"
 COVERAGE = "published.district_screening_coverage"
 INCIDENCE = "published.district_decline_incidence"
+CATEGORIES = "published.district_ckd_categories"
 #: The only tables the report reads: publishable, quality per lab, reference and the manifest.
 READABLE_TABLES = (
     PREVALENCE,
     COVERAGE,
     INCIDENCE,
+    CATEGORIES,
     "source_quality",
     "source_rejection_reasons",
     "lab_egfr_agreement",
@@ -72,6 +74,16 @@ EQUATION_ROLES = {
 _RATES = {t.name: t.rates for t in PUBLISHED_TABLES}
 _PUBLIC = {c for t in PUBLISHED_TABLES for c in t.public}  # never suppressed (resident population)
 _GROUP_RATES = {t.name: t.group_rates for t in PUBLISHED_TABLES}
+#: Standardised rates and the column that says whether each is published (pipeline/disclosure.py).
+_STANDARDISED = {t.name: t.standardised for t in PUBLISHED_TABLES if t.standardised is not None}
+#: The categories of district_ckd_categories, in the order shown, with their KDIGO 2012 ranges.
+CATEGORY_AXES = {
+    "gfr": ("GFR category of the latest eGFR (KDIGO 2012)",
+            (("G1", "G1 ≥90"), ("G2", "G2 60–89"), ("G3a", "G3a 45–59"), ("G3b", "G3b 30–44"),
+             ("G4", "G4 15–29"), ("G5", "G5 <15"), ("unknown", "No eGFR"))),
+    "albuminuria": ("albuminuria category of the latest measured ACR (KDIGO 2012)",
+                    (("A1", "A1 <30 mg/g"), ("A2", "A2 30–300"), ("A3", "A3 >300"), ("unknown", "No ACR"))),
+}
 
 
 # --------------------------------------------------------------------------- public API
@@ -158,6 +170,7 @@ class _Data:
     reasons: list[dict[str, Any]]
     agreement: list[dict[str, Any]]
     incidence: list[dict[str, Any]] = field(default_factory=list)
+    categories: list[dict[str, Any]] = field(default_factory=list)
 
     @property
     def demo_key(self) -> bool | None:
@@ -231,12 +244,13 @@ def _collect(con: duckdb.DuckDBPyConnection, period: Period) -> _Data:
                         "order by source_id, month", [p])  # fmt: skip
     incidence = (_select(con, INCIDENCE, "select * from {t} where period = ?", [p])
                  if _exists(con, INCIDENCE) else [])  # fmt: skip
+    categories = _select(con, CATEGORIES, "select * from {t} where period = ?", [p])
     return _Data(
         period=period, districts=districts, run=run, manifest=manifest,
         prevalence=_district_order(prevalence), prevalence_columns=_columns(con, PREVALENCE),
         suppressed_below=below, coverage=_district_order(coverage), coverage_columns=_columns(con, COVERAGE),
         coverage_trend=trend, quality=quality, reasons=reasons, agreement=agreement,
-        incidence=_district_order(incidence),
+        incidence=_district_order(incidence), categories=categories,
     )  # fmt: skip
 
 
@@ -274,6 +288,11 @@ def _rate_blanked(table: str, row: dict[str, Any], rate: str, data: _Data) -> bo
     if sources is not None:
         return any(_is_blanked(row, s) for s in sources)
     if rate in _GROUP_RATES.get(table, {}):
+        return row.get(rate) is None and data.suppressed_below.get(row["district_code"], 0) > 0
+    spec = _STANDARDISED.get(table)
+    if spec is not None and rate in spec.rates:
+        if spec.flag in row:  # published with its flag: shown exactly when the flag is ''
+            return row.get(spec.flag) not in ("", None) or (row.get(spec.flag) is None and row.get(rate) is not None)
         return row.get(rate) is None and data.suppressed_below.get(row["district_code"], 0) > 0
     return row.get(rate) is None and bool(row.get("suppression"))
 
@@ -680,14 +699,65 @@ def _prevalence_section(data: _Data) -> str:
             _rate_cell(table, r, "ckd_per_1000_residents", data, _rate_number, False),
         ]
         if std:
-            cells.append(_rate_cell(table, r, "ckd_per_1000_standardised", data, _rate_number, std_ci))
+            few = r.get("ckd_per_1000_standardised_flag") == "few_events"
+            cells.append(_Cell("r", "ckd_per_1000_standardised", "s") if few else
+                         _rate_cell(table, r, "ckd_per_1000_standardised", data, _rate_number, std_ci))
         cells.append(_count_cell(r, "population"))
         rows.append((r["district_code"], _district_label(data, r["district_code"]), cells))
     caption = f"Confirmed CKD among persons tested, by district, {_e(data.period_words)}"
     notes = _suppression_notes(data, share_ci or std_ci)
     if std:
-        notes.append("Age-standardised: direct method, WHO World Standard Population 2000–2025, sexes pooled.")
+        groups = _age_groups(data.threshold("summaries", "standardisation_age_bands", [0, 65, 75]))
+        notes.append(f"Age-standardised: direct method, WHO World Standard Population 2000–2025, on the broad "
+                     f"age groups {groups}, sexes pooled; shown only where its counts per age group give no "
+                     "suppressed count away.")  # fmt: skip
+        if any(r.get("ckd_per_1000_standardised_flag") == "few_events" for r in data.prevalence):
+            minimum = int(data.threshold("disclosure", "standardised_min_events", 20))
+            notes.append(f"<b>r</b> not shown: fewer than {minimum} persons with confirmed CKD, too few for a "
+                         "reliable standardised rate (common practice).")  # fmt: skip
     return _table("table-prevalence", caption, head, rows, notes) if rows else _missing("prevalence")
+
+
+def _age_groups(bounds: Sequence[int]) -> str:
+    b = [int(x) for x in bounds]
+    return ", ".join([f"{lo}–{hi - 1}" for lo, hi in zip(b, b[1:])] + [f"{b[-1]}+"])
+
+
+def _categories_section(data: _Data) -> str:
+    """One table per axis: districts down, categories across; each cell the count and, in small
+    type, per 100 persons tested."""
+    if not data.categories:
+        return _missing("CKD by category")
+    table = "district_ckd_categories"
+    by = {(r["district_code"], r["category_axis"], r["category"]): r for r in data.categories}
+    districts = [r["district_code"] for r in _district_order(
+        [{"district_code": d} for d in sorted({r["district_code"] for r in data.categories})])]  # fmt: skip
+    out = []
+    for axis, (title, categories) in CATEGORY_AXES.items():
+        rows = []
+        for d in districts:
+            cells = []
+            for category, _ in categories:
+                r = by.get((d, axis, category))
+                if r is None:
+                    cells.append(_Cell("–", category, "na"))
+                    continue
+                cell = _count_cell(r, "persons_ckd")
+                cell.column = category
+                if cell.kind == "num":
+                    rate = _rate_cell(table, r, "ckd_per_100_tested", data, lambda v: _dec(v, 1), False)
+                    if rate.kind == "num":
+                        cell = _Cell(f'{cell.text} <span class="rate">{rate.text}</span>', category)
+                cells.append(cell)
+            rows.append((d, _district_label(data, d), cells))
+        caption = f"Confirmed CKD by {title}, {_e(data.period_words)}"
+        head = ["District"] + [label for _, label in categories]
+        notes = [] if axis == "gfr" else _suppression_notes(data, False) + [
+            "In small type: per 100 persons tested (persons with an eGFR or ACR in the window). A whole row is "
+            "suppressed when the district's total is suppressed in the table above, or when no other blank "
+            "could protect a count. Zeros are shown."]  # fmt: skip
+        out.append(_table(f"table-{axis}-categories", caption, head, rows, notes))
+    return "".join(out)
 
 
 def _coverage_section(data: _Data) -> str:
@@ -920,7 +990,9 @@ def _methods_section(data: _Data) -> str:
          "increased albuminuria."),
         ("Suppression", f"Every published count from {data.suppress_min} to {data.suppress_max} is blanked, "
          "and so are the counts that would let it be worked out from a total and the rates built on any "
-         "blanked count. Zeros are shown."),
+         "blanked count. Zeros are shown, except in a category row blanked whole. GFR and albuminuria "
+         "categories add up to the district totals of the prevalence table and are protected against them; "
+         "an age-standardised rate is shown only where its counts per broad age group give no blank away."),
     ]  # fmt: skip
     if intervals:
         definitions.append(("Intervals", f"{_confidence(data)} Wilson score intervals for shares (Wilson 1927; "
@@ -1042,6 +1114,7 @@ td.reasons { font-size: .8rem; white-space: nowrap; }
 td.nowrap { white-space: nowrap; }
 .code { color: var(--muted); font-size: .8em; }
 .ci { color: var(--muted); font-size: .85em; }
+.rate { color: var(--muted); font-size: .8em; margin-left: 2px; }
 .table-notes { font-size: .8rem; color: var(--muted); margin: 2px 0 14px; }
 figure { margin: 18px 0; }
 figcaption { font-size: .82rem; color: var(--muted); max-width: 720px; }
@@ -1109,6 +1182,8 @@ def _render(data: _Data) -> str:
         '<section id="prevalence"><h2>Chronic kidney disease by district</h2>',
         figure(_share_chart(data), "Dashed line: all districts. Suppressed districts have no bar."),
         _prevalence_section(data), "</section>",
+        '<section id="categories"><h2>Confirmed CKD by GFR and albuminuria category</h2>',
+        _categories_section(data), "</section>",
         '<section id="coverage"><h2>Kidney testing in diabetes</h2>',
         figure(_trend_chart(data), "One point per published period; each covers the 12 months ending that month."),
         _coverage_section(data), "</section>",

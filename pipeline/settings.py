@@ -59,7 +59,7 @@ class SourceConfig(_Strict):
     """One lab source: ``config/sources/<id>.yaml``."""
 
     id: str = Field(pattern=IDENTIFIER_PATTERN)
-    layout: Literal["standard", "delimited", "fhir_ndjson"]
+    layout: Literal["standard", "delimited", "fhir_ndjson", "parquet"]
     folder: str
     description: str | None = None
     files: str | None = Field(default=None, description="glob of files inside the folder")
@@ -122,22 +122,22 @@ class SourceConfig(_Strict):
 
     @model_validator(mode="after")
     def _layout_needs(self) -> SourceConfig:
-        if self.layout == "delimited":
+        if self.layout in ("delimited", "parquet"):
             missing = [f for f in STANDARD_REQUIRED if f not in self.columns]
             if missing:
                 raise ValueError(
-                    f"layout 'delimited' needs a 'columns' entry for every required field; "
+                    f"layout '{self.layout}' needs a 'columns' entry for every required field; "
                     f"missing {missing}"
                 )
-        if self.layout != "delimited" and self.columns:
-            raise ValueError(f"'columns' is only for layout 'delimited', not '{self.layout}'")
+        elif self.columns:
+            raise ValueError(f"'columns' is only for layouts 'delimited' and 'parquet', not '{self.layout}'")
         return self
 
     @property
     def file_glob(self) -> str:
         if self.files:
             return self.files
-        return "*/Observation.ndjson" if self.layout == "fhir_ndjson" else "*.csv"
+        return {"fhir_ndjson": "*/Observation.ndjson", "parquet": "*.parquet"}.get(self.layout, "*.csv")
 
 
 # --------------------------------------------------------------------------- pipeline.yaml
@@ -203,25 +203,49 @@ class SummarySettings(_Strict):
     drift_threshold: float = Field(default=0.10, gt=0, lt=1)
     drift_min_results: int = Field(default=30, ge=1)
     age_bands: list[int] = Field(default=[0, 5, 10, 15, 20, 25, 30, 35, 40, 45, 50, 55, 60, 65, 70, 75, 80, 85])
+    #: Broad age groups of the published age-standardised rate (lower bounds, last open), each a
+    #: union of age_bands: the standard weights are summed within each group.
+    standardisation_age_bands: list[int] = Field(default=[0, 65, 75])
 
-    @field_validator("age_bands")
+    @field_validator("age_bands", "standardisation_age_bands")
     @classmethod
     def _increasing(cls, value: list[int]) -> list[int]:
         if not value or value[0] != 0 or any(b <= a for a, b in zip(value, value[1:])):
             raise ValueError("lower bounds must start at 0 and increase, e.g. [0, 5, 10, ...]")
         return value
 
+    @model_validator(mode="after")
+    def _broad_groups_are_unions_of_bands(self) -> "SummarySettings":
+        stray = sorted(set(self.standardisation_age_bands) - set(self.age_bands))
+        if stray:
+            raise ValueError(f"standardisation_age_bands {stray} are not lower bounds of age_bands "
+                             "(each broad group must be a union of age bands)")
+        return self
+
 
 class DisclosureSettings(_Strict):
     suppress_min: int = Field(default=1, ge=1)
     suppress_max: int = Field(default=10, ge=1)
+    #: An age-standardised rate is published only when its district's persons_ckd reaches this.
+    standardised_min_events: int = Field(default=20, ge=1)
 
 
 class QualityGateSettings(_Strict):
     max_rejection_rate: float = Field(default=0.05, ge=0, le=1)
     great_expectations: bool = True
-    chunk_rows: int = Field(default=500_000, ge=10_000)
-    data_docs: bool = True
+    #: When the Great Expectations Data Docs are built into out/<period>/quality/: on_failure
+    #: (only when some batch fails its suite), always, or never.
+    data_docs: Literal["on_failure", "always", "never"] = "on_failure"
+
+    @field_validator("data_docs", mode="before")
+    @classmethod
+    def _data_docs_choice(cls, value: Any) -> Any:
+        if value not in ("on_failure", "always", "never"):
+            raise ValueError(
+                "must be one of on_failure (build the Data Docs only when a batch fails), always "
+                "or never; YAML reads true/false/yes/no/on/off as booleans, so write the word"
+            )
+        return value
 
 
 class RangeSetting(_Strict):
@@ -264,6 +288,9 @@ class ExecutionSettings(_Strict):
     shards: int = Field(default=4, ge=1, le=4096)
     dask_workers: int = Field(default=2, ge=1, le=256)
     scheduler_address: str | None = None
+    #: DuckDB's memory limit for the warehouse connection; above it DuckDB spills to
+    #: <out>/.duckdb_tmp/. Python's own frames (one measure chunk) come on top.
+    memory_limit: str = Field(default="2GB", pattern=r"^[1-9][0-9]*(\.[0-9]+)?(MB|GB)$")
 
 
 class PipelineConfig(_Strict):

@@ -8,7 +8,7 @@ import polars as pl
 from pipeline.periods import Period
 from pipeline.settings import Settings
 from pipeline.statistics import collapse_weights, standardise_frame, with_wilson_interval
-from pipeline.warehouse import build_table, fetch_frame, replace_period_frame, replace_period_rows
+from pipeline.warehouse import build_table, drop_relation, fetch_frame, replace_period_frame, replace_period_rows
 
 #: Internal summary tables, in the order they are built (each is sql/reports/<name>.sql).
 SUMMARY_TABLES = (
@@ -18,42 +18,72 @@ SUMMARY_TABLES = (
     "source_quality",
     "source_rejection_reasons",
     "district_decline_incidence",
-    "district_ckd_stages",
+    "district_ckd_categories",
     "source_creatinine_drift",
 )
+#: Tables of earlier versions, no longer built (dropped so that no undocumented table is left).
+RETIRED_TABLES = ("district_ckd_stages",)  # the wide form of district_ckd_categories
 
 
 #: Tables given interval columns after their SQL: rate -> (successes, trials).
 WILSON_RATES = {
     "district_ckd_prevalence": {"ckd_share_of_tested": ("persons_ckd", "persons_tested")},
     "district_screening_coverage": {"share_with_both": ("with_egfr_and_acr", "persons_with_diabetes")},
+    "district_ckd_categories": {"ckd_per_100_tested": ("persons_ckd", "persons_tested")},
 }
+#: Rates given per 100 (or another base) rather than as a share: their limits are scaled alike.
+RATE_BASE = {"ckd_per_100_tested": 100}
 
 
 def add_intervals(frame: pl.DataFrame, name: str, confidence: float) -> pl.DataFrame:
     """Wilson intervals for the crude proportions (Wilson 1927; Newcombe 1998)."""
     for rate, (x, n) in WILSON_RATES.get(name, {}).items():
         frame = with_wilson_interval(frame, x, n, rate, confidence)
-        frame = frame.with_columns(pl.col(f"{rate}_low").round(4), pl.col(f"{rate}_high").round(4))
+        base = RATE_BASE.get(rate)
+        if base is None:
+            frame = frame.with_columns(pl.col(f"{rate}_low").round(4), pl.col(f"{rate}_high").round(4))
+        else:
+            frame = frame.with_columns((pl.col(f"{rate}_low") * base).round(2),
+                                       (pl.col(f"{rate}_high") * base).round(2))
     return frame
+
+
+def age_labels(lower_bounds: list[int]) -> list[str]:
+    """Band labels from lower bounds, the last open: [0, 45, 65] -> 0-44, 45-64, 65+."""
+    return [f"{lo}-{hi - 1}" for lo, hi in zip(lower_bounds, lower_bounds[1:])] + [f"{lower_bounds[-1]}+"]
 
 
 def add_standardised_rates(frame: pl.DataFrame, settings: Settings) -> pl.DataFrame:
     """Age-standardised confirmed-CKD rate per 1,000 residents on the district and region total
-    rows: direct method to the WHO World Standard Population 2000-2025 (Ahmad et al. 2001),
-    sexes pooled, Fay-Feuer gamma interval (Fay and Feuer 1997)."""
+    rows: direct method to the WHO World Standard Population 2000-2025 (Ahmad et al. 2001), on the
+    broad age groups of ``summaries.standardisation_age_bands`` (the standard weights summed within
+    each group), sexes pooled, Fay-Feuer gamma interval (Fay and Feuer 1997).
+
+    Every cell row (a district, sex and age band) gets its broad group in
+    ``standardisation_age_group``: a district's rate is a function of its counts per broad group
+    (and the public population) alone, which is what the disclosure step checks before publishing
+    it. The region's rate takes every cell, those of persons whose district is not known too (the
+    region's population is the sum of its districts'), so that its counts add up to the published
+    region total. A district without residents in a broad group that has cases gets no rate.
+    """
     s = settings.pipeline.summaries
-    bands = s.age_bands
-    labels = [f"{lo}-{hi - 1}" for lo, hi in zip(bands, bands[1:])] + [f"{bands[-1]}+"]
-    weights = dict(zip(labels, collapse_weights(bands)))
-    cells = frame.filter(
-        (pl.col("district_code") != "ALL") & (pl.col("sex") != "ALL") & (pl.col("age_band") != "ALL")
-        & pl.col("population").is_not_null() & (pl.col("population") > 0)
-    )  # fmt: skip
-    by_district = standardise_frame(cells, ["district_code"], "age_band", "persons_ckd", "population",
-                                    weights, s.confidence, per=1000)  # fmt: skip
-    region = standardise_frame(cells.with_columns(pl.lit("ALL").alias("district_code")), ["district_code"],
-                               "age_band", "persons_ckd", "population", weights, s.confidence, per=1000)  # fmt: skip
+    broad = s.standardisation_age_bands
+    groups = age_labels(broad)
+    group_of = {label: groups[max(i for i, b in enumerate(broad) if b <= low)]
+                for label, low in zip(age_labels(s.age_bands), s.age_bands)}  # fmt: skip
+    weights = dict(zip(groups, collapse_weights(broad)))
+    column = "standardisation_age_group"
+    is_cell = (pl.col("district_code") != "ALL") & (pl.col("sex") != "ALL") & (pl.col("age_band") != "ALL")
+    group = pl.when(is_cell).then(pl.col("age_band").replace_strict(group_of, default=None, return_dtype=pl.String))
+    cells = (frame.with_columns(group.alias(column), pl.col("population").fill_null(0))
+             .filter(pl.col(column).is_not_null()))  # fmt: skip
+    per_group = cells.group_by("district_code", column).agg(pl.col("persons_ckd").sum(), pl.col("population").sum())
+    unrated = per_group.filter((pl.col("persons_ckd") > 0) & (pl.col("population") <= 0))["district_code"]
+    by_district = standardise_frame(per_group.filter(~pl.col("district_code").is_in(unrated.implode())),
+                                    ["district_code"], column, "persons_ckd", "population", weights,
+                                    s.confidence, per=1000)  # fmt: skip
+    region = standardise_frame(per_group.with_columns(pl.lit("ALL").alias("district_code")), ["district_code"],
+                               column, "persons_ckd", "population", weights, s.confidence, per=1000)  # fmt: skip
     rates = pl.concat([by_district, region]).select(
         "district_code",
         pl.lit("ALL").alias("sex"),
@@ -62,7 +92,24 @@ def add_standardised_rates(frame: pl.DataFrame, settings: Settings) -> pl.DataFr
         pl.col("rate_low").round(2).alias("ckd_per_1000_standardised_low"),
         pl.col("rate_high").round(2).alias("ckd_per_1000_standardised_high"),
     )
-    return frame.join(rates, on=["district_code", "sex", "age_band"], how="left", maintain_order="left")
+    out = frame.join(rates, on=["district_code", "sex", "age_band"], how="left", maintain_order="left")
+    return out.with_columns(group.alias(column))  # last, so that older warehouses can add it
+
+
+def _add_missing_columns(con: duckdb.DuckDBPyConnection, name: str, frame: pl.DataFrame) -> None:
+    """A warehouse made before a column was added gets it (empty for the earlier periods)."""
+    have = {c for (c,) in con.execute(
+        "select column_name from duckdb_columns() where schema_name = 'main' and table_name = ?", [name]
+    ).fetchall()}  # fmt: skip
+    if not have:
+        return
+    con.register("_columns", frame.head(0).to_arrow())
+    try:
+        for column, dtype in con.execute("select column_name, column_type from (describe _columns)").fetchall():
+            if column not in have:
+                con.execute(f'alter table {name} add column "{column}" {dtype}')
+    finally:
+        con.unregister("_columns")
 
 
 def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> dict[str, int]:
@@ -85,5 +132,8 @@ def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: 
         con.execute(f"drop table staging.{name}_sql")
         if name == "district_ckd_prevalence":
             frame = add_standardised_rates(frame, settings)
+        _add_missing_columns(con, name, frame)
         counts[name] = replace_period_frame(con, name, period.label, frame)
+    for name in RETIRED_TABLES:
+        drop_relation(con, name)
     return counts

@@ -17,7 +17,7 @@ from dataclasses import dataclass, field
 import duckdb
 
 from pipeline.settings import Settings
-from pipeline.warehouse import build_table
+from pipeline.warehouse import build_table, build_view, read_sql
 
 #: The as-of date of "everything received so far".
 NO_LIMIT = dt.date(9999, 12, 31)
@@ -36,6 +36,7 @@ class ValidateSummary:
     lab_results: int = 0
     by_source: dict[str, dict[str, int]] = field(default_factory=dict)
     held_back: dict[str, str] = field(default_factory=dict)  # source -> reason
+    scope: Scope | None = None
 
 
 def validate_landed(
@@ -43,16 +44,17 @@ def validate_landed(
     rejection_limits: dict[str, float],
     batch_gate: Callable[[duckdb.DuckDBPyConnection], dict[str, str]] | None = None,
 ) -> tuple[int, int, dict[str, str]]:
-    """Judge this run's landed rows; append them to rejected_rows or result_versions.
+    """Judge this run's landed rows; append them to rejected_rows, or keep them as this run's
+    versions (the temporary table ``new_versions``, stored by :func:`resolve_versions`).
 
     A source whose share of rejected rows in this run exceeds its limit is held back: its files
     are marked ``held_back`` with the reason and none of their rows is stored, so the next run
     tries them again. ``batch_gate`` (the Great Expectations suites) returns the sources whose
     batch failed, with the reason; they are held back the same way.
     """
-    build_table(con, "stg_landed_rows", "staging.stg_landed_rows")
-    con.execute("create or replace view stg_landed_rows as select * from staging.stg_landed_rows")
-    build_table(con, "int_results_validated", "staging.int_results_validated")
+    # a view, not a table: int_results_validated reads it once (writing it out cost more)
+    con.execute("create or replace temp view stg_landed_rows as\n" + read_sql("stg_landed_rows"))
+    build_table(con, "int_results_validated", temporary=True)
     con.execute("drop view stg_landed_rows")
     failed_batches = batch_gate(con) if batch_gate is not None else {}
     held = hold_back_sources(con, rejection_limits, failed_batches)
@@ -60,24 +62,25 @@ def validate_landed(
         """
         insert into rejected_rows
         select v.source_id, v.file_id, f.file_path, v.line_no, v.raw_text, v.reason_code, v.message
-        from staging.int_results_validated as v
+        from int_results_validated as v
         join ingest_files as f on f.file_id = v.file_id
         where v.reason_code is not null and v.file_id not in (select file_id from ingest_files where status = 'held_back')
-        order by v.file_id, v.line_no
         """
     ).fetchall()[0][0]
-    valid = con.execute(
+    # this run's versions wait in a temporary table until their outcomes are settled
+    # (resolve_versions): inserted once with their outcome, not inserted and then updated
+    con.execute(
         """
-        insert into result_versions
+        create or replace temp table new_versions as
         select source_id, file_id, line_no, person_key, specimen_id, collected_date, reported_date,
                reported_date_basis, analyte, loinc, status, value_text, comparator, reported_value,
                reported_unit, value, unit, is_fasting, height_cm, sex, birth_year, age_years,
-               district_code, null as outcome
-        from staging.int_results_validated
+               district_code, cast(null as varchar) as outcome
+        from int_results_validated
         where reason_code is null and file_id not in (select file_id from ingest_files where status = 'held_back')
-        order by file_id, line_no
         """
-    ).fetchall()[0][0]
+    )
+    valid = con.execute("select count(*) from new_versions").fetchall()[0][0]
     return valid, rejected, held
 
 
@@ -88,7 +91,7 @@ def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str
     rates = con.execute(
         """
         select source_id, count(*) as n, count(*) filter (where reason_code is not null) as rejected
-        from staging.int_results_validated group by source_id order by source_id
+        from int_results_validated group by source_id order by source_id
         """
     ).fetchall()
     held: dict[str, str] = {}
@@ -106,7 +109,7 @@ def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str
             held[source_id] = "held back this month: " + "; ".join(reasons)
             con.execute(
                 "update ingest_files set status = 'held_back', message = ? "
-                "where source_id = ? and file_id in (select distinct file_id from staging.landed_rows)",
+                "where source_id = ? and file_id in (select distinct file_id from landed_rows)",
                 [held[source_id], source_id],
             )
             # a copy of a held-back file, recorded as its duplicate, is held back with it
@@ -119,23 +122,149 @@ def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str
     return held
 
 
-def resolve_versions(con: duckdb.DuckDBPyConnection) -> int:
-    """Settle the outcome of every version and rebuild lab_results; return its rows."""
-    build_table(con, "int_result_versions_resolved", "staging.int_result_versions_resolved",
-                params={"as_of": NO_LIMIT})
+#: Below this share of new versions a run settles only the touched versions (see settle_scope).
+FULL_SCOPE_SHARE = 0.3
+
+
+@dataclass
+class Scope:
+    """The versions a run settles: all of them, or those that new rows can change."""
+
+    kind: str  # "all" | "touched"
+    versions: int
+    persons: int
+
+
+def settle_scope(con: duckdb.DuckDBPyConnection) -> Scope:
+    """Point the view ``versions_in_scope`` at the versions whose outcome this run must settle.
+
+    New rows (this run's ``new_versions``) can change only the outcome of versions that share a
+    partition with them in ``int_result_versions_resolved.sql``: the same person (copies, and
+    versions without a specimen id, and the same result from two sources are all within one
+    person) or the same source + specimen + analyte (versions with a specimen id, which a
+    faulty extract may give under two persons). The scope is the closure of both relations,
+    taken until it stops growing, so settling it gives exactly what settling every version
+    would. When most versions are new (a first run, a backfill) the whole table is the scope.
+    """
+    con.execute(
+        "create or replace temp view all_versions as "
+        "select * from result_versions union all by name select * from new_versions"
+    )
+    stored = con.execute("select count(*) from result_versions").fetchall()[0][0]
+    new = con.execute("select count(*) from new_versions").fetchall()[0][0]
+    total = stored + new
+    if total == 0 or new >= FULL_SCOPE_SHARE * total:
+        con.execute("create or replace temp view versions_in_scope as select * from all_versions")
+        persons = con.execute("select count(distinct person_key) from all_versions").fetchall()[0][0]
+        return Scope("all", total, persons)
+    size = close_over_partitions(
+        con, "select person_key, source_id, specimen_id, analyte from new_versions",
+        {}, "scope_persons", "scope_versions", versions="all_versions",
+    )
+    con.execute("create or replace temp view versions_in_scope as select * from scope_versions")
+    persons = con.execute("select count(*) from scope_persons").fetchall()[0][0]
+    return Scope("touched", size, persons)
+
+
+def close_over_partitions(con: duckdb.DuckDBPyConnection, seed: str, params: dict,
+                          persons_table: str, versions_table: str | None = None,
+                          versions: str = "result_versions") -> int:
+    """The versions that share a partition of the version rules with the ``seed`` rows (a query
+    giving person_key, source_id, specimen_id, analyte), transitively: the same person, or the
+    same source + specimen + analyte. Writes their persons to ``persons_table`` (and the
+    versions themselves to ``versions_table``); returns the number of versions. ``versions``:
+    the relation holding every version (``all_versions`` while this run's are not yet stored).
+
+    The closure holds every version of its persons. Each round adds the persons of versions
+    that share a specimen key with a version of the persons found so far; it ends when a round
+    finds none (usually the first: a specimen id belongs to one person unless an extract is
+    faulty).
+    """
+    con.execute(f"create or replace temp table {persons_table} as select distinct person_key from ({seed})", params)
+    con.execute(f"create or replace temp table closure_new_persons as select * from {persons_table}")
+    con.execute(
+        "create or replace temp table closure_specimens "
+        "(source_id varchar, specimen_id varchar, analyte varchar)"
+    )
+    while True:
+        # the specimen keys of the persons just added (all their versions are in scope) ...
+        con.execute(
+            "insert into closure_specimens select distinct v.source_id, v.specimen_id, v.analyte "
+            f"from {versions} as v semi join closure_new_persons as n on n.person_key = v.person_key "
+            "where v.specimen_id is not null "
+            "except select * from closure_specimens"
+        )
+        # ... and the persons not yet in the closure with a version under one of those keys
+        con.execute(
+            f"""
+            create or replace temp table closure_new_persons as
+            select distinct v.person_key from {versions} as v
+            where (v.source_id, v.specimen_id, v.analyte) in (select * from closure_specimens)
+              and v.person_key not in (select person_key from {persons_table})
+            """
+        )
+        if con.execute("select count(*) from closure_new_persons").fetchall()[0][0] == 0:
+            break
+        con.execute(f"insert into {persons_table} select person_key from closure_new_persons")
+    con.execute("drop table closure_specimens")
+    con.execute("drop table closure_new_persons")
+    if versions_table:
+        con.execute(
+            f"create or replace temp table {versions_table} as select v.* from {versions} as v "
+            f"semi join {persons_table} as p on p.person_key = v.person_key"
+        )
+        return con.execute(f"select count(*) from {versions_table}").fetchall()[0][0]
+    return con.execute(
+        f"select count(*) from {versions} as v semi join {persons_table} as p on p.person_key = v.person_key"
+    ).fetchall()[0][0]
+
+
+def resolve_versions(con: duckdb.DuckDBPyConnection) -> tuple[int, Scope]:
+    """Settle the outcome of the versions in scope and bring lab_results up to date.
+
+    Returns the rows of lab_results (a view: the accepted versions) and the scope; in a touched
+    scope ``scope_persons`` names the persons whose results may have changed, for the measure
+    stage.
+    """
+    scope = settle_scope(con)
+    build_table(con, "int_result_versions_resolved", params={"as_of": NO_LIMIT}, temporary=True)
+    # stored versions whose outcome changed (an amendment supersedes them, ...), then this
+    # run's versions, stored once with their outcome
     con.execute(
         """
         update result_versions as v set outcome = r.outcome
-        from staging.int_result_versions_resolved as r
+        from int_result_versions_resolved as r
         where r.file_id = v.file_id and r.line_no = v.line_no
           and v.outcome is distinct from r.outcome
         """
     )
-    return build_table(con, "lab_results")
+    con.execute(
+        """
+        insert into result_versions
+        select n.* replace (r.outcome as outcome)
+        from new_versions as n
+        join int_result_versions_resolved as r on r.file_id = n.file_id and r.line_no = n.line_no
+        """
+    )
+    con.execute("drop view all_versions")
+    con.execute("drop table new_versions")
+    con.execute("drop view versions_in_scope")
+    build_view(con, "lab_results")
+    n = con.execute("select count(*) from lab_results").fetchall()[0][0]
+    return n, scope
 
 
-def update_ledger_counts(con: duckdb.DuckDBPyConnection) -> None:
-    """Recount every ingested file's outcomes, then check that each file balances."""
+#: The files whose counts a touched scope can change: those of its versions and this run's.
+TOUCHED_FILES = (
+    "and f.file_id in (select file_id from scope_versions "
+    "union select file_id from landed_rows)"
+)
+
+
+def update_ledger_counts(con: duckdb.DuckDBPyConnection, scope: Scope | None = None) -> None:
+    """Recount the outcomes of the files this run touched (every ingested file when the scope
+    was all versions), then check that each file balances."""
+    touched = scope is not None and scope.kind == "touched"
     con.execute(
         """
         update ingest_files set
@@ -157,11 +286,11 @@ def update_ledger_counts(con: duckdb.DuckDBPyConnection) -> None:
             left join result_versions as v on v.file_id = f.file_id
             left join (select file_id, count(*) as rejected from rejected_rows group by file_id) as r
                 on r.file_id = f.file_id
-            where f.status = 'ingested'
+            where f.status = 'ingested' {only_touched}
             group by f.file_id
         ) as c
         where ingest_files.file_id = c.file_id
-        """
+        """.format(only_touched=TOUCHED_FILES if touched else "")
     )
     unbalanced = con.execute(
         """
@@ -206,6 +335,6 @@ def validate_stage(
         for s in settings.sources
     }
     valid, rejected, held = validate_landed(con, limits, batch_gate)
-    n_results = resolve_versions(con)
-    update_ledger_counts(con)
-    return ValidateSummary(valid, rejected, n_results, outcome_counts(con), held)
+    n_results, scope = resolve_versions(con)
+    update_ledger_counts(con, scope)
+    return ValidateSummary(valid, rejected, n_results, outcome_counts(con), held, scope)

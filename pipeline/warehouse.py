@@ -23,7 +23,7 @@ from pipeline.settings import Settings
 SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
 WAREHOUSE_FILE = "surveillance.duckdb"
 _NAME = re.compile(r"^[a-z][a-z0-9_]{0,62}$")
-LEDGER_TABLES = ("ingest_files", "result_versions", "rejected_rows", "runs")
+LEDGER_TABLES = ("ingest_files", "result_versions", "rejected_rows", "runs", "link_snapshots")
 
 
 def sql_path(name: str) -> Path:
@@ -40,7 +40,7 @@ def read_sql(name: str) -> str:
     return sql_path(name).read_text(encoding="utf-8")
 
 
-def connect(path: Path | str, memory_limit: str = "4GB") -> duckdb.DuckDBPyConnection:
+def connect(path: Path | str, memory_limit: str = "2GB") -> duckdb.DuckDBPyConnection:
     """Open (or create) a warehouse file with the ledger tables in place."""
     path = Path(path)
     con = duckdb.connect(str(path))
@@ -64,16 +64,32 @@ def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
 
 
 def build_table(con: duckdb.DuckDBPyConnection, name: str, target: str | None = None,
-                params: dict[str, Any] | None = None) -> int:
-    """Run ``sql/*/<name>.sql`` into a table (``target`` defaults to ``name``); return its rows."""
+                params: dict[str, Any] | None = None, temporary: bool = False) -> int:
+    """Run ``sql/*/<name>.sql`` into a table (``target`` defaults to ``name``); return its rows.
+
+    ``temporary``: a temporary table of this connection (a run's transient work: it is never
+    written to the warehouse file, which inside the run's transaction costs several times more,
+    and it is gone when the connection closes)."""
     target = target or name
-    if not all(_NAME.match(part) for part in target.split(".")):
+    if not all(_NAME.match(part) for part in target.split(".")) or (temporary and "." in target):
         raise ValueError(f"not a plain table name: {target!r}")
-    sql = read_sql(name)
-    code = re.sub(r"--[^\n]*", "", sql)  # a $name in a comment is not a parameter
-    used = {k: v for k, v in (params or {}).items() if re.search(rf"\${k}\b", code)}
-    con.execute(f"create or replace table {target} as\n{sql}", used)
+    sql, used = _sql_with_params(name, params)
+    con.execute(f"create or replace {'temp ' if temporary else ''}table {target} as\n{sql}", used)
     return con.execute(f"select count(*) from {target}").fetchall()[0][0]
+
+
+def build_view(con: duckdb.DuckDBPyConnection, name: str) -> None:
+    """Define ``sql/*/<name>.sql`` as a view (replacing a table or view of that name)."""
+    sql, used = _sql_with_params(name, None)
+    drop_relation(con, name)
+    con.execute(f"create view {name} as\n{sql}")
+
+
+def _sql_with_params(name: str, params: dict[str, Any] | None) -> tuple[str, dict[str, Any]]:
+    """The SQL of a table and the parameters it uses (a $name in a comment is not one)."""
+    sql = read_sql(name)
+    code = re.sub(r"--[^\n]*", "", sql)
+    return sql, {k: v for k, v in (params or {}).items() if re.search(rf"\${k}\b", code)}
 
 
 def load_reference_tables(con: duckdb.DuckDBPyConnection, settings: Settings) -> None:
@@ -151,13 +167,41 @@ def load_catalog() -> dict[str, Any]:
         return yaml.safe_load(fh)["tables"]
 
 
+def relation_kind(con: duckdb.DuckDBPyConnection, name: str) -> str | None:
+    """'table', 'view' or None for a name in schema main."""
+    found = con.execute(
+        "select 'table' from duckdb_tables() where database_name = current_database() "
+        "and schema_name = 'main' and table_name = $n "
+        "union all select 'view' from duckdb_views() where database_name = current_database() "
+        "and schema_name = 'main' and view_name = $n and not internal",
+        {"n": name},
+    ).fetchall()
+    return found[0][0] if found else None
+
+
+def drop_relation(con: duckdb.DuckDBPyConnection, name: str) -> None:
+    """Drop the table or view ``name`` of schema main, if there is one (an intermediate table is
+    a view in some runs, a table in others; CREATE OR REPLACE does not change the kind)."""
+    if not _NAME.match(name):
+        raise ValueError(f"not a plain table name: {name!r}")
+    kind = relation_kind(con, name)
+    if kind:
+        con.execute(f"drop {kind} {name}")
+
+
 def apply_comments(con: duckdb.DuckDBPyConnection) -> None:
-    """Write the catalog's descriptions as COMMENTs on every table and column it documents."""
+    """Write the catalog's descriptions as COMMENTs on every table, view and column it documents."""
     existing = {
-        (s, t) for s, t in con.execute(
+        (s, t): "table" for s, t in con.execute(
             "select schema_name, table_name from duckdb_tables() where database_name = current_database()"
         ).fetchall()
     }
+    existing.update({
+        (s, t): "view" for s, t in con.execute(
+            "select schema_name, view_name from duckdb_views() where database_name = current_database() "
+            "and not internal and not temporary"
+        ).fetchall()
+    })  # fmt: skip
     for qualified, entry in load_catalog().items():
         schema, _, table = qualified.rpartition(".")
         schema = schema or "main"
@@ -167,7 +211,7 @@ def apply_comments(con: duckdb.DuckDBPyConnection) -> None:
         if not all(_NAME.match(p) for p in (schema, table)):
             raise ValueError(f"catalog.yaml: not a plain table name {qualified!r}")
         text = f"{entry['description'].strip()} Grain: {entry['grain'].strip()}"
-        con.execute(f"comment on table {target} is {_quote(text)}")
+        con.execute(f"comment on {existing[(schema, table)]} {target} is {_quote(text)}")
         columns = {c for (c,) in con.execute(
             "select column_name from duckdb_columns() where schema_name = ? and table_name = ?",
             [schema, table]).fetchall()}
@@ -186,28 +230,29 @@ def replace_period_frame(con: duckdb.DuckDBPyConnection, name: str, period: str,
     if not _NAME.match(name):
         raise ValueError(f"not a plain table name: {name!r}")
     con.register("_period_frame", frame.to_arrow())
-    con.execute(f"create or replace table staging.{name}_new as select * from _period_frame")
+    con.execute(f"create or replace temp table {name}_new as select * from _period_frame")
     con.unregister("_period_frame")
-    return _swap_period_rows(con, name, period)
+    return swap_period_rows(con, name, period)
 
 
 def replace_period_rows(con: duckdb.DuckDBPyConnection, name: str, period: str, params: dict) -> int:
     """Rebuild this period's rows of a per-period table, keeping the other periods."""
-    build_table(con, name, f"staging.{name}_new", params)
-    return _swap_period_rows(con, name, period)
+    build_table(con, name, f"{name}_new", params, temporary=True)
+    return swap_period_rows(con, name, period)
 
 
-def _swap_period_rows(con: duckdb.DuckDBPyConnection, name: str, period: str) -> int:
+def swap_period_rows(con: duckdb.DuckDBPyConnection, name: str, period: str) -> int:
+    """Replace this period's rows of ``name`` by the temporary table ``<name>_new``."""
     exists = con.execute(
         "select count(*) from duckdb_tables() where schema_name = 'main' and table_name = ?", [name]
     ).fetchall()[0][0]
     if not exists:
-        con.execute(f"create table {name} as select * from staging.{name}_new")
+        con.execute(f"create table {name} as select * from {name}_new")
     else:
         con.execute(f"delete from {name} where period = ?", [period])
-        con.execute(f"insert into {name} select * from staging.{name}_new")
-    rows = con.execute(f"select count(*) from staging.{name}_new").fetchall()[0][0]
-    con.execute(f"drop table staging.{name}_new")
+        con.execute(f"insert into {name} select * from {name}_new")
+    rows = con.execute(f"select count(*) from {name}_new").fetchall()[0][0]
+    con.execute(f"drop table {name}_new")
     return rows
 
 

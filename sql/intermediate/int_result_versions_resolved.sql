@@ -1,5 +1,6 @@
--- int_result_versions_resolved: one row per row of result_versions reported by $as_of, with its
--- outcome as known on that day. The validate stage runs it with no limit ($as_of far in the
+-- int_result_versions_resolved: one row per version in scope (the view versions_in_scope: every
+-- row of result_versions, or in a monthly run only those that its new rows can change; see
+-- pipeline/validate.py, settle_scope) reported by $as_of, with its outcome as known on that day. The validate stage runs it with no limit ($as_of far in the
 -- future: today's outcomes, stored in result_versions.outcome); the link stage runs it with the
 -- period end, so a past period is rebuilt as it was known then (an amendment or cancellation
 -- reported later does not reach back).
@@ -32,7 +33,7 @@ with copies as (
                          v.status, v.value_text, v.reported_unit
             order by v.file_id, v.line_no
         ) as copy_number
-    from result_versions as v
+    from versions_in_scope as v
     where v.reported_date <= $as_of
 ),
 versions as (
@@ -69,7 +70,7 @@ across_sources as (
         select w.file_id, w.line_no, x.source_id, x.person_key, x.analyte, x.collected_date,
                x.comparator, round(x.value, 4) as value_key, x.reported_date
         from within_source as w
-        join result_versions as x on x.file_id = w.file_id and x.line_no = w.line_no
+        join versions_in_scope as x on x.file_id = w.file_id and x.line_no = w.line_no
         where w.outcome = 'accepted' and x.value is not null
     ) as r
     window same_result as (

@@ -2,8 +2,11 @@
 -- result, the latest version reported by then, if it is final, amended or corrected, collected
 -- by then, and not the same result already received from another source. The as-of twin of
 -- lab_results; every person-level table of a period reads this, not lab_results.
+-- When no version in result_versions is reported after the period end (the usual monthly run),
+-- the outcomes as known then are the stored ones, and pipeline/linkage.py takes the accepted
+-- rows of result_versions collected by the period end directly (the same rows, without
+-- settling the versions a second time).
 select v.*
 from result_versions as v
-join staging.int_versions_as_of as k on k.file_id = v.file_id and k.line_no = v.line_no
+join int_versions_as_of as k on k.file_id = v.file_id and k.line_no = v.line_no
 where k.outcome = 'accepted' and v.collected_date <= $period_end
-order by v.person_key, v.collected_date, v.analyte, v.source_id, v.file_id, v.line_no

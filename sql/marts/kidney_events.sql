@@ -47,13 +47,19 @@ in_scope as (
     left join baseline as b on b.person_key = d.person_key
     where not r.after_baseline or (b.baseline_end is not null and d.day > b.baseline_end)
 ),
+candidates as (
+    -- only a person and rule with at least one qualifying value can have a run: most persons
+    -- never reach a decline or failure threshold, and their values need no islands
+    select rule_id, person_key from in_scope group by rule_id, person_key having bool_or(qualifies)
+),
 islands as (
-    select *,
-           sum(case when qualifies then 0 else 1 end) over (
-               partition by rule_id, person_key order by day rows unbounded preceding
+    select s.*,
+           sum(case when s.qualifies then 0 else 1 end) over (
+               partition by s.rule_id, s.person_key order by s.day rows unbounded preceding
            ) as island,
-           max(day) over (partition by rule_id, person_key) as last_day
-    from in_scope
+           max(s.day) over (partition by s.rule_id, s.person_key) as last_day
+    from in_scope as s
+    semi join candidates as c on c.rule_id = s.rule_id and c.person_key = s.person_key
 ),
 runs as (
     select rule_id, event_type, threshold, min_span_days, person_key, island,

@@ -1,6 +1,7 @@
 -- lab_results: one row per accepted result (the current version of each result), in canonical
 -- units, keyed by the file and line it came from. Superseded, duplicate, withdrawn and pending
--- versions stay in result_versions; rejected rows in rejected_rows.
+-- versions stay in result_versions; rejected rows in rejected_rows. A view (nothing is copied:
+-- it follows result_versions as each run settles outcomes). Unordered: sort when you read it.
 select
     v.source_id,
     f.sha256 as file_sha256,
@@ -29,4 +30,3 @@ select
 from result_versions as v
 join ingest_files as f on f.file_id = v.file_id
 where v.outcome = 'accepted'
-order by v.person_key, v.collected_date, v.analyte, v.source_id, v.file_id, v.line_no

@@ -1,5 +1,5 @@
 -- stg_landed_rows: one row per landed input row of this run, renamed, cast and tagged.
--- Reads staging.landed_rows (written by pipeline/ingest.py) and the reference tables; judges
+-- Reads landed_rows (written by pipeline/ingest.py) and the reference tables; judges
 -- nothing (that is int_results_validated).
 with parsed as (
     select
@@ -7,7 +7,7 @@ with parsed as (
         trim(l.value_clean) as value_trimmed,
         regexp_extract(trim(l.value_clean), '^(<=|>=|≤|≥|<|>)', 1) as comparator_raw,
         lower(replace(replace(trim(l.unit_text), 'µ', 'u'), 'μ', 'u')) as unit_key
-    from staging.landed_rows as l
+    from landed_rows as l
 ),
 numbers as (
     select

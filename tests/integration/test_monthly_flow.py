@@ -7,6 +7,7 @@ and that the same measurement sent in the three lab layouts arrives with one can
 
 from __future__ import annotations
 
+import csv
 import json
 import shutil
 from pathlib import Path
@@ -87,6 +88,24 @@ def test_demo_prints_summary_and_writes_warehouse(demo_run):
     assert (out / PERIOD / "district_ckd_prevalence.parquet").is_file()
     summary = json.loads((out / PERIOD / "run_summary.json").read_text())
     assert summary["demo_key"] is True
+
+
+def test_demo_exports_say_they_were_made_with_the_demo_key(demo_run):
+    """A CSV or Parquet file copied out of the folder still says it holds invented data."""
+    import pyarrow.parquet as pq
+
+    from pipeline.disclosure import PUBLISHED_TABLES
+    from pipeline.publish import DEMO_COLUMN, DEMO_NOTICE
+
+    out, _, _ = demo_run
+    for table in PUBLISHED_TABLES:
+        with open(out / PERIOD / f"{table.name}.csv", encoding="utf-8", newline="") as f:
+            rows = list(csv.reader(f))
+        assert rows[0][-1] == DEMO_COLUMN, table.name
+        assert {r[-1] for r in rows[1:]} == {DEMO_NOTICE}, table.name
+        meta = pq.read_metadata(out / PERIOD / f"{table.name}.parquet").metadata
+        assert meta[b"kidneysurv.pseudonym_key"] == b"demo", table.name
+        assert DEMO_COLUMN not in pq.read_schema(out / PERIOD / f"{table.name}.parquet").names
 
 
 def test_every_input_row_accounted_once(demo_run):
@@ -257,3 +276,9 @@ def test_deployment_has_its_cron_and_a_triggered_run_publishes(prefect_harness, 
     assert state.is_completed(), state
     manifest = json.loads((out / "2026-01" / "run_manifest.json").read_text())
     assert manifest["demo_key"] is False
+    # no demo mark on the exports of a run with a real key
+    header = (out / "2026-01" / "district_ckd_prevalence.csv").read_text(encoding="utf-8").splitlines()[0]
+    assert not header.endswith("key_notice")
+    import pyarrow.parquet as pq
+
+    assert b"kidneysurv.pseudonym_key" not in (pq.read_metadata(out / "2026-01" / "district_ckd_prevalence.parquet").metadata or {})

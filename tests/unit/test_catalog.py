@@ -43,10 +43,14 @@ def qualified(schema: str, table: str) -> str:
 
 
 def tables(con, where: str = "true") -> list[tuple[str, str, str | None]]:
+    """Tables and views (an intermediate table is a view in a usual monthly run)."""
     return rows(
         con,
-        "select schema_name, table_name, comment from duckdb_tables() "
-        f"where database_name = current_database() and not temporary and {where} order by all",
+        "select * from (select schema_name, table_name, comment from duckdb_tables() "
+        "where database_name = current_database() and not temporary "
+        "union all select schema_name, view_name, comment from duckdb_views() "
+        "where database_name = current_database() and not temporary and not internal) "
+        f"where {where} order by all",
     )
 
 

@@ -1,10 +1,12 @@
 """Tests for the Great Expectations quality gate per source batch (pipeline.quality).
 
-One in-memory warehouse holds a hand-made ``staging.int_results_validated`` with one source per
+One in-memory warehouse holds a hand-made ``int_results_validated`` with one source per
 case: a clean batch, and batches that each break one expectation once. All of them are checked
 in a single ``check_batches`` call (Great Expectations is imported once for the module; the
-import alone takes several seconds), which also writes the Data Docs; one more call checks the
-chunked path.
+import alone takes seconds), which also writes the Data Docs (a batch failed). Further tests:
+a large batch (the summary GX validates does not grow with the rows, and one bad row among
+thousands is still found with its id), a broken table schema, when the Data Docs are built, and
+one real month run in which a defect that slipped past the row rules holds its source back.
 
 Outside references: the FHIR R4 Observation status value set (final, amended, corrected,
 cancelled, entered-in-error, preliminary; HL7 FHIR R4, ValueSet observation-status); canonical
@@ -32,7 +34,7 @@ pytestmark = pytest.mark.skipif(
 )
 
 STAGING_DDL = """
-create table staging.int_results_validated (
+create temp table int_results_validated (
     source_id varchar, file_id bigint, line_no bigint, raw_text varchar, person_key varchar,
     specimen_id varchar, collected_date date, reported_date date, reported_date_basis varchar,
     loinc varchar, analyte varchar, status varchar, value_text varchar, comparator varchar,
@@ -82,26 +84,30 @@ def clean_rows(source: str, file_id: int) -> list[dict[str, Any]]:
     ]
 
 
+PAIR = "expect_column_pair_values_a_to_be_greater_than_b"
 # source -> (rows, the check expected to fail, the row id it names)
 CASES: dict[str, tuple[list[dict[str, Any]], str | None, str | None]] = {
     "clean_lab": (clean_rows("clean_lab", 1), None, None),
     # 40 mg/dL is above creatinine's plausible maximum, 25 mg/dL (pipeline.yaml, common practice)
     "range_lab": (clean_rows("range_lab", 2) + [result("range_lab", 2, 8, value=40.0)],
-                  "expect_column_pair_values_a_to_be_greater_than_b(value_max, value)", "2:8"),
+                  f"{PAIR}(range_max, value_max)", "2:8"),
     "low_lab": (clean_rows("low_lab", 3) + [result("low_lab", 3, 8, value=0.01)],
-                "expect_column_pair_values_a_to_be_greater_than_b(value, value_min)", "3:8"),
+                f"{PAIR}(value_min, range_min)", "3:8"),
     # mg/L is not creatinine's canonical unit (mg/dL)
     "unit_lab": (clean_rows("unit_lab", 4) + [result("unit_lab", 4, 8, unit="mg/L")],
                  "expect_column_values_to_be_in_set(analyte_unit)", "4:8"),
     "person_lab": (clean_rows("person_lab", 5) + [result("person_lab", 5, 8, person=None)],
-                   "expect_column_values_to_not_be_null(person_key)", "5:8"),
+                   "expect_column_values_to_be_between(null_person_key, 0, 0)", "5:8"),
     "twice_lab": (clean_rows("twice_lab", 6) + [result("twice_lab", 6, 3, analyte="acr", value=28.0)],
-                  "expect_column_values_to_be_unique(row_id)", "6:3"),
+                  "expect_column_values_to_be_between(duplicate_row_ids, 0, 0)", "6:3"),
     "analyte_lab": (clean_rows("analyte_lab", 7) + [result("analyte_lab", 7, 8, analyte="lactate")],
                     "expect_column_values_to_be_in_set(analyte)", "7:8"),  # (and its unit check)
     # a final result must carry a value (only cancellations and entered-in-error may not)
     "novalue_lab": (clean_rows("novalue_lab", 8) + [result("novalue_lab", 8, 8, value=None)],
-                    "expect_column_values_to_not_be_null(value, status not withdrawn)", "8:8"),
+                    "expect_column_values_to_be_between(missing_value, 0, 0)", "8:8"),
+    # NaN is not a value either (IEEE 754 not-a-number)
+    "nan_lab": (clean_rows("nan_lab", 12) + [result("nan_lab", 12, 8, value=float("nan"))],
+                "expect_column_values_to_be_between(missing_value, 0, 0)", "12:8"),
     # 'done' is not an Observation status in FHIR R4
     "status_lab": (clean_rows("status_lab", 9) + [result("status_lab", 9, 8, status="done")],
                    "expect_column_values_to_be_in_set(status)", "9:8"),
@@ -109,6 +115,8 @@ CASES: dict[str, tuple[list[dict[str, Any]], str | None, str | None]] = {
                 "expect_column_values_to_be_in_set(sex)", "10:8"),
     # the ledger says 8 rows were read, 6 are here; and a second file read 3 rows, none here
     "missing_lab": (clean_rows("missing_lab", 11), "row_count_balance", None),
+    # every row rejected: an empty batch passes (the rejection-rate gate judges it)
+    "rejected_lab": ([result("rejected_lab", 13, 2, value=None, reason="not_numeric")], None, None),
 }  # fmt: skip
 ROWS_READ = {source: len(rows) for source, (rows, _, _) in CASES.items()}
 ROWS_READ["missing_lab"] = 8
@@ -121,7 +129,8 @@ def build_warehouse(settings, cases: dict[str, tuple[list[dict[str, Any]], Any, 
     con.execute(STAGING_DDL)
     placeholders = ", ".join("?" for _ in COLUMNS)
     rows = [tuple(r[c] for c in COLUMNS) for rows, _, _ in cases.values() for r in rows]
-    con.executemany(f"insert into staging.int_results_validated values ({placeholders})", rows)
+    if rows:
+        con.executemany(f"insert into int_results_validated values ({placeholders})", rows)
     for source, (source_rows, _, _) in cases.items():
         file_id = source_rows[0]["file_id"]
         con.execute(LEDGER_ROW, [file_id, source, f"{source}/a.csv", "ingested", rows_read[source]])
@@ -158,12 +167,23 @@ def test_every_source_is_checked(gate):
 
 
 def test_clean_batch_passes(gate):
+    from pipeline.quality import KEY_COLUMNS
+
     check = gate[0]["clean_lab"]
     assert check.success, check.failed
     assert check.failed == [] and check.unexpected_row_ids == []
     assert check.rows == 5  # the rejected row is not in the batch
-    assert check.evaluated > 30  # the whole suite ran, plus the row-count balance
+    # creatinine final F, acr final M, hba1c final U, creatinine cancelled F and entered-in-error F
+    assert check.cells == 5
+    # the three suites: 2 on the columns, 7 + one per key column on the cells, 2 on the totals
+    assert check.evaluated == 2 + 7 + len(KEY_COLUMNS) + 2
     assert check.seconds >= 0
+
+
+def test_a_batch_of_rejected_rows_only_passes(gate):
+    check = gate[0]["rejected_lab"]
+    assert check.success, check.failed
+    assert check.rows == 0 and check.cells == 0
 
 
 @pytest.mark.parametrize("source", [s for s, (_, name, _) in CASES.items() if name])
@@ -175,12 +195,15 @@ def test_broken_batch_fails_with_named_check_and_row(gate, source):
     also = {"analyte_lab": ["expect_column_values_to_be_in_set(analyte_unit)"]}.get(source, [])
     assert names == [expected, *also], check.failed
     if row_id is not None:
-        assert row_id in check.unexpected_row_ids
+        assert check.unexpected_row_ids == [row_id]  # exactly the broken row, once
 
 
-def test_unexpected_rows_are_reported_with_a_reason(gate):
+def test_unexpected_rows_are_reported_with_their_cell_and_count(gate):
     failed = gate[0]["range_lab"].failed[0]
+    assert "creatinine [mg/dL], final, F" in failed and "value_max 40" in failed
     assert failed.endswith("1 of 6 rows unexpected")
+    # both copies of the duplicated row id count, as GX's uniqueness check counts them
+    assert gate[0]["twice_lab"].failed[0].endswith("2 of 6 rows unexpected")
 
 
 def test_row_count_balance_counts_missing_rows_and_files(gate):
@@ -189,23 +212,56 @@ def test_row_count_balance_counts_missing_rows_and_files(gate):
     assert "batch 5 + rejected 1 = 6 rows" in failed and "read 11" in failed
 
 
-def test_chunked_batch_merges_results_and_keeps_duplicates_together(settings):
+def insert_generated_batch(con, source: str, file_id: int, rows: int) -> None:
+    """``rows`` well-formed creatinine results (invented), values 1.0-1.6 mg/dL, F and M."""
+    con.execute(
+        f"""
+        insert into int_results_validated
+        select '{source}', {file_id}, i + 2, '[person],...', 'pk-wf-' || (i % 500)::varchar,
+               'S' || i::varchar, date '2025-06-02', date '2025-06-03', 'reported_at', '2160-0',
+               'creatinine', 'final', null, null, 1.0 + (i % 7) / 10, 'mg/dL', null, null,
+               case when i % 2 = 0 then 'F' else 'M' end, 1960, 'WF01', 1.0 + (i % 7) / 10,
+               'mg/dL', 65, null, null
+        from range({rows}) as t(i)
+        """
+    )
+
+
+def test_the_summary_does_not_grow_with_the_rows_and_still_names_every_bad_row(settings):
+    """20,000 rows make 2 summary rows; 25 values above the plausible range among them are all
+    counted, and the first 20 are named in file and line order."""
+    from pipeline.quality import MAX_UNEXPECTED_IDS, check_batches
+
+    con = build_warehouse(settings, {}, {})
+    insert_generated_batch(con, "big_lab", 1, 20_000)
+    con.execute(LEDGER_ROW, [1, "big_lab", "big_lab/a.csv", "ingested", 20_000])
+    clean = check_batches(con, settings, None)["big_lab"]
+    assert clean.success, clean.failed
+    assert (clean.rows, clean.cells) == (20_000, 2)
+    # 30 mg/dL is above creatinine's plausible maximum, 25 mg/dL (pipeline.yaml, common practice)
+    con.execute("update int_results_validated set value = 30 where line_no between 100 and 124")
+    check = check_batches(con, settings, None)["big_lab"]
+    con.close()
+    assert [f.split(":", 1)[0] for f in check.failed] == [f"{PAIR}(range_max, value_max)"]
+    assert check.failed[0].endswith("25 of 20000 rows unexpected")
+    assert check.unexpected_row_ids == [f"1:{n}" for n in range(100, 100 + MAX_UNEXPECTED_IDS)]
+
+
+def test_a_broken_table_schema_fails_every_batch(settings):
     from pipeline.quality import check_batches
 
-    rows = clean_rows("chunk_lab", 1) + [
-        result("chunk_lab", 1, 8, value=40.0),
-        result("chunk_lab", 1, 9),
-        result("chunk_lab", 1, 9),  # a duplicated (file, line): both copies land in one chunk
-        result("chunk_lab", 1, 10),
-    ]
-    con = build_warehouse(settings, {"chunk_lab": (rows, None, None)}, {"chunk_lab": len(rows)})
-    check = check_batches(con, settings, None, chunk_rows=2)["chunk_lab"]
+    cases = {s: CASES[s] for s in ("clean_lab", "low_lab")}
+    con = build_warehouse(settings, cases, ROWS_READ)
+    con.execute("alter table int_results_validated drop column district_code")
+    con.execute("alter table int_results_validated alter birth_year type varchar")
+    checks = check_batches(con, settings, None)
     con.close()
-    assert check.chunks >= 4 and check.rows == 9
-    names = sorted(f.split(":", 1)[0] for f in check.failed)
-    assert names == ["expect_column_pair_values_a_to_be_greater_than_b(value_max, value)",
-                     "expect_column_values_to_be_unique(row_id)"]  # fmt: skip
-    assert {"1:8", "1:9"} <= set(check.unexpected_row_ids)
+    schema = ["expect_column_distinct_values_to_equal_set(column_name)",
+              "expect_column_values_to_be_in_set(column_type)"]  # fmt: skip
+    assert [f.split(":", 1)[0] for f in checks["clean_lab"].failed] == schema
+    assert "birth_year VARCHAR" in checks["clean_lab"].failed[1]
+    # the other checks still ran on the summary
+    assert [f.split(":", 1)[0] for f in checks["low_lab"].failed] == [*schema, f"{PAIR}(value_min, range_min)"]
 
 
 # --------------------------------------------------------------------------- Data Docs
@@ -229,8 +285,10 @@ def test_data_docs_are_written(gate):
     _, docs = gate
     assert (docs / "index.html").is_file()
     pages = list((docs / "validations").rglob("*.html"))
-    assert len(pages) == len(CASES)  # one validation page per source batch
-    assert any("clean_lab" in p.read_text(encoding="utf-8") for p in pages)
+    # one validation page per summary frame: the columns, the cells, the totals
+    assert sorted(p.parent.parent.parent.name for p in pages) == ["batch_cells", "batch_totals",
+                                                                   "standardised_columns"]  # fmt: skip
+    assert any("range_lab" in p.read_text(encoding="utf-8") for p in pages)  # a failing source
 
 
 def test_data_docs_load_no_stylesheet_script_or_font_from_the_network(gate):
@@ -252,3 +310,103 @@ def test_data_docs_local_assets_exist(gate):
         if "fa-brands" in url:
             continue  # brand icons are not used by the pages and not vendored
         assert target.is_file(), f"{path.relative_to(docs)} -> {url}"
+
+
+# --------------------------------------------------------------------------- when Data Docs are built
+
+
+def test_data_docs_only_on_failure_unless_always(settings, tmp_path):
+    from pipeline.quality import check_batches
+
+    con = build_warehouse(settings, {"clean_lab": CASES["clean_lab"]}, ROWS_READ)
+    docs = tmp_path / "quality"
+    assert check_batches(con, settings, docs, data_docs="always")["clean_lab"].success
+    assert (docs / "index.html").is_file()
+    # a clean run under on_failure leaves no report, and removes the earlier one
+    check_batches(con, settings, docs, data_docs="on_failure")
+    assert not docs.exists()
+    check_batches(con, settings, docs, data_docs="never")
+    assert not docs.exists()
+    # the default is the setting, on_failure in the shipped config
+    assert settings.pipeline.quality_gate.data_docs == "on_failure"
+    check_batches(con, settings, docs)
+    con.close()
+    assert not docs.exists()
+
+
+# --------------------------------------------------------------------------- in a month run
+
+STD = ("person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,"
+       "status,reported_at\n")  # fmt: skip
+SEMI = "PatientRef;YearOfBirth;Gender;AreaCode;SampleNo;SampleDate;TestCode;Result;Units;State;ReportDate\n"
+INBOX = {
+    "westerfold_general_lab/results_2026-01.csv": STD
+    + "WF-q1,1960,F,WF01,S1,2026-01-10,2160-0,1.0,mg/dL,final,2026-01-11\n"
+    + "WF-q2,1971,M,WF02,S2,2026-01-12,2160-0,1.3,mg/dL,final,2026-01-13\n",
+    "corvale_lab_chain/export_202601.csv": SEMI + "WF-q3;1970;M;WF02;C1;10/01/2026;CREA;80;µmol/l;F;11/01/2026\n",
+}  # fmt: skip
+
+
+@pytest.fixture
+def gx_config(tmp_path):
+    from tests.conftest import edit_pipeline_yaml
+
+    config = make_small_config(tmp_path / "config")
+    edit_pipeline_yaml(config, "quality_gate", "great_expectations", True)
+    return config
+
+
+def test_a_defect_that_slips_past_the_row_rules_holds_its_source_back(gx_config, tmp_path, monkeypatch):
+    """A real month run with the real suites: one value far above its plausible range reaches
+    the batch (as if a range rule had slipped); the gate fails that source's batch, its files
+    are held back and none of its rows stored, the other source publishes, the run exits 1, and
+    the Data Docs of the failure are written beside the exports and load nothing from the
+    network."""
+    import json
+
+    import pipeline.flows as flows
+    from tests.conftest import rows, run_month, write_inbox
+
+    real = flows._expectations
+
+    def slipped(ctx, con):
+        con.execute("update int_results_validated set value = 400 "
+                    "where source_id = 'westerfold_general_lab' and specimen_id = 'S2'")  # fmt: skip
+        return real(ctx, con)
+
+    monkeypatch.setattr(flows, "_expectations", slipped)
+    inbox = write_inbox(tmp_path, INBOX)
+    out = tmp_path / "out"
+    with run_month(gx_config, inbox, out) as con:
+        files = dict(rows(con, "select source_id, status || ': ' || coalesce(message, '') from ingest_files"))
+        stored = rows(con, "select distinct source_id from lab_results")
+        exit_code = rows(con, "select exit_code from runs")[0][0]
+        s2 = rows(con, "select file_id from ingest_files where source_id = 'westerfold_general_lab'")[0][0]
+    assert files["westerfold_general_lab"].startswith("held_back: ")
+    assert f"expectation suite: {PAIR}(range_max, value_max)" in files["westerfold_general_lab"]
+    assert files["corvale_lab_chain"].startswith("ingested")
+    assert stored == [("corvale_lab_chain",)]
+    assert exit_code == 1
+    checks = json.loads((out / "2026-01" / "run_manifest.json").read_text())["quality_gate"]["batch_checks"]
+    assert checks["corvale_lab_chain"]["success"] is True
+    failed = checks["westerfold_general_lab"]
+    assert failed["success"] is False and failed["unexpected_row_ids"] == [f"{s2}:3"]
+    assert set(failed) == {"success", "evaluated", "failed", "unexpected_row_ids", "seconds"}
+    docs = out / "2026-01" / "quality"
+    assert (docs / "index.html").is_file()
+    remote = [u for _, u in asset_references(docs) if u.startswith(("http://", "https://", "//"))]
+    assert remote == []
+
+
+def test_a_clean_month_run_passes_the_gate_and_writes_no_data_docs(gx_config, tmp_path):
+    import json
+
+    from tests.conftest import rows, run_month, write_inbox
+
+    out = tmp_path / "out"
+    with run_month(gx_config, write_inbox(tmp_path, INBOX), out) as con:
+        assert rows(con, "select exit_code from runs")[0][0] == 0
+    checks = json.loads((out / "2026-01" / "run_manifest.json").read_text())["quality_gate"]["batch_checks"]
+    assert sorted(checks) == ["corvale_lab_chain", "westerfold_general_lab"]
+    assert all(c["success"] for c in checks.values())
+    assert not (out / "2026-01" / "quality").exists()  # data_docs: on_failure

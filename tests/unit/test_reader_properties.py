@@ -30,6 +30,7 @@ from hypothesis import strategies as st
 from pipeline.ingest import FileFault, InboxFile, read_inbox_file, sha256_of
 from pipeline.settings import Settings, load_settings
 from tests.conftest import make_small_config, rows, run_month, write_inbox
+from tests.unit.test_reader_paths import compare_paths
 
 LAB = "westerfold_general_lab"
 FHIR = "fallowmere_reference_lab"
@@ -283,3 +284,29 @@ def test_fhir_observation_with_any_json_types_is_a_row_or_a_file_fault(small_set
     except FileFault:
         return
     assert frame.height == 1
+
+
+# --------------------------------------------------------------------------- (d) both readers
+
+
+def _both_readers_agree(settings_: Settings, workdir: Path, data: bytes, delimiter: str, source_id: str = LAB):
+    source = settings_.source(source_id)
+    if delimiter != source.delimiter:
+        source = source.model_copy(update={"delimiter": delimiter})
+    path = workdir / f"both{next(_counter)}.csv"
+    path.write_bytes(data)
+    compare_paths(source, path)
+
+
+@FAST
+@given(data=ragged_csv(), delimiter=DELIMITERS)
+def test_ragged_files_land_the_same_rows_through_either_reader(small_settings, workdir, data, delimiter):
+    # a file without quotes is split in bulk, any other goes through the csv module: same rows
+    _both_readers_agree(small_settings, workdir, data.replace(b'"', b"") if delimiter == "," else data, delimiter)
+
+
+@FAST
+@given(generated=generated_file())
+def test_generated_files_land_the_same_rows_through_either_reader(small_settings, workdir, generated):
+    text, _ = generated
+    _both_readers_agree(small_settings, workdir, text.encode("utf-8"), ",")

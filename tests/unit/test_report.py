@@ -363,3 +363,51 @@ def test_nice_ticks_are_round_and_cover_the_range():
     assert _nice_ticks(0, 100) == [0, 20, 40, 60, 80, 100]
     ticks = _nice_ticks(0.0, 0.0316)
     assert ticks[0] == 0 and ticks[-1] >= 0.0316 and len(ticks) <= 6
+
+
+# --------------------------------------------------------------------------- CKD by category
+
+
+def test_category_tables_show_the_published_cells(con, report):
+    """Both category tables: every published count as published (its per-100 rate beside it in
+    small type), every blank count as "s", never a count from 1 to 10 (common practice)."""
+    cells = parse(report).cells
+    published = rows(con, "select district_code, category_axis, category, persons_ckd, ckd_per_100_tested "
+                          "from published.district_ckd_categories where period = ?", [PERIOD])  # fmt: skip
+    assert published, "the samples publish the category table"
+    checked = 0
+    for axis in ("gfr", "albuminuria"):
+        shown = {(d, c): t for d, c, t in cells[f"table-{axis}-categories"]}
+        expected = {(d, c): (n, r) for d, a, c, n, r in published if a == axis}
+        assert set(shown) == set(expected)
+        for key, (count, rate) in expected.items():
+            text = shown[key].replace("\u00a0", " ")
+            if count is None:
+                assert text == "s", key
+                checked += 1
+            else:
+                number, _, small = text.partition(" ")
+                assert number == f"{count:,}" and not 1 <= count <= 10, key
+                assert small == (f"{rate:,.1f}" if rate is not None else ""), key
+    assert checked > 0, "the samples have small category counts"
+
+
+def test_standardised_rates_shown_as_published(con, report):
+    """A standardised rate is shown where published (config: broad age groups), "r" where it
+    rests on too few persons (common practice: fewer than about 20 events) and "s" where
+    suppressed."""
+    cells = {(d, c): t for d, c, t in parse(report).cells["table-prevalence"]}
+    published = rows(con, "select district_code, ckd_per_1000_standardised, ckd_per_1000_standardised_flag "
+                          "from published.district_ckd_prevalence where period = ? and sex = 'ALL'", [PERIOD])  # fmt: skip
+    shown_rates = 0
+    for district, rate, flag in published:
+        text = cells[(district, "ckd_per_1000_standardised")]
+        if flag == "":
+            assert text.startswith(f"{rate:,.1f}"), (district, text)
+            shown_rates += 1
+        elif flag == "few_events":
+            assert text == "r"
+        elif flag == "suppressed":
+            assert text == "s"
+    assert shown_rates >= 3, "the samples publish standardised rates for the larger districts"
+    assert dict((d, f) for d, _, f in published)["ALL"] == ""

@@ -242,7 +242,9 @@ def test_amendment_in_later_month_supersedes_earlier_file(tmp_path: Path, small_
 
 # every table but the log of runs, which records each run by design
 TABLES_QUERY = """
-    select schema_name, table_name from duckdb_tables()
+    select * from (select schema_name, table_name from duckdb_tables() where not temporary
+                   union all select schema_name, view_name from duckdb_views()
+                   where not internal and not temporary)
     where schema_name in ('main', 'published') and table_name <> 'runs' order by all
 """
 

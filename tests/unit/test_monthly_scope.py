@@ -1,0 +1,123 @@
+"""A month that touches few persons settles, measures and links only those, and still gives the
+tables of one run over all the data (pipeline.validate.settle_scope, pipeline.measures,
+pipeline.linkage.carry_over_events).
+
+The facts checked are the project's own version rules (DEVELOPERS.md, "Statuses and
+duplicates": the latest report of a source + specimen + analyte wins) and the sustained-decline
+rule (a run of daily eGFRs at or below 60 % of baseline spanning 28 days or more); the
+reference is the same pipeline over all files at once, so what is tested is that the monthly
+path loses nothing. The values are invented."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import duckdb
+import pytest
+
+from tests.conftest import rows, run_month, write_inbox
+
+LAB = "westerfold_general_lab"
+HEADER = "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status,reported_at"
+CREA = "2160-0"  # LOINC: creatinine [mass/volume] in serum or plasma
+
+
+def line(token: str, spec: str, collected: str, value: str, status: str = "final",
+         reported: str | None = None) -> str:  # fmt: skip
+    return f"{token},1960,F,WF01,{spec},{collected},{CREA},{value},mg/dL,{status},{reported or collected}"
+
+
+def first_month() -> str:
+    lines = []
+    # forty steady persons: their events and measures must be carried over untouched
+    for i in range(40):
+        for j, day in enumerate(("2024-01-10", "2024-09-10", "2025-05-10")):
+            lines.append(line(f"WF-ms{i:04d}", f"S{i:03d}{j}", day, f"{0.8 + i / 100:.2f}"))
+    # a person whose creatinine doubles (eGFR about halves): a decline run that is pending at
+    # the end of June (one low value) and confirmed by July's value 30 days later
+    lines += [line("WF-msDEC", "D1", "2024-02-01", "0.9"), line("WF-msDEC", "D2", "2024-03-01", "0.9"),
+              line("WF-msDEC", "D3", "2025-06-01", "2.0")]  # fmt: skip
+    # person A's specimen X1
+    lines.append(line("WF-msAAA", "X1", "2025-06-02", "1.0"))
+    return "\n".join([HEADER, *lines]) + "\n"
+
+
+def second_month() -> str:
+    lines = [
+        line("WF-msDEC", "D4", "2025-07-01", "2.1"),
+        # a faulty extract: specimen X1 again, under another person, as an amendment. The
+        # version rule keys on source + specimen + analyte, so it supersedes A's X1 although A
+        # has no new row this month
+        line("WF-msBBB", "X1", "2025-06-02", "1.4", status="amended", reported="2025-07-03"),
+        line("WF-msNEW", "N1", "2025-07-05", "1.1"),
+    ]
+    return "\n".join([HEADER, *lines]) + "\n"
+
+
+FILES = {f"{LAB}/results_2025-06.csv": first_month(), f"{LAB}/results_2025-07.csv": second_month()}
+
+
+def snapshot(con: duckdb.DuckDBPyConnection, period: str) -> dict[str, list[tuple]]:
+    by_file = "join ingest_files as f using (file_id)"
+    return {
+        "result_versions": rows(con, f"select f.file_path, v.line_no, v.outcome from result_versions as v {by_file} "
+                                     "order by all"),
+        "lab_results": rows(con, f"select f.file_path, r.* exclude (file_id, file_sha256) from lab_results as r "
+                                 f"{by_file} order by f.file_path, r.line_no"),
+        "kidney_measures": rows(con, f"select f.file_path, m.* exclude (file_id) from kidney_measures as m {by_file} "
+                                     "order by f.file_path, m.line_no, m.analyte"),
+        "kidney_events": rows(con, "select * from kidney_events where period = ? order by person_key, rule_id", [period]),
+        "person_status": rows(con, "select * from person_status where period = ? order by person_key", [period]),
+        "ingest_files": rows(con, "select file_path, rows_read, rows_accepted, rows_superseded, rows_duplicate "
+                                  "from ingest_files order by file_path"),
+    }  # fmt: skip
+
+
+@pytest.fixture(scope="module")
+def month_by_month(tmp_path_factory):
+    from tests.conftest import make_small_config
+
+    base = tmp_path_factory.mktemp("monthly_scope")
+    config = make_small_config(base / "config")
+    inbox = write_inbox(base, {k: v for k, v in FILES.items() if "2025-06" in k})
+    with run_month(config, inbox, base / "out", period="2025-06") as con:
+        june_events = rows(con, "select person_key, rule_id, event_status from kidney_events order by all")
+    write_inbox(base, FILES)
+    with run_month(config, inbox, base / "out", period="2025-07") as con:
+        link = rows(con, "select period, persons, persons_recomputed from link_snapshots order by period")
+        yield config, base, snapshot(con, "2025-07"), june_events, link
+
+
+def test_july_took_the_monthly_path(month_by_month):
+    _, _, _, _, link = month_by_month
+    # June: every person computed; July: only the persons with changed results (the declining
+    # person, A and B through the shared specimen, and the new person). A's only result is
+    # superseded, so July has 42 - 1 + 2 persons with an accepted result
+    assert link[0] == ("2025-06", 42, 42)
+    assert link[1] == ("2025-07", 43, 4)
+
+
+def test_july_equals_one_run_over_both_months(month_by_month, tmp_path):
+    config, _, july, _, _ = month_by_month
+    inbox = write_inbox(tmp_path, FILES)
+    with run_month(config, inbox, tmp_path / "out", period="2025-07") as con:
+        once = snapshot(con, "2025-07")
+    for table, got in july.items():
+        assert got == once[table], table
+
+
+def test_the_shared_specimen_supersedes_the_other_persons_version(month_by_month):
+    _, _, july, _, _ = month_by_month
+    outcomes = {(path.rsplit("_", 1)[-1], n): o for path, n, o in july["result_versions"]}
+    june_x1 = 40 * 3 + 3 + 1 + 1  # line of A's X1 in June's file (header is line 1)
+    assert outcomes[("2025-06.csv", june_x1)] == "superseded"
+    assert outcomes[("2025-07.csv", 3)] == "accepted"
+
+
+def test_a_pending_decline_is_confirmed_by_the_next_month(month_by_month):
+    _, _, july, june_events, _ = month_by_month
+    june = {(r, s) for _, r, s in june_events if r == "sustained_decline_40"}
+    assert june == {("sustained_decline_40", "pending")}
+    # columns: period, person_key, event_type, rule_id, threshold, event_status, ...
+    july_decline = [e for e in july["kidney_events"] if e[3] == "sustained_decline_40"]
+    assert [e[5] for e in july_decline] == ["confirmed"]
