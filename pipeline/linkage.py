@@ -188,13 +188,38 @@ def changed_persons(con: duckdb.DuckDBPyConnection, period: Period, snapshot: Sn
     partition with one of those. Every other person's events are the snapshot's."""
     from pipeline.validate import close_over_partitions
 
-    seed = (
-        "select person_key, source_id, specimen_id, analyte from result_versions "
-        "where file_id > $max_file_id or (reported_date > $snap_end and reported_date <= $period_end)"
-    )
-    close_over_partitions(con, seed, {"max_file_id": snapshot.max_file_id, "snap_end": snapshot.period_end,
-                                      "period_end": period.end}, "link_persons")  # fmt: skip
+    params = {"max_file_id": snapshot.max_file_id, "snap_end": snapshot.period_end, "period_end": period.end}
+    if _same_seed_as_validate(con, params):
+        # the usual month: the versions ingested since the snapshot are this run's, and no
+        # earlier one is reported between the two period ends, so the seed is the validate
+        # stage's and so is its closure
+        con.execute("create or replace temp table link_persons as select * from scope_persons")
+    else:
+        seed = (
+            "select person_key, source_id, specimen_id, analyte from result_versions "
+            "where file_id > $max_file_id or (reported_date > $snap_end and reported_date <= $period_end)"
+        )
+        close_over_partitions(con, seed, params, "link_persons")
     return con.execute("select count(*) from link_persons").fetchall()[0][0]
+
+
+def _same_seed_as_validate(con: duckdb.DuckDBPyConnection, params: dict) -> bool:
+    """Whether this run's validate stage settled a touched scope whose seed (this run's new
+    versions) is exactly the snapshot's seed."""
+    touched = con.execute(
+        "select count(*) from duckdb_tables() where temporary and table_name = 'scope_persons'"
+    ).fetchall()[0][0]
+    if not touched:
+        return False
+    other = con.execute(
+        """
+        select count(*) from result_versions
+        where (file_id > $max_file_id and file_id not in (select distinct file_id from landed_rows))
+           or (file_id <= $max_file_id and reported_date > $snap_end and reported_date <= $period_end)
+        """,
+        {"max_file_id": params["max_file_id"], "snap_end": params["snap_end"], "period_end": params["period_end"]},
+    ).fetchall()[0][0]
+    return other == 0
 
 
 def carry_over(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period,

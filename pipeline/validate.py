@@ -61,9 +61,10 @@ def validate_landed(
     rejected = con.execute(
         """
         insert into rejected_rows
-        select v.source_id, v.file_id, f.file_path, v.line_no, v.raw_text, v.reason_code, v.message
+        select v.source_id, v.file_id, f.file_path, v.line_no, l.raw_text, v.reason_code, v.message
         from int_results_validated as v
         join ingest_files as f on f.file_id = v.file_id
+        join landed_rows as l on l.file_id = v.file_id and l.line_no = v.line_no
         where v.reason_code is not null and v.file_id not in (select file_id from ingest_files where status = 'held_back')
         """
     ).fetchall()[0][0]

@@ -1,7 +1,9 @@
 -- int_results_validated: one row per landed row of this run, with its value in the canonical
 -- unit and the first rule it breaks (reason_code null = well-formed). The order of the CASE is
 -- the order in which rules are checked; DEVELOPERS.md lists every code.
-with converted as (
+with converted as not materialized (
+    -- not materialized: written out whole it cost more than computing it twice (the second
+    -- use, alternative, keeps only the few out-of-range rows)
     select
         s.*,
         f.factor is not null as unit_allowed,

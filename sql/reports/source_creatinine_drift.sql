@@ -4,16 +4,15 @@
 -- a month whose median moves by more than $drift_threshold (as a fraction) with at least
 -- $drift_min_results results on both sides is flagged.
 with values_ as (
-    select m.source_id,
-           date_trunc('month', m.collected_date) as month_start,
-           m.sex,
-           case when m.age_years < 40 then '18-39' when m.age_years < 60 then '40-59'
-                when m.age_years < 80 then '60-79' else '80+' end as age_group,
+    select r.source_id,
+           date_trunc('month', r.collected_date) as month_start,
+           r.sex,
+           case when r.age_years < 40 then '18-39' when r.age_years < 60 then '40-59'
+                when r.age_years < 80 then '60-79' else '80+' end as age_group,
            r.value as creatinine_mg_dl
     from int_results_known as r
-    join int_measures_known as m on m.file_id = r.file_id and m.line_no = r.line_no
-    where r.analyte = 'creatinine' and r.comparator is null and m.age_years >= 18
-      and m.sex in ('F', 'M')
+    where r.analyte = 'creatinine' and r.comparator is null and r.age_years >= 18
+      and r.sex in ('F', 'M')
 ),
 months as (
     select source_id, month_start, sex, age_group,

@@ -1,6 +1,7 @@
 -- stg_landed_rows: one row per landed input row of this run, renamed, cast and tagged.
 -- Reads landed_rows (written by pipeline/ingest.py) and the reference tables; judges
--- nothing (that is int_results_validated).
+-- nothing (that is int_results_validated). The raw line stays in landed_rows: only a rejected
+-- row needs it (pipeline/validate.py joins it back for rejected_rows).
 with parsed as (
     select
         l.*,
@@ -21,7 +22,6 @@ select
     n.source_id,
     n.file_id,
     n.line_no,
-    n.raw_text,
     n.row_fault,
     n.person_key,
     nullif(trim(n.specimen_id), '') as specimen_id,
