@@ -189,16 +189,7 @@ def pinned_by_linear_programming(out: pl.DataFrame, table, column: str) -> list[
         if coefficient.any():
             a_eq.append(coefficient)
             b_eq.append(rhs)
-    pinned = []
-    for j, row in enumerate(unknown):
-        c = np.zeros(len(unknown))
-        c[j] = 1.0
-        low = linprog(c, A_eq=a_eq or None, b_eq=b_eq or None, bounds=bounds, method="highs")
-        high = linprog(-c, A_eq=a_eq or None, b_eq=b_eq or None, bounds=bounds, method="highs")
-        assert low.status == 0 and high.status in (0, 3), (low.message, high.message)  # 3: unbounded above
-        if high.status == 0 and -high.fun - low.fun < 0.5:
-            pinned.append(row)
-    return pinned
+    return _pinned_by_linprog(unknown, a_eq, b_eq, bounds)
 
 
 def table_frame(table, cells: dict[tuple, tuple[int, ...]]) -> pl.DataFrame:
@@ -823,16 +814,7 @@ def pinned_with_rates(frame: pl.DataFrame, out: pl.DataFrame) -> list[int]:
         if coefficient.any():
             a_eq.append(coefficient)
             b_eq.append(rhs)
-    pinned = []
-    for j, row in enumerate(unknown):
-        c = np.zeros(len(unknown))
-        c[j] = 1.0
-        low = linprog(c, A_eq=a_eq or None, b_eq=b_eq or None, bounds=bounds, method="highs")
-        high = linprog(-c, A_eq=a_eq or None, b_eq=b_eq or None, bounds=bounds, method="highs")
-        assert low.status == 0 and high.status in (0, 3), (low.message, high.message)
-        if high.status == 0 and -high.fun - low.fun < 0.5:
-            pinned.append(row)
-    return pinned
+    return _pinned_by_linprog(unknown, a_eq, b_eq, bounds)
 
 
 @settings(max_examples=40, deadline=None, database=None)
@@ -897,3 +879,18 @@ def test_a_rate_from_fewer_than_20_persons_is_flagged_not_published():
     out = suppress(frame, PREVALENCE, DisclosureSettings(standardised_min_events=15))
     flag = out.filter((pl.col("district_code") == "WF01") & (pl.col("sex") == "ALL"))["ckd_per_1000_standardised_flag"]
     assert flag.item() in ("", "suppressed")
+
+
+def _pinned_by_linprog(unknown: list, a_eq: list, b_eq: list, bounds: list) -> list:
+    """The unknown cells whose least and greatest feasible values coincide (scipy.optimize.linprog,
+    HiGHS): those a reader can work out exactly."""
+    pinned = []
+    for j, row in enumerate(unknown):
+        c = np.zeros(len(unknown))
+        c[j] = 1.0
+        low = linprog(c, A_eq=a_eq or None, b_eq=b_eq or None, bounds=bounds, method="highs")
+        high = linprog(-c, A_eq=a_eq or None, b_eq=b_eq or None, bounds=bounds, method="highs")
+        assert low.status == 0 and high.status in (0, 3), (low.message, high.message)  # 3: unbounded above
+        if high.status == 0 and -high.fun - low.fun < 0.5:
+            pinned.append(row)
+    return pinned
