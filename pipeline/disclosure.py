@@ -112,7 +112,7 @@ from scipy.optimize import linprog
 
 from pipeline.periods import Period
 from pipeline.settings import DisclosureSettings
-from pipeline.warehouse import fetch_frame
+from pipeline.warehouse import fetch_frame, with_frame
 
 TOTAL = "ALL"
 PRIMARY = "primary"
@@ -927,23 +927,22 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
         disclosed = _disclose(frame, table, rules, done)
         done[table.name] = disclosed
         published = disclosed.frame
-        con.register("_pub", published.to_arrow())
         if not _exists(con, table.name):
-            con.execute(f"create table published.{table.name} as select * from _pub")
+            with_frame(con, published, f"create table published.{table.name} as select * from _frame")
         else:
-            _add_missing_columns(con, table.name)
+            _add_missing_columns(con, table.name, published)
             con.execute(f"delete from published.{table.name} where period = ?", [period.label])
-            con.execute(f"insert into published.{table.name} by name select * from _pub")
-        con.unregister("_pub")
+            with_frame(con, published, f"insert into published.{table.name} by name select * from _frame")
         counts[table.name] = published.height
     return counts
 
 
-def _add_missing_columns(con: duckdb.DuckDBPyConnection, name: str) -> None:
+def _add_missing_columns(con: duckdb.DuckDBPyConnection, name: str, frame: pl.DataFrame) -> None:
     """A warehouse made before a column was added gets it (empty for the earlier periods)."""
     have = {c for (c,) in con.execute(
         "select column_name from duckdb_columns() where schema_name = 'published' and table_name = ?", [name]
     ).fetchall()}  # fmt: skip
-    for column, dtype in con.execute("select column_name, column_type from (describe _pub)").fetchall():
+    wanted = con.from_arrow(frame.head(0).to_arrow())
+    for column, dtype in zip(wanted.columns, wanted.types):
         if column not in have:
             con.execute(f'alter table published.{name} add column "{column}" {dtype}')

@@ -33,6 +33,7 @@ import polars as pl
 from pipeline import identifiers
 from pipeline.pseudonymise import SHARED_DOMAIN, PersonKeyCache, PseudonymKey, add_person_keys
 from pipeline.settings import STANDARD_FIELDS, STANDARD_REQUIRED, Settings, SourceConfig
+from pipeline.warehouse import with_frame
 
 #: Columns of the landed frame, all text except where typed.
 LANDED_COLUMNS = [
@@ -807,11 +808,7 @@ def empty_landed() -> pl.DataFrame:
 
 
 def _create_landed_table(con: duckdb.DuckDBPyConnection) -> None:
-    con.register("landed_frame", empty_landed().to_arrow())
-    try:
-        con.execute("create or replace temp table landed_rows as select * from landed_frame")
-    finally:
-        con.unregister("landed_frame")
+    with_frame(con, empty_landed(), "create or replace temp table landed_rows as select * from _frame")
 
 
 def _insert_landed(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> None:
@@ -819,8 +816,4 @@ def _insert_landed(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> None:
     expected = empty_landed().schema
     if frame.schema != expected:
         raise AssertionError(f"landed columns {dict(frame.schema)} differ from {dict(expected)}")
-    con.register("landed_frame", frame.to_arrow())
-    try:
-        con.execute("insert into landed_rows select * from landed_frame")
-    finally:
-        con.unregister("landed_frame")
+    with_frame(con, frame, "insert into landed_rows select * from _frame")

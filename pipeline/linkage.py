@@ -19,7 +19,7 @@ from pipeline.periods import Period
 from pipeline.settings import Settings
 from pipeline.measures import MEASURED_ANALYTES, measure_frame
 from pipeline.warehouse import (build_table, fetch_frame, replace_period_frame, replace_period_rows,
-                                drop_relation, sql_path, swap_period_rows)
+                                drop_relation, sql_path, swap_period_rows, with_frame)
 
 
 @dataclass
@@ -69,9 +69,8 @@ def event_params(settings: Settings, period: Period) -> dict:
 
 
 def write_trajectory_rules(con: duckdb.DuckDBPyConnection, settings: Settings) -> None:
-    con.register("_rules", trajectory_rules(settings).to_arrow())
-    con.execute("create or replace table reference.trajectory_rules as select * from _rules")
-    con.unregister("_rules")
+    with_frame(con, trajectory_rules(settings),
+               "create or replace table reference.trajectory_rules as select * from _frame")
 
 
 def build_known_at_period_end(con: duckdb.DuckDBPyConnection, period: Period) -> bool:
@@ -126,10 +125,9 @@ def build_person_tables(con: duckdb.DuckDBPyConnection, settings: Settings, peri
             con, "select * from int_results_known where list_contains($analytes, analyte)",
             {"analytes": list(MEASURED_ANALYTES)},
         )
-        con.register("_known", measure_frame(results, settings).to_arrow())
+        known = measure_frame(results, settings)
         del results
-        con.execute("create table int_measures_known as select * from _known")
-        con.unregister("_known")
+        with_frame(con, known, "create table int_measures_known as select * from _frame")
     if snapshot is not None:
         return carry_over(con, settings, period, snapshot)
     build_table(con, "int_daily_values_averaged", params=params)
@@ -282,15 +280,11 @@ def carry_over(con: duckdb.DuckDBPyConnection, settings: Settings, period: Perio
 
 
 def _insert_arrow(con: duckdb.DuckDBPyConnection, table: str, rows: object) -> None:
-    con.register("_rows", rows)
-    con.execute(f"insert into {table} by name select * from _rows")
-    con.unregister("_rows")
+    with_frame(con, rows, f"insert into {table} by name select * from _frame")
 
 
 def _copy_into(con: duckdb.DuckDBPyConnection, table: str, rows: object) -> None:
-    con.register("_rows", rows)
-    con.execute(f"create table {table} as select * from _rows")
-    con.unregister("_rows")
+    with_frame(con, rows, f"create table {table} as select * from _frame")
 
 
 def record_snapshot(con: duckdb.DuckDBPyConnection, period: Period, fingerprint: str, recomputed: int) -> None:
@@ -324,10 +318,8 @@ def build_person_tables_sharded(con: duckdb.DuckDBPyConnection, settings: Settin
         if table in ("kidney_events", "person_status"):
             replace_period_frame(con, table, period.label, frame)
         else:
-            con.register("_shards", frame.to_arrow())
             drop_relation(con, table)
-            con.execute(f"create table {table} as select * from _shards")
-            con.unregister("_shards")
+            with_frame(con, frame, f"create table {table} as select * from _frame")
     shutil.rmtree(work, ignore_errors=True)
     return len(done)
 

@@ -15,7 +15,7 @@ import polars as pl
 
 from pipeline import equations as eq
 from pipeline.settings import MeasureSettings, Settings
-from pipeline.warehouse import fetch_frame
+from pipeline.warehouse import fetch_frame, with_frame
 
 EQUATIONS = {
     "ckd_epi_2021_creatinine": lambda scr, age, female, height: eq.ckd_epi_2021_creatinine(scr, age, female),
@@ -318,15 +318,14 @@ def measure_stage(con: duckdb.DuckDBPyConnection, settings: Settings, touched_on
         )  # fmt: skip
         frame = measure_frame(results, settings)
         del results
-        con.register("_measures", frame.to_arrow())
         exists = con.execute(
             "select count(*) from duckdb_tables() where schema_name = 'main' and table_name = 'kidney_measures'"
         ).fetchall()[0][0]
         if exists:
-            con.execute("insert into kidney_measures select * from _measures")
+            with_frame(con, frame, "insert into kidney_measures select * from _frame")
         else:
-            con.execute("create table kidney_measures as select * from _measures")
-        con.unregister("_measures")
+            with_frame(con, frame, "create table kidney_measures as select * from _frame")
+        del frame
     counts = con.execute(
         """
         select count(*) filter (where analyte in ('creatinine', 'cystatin_c')),

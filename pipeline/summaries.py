@@ -103,13 +103,10 @@ def _add_missing_columns(con: duckdb.DuckDBPyConnection, name: str, frame: pl.Da
     ).fetchall()}  # fmt: skip
     if not have:
         return
-    con.register("_columns", frame.head(0).to_arrow())
-    try:
-        for column, dtype in con.execute("select column_name, column_type from (describe _columns)").fetchall():
-            if column not in have:
-                con.execute(f'alter table {name} add column "{column}" {dtype}')
-    finally:
-        con.unregister("_columns")
+    wanted = con.from_arrow(frame.head(0).to_arrow())
+    for column, dtype in zip(wanted.columns, wanted.types):
+        if column not in have:
+            con.execute(f'alter table {name} add column "{column}" {dtype}')
 
 
 def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> dict[str, int]:

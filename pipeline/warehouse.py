@@ -139,9 +139,7 @@ def load_reference_tables(con: duckdb.DuckDBPyConnection, settings: Settings) ->
         ),
     }  # fmt: skip
     for name, frame in frames.items():
-        con.register("_ref", frame.to_arrow())
-        con.execute(f"create or replace table reference.{name} as select * from _ref")
-        con.unregister("_ref")
+        with_frame(con, frame, f"create or replace table reference.{name} as select * from _frame")
 
 
 def _gfr_categories() -> pl.DataFrame:
@@ -177,6 +175,19 @@ def relation_kind(con: duckdb.DuckDBPyConnection, name: str) -> str | None:
         {"n": name},
     ).fetchall()
     return found[0][0] if found else None
+
+
+
+def with_frame(con: duckdb.DuckDBPyConnection, frame: Any, sql: str) -> None:
+    """Run one statement ``sql`` in which ``frame`` (a polars frame or an Arrow table) is the
+    table ``_frame``: ``create ... as select * from _frame``, ``insert into t select ... from _frame``.
+
+    Through a relation's ``query``, not ``register()``: inside a transaction (a run is one) a
+    registered frame stays in memory until the transaction ends, even after ``unregister``.
+    Measured with DuckDB 2.0.1: 60 inserts of 170k rows through ``register`` grew the process by
+    2.3 GB, through a relation by nothing (tests/unit/test_warehouse_frames.py)."""
+    table = frame.to_arrow() if isinstance(frame, pl.DataFrame) else frame
+    con.from_arrow(table).query("_frame", sql)
 
 
 def drop_relation(con: duckdb.DuckDBPyConnection, name: str) -> None:
@@ -229,9 +240,7 @@ def replace_period_frame(con: duckdb.DuckDBPyConnection, name: str, period: str,
     """Replace this period's rows of a per-period table by ``frame``, keeping the other periods."""
     if not _NAME.match(name):
         raise ValueError(f"not a plain table name: {name!r}")
-    con.register("_period_frame", frame.to_arrow())
-    con.execute(f"create or replace temp table {name}_new as select * from _period_frame")
-    con.unregister("_period_frame")
+    with_frame(con, frame, f"create or replace temp table {name}_new as select * from _frame")
     return swap_period_rows(con, name, period)
 
 

@@ -18,65 +18,111 @@
 --     collection date, comparator and canonical value (to 4 decimals) as an accepted result of
 --     ANOTHER source is a duplicate; the one reported first is kept (then the source id, file
 --     and line decide), so the counts do not depend on which lab's file arrived first.
-with copies as (
+-- How: each rule ranks rows within a group (same copy, same result, same result from several
+-- sources), but almost every group has one row. A hash of each group's columns is counted first
+-- and only the rows whose hash occurs more than once are ranked, by the exact columns read back
+-- from versions_in_scope; the others are first in their group by definition. Two different
+-- groups that share a hash are still ranked apart, so a collision costs time, never a wrong
+-- outcome. The CTEs carry hashes, not the text columns, so that what DuckDB keeps is narrow.
+with keyed as not materialized (
     select
         v.file_id,
         v.line_no,
         v.status,
         v.reported_date,
-        coalesce(
-            v.source_id || '|s|' || v.specimen_id || '|' || v.analyte,
-            v.source_id || '|p|' || v.person_key || '|' || v.collected_date::varchar || '|' || v.analyte
-        ) as version_key,
-        row_number() over (
-            partition by v.source_id, v.person_key, v.specimen_id, v.analyte, v.collected_date,
-                         v.status, v.value_text, v.reported_unit
-            order by v.file_id, v.line_no
-        ) as copy_number
+        hash(v.source_id, v.person_key, v.specimen_id, v.analyte, v.collected_date,
+             v.status, v.value_text, v.reported_unit) as copy_hash,
+        -- one result: the same source + specimen + analyte; without a specimen id, the same
+        -- source + person + collection date + analyte
+        hash(v.source_id, v.analyte, v.specimen_id,
+             case when v.specimen_id is null then v.person_key end,
+             case when v.specimen_id is null then v.collected_date end) as result_hash,
+        case when v.value is not null
+             then hash(v.person_key, v.analyte, v.collected_date, v.comparator, round(v.value, 4))
+        end as value_hash
     from versions_in_scope as v
     where v.reported_date <= $as_of
 ),
-versions as (
+repeated_copy as (
+    select copy_hash from keyed group by copy_hash having count(*) > 1
+),
+copies as (
+    select k.*, 1 as copy_number
+    from keyed as k
+    anti join repeated_copy as r on r.copy_hash = k.copy_hash
+    union all
     select
-        c.*,
+        k.*,
         row_number() over (
-            partition by c.version_key
-            order by c.reported_date desc, c.file_id desc, c.line_no desc
+            partition by v.source_id, v.person_key, v.specimen_id, v.analyte, v.collected_date,
+                         v.status, v.value_text, v.reported_unit
+            order by k.file_id, k.line_no
+        ) as copy_number
+    from keyed as k
+    semi join repeated_copy as r on r.copy_hash = k.copy_hash
+    join versions_in_scope as v on v.file_id = k.file_id and v.line_no = k.line_no
+),
+originals as not materialized (
+    select * from copies where copy_number = 1
+),
+repeated_result as (
+    select result_hash from originals group by result_hash having count(*) > 1
+),
+versions as (
+    select o.*, 1 as recency
+    from originals as o
+    anti join repeated_result as r on r.result_hash = o.result_hash
+    union all
+    select
+        o.*,
+        row_number() over (
+            partition by v.source_id, v.analyte, v.specimen_id,
+                         case when v.specimen_id is null then v.person_key end,
+                         case when v.specimen_id is null then v.collected_date end
+            order by o.reported_date desc, o.file_id desc, o.line_no desc
         ) as recency
-    from copies as c
-    where c.copy_number = 1
+    from originals as o
+    semi join repeated_result as r on r.result_hash = o.result_hash
+    join versions_in_scope as v on v.file_id = o.file_id and v.line_no = o.line_no
 ),
 within_source as (
-    select
-        c.file_id,
-        c.line_no,
-        case
-            when c.copy_number > 1 then 'duplicate'
-            when v.recency > 1 then 'superseded'
-            when c.status in ('final', 'amended', 'corrected') then 'accepted'
-            when c.status in ('cancelled', 'entered-in-error') then 'withdrawn'
-            when c.status = 'preliminary' then 'pending'
-        end as outcome
+    select c.file_id, c.line_no, 'duplicate' as outcome
     from copies as c
-    left join versions as v on v.file_id = c.file_id and v.line_no = c.line_no
+    where c.copy_number > 1
+    union all
+    select
+        v.file_id,
+        v.line_no,
+        case
+            when v.recency > 1 then 'superseded'
+            when v.status in ('final', 'amended', 'corrected') then 'accepted'
+            when v.status in ('cancelled', 'entered-in-error') then 'withdrawn'
+            when v.status = 'preliminary' then 'pending'
+        end as outcome
+    from versions as v
+),
+accepted_values as not materialized (
+    select v.file_id, v.line_no, v.value_hash
+    from versions as v
+    where v.recency = 1 and v.status in ('final', 'amended', 'corrected') and v.value_hash is not null
+),
+shared_value as (
+    -- the same person, analyte, day, comparator and value accepted more than once (from one
+    -- source these are different specimens, and the window below leaves them alone)
+    select value_hash from accepted_values group by value_hash having count(*) > 1
 ),
 across_sources as (
     select
-        r.file_id,
-        r.line_no,
-        r.source_id,
-        first_value(r.source_id) over same_result as kept_source
-    from (
-        select w.file_id, w.line_no, x.source_id, x.person_key, x.analyte, x.collected_date,
-               x.comparator, round(x.value, 4) as value_key, x.reported_date
-        from within_source as w
-        join versions_in_scope as x on x.file_id = w.file_id and x.line_no = w.line_no
-        where w.outcome = 'accepted' and x.value is not null
-    ) as r
-    window same_result as (
-        partition by r.person_key, r.analyte, r.collected_date, r.comparator, r.value_key
-        order by r.reported_date, r.source_id, r.file_id, r.line_no
-    )
+        a.file_id,
+        a.line_no,
+        x.source_id,
+        first_value(x.source_id) over (
+            partition by x.person_key, x.analyte, x.collected_date, x.comparator, round(x.value, 4)
+            order by x.reported_date, x.source_id, x.file_id, x.line_no
+        ) as kept_source
+    from accepted_values as a
+    semi join shared_value as s on s.value_hash = a.value_hash
+    join versions_in_scope as x on x.file_id = a.file_id and x.line_no = a.line_no
 )
 select
     w.file_id,

@@ -67,7 +67,12 @@ judged as (
     left join alternative as alt on alt.file_id = c.file_id and alt.line_no = c.line_no
 )
 select
-    j.*,
+    -- the columns of a well-formed row (result_versions without its outcome), then the verdict
+    j.source_id, j.file_id, j.line_no, j.person_key, j.specimen_id, j.collected_date, j.reported_date,
+    j.reported_date_basis, j.analyte, j.loinc, j.status, j.value_text, j.comparator, j.reported_value,
+    j.reported_unit, j.value, j.unit, j.is_fasting, j.height_cm, j.sex, j.birth_year, j.age_years,
+    j.district_code,
+    j.reason_code,
     case j.reason_code
         when 'wrong_field_count' then 'row has ' || split_part(j.row_fault, ':', 2)
         when 'malformed_record' then 'record is not a readable Observation: ' || split_part(j.row_fault, ':', 2)

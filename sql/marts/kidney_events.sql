@@ -31,8 +31,9 @@ baseline as (
     where d.measure = 'egfr' and d.day <= f.first_day + cast($baseline_window_days as integer)
     group by d.person_key, f.first_day
 ),
-in_scope as (
-    -- the values each rule looks at (decline rules only look after the baseline window)
+in_scope as not materialized (
+    -- the values each rule looks at (decline rules only look after the baseline window);
+    -- not materialized: joined again below rather than written out (rules x daily values rows)
     select r.rule_id, r.event_type, r.threshold, r.min_span_days,
            d.person_key, d.day, d.value, b.baseline_egfr,
            case r.comparison

@@ -1,17 +1,21 @@
 -- person_status: one row per person with any accepted result as known at the period end
 -- ($period_end): demographics from the latest result, latest eGFR and ACR with their KDIGO
 -- categories, confirmed CKD, lab-evidenced diabetes and the KDIGO risk category.
-with known as (
+with known as not materialized (
+    -- not materialized: read twice (demographics, diabetes) rather than written out
     select * from int_results_known
 ),
 demographics as (
-    select person_key,
-           arg_max(sex, (collected_date, reported_date, source_id, file_id, line_no)) as sex,
-           arg_max(birth_year, (collected_date, reported_date, source_id, file_id, line_no)) as birth_year,
-           arg_max(district_code, (collected_date, reported_date, source_id, file_id, line_no)) as district_code,
-           max(collected_date) as last_test_date
-    from known
-    group by person_key
+    -- from the person's latest result (one arg_max of the three, all from the same row)
+    select person_key, latest.sex, latest.birth_year, latest.district_code, last_test_date
+    from (
+        select person_key,
+               arg_max({'sex': sex, 'birth_year': birth_year, 'district_code': district_code},
+                       (collected_date, reported_date, source_id, file_id, line_no)) as latest,
+               max(collected_date) as last_test_date
+        from known
+        group by person_key
+    )
 ),
 latest_egfr as (
     select person_key,

@@ -409,8 +409,8 @@ def test_counts_below_the_band_are_published_but_never_hide_a_cell():
 def test_disclose_stage_adds_new_columns_to_an_older_published_table():
     con = duckdb.connect()
     frame = one_column(COVERAGE, {("WF01",): 7, ("WF02",): 25, ("WF03",): 19})
-    con.register("_frame", frame.to_arrow())
-    con.execute("create table district_screening_coverage as select * from _frame")
+    con.register("_older", frame.to_arrow())
+    con.execute("create table district_screening_coverage as select * from _older")
     con.register("_empty", one_column(PREVALENCE, {("WF01", "F", "0-4"): 4}).clear().to_arrow())
     con.execute("create table district_ckd_prevalence as select * from _empty")  # an empty period
     for table in PUBLISHED_TABLES[2:]:  # the other published tables: empty too
@@ -419,7 +419,7 @@ def test_disclose_stage_adds_new_columns_to_an_older_published_table():
         con.execute(f"create table {table.name} as select * from _none")
     con.execute("create schema published")
     con.execute("create table published.district_screening_coverage as "
-                "select * replace ('2025-05' as period), 0::integer as n_suppressed from _frame")  # fmt: skip
+                "select * replace ('2025-05' as period), 0::integer as n_suppressed from _older")  # fmt: skip
     disclose_stage(con, RULES, Period.parse("2025-06"))
     got = con.execute("select period, district_code, with_acr, suppression from published.district_screening_coverage "
                       "order by period, district_code").fetchall()  # fmt: skip
