@@ -288,9 +288,14 @@ def measure_frame(results: pl.DataFrame, settings: Settings) -> pl.DataFrame:
 CHUNK_RESULTS = 600_000
 
 
-def person_chunk(chunks: int) -> str:
-    """SQL giving a person's chunk (the person key is HMAC-SHA256 hex, uniformly spread)."""
-    return f"(('0x' || substr(person_key, 1, 8))::ubigint % {int(chunks)})"
+def person_range(chunk: int, chunks: int) -> tuple[str, str]:
+    """The person keys of one chunk: ``lower <= person_key < upper``. A person key is the hex of
+    an HMAC-SHA256 (pipeline/pseudonymise.py), spread uniformly, so equal ranges of its first
+    eight hex digits hold about equal numbers of persons; comparing text is about four times
+    cheaper per row than hashing it again (measured at 10M results)."""
+    lower = f"{(chunk << 32) // chunks:08x}"
+    upper = f"{((chunk + 1) << 32) // chunks:08x}" if chunk + 1 < chunks else "g"  # after every hex digit
+    return lower, upper
 
 
 def measure_stage(con: duckdb.DuckDBPyConnection, settings: Settings, touched_only: bool = False) -> MeasureSummary:
@@ -311,10 +316,11 @@ def measure_stage(con: duckdb.DuckDBPyConnection, settings: Settings, touched_on
         total = con.execute("select count(*) from lab_results where list_contains($a, analyte)", {"a": analytes}).fetchall()[0][0]
         chunks = max(1, -(-total // CHUNK_RESULTS))
     for chunk in range(chunks):
+        lower, upper = person_range(chunk, chunks)
         results = fetch_frame(
             con, f"select * from lab_results where list_contains($analytes, analyte) and {where} "
-                 f"and {person_chunk(chunks)} = $chunk",
-            {"analytes": analytes, "chunk": chunk},
+                 "and person_key >= $lower and person_key < $upper",
+            {"analytes": analytes, "lower": lower, "upper": upper},
         )  # fmt: skip
         frame = measure_frame(results, settings)
         del results

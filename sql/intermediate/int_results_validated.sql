@@ -1,9 +1,7 @@
 -- int_results_validated: one row per landed row of this run, with its value in the canonical
 -- unit and the first rule it breaks (reason_code null = well-formed). The order of the CASE is
 -- the order in which rules are checked; DEVELOPERS.md lists every code.
-with converted as not materialized (
-    -- not materialized: written out whole it cost more than computing it twice (the second
-    -- use, alternative, keeps only the few out-of-range rows)
+with converted as (
     select
         s.*,
         f.factor is not null as unit_allowed,
@@ -13,6 +11,7 @@ with converted as not materialized (
         r.max_value,
         k.unit is not null as unit_known,
         a.allowed_units,
+        o.other_units,
         year(s.collected_date) - s.birth_year as age_years
     from stg_landed_rows as s
     left join reference.unit_factors as f on f.analyte = s.analyte and f.unit = s.reported_unit
@@ -23,23 +22,32 @@ with converted as not materialized (
     ) as a on a.analyte = s.analyte
     left join reference.ranges as r on r.analyte = s.analyte
     left join (select distinct unit from reference.unit_factors) as k on k.unit = s.reported_unit
+    left join (
+        -- the other units of the same analyte, for a value out of range in the unit it came in
+        select u.analyte, u.unit,
+               list({'unit': o.unit, 'factor': o.factor, 'offset': o."offset"} order by o.unit) as other_units
+        from reference.unit_factors as u
+        join reference.unit_factors as o on o.analyte = u.analyte and o.unit <> u.unit
+        group by u.analyte, u.unit
+    ) as o on o.analyte = s.analyte and o.unit = s.reported_unit
 ),
 alternative as (
     -- the value would be plausible in another unit of the same analyte: most likely mislabelled
-    select c.file_id, c.line_no, min(o.unit) as other_unit,
-           min(c.reported_value * o.factor + o."offset") as other_value
+    -- (worked out only for the few rows out of range; the first such unit by name)
+    select
+        c.*,
+        list_filter(
+            case when c.unit_allowed and not (c.value between c.min_value and c.max_value)
+                 then c.other_units end,
+            lambda u: c.reported_value * u.factor + u."offset" between c.min_value and c.max_value
+        ) as plausible_units
     from converted as c
-    join reference.unit_factors as o on o.analyte = c.analyte and o.unit <> c.reported_unit
-    where c.unit_allowed
-      and not (c.value between c.min_value and c.max_value)
-      and c.reported_value * o.factor + o."offset" between c.min_value and c.max_value
-    group by c.file_id, c.line_no
 ),
 judged as (
     select
         c.*,
-        alt.other_unit,
-        alt.other_value,
+        list_min(list_transform(c.plausible_units, lambda u: u.unit)) as other_unit,
+        list_min(list_transform(c.plausible_units, lambda u: c.reported_value * u.factor + u."offset")) as other_value,
         case
             when c.row_fault is not null then split_part(c.row_fault, ':', 1)
             when c.person_key is null then 'missing_person'
@@ -59,12 +67,11 @@ judged as (
             when c.unit_text is null or trim(c.unit_text) = '' then 'unit_missing'
             when c.reported_unit is null or not c.unit_known then 'unit_unknown'
             when not c.unit_allowed then 'unit_incompatible'
-            when not (c.value between c.min_value and c.max_value) and alt.other_unit is not null
+            when not (c.value between c.min_value and c.max_value) and len(c.plausible_units) > 0
                 then 'implausible_for_unit'
             when not (c.value between c.min_value and c.max_value) then 'out_of_range'
         end as reason_code
-    from converted as c
-    left join alternative as alt on alt.file_id = c.file_id and alt.line_no = c.line_no
+    from alternative as c
 )
 select
     -- the columns of a well-formed row (result_versions without its outcome), then the verdict

@@ -121,3 +121,40 @@ def test_a_pending_decline_is_confirmed_by_the_next_month(month_by_month):
     # columns: period, person_key, event_type, rule_id, threshold, event_status, ...
     july_decline = [e for e in july["kidney_events"] if e[3] == "sustained_decline_40"]
     assert [e[5] for e in july_decline] == ["confirmed"]
+
+
+def test_measures_in_person_chunks_equal_one_pass(tmp_path, monkeypatch):
+    # a full rebuild measures person-key ranges one at a time (pipeline.measures.person_range);
+    # with chunks of 10 results, these 42 persons span a dozen chunks and nothing may differ
+    from pipeline import measures
+    from pipeline.warehouse import connect
+    from tests.conftest import make_small_config
+
+    config = make_small_config(tmp_path / "config")
+    inbox = write_inbox(tmp_path, FILES)
+    with run_month(config, inbox, tmp_path / "out", period="2025-07") as con:
+        once = snapshot(con, "2025-07")["kidney_measures"]
+    monkeypatch.setattr(measures, "CHUNK_RESULTS", 10)
+    con = connect(tmp_path / "out" / "surveillance.duckdb")
+    try:
+        from pipeline.settings import load_settings
+
+        con.execute("begin")
+        summary = measures.measure_stage(con, load_settings(config))
+        chunked = snapshot(con, "2025-07")["kidney_measures"]
+        con.execute("rollback")
+    finally:
+        con.close()
+    assert summary.egfr_rows == len(once) and chunked == once
+
+
+def test_person_ranges_cover_every_key_once():
+    import hashlib
+
+    from pipeline.measures import person_range
+
+    keys = [hashlib.sha256(str(i).encode()).hexdigest()[:32] for i in range(2000)] + ["0" * 32, "f" * 32]
+    for chunks in (1, 3, 14, 100):
+        ranges = [person_range(c, chunks) for c in range(chunks)]
+        for key in keys:
+            assert sum(lower <= key < upper for lower, upper in ranges) == 1
