@@ -112,7 +112,7 @@ from scipy.optimize import linprog
 
 from pipeline.periods import Period
 from pipeline.settings import DisclosureSettings
-from pipeline.warehouse import fetch_frame, with_frame
+from pipeline.warehouse import add_missing_columns, fetch_frame, with_frame
 
 TOTAL = "ALL"
 PRIMARY = "primary"
@@ -930,19 +930,8 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
         if not _exists(con, table.name):
             with_frame(con, published, f"create table published.{table.name} as select * from _frame")
         else:
-            _add_missing_columns(con, table.name, published)
+            add_missing_columns(con, "published", table.name, published)
             con.execute(f"delete from published.{table.name} where period = ?", [period.label])
             with_frame(con, published, f"insert into published.{table.name} by name select * from _frame")
         counts[table.name] = published.height
     return counts
-
-
-def _add_missing_columns(con: duckdb.DuckDBPyConnection, name: str, frame: pl.DataFrame) -> None:
-    """A warehouse made before a column was added gets it (empty for the earlier periods)."""
-    have = {c for (c,) in con.execute(
-        "select column_name from duckdb_columns() where schema_name = 'published' and table_name = ?", [name]
-    ).fetchall()}  # fmt: skip
-    wanted = con.from_arrow(frame.head(0).to_arrow())
-    for column, dtype in zip(wanted.columns, wanted.types):
-        if column not in have:
-            con.execute(f'alter table published.{name} add column "{column}" {dtype}')

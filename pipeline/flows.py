@@ -23,7 +23,7 @@ from prefect import flow, task  # noqa: E402
 
 from pipeline.disclosure import disclose_stage  # noqa: E402
 from pipeline.faults import maybe_fail  # noqa: E402
-from pipeline.ingest import land_inbox, scan_inbox  # noqa: E402
+from pipeline.ingest import InboxFile, land_inbox, scan_inbox  # noqa: E402
 from pipeline.linkage import link_stage  # noqa: E402
 from pipeline.manifest import build_manifest, input_files, record_run  # noqa: E402
 from pipeline.measures import measure_stage  # noqa: E402
@@ -59,6 +59,7 @@ class RunContext:
     manifest: dict[str, Any] = field(default_factory=dict)
     batch_checks: dict[str, dict[str, Any]] = field(default_factory=dict)
     touched_only: bool = False  # the validate stage settled only the versions new rows touch
+    inbox_items: list[InboxFile] | None = None  # the scan stage's listing, read by the ingest stage
 
 
 _RUNS: dict[str, RunContext] = {}
@@ -80,6 +81,7 @@ def _stage(run_id: str, name: str, work: Callable[[RunContext], dict[str, Any]])
 def scan_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         items = scan_inbox(ctx.con, ctx.settings, ctx.inbox)
+        ctx.inbox_items = items  # hashed once: the ingest stage reads what was scanned
         return {"files": len(items), "new": sum(i.status != "already_ingested" for i in items)}
 
     return _stage(run_id, "scan", work)
@@ -89,7 +91,8 @@ def scan_task(run_id: str) -> dict[str, Any]:
 def ingest_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         load_reference_tables(ctx.con, ctx.settings)
-        s = land_inbox(ctx.con, ctx.settings, ctx.inbox, ctx.key, ctx.period.label, dt.date.today())
+        s = land_inbox(ctx.con, ctx.settings, ctx.inbox, ctx.key, ctx.period.label, dt.date.today(),
+                       items=ctx.inbox_items)
         return {"new files": s.files_new, "skipped": s.files_skipped, "held back": s.files_held_back,
                 "rows": s.rows_landed, "held_back_files": s.held_back,
                 "allowed_identifiers": s.allowed_identifiers}  # fmt: skip

@@ -285,7 +285,7 @@ def measure_frame(results: pl.DataFrame, settings: Settings) -> pl.DataFrame:
 
 #: Results measured per pass: the measure step holds one pass in memory (about 1 GB per million
 #: results with the polars frames), so a large warehouse is measured in person-hash chunks.
-CHUNK_RESULTS = 600_000
+CHUNK_RESULTS = 400_000
 
 
 def person_range(chunk: int, chunks: int) -> tuple[str, str]:

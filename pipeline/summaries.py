@@ -8,7 +8,8 @@ import polars as pl
 from pipeline.periods import Period
 from pipeline.settings import Settings
 from pipeline.statistics import collapse_weights, standardise_frame, with_wilson_interval
-from pipeline.warehouse import build_table, drop_relation, fetch_frame, replace_period_frame, replace_period_rows
+from pipeline.warehouse import (add_missing_columns, build_table, drop_relation, fetch_frame,
+                                replace_period_frame, replace_period_rows)
 
 #: Internal summary tables, in the order they are built (each is sql/reports/<name>.sql).
 SUMMARY_TABLES = (
@@ -96,19 +97,6 @@ def add_standardised_rates(frame: pl.DataFrame, settings: Settings) -> pl.DataFr
     return out.with_columns(group.alias(column))  # last, so that older warehouses can add it
 
 
-def _add_missing_columns(con: duckdb.DuckDBPyConnection, name: str, frame: pl.DataFrame) -> None:
-    """A warehouse made before a column was added gets it (empty for the earlier periods)."""
-    have = {c for (c,) in con.execute(
-        "select column_name from duckdb_columns() where schema_name = 'main' and table_name = ?", [name]
-    ).fetchall()}  # fmt: skip
-    if not have:
-        return
-    wanted = con.from_arrow(frame.head(0).to_arrow())
-    for column, dtype in zip(wanted.columns, wanted.types):
-        if column not in have:
-            con.execute(f'alter table {name} add column "{column}" {dtype}')
-
-
 def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> dict[str, int]:
     params = {
         "period": period.label,
@@ -129,7 +117,7 @@ def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: 
         con.execute(f"drop table staging.{name}_sql")
         if name == "district_ckd_prevalence":
             frame = add_standardised_rates(frame, settings)
-        _add_missing_columns(con, name, frame)
+        add_missing_columns(con, "main", name, frame)
         counts[name] = replace_period_frame(con, name, period.label, frame)
     for name in RETIRED_TABLES:
         drop_relation(con, name)

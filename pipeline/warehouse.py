@@ -190,6 +190,22 @@ def with_frame(con: duckdb.DuckDBPyConnection, frame: Any, sql: str) -> None:
     con.from_arrow(table).query("_frame", sql)
 
 
+def add_missing_columns(con: duckdb.DuckDBPyConnection, schema: str, name: str, frame: pl.DataFrame) -> None:
+    """A table written by an earlier version gets the columns of ``frame`` it lacks (empty for
+    its earlier rows); a table that does not exist yet is left alone."""
+    if not (_NAME.match(schema) and _NAME.match(name)):
+        raise ValueError(f"not a plain table name: {schema}.{name}")
+    have = {c for (c,) in con.execute(
+        "select column_name from duckdb_columns() where schema_name = ? and table_name = ?", [schema, name]
+    ).fetchall()}  # fmt: skip
+    if not have:
+        return
+    wanted = con.from_arrow(frame.head(0).to_arrow())
+    for column, dtype in zip(wanted.columns, wanted.types):
+        if column not in have:
+            con.execute(f'alter table {schema}.{name} add column "{column}" {dtype}')
+
+
 def drop_relation(con: duckdb.DuckDBPyConnection, name: str) -> None:
     """Drop the table or view ``name`` of schema main, if there is one (an intermediate table is
     a view in some runs, a table in others; CREATE OR REPLACE does not change the kind)."""

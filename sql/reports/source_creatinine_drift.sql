@@ -21,16 +21,16 @@ months as (
     group by all
 ),
 compared as (
-    select m.*,
-           (select count(*) from values_ as v
-            where v.source_id = m.source_id and v.sex = m.sex and v.age_group = m.age_group
-              and v.month_start >= m.month_start - to_months(cast($drift_months as integer))
-              and v.month_start < m.month_start) as previous_results,
-           (select median(v.creatinine_mg_dl) from values_ as v
-            where v.source_id = m.source_id and v.sex = m.sex and v.age_group = m.age_group
-              and v.month_start >= m.month_start - to_months(cast($drift_months as integer))
-              and v.month_start < m.month_start) as previous_median_mg_dl
+    -- each cell against the same cell's previous $drift_months months (one join for both figures)
+    select m.source_id, m.month_start, m.sex, m.age_group, m.results, m.median_mg_dl,
+           count(v.creatinine_mg_dl) as previous_results,
+           median(v.creatinine_mg_dl) as previous_median_mg_dl
     from months as m
+    left join values_ as v
+        on v.source_id = m.source_id and v.sex = m.sex and v.age_group = m.age_group
+       and v.month_start >= m.month_start - to_months(cast($drift_months as integer))
+       and v.month_start < m.month_start
+    group by m.source_id, m.month_start, m.sex, m.age_group, m.results, m.median_mg_dl
 )
 select
     $period as period,
