@@ -1,4 +1,4 @@
-"""int_result_versions_resolved.sql against a plain Python transcription of the version rules.
+"""int_result_versions_resolved.sql against the version rules written out in plain Python.
 
 The SQL ranks only the rows whose group hash repeats (sql/intermediate/
 int_result_versions_resolved.sql, "How"). These checks generate small sets of versions crowded
