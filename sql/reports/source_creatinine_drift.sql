@@ -20,17 +20,48 @@ months as (
     from values_
     group by all
 ),
-compared as (
-    -- each cell against the same cell's previous $drift_months months (one join for both figures)
-    select m.source_id, m.month_start, m.sex, m.age_group, m.results, m.median_mg_dl,
-           count(v.creatinine_mg_dl) as previous_results,
-           median(v.creatinine_mg_dl) as previous_median_mg_dl
+value_counts as (
+    -- each distinct value once per cell and month, with how many results had it: a window's
+    -- median is taken from these counts, not from every value (medians keep all their values
+    -- in memory: at 30M results the plain join of every value went past DuckDB's limit)
+    select source_id, month_start, sex, age_group, creatinine_mg_dl, count(*) as n
+    from values_
+    group by all
+),
+window_counts as (
+    -- each cell's previous $drift_months months, pooled
+    select m.source_id, m.month_start, m.sex, m.age_group, c.creatinine_mg_dl, sum(c.n) as n
     from months as m
-    left join values_ as v
-        on v.source_id = m.source_id and v.sex = m.sex and v.age_group = m.age_group
-       and v.month_start >= m.month_start - to_months(cast($drift_months as integer))
-       and v.month_start < m.month_start
-    group by m.source_id, m.month_start, m.sex, m.age_group, m.results, m.median_mg_dl
+    join value_counts as c
+        on c.source_id = m.source_id and c.sex = m.sex and c.age_group = m.age_group
+       and c.month_start >= m.month_start - to_months(cast($drift_months as integer))
+       and c.month_start < m.month_start
+    group by all
+),
+cumulative as (
+    select *,
+           sum(n) over (partition by source_id, month_start, sex, age_group
+                        order by creatinine_mg_dl rows unbounded preceding) as up_to,
+           sum(n) over (partition by source_id, month_start, sex, age_group) as total
+    from window_counts
+),
+previous as (
+    -- the median: the middle value, or the mean of the two middle values of an even count
+    select source_id, month_start, sex, age_group,
+           any_value(total) as previous_results,
+           (min(creatinine_mg_dl) filter (where up_to >= (total + 1) // 2)
+            + min(creatinine_mg_dl) filter (where up_to >= total // 2 + 1)) / 2 as previous_median_mg_dl
+    from cumulative
+    group by all
+),
+compared as (
+    select m.*,
+           coalesce(p.previous_results, 0) as previous_results,
+           p.previous_median_mg_dl
+    from months as m
+    left join previous as p
+        on p.source_id = m.source_id and p.month_start = m.month_start and p.sex = m.sex
+       and p.age_group = m.age_group
 )
 select
     $period as period,
