@@ -9,7 +9,7 @@ from pathlib import Path
 from pipeline.ingest import InboxFile, land_inbox, sha256_of
 from pipeline.pseudonymise import DEMO_KEY, PseudonymKey
 from pipeline.settings import Settings
-from pipeline.validate import resolve_versions, update_ledger_counts, validate_landed
+from pipeline.validate import begin_judging, judge_file, resolve_versions, update_ledger_counts, validate_landed
 from pipeline.warehouse import connect, load_reference_tables
 
 
@@ -29,7 +29,9 @@ def check_file(settings: Settings, source_id: str, path: Path) -> CheckReport:
         item = InboxFile(source_id, path, path.name, sha256_of(path), path.stat().st_size)
         # person keys are never shown here, so a throw-away key is enough
         key = PseudonymKey(secret=DEMO_KEY.encode(), is_demo=True)
-        summary = land_inbox(con, settings, path.parent, key, "check", dt.date.today(), items=[item])
+        begin_judging(con)
+        summary = land_inbox(con, settings, path.parent, key, "check", dt.date.today(), items=[item],
+                             sink=judge_file)
         report = CheckReport()
         if summary.held_back:
             report.fault = summary.held_back[0][1]

@@ -40,7 +40,7 @@ from pipeline.publish import (  # noqa: E402
 from pipeline.runlock import commit_and_install, recover_interrupted_run, run_lock  # noqa: E402
 from pipeline.settings import Settings, load_settings  # noqa: E402
 from pipeline.summaries import summarise_stage  # noqa: E402
-from pipeline.validate import validate_stage  # noqa: E402
+from pipeline.validate import begin_judging, judge_file, validate_stage  # noqa: E402
 from pipeline.warehouse import load_reference_tables  # noqa: E402
 
 
@@ -91,8 +91,9 @@ def scan_task(run_id: str) -> dict[str, Any]:
 def ingest_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         load_reference_tables(ctx.con, ctx.settings)
+        begin_judging(ctx.con)  # each file is judged by the validate stage's rules as it lands
         s = land_inbox(ctx.con, ctx.settings, ctx.inbox, ctx.key, ctx.period.label, dt.date.today(),
-                       items=ctx.inbox_items)
+                       items=ctx.inbox_items, sink=judge_file)
         return {"new files": s.files_new, "skipped": s.files_skipped, "held back": s.files_held_back,
                 "rows": s.rows_landed, "held_back_files": s.held_back,
                 "allowed_identifiers": s.allowed_identifiers}  # fmt: skip

@@ -4,8 +4,8 @@ One reader per layout (delimited text, FHIR NDJSON, Parquet) turns a lab's file 
 landed columns (all text, as reported), with the file's line number and the raw line (the person
 token masked) kept for every row. A delimited file without quotes is split in bulk (polars), any
 other goes through the csv module; both give the same rows. Each file's rows are keyed and
-inserted into ``landed_rows`` as soon as it is read, so one file at a time is held in
-memory. A fault that concerns the whole file (not UTF-8, a missing column, the wrong delimiter,
+handed to the run's sink (the validate stage's judge) as soon as it is read, so one file at a
+time is held in memory and the run's rows are never stored unjudged. A fault that concerns the whole file (not UTF-8, a missing column, the wrong delimiter,
 a truncated or corrupt Parquet file) holds that file back with a message naming it; the other
 files go on, and so does a file that cannot be read at all (permission denied, an I/O error).
 Before anything is stored, every file passes the identifier screen (:mod:`pipeline.identifiers`):
@@ -25,6 +25,7 @@ import io
 import json
 import re
 from dataclasses import dataclass, field
+from collections.abc import Callable
 from pathlib import Path
 
 import duckdb
@@ -719,18 +720,22 @@ def land_inbox(
     run_period: str,
     ingested_on: dt.date,
     items: list[InboxFile] | None = None,
+    *,
+    sink: Callable[[duckdb.DuckDBPyConnection, pl.DataFrame], None],
 ) -> IngestSummary:
-    """Read every new file into ``landed_rows`` and record it in ``ingest_files``.
+    """Read every new file, hand its keyed rows to ``sink`` and record it in ``ingest_files``.
 
     Person tokens are re-keyed before the rows reach DuckDB, each distinct token once per run.
-    Each file's rows are inserted as soon as it is read, so only one file is held in memory.
-    ``items`` replaces the inbox scan (``sources check`` reads one given file).
+    Each file's rows go to ``sink`` (``pipeline.validate.judge_file`` in a run) as soon as it is
+    read, so only one file is held in memory; the temporary table ``landed_files`` names the
+    files of this run that gave rows. ``items`` replaces the inbox scan (``sources check``
+    reads one given file).
     """
     summary = IngestSummary()
     if items is None:
         items = scan_inbox(con, settings, inbox)
     next_id = con.execute("select coalesce(max(file_id), 0) + 1 from ingest_files").fetchall()[0][0]
-    _create_landed_table(con)
+    con.execute("create or replace temp table landed_files (file_id bigint)")
     keys = PersonKeyCache(key)
     for item in items:
         if item.status == "already_ingested":
@@ -774,8 +779,14 @@ def land_inbox(
                 summary.held_back.append((item.rel_path, str(fault)))
             else:
                 rows_read = frame.height
-                _insert_landed(con, add_person_keys(frame, key, keys))
+                keyed = add_person_keys(frame, key, keys)
                 del frame
+                if keyed.schema != _LANDED_SCHEMA:
+                    raise AssertionError(f"landed columns {dict(keyed.schema)} differ from {dict(_LANDED_SCHEMA)}")
+                sink(con, keyed)
+                del keyed
+                if rows_read:
+                    con.execute("insert into landed_files values (?)", [item.file_id])
                 summary.files_new += 1
                 summary.rows_landed += rows_read
                 if item.notes:
@@ -799,21 +810,13 @@ def land_inbox(
 
 
 def empty_landed() -> pl.DataFrame:
-    """The columns of ``landed_rows``, in order: the landed columns without the token,
-    the parsed dates, then the person key (the order a read and keyed file has)."""
+    """The landed rows of a file as the sink receives them, without rows: the landed columns
+    without the token, the parsed dates, then the person key (the order a read and keyed file
+    has)."""
     schema = {c: pl.Int64 if c in ("file_id", "line_no") else pl.String
               for c in LANDED_COLUMNS if c not in ("person_token", "linkage_domain")}  # fmt: skip
     schema.update(collected_date=pl.Date, reported_date=pl.Date, reported_date_basis=pl.String, person_key=pl.String)
     return pl.DataFrame(schema=schema)
 
 
-def _create_landed_table(con: duckdb.DuckDBPyConnection) -> None:
-    with_frame(con, empty_landed(), "create or replace temp table landed_rows as select * from _frame")
-
-
-def _insert_landed(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> None:
-    """Append one file's keyed rows to ``landed_rows`` (same columns, same order)."""
-    expected = empty_landed().schema
-    if frame.schema != expected:
-        raise AssertionError(f"landed columns {dict(frame.schema)} differ from {dict(expected)}")
-    with_frame(con, frame, "insert into landed_rows select * from _frame")
+_LANDED_SCHEMA = empty_landed().schema

@@ -212,7 +212,7 @@ def _same_seed_as_validate(con: duckdb.DuckDBPyConnection, params: dict) -> bool
     other = con.execute(
         """
         select count(*) from result_versions
-        where (file_id > $max_file_id and file_id not in (select distinct file_id from landed_rows))
+        where (file_id > $max_file_id and file_id not in (select file_id from landed_files))
            or (file_id <= $max_file_id and reported_date > $snap_end and reported_date <= $period_end)
         """,
         {"max_file_id": params["max_file_id"], "snap_end": params["snap_end"], "period_end": params["period_end"]},

@@ -31,7 +31,6 @@ def open_warehouse(out_dir: Path, memory_limit: str = "2GB") -> duckdb.DuckDBPyC
 
 def commit_month(con: duckdb.DuckDBPyConnection) -> None:
     apply_comments(con)
-    con.execute("drop table if exists temp.main.landed_rows")  # this run's landed rows (transient)
     for table in ("landed_rows", "stg_landed_rows", "int_results_validated",
                   "int_result_versions_resolved", "scope_persons", "scope_versions",
                   "link_persons"):  # transient: not kept

@@ -1,9 +1,11 @@
 """Validate: row-level rules, versions and duplicates, and the per-file balance.
 
-The landed rows of this run go through ``sql/staging/stg_landed_rows.sql`` and
-``sql/intermediate/int_results_validated.sql``: a row breaking a rule goes to ``rejected_rows``
-with its reason code and a message; every other row goes to ``result_versions`` in canonical
-units. Then the outcome of every version (accepted, superseded, duplicate, withdrawn, pending)
+Each file's landed rows go through ``sql/staging/stg_landed_rows.sql`` and
+``sql/intermediate/int_results_validated.sql`` as the ingest stage hands them over
+(:func:`judge_file`), so a run's rows are read and written once. Then, over the whole run, the
+quality gate holds back the sources over their rejection limit or failing their expectation
+suite; a row breaking a rule goes to ``rejected_rows`` with its reason code, a message and its
+raw line; every other row goes to ``result_versions`` in canonical units. Then the outcome of every version (accepted, superseded, duplicate, withdrawn, pending)
 is settled over the whole history, ``lab_results`` is rebuilt from the accepted ones and the
 ledger's counts are brought up to date. A file whose counts do not balance stops the run.
 """
@@ -16,8 +18,11 @@ from dataclasses import dataclass, field
 
 import duckdb
 
+import polars as pl
+
+from pipeline.ingest import empty_landed
 from pipeline.settings import Settings
-from pipeline.warehouse import build_table, build_view, read_sql
+from pipeline.warehouse import build_table, build_view, sql_over, with_frame
 
 #: The as-of date of "everything received so far".
 NO_LIMIT = dt.date(9999, 12, 31)
@@ -39,32 +44,53 @@ class ValidateSummary:
     scope: Scope | None = None
 
 
+def _judged_sql() -> str:
+    """int_results_validated over one landed frame (``_frame``), its staging inlined."""
+    return sql_over("int_results_validated", {
+        "landed_rows": "select * from _frame",
+        "stg_landed_rows": "sql:stg_landed_rows",
+    })  # fmt: skip
+
+
+def begin_judging(con: duckdb.DuckDBPyConnection) -> None:
+    """Start this run's ``int_results_validated`` (a temporary table), empty."""
+    with_frame(con, empty_landed(), "create or replace temp table int_results_validated as\n" + _judged_sql())
+
+
+def judge_file(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> None:
+    """Judge one file's landed rows (the ingest stage's sink) into ``int_results_validated``.
+
+    The rules read one row and the reference tables only, so judging file by file gives the
+    same rows as judging the run at once; the raw line is kept on rejected rows only."""
+    with_frame(con, frame, "insert into int_results_validated\n" + _judged_sql(), batch_rows=JUDGE_BATCH_ROWS)
+
+
+#: Rows per Arrow batch when judging a file: the judging query then runs on every core.
+JUDGE_BATCH_ROWS = 32_768
+
+
 def validate_landed(
     con: duckdb.DuckDBPyConnection,
     rejection_limits: dict[str, float],
     batch_gate: Callable[[duckdb.DuckDBPyConnection], dict[str, str]] | None = None,
 ) -> tuple[int, int, dict[str, str]]:
-    """Judge this run's landed rows; append them to rejected_rows, or keep them as this run's
-    versions (the temporary view ``new_versions``, stored by :func:`resolve_versions`).
+    """Settle this run's judged rows (``int_results_validated``, filled by :func:`judge_file`):
+    append them to rejected_rows, or keep them as this run's versions (the temporary view
+    ``new_versions``, stored by :func:`resolve_versions`).
 
     A source whose share of rejected rows in this run exceeds its limit is held back: its files
     are marked ``held_back`` with the reason and none of their rows is stored, so the next run
     tries them again. ``batch_gate`` (the Great Expectations suites) returns the sources whose
     batch failed, with the reason; they are held back the same way.
     """
-    # a view, not a table: int_results_validated reads it once (writing it out cost more)
-    con.execute("create or replace temp view stg_landed_rows as\n" + read_sql("stg_landed_rows"))
-    build_table(con, "int_results_validated", temporary=True)
-    con.execute("drop view stg_landed_rows")
     failed_batches = batch_gate(con) if batch_gate is not None else {}
     held = hold_back_sources(con, rejection_limits, failed_batches)
     rejected = con.execute(
         """
         insert into rejected_rows
-        select v.source_id, v.file_id, f.file_path, v.line_no, l.raw_text, v.reason_code, v.message
+        select v.source_id, v.file_id, f.file_path, v.line_no, v.raw_text, v.reason_code, v.message
         from int_results_validated as v
         join ingest_files as f on f.file_id = v.file_id
-        join landed_rows as l on l.file_id = v.file_id and l.line_no = v.line_no
         where v.reason_code is not null and v.file_id not in (select file_id from ingest_files where status = 'held_back')
         """
     ).fetchall()[0][0]
@@ -77,7 +103,8 @@ def validate_landed(
     )
     con.execute(
         "create or replace temp view new_versions as "
-        "select * exclude (reason_code, message), cast(null as varchar) as outcome from int_results_validated"
+        "select * exclude (reason_code, message, raw_text), cast(null as varchar) as outcome "
+        "from int_results_validated"
     )
     valid = con.execute("select count(*) from new_versions").fetchall()[0][0]
     return valid, rejected, held
@@ -108,7 +135,7 @@ def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str
             held[source_id] = "held back this month: " + "; ".join(reasons)
             con.execute(
                 "update ingest_files set status = 'held_back', message = ? "
-                "where source_id = ? and file_id in (select distinct file_id from landed_rows)",
+                "where source_id = ? and file_id in (select file_id from landed_files)",
                 [held[source_id], source_id],
             )
             # a copy of a held-back file, recorded as its duplicate, is held back with it
@@ -256,7 +283,7 @@ def resolve_versions(con: duckdb.DuckDBPyConnection) -> tuple[int, Scope]:
 #: The files whose counts a touched scope can change: those of its versions and this run's.
 TOUCHED_FILES = (
     "and f.file_id in (select file_id from scope_versions "
-    "union select file_id from landed_rows)"
+    "union select file_id from landed_files)"
 )
 
 

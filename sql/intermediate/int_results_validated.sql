@@ -1,6 +1,7 @@
 -- int_results_validated: one row per landed row of this run, with its value in the canonical
 -- unit and the first rule it breaks (reason_code null = well-formed). The order of the CASE is
--- the order in which rules are checked; DEVELOPERS.md lists every code.
+-- the order in which rules are checked; DEVELOPERS.md lists every code. The raw line is kept
+-- on a rejected row only (for rejected_rows). Built one file at a time, as each is landed.
 with converted as (
     select
         s.*,
@@ -110,5 +111,6 @@ select
         when 'out_of_range' then j.analyte || ' ' || j.value_text || ' ' || coalesce(j.reported_unit, '')
              || ' is outside the plausible range ' || j.min_value::varchar || '-' || j.max_value::varchar
              || ' ' || j.unit
-    end as message
+    end as message,
+    case when j.reason_code is not null then j.raw_text end as raw_text
 from judged as j

@@ -1,7 +1,7 @@
--- stg_landed_rows: one row per landed input row of this run, renamed, cast and tagged.
--- Reads landed_rows (written by pipeline/ingest.py) and the reference tables; judges
--- nothing (that is int_results_validated). The raw line stays in landed_rows: only a rejected
--- row needs it (pipeline/validate.py joins it back for rejected_rows).
+-- stg_landed_rows: one row per landed input row, renamed, cast and tagged.
+-- Reads landed_rows (one file's rows as pipeline/ingest.py reads them: the validate stage
+-- runs this over each file as it is landed) and the reference tables; judges nothing (that
+-- is int_results_validated).
 with parsed as (
     select
         l.*,
@@ -22,6 +22,7 @@ select
     n.source_id,
     n.file_id,
     n.line_no,
+    n.raw_text,
     n.row_fault,
     n.person_key,
     nullif(trim(n.specimen_id), '') as specimen_id,

@@ -1,6 +1,7 @@
-"""``land_inbox`` inserts each file's keyed rows into ``landed_rows`` as soon as the file
-is read: the table has the same columns and types whether a run lands files or none, and its
-rows are each file's rows in inbox order, keyed as ``add_person_keys`` keys them.
+"""``land_inbox`` hands each file's keyed rows to its sink as soon as the file is read: every
+frame has the same columns and types (those the staging SQL reads, whether a run lands files
+or none), and the frames are each file's rows in inbox order, keyed as ``add_person_keys``
+keys them. ``landed_files`` names the files that gave rows.
 
 Outside reference: DuckDB's own description of the table (``describe``) for the column types.
 """
@@ -12,8 +13,8 @@ from pathlib import Path
 
 import polars as pl
 
-from pipeline import warehouse
-from pipeline.ingest import land_inbox, read_inbox_file, scan_inbox
+from pipeline import validate, warehouse
+from pipeline.ingest import empty_landed, land_inbox, read_inbox_file, scan_inbox
 from pipeline.pseudonymise import DEMO_KEY, PseudonymKey, add_person_keys
 from pipeline.settings import load_settings
 from tests.conftest import ROOT, rows, write_inbox
@@ -21,7 +22,7 @@ from tests.conftest import ROOT, rows, write_inbox
 TODAY = dt.date(2025, 7, 1)
 KEY = PseudonymKey(secret=DEMO_KEY.encode(), is_demo=True)
 SAMPLES = ROOT / "sample_extracts"
-#: landed_rows as DuckDB describes it (the schema the staging SQL reads)
+#: a landed frame as DuckDB describes it (the schema the staging SQL reads)
 LANDED_TABLE = [
     ("source_id", "VARCHAR"), ("file_id", "BIGINT"), ("line_no", "BIGINT"), ("raw_text", "VARCHAR"),
     ("row_fault", "VARCHAR"), ("birth_year_text", "VARCHAR"), ("sex_text", "VARCHAR"),
@@ -34,8 +35,19 @@ LANDED_TABLE = [
 ]  # fmt: skip
 
 
-def described(con) -> list[tuple[str, str]]:
-    return [(r[0], r[1]) for r in rows(con, "describe landed_rows")]
+def described(con, frame: pl.DataFrame) -> list[tuple[str, str]]:
+    relation = con.from_arrow(frame.to_arrow())
+    return [(name, str(dtype)) for name, dtype in zip(relation.columns, relation.types)]
+
+
+class Collect:
+    """A sink that keeps what it is handed."""
+
+    def __init__(self) -> None:
+        self.frames: list[pl.DataFrame] = []
+
+    def __call__(self, con, frame: pl.DataFrame) -> None:
+        self.frames.append(frame)
 
 
 def test_each_file_is_landed_as_read_and_the_table_keeps_its_schema(small_config: Path, tmp_path: Path):
@@ -50,9 +62,11 @@ def test_each_file_is_landed_as_read_and_the_table_keeps_its_schema(small_config
     items = scan_inbox(None, settings, inbox)
     con = warehouse.connect(tmp_path / "w.duckdb")
     try:
-        summary = land_inbox(con, settings, inbox, KEY, "2025-06", TODAY)
-        assert described(con) == LANDED_TABLE
-        landed = con.sql("select * from landed_rows").pl()
+        sink = Collect()
+        summary = land_inbox(con, settings, inbox, KEY, "2025-06", TODAY, sink=sink)
+        assert len(sink.frames) == 4
+        assert all(described(con, f) == LANDED_TABLE for f in [*sink.frames, empty_landed()])
+        landed = pl.concat(sink.frames)
         # what each file reads as, keyed one file at a time without the run's cache
         expected = []
         for file_id, item in enumerate(items, start=1):
@@ -63,9 +77,49 @@ def test_each_file_is_landed_as_read_and_the_table_keeps_its_schema(small_config
         assert landed.equals(pl.concat(expected))
         assert landed["person_key"].null_count() < landed.height
         # a second run finds nothing new: the table is there, empty, with the same columns
-        again = land_inbox(con, settings, inbox, KEY, "2025-06", TODAY)
+        assert rows(con, "select file_id from landed_files order by 1") == [(1,), (2,), (3,), (4,)]
+        # a second run finds nothing new: nothing is handed over, and no file is named
+        again_sink = Collect()
+        again = land_inbox(con, settings, inbox, KEY, "2025-06", TODAY, sink=again_sink)
         assert again.files_skipped == 4
-        assert described(con) == LANDED_TABLE
-        assert rows(con, "select count(*) from landed_rows") == [(0,)]
+        assert again_sink.frames == []
+        assert rows(con, "select count(*) from landed_files") == [(0,)]
     finally:
         con.close()
+
+
+def test_judging_file_by_file_equals_judging_the_run_at_once(small_config: Path, tmp_path: Path):
+    """The validate rules read one row and the reference tables only (common practice for
+    row-level rules; the reason the run judges each file as it lands): the judged rows of four
+    files handed over one by one equal those of the four files judged in one statement."""
+    settings = load_settings(small_config)
+    inbox = write_inbox(tmp_path, {
+        "westerfold_general_lab/results_2025-05.csv": (SAMPLES / "westerfold_general_lab/results_2025-05.csv").read_bytes(),
+        "corvale_lab_chain/export_202506.csv": (SAMPLES / "corvale_lab_chain/export_202506.csv").read_bytes(),
+        "fallowmere_reference_lab/2025-06/Patient.ndjson": (SAMPLES / "fallowmere_reference_lab/2025-06/Patient.ndjson").read_bytes(),
+        "fallowmere_reference_lab/2025-06/Observation.ndjson": (SAMPLES / "fallowmere_reference_lab/2025-06/Observation.ndjson").read_bytes(),
+    })  # fmt: skip
+    con = warehouse.connect(tmp_path / "w.duckdb")
+    try:
+        warehouse.load_reference_tables(con, settings)
+        validate.begin_judging(con)
+        sink = Collect()
+
+        def judge_and_keep(con_, frame: pl.DataFrame) -> None:
+            sink(con_, frame)
+            validate.judge_file(con_, frame)
+
+        land_inbox(con, settings, inbox, KEY, "2025-06", TODAY, sink=judge_and_keep)
+        by_file = con.sql("select * from int_results_validated").pl()
+        validate.begin_judging(con)
+        validate.judge_file(con, pl.concat(sink.frames))
+        at_once = con.sql("select * from int_results_validated").pl()
+    finally:
+        con.close()
+    assert by_file.height == sum(f.height for f in sink.frames) > 0
+    assert by_file.equals(at_once)
+    # rejected rows keep their raw line; well-formed rows do not carry it
+    assert by_file.filter(pl.col("reason_code").is_not_null())["raw_text"].null_count() == 0
+    assert by_file.filter(pl.col("reason_code").is_null())["raw_text"].null_count() == by_file.filter(
+        pl.col("reason_code").is_null()).height
+    assert by_file["reason_code"].null_count() < by_file.height
