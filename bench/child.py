@@ -3,7 +3,8 @@
 Modes:
   pipeline  ``pipeline.flows.run_month_plain`` (or, with --flow, the Prefect flow
             ``monthly_surveillance`` with its temporary server) on one period;
-  floor     bench/floor.sql in one DuckDB connection.
+  floor     bench/floor.sql in one DuckDB connection (with --kept, then bench/floor_kept.sql
+            into a DuckDB file, timed apart).
 
 Each writes a JSON document to --stats: wall seconds of the measured call (imports excluded and
 reported apart), per-stage seconds and peak RSS, and the process's own peak RSS. Per-stage peak
@@ -190,6 +191,18 @@ def run_floor(args: argparse.Namespace) -> dict:
     t0 = time.perf_counter()
     con.execute(script)
     wall = time.perf_counter() - t0
+    kept_seconds = None
+    if args.kept:  # then what the warehouse must keep, into a DuckDB file, one transaction
+        kept = Path(args.kept)
+        kept.parent.mkdir(parents=True, exist_ok=True)
+        kept.unlink(missing_ok=True)
+        con.execute("set temp_directory = ?", [str(kept.parent / ".duckdb_tmp")])
+        t1 = time.perf_counter()
+        con.execute("attach ? as kept", [str(kept)])
+        con.execute("begin transaction")
+        con.execute((BENCH / "floor_kept.sql").read_text(encoding="utf-8"))
+        con.execute("commit")
+        kept_seconds = time.perf_counter() - t1
     counts = con.execute(
         "select sum(persons_tested), sum(persons_sustained_decline_40) from read_parquet(?)",
         [args.out + "/district_counts.parquet"],
@@ -201,6 +214,7 @@ def run_floor(args: argparse.Namespace) -> dict:
         "import_seconds": round(import_seconds, 3),
         "wall_seconds": round(wall, 3),
         "self_peak_rss_mb": round(_self_maxrss_mb(), 1),
+        **({"kept_seconds": round(kept_seconds, 3)} if kept_seconds is not None else {}),
         "egfr_rows": int(egfr_rows),
         "persons_tested": int(counts[0] or 0),
         "persons_sustained_decline_40": int(counts[1] or 0),
@@ -221,6 +235,7 @@ def main() -> None:
     ap.add_argument("--input-glob")
     ap.add_argument("--period-end")
     ap.add_argument("--memory-limit", default="2GB")
+    ap.add_argument("--kept", help="floor: then write what the warehouse keeps (floor_kept.sql) to this DuckDB file")
     args = ap.parse_args()
     result = run_pipeline(args) if args.mode == "pipeline" else run_floor(args)
     Path(args.stats).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")

@@ -66,6 +66,11 @@ def test_pipeline_floor_and_incremental_figures(bench_results: tuple[dict, Path]
     for key in ("wall_seconds", "peak_rss_mb", "rows_per_second", "egfr_rows", "persons_tested"):
         assert _positive(run["floor"][key]), key
     assert _positive(run["ratio_vs_floor"])
+    # the second lower bound: the floor, then what the warehouse keeps (one row per input row)
+    kept = run["floor_kept"]
+    assert _positive(kept["kept_seconds"]) and _positive(kept["floor_part_seconds"])
+    assert kept["wall_seconds"] >= kept["kept_seconds"]
+    assert _positive(run["ratio_vs_floor_kept"])
     assert _positive(run["incremental"]["wall_seconds"])
     assert _positive(run["incremental"]["fraction"])
     assert run["incremental"]["new_rows"] == round(ROWS * 0.01)
