@@ -48,7 +48,11 @@ def _reset_hwm() -> bool:
 
 
 def _self_maxrss_mb() -> float:
-    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024  # Linux: kB
+    """This process's peak RSS: the kernel's high-water mark of its memory map (VmHWM), which
+    starts afresh at exec. Not ``getrusage``'s ru_maxrss: Linux keeps that across execve, so a
+    child of a parent that had just generated 30M rows in memory reported the parent's 8.1 GB."""
+    hwm_kb = _status_kb("VmHWM")
+    return hwm_kb / 1024 if hwm_kb else resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
 
 
 #: Pipeline functions timed by --trace (module: names). Each is replaced, in every pipeline module
@@ -196,7 +200,6 @@ def run_floor(args: argparse.Namespace) -> dict:
         kept = Path(args.kept)
         kept.parent.mkdir(parents=True, exist_ok=True)
         kept.unlink(missing_ok=True)
-        con.execute("set temp_directory = ?", [str(kept.parent / ".duckdb_tmp")])
         t1 = time.perf_counter()
         con.execute("attach ? as kept", [str(kept)])
         con.execute("begin transaction")

@@ -5,9 +5,10 @@ Each file's landed rows go through ``sql/staging/stg_landed_rows.sql`` and
 (:func:`judge_file`), so a run's rows are read and written once. Then, over the whole run, the
 quality gate holds back the sources over their rejection limit or failing their expectation
 suite; a row breaking a rule goes to ``rejected_rows`` with its reason code, a message and its
-raw line; every other row goes to ``result_versions`` in canonical units. Then the outcome of every version (accepted, superseded, duplicate, withdrawn, pending)
-is settled over the whole history, ``lab_results`` is rebuilt from the accepted ones and the
-ledger's counts are brought up to date. A file whose counts do not balance stops the run.
+raw line; every other row goes to ``result_versions`` in canonical units. Then the outcome of
+every version (accepted, superseded, duplicate, withdrawn, pending) is settled over the whole
+history, ``lab_results`` is rebuilt from the accepted ones and the ledger's counts are brought
+up to date. A file whose counts do not balance stops the run.
 """
 
 from __future__ import annotations
@@ -17,7 +18,6 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import duckdb
-
 import polars as pl
 
 from pipeline.ingest import empty_landed
@@ -205,8 +205,8 @@ def close_over_partitions(con: duckdb.DuckDBPyConnection, seed: str, params: dic
     that share a specimen key with a version of the persons found so far; it ends when a round
     finds none (usually the first: a specimen id belongs to one person unless an extract is
     faulty). The versions of the persons found are read once per round that adds persons, and
-    the specimen keys are taken from them, so a usual month reads all versions twice (at 10M
-    results: 2.4 s instead of 3.6 s with a third pass).
+    the specimen keys are taken from them, so a usual month reads all versions twice, not three
+    times (a seed of 100k rows over 10M versions: 3.2–3.8 s instead of 4.4–5.4 s).
     """
     columns = "v.*" if versions_table else "v.person_key, v.source_id, v.specimen_id, v.analyte"
     found = versions_table or "closure_versions"

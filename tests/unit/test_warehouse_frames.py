@@ -14,6 +14,7 @@ import sys
 import duckdb
 import polars as pl
 import pyarrow as pa
+import pytest
 
 from pipeline.warehouse import with_frame
 
@@ -49,3 +50,29 @@ def test_register_is_what_with_frame_avoids():
     con.unregister("x")
     assert sys.getrefcount(table) > before
     con.execute("commit")
+
+
+def test_batches_keep_the_rows_in_order_and_release_the_frame():
+    """``batch_rows`` hands the frame over in slices; DuckDB keeps insertion order
+    (``preserve_insertion_order``, on by default) and drops the table afterwards."""
+    con = duckdb.connect()
+    con.execute("begin")
+    con.execute("create table t (a bigint)")
+    table = pa.table({"a": list(range(100_000))})
+    before = sys.getrefcount(table)
+    with_frame(con, table, "insert into t select * from _frame", batch_rows=4096)
+    assert sys.getrefcount(table) == before
+    assert [a for (a,) in con.execute("select a from t").fetchall()] == list(range(100_000))
+    con.execute("commit")
+
+
+def test_sql_over_puts_inputs_in_front_of_a_sql_file():
+    """The staging SQL run over a frame by name: a CTE shadows the table it names."""
+    from pipeline.warehouse import sql_over
+
+    text = sql_over("int_results_validated", {"landed_rows": "select * from _frame",
+                                              "stg_landed_rows": "sql:stg_landed_rows"})  # fmt: skip
+    assert text.startswith("with landed_rows as (\nselect * from _frame\n),\nstg_landed_rows as (")
+    assert "from stg_landed_rows as s" in text
+    with pytest.raises(ValueError, match="not a plain relation name"):
+        sql_over("int_results_validated", {"x; drop": "select 1"})
