@@ -119,7 +119,8 @@ def test_judging_file_by_file_equals_judging_the_run_at_once(small_config: Path,
     finally:
         con.close()
     assert by_file.height == sum(f.height for f in sink.frames) > 0
-    # the same rows (SQL gives no row order without ORDER BY, so both are put in line order)
+    # the same rows, put in line order: the judging joins the reference tables, and a JOIN does
+    # not keep row order (DuckDB 2.0 documentation, "Order preservation")
     assert by_file.sort("file_id", "line_no").equals(at_once.sort("file_id", "line_no"))
     # rejected rows keep their raw line; well-formed rows do not carry it
     assert by_file.filter(pl.col("reason_code").is_not_null())["raw_text"].null_count() == 0

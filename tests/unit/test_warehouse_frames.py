@@ -53,8 +53,9 @@ def test_register_is_what_with_frame_avoids():
 
 
 def test_batches_keep_the_rows_in_order_and_release_the_frame():
-    """``batch_rows`` hands the frame over in slices; DuckDB keeps insertion order
-    (``preserve_insertion_order``, on by default) and drops the table afterwards."""
+    """``batch_rows`` hands the frame over in slices; the rows keep their order and the table is
+    released afterwards. Outside reference: DuckDB 2.0 documentation, "Order preservation"
+    (SQL dialect): a SELECT from a single table, and an INSERT of it, keep the row order."""
     con = duckdb.connect()
     con.execute("begin")
     con.execute("create table t (a bigint)")
