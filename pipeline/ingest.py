@@ -97,11 +97,19 @@ def read_file_bytes(path: Path) -> bytes:
         raise _unreadable(path, exc) from None
 
 
+#: Bytes hashed per read. Large reads keep the hashing off the interpreter lock (hashlib releases
+#: it while it digests a buffer): with 1 MB reads, the scan took 4 s instead of 1 s at 10M rows
+#: while Great Expectations was imported beside it (pipeline/quality.py), with 16 MB 1.3 s.
+HASH_READ_BYTES = 16 << 20
+
+
 def sha256_of(path: Path) -> str:
     digest = hashlib.sha256()
+    buffer = bytearray(HASH_READ_BYTES)
+    view = memoryview(buffer)
     with path.open("rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(block)
+        while n := fh.readinto(buffer):
+            digest.update(view[:n])
     return digest.hexdigest()
 
 

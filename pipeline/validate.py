@@ -254,6 +254,20 @@ def resolve_versions(con: duckdb.DuckDBPyConnection) -> tuple[int, Scope]:
     """
     scope = settle_scope(con)
     build_table(con, "int_result_versions_resolved", params={"as_of": NO_LIMIT}, temporary=True)
+    if scope.kind == "touched":
+        # the results whose accepted set this run can change: its own versions and the stored
+        # ones whose outcome changes; the measure stage recomputes only around them
+        con.execute(
+            """
+            create or replace temp table changed_versions as
+            select person_key, source_id, specimen_id, collected_date from new_versions
+            union
+            select v.person_key, v.source_id, v.specimen_id, v.collected_date
+            from result_versions as v
+            join int_result_versions_resolved as r on r.file_id = v.file_id and r.line_no = v.line_no
+            where v.outcome is distinct from r.outcome
+            """
+        )
     # stored versions whose outcome changed (an amendment supersedes them, ...), then this
     # run's versions, stored once with their outcome
     con.execute(

@@ -158,3 +158,68 @@ def test_person_ranges_cover_every_key_once():
         ranges = [person_range(c, chunks) for c in range(chunks)]
         for key in keys:
             assert sum(lower <= key < upper for lower, upper in ranges) == 1
+
+
+# A measure row reads results besides its own: a same-day cystatin C (the combined equation), the
+# lab's reported eGFR of the same specimen, a urine creatinine of the same specimen (computed
+# ACR). The monthly path recomputes only the rows sharing a day or a specimen with a changed
+# version (pipeline.measures.update_touched); each case below adds the other half in the second
+# month, so a row stored in June must change in July. Codes are LOINC (common practice).
+CYS, UALB, UCREA, EGFR_LAB = "33863-2", "14957-5", "2161-8", "98979-8"
+
+
+def coded(token: str, spec: str, collected: str, code: str, value: str, unit: str,
+          status: str = "final", reported: str | None = None) -> str:  # fmt: skip
+    return f"{token},1960,F,WF01,{spec},{collected},{code},{value},{unit},{status},{reported or collected}"
+
+
+NEIGHBOURS = {
+    f"{LAB}/results_2025-06.csv": "\n".join([
+        HEADER,
+        *[line(f"WF-nb{i:04d}", f"B{i:03d}", "2025-03-03", "0.9") for i in range(5)],  # untouched
+        line("WF-nbCYS", "C1", "2025-06-03", "1.1"),                     # cystatin C comes in July
+        line("WF-nbCYS", "C0", "2025-02-03", "1.0"),                     # another day: unchanged
+        line("WF-nbLAB", "R1", "2025-06-04", "1.2"),                     # lab eGFR comes in July
+        coded("WF-nbACR", "U1", "2025-06-05", UALB, "45", "mg/L"),       # urine creatinine in July
+        line("WF-nbAMD", "M1", "2025-06-06", "1.3"),                     # amended to another day
+    ]) + "\n",
+    f"{LAB}/results_2025-07.csv": "\n".join([
+        HEADER,
+        coded("WF-nbCYS", "C2", "2025-06-03", CYS, "1.4", "mg/L", reported="2025-07-01"),
+        # the reported eGFR under the same specimen, dated a day later (a faulty extract): it
+        # still belongs to the specimen
+        coded("WF-nbLAB", "R1", "2025-06-05", EGFR_LAB, "55", "mL/min/{1.73_m2}", reported="2025-07-01"),
+        coded("WF-nbACR", "U1", "2025-06-05", UCREA, "90", "mg/dL", reported="2025-07-01"),
+        line("WF-nbAMD", "M1", "2025-06-07", "1.5", status="amended", reported="2025-07-02"),
+    ]) + "\n",
+}  # fmt: skip
+
+
+def test_measures_reading_other_results_are_recomputed_in_the_month(tmp_path):
+    from tests.conftest import make_small_config
+
+    config = make_small_config(tmp_path / "config")
+    inbox = write_inbox(tmp_path / "monthly", {k: v for k, v in NEIGHBOURS.items() if "2025-06" in k})
+    with run_month(config, inbox, tmp_path / "monthly" / "out", period="2025-06") as con:
+        june = snapshot(con, "2025-06")["kidney_measures"]
+    write_inbox(tmp_path / "monthly", NEIGHBOURS)
+    with run_month(config, inbox, tmp_path / "monthly" / "out", period="2025-07") as con:
+        link = rows(con, "select persons_recomputed from link_snapshots where period = '2025-07'")
+        july = snapshot(con, "2025-07")
+    once_inbox = write_inbox(tmp_path / "once", NEIGHBOURS)
+    with run_month(config, once_inbox, tmp_path / "once" / "out", period="2025-07") as con:
+        once = snapshot(con, "2025-07")
+    assert link == [(4,)]  # the monthly path was taken: four persons changed
+    for table, got in july.items():
+        assert got == once[table], table
+    # and each June row read something new in July: its stored measure changed
+    # (rows: file path, source, line, ...)
+    june_rows = {(r[0], r[2]): r for r in june}
+    july_rows = {(r[0], r[2]): r for r in july["kidney_measures"]}
+    differs = {k for k in june_rows.keys() & july_rows.keys() if june_rows[k] != july_rows[k]}
+    june_file = next(k[0] for k in june_rows)
+    assert differs == {(june_file, 7), (june_file, 9)}  # creatinine C1, creatinine R1
+    # the albumin U1 gets a measure row (a computed ACR) only once its urine creatinine is in
+    assert (june_file, 10) in july_rows.keys() - june_rows.keys()
+    # the amendment moved M1 to another day: June's row is gone, July's is the amended one
+    assert (june_file, 11) in june_rows.keys() - july_rows.keys()
