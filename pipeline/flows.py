@@ -80,10 +80,6 @@ def _stage(run_id: str, name: str, work: Callable[[RunContext], dict[str, Any]])
 @task(name="scan-inbox", retries=2, retry_delay_seconds=[2, 10])
 def scan_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        if ctx.settings.pipeline.quality_gate.great_expectations:
-            from pipeline.quality import import_in_background
-
-            import_in_background()  # while the inbox is hashed (pipeline/quality.py)
         items = scan_inbox(ctx.con, ctx.settings, ctx.inbox)
         ctx.inbox_items = items  # hashed once: the ingest stage reads what was scanned
         return {"files": len(items), "new": sum(i.status != "already_ingested" for i in items)}
