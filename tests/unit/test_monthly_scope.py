@@ -164,7 +164,7 @@ def test_person_ranges_cover_every_key_once():
 # lab's reported eGFR of the same specimen, a urine creatinine of the same specimen (computed
 # ACR). The monthly path recomputes only the rows sharing a day or a specimen with a changed
 # version (pipeline.measures.update_touched); each case below adds the other half in the second
-# month, so a row stored in June must change in July. Codes are LOINC (common practice).
+# month, so a June measure row must change, appear or go in July. Codes are LOINC (common practice).
 CYS, UALB, UCREA, EGFR_LAB = "33863-2", "14957-5", "2161-8", "98979-8"
 
 
