@@ -77,6 +77,10 @@ def _print_summary(summary: dict, out: Path) -> None:
         console.print(f"  [yellow]held back file[/] {path}: {message}")
     for source, message in summary["held_back_sources"].items():
         console.print(f"  [yellow]held back source[/] {source}: {message}")
+    rev = summary.get("revision") or {}
+    if rev.get("reason"):
+        console.print(f"  [yellow]revision {rev['number']}[/] of {summary['period']} (revision {rev['previous']} "
+                      f"kept in {out / summary['period'] / 'revisions' / str(rev['previous'])}/): {rev['reason']}")
     console.print(f"  warehouse: {out / 'surveillance.duckdb'}")
     console.print(f"  exports:   {out / summary['period']}/")
     if summary.get("demo_key"):
@@ -84,7 +88,9 @@ def _print_summary(summary: dict, out: Path) -> None:
 
 
 def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose: bool,
-         executor: str | None = None) -> int:
+         executor: str | None = None, revise: str | None = None) -> int:
+    from pipeline.revisions import RevisionNeeded
+
     try:
         Period.parse(period)
         settings = load_settings(config)
@@ -92,6 +98,8 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
         _fail(str(exc))
     if not inbox.is_dir():
         _fail(f"{inbox}: inbox folder not found")
+    if revise is not None and not revise.strip():
+        _fail("--revise needs a reason, in words (it is shown in the report of the revised period)")
     try:
         resolve_key(demo=demo)  # before Prefect starts: a missing key is a usage error
     except KeyMissing as exc:
@@ -109,9 +117,11 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
             try:
                 summary = flows.monthly_surveillance(
                     period=period, config_dir=str(config), inbox=str(inbox), out=str(out), demo=demo,
-                    executor=executor,
+                    executor=executor, revise=revise,
                 )
             except KeyMissing as exc:
+                _fail(str(exc))
+            except RevisionNeeded as exc:
                 _fail(str(exc))
             console.print(f"  {'total':<10} {time.perf_counter() - started:6.1f} s (with Prefect)")
             _print_summary(summary, out)
@@ -130,10 +140,11 @@ def run(
     out: Annotated[Path, typer.Option(help="Output folder: warehouse and exports.")] = Path("out"),
     verbose: Annotated[bool, typer.Option("--verbose", help="Show Prefect's own log lines.")] = False,
     executor: Annotated[Optional[Executor], typer.Option(help="Person-level work: local, shards or dask (default: config).")] = None,
+    revise: Annotated[Optional[str], typer.Option("--revise", metavar="REASON", help="Publish a revision of an already published period, with the reason shown in its report.")] = None,
 ) -> None:
     """Ingest what is new in the inbox and publish the indicators for one month."""
     raise typer.Exit(_run(period, config, inbox, out, demo=False, verbose=verbose,
-                          executor=executor.value if executor else None))
+                          executor=executor.value if executor else None, revise=revise))
 
 
 @app.command()
@@ -160,6 +171,7 @@ def backfill(
     inbox: Annotated[Path, typer.Option(help="Inbox folder.")] = Path("sample_extracts"),
     out: Annotated[Path, typer.Option(help="Output folder.")] = Path("out"),
     force: Annotated[bool, typer.Option("--force", help="Run months already published again.")] = False,
+    revise: Annotated[Optional[str], typer.Option("--revise", metavar="REASON", help="With --force: publish a revision where a month's figures change.")] = None,
     demo_key: Annotated[bool, typer.Option("--demo-key", help="Use the public demo key (samples only).")] = False,
     verbose: Annotated[bool, typer.Option("--verbose", help="Show Prefect's own log lines.")] = False,
 ) -> None:
@@ -180,7 +192,7 @@ def backfill(
             console.print(f"[{i}/{len(plan)}] {period}: already published, skipped (--force runs it again)")
             continue
         console.print(f"[{i}/{len(plan)}] {period}")
-        code = _run(period.label, config, inbox, out, demo=demo_key, verbose=verbose)
+        code = _run(period.label, config, inbox, out, demo=demo_key, verbose=verbose, revise=revise)
         worst = max(worst, code)
     raise typer.Exit(worst)
 

@@ -30,6 +30,7 @@ from pipeline.measures import measure_stage  # noqa: E402
 from pipeline.periods import Period  # noqa: E402
 from pipeline.pseudonymise import PseudonymKey, resolve_key  # noqa: E402
 from pipeline.report import write_report  # noqa: E402
+from pipeline.revisions import Release, carry_releases, describe, settle_release, stash_release  # noqa: E402
 from pipeline.publish import (  # noqa: E402
     commit_month,
     open_warehouse,
@@ -60,6 +61,8 @@ class RunContext:
     batch_checks: dict[str, dict[str, Any]] = field(default_factory=dict)
     touched_only: bool = False  # the validate stage settled only the versions new rows touch
     inbox_items: list[InboxFile] | None = None  # the scan stage's listing, read by the ingest stage
+    revise: str | None = None  # the reason given for a revision of an already published period
+    release: Release | None = None  # what the summarise stage published (pipeline/revisions.py)
 
 
 _RUNS: dict[str, RunContext] = {}
@@ -154,10 +157,13 @@ def link_task(run_id: str) -> dict[str, Any]:
 @task(name="summarise")
 def summarise_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
+        stash_release(ctx.con, ctx.period.label)  # the release now published, to compare with
         counts = summarise_stage(ctx.con, ctx.settings, ctx.period)
         published = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period)
+        ctx.release = settle_release(ctx.con, ctx.period.label, ctx.revise, headline(ctx))
         return {"tables": len(counts), "rows": sum(counts.values()),
-                "published rows": sum(published.values()), "by_table": counts}  # fmt: skip
+                "published rows": sum(published.values()), "by_table": counts,
+                "revision": ctx.release.revision}  # fmt: skip
 
     return _stage(run_id, "summarise", work)
 
@@ -177,6 +183,8 @@ def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
         folder = write_exports(ctx.con, ctx.out, ctx.period, {"run_summary.json": summary,
                                                                 "run_manifest.json": ctx.manifest},
                                demo_key=ctx.key.is_demo)
+        if ctx.release is not None:
+            carry_releases(ctx.out, ctx.period.label, folder, ctx.release)
         write_report(ctx.con, ctx.period.label, folder / "report.html")
         # staged beside the warehouse; moved into out/<period>/ once the month is committed
         final = ctx.out / ctx.period.label
@@ -211,13 +219,16 @@ def _quiet(name: str, seconds: float, text: str) -> None:
 
 
 def start_run(period: str, config_dir: str, inbox: str, out: str, demo: bool,
-              report: Callable[[str, float, str], None] = _quiet, executor: str | None = None) -> str:
+              report: Callable[[str, float, str], None] = _quiet, executor: str | None = None,
+              revise: str | None = None) -> str:
     """Open the warehouse and register the run; the caller runs the stages. ``executor``
-    overrides ``execution.executor`` of the config (local, shards or dask)."""
+    overrides ``execution.executor`` of the config (local, shards or dask); ``revise`` is the
+    reason for publishing a revision of an already published period (pipeline/revisions.py)."""
     settings = with_executor(load_settings(config_dir), executor)
     key = resolve_key(demo=demo)
     ctx = RunContext(settings, Period.parse(period), Path(inbox), Path(out), key,
                      open_warehouse(Path(out), settings.pipeline.execution.memory_limit), report)  # fmt: skip
+    ctx.revise = revise
     recover_interrupted_run(ctx.out, ctx.con)
     run_id = uuid.uuid4().hex
     ctx.run_id = run_id
@@ -247,12 +258,14 @@ def finish_run(run_id: str) -> dict[str, Any]:
 @flow(name="monthly_surveillance", log_prints=False)
 def monthly_surveillance(period: str | None = None, config_dir: str = "config",
                          inbox: str = "sample_extracts", out: str = "out",
-                         demo: bool = False, executor: str | None = None) -> dict[str, Any]:
+                         demo: bool = False, executor: str | None = None,
+                         revise: str | None = None) -> dict[str, Any]:
     """Ingest what is new, validate, measure, link, summarise and publish one month
     (``period`` None: the previous month, as a scheduled run does)."""
     period = period or Period.previous_month(dt.date.today()).label
     with run_lock(Path(out), period):
-        run_id = start_run(period, config_dir, inbox, out, demo, report=_reporter, executor=executor)
+        run_id = start_run(period, config_dir, inbox, out, demo, report=_reporter, executor=executor,
+                           revise=revise)
         try:
             return run_stages(run_id)
         finally:
@@ -285,6 +298,9 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
     ctx.manifest = build_manifest(ctx.run_id, ctx.started_at, ctx.settings, ctx.period.label,
                                   ctx.key.is_demo, ctx.stages, summary,
                                   input_files(ctx.con, ctx.period.label))  # fmt: skip
+    if ctx.release is not None:
+        ctx.manifest["revision"] = summary["revision"] = describe(
+            ctx.release, ctx.period.label, ctx.started_at.date().isoformat(), summary["headline"])
     record_run(ctx.con, ctx.manifest)
     summary["exit_code"] = ctx.manifest["exit_code"]
     call(export_task, run_id, summary)  # into <out>/.<period>.partial, inside the transaction
@@ -296,10 +312,11 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
 
 def run_month_plain(period: str, config_dir: str, inbox: str, out: str, demo: bool = False,
                     report: Callable[[str, float, str], None] = _quiet,
-                    executor: str | None = None) -> dict[str, Any]:
+                    executor: str | None = None, revise: str | None = None) -> dict[str, Any]:
     """The monthly run without Prefect (tests, benchmarks, debugging)."""
     with run_lock(Path(out), period):
-        run_id = start_run(period, config_dir, inbox, out, demo, report=report, executor=executor)
+        run_id = start_run(period, config_dir, inbox, out, demo, report=report, executor=executor,
+                           revise=revise)
         try:
             return run_stages(run_id, plain=True)
         finally:

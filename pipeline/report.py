@@ -1147,6 +1147,45 @@ footer { margin-top: 30px; font-size: .78rem; color: var(--muted); border-top: 1
 CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:"
 
 
+#: How the headline keys of the run manifest read in a revision banner.
+_HEADLINE_WORDS = {
+    "persons_tested_12m": "persons tested in 12 months",
+    "persons_confirmed_ckd": "persons with confirmed CKD",
+    "ckd_share_of_tested": "confirmed CKD, share of tested",
+    "persons_with_diabetes": "persons with diabetes",
+    "diabetes_with_egfr_and_acr": "with diabetes, both eGFR and ACR in 12 months",
+    "diabetes_share_with_both": "with diabetes, share with both",
+}
+
+
+def _revision_banner(revision: dict[str, Any]) -> str:
+    """A revised period says so before anything else: when, why, and the headline before/after."""
+    if not revision.get("reason"):
+        return ""
+
+    def shown(v: Any) -> str:
+        if v is None:
+            return "suppressed or not available"
+        return f"{v:.1%}" if isinstance(v, float) else f"{v:,}"
+
+    before, after = revision.get("headline_before") or {}, revision.get("headline_after") or {}
+    rows = "".join(
+        f"<tr><td>{_e(_HEADLINE_WORDS.get(k, k))}</td><td>{_e(shown(before.get(k)))}</td>"
+        f"<td>{_e(shown(after.get(k)))}</td></tr>"
+        for k in _HEADLINE_WORDS if k in before or k in after
+    )
+    return (
+        f'<div class="banner" id="revision-banner" role="alert"><p>Revised release: revision '
+        f"{_e(str(revision.get('number')))} of this period, published {_e(str(revision.get('revised_on')))}, "
+        f"replaces revision {_e(str(revision.get('previous')))} (published "
+        f"{_e(str(revision.get('previous_published_at', ''))[:10])}). Reason: {_e(str(revision.get('reason')))}. "
+        f"The earlier release stays readable (exports in revisions/{_e(str(revision.get('previous')))}/, "
+        "tables in schema published_history).</p>"
+        f"<table><thead><tr><th>headline</th><th>before</th><th>after</th></tr></thead><tbody>{rows}"
+        "</tbody></table></div>"
+    )
+
+
 def _render(data: _Data) -> str:
     title = f"Kidney surveillance report, {data.period_words}"
     names = [data.districts[c] for c in sorted(data.districts)]
@@ -1155,6 +1194,7 @@ def _render(data: _Data) -> str:
     banner = ""
     if data.demo_key is not False:
         banner = f'<p class="banner" id="demo-banner" role="alert">{_e(data.key_notice)}</p>'
+    banner += _revision_banner(data.manifest.get("revision") or {})
     held = data.manifest.get("quality_gate", {}).get("held_back_sources") or {}
     held_note = ""
     if held:

@@ -62,6 +62,9 @@ def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
         con.execute(read_sql(table))
     # columns added after a table was first written (warehouses made by an earlier version)
     con.execute("alter table ingest_files add column if not exists extract_month varchar")
+    con.execute("alter table ingest_files add column if not exists config_sha256 varchar")
+    con.execute("alter table runs add column if not exists revision integer")
+    con.execute("alter table runs add column if not exists revision_reason varchar")
 
 
 def build_table(con: duckdb.DuckDBPyConnection, name: str, target: str | None = None,
