@@ -77,6 +77,11 @@ def _print_summary(summary: dict, out: Path) -> None:
         console.print(f"  [yellow]held back file[/] {path}: {message}")
     for source, message in summary["held_back_sources"].items():
         console.print(f"  [yellow]held back source[/] {source}: {message}")
+    for source, message in (summary.get("config_drift") or {}).items():
+        console.print(f"  [bold yellow]config changed[/] {message}", soft_wrap=True)
+    for period, n in (summary.get("late_results") or {}).items():
+        console.print(f"  [yellow]late results[/] for published period {period}: {n:,} received now that would "
+                      f"change it if revised ('kidneysurv run --period {period} --revise \"...\"')")
     rev = summary.get("revision") or {}
     if rev.get("reason"):
         console.print(f"  [yellow]revision {rev['number']}[/] of {summary['period']} (revision {rev['previous']} "
@@ -195,6 +200,63 @@ def backfill(
         code = _run(period.label, config, inbox, out, demo=demo_key, verbose=verbose, revise=revise)
         worst = max(worst, code)
     raise typer.Exit(worst)
+
+
+@app.command()
+def reprocess(
+    source_id: Annotated[str, typer.Argument(help="Source id, as in config/sources/<id>.yaml.")],
+    from_month: Annotated[Optional[str], typer.Option("--from-month", metavar="YYYY-MM", help="Only the files of extract months from this one on.")] = None,
+    file: Annotated[Optional[str], typer.Option("--file", help="Only this file (path in the inbox).")] = None,
+    apply: Annotated[bool, typer.Option("--apply", help="Apply it (default: a dry run that shows the difference).")] = False,
+    config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
+    inbox: Annotated[Path, typer.Option(help="Inbox folder.")] = Path("sample_extracts"),
+    out: Annotated[Path, typer.Option(help="Output folder: warehouse and exports.")] = Path("out"),
+    demo_key: Annotated[bool, typer.Option("--demo-key", help="Use the public demo key (samples only).")] = False,
+) -> None:
+    """Read a source's stored files again under its current config and replace what they gave
+    (old rows kept as superseded versions). A dry run unless --apply; publish the periods it
+    changes with 'run --period P --revise REASON'."""
+    from pipeline.reprocess import ReprocessRefused, reprocess_source
+
+    try:
+        if from_month:
+            Period.parse(from_month)
+        load_settings(config).source(source_id)
+    except (ValueError, ConfigError) as exc:
+        _fail(str(exc))
+    try:
+        r = reprocess_source(config, inbox, out, source_id, from_month=from_month, file=file, apply=apply,
+                             demo=demo_key)
+    except (ReprocessRefused, KeyMissing) as exc:
+        _fail(str(exc))
+    except RunLocked as exc:
+        err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
+        raise typer.Exit(EXIT_LOCKED) from None
+    if r.skipped_current:
+        console.print(f"{len(r.skipped_current)} file(s) of {source_id} already made under the current config "
+                      f"({r.config_after[:12]}): left as they are")
+    if not r.files:
+        console.print(f"{source_id}: nothing to reprocess")
+        raise typer.Exit(EXIT_OK)
+    verb = "reprocessed" if r.applied else "would be reprocessed (dry run; --apply applies it)"
+    console.print(f"{source_id}: {len(r.files)} file(s) {verb} under config {r.config_after[:12]}")
+    table = Table(title="rows per outcome", title_justify="left")
+    for c in ("outcome", "before", "after", "change"):
+        table.add_column(c, justify="left" if c == "outcome" else "right")
+    for name, (b, a) in r.outcomes.items():
+        table.add_row(name, f"{b:,}", f"{a:,}", f"{a - b:+,}")
+    console.print(table)
+    for reason, (b, a) in r.reasons.items():
+        if a != b:
+            console.print(f"  rejected {reason}: {b:,} -> {a:,} ({a - b:+,})")
+    for other, pairs in r.other_sources.items():
+        changes = ", ".join(f"{k} {b:,} -> {a:,}" for k, (b, a) in pairs.items() if a != b)
+        console.print(f"  other source {other}: {changes}")
+    if r.periods:
+        console.print(f"  published periods it reaches: {', '.join(r.periods)}; "
+                      + ("publish each with" if r.applied else "after --apply, publish each with")
+                      + " 'kidneysurv run --period P --revise \"reason\"'")
+    raise typer.Exit(EXIT_OK)
 
 
 @app.command()

@@ -30,7 +30,15 @@ from pipeline.measures import measure_stage  # noqa: E402
 from pipeline.periods import Period  # noqa: E402
 from pipeline.pseudonymise import PseudonymKey, resolve_key  # noqa: E402
 from pipeline.report import write_report  # noqa: E402
-from pipeline.revisions import Release, carry_releases, describe, settle_release, stash_release  # noqa: E402
+from pipeline.reprocess import config_drift, hold_back_drifted  # noqa: E402
+from pipeline.revisions import (  # noqa: E402
+    Release,
+    carry_releases,
+    describe,
+    late_results,
+    settle_release,
+    stash_release,
+)
 from pipeline.publish import (  # noqa: E402
     commit_month,
     open_warehouse,
@@ -63,6 +71,7 @@ class RunContext:
     inbox_items: list[InboxFile] | None = None  # the scan stage's listing, read by the ingest stage
     revise: str | None = None  # the reason given for a revision of an already published period
     release: Release | None = None  # what the summarise stage published (pipeline/revisions.py)
+    config_drift: dict[str, str] = field(default_factory=dict)  # source -> message (pipeline/reprocess.py)
 
 
 _RUNS: dict[str, RunContext] = {}
@@ -84,8 +93,14 @@ def _stage(run_id: str, name: str, work: Callable[[RunContext], dict[str, Any]])
 def scan_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         items = scan_inbox(ctx.con, ctx.settings, ctx.inbox)
+        # a source whose config changed since its stored rows were made: said, and its new files
+        # held back until it is reprocessed (pipeline/reprocess.py), never mixed silently
+        drift = config_drift(ctx.con, ctx.settings)
+        hold_back_drifted(items, drift)
+        ctx.config_drift = {s: d.message() for s, d in drift.items()}
         ctx.inbox_items = items  # hashed once: the ingest stage reads what was scanned
-        return {"files": len(items), "new": sum(i.status != "already_ingested" for i in items)}
+        return {"files": len(items), "new": sum(i.status != "already_ingested" for i in items),
+                "config changed": len(drift)}
 
     return _stage(run_id, "scan", work)
 
@@ -294,6 +309,8 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
         "persons": link["persons"],
         "headline": headline(ctx),
         "batch_checks": ctx.batch_checks,
+        "config_drift": ctx.config_drift,
+        "late_results": late_results(ctx.con, ctx.period.label),
     }
     ctx.manifest = build_manifest(ctx.run_id, ctx.started_at, ctx.settings, ctx.period.label,
                                   ctx.key.is_demo, ctx.stages, summary,

@@ -33,6 +33,7 @@ import duckdb
 import polars as pl
 
 from pipeline import identifiers
+from pipeline.manifest import source_config_sha256
 from pipeline.pseudonymise import SHARED_DOMAIN, PersonKeyCache, PseudonymKey, add_person_keys
 from pipeline.settings import STANDARD_FIELDS, STANDARD_REQUIRED, Settings, SourceConfig
 from pipeline.warehouse import with_frame
@@ -61,7 +62,7 @@ class InboxFile:
     rel_path: str
     sha256: str
     size_bytes: int
-    status: str = "new"  # new | already_ingested | duplicate_file | unreadable
+    status: str = "new"  # new | already_ingested | duplicate_file | unreadable | held_back (config drift)
     same_as: str | None = None
     file_id: int | None = None
     #: why the file could not be read at the scan (status unreadable)
@@ -769,7 +770,7 @@ def land_inbox(
             "and status = 'ingested' order by file_id limit 1",
             [item.source_id, item.sha256],
         ).fetchall() if item.status == "duplicate_file" else []  # fmt: skip
-        if item.status == "unreadable":
+        if item.status in ("unreadable", "held_back"):  # held_back: the source's config changed
             status, message = "held_back", item.fault
             summary.files_held_back += 1
             summary.held_back.append((item.rel_path, item.fault or ""))
@@ -808,11 +809,11 @@ def land_inbox(
                     )
         con.execute(
             "insert into ingest_files (file_id, source_id, file_path, version, sha256, size_bytes, "
-            "status, message, rows_read, rows_duplicate, run_period, extract_month, ingested_at) "
-            "values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, current_timestamp)",
+            "status, message, rows_read, rows_duplicate, run_period, extract_month, ingested_at, config_sha256) "
+            "values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, current_timestamp, ?)",
             [item.file_id, item.source_id, item.rel_path, version, item.sha256, item.size_bytes,
              status, message, rows_read, rows_read if status == "duplicate_file" else 0, run_period,
-             extract_month(item.rel_path, run_period)],
+             extract_month(item.rel_path, run_period), source_config_sha256(settings, item.source_id)],
         )  # fmt: skip
     return summary
 

@@ -194,3 +194,32 @@ def carry_releases(out_dir: Path, period: str, staged: Path, release: Release) -
         earlier = target / str(release.previous)
         shutil.rmtree(earlier, ignore_errors=True)
         shutil.copytree(final, earlier, ignore=lambda d, names: [REVISIONS_FOLDER] if Path(d) == final else [])
+
+
+def late_results(con: duckdb.DuckDBPyConnection, period: str) -> dict[str, int]:
+    """Per earlier published period, the results this run received that would change it if it
+    were revised: versions stored by this run (not duplicates, not preliminary) collected and
+    reported by that period's end. (A period is rebuilt as known at its end, so a result reported
+    later can never change it; those are not counted.)"""
+    exists = con.execute(
+        "select count(*) from duckdb_tables() where temporary and table_name = 'landed_files'"
+    ).fetchall()[0][0]
+    if not exists:
+        return {}
+    rows = con.execute(
+        """
+        with earlier as (
+            select distinct period, last_day(strptime(period || '-01', '%Y-%m-%d'))::date as period_end
+            from runs where period < $p
+        )
+        select e.period, count(*) as results
+        from earlier as e
+        join result_versions as v
+          on v.file_id in (select file_id from landed_files)
+         and v.collected_date <= e.period_end and v.reported_date <= e.period_end
+        where v.outcome <> 'duplicate' and v.status <> 'preliminary'
+        group by e.period order by e.period
+        """,
+        {"p": period},
+    ).fetchall()
+    return {p: int(n) for p, n in rows}

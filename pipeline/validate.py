@@ -161,7 +161,7 @@ class Scope:
     persons: int
 
 
-def settle_scope(con: duckdb.DuckDBPyConnection) -> Scope:
+def settle_scope(con: duckdb.DuckDBPyConnection, full: bool = False) -> Scope:
     """Point the view ``versions_in_scope`` at the versions whose outcome this run must settle.
 
     New rows (this run's ``new_versions``) can change only the outcome of versions that share a
@@ -170,7 +170,8 @@ def settle_scope(con: duckdb.DuckDBPyConnection) -> Scope:
     person) or the same source + specimen + analyte (versions with a specimen id, which a
     faulty extract may give under two persons). The scope is the closure of both relations,
     taken until it stops growing, so settling it gives exactly what settling every version
-    would. When most versions are new (a first run, a backfill) the whole table is the scope.
+    would. When most versions are new (a first run, a backfill) the whole table is the scope,
+    and so it is when ``full`` (a reprocess, whose replaced rows no longer seed the closure).
     """
     con.execute(
         "create or replace temp view all_versions as "
@@ -179,7 +180,7 @@ def settle_scope(con: duckdb.DuckDBPyConnection) -> Scope:
     stored = con.execute("select count(*) from result_versions").fetchall()[0][0]
     new = con.execute("select count(*) from new_versions").fetchall()[0][0]
     total = stored + new
-    if total == 0 or new >= FULL_SCOPE_SHARE * total:
+    if total == 0 or full or new >= FULL_SCOPE_SHARE * total:
         con.execute("create or replace temp view versions_in_scope as select * from all_versions")
         persons = con.execute("select count(distinct person_key) from all_versions").fetchall()[0][0]
         return Scope("all", total, persons)
@@ -245,14 +246,14 @@ def close_over_partitions(con: duckdb.DuckDBPyConnection, seed: str, params: dic
     return size
 
 
-def resolve_versions(con: duckdb.DuckDBPyConnection) -> tuple[int, Scope]:
+def resolve_versions(con: duckdb.DuckDBPyConnection, full: bool = False) -> tuple[int, Scope]:
     """Settle the outcome of the versions in scope and bring lab_results up to date.
 
     Returns the rows of lab_results (a view: the accepted versions) and the scope; in a touched
     scope ``scope_persons`` names the persons whose results may have changed, for the measure
     stage.
     """
-    scope = settle_scope(con)
+    scope = settle_scope(con, full)
     build_table(con, "int_result_versions_resolved", params={"as_of": NO_LIMIT}, temporary=True)
     if scope.kind == "touched":
         # the results whose accepted set this run can change: its own versions and the stored
