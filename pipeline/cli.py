@@ -128,9 +128,11 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
                 _fail(str(exc))
             except RevisionNeeded as exc:
                 _fail(str(exc))
+            if summary.get("revision_refused"):
+                _fail(summary["revision_refused"])
             console.print(f"  {'total':<10} {time.perf_counter() - started:6.1f} s (with Prefect)")
             _print_summary(summary, out)
-            held = summary["held_back_sources"] or summary["held_back_files"]
+            held = summary["held_back_sources"] or summary["held_back_files"] or summary.get("config_drift")
             return EXIT_HELD_BACK if held else EXIT_OK
     except RunLocked as exc:
         err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)

@@ -33,6 +33,7 @@ from pipeline.report import write_report  # noqa: E402
 from pipeline.reprocess import config_drift, hold_back_drifted  # noqa: E402
 from pipeline.revisions import (  # noqa: E402
     Release,
+    RevisionNeeded,
     carry_releases,
     describe,
     late_results,
@@ -72,6 +73,7 @@ class RunContext:
     revise: str | None = None  # the reason given for a revision of an already published period
     release: Release | None = None  # what the summarise stage published (pipeline/revisions.py)
     config_drift: dict[str, str] = field(default_factory=dict)  # source -> message (pipeline/reprocess.py)
+    refused: str | None = None  # why this run may not publish (a revision without a reason)
 
 
 _RUNS: dict[str, RunContext] = {}
@@ -175,7 +177,11 @@ def summarise_task(run_id: str) -> dict[str, Any]:
         stash_release(ctx.con, ctx.period.label)  # the release now published, to compare with
         counts = summarise_stage(ctx.con, ctx.settings, ctx.period)
         published = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period)
-        ctx.release = settle_release(ctx.con, ctx.period.label, ctx.revise, headline(ctx))
+        try:
+            ctx.release = settle_release(ctx.con, ctx.period.label, ctx.revise, headline(ctx))
+        except RevisionNeeded as exc:  # not a failure of the task: the run stops, unpublished
+            ctx.refused = str(exc)
+            return {"tables": len(counts), "revision": "refused (already published; --revise needed)"}
         return {"tables": len(counts), "rows": sum(counts.values()),
                 "published rows": sum(published.values()), "by_table": counts,
                 "revision": ctx.release.revision}  # fmt: skip
@@ -300,6 +306,8 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
     call(measure_task, run_id)
     link = call(link_task, run_id)
     call(summarise_task, run_id)
+    if ctx.refused:  # nothing is published: the caller rolls the transaction back
+        return {"period": ctx.period.label, "revision_refused": ctx.refused}
     summary = {
         "period": ctx.period.label,
         "demo_key": ctx.key.is_demo,
@@ -318,6 +326,10 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
     if ctx.release is not None:
         ctx.manifest["revision"] = summary["revision"] = describe(
             ctx.release, ctx.period.label, ctx.started_at.date().isoformat(), summary["headline"])
+    if ctx.config_drift:
+        ctx.manifest["config_drift"] = ctx.config_drift
+        if ctx.manifest["exit_code"] == 0:  # published, but a source's current config is not applied yet
+            ctx.manifest["exit_code"], ctx.manifest["status"] = 1, "published_with_config_drift"
     record_run(ctx.con, ctx.manifest)
     summary["exit_code"] = ctx.manifest["exit_code"]
     call(export_task, run_id, summary)  # into <out>/.<period>.partial, inside the transaction
@@ -330,14 +342,18 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
 def run_month_plain(period: str, config_dir: str, inbox: str, out: str, demo: bool = False,
                     report: Callable[[str, float, str], None] = _quiet,
                     executor: str | None = None, revise: str | None = None) -> dict[str, Any]:
-    """The monthly run without Prefect (tests, benchmarks, debugging)."""
+    """The monthly run without Prefect (tests, benchmarks, debugging); raises
+    :class:`RevisionNeeded` when the period is published and would change without ``revise``."""
     with run_lock(Path(out), period):
         run_id = start_run(period, config_dir, inbox, out, demo, report=report, executor=executor,
                            revise=revise)
         try:
-            return run_stages(run_id, plain=True)
+            summary = run_stages(run_id, plain=True)
         finally:
             finish_run(run_id)
+    if summary.get("revision_refused"):
+        raise RevisionNeeded(summary["revision_refused"])
+    return summary
 
 
 # The console reporter of the flow: kept out of the flow's parameters (a function is not a

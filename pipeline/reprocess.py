@@ -288,7 +288,8 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
         raise ReprocessRefused(
             f"source {source.id}: none of the {old_persons} persons of the stored rows has the same person key "
             "now: the pseudonymisation key is not the one the warehouse was built with; nothing was reprocessed")
-    result.outcomes = _pairs(outcomes_before, _outcomes(con))
+    outcomes_after = _outcomes(con)
+    result.outcomes = {k: (outcomes_before[k], outcomes_after[k]) for k in ALL_OUTCOMES}
     result.reasons = _pairs(reasons_before, _reasons(con))
     after = _by_source(con)
     result.other_sources = {s: _pairs(sources_before.get(s, {}), after.get(s, {})) for s in sorted(set(after) | set(sources_before))

@@ -197,7 +197,8 @@ def carry_releases(out_dir: Path, period: str, staged: Path, release: Release) -
 
 
 def late_results(con: duckdb.DuckDBPyConnection, period: str) -> dict[str, int]:
-    """Per earlier published period, the results this run received that would change it if it
+    """Per other published period (earlier ones, and later ones when an earlier period is
+    revised), the results this run received that would change it if it
     were revised: versions stored by this run (not duplicates, not preliminary) collected and
     reported by that period's end. (A period is rebuilt as known at its end, so a result reported
     later can never change it; those are not counted.)"""
@@ -210,7 +211,7 @@ def late_results(con: duckdb.DuckDBPyConnection, period: str) -> dict[str, int]:
         """
         with earlier as (
             select distinct period, last_day(strptime(period || '-01', '%Y-%m-%d'))::date as period_end
-            from runs where period < $p
+            from runs where period <> $p
         )
         select e.period, count(*) as results
         from earlier as e

@@ -102,3 +102,19 @@ def test_a_revision_keeps_the_earlier_release_readable(first_release):
     again = run_month_plain(PERIOD, str(config), str(inbox), str(out), demo=True)
     assert again["revision"]["number"] == 2
     assert (out / PERIOD / "revisions" / "1" / "district_ckd_prevalence.csv").read_bytes() == old_csv
+
+
+def test_a_run_lists_late_results_per_earlier_published_period(first_release):
+    """June is published; July's run receives a resent June file (reported in June: it would
+    change June) and July's own extract with results collected in June but reported in July
+    (June is rebuilt as known at its end, so these can never change it)."""
+    config, inbox, out = first_release
+    july = [HEADER] + [f"WF-jl{i:04d},1955,F,WF01,jl{i:03d},2025-06-28,2160-0,1.1,mg/dL,final,2025-07-02"
+                       for i in range(12)]  # fmt: skip
+    write_inbox(inbox.parent, {f"{LAB}/results_2025-06_resent.csv": extract("lt", 20),
+                               f"{LAB}/results_2025-07.csv": "\n".join(july) + "\n"}, name=inbox.name)  # fmt: skip
+    summary = run_month_plain("2025-07", str(config), str(inbox), str(out), demo=True)
+    assert summary["late_results"] == {"2025-06": 40}  # 20 persons, two results each
+    assert summary["revision"]["number"] == 1  # July's first release; June untouched
+    assert published(out, "select distinct revision from published.district_ckd_prevalence where period = ?",
+                     [PERIOD]) == [(1,)]  # fmt: skip
