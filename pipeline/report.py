@@ -1200,6 +1200,11 @@ def _render(data: _Data) -> str:
     if held:
         held_note = ('<p class="notice">Held back by the quality gate this month (not in the counts): '
                      + ", ".join(_e(s) for s in sorted(held)) + ".</p>")  # fmt: skip
+    drift = data.manifest.get("config_drift") or {}
+    if drift:
+        held_note += ('<p class="notice" id="config-drift">Config changed since their rows were stored, not yet '
+                      "reprocessed (their new files are held back; these figures use their rows as first "
+                      "read): " + ", ".join(_e(s) for s in sorted(drift)) + ".</p>")  # fmt: skip
     cards = []
     for h in _headlines(data):
         klass = " suppressed" if h.value.startswith(("suppressed", "not available")) else ""

@@ -143,6 +143,8 @@ def test_a_run_after_a_config_change_says_so_and_holds_the_new_files_back(wrongl
     assert "kidneysurv reprocess corvale_lab_chain" in summary["config_drift"][LAB]
     assert list(summary["held_back_files"]) == [f"{LAB}/export_202507.csv"]
     assert count(out, "select count(*) from result_versions where file_id = 3") == 0
+    assert 'id="config-drift"' in (out / "2025-07" / "report.html").read_text(encoding="utf-8")
+    assert count(out, "select exit_code from runs where period = '2025-07'") == 1
 
 
 def test_a_missing_or_changed_file_is_refused_by_name(wrongly_mapped):
