@@ -159,8 +159,20 @@ def _differs_for(con: duckdb.DuckDBPyConnection, name: str, period: str) -> bool
     old_rows = _stash_exists(con, name) and con.execute(f"select count(*) from stash_{name}").fetchall()[0][0] > 0
     if not new_rows or not old_rows:
         return bool(new_rows) != bool(old_rows)
-    new = f"(select * exclude (revision) from published.{name} where period = $p)"
-    old = f"(select * exclude (revision) from stash_{name})"
+    # by column name: a table an upgrade gave a new column has changed (and cannot be compared
+    # by position)
+    new_cols = [c for (c,) in con.execute(
+        "select column_name from duckdb_columns() where schema_name = 'published' and table_name = ? "
+        "and database_name = current_database() order by column_index", [name]).fetchall()]  # fmt: skip
+    old_cols = [c for (c,) in con.execute(
+        "select column_name from duckdb_columns() where database_name = 'temp' and table_name = ? "
+        "order by column_index",
+        [f"stash_{name}"]).fetchall()]  # fmt: skip
+    if set(new_cols) != set(old_cols):
+        return True
+    cols = ", ".join(f'"{c}"' for c in new_cols if c != "revision")
+    new = f"(select {cols} from published.{name} where period = $p)"
+    old = f"(select {cols} from stash_{name})"
     n = con.execute(f"select count(*) from ({new} except all {old} union all ({old} except all {new}))",
                     {"p": period}).fetchall()[0][0]  # fmt: skip
     return n > 0
