@@ -368,6 +368,13 @@ def _cells_frame(con: duckdb.DuckDBPyConnection, present: dict[str, str]) -> Any
 
 def _totals_frame(con: duckdb.DuckDBPyConnection) -> Any:
     """One row per source with rows in the run: batch, rejected, duplicated ids, rows read."""
+    # this run's files: those it landed (a reprocess lands earlier files again), else every file
+    # from the batch's first on
+    landed = con.execute(
+        "select count(*) from duckdb_tables() where temporary and table_name = 'landed_files'"
+    ).fetchall()[0][0]
+    these_files = ("file_id in (select file_id from landed_files)" if landed
+                   else f"file_id >= (select min(file_id) from {_TABLE})")  # fmt: skip
     return _frame(con, f"""
         with batch as (
             select source_id,
@@ -385,7 +392,7 @@ def _totals_frame(con: duckdb.DuckDBPyConnection) -> Any:
         files as (
             select source_id, sum(rows_read) as rows_read
             from ingest_files
-            where status <> 'duplicate_file' and file_id >= (select min(file_id) from {_TABLE})
+            where status <> 'duplicate_file' and {these_files}
             group by source_id
         )
         select b.source_id, b.rows, b.rejected, b.rows + b.rejected as rows_landed,

@@ -184,3 +184,16 @@ def test_a_reprocess_killed_midway_leaves_the_previous_state(wrongly_mapped, poi
     assert count(out, "select count(*) from result_versions_replaced") == 0
     # and the next reprocess does it whole
     assert reprocess_source(fixed, inbox, out, LAB, apply=True, demo=True).applied
+
+
+def test_one_earlier_file_passes_the_expectation_suites(wrongly_mapped):
+    """With Great Expectations on, the batch of a reprocess is one earlier file: the suites'
+    row balance counts that file, not every later one of the source."""
+    from tests.conftest import edit_pipeline_yaml
+
+    _, fixed, inbox, out = wrongly_mapped
+    edit_pipeline_yaml(fixed, "quality_gate", "great_expectations", True)
+    edit_pipeline_yaml(fixed, "quality_gate", "data_docs", "never")
+    done = reprocess_source(fixed, inbox, out, LAB, file=f"{LAB}/export_202505.csv", apply=True, demo=True)
+    assert done.applied and done.files == [f"{LAB}/export_202505.csv"]
+    assert done.outcomes["accepted"] == (60, 60)
