@@ -171,6 +171,9 @@ class MeasureSettings(_Strict):
     diabetes_hba1c_mmol_mol: float = 48
     diabetes_fasting_glucose_mg_dl: float = 126
     diabetes_fasting_glucose_mmol_l: float = 7.0
+    #: confirmed: two abnormal results, on one day from two different tests or on two days (ADA
+    #: Standards of Care); single: one abnormal result.
+    diabetes_rule: Literal["confirmed", "single"] = "confirmed"
 
 
 class TrajectorySettings(_Strict):
@@ -186,6 +189,16 @@ class TrajectorySettings(_Strict):
     rapid_decline_min_values: int = Field(default=3, ge=2)
     rapid_decline_min_span_days: int = Field(default=365, gt=0)
     progression_decline: float = Field(default=0.25, gt=0, lt=1)
+    #: Progression must hold over consecutive daily eGFRs spanning this many days (chronicity).
+    progression_min_span_days: int = Field(default=90, gt=0)
+
+    @field_validator("ckd_acr_at_or_above_mg_g")
+    @classmethod
+    def _kdigo_a2(cls, value: float) -> float:
+        if value != 30:
+            raise ValueError("the CKD-by-albuminuria rule follows the KDIGO A2 category in the unit "
+                             "reported (30 mg/g, 3 mg/mmol, 30 mg/24 h); this must be 30")
+        return value
 
     @field_validator("decline_thresholds")
     @classmethod

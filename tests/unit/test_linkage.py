@@ -41,7 +41,8 @@ def warehouse(settings):
         create table measures_base (
             person_key varchar, collected_date date, reported_date date, analyte varchar,
             egfr double, acr_mg_g double, is_acr_estimated boolean, a_category varchar,
-            aer_mg_24h double
+            aer_mg_24h double, age_years bigint, acr_basis varchar, acr_comparator varchar,
+            is_at_or_above_a2 boolean
         )
         """
     )
@@ -60,17 +61,19 @@ def day(offset: int) -> dt.date:
 
 
 def insert(con, person: str, egfr: list[tuple[int, float]] = (), acr: list[tuple[int, float]] = (),
-           estimated_acr: bool = False, reported_lag: int = 1) -> None:  # fmt: skip
+           estimated_acr: bool = False, reported_lag: int = 1, age: int = 50) -> None:  # fmt: skip
     for offset, value in egfr:
         con.execute(
-            "insert into measures_base values (?, ?, ?, 'creatinine', ?, null, null, null, null)",
-            [person, day(offset), day(offset + reported_lag), value],
+            "insert into measures_base values (?, ?, ?, 'creatinine', ?, null, null, null, null, ?, "
+            "null, null, null)",
+            [person, day(offset), day(offset + reported_lag), value, age],
         )
     for offset, value in acr:
         con.execute(
-            "insert into measures_base values (?, ?, ?, 'acr', null, ?, ?, ?, null)",
+            "insert into measures_base values (?, ?, ?, 'acr', null, ?, ?, ?, null, ?, ?, null, ?)",
             [person, day(offset), day(offset + reported_lag), value, estimated_acr,
-             "A1" if value < 30 else "A2" if value <= 300 else "A3"],
+             "A1" if value < 30 else "A2" if value <= 300 else "A3", age,
+             "estimated_from_pcr" if estimated_acr else "measured_acr", value >= 30],
         )
 
 
@@ -233,7 +236,8 @@ def test_rules_follow_the_settings(settings):
     rules = trajectory_rules(settings)
     by_id = {r["rule_id"]: r for r in rules.iter_rows(named=True)}
     assert set(by_id) == {"sustained_decline_30", "sustained_decline_40", "sustained_decline_57",
-                          "kidney_failure", "ckd_egfr", "ckd_acr"}  # fmt: skip
+                          "kidney_failure", "ckd_egfr", "ckd_acr", "progression"}  # fmt: skip
+    assert by_id["progression"]["min_span_days"] == 90 and by_id["progression"]["threshold"] == 0.25
     assert by_id["sustained_decline_40"]["threshold"] == 0.40
     assert by_id["sustained_decline_40"]["after_baseline"] is True
     assert by_id["ckd_egfr"]["min_span_days"] == 90
@@ -279,12 +283,14 @@ def test_progression_needs_a_worse_category_and_a_25_percent_fall(warehouse):
 
 
 def test_new_onset_albuminuria_after_diabetes(warehouse):
-    # ADA: HbA1c >= 6.5 % evidences diabetes; new-onset = first A2/A3 after that, none before
+    # ADA: HbA1c >= 6.5 % on two days evidences diabetes (on the second); new-onset = first
+    # A2/A3 after that, none before
     for person, hba1c_day in (("onset", 10), ("before", 100)):
-        warehouse.execute(
-            "insert into int_results_known values (?, ?, ?, 'hba1c', null, '%', 7.2, null)",
-            [person, day(hba1c_day), day(hba1c_day + 1)],
-        )
+        for d in (hba1c_day - 7, hba1c_day):
+            warehouse.execute(
+                "insert into int_results_known values (?, ?, ?, 'hba1c', null, '%', 7.2, null)",
+                [person, day(d), day(d + 1)],
+            )
     insert(warehouse, "onset", acr=[(5, 12.0), (60, 45.0)])
     insert(warehouse, "before", acr=[(50, 45.0), (150, 60.0)])  # albuminuric before diabetes
     events = build(warehouse)

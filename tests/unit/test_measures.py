@@ -135,7 +135,7 @@ def test_hyperfiltration_flag_above_the_configured_threshold():
         (3 * 8.84, "<", "A1", None),  # "<3 mg/mmol" (1 mg/mmol = 8.84 mg/g): every value is A1
         (300.0, ">", "A3", None),  # ">300 mg/g": every value is A3
         (300.0, ">=", None, "censored_ambiguous"),  # could be 300 (A2) or more (A3)
-        (100.0, "<", None, "censored_ambiguous"),  # could be A1 or A2
+        (100.0, "<", None, "censored_spans_a2_threshold"),  # could be A1 or A2
     ],
 )
 def test_measured_acr_categories(value, comparator, category, reason):
@@ -166,10 +166,11 @@ def test_timed_albumin_excretion_uses_its_own_thresholds(aer, category):
 
 @pytest.mark.parametrize(
     ("reading", "category"),
-    [("negative", "A1"), ("Trace", "A2"), ("1+", "A2"), ("++", "A3"), ("3+", "A3")],
+    [("negative", "A1"), ("Trace", None), ("1+", "A2"), ("++", "A3"), ("3+", "A3")],
 )
 def test_dipstick_gives_an_estimated_category_only(reading, category):
-    # Sumida et al., Ann Intern Med 2020 (confirmed mapping): trace to + ~ A2, ++ or more ~ A3
+    # KDIGO 2012 (reagent strip row, from memory) and Sumida et al., Ann Intern Med 2020:
+    # negative ~ A1, trace on the A1/A2 border (no category), + ~ A2, ++ or more ~ A3
     row = one(measures(result(1, "urine_protein_dipstick", None, text=reading)), 1)
     assert row["acr_basis"] == "estimated_from_dipstick"
     assert row["a_category"] == category
@@ -207,10 +208,11 @@ def test_a_negative_dipstick_does_not_count_as_an_acr_screen(tmp_path: Path):
     by a urine dipstick, so screening coverage counts a measured ACR only (KDIGO 2012)."""
     config = make_small_config(tmp_path / "config")
     lines = [HEADER]
-    for n in range(12):  # 12 people with diabetes (HbA1c 7.0 %, ADA >= 6.5 %): above suppression
+    for n in range(12):  # 12 people with diabetes (HbA1c 7.0 % twice, ADA >= 6.5 %): above suppression
         token = f"WF-d{n:02d}"
         lines += [
             f"{token},1960,F,WF01,H{n},2026-01-05,4548-4,7.0,%,final,2026-01-06",
+            f"{token},1960,F,WF01,I{n},2026-01-02,4548-4,7.0,%,final,2026-01-06",
             f"{token},1960,F,WF01,C{n},2026-01-05,2160-0,1.0,mg/dL,final,2026-01-06",
             f"{token},1960,F,WF01,D{n},2026-01-05,5804-0,negative,,final,2026-01-06",
         ]
