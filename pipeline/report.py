@@ -973,9 +973,11 @@ def _methods_section(data: _Data) -> str:
     definitions = [
         ("Persons tested", f"Persons with at least one eGFR or urine ACR collected in the {window} months "
          f"ending {_e(data.end_words)}, counted once whichever labs they used."),
-        ("Confirmed CKD", f"An eGFR below {ckd_egfr} mL/min/1.73 m², or ACR at or above {ckd_acr} mg/g, on "
-         f"consecutive days of testing spanning at least {ckd_days} days: kidney damage or reduced function "
-         "lasting more than three months, as KDIGO 2012 defines CKD. One low value is not enough."),
+        ("Confirmed CKD", f"An eGFR below {ckd_egfr} mL/min/1.73 m², or albuminuria in category A2 or A3 "
+         f"(ACR at or above {ckd_acr} mg/g or 3 mg/mmol in the unit reported, or a timed excretion of 30 mg/24 h), "
+         f"on consecutive days of testing spanning at least {ckd_days} days: kidney damage or reduced function "
+         "lasting more than three months, as KDIGO 2012 defines CKD. One low value is not enough. A censored "
+         "ACR (such as <5 mg/mmol) counts only where it is certainly below or above A2."),
         ("Share of tested and per 1,000 residents", "The share is among persons tested, who are not a random "
          "sample of residents; per 1,000 residents divides the same count by the whole resident population. "
          "Neither is the prevalence of CKD in the population."),
@@ -983,7 +985,10 @@ def _methods_section(data: _Data) -> str:
          f"{base_days} days) stay at or below the baseline less {decline} for at least {decline_days} days "
          "(Levey et al. 2014). Followed in the warehouse; not among this report's tables."),
         ("Lab-evidenced diabetes", f"An HbA1c at or above {hba1c} % ({hba1c_ifcc} mmol/mol) or fasting glucose at "
-         f"or above {glucose} mg/dL ({glucose_si} mmol/L) on any result (ADA Standards of Care)."),
+         f"or above {glucose} mg/dL ({glucose_si} mmol/L) (ADA Standards of Care), "
+         + ("confirmed by a second abnormal result: on the same day from the other test, or on another day."
+            if t("measures", "diabetes_rule", "confirmed") == "confirmed"
+            else "on a single result (this run does not ask for a confirming second result).")),
         ("Screening coverage", f"Among persons with lab-evidenced diabetes and any result in the {window} "
          "months, the share who had an eGFR, a urine ACR, and both, in that window. An ACR estimated from a "
          "protein ratio or a dipstick (Sumida et al. 2020) does not count: a dipstick misses moderately "
