@@ -385,6 +385,14 @@ def measure_stage(con: duckdb.DuckDBPyConnection, settings: Settings, touched_on
     ``scope_persons``) only those persons' measures are computed again (:func:`update_touched`).
     """
     analytes = list(MEASURED_ANALYTES)
+    stored = [c for (c,) in con.execute(
+        "select column_name from duckdb_columns() where schema_name = 'main' "
+        "and table_name = 'kidney_measures' order by column_index"
+    ).fetchall()]  # fmt: skip
+    if stored and stored != MEASURE_COLUMNS:
+        # a warehouse measured by an earlier version (other columns, other rules): every row is
+        # computed again, never mixed with rows made under the old rules
+        touched_only = False
     if touched_only:
         update_touched(con, settings, analytes)
         return _summary(con)
