@@ -337,6 +337,11 @@ def measure_frame(results: pl.DataFrame, settings: Settings) -> pl.DataFrame:
     """kidney_measures rows from lab_results rows (plain function, no database)."""
     m = settings.pipeline.measures
     results = results.with_columns(age_at_collection(results.columns).alias("age_exact"))
+    if "birth_year" in results.columns:
+        # the completed years of the same estimate (as int_results_validated.sql computes them),
+        # so that a measure's age and the equation it got always agree, also on rows stored by
+        # an earlier version that took collection year - birth year
+        results = results.with_columns(pl.col("age_exact").floor().cast(pl.Int64).alias("age_years"))
     creatinine = compute_egfr(results.filter(pl.col("analyte") == "creatinine"), m)
     frames = []
     if m.use_cystatin:
