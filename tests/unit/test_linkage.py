@@ -437,3 +437,11 @@ def test_diabetes_needs_a_second_abnormal_result(warehouse):
     # diabetes_rule: single (one abnormal result)
     got = diabetic_onsets(warehouse, {"diabetes_min_results": 1})
     assert got == {"one": 90, "two_days": 90, "two_tests": 90, "censored": 60}
+
+
+def test_diabetes_rule_setting_reaches_the_sql(settings):
+    # ADA Standards of Care: a second abnormal result confirms (the default); single = one
+    assert event_params(settings, Period.parse(PERIOD))["diabetes_min_results"] == 2
+    measures = settings.pipeline.measures.model_copy(update={"diabetes_rule": "single"})
+    single = settings.model_copy(update={"pipeline": settings.pipeline.model_copy(update={"measures": measures})})
+    assert event_params(single, Period.parse(PERIOD))["diabetes_min_results"] == 1
