@@ -431,12 +431,15 @@ def test_diabetes_needs_a_second_abnormal_result(warehouse):
     hba1c(warehouse, "two_tests", 10, 130.0, "glucose", "mg/dL", fasting=True)  # same day, two tests
     hba1c(warehouse, "censored", 10, 6.0, comparator="<")  # "<6.0 %" is below 6.5 %: never abnormal
     hba1c(warehouse, "censored", 40, 7.0)
-    for person in ("one", "two_days", "two_tests", "censored"):
+    for d in (10, 40):
+        hba1c(warehouse, "above_low_bound", d, 6.0, comparator=">")  # ">6.0 %": maybe below 6.5 %
+        hba1c(warehouse, "above_high_bound", d, 14.0, comparator=">")  # ">14 %": certainly >= 6.5 %
+    for person in ("one", "two_days", "two_tests", "censored", "above_low_bound", "above_high_bound"):
         insert_acr(warehouse, person, 100, acr_mg_g=50.0, above_a2=True)
-    assert diabetic_onsets(warehouse) == {"two_days": 60, "two_tests": 90}
+    assert diabetic_onsets(warehouse) == {"two_days": 60, "two_tests": 90, "above_high_bound": 60}
     # diabetes_rule: single (one abnormal result)
     got = diabetic_onsets(warehouse, {"diabetes_min_results": 1})
-    assert got == {"one": 90, "two_days": 90, "two_tests": 90, "censored": 60}
+    assert got == {"one": 90, "two_days": 90, "two_tests": 90, "censored": 60, "above_high_bound": 90}
 
 
 def test_diabetes_rule_setting_reaches_the_sql(settings):

@@ -216,6 +216,8 @@ def test_a_negative_dipstick_does_not_count_as_an_acr_screen(tmp_path: Path):
             f"{token},1960,F,WF01,C{n},2026-01-05,2160-0,1.0,mg/dL,final,2026-01-06",
             f"{token},1960,F,WF01,D{n},2026-01-05,5804-0,negative,,final,2026-01-06",
         ]
+    # ADA Standards of Care: one abnormal HbA1c is not confirmed diabetes (diabetes_rule confirmed)
+    lines += [f"WF-s{n},1960,F,WF01,S{n},2026-01-05,4548-4,7.0,%,final,2026-01-06" for n in range(3)]
     inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join(lines) + "\n"})
     with run_month(config, inbox, tmp_path / "out") as con:
         got = rows(con, "select persons_with_diabetes, with_egfr, with_acr from "
