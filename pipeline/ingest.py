@@ -704,7 +704,8 @@ def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, undate
 
     A row without a report date is known at the end of its extract's month: the month in the
     file name (basis ``file_name``), else ``undated_on``, the end of the period of the run that
-    first ingests the file (basis ``run_period``; :func:`undated_report_date`)."""
+    first ingests the file (basis ``run_period``; :func:`undated_report_date`); a row collected
+    after that month, at the end of its own collection month (basis ``collected_month``)."""
     fmt = source.date_format or "%Y-%m-%d"
 
     def parse(col: str) -> pl.Expr:
@@ -716,11 +717,19 @@ def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, undate
     from_name = _month_end_from_name(item.rel_path)
     extract_date = from_name or undated_on
     basis_extract = "file_name" if from_name else "run_period"
+    collected = parse("collected_text")
+    # a row collected after its extract's month (a history sent as one file) cannot have been
+    # known before its own collection month ended: never date it before it was collected
+    collected_month_end = collected.dt.month_end()
+    later = collected_month_end > pl.lit(extract_date)
     return frame.with_columns(
-        parse("collected_text").alias("collected_date"),
-        pl.coalesce(parse("reported_text"), pl.lit(extract_date)).alias("reported_date"),
+        collected.alias("collected_date"),
+        pl.coalesce(parse("reported_text"), pl.when(later).then(collected_month_end).otherwise(pl.lit(extract_date)))
+        .alias("reported_date"),
         pl.when(parse("reported_text").is_not_null())
         .then(pl.lit("reported"))
+        .when(later)
+        .then(pl.lit("collected_month"))
         .otherwise(pl.lit(basis_extract))
         .alias("reported_date_basis"),
     )
