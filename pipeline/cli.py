@@ -14,6 +14,7 @@ from typing import Annotated, Optional
 
 import typer
 from rich.console import Console
+from rich.markup import escape
 from rich.table import Table
 
 from pipeline.periods import Period
@@ -105,7 +106,7 @@ def _print_period_checks(summary: dict) -> None:
         console.print(f"  [yellow]rows outside the period[/] {line}", soft_wrap=True)
     for source, fields in (summary.get("unmapped_codes") or {}).items():
         for field_name, info in fields.items():
-            values = ", ".join(f"{v!r} x{n:,}" for v, n in list(info["values"].items())[:8])
+            values = escape(", ".join(f"{v!r} x{n:,}" for v, n in list(info["values"].items())[:8]))
             console.print(f"  [yellow]unmapped {field_name}[/] {source}: {info['rows']:,} rows ({values}); "
                           f"map them under '{info['config_key']}' in config/sources/{source}.yaml", soft_wrap=True)
 
@@ -271,22 +272,27 @@ def sources_check(
     file: Annotated[Path, typer.Argument(help="An extract file (for FHIR: the Observation.ndjson).")],
     config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
     examples: Annotated[int, typer.Option(help="Examples shown per reason.")] = 3,
+    period: Annotated[Optional[str], typer.Option(help="Month the file would be run in, YYYY-MM (default: the month in its name).")] = None,
 ) -> None:
-    """Show what a file would give: rows per outcome and reason, with file:line examples.
+    """Show what a file would give: rows per outcome and reason, with file:line examples, code
+    values the source config does not map, and the rows the period would not count.
 
-    Reads the file into a throw-away in-memory database: the warehouse is not touched.
+    Reads the file into a throw-away in-memory database: the warehouse is not touched. Exits 1
+    when a run would hold the file back or leave rows unmapped.
     """
     from pipeline.checks import check_file
 
     try:
         settings = load_settings(config)
-        settings.source(source_id)
-    except ConfigError as exc:
+        source = settings.source(source_id)
+        if period is not None:
+            Period.parse(period)
+    except (ConfigError, ValueError) as exc:
         _fail(str(exc))
     if not file.is_file():
         _fail(f"{file}: file not found")
     try:
-        report = check_file(settings, source_id, file)
+        report = check_file(settings, source_id, file, period)
     except OSError as exc:
         err.print(f"[bold red]file held back:[/] {file}: cannot be read ({exc.strerror or exc})", soft_wrap=True)
         raise typer.Exit(EXIT_HELD_BACK) from None
@@ -297,10 +303,28 @@ def sources_check(
     for outcome, n in report.outcomes.items():
         console.print(f"  {outcome:<11} {n:>8,}")
     for reason, (n, lines) in report.reasons.items():
-        console.print(f"  rejected {reason}: {n:,}")
+        hint = ""
+        if reason in ("invalid_date", "future_date"):
+            hint = (f" (date_format in config/sources/{source_id}.yaml: '{source.date_format}')" if source.date_format
+                    else f" (no date_format in config/sources/{source_id}.yaml: ISO 8601, YYYY-MM-DD, expected)")
+        console.print(f"  rejected {reason}: {n:,}{hint}", soft_wrap=True)
         for line_no, message in lines[:examples]:
             console.print(f"      {file}:{line_no}: {message}", soft_wrap=True)
-    raise typer.Exit(EXIT_OK)
+    for name, info in report.unmapped.items():
+        values = escape(", ".join(f"{v!r} x{n:,}" for v, n in list(info["values"].items())[:8]))
+        console.print(f"  unmapped {name}: {info['rows']:,} rows ({values}); map them under "
+                      f"'{info['config_key']}' in config/sources/{source_id}.yaml", soft_wrap=True)
+    n_out, lines_out = report.outside_period
+    if report.period is None:
+        console.print("  period: no month in the file name and no --period: rows outside a period not checked")
+    elif n_out:
+        where = ", ".join(str(n) for n in lines_out) + (", ..." if n_out > len(lines_out) else "")
+        console.print(f"  outside {report.period}: {n_out:,} accepted rows collected or reported after "
+                      f"{Period.parse(report.period).end.isoformat()} would not count in it (lines {where})",
+                      soft_wrap=True)
+    for reason in report.would_hold:
+        console.print(f"  [bold red]would be held back:[/] {reason}", soft_wrap=True)
+    raise typer.Exit(EXIT_HELD_BACK if report.would_hold or report.unmapped else EXIT_OK)
 
 
 def main() -> None:  # pragma: no cover

@@ -44,8 +44,8 @@ def test_sources_check_shows_reasons_with_file_and_line(tmp_path):
     )
     result = runner.invoke(app, ["sources", "check", "westerfold_general_lab", str(path),
                                  "--config", str(REPO / "config")])  # fmt: skip
-    assert result.exit_code == 0, result.output
-    assert "not_numeric" in result.output
+    assert result.exit_code == 1, result.output  # 1 of 2 rows rejected: a run would hold it back
+    assert "not_numeric" in result.output and "would be held back" in result.output
     assert f"{path}:2:" in result.output
 
 

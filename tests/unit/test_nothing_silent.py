@@ -297,3 +297,38 @@ def test_an_invalid_date_format_is_refused_at_config_load(tmp_path):
     path.write_text(path.read_text().replace('date_format: "dd/mm/yyyy"', 'date_format: "%d/%m/%Y%"'))
     with pytest.raises(ConfigError, match="lone '%'"):
         load_settings(config)
+
+
+# --------------------------------------------------------------------------- sources check
+
+
+def check(tmp_path: Path, name: str, body: str, *extra: str):
+    path = tmp_path / name
+    path.write_text(HEADER + body, encoding="utf-8")
+    config = make_small_config(tmp_path / "config")
+    return path, CliRunner().invoke(app, ["sources", "check", LAB, str(path), "--config", str(config), *extra])
+
+
+def test_sources_check_names_unmapped_codes_and_exits_non_zero(tmp_path):
+    """Before: "492 accepted" and exit 0 for a file whose 'W' sex code nothing maps."""
+    _, result = check(tmp_path, "results_2026-01.csv", creatinine_rows("2026-01", 40, sex="WM"))
+    assert result.exit_code == 1, result.output
+    assert "unmapped sex: 20 rows ('W' x20); map them under 'sex_codes'" in result.output
+    assert "would be held back" in result.output
+
+
+def test_sources_check_shows_the_date_format_and_the_rows_outside_the_period(tmp_path):
+    body = creatinine_rows("2026-01", 30) + creatinine_rows("2026-02", 1, first=30) + \
+        creatinine_rows("2026-01", 1, first=31).replace("2026-01-05", "05/01/2026")
+    path, result = check(tmp_path, "results.csv", body, "--period", "2026-01")
+    assert result.exit_code == 0, result.output  # 1 of 32 rejected: under the limit, nothing unmapped
+    assert "no date_format in config/sources/westerfold_general_lab.yaml: ISO 8601" in result.output
+    assert f"{path}:33:" in result.output
+    assert "outside 2026-01: 1 accepted rows collected or reported after 2026-01-31" in result.output
+    assert "(lines 32)" in result.output
+
+
+def test_sources_check_of_a_clean_file_exits_zero(tmp_path):
+    _, result = check(tmp_path, "results_2026-01.csv", creatinine_rows("2026-01", 30))
+    assert result.exit_code == 0, result.output
+    assert "outside 2026-01" not in result.output and "unmapped" not in result.output
