@@ -45,7 +45,7 @@ def check_file(settings: Settings, source_id: str, path: Path, period: str | Non
     into: undated rows are dated at its end, and the rows it would not count (collected or
     reported after its end) are listed."""
     if period is None:
-        named = extract_month(path.name, "")
+        named = extract_month(f"{path.parent.name}/{path.name}", "")  # FHIR: the export's folder
         period = named or None
     con = connect(":memory:")
     try:

@@ -52,7 +52,7 @@ def _stage_line(name: str, seconds: float, text: str) -> None:
 
 
 def _print_summary(summary: dict, out: Path) -> None:
-    table = Table(title=f"Period {summary['period']}: rows of the files ingested for this period, per source",
+    table = Table(title=f"Period {summary['period']}: rows per source (files ingested for this period)",
                   title_justify="left")
     cols = ("files", "read", "accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending", "held_back")
     table.add_column("source")

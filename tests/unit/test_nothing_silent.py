@@ -123,6 +123,7 @@ def test_unmapped_sex_codes_are_counted_and_hold_the_source_back(tmp_path):
     unknown sex (no eGFR for half the results) without a word; now the run names the value, the
     rows and the key that maps it, and the share above the limit holds the source back."""
     config = make_small_config(tmp_path / "config")
+    edit_pipeline_yaml(config, "quality_gate", "max_unmapped_share", 0.01)  # config/pipeline.yaml's
     inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 40, sex="WM")})
     summary = run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "out"), demo=True)
     assert summary["unmapped_codes"] == {LAB: {"sex": {"config_key": "sex_codes", "rows": 20, "values": {"W": 20}}}}
@@ -306,6 +307,7 @@ def check(tmp_path: Path, name: str, body: str, *extra: str):
     path = tmp_path / name
     path.write_text(HEADER + body, encoding="utf-8")
     config = make_small_config(tmp_path / "config")
+    edit_pipeline_yaml(config, "quality_gate", "max_unmapped_share", 0.01)  # config/pipeline.yaml's
     return path, CliRunner().invoke(app, ["sources", "check", LAB, str(path), "--config", str(config), *extra])
 
 
