@@ -272,7 +272,7 @@ def sources_check(
     file: Annotated[Path, typer.Argument(help="An extract file (for FHIR: the Observation.ndjson).")],
     config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
     examples: Annotated[int, typer.Option(help="Examples shown per reason.")] = 3,
-    period: Annotated[Optional[str], typer.Option(help="Month the file would be run in, YYYY-MM (default: the month in its name).")] = None,
+    period: Annotated[str | None, typer.Option(help="Month the file would be run in, YYYY-MM (default: the month in its name).")] = None,
 ) -> None:
     """Show what a file would give: rows per outcome and reason, with file:line examples, code
     values the source config does not map, and the rows the period would not count.

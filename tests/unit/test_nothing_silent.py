@@ -151,12 +151,15 @@ def test_unmapped_unit_and_status_below_the_limit_are_named_but_publish(tmp_path
     lines = body.splitlines(True)
     lines[0] = lines[0].replace("mg/dL", "mgdl")
     lines[1] = lines[1].replace(",final", ",FIN")
+    lines[2] = lines[2].replace(",2160-0,", ",CREX,")
     inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + "".join(lines)})
     summary = run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "out"), demo=True)
     assert summary["held_back_sources"] == {}
     got = summary["unmapped_codes"][LAB]
     assert got["unit"] == {"config_key": "unit_aliases", "rows": 1, "values": {"mgdl": 1}}
     assert got["status"] == {"config_key": "status_codes", "rows": 1, "values": {"FIN": 1}}
+    assert got["test_code"] == {"config_key": "test_codes", "rows": 1, "values": {"CREX": 1}}
+    assert set(got) == {"unit", "status", "test_code"}  # the 37 other rows carry nothing unmapped
 
 
 # --------------------------------------------------------------------------- 3. the key
@@ -334,3 +337,18 @@ def test_sources_check_of_a_clean_file_exits_zero(tmp_path):
     _, result = check(tmp_path, "results_2026-01.csv", creatinine_rows("2026-01", 30))
     assert result.exit_code == 0, result.output
     assert "outside 2026-01" not in result.output and "unmapped" not in result.output
+
+
+def test_fasting_flags_are_mapped_by_fasting_codes_or_named(tmp_path):
+    """A fasting flag 'J' is named until fasting_codes maps it; the usual Y/N spellings need none."""
+    config = make_small_config(tmp_path / "config")
+    header = HEADER.rstrip("\n") + ",fasting\n"
+    body = "".join(line.rstrip("\n") + f",{'JNY'[i % 3]}\n"
+                   for i, line in enumerate(creatinine_rows("2026-01", 9).splitlines(True)))
+    inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": header + body})
+    summary = run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "out"), demo=True)
+    assert summary["unmapped_codes"] == {LAB: {"fasting": {"config_key": "fasting_codes", "rows": 3, "values": {"J": 3}}}}
+    path = config / "sources" / f"{LAB}.yaml"
+    path.write_text(path.read_text() + "fasting_codes: {J: Y}\n")
+    again = run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "out2"), demo=True)
+    assert again["unmapped_codes"] == {}
