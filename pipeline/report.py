@@ -1077,6 +1077,49 @@ def _run_footer(data: _Data) -> str:
     return f"<footer><p>{text}</p></footer>"
 
 
+def _period_checks_section(data: _Data) -> str:
+    """What the run said about its own period (run manifest, ``period_checks``): sources that
+    sent nothing, rows it could not count, code values no config maps, and the period's own
+    rows per source beside the warehouse's totals."""
+    checks = data.manifest.get("period_checks") or {}
+    if not checks:
+        return ""
+    out = ['<h3 id="period-checks">This period\'s deliveries and coding</h3>']
+    notes = []
+    hold = checks.get("missing_sources_policy") == "hold"
+    for source, message in sorted((checks.get("missing_sources") or {}).items()):
+        notes.append(f"<li><strong>Missing source{' (holds the period)' if hold else ''}:</strong> "
+                     f"{_e(source)}: {_e(message)}</li>")
+    for line in checks.get("rows_outside_period_notes") or []:
+        notes.append(f"<li><strong>Rows outside the period:</strong> {_e(line)}</li>")
+    for source, fields in sorted((checks.get("unmapped_codes") or {}).items()):
+        for name, info in sorted(fields.items()):
+            values = ", ".join(f"{_e(v)} ({_int(n)})" for v, n in list(info.get("values", {}).items())[:8])
+            notes.append(f"<li><strong>Unmapped {_e(name)}:</strong> {_e(source)}: {_int(info.get('rows'))} rows "
+                         f"({values}); map them under <code>{_e(info.get('config_key'))}</code> in the source "
+                         "config</li>")
+    if checks.get("indicators_lack"):
+        notes.append("<li><strong>The indicators lack:</strong> "
+                     + ", ".join(_e(s) for s in checks["indicators_lack"]) + "</li>")
+    out.append(f'<ul class="period-checks">{"".join(notes)}</ul>' if notes
+               else "<p>Every configured source delivered; no unmapped code; every accepted row of this "
+                    "period's files is counted in it.</p>")
+    cols = ("files", "read", "accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending", "held_back")
+    head = "".join(f'<th scope="col">{c.replace("_", " ")}</th>' for c in cols)
+    body = "".join(
+        f'<tr><th scope="row">{_e(src)}</th>' + "".join(f"<td>{_int(c.get(k, 0))}</td>" for k in cols) + "</tr>"
+        for src, c in sorted((checks.get("sources") or {}).items()))  # fmt: skip
+    out.append(f'<table id="period-rows"><caption>Rows of the files ingested for {_e(data.period.label)}, per '
+               f'source (per file, read = the sum of the outcomes)</caption><thead><tr><th scope="col">source</th>'
+               f"{head}</tr></thead><tbody>{body}</tbody></table>")
+    totals = checks.get("warehouse_sources") or {}
+    if totals:
+        out.append("<p>Warehouse totals, all periods (not this period's): " + "; ".join(
+            f"{_e(s)} read {_int(c.get('read', 0))}, accepted {_int(c.get('accepted', 0))}"
+            for s, c in sorted(totals.items())) + ".</p>")
+    return "\n".join(out)
+
+
 # --------------------------------------------------------------------------- page
 
 CSS = """
@@ -1165,6 +1208,11 @@ def _render(data: _Data) -> str:
     if held:
         held_note = ('<p class="notice">Held back by the quality gate this month (not in the counts): '
                      + ", ".join(_e(s) for s in sorted(held)) + ".</p>")  # fmt: skip
+    lacking = (data.manifest.get("period_checks") or {}).get("indicators_lack") or []
+    if lacking:
+        held_note += ('<p class="notice" id="indicators-lack">These indicators lack: '
+                      + ", ".join(_e(s) for s in lacking)
+                      + ' (held back or sent nothing; see <a href="#period-checks">data quality</a>).</p>')
     cards = []
     for h in _headlines(data):
         klass = " suppressed" if h.value.startswith(("suppressed", "not available")) else ""
@@ -1199,7 +1247,7 @@ def _render(data: _Data) -> str:
         figure(_agreement_chart(data), "Each lab's own eGFR against the one recomputed here (CKD-EPI 2021 for "
                "adults). A steady offset suggests the lab reports another equation; a sudden step, an assay or "
                "calibration change."),
-        _quality_table(data, sources), "</section>",
+        _quality_table(data, sources), _period_checks_section(data), "</section>",
         _methods_section(data), _cautions_section(), _run_footer(data),
     ]  # fmt: skip
     return ("<!DOCTYPE html>\n"
