@@ -38,10 +38,10 @@ from typing import Any
 import duckdb
 
 from pipeline.faults import maybe_fail
-from pipeline.ingest import FileFault, InboxFile, read_inbox_file, sha256_of
+from pipeline.ingest import FileFault, InboxFile, read_inbox_file, sha256_of, undated_report_date
 from pipeline.manifest import source_config_sha256
 from pipeline.measures import measure_stage
-from pipeline.pseudonymise import PersonKeyCache, add_person_keys, resolve_key
+from pipeline.pseudonymise import PersonKeyCache, add_person_keys, resolve_key, verify_warehouse_key
 from pipeline.publish import commit_month, open_warehouse
 from pipeline.runlock import recover_interrupted_run, run_lock
 from pipeline.settings import Settings, load_settings
@@ -118,7 +118,7 @@ class ReprocessResult:
 
 def _select_files(con: duckdb.DuckDBPyConnection, source_id: str, from_month: str | None,
                   file: str | None) -> list[tuple]:  # fmt: skip
-    query = ("select file_id, file_path, sha256, size_bytes, ingested_at, config_sha256 from ingest_files "
+    query = ("select file_id, file_path, sha256, size_bytes, ingested_at, config_sha256, run_period from ingest_files "
              "where source_id = $s and status = 'ingested'")
     params: dict[str, Any] = {"s": source_id}
     if from_month:
@@ -189,6 +189,7 @@ def reprocess_source(config_dir: str | Path, inbox: str | Path, out: str | Path,
         con = open_warehouse(out, settings.pipeline.execution.memory_limit)
         try:
             recover_interrupted_run(out, con)
+            verify_warehouse_key(con, key)  # another key would split every person from their history
             chosen = _select_files(con, source_id, from_month, rel_file)
             if not chosen:
                 what = f"file {rel_file}" if rel_file else f"files from {from_month}" if from_month else "files"
@@ -198,7 +199,7 @@ def reprocess_source(config_dir: str | Path, inbox: str | Path, out: str | Path,
                                      applied=False, config_after=current)  # fmt: skip
             if not todo:
                 return result
-            for _, rel, sha, _, _, _ in todo:  # every file first: refuse before changing anything
+            for _, rel, sha, *_ in todo:  # every file first: refuse before changing anything
                 path = inbox / rel
                 if not path.is_file():
                     raise ReprocessRefused(
@@ -255,10 +256,12 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
     begin_judging(con)
     con.execute("create or replace temp table landed_files (file_id bigint)")
     cache = PersonKeyCache(key)
-    for file_id, rel, sha, size, ingested_at, _ in todo:
+    for file_id, rel, sha, size, ingested_at, _, run_period in todo:
         item = InboxFile(source.id, inbox / rel, rel, sha, size, file_id=file_id)
+        # rows without a report date get the one they got when first ingested
+        undated_on = undated_report_date(run_period, ingested_at.date() if ingested_at else dt.date.today())
         try:
-            frame = read_inbox_file(source, item, settings, ingested_at.date() if ingested_at else dt.date.today())
+            frame = read_inbox_file(source, item, settings, undated_on)
         except FileFault as fault:
             raise ReprocessRefused(f"{fault}; under the current config the file cannot be read, nothing was "
                                    "reprocessed") from None  # fmt: skip
@@ -269,7 +272,9 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
         con.execute("insert into landed_files values (?)", [file_id])
     default = settings.pipeline.quality_gate.max_rejection_rate
     limit = source.max_rejection_rate if source.max_rejection_rate is not None else default
-    _, _, held = validate_landed(con, {source.id: limit}, _batch_gate(settings))
+    gate = settings.pipeline.quality_gate
+    unmapped = source.max_unmapped_share if source.max_unmapped_share is not None else gate.max_unmapped_share
+    _, _, held = validate_landed(con, {source.id: limit}, _batch_gate(settings), {source.id: unmapped})
     if held:
         raise ReprocessRefused(f"source {source.id}: under the current config the quality gate would hold it "
                                f"back ({held.get(source.id, '')}); nothing was reprocessed")  # fmt: skip
@@ -301,7 +306,7 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
         {"id": reprocess_id}).fetchall()]  # fmt: skip
     files_after = _per_file(con)
     now = dt.datetime.now(dt.UTC).replace(tzinfo=None)
-    for file_id, rel, sha, _, _, before_hash in todo:
+    for file_id, rel, sha, _, _, before_hash, _ in todo:
         con.execute(
             "insert into reprocess_log values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             [reprocess_id, now, source.id, file_id, rel, sha, before_hash, current,
