@@ -197,3 +197,27 @@ def test_one_earlier_file_passes_the_expectation_suites(wrongly_mapped):
     done = reprocess_source(fixed, inbox, out, LAB, file=f"{LAB}/export_202505.csv", apply=True, demo=True)
     assert done.applied and done.files == [f"{LAB}/export_202505.csv"]
     assert done.outcomes["accepted"] == (60, 60)
+
+
+def test_rows_without_a_report_date_keep_the_one_they_were_first_given(tmp_path):
+    """A file with no month in its name and no report dates: its rows are known at the end of
+    the period of the run that first ingested it (README, "two dates on every result"), and a
+    reprocess months later must not move them to another date."""
+    config = make_small_config(tmp_path / "config")
+    text = ("person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status\n"
+            + "".join(f"WF-nd{i:04d},1950,W,WF01,ND{i:03d},2025-06-1{i % 10},2160-0,1.2,mg/dL,final\n"
+                      for i in range(15)))  # fmt: skip
+    inbox = write_inbox(tmp_path, {"westerfold_general_lab/undated_extract.csv": text})
+    out = tmp_path / "out"
+    run_month_plain("2025-06", str(config), str(inbox), str(out), demo=True)
+    before = count(out, "select count(distinct reported_date::varchar) || ' ' || max(reported_date)::varchar "
+                        "from result_versions")  # fmt: skip
+    path = config / "sources" / "westerfold_general_lab.yaml"
+    data = yaml.safe_load(path.read_text(encoding="utf-8"))
+    data["sex_codes"] = {"W": "F"}
+    path.write_text(yaml.safe_dump(data, sort_keys=False), encoding="utf-8")
+    assert reprocess_source(config, inbox, out, "westerfold_general_lab", apply=True, demo=True).applied
+    assert count(out, "select count(*) from lab_results where sex = 'F'") == 15
+    after = count(out, "select count(distinct reported_date::varchar) || ' ' || max(reported_date)::varchar "
+                       "from result_versions")  # fmt: skip
+    assert after == before == "1 2025-06-30"
