@@ -1,11 +1,13 @@
 """The ``kidneysurv`` command: a thin front on the monthly flow.
 
 Exit codes: 0 success; 1 a source was held back by the quality gate (the others published);
-2 bad usage or configuration.
+2 bad usage or configuration; 3 another run holds the output folder; 4 an internal failure (one
+line on the terminal naming what failed and the log file holding the traceback).
 """
 
 from __future__ import annotations
 
+import os
 import sys
 import time
 from enum import Enum
@@ -33,6 +35,64 @@ console = Console(highlight=False, width=None if sys.stdout.isatty() else 120)
 err = Console(stderr=True, highlight=False)
 
 EXIT_OK, EXIT_HELD_BACK, EXIT_USAGE = 0, 1, 2
+EXIT_INTERNAL = 4
+
+
+def failure_log(out: Path, period: str) -> Path:
+    """Where the traceback of a failed run is written: ``<out>/<period>/logs/``, or the
+    system's temporary folder when the output folder cannot be written (read-only, full)."""
+    import datetime as dt
+    import tempfile
+
+    stamp = dt.datetime.now(dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+    name = f"failure-{period}-{stamp}-{os.getpid()}.log"
+    for folder in (out / period / "logs", Path(tempfile.gettempdir()) / "kidneysurv-logs"):
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+            path = folder / name
+            path.write_text("", encoding="utf-8")
+            return path
+        except OSError:
+            continue
+    return Path(os.devnull)
+
+
+def report_failure(exc: BaseException, out: Path, period: str, verbose: bool) -> int:
+    """One line on the terminal (what failed, where the traceback is), the traceback in the log
+    file (and on the terminal too with ``--verbose``); returns :data:`EXIT_INTERNAL`."""
+    import traceback
+
+    text = "".join(traceback.format_exception(exc))
+    log = failure_log(out, period)
+    try:
+        log.write_text(text, encoding="utf-8")
+        where = f"traceback in {log}"
+    except OSError as write_error:
+        where = f"the traceback could not be written ({write_error.strerror or write_error}); run with --verbose"
+    first = (str(exc).strip().splitlines() or [""])[0][:300]
+    hint = _failure_hint(exc)
+    if verbose:
+        err.print(text, markup=False, highlight=False, soft_wrap=True)
+    err.print(f"[bold red]internal failure:[/] {type(exc).__name__}: {first}{hint}; {where}",
+              markup=True, soft_wrap=True)  # fmt: skip
+    return EXIT_INTERNAL
+
+
+def _failure_hint(exc: BaseException) -> str:
+    """What the failure most likely means for the person running it."""
+    import errno
+
+    import duckdb
+
+    if isinstance(exc, OSError) and exc.errno == errno.ENOSPC:
+        return " (the disk is full: free space, then run again; the last published month is unchanged)"
+    if isinstance(exc, PermissionError | OSError) and exc.errno in (errno.EACCES, errno.EROFS, errno.EPERM):
+        return " (the output folder cannot be written: check its permissions; nothing was published)"
+    if isinstance(exc, duckdb.Error) and "disk" in str(exc).lower() and "full" in str(exc).lower():
+        return " (the disk is full: free space, then run again; the last published month is unchanged)"
+    if isinstance(exc, duckdb.Error):
+        return " (the warehouse file could not be used: it may be damaged; restore it from a backup)"
+    return ""
 
 
 class Executor(str, Enum):
@@ -120,6 +180,10 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
     except RunLocked as exc:
         err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
         raise typer.Exit(EXIT_LOCKED) from None
+    except (typer.Exit, KeyboardInterrupt):
+        raise
+    except Exception as exc:  # noqa: BLE001 - every other failure: exit 4, the traceback in a log file
+        return report_failure(exc, out, period, verbose)
 
 
 @app.command()

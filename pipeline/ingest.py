@@ -960,9 +960,9 @@ def land_inbox(
             try:
                 frame = read_inbox_file(source, item, settings, ingested_on)
             except FileFault as fault:
-                status, message = "held_back", str(fault)
+                status, message = "held_back", item.safe(str(fault))
                 summary.files_held_back += 1
-                summary.held_back.append((item.rel_path, str(fault)))
+                summary.held_back.append((item.rel_path, message))
             else:
                 rows_read = frame.height
                 keyed = add_person_keys(frame, key, keys)

@@ -187,6 +187,14 @@ def test_an_identifying_file_name_is_stored_as_its_hash(settings, tmp_path: Path
     assert "Holloway" not in item.rel_path and "0401555123" not in item.rel_path
     assert item.rel_path.startswith(f"{SOURCE}/name-withheld-2026-01-") and item.rel_path.endswith(".csv")
     assert item.path.name == name  # the file itself is read as it is
+    held = write_inbox(tmp_path / "h", {f"{SOURCE}/{name}": "not,a,header\n1,2,3\n"})
+    [item] = scan_inbox(None, settings, held)
+    report_path = held / SOURCE / name
+    item.file_id = 1
+    with pytest.raises(FileFault) as fault:
+        read_inbox_file(settings.source(SOURCE), item, settings, TODAY)
+    assert "Holloway" in str(fault.value) and "Holloway" not in item.safe(str(fault.value))
+    assert report_path.name not in item.safe(str(fault.value))
     plain = write_inbox(tmp_path / "p", {f"{SOURCE}/results_2026-01.csv": csv_text([row(1)])})
     assert scan_inbox(None, settings, plain)[0].rel_path == f"{SOURCE}/results_2026-01.csv"
 
@@ -243,3 +251,24 @@ def test_duplicate_header_names_hold_the_file_back(settings, tmp_path: Path):
     assert report.fault and "['value'] more than once" in report.fault
     with pytest.raises(FileFault, match="more than once"):
         read_rows(settings, tmp_path / "r", text)
+
+
+# --------------------------------------------------------------------------- 4. versions
+
+
+def test_an_amended_row_before_its_final_of_the_same_report_date_wins(settings, tmp_path: Path):
+    # FHIR R4 Observation.status: 'amended' replaces the 'final' it follows up
+    text = csv_text([row(1, status="amended", value="1.50"), row(1, status="final", value="1.00")])
+    report = checked(settings, tmp_path, text)
+    assert report.outcomes == {"accepted": 1, "rejected": 0, "superseded": 1, "duplicate": 0, "withdrawn": 0,
+                               "pending": 0}  # fmt: skip
+
+
+def test_a_specimen_under_two_persons_is_a_conflict_and_both_rows_are_kept_out(settings, tmp_path: Path):
+    rows = [row(1), row(2), row(3, specimen_id="WGH000001")]  # person 3 reuses person 1's specimen id
+    report = checked(settings, tmp_path, csv_text(rows))
+    assert report.outcomes["accepted"] == 1 and report.outcomes["rejected"] == 2
+    n, examples = report.reasons["specimen_conflict"]
+    assert n == 2 and [line for line, _ in examples] == [2, 4]
+    assert "more than one person" in examples[0][1]
+    assert report.rows_read == sum(report.outcomes.values())
