@@ -38,23 +38,29 @@ EXIT_OK, EXIT_HELD_BACK, EXIT_USAGE = 0, 1, 2
 EXIT_INTERNAL = 4
 
 
-def failure_log(out: Path, period: str) -> Path:
-    """Where the traceback of a failed run is written: ``<out>/<period>/logs/``, or the
-    system's temporary folder when the output folder cannot be written (read-only, full)."""
+def write_failure_log(out: Path, period: str, text: str) -> Path | None:
+    """Write ``text`` (a traceback) to ``<out>/<period>/logs/``, or to the system's temporary
+    folder when the output folder cannot be written (read-only, full); None if neither can."""
     import datetime as dt
     import tempfile
 
-    stamp = dt.datetime.now(dt.timezone.utc).strftime("%Y%m%dT%H%M%SZ")
+    stamp = dt.datetime.now(dt.UTC).strftime("%Y%m%dT%H%M%SZ")
     name = f"failure-{period}-{stamp}-{os.getpid()}.log"
     for folder in (out / period / "logs", Path(tempfile.gettempdir()) / "kidneysurv-logs"):
+        path = folder / name
         try:
             folder.mkdir(parents=True, exist_ok=True)
-            path = folder / name
-            path.write_text("", encoding="utf-8")
+            with path.open("w", encoding="utf-8") as fh:
+                fh.write(text)
+                fh.flush()
+                os.fsync(fh.fileno())
             return path
         except OSError:
-            continue
-    return Path(os.devnull)
+            try:
+                path.unlink(missing_ok=True)
+            except OSError:
+                pass
+    return None
 
 
 def report_failure(exc: BaseException, out: Path, period: str, verbose: bool) -> int:
@@ -63,12 +69,8 @@ def report_failure(exc: BaseException, out: Path, period: str, verbose: bool) ->
     import traceback
 
     text = "".join(traceback.format_exception(exc))
-    log = failure_log(out, period)
-    try:
-        log.write_text(text, encoding="utf-8")
-        where = f"traceback in {log}"
-    except OSError as write_error:
-        where = f"the traceback could not be written ({write_error.strerror or write_error}); run with --verbose"
+    log = write_failure_log(out, period, text)
+    where = f"traceback in {log}" if log else "the traceback could not be written anywhere; run with --verbose"
     first = (str(exc).strip().splitlines() or [""])[0][:300]
     hint = _failure_hint(exc)
     if verbose:
@@ -76,6 +78,26 @@ def report_failure(exc: BaseException, out: Path, period: str, verbose: bool) ->
     err.print(f"[bold red]internal failure:[/] {type(exc).__name__}: {first}{hint}; {where}",
               markup=True, soft_wrap=True)  # fmt: skip
     return EXIT_INTERNAL
+
+
+class WarehouseDamaged(Exception):
+    """The warehouse file exists but DuckDB cannot open it."""
+
+
+def check_warehouse_opens(out: Path) -> None:
+    """Open an existing warehouse read-only before Prefect starts, so that a damaged file is
+    reported at once (exit 4), not after the temporary server's start-up."""
+    import duckdb
+
+    from pipeline.warehouse import WAREHOUSE_FILE
+
+    path = out / WAREHOUSE_FILE
+    if not path.exists():
+        return
+    try:
+        duckdb.connect(str(path), read_only=True).close()
+    except duckdb.Error as exc:
+        raise WarehouseDamaged(f"{path}: the warehouse file cannot be opened ({str(exc).splitlines()[0][:200]})") from exc
 
 
 def _failure_hint(exc: BaseException) -> str:
@@ -88,9 +110,9 @@ def _failure_hint(exc: BaseException) -> str:
         return " (the disk is full: free space, then run again; the last published month is unchanged)"
     if isinstance(exc, PermissionError | OSError) and exc.errno in (errno.EACCES, errno.EROFS, errno.EPERM):
         return " (the output folder cannot be written: check its permissions; nothing was published)"
-    if isinstance(exc, duckdb.Error) and "disk" in str(exc).lower() and "full" in str(exc).lower():
+    if isinstance(exc, duckdb.Error) and "no space left" in str(exc).lower():
         return " (the disk is full: free space, then run again; the last published month is unchanged)"
-    if isinstance(exc, duckdb.Error):
+    if isinstance(exc, duckdb.Error | WarehouseDamaged):
         return " (the warehouse file could not be used: it may be damaged; restore it from a backup)"
     return ""
 
@@ -158,12 +180,18 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
         _fail(str(exc))
     try:
         with run_lock(out, period):  # before Prefect starts: a second run stops at once
+            check_warehouse_opens(out)
             from pipeline import prefect_env
 
             prefect_env.configure(verbose=verbose)
             from pipeline import flows
 
             flows.set_reporter(_stage_line)
+            if not verbose:  # a failure is told in one line (report_failure), not by Prefect's log
+                import logging
+
+                for name in ("prefect.flow_runs", "prefect.task_runs"):
+                    logging.getLogger(name).setLevel(logging.CRITICAL)
             console.print(f"kidneysurv: monthly run for {period} ({len(settings.sources)} sources, inbox {inbox})")
             started = time.perf_counter()
             try:

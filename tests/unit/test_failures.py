@@ -1,0 +1,92 @@
+"""Failures that are not the data's fault say so: exit code 4 (DESIGN.md's CLI contract), one
+line naming what failed and where the traceback was written, the traceback itself only with
+--verbose; and they never look like a held-back source (exit 1).
+
+The faults are real where this machine allows it: a damaged warehouse file is a file of
+garbage; a read-only or full output folder is a small tmpfs mounted read-only or filled up
+(skipped where mounting is not permitted); POSIX errno names (EROFS, ENOSPC) are from the
+Linux man pages (errno(3)).
+"""
+
+from __future__ import annotations
+
+import errno
+import subprocess
+from pathlib import Path
+
+import pytest
+from typer.testing import CliRunner
+
+from pipeline import cli
+from tests.conftest import CONFIG_DIR, ROOT
+
+runner = CliRunner()
+
+
+def run(out: Path, *extra: str):
+    return runner.invoke(cli.app, ["run", "--period", "2025-06", "--config", str(CONFIG_DIR),
+                                   "--inbox", str(ROOT / "sample_extracts"), "--out", str(out), *extra],
+                         env={"KIDNEYSURV_PSEUDONYM_KEY": "a-test-key-made-only-for-this-check-0123456789"})  # fmt: skip
+
+
+def test_a_damaged_warehouse_exits_4_with_one_line_and_a_log(tmp_path: Path):
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "surveillance.duckdb").write_bytes(b"this is not a DuckDB file\n" * 200)
+    result = run(out)
+    assert result.exit_code == cli.EXIT_INTERNAL, result.output
+    lines = [x for x in result.output.splitlines() if x.strip()]
+    assert len(lines) == 1 and lines[0].startswith("internal failure: WarehouseDamaged")
+    assert "Traceback" not in result.output and "may be damaged" in lines[0]
+    [log] = (out / "2025-06" / "logs").glob("failure-2025-06-*.log")
+    assert str(log) in result.output.replace("\n", "")
+    assert "Traceback (most recent call last)" in log.read_text(encoding="utf-8")
+    verbose = run(out, "--verbose")
+    assert verbose.exit_code == cli.EXIT_INTERNAL and "Traceback (most recent call last)" in verbose.output
+
+
+def test_an_output_path_that_cannot_be_a_folder_exits_4(tmp_path: Path):
+    blocker = tmp_path / "file"
+    blocker.write_text("x")
+    result = run(blocker / "out")  # a folder under a file: NotADirectoryError
+    assert result.exit_code == cli.EXIT_INTERNAL and "internal failure: NotADirectoryError" in result.output
+    assert "Traceback" not in result.output
+
+
+@pytest.fixture
+def small_mount(tmp_path: Path):
+    point = tmp_path / "mnt"
+    point.mkdir()
+    made = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=256k", "tmpfs", str(point)], capture_output=True)
+    if made.returncode != 0:
+        pytest.skip("mounting a tmpfs is not permitted here")
+    try:
+        yield point
+    finally:
+        subprocess.run(["umount", "-l", str(point)], capture_output=True)
+
+
+def test_a_read_only_output_folder_exits_4(small_mount: Path):
+    subprocess.run(["mount", "-o", "remount,ro", str(small_mount)], check=True)
+    result = run(small_mount / "out")
+    assert result.exit_code == cli.EXIT_INTERNAL, result.output
+    assert "cannot be written" in result.output and "Traceback" not in result.output
+
+
+def test_a_full_disk_is_named_as_such():
+    full = OSError(errno.ENOSPC, "No space left on device")
+    assert "disk is full" in cli._failure_hint(full)
+    read_only = OSError(errno.EROFS, "Read-only file system")
+    assert "cannot be written" in cli._failure_hint(read_only)
+
+
+@pytest.mark.slow
+def test_a_full_output_disk_exits_4_not_1(small_mount: Path):
+    # the mount filled to the last block: the warehouse cannot be written (a whole run, Prefect too)
+    subprocess.run(["dd", "if=/dev/zero", f"of={small_mount / 'filler'}", "bs=4k"], capture_output=True)
+    result = run(small_mount / "out")
+    assert result.exit_code == cli.EXIT_INTERNAL, result.output
+    assert "disk is full" in result.output and "Traceback" not in result.output
+    # the output disk is full: the traceback goes to the temporary folder instead, and says so
+    logged = result.output.replace("\n", "").split("traceback in ")[-1].strip()
+    assert "kidneysurv-logs" in logged and Path(logged).is_file()
