@@ -265,6 +265,16 @@ def backfill(
         _fail(str(exc))
     if last < first:
         _fail(f"--to {last} is before --from {first}")
+    from pipeline.backfill import finish_interrupted
+
+    try:  # a month that committed but whose exports were never put in place is finished first
+        for line in finish_interrupted(out):
+            console.print(f"finished a stopped run: {line}")
+    except RunLocked as exc:
+        err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
+        raise typer.Exit(EXIT_LOCKED) from None
+    except Exception as exc:  # noqa: BLE001 - exit 4, the traceback in a log file
+        raise typer.Exit(report_failure(exc, out, first.label, verbose)) from None
     plan = months_to_run(out, first, last, force)
     worst = EXIT_OK
     for i, (period, skip) in enumerate(plan, start=1):

@@ -57,13 +57,13 @@ def test_an_output_path_that_cannot_be_a_folder_exits_4(tmp_path: Path):
 def small_mount(tmp_path: Path):
     point = tmp_path / "mnt"
     point.mkdir()
-    made = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=256k", "tmpfs", str(point)], capture_output=True)
+    made = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=256k", "tmpfs", str(point)], capture_output=True, check=False)
     if made.returncode != 0:
         pytest.skip("mounting a tmpfs is not permitted here")
     try:
         yield point
     finally:
-        subprocess.run(["umount", "-l", str(point)], capture_output=True)
+        subprocess.run(["umount", "-l", str(point)], capture_output=True, check=False)
 
 
 def test_a_read_only_output_folder_exits_4(small_mount: Path):
@@ -83,10 +83,52 @@ def test_a_full_disk_is_named_as_such():
 @pytest.mark.slow
 def test_a_full_output_disk_exits_4_not_1(small_mount: Path):
     # the mount filled to the last block: the warehouse cannot be written (a whole run, Prefect too)
-    subprocess.run(["dd", "if=/dev/zero", f"of={small_mount / 'filler'}", "bs=4k"], capture_output=True)
+    subprocess.run(["dd", "if=/dev/zero", f"of={small_mount / 'filler'}", "bs=4k"], capture_output=True, check=False)
     result = run(small_mount / "out")
     assert result.exit_code == cli.EXIT_INTERNAL, result.output
     assert "disk is full" in result.output and "Traceback" not in result.output
     # the output disk is full: the traceback goes to the temporary folder instead, and says so
     logged = result.output.replace("\n", "").split("traceback in ")[-1].strip()
     assert "kidneysurv-logs" in logged and Path(logged).is_file()
+
+
+# --------------------------------------------------------------------------- backfill
+
+
+def _committed_but_not_installed(out: Path) -> None:
+    """What a run stopped between its commit and the move of its exports leaves behind."""
+    import duckdb
+
+    out.mkdir(parents=True)
+    con = duckdb.connect(str(out / "surveillance.duckdb"))
+    con.execute("create table runs (run_id varchar, period varchar)")
+    con.execute("insert into runs values ('run-0001', '2025-06')")
+    con.close()
+    staged = out / ".2025-06.partial"
+    staged.mkdir()
+    (staged / "district_ckd_prevalence.csv").write_text("district_code,persons\n")
+    (out / ".2025-06.publishing.json").write_text('{"run_id": "run-0001", "period": "2025-06"}')
+
+
+def test_backfill_finishes_a_month_committed_but_not_installed(tmp_path: Path):
+    from pipeline.backfill import finish_interrupted, months_to_run
+    from pipeline.periods import Period
+
+    out = tmp_path / "out"
+    _committed_but_not_installed(out)
+    june = Period.parse("2025-06")
+    assert months_to_run(out, june, june, force=False) == [(june, False)]  # not "already published"
+    done = finish_interrupted(out)
+    assert done and "exports were put in place" in done[0]
+    assert (out / "2025-06" / "district_ckd_prevalence.csv").is_file()
+    assert not (out / ".2025-06.publishing.json").exists()
+    assert months_to_run(out, june, june, force=False) == [(june, True)]
+
+
+def test_backfill_command_reports_the_finished_month(tmp_path: Path):
+    out = tmp_path / "out"
+    _committed_but_not_installed(out)
+    result = runner.invoke(cli.app, ["backfill", "--from", "2025-06", "--to", "2025-06", "--config", str(CONFIG_DIR),
+                                     "--out", str(out)])  # fmt: skip
+    assert result.exit_code == 0, result.output
+    assert "finished a stopped run: 2025-06" in result.output and "already published, skipped" in result.output
