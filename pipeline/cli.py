@@ -192,6 +192,10 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
 
                 for name in ("prefect.flow_runs", "prefect.task_runs"):
                     logging.getLogger(name).setLevel(logging.CRITICAL)
+            if not os.environ.get("PREFECT_API_URL"):  # Prefect's temporary server: ended if this run is killed
+                from pipeline import reaper
+
+                reaper.watch()
             console.print(f"kidneysurv: monthly run for {period} ({len(settings.sources)} sources, inbox {inbox})")
             started = time.perf_counter()
             try:

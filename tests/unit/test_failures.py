@@ -132,3 +132,39 @@ def test_backfill_command_reports_the_finished_month(tmp_path: Path):
                                      "--out", str(out)])  # fmt: skip
     assert result.exit_code == 0, result.output
     assert "finished a stopped run: 2025-06" in result.output and "already published, skipped" in result.output
+
+
+# --------------------------------------------------------------------------- a killed run
+
+
+@pytest.mark.slow
+def test_a_killed_run_leaves_no_prefect_server_behind(tmp_path: Path):
+    import os
+    import signal
+    import sys
+    import time
+
+    import psutil
+
+    env = {**os.environ, "KIDNEYSURV_PSEUDONYM_KEY": "a-test-key-made-only-for-this-check-0123456789"}
+    env.pop("PREFECT_API_URL", None)
+    proc = subprocess.Popen([str(Path(sys.executable).parent / "kidneysurv"), "run", "--period", "2025-06", "--config",
+                             str(CONFIG_DIR), "--inbox", str(ROOT / "sample_extracts"), "--out", str(tmp_path / "out")],
+                            cwd=tmp_path, env=env, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)  # fmt: skip
+    server = None
+    try:
+        deadline = time.monotonic() + 240
+        while server is None and time.monotonic() < deadline and proc.poll() is None:
+            kids = psutil.Process(proc.pid).children(recursive=True)
+            server = next((k for k in kids if "uvicorn" in " ".join(k.cmdline())), None)
+            time.sleep(0.2)
+        assert server is not None, "the run never started Prefect's temporary server"
+        proc.send_signal(signal.SIGKILL)  # no atexit, no finally: what the out-of-memory killer does
+        proc.wait()
+        gone, _ = psutil.wait_procs([server], timeout=20)
+        assert gone, "Prefect's temporary server outlived the killed run"
+    finally:
+        if proc.poll() is None:
+            proc.kill()
+        if server is not None and server.is_running():  # leave nothing behind, even on failure
+            server.kill()
