@@ -305,36 +305,42 @@ _VALUES_SCHEMA = {"key": pl.Int64, "line": pl.Int64, "value": pl.String, "birth"
 
 
 def _judge(values: pl.DataFrame, places: frozenset[str] = frozenset()) -> tuple[dict[int, _Column], pl.DataFrame]:
-    """Judge sampled values given in sample order as columns ``key`` (the column), ``line``,
-    ``value`` (as read) and ``birth`` (a birth column): a :class:`_Column` per key with a
-    non-empty value, and the matching values' ``key``, ``line`` and one boolean per pattern.
-    The same as running :func:`value_patterns` on every value, in bulk."""
+    """Judge values given in file order as columns ``key`` (the column), ``line``, ``value``
+    (as read) and ``birth`` (a birth column): a :class:`_Column` per key with a non-empty
+    value, and the matching values' ``key``, ``line`` and one boolean per pattern.
+    The same as running :func:`value_patterns` on every value, in bulk.
+
+    Every row of a file is screened, and its values repeat (codes, units, dates, statuses, a
+    person's several results), so each distinct value is judged once and only the few that
+    match are joined back to their lines."""
     values = values.with_row_index("seq").filter(pl.col("value") != "")
+    distinct = values.select("value", "birth").unique()
     ascii_ = pl.col("value").str.contains(_PRINTABLE_ASCII)
-    fast = values.filter(ascii_).with_columns(pl.col("value").str.strip_chars(" ")).filter(pl.col("value") != "")
-    fast = _refine(fast.with_columns(_vector_flags(pl.col("value"), pl.col("birth"))), places)
+    fast = (distinct.filter(ascii_).with_row_index("seq")
+            .with_columns(pl.col("value").alias("raw"), pl.col("value").str.strip_chars(" ")))  # fmt: skip
+    blanks = fast.filter(pl.col("value") == "")["raw"].to_list()
+    fast = _refine(fast.filter(pl.col("value") != "").with_columns(_vector_flags(pl.col("value"), pl.col("birth"))),
+                   places)  # fmt: skip
     slow_rows = []
-    judged_once: dict[tuple[str, bool], tuple[bool, ...]] = {}  # values repeat (units, names)
-    others = values.filter(~ascii_).select("seq", "key", "line", "value", "birth")
-    for seq, key, line, value, birth in others.iter_rows():
-        value = value.strip()
+    for raw, birth in distinct.filter(~ascii_).iter_rows():
+        value = raw.strip()
         if not value:
+            blanks.append(raw)
             continue
-        flags = judged_once.get((value, birth))
-        if flags is None:
-            found = value_patterns(value)
-            if birth and _full_date(value):
-                found.add("birth_date")
-            if value in places:
-                found.discard("person_name")
-            flags = judged_once[(value, birth)] = tuple(p in found for p in _VALUE_PATTERNS)
-        slow_rows.append((seq, key, line, value, birth, *flags))
-    judged = fast.select("seq", "key", "line", "value", "birth", *_VALUE_PATTERNS)
+        found = value_patterns(value)
+        if birth and _full_date(value):
+            found.add("birth_date")
+        if value in places:
+            found.discard("person_name")
+        slow_rows.append((raw, value, birth, *(p in found for p in _VALUE_PATTERNS)))
+    judged = fast.select("raw", "value", "birth", *_VALUE_PATTERNS)
     if slow_rows:
-        slow = pl.DataFrame(slow_rows, schema=judged.schema, orient="row")
-        judged = pl.concat([judged, slow]).sort("seq")
-    out = {key: _Column(n) for key, n in judged.group_by("key").len().iter_rows()}
-    hits = judged.filter(pl.any_horizontal(*_VALUE_PATTERNS))  # usually none
+        judged = pl.concat([judged, pl.DataFrame(slow_rows, schema=judged.schema, orient="row")])
+    kept = values.filter(~pl.col("value").is_in(blanks)) if blanks else values
+    out = {key: _Column(n) for key, n in kept.group_by("key").len().iter_rows()}
+    matched = judged.filter(pl.any_horizontal(*_VALUE_PATTERNS))  # usually none
+    hits = (kept.select("seq", "key", "line", pl.col("value").alias("raw"), "birth")
+            .join(matched, on=["raw", "birth"], how="inner").sort("seq"))  # fmt: skip
     if hits.height:
         summary = hits.group_by("key").agg(
             *(pl.col(p).sum().alias(f"{p}:n") for p in _VALUE_PATTERNS),
