@@ -28,7 +28,8 @@ from pipeline.linkage import link_stage  # noqa: E402
 from pipeline.manifest import build_manifest, input_files, record_run  # noqa: E402
 from pipeline.measures import measure_stage  # noqa: E402
 from pipeline.periods import Period  # noqa: E402
-from pipeline.pseudonymise import PseudonymKey, resolve_key  # noqa: E402
+from pipeline.period_checks import period_checks  # noqa: E402
+from pipeline.pseudonymise import PseudonymKey, resolve_key, verify_warehouse_key  # noqa: E402
 from pipeline.report import write_report  # noqa: E402
 from pipeline.publish import (  # noqa: E402
     commit_month,
@@ -109,7 +110,8 @@ def validate_task(run_id: str) -> dict[str, Any]:
         return {"valid": s.rows_valid, "rejected": s.rows_rejected, "lab_results": s.lab_results,
                 "versions settled": f"{s.scope.versions} ({s.scope.kind})",
                 "batches checked": len(ctx.batch_checks),
-                "by_source": s.by_source, "held_back_sources": s.held_back}  # fmt: skip
+                "by_source": s.by_source, "held_back_sources": s.held_back,
+                "unmapped_codes": s.unmapped}  # fmt: skip
 
     return _stage(run_id, "validate", work)
 
@@ -219,6 +221,11 @@ def start_run(period: str, config_dir: str, inbox: str, out: str, demo: bool,
     ctx = RunContext(settings, Period.parse(period), Path(inbox), Path(out), key,
                      open_warehouse(Path(out), settings.pipeline.execution.memory_limit), report)  # fmt: skip
     recover_interrupted_run(ctx.out, ctx.con)
+    try:
+        verify_warehouse_key(ctx.con, key)  # a different key would split persons from their history
+    except Exception:
+        ctx.con.close()
+        raise
     run_id = uuid.uuid4().hex
     ctx.run_id = run_id
     _RUNS[run_id] = ctx
@@ -272,12 +279,22 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
     call(measure_task, run_id)
     link = call(link_task, run_id)
     call(summarise_task, run_id)
+    checks = period_checks(ctx.con, ctx.settings, ctx.inbox, ctx.period)
+    missing_policy = ctx.settings.pipeline.completeness.missing_source
     summary = {
         "period": ctx.period.label,
         "demo_key": ctx.key.is_demo,
-        "sources": validate["by_source"],
+        # the period's own rows: files ingested for this period (pipeline/period_checks.py)
+        "sources": checks["period_sources"],
+        "warehouse_sources": validate["by_source"],  # whole-warehouse totals, every period
         "held_back_sources": validate["held_back_sources"],
         "held_back_files": dict(ingest["held_back_files"]),
+        "missing_sources": checks["missing_sources"],
+        "missing_sources_policy": missing_policy,
+        "rows_outside_period": checks["rows_outside_period"],
+        "rows_outside_period_notes": checks["rows_outside_period_notes"],
+        "unmapped_codes": validate.get("unmapped_codes", {}),
+        "indicators_lack": sorted(set(checks["missing_sources"]) | set(validate["held_back_sources"])),
         "persons": link["persons"],
         "headline": headline(ctx),
         "batch_checks": ctx.batch_checks,

@@ -499,7 +499,7 @@ def _to_landed(frame: pl.DataFrame, source: SourceConfig, item: InboxFile) -> pl
         pl.col("status").alias("status_text"),
         pl.col("height_cm").alias("height_text"),
         pl.col("reported_at").alias("reported_text"),
-        pl.col("fasting").alias("fasting_text"),
+        mapped("fasting", source.fasting_codes).alias("fasting_text"),
     )
 
 
@@ -841,14 +841,33 @@ def reject_control_characters(frame: pl.DataFrame) -> pl.DataFrame:
     )
 
 
-def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, ingested_on: dt.date) -> pl.DataFrame:
+def undated_report_date(run_period: str, fallback: dt.date) -> dt.date:
+    """The report date of a row without one, in a file without a month in its name: the last day
+    of the period of the run that first ingests the file (never the day it happened to be
+    loaded, which is after the period end and would hide the rows from their month);
+    ``fallback`` only when ``run_period`` is not a month (``sources check`` without a period)."""
+    match = re.fullmatch(r"(\d{4})-(0[1-9]|1[0-2])", run_period or "")
+    if not match:
+        return fallback
+    year, month = int(match.group(1)), int(match.group(2))
+    return dt.date(year, month, calendar.monthrange(year, month)[1])
+
+
+def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, undated_on: dt.date,
+              run_day: dt.date | None = None) -> pl.DataFrame:  # fmt: skip
     """Parse the collection and report dates; keep the text as reported beside them.
+
+    A row without a report date is known at the end of its extract's month: the month in the
+    file name (basis ``file_name``), else ``undated_on``, the end of the period of the run that
+    first ingests the file (basis ``run_period``; :func:`undated_report_date`); a row collected
+    after that month, at the end of its own collection month (basis ``collected_month``).
 
     A date must match the source's format in full (:func:`date_shape`). A report date given
     but not readable rejects the row (``invalid_report_date``) instead of falling back to the
-    extract's month; a collection date after ``ingested_on`` (the run's date) rejects it
-    (``collected_after_run``) whatever its report date says.
+    extract's month; a collection date after ``run_day`` (the day of the run, today if not
+    given) rejects it (``collected_after_run``) whatever its report date says.
     """
+    run_day = run_day or dt.date.today()
     fmt = source.date_format or "%Y-%m-%d"
     shape = date_shape(source.date_format)
 
@@ -859,14 +878,23 @@ def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, ingest
             text = text.str.slice(0, 10)
         return pl.when(whole).then(text.str.strptime(pl.Date, fmt, strict=False))
 
-    extract_date = _month_end_from_name(item.rel_path) or ingested_on
-    basis_extract = "file_name" if _month_end_from_name(item.rel_path) else "ingested"
+    from_name = _month_end_from_name(item.rel_path)
+    extract_date = from_name or undated_on
+    basis_extract = "file_name" if from_name else "run_period"
+    collected = parse("collected_text")
+    # a row collected after its extract's month (a history sent as one file) cannot have been
+    # known before its own collection month ended: never date it before it was collected
+    collected_month_end = collected.dt.month_end()
+    later = collected_month_end > pl.lit(extract_date)
     reported_given = pl.col("reported_text").str.strip_chars().fill_null("") != ""
     out = frame.with_columns(
-        parse("collected_text").alias("collected_date"),
-        pl.coalesce(parse("reported_text"), pl.lit(extract_date)).alias("reported_date"),
+        collected.alias("collected_date"),
+        pl.coalesce(parse("reported_text"), pl.when(later).then(collected_month_end).otherwise(pl.lit(extract_date)))
+        .alias("reported_date"),
         pl.when(parse("reported_text").is_not_null())
         .then(pl.lit("reported"))
+        .when(later)
+        .then(pl.lit("collected_month"))
         .otherwise(pl.lit(basis_extract))
         .alias("reported_date_basis"),
     )
@@ -874,9 +902,9 @@ def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, ingest
         pl.when(reported_given & parse("reported_text").is_null())
         .then(pl.format("invalid_report_date:report date \"{}\" is not a date in the format {}",
                         pl.col("reported_text"), pl.lit(source.date_format or "YYYY-MM-DD")))
-        .when(pl.col("collected_date") > pl.lit(ingested_on))
+        .when(pl.col("collected_date") > pl.lit(run_day))
         .then(pl.format("collected_after_run:collected {}, after the day of this run ({})",
-                        pl.col("collected_date").dt.strftime("%Y-%m-%d"), pl.lit(ingested_on.isoformat())))
+                        pl.col("collected_date").dt.strftime("%Y-%m-%d"), pl.lit(run_day.isoformat())))
     )  # fmt: skip
     return out.with_columns(pl.coalesce(pl.col("row_fault"), fault).alias("row_fault"))
 
@@ -887,15 +915,18 @@ def district_places(settings: Settings) -> tuple[str, ...]:
     return (*settings.districts.values(), *settings.districts.keys())
 
 
-def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, ingested_on: dt.date) -> pl.DataFrame:
-    """Landed rows of one file, dates parsed, the person token still present."""
+def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, undated_on: dt.date,
+                    run_day: dt.date | None = None) -> pl.DataFrame:  # fmt: skip
+    """Landed rows of one file, dates parsed, the person token still present; ``undated_on`` is
+    the report date of rows without one in a file without a month in its name, ``run_day`` the
+    day of the run (a collection date after it is rejected; today if not given)."""
     if source.layout == "fhir_ndjson":
         frame = read_fhir_export(source, item, settings)
     elif source.layout == "parquet":
         frame = read_parquet(source, item, district_places(settings))
     else:
         frame = read_delimited(source, item, places=district_places(settings))
-    return add_dates(reject_control_characters(frame.select(LANDED_COLUMNS)), source, item, ingested_on)
+    return add_dates(reject_control_characters(frame.select(LANDED_COLUMNS)), source, item, undated_on, run_day)
 
 
 def land_inbox(
@@ -918,6 +949,7 @@ def land_inbox(
     reads one given file).
     """
     summary = IngestSummary()
+    undated_on = undated_report_date(run_period, ingested_on)
     if items is None:
         items = scan_inbox(con, settings, inbox)
     next_id = con.execute("select coalesce(max(file_id), 0) + 1 from ingest_files").fetchall()[0][0]
@@ -958,7 +990,7 @@ def land_inbox(
             summary.files_skipped += 1
         else:  # new, or a copy of a file that was not ingested (held back): read it
             try:
-                frame = read_inbox_file(source, item, settings, ingested_on)
+                frame = read_inbox_file(source, item, settings, undated_on, ingested_on)
             except FileFault as fault:
                 status, message = "held_back", item.safe(str(fault))
                 summary.files_held_back += 1

@@ -76,7 +76,8 @@ def input_files(con: duckdb.DuckDBPyConnection, run_period: str) -> list[dict[st
 def build_manifest(run_id: str, started_at: dt.datetime, settings: Settings, period: str,
                    demo_key: bool, stages: dict[str, dict[str, Any]], summary: dict[str, Any],
                    files: list[dict[str, Any]]) -> dict[str, Any]:  # fmt: skip
-    held = bool(summary.get("held_back_sources") or summary.get("held_back_files"))
+    held = bool(summary.get("held_back_sources") or summary.get("held_back_files")
+                or (summary.get("missing_sources") and summary.get("missing_sources_policy") == "hold"))
     m = settings.pipeline.measures
     return {
         "run_id": run_id,
@@ -106,6 +107,10 @@ def build_manifest(run_id: str, started_at: dt.datetime, settings: Settings, per
                          "held_back_files": summary.get("held_back_files", {}),
                          "batch_checks": summary.get("batch_checks", {})},  # fmt: skip
         "headline": summary.get("headline", {}),
+        # what the run says about its own period (pipeline/period_checks.py, unmapped codes)
+        "period_checks": {k: summary.get(k) for k in (
+            "sources", "warehouse_sources", "missing_sources", "missing_sources_policy",
+            "rows_outside_period", "rows_outside_period_notes", "unmapped_codes", "indicators_lack")},
     }
 
 

@@ -24,7 +24,7 @@ from pipeline.settings import Settings
 SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
 WAREHOUSE_FILE = "surveillance.duckdb"
 _NAME = re.compile(r"^[a-z][a-z0-9_]{0,62}$")
-LEDGER_TABLES = ("ingest_files", "result_versions", "rejected_rows", "runs", "link_snapshots")
+LEDGER_TABLES = ("ingest_files", "result_versions", "rejected_rows", "runs", "link_snapshots", "key_check")
 
 
 def sql_path(name: str) -> Path:

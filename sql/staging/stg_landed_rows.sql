@@ -54,6 +54,8 @@ select
         when upper(trim(n.sex_text)) in ('M', 'MALE') then 'M'
         else 'U'
     end as sex,
+    n.sex_text,
+    n.fasting_text,
     -- a birth year is four digits: '1950.5' or '1950x' is not a year (a cast would round it)
     case when regexp_full_match(trim(n.birth_year_text), '[0-9]{4}')
          then cast(trim(n.birth_year_text) as integer) end as birth_year,
