@@ -1,11 +1,13 @@
 """The ``kidneysurv`` command: a thin front on the monthly flow.
 
 Exit codes: 0 success; 1 a source was held back by the quality gate (the others published);
-2 bad usage or configuration.
+2 bad usage or configuration; 3 another run holds the output folder; 4 an internal failure (one
+line on the terminal naming what failed and the log file holding the traceback).
 """
 
 from __future__ import annotations
 
+import os
 import sys
 import time
 from enum import Enum
@@ -34,6 +36,86 @@ console = Console(highlight=False, width=None if sys.stdout.isatty() else 120)
 err = Console(stderr=True, highlight=False)
 
 EXIT_OK, EXIT_HELD_BACK, EXIT_USAGE = 0, 1, 2
+EXIT_INTERNAL = 4
+
+
+def write_failure_log(out: Path, period: str, text: str) -> Path | None:
+    """Write ``text`` (a traceback) to ``<out>/<period>/logs/``, or to the system's temporary
+    folder when the output folder cannot be written (read-only, full); None if neither can."""
+    import datetime as dt
+    import tempfile
+
+    stamp = dt.datetime.now(dt.UTC).strftime("%Y%m%dT%H%M%SZ")
+    name = f"failure-{period}-{stamp}-{os.getpid()}.log"
+    for folder in (out / period / "logs", Path(tempfile.gettempdir()) / "kidneysurv-logs"):
+        path = folder / name
+        try:
+            folder.mkdir(parents=True, exist_ok=True)
+            with path.open("w", encoding="utf-8") as fh:
+                fh.write(text)
+                fh.flush()
+                os.fsync(fh.fileno())
+            return path
+        except OSError:
+            try:
+                path.unlink(missing_ok=True)
+            except OSError:
+                pass
+    return None
+
+
+def report_failure(exc: BaseException, out: Path, period: str, verbose: bool) -> int:
+    """One line on the terminal (what failed, where the traceback is), the traceback in the log
+    file (and on the terminal too with ``--verbose``); returns :data:`EXIT_INTERNAL`."""
+    import traceback
+
+    text = "".join(traceback.format_exception(exc))
+    log = write_failure_log(out, period, text)
+    where = f"traceback in {log}" if log else "the traceback could not be written anywhere; run with --verbose"
+    first = (str(exc).strip().splitlines() or [""])[0][:300]
+    hint = _failure_hint(exc)
+    if verbose:
+        err.print(text, markup=False, highlight=False, soft_wrap=True)
+    err.print(f"[bold red]internal failure:[/] {type(exc).__name__}: {first}{hint}; {where}",
+              markup=True, soft_wrap=True)  # fmt: skip
+    return EXIT_INTERNAL
+
+
+class WarehouseDamaged(Exception):
+    """The warehouse file exists but DuckDB cannot open it."""
+
+
+def check_warehouse_opens(out: Path) -> None:
+    """Open an existing warehouse read-only before Prefect starts, so that a damaged file is
+    reported at once (exit 4), not after the temporary server's start-up."""
+    import duckdb
+
+    from pipeline.warehouse import WAREHOUSE_FILE
+
+    path = out / WAREHOUSE_FILE
+    if not path.exists():
+        return
+    try:
+        duckdb.connect(str(path), read_only=True).close()
+    except duckdb.Error as exc:
+        raise WarehouseDamaged(f"{path}: the warehouse file cannot be opened ({str(exc).splitlines()[0][:200]})") from exc
+
+
+def _failure_hint(exc: BaseException) -> str:
+    """What the failure most likely means for the person running it."""
+    import errno
+
+    import duckdb
+
+    if isinstance(exc, OSError) and exc.errno == errno.ENOSPC:
+        return " (the disk is full: free space, then run again; the last published month is unchanged)"
+    if isinstance(exc, PermissionError | OSError) and exc.errno in (errno.EACCES, errno.EROFS, errno.EPERM):
+        return " (the output folder cannot be written: check its permissions; nothing was published)"
+    if isinstance(exc, duckdb.Error) and "no space left" in str(exc).lower():
+        return " (the disk is full: free space, then run again; the last published month is unchanged)"
+    if isinstance(exc, duckdb.Error | WarehouseDamaged):
+        return " (the warehouse file could not be used: it may be damaged; restore it from a backup)"
+    return ""
 
 
 class Executor(str, Enum):
@@ -164,12 +246,22 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
         _fail(str(exc))
     try:
         with run_lock(out, period):  # before Prefect starts: a second run stops at once
+            check_warehouse_opens(out)
             from pipeline import prefect_env
 
             prefect_env.configure(verbose=verbose)
             from pipeline import flows
 
             flows.set_reporter(_stage_line)
+            if not verbose:  # a failure is told in one line (report_failure), not by Prefect's log
+                import logging
+
+                for name in ("prefect.flow_runs", "prefect.task_runs"):
+                    logging.getLogger(name).setLevel(logging.CRITICAL)
+            if not os.environ.get("PREFECT_API_URL"):  # Prefect's temporary server: ended if this run is killed
+                from pipeline import reaper
+
+                reaper.watch()
             console.print(f"kidneysurv: monthly run for {period} ({len(settings.sources)} sources, inbox {inbox})")
             started = time.perf_counter()
             try:
@@ -190,6 +282,10 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
     except RunLocked as exc:
         err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
         raise typer.Exit(EXIT_LOCKED) from None
+    except (typer.Exit, KeyboardInterrupt):
+        raise
+    except Exception as exc:  # noqa: BLE001 - every other failure: exit 4, the traceback in a log file
+        return report_failure(exc, out, period, verbose)
 
 
 @app.command()
@@ -245,6 +341,16 @@ def backfill(
         _fail(str(exc))
     if last < first:
         _fail(f"--to {last} is before --from {first}")
+    from pipeline.backfill import finish_interrupted
+
+    try:  # a month that committed but whose exports were never put in place is finished first
+        for line in finish_interrupted(out):
+            console.print(f"finished a stopped run: {line}")
+    except RunLocked as exc:
+        err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
+        raise typer.Exit(EXIT_LOCKED) from None
+    except Exception as exc:  # noqa: BLE001 - exit 4, the traceback in a log file
+        raise typer.Exit(report_failure(exc, out, first.label, verbose)) from None
     plan = months_to_run(out, first, last, force)
     worst = EXIT_OK
     for i, (period, skip) in enumerate(plan, start=1):

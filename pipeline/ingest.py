@@ -71,6 +71,14 @@ class InboxFile:
     allowed_identifiers: list[identifiers.Finding] = field(default_factory=list)
     #: things worth telling about a file that was ingested (e.g. columns it ignored)
     notes: list[str] = field(default_factory=list)
+    #: the patterns the file's name matched: it is stored as its hash (rel_path), never in clear
+    name_withheld: list[str] = field(default_factory=list)
+
+    def safe(self, message: str) -> str:
+        """``message`` with the file's name withheld if the name looks identifying."""
+        if self.name_withheld:
+            message = message.replace(str(self.path), self.rel_path).replace(self.path.name, self.rel_path)
+        return message
 
 
 @dataclass
@@ -134,14 +142,21 @@ def scan_inbox(con: duckdb.DuckDBPyConnection | None, settings: Settings, inbox:
             if not path.is_file():
                 continue
             rel = path.relative_to(inbox).as_posix()
+            # a file name that looks like a person's name, phone number or e-mail address is
+            # stored as its hash, before anything is written
+            name_flags = sorted(identifiers.file_name_patterns(rel))
+            if name_flags:
+                month = _month_end_from_name(rel)
+                rel = identifiers.withheld_file_name(rel, f"{month:%Y-%m}" if month else None)
             try:
                 sha = sha256_of(path)
                 size = path.stat().st_size
             except OSError as exc:  # held back by land_inbox, with the reason
-                found.append(InboxFile(source.id, path, rel, "", 0, status="unreadable",
-                                       fault=str(_unreadable(path, exc))))  # fmt: skip
+                bad = InboxFile(source.id, path, rel, "", 0, status="unreadable", name_withheld=name_flags)
+                bad.fault = bad.safe(str(_unreadable(path, exc)))
+                found.append(bad)
                 continue
-            item = InboxFile(source.id, path, rel, sha, size)
+            item = InboxFile(source.id, path, rel, sha, size, name_withheld=name_flags)
             earlier = seen.get((source.id, sha))
             if (source.id, sha, rel) in recorded:
                 item.status = "already_ingested"
@@ -209,15 +224,29 @@ def fast_path_applies(text: str, delimiter: str) -> bool:
     return '"' not in text and delimiter not in '"\r\n'
 
 
+def withheld_text(fields: list[str]) -> str:
+    """The raw text kept for a row whose fields cannot be matched to the header with certainty
+    (too many or too few): the field count and each field's length, never the text, since a
+    person token or a name may sit in any field."""
+    return f"[text withheld: {len(fields)} fields, lengths {','.join(str(len(f)) for f in fields)}]"
+
+
+def _rejoin(fields: list[str], delimiter: str) -> str:
+    """A row's fields written back as one line of the file (quoted where the csv module
+    would quote them); for a file without quotes, the line as read."""
+    out = io.StringIO()
+    # "\r\n" as the terminator: the csv module then quotes a field holding either character
+    csv.writer(out, delimiter=delimiter, lineterminator="\r\n").writerow(fields)
+    return out.getvalue()[:-2].replace("\r\n", "\n").replace("\r", "\n")
+
+
 def _rows_by_csv(path: Path, text: str, delimiter: str, n_fields: int,
                  index: dict[str, int]) -> tuple[pl.DataFrame, list[tuple[int, list[str]]]]:  # fmt: skip
     """Rows of a file through the csv module: quoted fields, line breaks inside quotes."""
     token_idx = index["person_token"]
     reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
     next(reader)  # the header
-    # the csv reader counts a line at \r\n, \n or \r only (str.splitlines would also split at
-    # form feeds and Unicode separators and put raw text and line numbers out of step)
-    lines = re.split(r"\r\n|\n|\r", text)
+    lines: list[str] = []
     columns: dict[str, list] = {f: [] for f in ("line_no", "raw_text", "row_fault", *index)}
     schema = {k: pl.Int64 if k == "line_no" else pl.String for k in columns}
     chunks: list[pl.DataFrame] = []
@@ -228,6 +257,7 @@ def _rows_by_csv(path: Path, text: str, delimiter: str, n_fields: int,
             for values in columns.values():
                 values.clear()
 
+    del lines  # the raw text of a row is rebuilt from its fields (see withheld_text)
     start = 2
     rows_iter = iter(reader)
     sample: list[tuple[int, list[str]]] = []
@@ -240,7 +270,6 @@ def _rows_by_csv(path: Path, text: str, delimiter: str, n_fields: int,
         except csv.Error as exc:
             raise FileFault(f"{path}: line {reader.line_num}: cannot be read as CSV ({exc})") from None
         end = reader.line_num
-        raw = "\n".join(lines[start - 1 : end])
         line_no, start = start, end + 1
         if not row or (len(row) == 1 and not row[0].strip()):
             continue  # blank line: not a row
@@ -249,11 +278,16 @@ def _rows_by_csv(path: Path, text: str, delimiter: str, n_fields: int,
         n_rows += 1
         fault = None
         if len(row) != n_fields:
+            # the fields cannot be matched to the header with certainty: the text is not kept
             fault = f"wrong_field_count:{len(row)} fields, the header has {n_fields}"
+            raw = withheld_text(row)
             row = (row + [""] * n_fields)[:n_fields]
-        token = row[token_idx].strip()
-        if token:
-            raw = raw.replace(token, _MASK)
+        else:
+            token = row[token_idx].strip()
+            # masked field by field before the fields are written back: a token that needs
+            # quoting (a delimiter, a quote) would otherwise survive in its escaped form
+            raw = _rejoin([_MASK if i == token_idx and token else v.replace(token, _MASK) if token else v
+                           for i, v in enumerate(row)], delimiter)  # fmt: skip
         columns["line_no"].append(line_no)
         columns["raw_text"].append(raw)
         columns["row_fault"].append(fault)
@@ -298,12 +332,21 @@ def _rows_in_bulk(text: str, delimiter: str, n_fields: int,
     def field(i: int) -> pl.Expr:  # a short row is padded with empty fields
         return fields.list.get(i, null_on_oob=True).fill_null("")
 
-    token = field(index["person_token"]).str.strip_chars(PY_WHITESPACE)
+    token_idx = index["person_token"]
+    token = field(token_idx).str.strip_chars(PY_WHITESPACE)
+    masked = pl.concat_str(
+        [pl.when(token != "").then(pl.lit(_MASK)).otherwise(field(i)) if i == token_idx else field(i)
+         for i in range(n_fields)], separator=delimiter)  # fmt: skip
+    withheld = pl.format(
+        "[text withheld: {} fields, lengths {}]", n,
+        fields.list.eval(pl.element().str.len_chars().cast(pl.String)).list.join(","))  # fmt: skip
     rows = frame.select(
         "line_no",
-        # str.replace, in bulk: the token's every occurrence in the line becomes the mask
-        pl.when(token != "").then(pl.col("raw_text").str.split(token).list.join(_MASK))
-        .otherwise(pl.col("raw_text")).alias("raw_text"),
+        # as withheld_text and _rejoin: a row whose fields do not match the header keeps no
+        # text; any other keeps its fields with the token's every occurrence masked
+        pl.when(n != n_fields).then(withheld)
+        .when(token != "").then(masked.str.split(token).list.join(_MASK))
+        .otherwise(masked).alias("raw_text"),
         pl.when(n != n_fields)
         .then(pl.format("wrong_field_count:{} fields, the header has {}", n, pl.lit(n_fields)))
         .otherwise(pl.lit(None, dtype=pl.String)).alias("row_fault"),
@@ -312,7 +355,8 @@ def _rows_in_bulk(text: str, delimiter: str, n_fields: int,
     return rows, sample
 
 
-def read_delimited(source: SourceConfig, item: InboxFile, reader: str = "auto") -> pl.DataFrame:
+def read_delimited(source: SourceConfig, item: InboxFile, reader: str = "auto",
+                   places: tuple[str, ...] = ()) -> pl.DataFrame:  # fmt: skip
     """Read a standard-layout or mapped delimited file into landed rows.
 
     ``reader``: ``auto`` splits a file without quotes in bulk and reads any other through the
@@ -334,6 +378,10 @@ def read_delimited(source: SourceConfig, item: InboxFile, reader: str = "auto") 
     except csv.Error as exc:
         raise FileFault(f"{path}: line 1: the header cannot be read as CSV ({exc})") from None
     header = [h.strip() for h in first]
+    twice = sorted({h for h in header if header.count(h) > 1})
+    if twice:
+        raise FileFault(f"{path}: line 1: the header names the column(s) {twice} more than once; which one "
+                        "to read is not certain: ask the lab for a file with one column of each name")  # fmt: skip
     fault = _header_fault(path, header, required, source.delimiter)
     if fault:
         raise FileFault(fault)
@@ -350,29 +398,68 @@ def read_delimited(source: SourceConfig, item: InboxFile, reader: str = "auto") 
     else:
         frame, sample_rows = _rows_by_csv(path, text, source.delimiter, len(header), index)
         sample = None
+    cut_short = source.last_line_end == "required" and not text.endswith(("\n", "\r"))
+    cut_short = cut_short and bool(re.split(r"\r\n|\n|\r", text[-4096:])[-1].strip())
     del text
     if not frame.height:
         raise FileFault(f"{path}: the file has a header but no rows")
     aliases = {c: f for f, c in wanted.items()}
     births = [c for f, c in wanted.items() if f == "birth_year"]
     if sample is None:
-        findings = identifiers.screen_table(header, sample_rows, births)
+        findings = identifiers.screen_table(header, sample_rows, births, places)
     else:
-        findings = identifiers.screen_values(header, sample, births)
-    _apply_screen(source, item, path, findings, aliases)
+        findings = identifiers.screen_values(header, sample, births, places)
+    frame = _quarantine(frame, _apply_screen(source, item, path, findings, aliases))
+    if cut_short:  # the last row, unless a fault already rejects it
+        last = frame["line_no"].max()
+        frame = frame.with_columns(
+            pl.when((pl.col("line_no") == last) & pl.col("row_fault").is_null())
+            .then(pl.lit(TRUNCATED)).otherwise(pl.col("row_fault")).alias("row_fault"))  # fmt: skip
     for f in STANDARD_FIELDS:
         if f not in frame.columns:
             frame = frame.with_columns(pl.lit(None, dtype=pl.String).alias(f))
     return _to_landed(frame, source, item)
 
 
-def _apply_screen(source: SourceConfig, item: InboxFile, path: Path,
-                  findings: list[identifiers.Finding], aliases: dict[str, str] | None = None) -> None:
-    """Refuse the file (a FileFault) for any finding the source does not allow; keep the rest."""
+#: The row_fault of a last line without a line end (see SourceConfig.last_line_end).
+TRUNCATED = ("truncated_line:the file's last line has no line end and may have been cut short; ask the "
+             "lab to send the file again (or set last_line_end: optional if its files end so)")  # fmt: skip
+
+
+def _apply_screen(source: SourceConfig, item: InboxFile, path: Path, findings: list[identifiers.Finding],
+                  aliases: dict[str, str] | None = None, rows_ok: bool = True) -> list[identifiers.Finding]:
+    """Refuse the file (a FileFault) for any finding of a whole column the source does not
+    allow; return the findings of a few values (their rows are quarantined), keep the rest.
+    ``rows_ok`` False: any finding refuses the file (records that are not stored as rows)."""
     refused, allowed = identifiers.split_allowed(findings, source.allowed_identifier_columns, aliases)
-    if refused:
-        raise FileFault(identifiers.refusal_message(path, refused, source.id))
+    whole = [f for f in refused if f.whole_column or not rows_ok]
+    if whole:
+        raise FileFault(identifiers.refusal_message(path, whole, source.id))
     item.allowed_identifiers.extend(allowed)
+    rows = [f for f in refused if not f.whole_column]
+    if rows:
+        item.notes.append(identifiers.quarantine_note(rows))
+    return rows
+
+
+def _quarantine(frame: pl.DataFrame, findings: list[identifiers.Finding]) -> pl.DataFrame:
+    """Reject every row holding a value the screen flagged (``identifier_in_value``): the reason
+    names the column and the pattern, and the row's text is not kept."""
+    if not findings:
+        return frame
+    reasons: dict[int, str] = {}
+    for f in findings:
+        for line in f.lines:
+            reasons.setdefault(line, identifiers.quarantine_reason(f))
+    flagged = pl.DataFrame({"line_no": list(reasons), "_reason": list(reasons.values())},
+                           schema={"line_no": pl.Int64, "_reason": pl.String})  # fmt: skip
+    out = frame.join(flagged, on="line_no", how="left", maintain_order="left")
+    hit = pl.col("_reason").is_not_null()
+    return out.with_columns(
+        pl.when(hit).then(pl.col("_reason")).otherwise(pl.col("row_fault")).alias("row_fault"),
+        pl.when(hit).then(pl.lit("[text withheld: the identifier screen flagged a field]"))
+        .otherwise(pl.col("raw_text")).alias("raw_text"),
+    ).drop("_reason")
 
 
 def _to_landed(frame: pl.DataFrame, source: SourceConfig, item: InboxFile) -> pl.DataFrame:
@@ -444,7 +531,7 @@ def _as_text(path: Path, frame: pl.DataFrame) -> pl.DataFrame:
         raise FileFault(f"{path}: a column cannot be read as text ({str(exc).splitlines()[0][:160]})") from None
 
 
-def read_parquet(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
+def read_parquet(source: SourceConfig, item: InboxFile, places: tuple[str, ...] = ()) -> pl.DataFrame:
     """Read one Parquet file (layout ``parquet``) into landed rows, mapped by ``columns``.
 
     ``line_no`` is the row's 1-based number in the file; ``raw_text`` the row as compact JSON of
@@ -489,8 +576,8 @@ def read_parquet(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
         for i, c in enumerate(header)
     ]).sort("line", "position", maintain_order=True).filter(pl.col("value") != "")  # fmt: skip
     births = [c for f, c in wanted.items() if f == "birth_year"]
-    findings = identifiers.screen_values(header, sample, births)
-    _apply_screen(source, item, path, findings, {c: f for f, c in wanted.items()})
+    findings = identifiers.screen_values(header, sample, births, places)
+    flagged = _apply_screen(source, item, path, findings, {c: f for f, c in wanted.items()})
     token = pl.col(wanted["person_token"]).str.strip_chars(PY_WHITESPACE)
 
     def masked(col: str) -> pl.Expr:  # str.replace of the token in every value, as in a line of text
@@ -504,7 +591,7 @@ def read_parquet(source: SourceConfig, item: InboxFile) -> pl.DataFrame:
         *(pl.col(c).alias(f) for f, c in wanted.items() if c in header),
     )
     rows = rows.with_columns(pl.lit(None, dtype=pl.String).alias(f) for f in STANDARD_FIELDS if f not in rows.columns)
-    return _to_landed(rows, source, item)
+    return _to_landed(_quarantine(rows, flagged), source, item)
 
 
 # --------------------------------------------------------------------------- FHIR NDJSON
@@ -546,12 +633,13 @@ def _ndjson_lines(text: str) -> list[str]:
     return [line.removesuffix("\r") for line in text.split("\n")]
 
 
-def _read_patients(path: Path, source: SourceConfig, item: InboxFile) -> dict[str, dict]:
+def _read_patients(path: Path, source: SourceConfig, item: InboxFile, settings: Settings) -> dict[str, dict]:
     patients: dict[str, dict] = {}
     if not path.is_file():
         raise FileFault(f"{path}: Patient.ndjson is missing beside {path.parent / 'Observation.ndjson'}")
     text = _decode(path, read_file_bytes(path), "utf-8")
     sample: list[tuple[int, dict]] = []
+    ids_by_line: dict[int, str] = {}
     system = source.fhir.linkage_identifier_system
     for line_no, line in enumerate(_ndjson_lines(text), start=1):
         if not line.strip():
@@ -564,6 +652,7 @@ def _read_patients(path: Path, source: SourceConfig, item: InboxFile) -> dict[st
             raise FileFault(f"{path}: line {line_no}: expected a Patient resource with an id")
         if identifiers.sampled(len(patients)):
             sample.append((line_no, res))
+        ids_by_line[line_no] = res["id"]
         try:
             token, domain = None, source.id
             for ident in _objects(res, "identifier"):
@@ -581,7 +670,12 @@ def _read_patients(path: Path, source: SourceConfig, item: InboxFile) -> dict[st
             }
         except _Malformed as exc:
             raise FileFault(f"{path}: line {line_no}: Patient {res['id']}: {exc}") from None
-    _apply_screen(source, item, path, identifiers.screen_resources("Patient", sample))
+    flagged = _apply_screen(source, item, path, identifiers.screen_resources("Patient", sample, district_places(settings)))
+    # a Patient with a value that looks like an identifier: every Observation of it is
+    # quarantined with the reason (the Patient records themselves are never stored)
+    for f in flagged:
+        for line in f.lines:
+            patients[ids_by_line[line]].setdefault("quarantine", identifiers.quarantine_reason(f))
     return patients
 
 
@@ -626,7 +720,7 @@ _FHIR_FIELDS = (
 def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) -> pl.DataFrame:
     """Read one bulk-export folder (Observation.ndjson with its Patient.ndjson)."""
     path = item.path
-    patients = _read_patients(path.parent / "Patient.ndjson", source, item)
+    patients = _read_patients(path.parent / "Patient.ndjson", source, item, settings)
     by_name = {name.casefold(): code for code, name in settings.districts.items()}
     text = _decode(path, read_file_bytes(path), "utf-8")
     rows: dict[str, list] = {f: [] for f in _FHIR_FIELDS}
@@ -646,11 +740,20 @@ def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) 
             rec.update(_observation_fields(res))
         except (json.JSONDecodeError, _Malformed) as exc:
             rec["row_fault"] = f"malformed_record:{getattr(exc, 'msg', str(exc))}"
-            rec["raw_text"] = _PATIENT_REF.sub(_MASK, line[:2000])
+            # not readable as an Observation: which part is what is not certain, no text kept
+            rec["raw_text"] = f"[text withheld: a record of {len(line)} characters that is not a readable Observation]"
             for f, v in rec.items():
                 rows[f].append(v)
             continue
         patient = patients.get(subject.removeprefix("Patient/"))
+        if patient is not None and "quarantine" in patient:
+            rec["row_fault"] = patient["quarantine"]
+            rec["raw_text"] = "[text withheld: the identifier screen flagged a field of its Patient]"
+            rec["person_token"] = patient["person_token"]
+            rec["linkage_domain"] = patient["linkage_domain"]
+            for f, v in rec.items():
+                rows[f].append(v)
+            continue
         if patient is not None:
             rec.update({k: v for k, v in patient.items() if k != "district_name"})
             name = patient["district_name"]
@@ -664,8 +767,9 @@ def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) 
             rows[f].append(v)
     if not rows["line_no"]:
         raise FileFault(f"{path}: no Observation records")
-    _apply_screen(source, item, path, identifiers.screen_resources("Observation", sample))
+    flagged = _apply_screen(source, item, path, identifiers.screen_resources("Observation", sample, district_places(settings)))
     frame = pl.DataFrame(rows, schema={f: pl.Int64 if f == "line_no" else pl.String for f in _FHIR_FIELDS})
+    frame = _quarantine(frame, flagged)
     return frame.with_columns(
         pl.lit(source.id).alias("source_id"), pl.lit(item.file_id, dtype=pl.Int64).alias("file_id")
     ).select(LANDED_COLUMNS)
@@ -688,6 +792,56 @@ def extract_month(rel_path: str, run_period: str) -> str:
     return f"{end.year:04d}-{end.month:02d}" if end else run_period
 
 
+#: A date in ISO 8601 as the standard layout sends it: a calendar date, optionally a time.
+_ISO_DATE = r"\d{4}-\d{2}-\d{2}(?:[T ]\d{2}:\d{2}(?::\d{2}(?:[.,]\d+)?)?(?:Z|[+-]\d{2}(?::?\d{2})?)?)?"
+_STRFTIME_PARTS = {"Y": r"\d{4}", "m": r"\d{2}", "d": r"\d{2}", "H": r"\d{2}", "M": r"\d{2}", "S": r"\d{2}",
+                   "y": r"\d{2}", "f": r"\d{1,9}", "b": r"[A-Za-z]{3}", "B": r"[A-Za-z]{3,9}",
+                   "z": r"[+-]\d{4}", "%": "%"}  # fmt: skip
+
+
+def date_shape(date_format: str | None) -> str:
+    """The regular expression a date text must match in full: ISO 8601 when no format is set,
+    else the configured strftime format with each part at its full width (``%d`` two digits),
+    so that trailing text and unpadded dates are refused rather than read leniently."""
+    if date_format is None:
+        return _ISO_DATE
+    out, i = [], 0
+    while i < len(date_format):
+        ch = date_format[i]
+        if ch == "%" and i + 1 < len(date_format):
+            out.append(_STRFTIME_PARTS.get(date_format[i + 1], re.escape("%" + date_format[i + 1])))
+            i += 2
+        else:
+            out.append(re.escape(ch))
+            i += 1
+    return "".join(out)
+
+
+#: C0 and C1 control characters other than tab, line feed and carriage return (which a quoted
+#: field may hold): a value carrying one is rejected, never stored.
+CONTROL = r"[\x00-\x08\x0B\x0C\x0E-\x1F\x7F-\x9F]"
+#: The landed text fields checked for control characters, with the name used in messages.
+_CHECKED_FIELDS = {
+    "person_token": "person_token", "birth_year_text": "birth_year", "sex_text": "sex",
+    "district_code": "district_code", "specimen_id": "specimen_id", "collected_text": "collected_date",
+    "test_code_text": "test_code", "value_text": "value", "unit_text": "unit", "status_text": "status",
+    "height_text": "height_cm", "reported_text": "reported_at", "fasting_text": "fasting",
+}  # fmt: skip
+
+
+def reject_control_characters(frame: pl.DataFrame) -> pl.DataFrame:
+    """Reject a row with a control character in any field (``control_character``), naming
+    the field, not the value; in the kept raw text each such character becomes U+FFFD."""
+    fault = pl.lit(None, dtype=pl.String)
+    for col, name in reversed(_CHECKED_FIELDS.items()):
+        fault = pl.when(pl.col(col).str.contains(CONTROL)).then(
+            pl.lit(f"control_character:field {name!r} holds a control character")).otherwise(fault)
+    return frame.with_columns(
+        pl.coalesce(pl.col("row_fault"), fault).alias("row_fault"),
+        pl.col("raw_text").str.replace_all(CONTROL, "\ufffd"),
+    )
+
+
 def undated_report_date(run_period: str, fallback: dt.date) -> dt.date:
     """The report date of a row without one, in a file without a month in its name: the last day
     of the period of the run that first ingests the file (never the day it happened to be
@@ -700,20 +854,30 @@ def undated_report_date(run_period: str, fallback: dt.date) -> dt.date:
     return dt.date(year, month, calendar.monthrange(year, month)[1])
 
 
-def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, undated_on: dt.date) -> pl.DataFrame:
+def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, undated_on: dt.date,
+              run_day: dt.date | None = None) -> pl.DataFrame:  # fmt: skip
     """Parse the collection and report dates; keep the text as reported beside them.
 
     A row without a report date is known at the end of its extract's month: the month in the
     file name (basis ``file_name``), else ``undated_on``, the end of the period of the run that
     first ingests the file (basis ``run_period``; :func:`undated_report_date`); a row collected
-    after that month, at the end of its own collection month (basis ``collected_month``)."""
+    after that month, at the end of its own collection month (basis ``collected_month``).
+
+    A date must match the source's format in full (:func:`date_shape`). A report date given
+    but not readable rejects the row (``invalid_report_date``) instead of falling back to the
+    extract's month; a collection date after ``run_day`` (the day of the run, today if not
+    given) rejects it (``collected_after_run``) whatever its report date says.
+    """
+    run_day = run_day or dt.date.today()
     fmt = source.date_format or "%Y-%m-%d"
+    shape = date_shape(source.date_format)
 
     def parse(col: str) -> pl.Expr:
         text = pl.col(col).str.strip_chars()
+        whole = text.str.contains(rf"^(?:{shape})$")
         if source.date_format is None:
             text = text.str.slice(0, 10)
-        return text.str.strptime(pl.Date, fmt, strict=False)
+        return pl.when(whole).then(text.str.strptime(pl.Date, fmt, strict=False))
 
     from_name = _month_end_from_name(item.rel_path)
     extract_date = from_name or undated_on
@@ -723,7 +887,8 @@ def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, undate
     # known before its own collection month ended: never date it before it was collected
     collected_month_end = collected.dt.month_end()
     later = collected_month_end > pl.lit(extract_date)
-    return frame.with_columns(
+    reported_given = pl.col("reported_text").str.strip_chars().fill_null("") != ""
+    out = frame.with_columns(
         collected.alias("collected_date"),
         pl.coalesce(parse("reported_text"), pl.when(later).then(collected_month_end).otherwise(pl.lit(extract_date)))
         .alias("reported_date"),
@@ -734,18 +899,35 @@ def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, undate
         .otherwise(pl.lit(basis_extract))
         .alias("reported_date_basis"),
     )
+    fault = (
+        pl.when(reported_given & parse("reported_text").is_null())
+        .then(pl.format("invalid_report_date:report date \"{}\" is not a date in the format {}",
+                        pl.col("reported_text"), pl.lit(source.date_format or "YYYY-MM-DD")))
+        .when(pl.col("collected_date") > pl.lit(run_day))
+        .then(pl.format("collected_after_run:collected {}, after the day of this run ({})",
+                        pl.col("collected_date").dt.strftime("%Y-%m-%d"), pl.lit(run_day.isoformat())))
+    )  # fmt: skip
+    return out.with_columns(pl.coalesce(pl.col("row_fault"), fault).alias("row_fault"))
 
 
-def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, undated_on: dt.date) -> pl.DataFrame:
+def district_places(settings: Settings) -> tuple[str, ...]:
+    """The region's district names and codes: two capitalised words there are a place, not a
+    person (the identifier screen leaves them alone)."""
+    return (*settings.districts.values(), *settings.districts.keys())
+
+
+def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, undated_on: dt.date,
+                    run_day: dt.date | None = None) -> pl.DataFrame:  # fmt: skip
     """Landed rows of one file, dates parsed, the person token still present; ``undated_on`` is
-    the report date of rows without one in a file without a month in its name."""
+    the report date of rows without one in a file without a month in its name, ``run_day`` the
+    day of the run (a collection date after it is rejected; today if not given)."""
     if source.layout == "fhir_ndjson":
         frame = read_fhir_export(source, item, settings)
     elif source.layout == "parquet":
-        frame = read_parquet(source, item)
+        frame = read_parquet(source, item, district_places(settings))
     else:
-        frame = read_delimited(source, item)
-    return add_dates(frame.select(LANDED_COLUMNS), source, item, undated_on)
+        frame = read_delimited(source, item, places=district_places(settings))
+    return add_dates(reject_control_characters(frame.select(LANDED_COLUMNS)), source, item, undated_on, run_day)
 
 
 def land_inbox(
@@ -809,11 +991,11 @@ def land_inbox(
             summary.files_skipped += 1
         else:  # new, or a copy of a file that was not ingested (held back): read it
             try:
-                frame = read_inbox_file(source, item, settings, undated_on)
+                frame = read_inbox_file(source, item, settings, undated_on, ingested_on)
             except FileFault as fault:
-                status, message = "held_back", str(fault)
+                status, message = "held_back", item.safe(str(fault))
                 summary.files_held_back += 1
-                summary.held_back.append((item.rel_path, str(fault)))
+                summary.held_back.append((item.rel_path, message))
             else:
                 rows_read = frame.height
                 keyed = add_person_keys(frame, key, keys)

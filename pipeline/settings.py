@@ -130,6 +130,10 @@ class SourceConfig(_Strict):
     #: Columns the identifier screen would refuse but that this source may send, each with the
     #: written reason (recorded in the run manifest), e.g. {"birth_year": "year only, reviewed"}.
     allowed_identifier_columns: dict[str, str] = Field(default_factory=dict)
+    #: ``required`` (default): a delimited file whose last line has no line end may have been
+    #: cut short, and that line is rejected as ``truncated_line``; ``optional``: this lab's
+    #: files end without one, and the last line is read as any other.
+    last_line_end: Literal["required", "optional"] = "required"
 
     @field_validator("allowed_identifier_columns")
     @classmethod

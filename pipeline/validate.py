@@ -393,12 +393,39 @@ def resolve_versions(con: duckdb.DuckDBPyConnection, full: bool = False) -> tupl
         join int_result_versions_resolved as r on r.file_id = n.file_id and r.line_no = n.line_no
         """
     )
+    record_specimen_conflicts(con)
     con.execute("drop view all_versions")
     con.execute("drop view new_versions")
     con.execute("drop view versions_in_scope")
     build_view(con, "lab_results")
     n = con.execute("select count(*) from lab_results").fetchall()[0][0]
     return n, scope
+
+
+def record_specimen_conflicts(con: duckdb.DuckDBPyConnection) -> None:
+    """Give every version rejected by the version rules (a specimen id under two persons) its
+    reason in ``rejected_rows``, for the versions just settled: the ledger counts it there once
+    (as rejected, not as a version), and ``sources check`` and the quality report show why."""
+    con.execute(
+        """
+        delete from rejected_rows as j
+        where j.reason_code = 'specimen_conflict'
+          and exists (select 1 from int_result_versions_resolved as r
+                      where r.file_id = j.file_id and r.line_no = j.line_no)
+        """
+    )
+    con.execute(
+        """
+        insert into rejected_rows
+        select v.source_id, v.file_id, f.file_path, v.line_no, null, 'specimen_conflict',
+               'specimen ' || v.specimen_id || ' (' || v.analyte || ') is reported under more than one '
+               || 'person: every row of it is kept out until the lab corrects it'
+        from result_versions as v
+        join int_result_versions_resolved as r on r.file_id = v.file_id and r.line_no = v.line_no
+        join ingest_files as f on f.file_id = v.file_id
+        where r.outcome = 'rejected'
+        """
+    )
 
 
 #: The files whose counts a touched scope can change: those of its versions and this run's.

@@ -7,9 +7,13 @@
 -- Rules (DEVELOPERS.md, "Statuses and duplicates"):
 --   * a row identical to an earlier row of the same source (same person, specimen, analyte, date,
 --     status, value and unit) is a duplicate, whichever file it came in;
---   * the other rows of one result (same source + specimen + analyte; without a specimen id,
---     same source + person + collection date + analyte) are its versions: the latest report wins
---     (report date, then file order, then line);
+--   * a specimen id seen under two persons (same source + specimen + analyte, two person keys)
+--     is a conflict: every row of it is rejected (kept out, with the reason specimen_conflict),
+--     since which person the result belongs to is not certain;
+--   * the other rows of one result (same source + person + specimen + analyte; without a
+--     specimen id, same source + person + collection date + analyte) are its versions: the
+--     latest report wins (report date; at the same report date an amended or corrected version
+--     wins over a final one; then file order, then line);
 --   * the winner is accepted when final, amended or corrected; withdrawn when cancelled or
 --     entered-in-error; pending when preliminary (it waits for its final);
 --   * every earlier version is superseded: kept as history, never counted;
@@ -24,7 +28,22 @@
 -- from versions_in_scope; the others are first in their group by definition. Two different
 -- groups that share a hash are still ranked apart, so a collision costs time, never a wrong
 -- outcome. The CTEs carry hashes, not the text columns, so that what DuckDB keeps is narrow.
-with keyed as not materialized (
+with conflicted as (
+    -- a specimen id under more than one person (min and max differ: cheaper than a distinct count)
+    select source_id, specimen_id, analyte
+    from versions_in_scope
+    where specimen_id is not null and reported_date <= $as_of
+    group by source_id, specimen_id, analyte
+    having min(person_key) <> max(person_key)
+),
+in_conflict as (
+    select v.file_id, v.line_no
+    from versions_in_scope as v
+    semi join conflicted as c
+        on c.source_id = v.source_id and c.specimen_id = v.specimen_id and c.analyte = v.analyte
+    where v.reported_date <= $as_of
+),
+keyed as not materialized (
     select
         v.file_id,
         v.line_no,
@@ -32,15 +51,15 @@ with keyed as not materialized (
         v.reported_date,
         hash(v.source_id, v.person_key, v.specimen_id, v.analyte, v.collected_date,
              v.status, v.value_text, v.reported_unit) as copy_hash,
-        -- one result: the same source + specimen + analyte; without a specimen id, the same
-        -- source + person + collection date + analyte
-        hash(v.source_id, v.analyte, v.specimen_id,
-             case when v.specimen_id is null then v.person_key end,
+        -- one result: the same source + person + specimen + analyte; without a specimen id,
+        -- the same source + person + collection date + analyte
+        hash(v.source_id, v.analyte, v.specimen_id, v.person_key,
              case when v.specimen_id is null then v.collected_date end) as result_hash,
         case when v.value is not null
              then hash(v.person_key, v.analyte, v.collected_date, v.comparator, round(v.value, 4))
         end as value_hash
     from versions_in_scope as v
+    anti join in_conflict as x on x.file_id = v.file_id and x.line_no = v.line_no
     where v.reported_date <= $as_of
 ),
 repeated_copy as (
@@ -76,10 +95,10 @@ versions as (
     select
         o.*,
         row_number() over (
-            partition by v.source_id, v.analyte, v.specimen_id,
-                         case when v.specimen_id is null then v.person_key end,
+            partition by v.source_id, v.analyte, v.specimen_id, v.person_key,
                          case when v.specimen_id is null then v.collected_date end
-            order by o.reported_date desc, o.file_id desc, o.line_no desc
+            order by o.reported_date desc, o.status in ('amended', 'corrected') desc,
+                     o.file_id desc, o.line_no desc
         ) as recency
     from originals as o
     semi join repeated_result as r on r.result_hash = o.result_hash
@@ -130,3 +149,6 @@ select
     case when a.source_id <> a.kept_source then 'duplicate' else w.outcome end as outcome
 from within_source as w
 left join across_sources as a on a.file_id = w.file_id and a.line_no = w.line_no
+union all
+select x.file_id, x.line_no, 'rejected' as outcome
+from in_conflict as x

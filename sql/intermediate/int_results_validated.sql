@@ -119,6 +119,9 @@ select
         when 'out_of_range' then j.analyte || ' ' || j.value_text || ' ' || coalesce(j.reported_unit, '')
              || ' is outside the plausible range ' || j.min_value::varchar || '-' || j.max_value::varchar
              || ' ' || j.unit
+        -- any other fault found while reading (identifier_in_value, control_character,
+        -- truncated_line, invalid_report_date, collected_after_run): the reader's own words
+        else substr(j.row_fault, length(split_part(j.row_fault, ':', 1)) + 2)
     end as message,
     case when j.reason_code is not null then j.raw_text end as raw_text
 from judged as j

@@ -56,9 +56,12 @@ select
     end as sex,
     n.sex_text,
     n.fasting_text,
-    try_cast(n.birth_year_text as integer) as birth_year,
+    -- a birth year is four digits: '1950.5' or '1950x' is not a year (a cast would round it)
+    case when regexp_full_match(trim(n.birth_year_text), '[0-9]{4}')
+         then cast(trim(n.birth_year_text) as integer) end as birth_year,
     n.birth_year_text,
-    nullif(trim(n.district_code), '') as district_code
+    -- district codes are matched by case and without surrounding spaces (' wf03' is WF03)
+    nullif(upper(trim(n.district_code)), '') as district_code
 from numbers as n
 left join reference.analyte_codes as c on c.loinc = n.test_code
 left join reference.analytes as an on an.analyte = c.analyte

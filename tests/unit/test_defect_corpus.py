@@ -248,7 +248,7 @@ CASES = [
     Case("unknown_district_summary", (("2025-06", {std("unknown_district"): "unknown_district.csv"}),),
          {std("unknown_district"): {2: A, 3: A}}, check=check_unknown_district_summary),
     row_case("unknown_sex", {2: A, 3: A}, check=check_unknown_sex),
-    row_case("repeated_header_row", {2: A, 3: "unknown_test_code", 4: A}),  # 'test_code' is no LOINC
+    row_case("repeated_header_row", {2: A, 3: "invalid_report_date", 4: A}),  # "reported_at" is no date
     # ---- fields and lines
     row_case("too_many_fields", {2: A, 3: "wrong_field_count"}),
     row_case("too_few_fields", {2: A, 3: "wrong_field_count"}),

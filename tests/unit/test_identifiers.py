@@ -98,15 +98,23 @@ def test_ordinary_lab_values_are_not_flagged():
             for i, (code, value, unit) in enumerate([("2160-0", "1.02", "mg/dL"), ("9318-7", "<3", "mg/g"),
                                                      ("4548-4", "6.9", "%"), ("14682-9", "1 234", "umol/L")] * 30)]  # fmt: skip
     header = [*HEADER, "test_name", "area"]
-    data = [r + [["Serum Creatinine", "Urine Albumin", "Glycated Haemoglobin"][i % 3], "Alder Bank"]
+    data = [r + [["Serum Creatinine", "Urine Albumin", "Glycated Haemoglobin"][i % 3], "Alderbank"]
             for i, r in enumerate(data)]  # fmt: skip
     assert findings_of(header, data) == {}
 
 
-def test_a_few_name_like_values_are_not_names():
-    # three distinct two-word values in a small file: too few to be a column of names
-    data = [row(i) + [v] for i, v in enumerate(["Alder Bank", "Brim Cote", "Alder Bank"])]
-    assert findings_of([*HEADER, "area"], data) == {}
+def test_a_few_name_like_values_are_flagged_and_their_rows_quarantined():
+    # two-word capitalised values look like names, a few as much as many: the column is
+    # flagged and the rows that hold one are listed for quarantine (not the whole file)
+    data = [row(i) + [v] for i, v in enumerate(["Alder Bank", "7", "Alder Bank"] + ["7"] * 7)]
+    [found] = identifiers.screen_table([*HEADER, "area"], [(n + 2, r) for n, r in enumerate(data)])
+    assert (found.column, found.pattern, found.whole_column, found.lines) == ("area", "person_name", False, (2, 4))
+
+
+def test_a_district_name_of_the_region_is_a_place_not_a_name():
+    data = [row(i) + ["Fenwick Cross"] for i in range(3)]
+    rows = [(n + 2, r) for n, r in enumerate(data)]
+    assert identifiers.screen_table([*HEADER, "area"], rows, places=("Fenwick Cross",)) == []
 
 
 def test_message_names_file_column_and_pattern_but_never_the_value(tmp_path: Path):

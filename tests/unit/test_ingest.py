@@ -182,7 +182,8 @@ def test_fhir_malformed_and_unknown_records_become_rows(fhir_rows):
     # line 5 is blank (not a record); every other line is a row
     assert sorted(fhir_rows) == [1, 2, 3, 4, 6, 7]
     assert fhir_rows[4]["row_fault"].startswith("malformed_record")
-    assert fhir_rows[4]["raw_text"] == "not json at all"
+    # not readable: which part is what is not certain, so its text is not kept
+    assert fhir_rows[4]["raw_text"] == "[text withheld: a record of 15 characters that is not a readable Observation]"
     assert fhir_rows[6]["row_fault"].startswith("malformed_record")  # a Patient, not an Observation
     assert fhir_rows[7]["row_fault"].startswith("unknown_patient")
     assert fhir_rows[7]["status"] == "amended" and fhir_rows[7]["status_text"] == "Amended"

@@ -77,7 +77,7 @@ def test_each_file_is_landed_as_read_and_the_table_keeps_its_schema(small_config
         expected = []
         for file_id, item in enumerate(items, start=1):
             item.file_id = file_id
-            frame = read_inbox_file(settings.source(item.source_id), item, settings, TODAY)
+            frame = read_inbox_file(settings.source(item.source_id), item, settings, TODAY, run_day=TODAY)
             expected.append(add_person_keys(frame, KEY))
         assert summary.files_new == len(items) == 4
         assert landed.equals(pl.concat(expected))

@@ -3,7 +3,8 @@ tables of one run over all the data (pipeline.validate.settle_scope, pipeline.me
 pipeline.linkage.carry_over_events).
 
 The facts checked are the project's own version rules (DEVELOPERS.md, "Statuses and
-duplicates": the latest report of a source + specimen + analyte wins) and the sustained-decline
+duplicates": the latest report of a source + person + specimen + analyte wins; a specimen id
+under two persons is a conflict that keeps both out) and the sustained-decline
 rule (a run of daily eGFRs at or below 60 % of baseline spanning 28 days or more); the
 reference is the same pipeline over all files at once, so what is tested is that the monthly
 path loses nothing. The values are invented."""
@@ -45,9 +46,9 @@ def first_month() -> str:
 def second_month() -> str:
     lines = [
         line("WF-msDEC", "D4", "2025-07-01", "2.1"),
-        # a faulty extract: specimen X1 again, under another person, as an amendment. The
-        # version rule keys on source + specimen + analyte, so it supersedes A's X1 although A
-        # has no new row this month
+        # a faulty extract: specimen X1 again, under another person, as an amendment. Which
+        # person X1 belongs to is not certain: both versions are kept out (rejected), A's
+        # although A has no new row this month
         line("WF-msBBB", "X1", "2025-06-02", "1.4", status="amended", reported="2025-07-03"),
         line("WF-msNEW", "N1", "2025-07-05", "1.1"),
     ]
@@ -91,10 +92,10 @@ def month_by_month(tmp_path_factory):
 def test_july_took_the_monthly_path(month_by_month):
     _, _, _, _, link = month_by_month
     # June: every person computed; July: only the persons with changed results (the declining
-    # person, A and B through the shared specimen, and the new person). A's only result is
-    # superseded, so July has 42 - 1 + 2 persons with an accepted result
+    # person, A and B through the shared specimen, and the new person). A's and B's only
+    # results are the conflicting X1, so July has 42 - 1 + 1 persons with an accepted result
     assert link[0] == ("2025-06", 42, 42)
-    assert link[1] == ("2025-07", 43, 4)
+    assert link[1] == ("2025-07", 42, 4)
 
 
 def test_july_equals_one_run_over_both_months(month_by_month, tmp_path):
@@ -106,12 +107,12 @@ def test_july_equals_one_run_over_both_months(month_by_month, tmp_path):
         assert got == once[table], table
 
 
-def test_the_shared_specimen_supersedes_the_other_persons_version(month_by_month):
+def test_the_shared_specimen_is_a_conflict_that_keeps_both_versions_out(month_by_month):
     _, _, july, _, _ = month_by_month
     outcomes = {(path.rsplit("_", 1)[-1], n): o for path, n, o in july["result_versions"]}
     june_x1 = 40 * 3 + 3 + 1 + 1  # line of A's X1 in June's file (header is line 1)
-    assert outcomes[("2025-06.csv", june_x1)] == "superseded"
-    assert outcomes[("2025-07.csv", 3)] == "accepted"
+    assert outcomes[("2025-06.csv", june_x1)] == "rejected"
+    assert outcomes[("2025-07.csv", 3)] == "rejected"
 
 
 def test_a_pending_decline_is_confirmed_by_the_next_month(month_by_month):

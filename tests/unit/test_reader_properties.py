@@ -245,7 +245,9 @@ def test_every_row_is_accounted_for_once(config, workdir, generated):
         assert status == "ingested"
         assert read == accounted == n_rows
         rejected = [r[0] for r in rows(con, "select line_no from rejected_rows")]
-        versions = [r[0] for r in rows(con, "select line_no from result_versions")]
+        # a specimen id under two persons: the version stays in result_versions with outcome
+        # 'rejected' and its reason is in rejected_rows, where the ledger counts it once
+        versions = [r[0] for r in rows(con, "select line_no from result_versions where outcome <> 'rejected'")]
         assert not set(rejected) & set(versions)
         assert sorted(rejected + versions) == expected_lines
         outcomes = dict(rows(con, "select outcome, count(*) from result_versions group by all"))

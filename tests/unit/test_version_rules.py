@@ -57,6 +57,16 @@ def expected_outcomes(rows: list[dict]) -> dict[tuple[int, int], str]:
     """The rules, one after the other, over whole groups."""
     pos = lambda r: (r["file_id"], r["line_no"])  # noqa: E731
     outcome: dict[tuple[int, int], str] = {}
+    # 0. a specimen id under two persons: every row of it is rejected and takes no further part
+    persons: dict[tuple, set] = {}
+    for r in rows:
+        if r["specimen_id"] is not None:
+            persons.setdefault((r["source_id"], r["specimen_id"], r["analyte"]), set()).add(r["person_key"])
+    conflict = {k for k, p in persons.items() if len(p) > 1}
+    for r in rows:
+        if (r["source_id"], r["specimen_id"], r["analyte"]) in conflict:
+            outcome[pos(r)] = "rejected"
+    rows = [r for r in rows if pos(r) not in outcome]
     # 1. a row identical to an earlier row of the same source is a duplicate
     copies: dict[tuple, list[dict]] = {}
     for r in rows:
@@ -69,15 +79,17 @@ def expected_outcomes(rows: list[dict]) -> dict[tuple[int, int], str]:
         originals.append(group[0])
         for r in group[1:]:
             outcome[pos(r)] = "duplicate"
-    # 2. the versions of one result: the latest report wins, the others are superseded
+    # 2. the versions of one result: the latest report wins (an amended or corrected one over a
+    # final one reported the same day), the others are superseded
     results: dict[tuple, list[dict]] = {}
     for r in originals:
-        key = ((r["source_id"], "s", r["specimen_id"], r["analyte"]) if r["specimen_id"] is not None
+        key = ((r["source_id"], "s", r["person_key"], r["specimen_id"], r["analyte"]) if r["specimen_id"] is not None
                else (r["source_id"], "p", r["person_key"], r["collected_date"], r["analyte"]))  # fmt: skip
         results.setdefault(key, []).append(r)
     accepted = []
     for group in results.values():
-        group.sort(key=lambda r: (r["reported_date"], r["file_id"], r["line_no"]), reverse=True)
+        group.sort(key=lambda r: (r["reported_date"], r["status"] in ("amended", "corrected"), r["file_id"],
+                                  r["line_no"]), reverse=True)  # fmt: skip
         winner = group[0]
         for r in group[1:]:
             outcome[pos(r)] = "superseded"
@@ -158,4 +170,25 @@ def test_worked_example(sql):
     rows = [{c: {**base, **r}[c] for c in order} for r in rows]
     assert resolved(rows, sql) == {(1, 2): "superseded", (2, 2): "accepted", (2, 3): "duplicate",
                                    (3, 2): "duplicate", (3, 3): "withdrawn"}  # fmt: skip
+    assert expected_outcomes(rows) == resolved(rows, sql)
+
+
+@pytest.mark.parametrize("sql", [SQL, ALL_COLLIDE], ids=["hashed", "all_collide"])
+def test_amended_wins_over_final_of_the_same_report_date_and_a_shared_specimen_is_a_conflict(sql):
+    # FHIR R4 Observation.status: 'amended' / 'corrected' replace an earlier 'final'; here the
+    # amended row comes first in the file and both carry the same report date
+    base = {"source_id": "lab_a", "analyte": "creatinine", "collected_date": DAY, "reported_unit": "mg/dL",
+            "comparator": None, "reported_date": DAY, "person_key": "p1"}  # fmt: skip
+    rows = [
+        {"file_id": 1, "line_no": 2, "specimen_id": "S1", "status": "amended", "value_text": "1.5", "value": 1.5},
+        {"file_id": 1, "line_no": 3, "specimen_id": "S1", "status": "final", "value_text": "1.0", "value": 1.0},
+        # S2 arrives under two persons: neither row is counted
+        {"file_id": 1, "line_no": 4, "specimen_id": "S2", "status": "final", "value_text": "1.1", "value": 1.1},
+        {"file_id": 2, "line_no": 2, "specimen_id": "S2", "status": "final", "value_text": "0.9", "value": 0.9,
+         "person_key": "p2"},
+    ]  # fmt: skip
+    order = ("file_id", "line_no", "source_id", "person_key", "specimen_id", "analyte", "collected_date",
+             "status", "value_text", "reported_unit", "value", "comparator", "reported_date")  # fmt: skip
+    rows = [{c: {**base, **r}[c] for c in order} for r in rows]
+    assert resolved(rows, sql) == {(1, 2): "accepted", (1, 3): "superseded", (1, 4): "rejected", (2, 2): "rejected"}
     assert expected_outcomes(rows) == resolved(rows, sql)
