@@ -137,9 +137,11 @@ def test_random_text_after_a_valid_header_gives_rows_or_a_file_fault(small_setti
 def test_ragged_rows_give_rows_or_a_file_fault(small_settings, workdir, data, delimiter):
     frame = read_bytes_as(small_settings, workdir, data, delimiter)
     if frame is not None:
-        # every row keeps the raw text it came from, and a row of the wrong width says so
+        # every row keeps the raw text it came from, and a row of the wrong width says so (a last
+        # line without its line end is reported as possibly cut short, whatever its width)
         assert frame["raw_text"].null_count() == 0
-        assert frame.filter(frame["row_fault"].is_not_null())["row_fault"].str.starts_with("wrong_field_count").all()
+        faults = frame.filter(frame["row_fault"].is_not_null())["row_fault"]
+        assert (faults.str.starts_with("wrong_field_count") | faults.str.starts_with("truncated_line")).all()
 
 
 @FAST
