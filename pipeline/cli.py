@@ -77,6 +77,8 @@ def _print_summary(summary: dict, out: Path) -> None:
         console.print(f"  [yellow]held back file[/] {path}: {message}")
     for source, message in summary["held_back_sources"].items():
         console.print(f"  [yellow]held back source[/] {source}: {message}")
+    for table, message in summary.get("withheld_tables", {}).items():
+        console.print(f"  [yellow]withheld table[/] {table} (disclosure audit): {message}")
     console.print(f"  warehouse: {out / 'surveillance.duckdb'}")
     console.print(f"  exports:   {out / summary['period']}/")
     if summary.get("demo_key"):
@@ -115,7 +117,7 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
                 _fail(str(exc))
             console.print(f"  {'total':<10} {time.perf_counter() - started:6.1f} s (with Prefect)")
             _print_summary(summary, out)
-            held = summary["held_back_sources"] or summary["held_back_files"]
+            held = summary["held_back_sources"] or summary["held_back_files"] or summary.get("withheld_tables")
             return EXIT_HELD_BACK if held else EXIT_OK
     except RunLocked as exc:
         err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)

@@ -155,9 +155,12 @@ def link_task(run_id: str) -> dict[str, Any]:
 def summarise_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         counts = summarise_stage(ctx.con, ctx.settings, ctx.period)
-        published = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period)
+        audit: dict[str, Any] = {}
+        published = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period,
+                                   ctx.settings.pipeline.summaries, audit)  # fmt: skip
         return {"tables": len(counts), "rows": sum(counts.values()),
-                "published rows": sum(published.values()), "by_table": counts}  # fmt: skip
+                "published rows": sum(published.values()), "by_table": counts,
+                "withheld_tables": audit.get("withheld", {})}  # fmt: skip
 
     return _stage(run_id, "summarise", work)
 
@@ -271,13 +274,14 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
     validate = call(validate_task, run_id)
     call(measure_task, run_id)
     link = call(link_task, run_id)
-    call(summarise_task, run_id)
+    summarised = call(summarise_task, run_id)
     summary = {
         "period": ctx.period.label,
         "demo_key": ctx.key.is_demo,
         "sources": validate["by_source"],
         "held_back_sources": validate["held_back_sources"],
         "held_back_files": dict(ingest["held_back_files"]),
+        "withheld_tables": dict(summarised.get("withheld_tables", {})),
         "persons": link["persons"],
         "headline": headline(ctx),
         "batch_checks": ctx.batch_checks,
