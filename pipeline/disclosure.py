@@ -27,9 +27,10 @@ none, the group's total, then any published count of the table. Only counts abov
 check runs again, the newest secondary first (a district total blanked to protect another is
 then protected in its own group), until nothing is pinned. Ties go by key order, so the same
 table always gets the same cells blanked, whatever the order of its rows. When blanking more
-cannot help (everything non-zero of a column is blanked and the marks still pin a cell, e.g. a
-district total of 10 made of ten cells of 1), :class:`DisclosureError` stops the run: nothing
-is published rather than that.
+cannot help, every non-zero count of the column is blanked; if the marks still pin a cell (e.g.
+a district total of 10 made of ten cells of 1), the joint audit (:mod:`pipeline.disclosure_audit`,
+which reads one mark for every blank) decides, and withholds the table with its reason if it
+must: a small region gets its run, never a crash.
 
 Limitations (policy choices, stated so that they can be revisited):
 
@@ -718,9 +719,15 @@ class _Table:
                     continue
                 choice = self.choose(column, row, exact, withhold=False)
             if choice is None:
-                raise DisclosureError(
-                    f"{self.table.name}.{column}: a blanked count cannot be protected by blanking more"
-                )
+                # Blanking more next to it cannot help: blank every count of the column (a small
+                # region still gets its run); the joint audit then decides, and withholds the
+                # table with its reason if even that is not enough.
+                whole = [r for r in range(self.n) if self.status[column][r] == _PUBLISHED and self.values[column][r]]
+                if not whole:
+                    return changed
+                for r in whole:
+                    self.status[column][r] = SECONDARY
+                return True
             self.status[column][choice] = SECONDARY
             recent.append(choice)
             changed = True
@@ -974,6 +981,26 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
         audit_out["withheld"] = dict(result.withheld)
         audit_out["notes"] = list(result.notes)
     return counts
+
+
+def audit_frames(frames: Mapping[str, pl.DataFrame], rules: DisclosureSettings, basis: object | None = None):
+    """The publishable frames of internal ``frames`` (one period): each table protected on its
+    own, then all of them audited together (:func:`pipeline.disclosure_audit.audit`). Returns the
+    audit's result (frames, withheld tables and notes)."""
+    from pipeline.disclosure_audit import audit, table_from_frames
+
+    done: dict[str, _Disclosed] = {}
+    audited = {}
+    for table in PUBLISHED_TABLES:
+        frame = frames.get(table.name)
+        if frame is None or frame.height == 0:
+            continue
+        disclosed = _disclose(frame, table, rules, done)
+        done[table.name] = disclosed
+        marks = {c: [s if s in _BLANKED else "" for s in disclosed.state.status[c][: frame.height]]
+                 for c in table.counts}  # fmt: skip
+        audited[table.name] = table_from_frames(table.name, disclosed.frame, frame, table, marks)
+    return audit(audited, rules, basis)
 
 
 def _previous_label(period: Period) -> str:
