@@ -250,3 +250,33 @@ def test_the_protection_width_is_honoured(width):
     result = audit_frames({PREVALENCE.name: internal}, rules)
     if PREVALENCE.name not in result.withheld:
         assert exposed(result.frames[PREVALENCE.name], internal, rules) == []
+
+
+def test_a_rate_that_pins_an_age_group_is_rounded_coarser_or_blanked():
+    # The district again, as rows: at two decimals the rate, its interval and the total
+    # give 9 / 8 / 20 back (rate_splits above), so the rate must not go out as it is.
+    from pipeline.disclosure_audit import RateBasis, protect_rates, table_from_frames
+
+    weights = collapse_weights([0, 65, 75])
+    cells = [("F", "40-44", "0-64", 692, 9), ("F", "70-74", "65-74", 125, 8), ("F", "80-84", "75+", 101, 20)]
+    frame = pl.DataFrame([
+        {"period": "2025-06", "district_code": "WF02", "sex": s, "age_band": b, "persons_tested": 100 + i,
+         "persons_ckd": c, "persons_ckd_g3_g5": 0, "population": p, "standardisation_age_group": g,
+         "ckd_per_1000_standardised": None, "ckd_per_1000_standardised_low": None,
+         "ckd_per_1000_standardised_high": None, "ckd_per_1000_standardised_flag": None}
+        for i, (s, b, g, p, c) in enumerate(cells)
+    ] + [{"period": "2025-06", "district_code": "WF02", "sex": "ALL", "age_band": "ALL", "persons_tested": 303,
+          "persons_ckd": 37, "persons_ckd_g3_g5": 0, "population": 918, "standardisation_age_group": None,
+          "ckd_per_1000_standardised": 21.31, "ckd_per_1000_standardised_low": 13.63,
+          "ckd_per_1000_standardised_high": 32.41, "ckd_per_1000_standardised_flag": ""}])  # fmt: skip
+    published = frame.with_columns(pl.when(pl.col("persons_ckd") <= 10).then(None).otherwise(pl.col("persons_ckd"))
+                                   .alias("persons_ckd"))  # fmt: skip
+    table = table_from_frames(PREVALENCE.name, published, frame, PREVALENCE)
+    bounds, notes = protect_rates(table, RateBasis(("0-64", "65-74", "75+"), tuple(weights), 0.95), RULES)
+    flag = table.published["ckd_per_1000_standardised_flag"][3]
+    assert flag in ("rounded", "suppressed") and notes
+    if flag == "rounded":
+        rate = table.published["ckd_per_1000_standardised"][3]
+        assert rate != 21.31 and all(not (1 <= lo and hi <= 10) for lo, hi in bounds[3].values())
+    else:
+        assert table.published["ckd_per_1000_standardised"][3] is None
