@@ -280,3 +280,16 @@ def test_a_rate_that_pins_an_age_group_is_rounded_coarser_or_blanked():
         assert rate != 21.31 and all(not (1 <= lo and hi <= 10) for lo, hi in bounds[3].values())
     else:
         assert table.published["ckd_per_1000_standardised"][3] is None
+
+
+def test_the_case_that_used_to_stop_the_run_is_published_safely():
+    # Counts 1-2 suppressed: a district total of 2 over two cells of 1 (hand calculation). The
+    # per-table check used to raise ("cannot be protected by blanking more"); now the run goes on.
+    rules = DisclosureSettings(suppress_max=2)
+    internal = prevalence({("WF01", "F", "40-44"): (30, 1, 0), ("WF01", "M", "40-44"): (30, 1, 0),
+                           ("WF02", "F", "40-44"): (80, 50, 20)})  # fmt: skip
+    result = audit_frames({PREVALENCE.name: internal}, rules)
+    if PREVALENCE.name in result.withheld:
+        assert result.frames[PREVALENCE.name].height == 0
+    else:
+        assert exposed(result.frames[PREVALENCE.name], internal, rules) == []
