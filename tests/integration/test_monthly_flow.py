@@ -303,8 +303,8 @@ def test_the_demo_publishes_no_blank_a_reader_can_narrow(demo_run):
     tables = {}
     for spec in PUBLISHED_TABLES:
         order = list(spec.keys)
-        published = con.sql(f"select * from published.{spec.name} where period = '{PERIOD}'").pl().sort(order)
-        internal = con.sql(f"select * from main.{spec.name} where period = '{PERIOD}'").pl().sort(order)
+        published = con.execute(f"select * from published.{spec.name} where period = ?", [PERIOD]).pl().sort(order)
+        internal = con.execute(f"select * from main.{spec.name} where period = ?", [PERIOD]).pl().sort(order)
         assert set(published["suppression"].to_list()) <= {"", MARK}
         for column in spec.counts:
             assert not published[column].drop_nulls().is_between(1, 10).any(), (spec.name, column)
