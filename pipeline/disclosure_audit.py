@@ -656,6 +656,15 @@ def finish(t: AuditTable) -> pl.DataFrame:
     t.published = t.published.with_columns(
         [pl.Series(c, t.values[c], dtype=t.published.schema[c]) for c in t.counts])
     _blank_rates(t)
+    spec = t.standardised
+    if spec is not None and spec.count in t.values:  # a rate whose count ended up blank goes too
+        gone = pl.Series([v is None for v in t.values[spec.count]], dtype=pl.Boolean)
+        cols = [c for c in spec.rates if c in t.published.columns]
+        updates = [pl.when(gone & pl.col(c).is_not_null()).then(None).otherwise(pl.col(c)).alias(c) for c in cols]
+        if spec.flag in t.published.columns and cols:
+            updates.append(pl.when(gone & pl.col(cols[0]).is_not_null()).then(pl.lit("suppressed"))
+                           .otherwise(pl.col(spec.flag)).alias(spec.flag))  # fmt: skip
+        t.published = t.published.with_columns(updates)
     row_blank = [sum(1 for c in t.counts if t.values[c][r] is None and t.truth[c][r] is not None) for r in range(t.n)]
     columns = [pl.Series("n_suppressed", row_blank, dtype=pl.Int32),
                pl.Series("suppression", [MARK if k else "" for k in row_blank], dtype=pl.String)]
@@ -985,6 +994,12 @@ def audit(tables: dict[str, AuditTable], rules: DisclosureSettings, basis: RateB
                 bounds, changed = protect_rates(t, basis, rules)
                 rate_bounds.update({(t.name, row): b for row, b in bounds.items()})
                 notes += changed
+    for t in tables.values():  # a table published by another step gets the small-count rule too
+        for column in t.counts:
+            for row, value in enumerate(t.values[column]):
+                if value is not None and rules.suppress_min <= value <= rules.suppress_max:
+                    t.values[column][row] = None
+                    t.marks[column][row] = "primary"
     relations = _relations()
     live = dict(tables)
     before = sum(1 for t in tables.values() for c in t.counts for v in t.values[c] if v is None)

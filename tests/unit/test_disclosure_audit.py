@@ -293,3 +293,24 @@ def test_the_case_that_used_to_stop_the_run_is_published_safely():
         assert result.frames[PREVALENCE.name].height == 0
     else:
         assert exposed(result.frames[PREVALENCE.name], internal, rules) == []
+
+
+def test_a_table_another_step_publishes_is_audited_with_the_rest():
+    # A new published table, declared nowhere in the disclosure module (as another engineer's new
+    # indicator would be): its district rows add up to its 'ALL' row, which the audit finds from
+    # the rows alone. WF01 = 35 - 30 = 5 (hand calculation) unless one more count is blanked.
+    con = duckdb.connect()
+    con.execute("create schema published")
+    for table in PUBLISHED_TABLES:
+        con.execute(f"create table {table.name} (period varchar)")
+    con.execute("create table district_new_counts (period varchar, district_code varchar, persons bigint)")
+    con.execute("insert into district_new_counts values ('2025-06', 'WF01', 5), ('2025-06', 'WF02', 30), "
+                "('2025-06', 'WF03', 0), ('2025-06', 'ALL', 35)")  # fmt: skip
+    con.execute("create table published.district_new_counts as select *, 1 as n_suppressed, 'x' as suppression "
+                "from district_new_counts")  # fmt: skip
+    con.execute("update published.district_new_counts set persons = null where district_code = 'WF01'")
+    disclose_stage(con, RULES, Period.parse("2025-06"))
+    got = dict(con.execute("select district_code, persons from published.district_new_counts").fetchall())
+    assert got["WF01"] is None
+    assert got["WF02"] is None or got["ALL"] is None  # 5 can no longer be worked out
+    assert got["WF03"] == 0  # a zero is published
