@@ -980,6 +980,7 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
     if audit_out is not None:
         audit_out["withheld"] = dict(result.withheld)
         audit_out["notes"] = list(result.notes)
+        audit_out["added"] = result.added
     return counts
 
 
@@ -1027,7 +1028,8 @@ def _internal_rows(con: duckdb.DuckDBPyConnection, name: str, published: pl.Data
     keys = [c for c, t in published.schema.items() if t == pl.String and c != "suppression"]
     period = published["period"][0]
     internal = fetch_frame(con, f"select * from main.{name} where period = ?", [period])
-    if not set(keys) <= set(internal.columns):
+    wanted = [c for c, t in published.schema.items() if t.is_integer() and c != "n_suppressed"]
+    if not set(keys) <= set(internal.columns) or not set(wanted) <= set(internal.columns):
         return published
     joined = published.select(keys).with_row_index("_row").join(internal, on=keys, how="left")
     joined = joined.sort("_row").drop("_row")

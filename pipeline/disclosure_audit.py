@@ -960,9 +960,9 @@ def _protect(system: _System, tables: Mapping[str, AuditTable], rules: Disclosur
                 _blank_cell(system, tables, v)
             notes.append(f"{name}.{column}: blanked whole (a blanked count could not be protected otherwise)")
             continue
-        low, high = failing[var]
-        return name, (f"{t.describe(column, row)} can be narrowed to {low:g}-{high:g} from the published figures "
-                      "and no further blank protects it")  # fmt: skip
+        # the reason is printed and exported: it names the cell, never the range it was narrowed to
+        return name, (f"a blanked count ({t.describe(column, row)}) could be narrowed from the published "
+                      "figures and no further blank protects it")  # fmt: skip
     raise AuditFailure("the disclosure audit did not settle")  # pragma: no cover
 
 

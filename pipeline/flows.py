@@ -159,8 +159,8 @@ def summarise_task(run_id: str) -> dict[str, Any]:
         published = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period,
                                    ctx.settings.pipeline.summaries, audit)  # fmt: skip
         return {"tables": len(counts), "rows": sum(counts.values()),
-                "published rows": sum(published.values()), "by_table": counts,
-                "withheld_tables": audit.get("withheld", {})}  # fmt: skip
+                "published rows": sum(published.values()), "blanked by the joint audit": audit.get("added", 0),
+                "by_table": counts, "withheld_tables": audit.get("withheld", {})}  # fmt: skip
 
     return _stage(run_id, "summarise", work)
 

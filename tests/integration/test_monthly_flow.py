@@ -298,13 +298,14 @@ def test_the_demo_publishes_no_blank_a_reader_can_narrow(demo_run):
         table_from_frames,
     )
     from pipeline.settings import DisclosureSettings
+    from pipeline.warehouse import fetch_frame
 
     _, _, con = demo_run
     tables = {}
     for spec in PUBLISHED_TABLES:
         order = list(spec.keys)
-        published = con.execute(f"select * from published.{spec.name} where period = ?", [PERIOD]).pl().sort(order)
-        internal = con.execute(f"select * from main.{spec.name} where period = ?", [PERIOD]).pl().sort(order)
+        published = fetch_frame(con, f"select * from published.{spec.name} where period = ?", [PERIOD]).sort(order)
+        internal = fetch_frame(con, f"select * from main.{spec.name} where period = ?", [PERIOD]).sort(order)
         assert set(published["suppression"].to_list()) <= {"", MARK}
         for column in spec.counts:
             assert not published[column].drop_nulls().is_between(1, 10).any(), (spec.name, column)
