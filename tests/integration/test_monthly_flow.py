@@ -300,7 +300,8 @@ def test_the_demo_publishes_no_blank_a_reader_can_narrow(demo_run):
     from pipeline.settings import DisclosureSettings
     from pipeline.warehouse import fetch_frame
 
-    _, _, con = demo_run
+    out, _, _ = demo_run
+    con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)  # an earlier test may close its own
     tables = {}
     for spec in PUBLISHED_TABLES:
         order = list(spec.keys)
@@ -310,5 +311,6 @@ def test_the_demo_publishes_no_blank_a_reader_can_narrow(demo_run):
         for column in spec.counts:
             assert not published[column].drop_nulls().is_between(1, 10).any(), (spec.name, column)
         tables[spec.name] = table_from_frames(spec.name, published, internal, spec)
+    con.close()
     system = build_system(tables, _relations())
     assert failing_cells(system, DisclosureSettings(), exact=True) == {}
