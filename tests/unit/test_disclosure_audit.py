@@ -27,6 +27,7 @@ from pipeline.periods import Period
 from pipeline.settings import DisclosureSettings
 from pipeline.statistics import collapse_weights
 from tests.conftest import rows, run_month, write_inbox
+from tests.unit.test_disclosure import AXES, G3_G5, people, person_frames, sum_groups
 
 RULES = DisclosureSettings()  # 1..10, protection width 10 (config/pipeline.yaml)
 TABLES = {t.name: t for t in PUBLISHED_TABLES}
@@ -314,3 +315,89 @@ def test_a_table_another_step_publishes_is_audited_with_the_rest():
     assert got["WF01"] is None
     assert got["WF02"] is None or got["ALL"] is None  # 5 can no longer be worked out
     assert got["WF03"] == 0  # a zero is published
+
+
+# --------------------------------------------------------------------------- both tables together
+
+
+def joint_exposed(prev: pl.DataFrame, cat: pl.DataFrame, prev_in: pl.DataFrame, cat_in: pl.DataFrame) -> list:
+    """Blanked counts of the prevalence and categories tables, read together, that a reader
+    confines to 1-10 or to less than the width: the sums of each table, the categories of each
+    axis adding up to the district's persons_ckd (KDIGO 2012 GFR and albuminuria categories), G3a
+    to G5 to its persons_ckd_g3_g5, the districts of a category to 'ALL', and the orders of
+    ORDER; least and greatest values by linear programming (scipy.optimize.linprog)."""
+    cells: dict[tuple, tuple] = {}  # name -> (published, internal)
+    for i in range(prev.height):
+        for column in COUNTS:
+            cells[("p", column, i)] = (prev[column][i], prev_in[column][i])
+    cat_keys = cat.select("district_code", "category_axis", "category").rows()
+    for i, key in enumerate(cat_keys):
+        cells[("c", *key)] = (cat["persons_ckd"][i], cat_in["persons_ckd"][i])
+    unknown = [n for n, (shown, _) in cells.items() if shown is None]
+    index = {n: j for j, n in enumerate(unknown)}
+    equations, orders = [], []
+    for column in COUNTS:
+        for total, rows_ in sum_groups(prev, PREVALENCE):
+            equations.append([(("p", column, total), -1.0)] + [(("p", column, r), 1.0) for r in rows_])
+    for i in range(prev.height):
+        for small, large in ORDER:
+            orders.append([(("p", small, i), 1.0), (("p", large, i), -1.0)])
+    total_row = {k[0]: i for i, k in enumerate(prev.select("district_code", "sex", "age_band").rows())
+                 if k[1] == "ALL"}  # fmt: skip
+    districts = sorted({k[0] for k in cat_keys})
+    for d in districts:
+        for axis, categories in AXES.items():
+            equations.append([(("p", "persons_ckd", total_row[d]), -1.0)] + [(("c", d, axis, c), 1.0) for c in categories])
+        equations.append([(("p", "persons_ckd_g3_g5", total_row[d]), -1.0)] + [(("c", d, "gfr", c), 1.0) for c in G3_G5])
+    for axis, categories in AXES.items():
+        for c in categories:
+            equations.append([(("c", "ALL", axis, c), -1.0)] + [(("c", d, axis, c), 1.0) for d in districts if d != "ALL"])
+
+    def matrix(rows_: list) -> tuple[list, list]:
+        a, b = [], []
+        for equation in rows_:
+            row, rhs = np.zeros(len(unknown)), 0.0
+            for name, sign in equation:
+                if name in index:
+                    row[index[name]] += sign
+                else:
+                    rhs -= sign * cells[name][0]
+            if row.any():
+                a.append(row)
+                b.append(rhs)
+        return a, b
+
+    if not unknown:
+        return []
+    a_eq, b_eq = matrix(equations)
+    a_ub, b_ub = matrix(orders)
+    kwargs = {"A_eq": np.array(a_eq) if a_eq else None, "b_eq": b_eq or None,
+              "A_ub": np.array(a_ub) if a_ub else None, "b_ub": b_ub or None}  # fmt: skip
+    bounds = [(1.0 if cells[n][1] > 0 else 0.0, None) for n in unknown]
+    bad = []
+    for n, j in index.items():
+        if cells[n][1] == 0:
+            continue
+        c = np.zeros(len(unknown))
+        c[j] = 1.0
+        low = linprog(c, bounds=bounds, method="highs", **kwargs)
+        high = linprog(-c, bounds=bounds, method="highs", **kwargs)
+        assert low.status == 0, low.message
+        lo, hi = np.ceil(low.fun - 1e-6), (np.inf if high.status == 3 else np.floor(-high.fun + 1e-6))
+        if (lo >= RULES.suppress_min and hi <= RULES.suppress_max) or hi - lo < RULES.protection_width:
+            bad.append((n, lo, hi))
+    return bad
+
+
+@settings(max_examples=15, deadline=None, database=None)
+@given(people())
+def test_prevalence_and_categories_read_together_give_no_blank_away(persons):
+    prevalence_in, categories_in = person_frames(persons)
+    frames = {"district_ckd_prevalence": prevalence_in, "district_ckd_categories": categories_in}
+    result = audit_frames(frames, RULES)
+    if result.withheld:
+        for name in result.withheld:
+            assert result.frames[name].height == 0
+        return
+    prev, cat = result.frames["district_ckd_prevalence"], result.frames["district_ckd_categories"]
+    assert joint_exposed(prev, cat, prevalence_in, categories_in) == []
