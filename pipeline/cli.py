@@ -171,6 +171,8 @@ def _print_summary(summary: dict, out: Path) -> None:
         console.print(f"  [yellow]held back file[/] {path}: {message}")
     for source, message in summary["held_back_sources"].items():
         console.print(f"  [yellow]held back source[/] {source}: {message}")
+    for table, message in summary.get("withheld_tables", {}).items():
+        console.print(f"  [yellow]withheld table[/] {table} (disclosure audit): {message}")
     for source, message in (summary.get("config_drift") or {}).items():
         console.print(f"  [bold yellow]config changed[/] {message}", soft_wrap=True)
     for period, n in (summary.get("late_results") or {}).items():
@@ -277,7 +279,8 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
                 _fail(summary["revision_refused"])
             console.print(f"  {'total':<10} {time.perf_counter() - started:6.1f} s (with Prefect)")
             _print_summary(summary, out)
-            held = summary["held_back_sources"] or summary["held_back_files"] or summary.get("config_drift")
+            held = (summary["held_back_sources"] or summary["held_back_files"] or summary.get("config_drift")
+                    or summary.get("withheld_tables"))
             return max(int(summary.get("exit_code") or 0), EXIT_HELD_BACK if held else EXIT_OK)
     except RunLocked as exc:
         err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)

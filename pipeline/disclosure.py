@@ -27,9 +27,10 @@ none, the group's total, then any published count of the table. Only counts abov
 check runs again, the newest secondary first (a district total blanked to protect another is
 then protected in its own group), until nothing is pinned. Ties go by key order, so the same
 table always gets the same cells blanked, whatever the order of its rows. When blanking more
-cannot help (everything non-zero of a column is blanked and the marks still pin a cell, e.g. a
-district total of 10 made of ten cells of 1), :class:`DisclosureError` stops the run: nothing
-is published rather than that.
+cannot help, every non-zero count of the column is blanked; if the marks still pin a cell (e.g.
+a district total of 10 made of ten cells of 1), the joint audit (:mod:`pipeline.disclosure_audit`,
+which reads one mark for every blank) decides, and withholds the table with its reason if it
+must: a small region gets its run, never a crash.
 
 Limitations (policy choices, stated so that they can be revisited):
 
@@ -718,9 +719,15 @@ class _Table:
                     continue
                 choice = self.choose(column, row, exact, withhold=False)
             if choice is None:
-                raise DisclosureError(
-                    f"{self.table.name}.{column}: a blanked count cannot be protected by blanking more"
-                )
+                # Blanking more next to it cannot help: blank every count of the column (a small
+                # region still gets its run); the joint audit then decides, and withholds the
+                # table with its reason if even that is not enough.
+                whole = [r for r in range(self.n) if self.status[column][r] == _PUBLISHED and self.values[column][r]]
+                if not whole:
+                    return changed
+                for r in whole:
+                    self.status[column][r] = SECONDARY
+                return True
             self.status[column][choice] = SECONDARY
             recent.append(choice)
             changed = True
@@ -913,10 +920,20 @@ def _exists(con: duckdb.DuckDBPyConnection, name: str) -> bool:
     ).fetchall()[0][0] > 0
 
 
-def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, period: Period) -> dict[str, int]:
-    """Replace this period's rows of every published table."""
+def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, period: Period,
+                   summaries: object | None = None, audit_out: dict | None = None) -> dict[str, int]:  # fmt: skip
+    """Replace this period's rows of every published table.
+
+    Each table is first protected on its own (this module), then everything the period
+    publishes is audited together (:mod:`pipeline.disclosure_audit`), which may blank more or
+    withhold a table. ``summaries`` (SummarySettings) lets the audit check the standardised
+    rates' integer splits. ``audit_out``, when given, receives ``withheld`` (table -> reason)
+    and ``notes``."""
+    from pipeline.disclosure_audit import RateBasis, audit, table_from_frames
+
     counts: dict[str, int] = {}
     done: dict[str, _Disclosed] = {}
+    audited = {}
     for table in PUBLISHED_TABLES:
         frame = fetch_frame(con, f"select * from {table.name} where period = ?", [period.label])
         if frame.height == 0:  # nothing this period: drop what an earlier run published for it
@@ -926,12 +943,113 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
             continue
         disclosed = _disclose(frame, table, rules, done)
         done[table.name] = disclosed
-        published = disclosed.frame
-        if not _exists(con, table.name):
-            with_frame(con, published, f"create table published.{table.name} as select * from _frame")
+        marks = {c: [s if s in _BLANKED else "" for s in disclosed.state.status[c][: frame.height]]
+                 for c in table.counts}  # fmt: skip
+        audited[table.name] = table_from_frames(table.name, disclosed.frame, frame, table, marks)
+    declared = {t.name for t in PUBLISHED_TABLES}
+    for name in _published_names(con):  # tables published by another step: audited with the rest
+        if name in declared or name in audited:
+            continue
+        published = fetch_frame(con, f"select * from published.{name} where period = ?", [period.label])
+        if published.height == 0:
+            continue
+        audited[name] = table_from_frames(name, published, _internal_rows(con, name, published), None)
+    basis = None
+    if summaries is not None and getattr(summaries, "standardisation_age_bands", None):
+        from pipeline.statistics import collapse_weights
+        from pipeline.summaries import age_labels
+
+        bands = list(summaries.standardisation_age_bands)
+        basis = RateBasis(tuple(age_labels(bands)), tuple(float(w) for w in collapse_weights(bands)),
+                          float(summaries.confidence))  # fmt: skip
+    previous = {}
+    last = _previous_label(period)
+    for name in audited:
+        if _exists(con, name):
+            previous[name] = fetch_frame(con, f"select * from published.{name} where period = ?", [last])
+    result = audit(audited, rules, basis, previous)
+    for name, published in result.frames.items():
+        if not _exists(con, name):
+            with_frame(con, published, f"create table published.{name} as select * from _frame")
         else:
-            add_missing_columns(con, "published", table.name, published)
-            con.execute(f"delete from published.{table.name} where period = ?", [period.label])
-            with_frame(con, published, f"insert into published.{table.name} by name select * from _frame")
-        counts[table.name] = published.height
+            add_missing_columns(con, "published", name, published)
+            con.execute(f"delete from published.{name} where period = ?", [period.label])
+            with_frame(con, published, f"insert into published.{name} by name select * from _frame")
+        counts[name] = published.height
+    _record_cells(con, period, audited, result.withheld)
+    if audit_out is not None:
+        audit_out["withheld"] = dict(result.withheld)
+        audit_out["notes"] = list(result.notes)
+        audit_out["added"] = result.added
     return counts
+
+
+def audit_frames(frames: Mapping[str, pl.DataFrame], rules: DisclosureSettings, basis: object | None = None):
+    """The publishable frames of internal ``frames`` (one period): each table protected on its
+    own, then all of them audited together (:func:`pipeline.disclosure_audit.audit`). Returns the
+    audit's result (frames, withheld tables and notes)."""
+    from pipeline.disclosure_audit import audit, table_from_frames
+
+    done: dict[str, _Disclosed] = {}
+    audited = {}
+    for table in PUBLISHED_TABLES:
+        frame = frames.get(table.name)
+        if frame is None or frame.height == 0:
+            continue
+        disclosed = _disclose(frame, table, rules, done)
+        done[table.name] = disclosed
+        marks = {c: [s if s in _BLANKED else "" for s in disclosed.state.status[c][: frame.height]]
+                 for c in table.counts}  # fmt: skip
+        audited[table.name] = table_from_frames(table.name, disclosed.frame, frame, table, marks)
+    return audit(audited, rules, basis)
+
+
+def _previous_label(period: Period) -> str:
+    year, month = (period.year, period.month - 1) if period.month > 1 else (period.year - 1, 12)
+    return f"{year:04d}-{month:02d}"
+
+
+def _published_names(con: duckdb.DuckDBPyConnection) -> list[str]:
+    rows = con.execute(
+        "select t.table_name from duckdb_tables() t join duckdb_columns() c on c.schema_name = t.schema_name "
+        "and c.table_name = t.table_name and c.column_name = 'period' where t.schema_name = 'published' "
+        "order by 1").fetchall()
+    return [r[0] for r in rows]
+
+
+def _internal_rows(con: duckdb.DuckDBPyConnection, name: str, published: pl.DataFrame) -> pl.DataFrame:
+    """The internal rows behind a published table not declared here, in the published order (by
+    its text keys); the published rows themselves when there is no internal table (then the
+    audit can only check, and blank whole, what is published)."""
+    exists = con.execute("select count(*) from duckdb_tables() where schema_name = 'main' and table_name = ?",
+                         [name]).fetchall()[0][0]  # fmt: skip
+    if not exists:
+        return published
+    keys = [c for c, t in published.schema.items() if t == pl.String and c != "suppression"]
+    period = published["period"][0]
+    internal = fetch_frame(con, f"select * from main.{name} where period = ?", [period])
+    wanted = [c for c, t in published.schema.items() if t.is_integer() and c != "n_suppressed"]
+    if not set(keys) <= set(internal.columns) or not set(wanted) <= set(internal.columns):
+        return published
+    joined = published.select(keys).with_row_index("_row").join(internal, on=keys, how="left")
+    joined = joined.sort("_row").drop("_row")
+    return joined if joined.height == published.height else published
+
+
+def _record_cells(con: duckdb.DuckDBPyConnection, period: Period, tables: Mapping, withheld: Mapping[str, str]) -> None:
+    """One internal row per blanked count of the period: why it is blank (never published)."""
+    rows = []
+    for name, t in tables.items():
+        for column in t.counts:
+            for r in range(t.n):
+                if name in withheld or t.values[column][r] is None and t.truth[column][r] is not None:
+                    key = "; ".join(f"{k}={v}" for k, v in zip(t.keys, t.key_rows[r]) if k != "period")
+                    mark = "withheld_table" if name in withheld else (t.marks[column][r] or "audit")
+                    rows.append((period.label, name, key, column, mark, withheld.get(name)))
+    frame = pl.DataFrame(rows, schema={"period": pl.String, "table_name": pl.String, "row_key": pl.String,
+                                       "column_name": pl.String, "reason": pl.String, "note": pl.String},
+                         orient="row")  # fmt: skip
+    con.execute("""create table if not exists disclosure_cells (period varchar, table_name varchar,
+                   row_key varchar, column_name varchar, reason varchar, note varchar)""")
+    con.execute("delete from disclosure_cells where period = ?", [period.label])
+    with_frame(con, frame, "insert into disclosure_cells by name select * from _frame")

@@ -178,15 +178,18 @@ def summarise_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         stash_release(ctx.con, ctx.period.label)  # the release now published, to compare with
         counts = summarise_stage(ctx.con, ctx.settings, ctx.period)
-        published = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period)
+        audit: dict[str, Any] = {}
+        published = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period,
+                                   ctx.settings.pipeline.summaries, audit)  # fmt: skip
         try:
             ctx.release = settle_release(ctx.con, ctx.period.label, ctx.revise, headline(ctx))
         except RevisionNeeded as exc:  # not a failure of the task: the run stops, unpublished
             ctx.refused = str(exc)
             return {"tables": len(counts), "revision": "refused (already published; --revise needed)"}
         return {"tables": len(counts), "rows": sum(counts.values()),
-                "published rows": sum(published.values()), "by_table": counts,
-                "revision": ctx.release.revision}  # fmt: skip
+                "published rows": sum(published.values()), "blanked by the joint audit": audit.get("added", 0),
+                "by_table": counts, "revision": ctx.release.revision,
+                "withheld_tables": audit.get("withheld", {})}  # fmt: skip
 
     return _stage(run_id, "summarise", work)
 
@@ -312,7 +315,7 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
     validate = call(validate_task, run_id)
     call(measure_task, run_id)
     link = call(link_task, run_id)
-    call(summarise_task, run_id)
+    summarised = call(summarise_task, run_id)
     if ctx.refused:  # nothing is published: the caller rolls the transaction back
         return {"period": ctx.period.label, "revision_refused": ctx.refused}
     checks = period_checks(ctx.con, ctx.settings, ctx.inbox, ctx.period)
@@ -325,6 +328,7 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
         "warehouse_sources": validate["by_source"],  # whole-warehouse totals, every period
         "held_back_sources": validate["held_back_sources"],
         "held_back_files": dict(ingest["held_back_files"]),
+        "withheld_tables": dict(summarised.get("withheld_tables", {})),
         "missing_sources": checks["missing_sources"],
         "missing_sources_policy": missing_policy,
         "rows_outside_period": checks["rows_outside_period"],

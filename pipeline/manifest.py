@@ -87,7 +87,7 @@ def input_files(con: duckdb.DuckDBPyConnection, run_period: str) -> list[dict[st
 def build_manifest(run_id: str, started_at: dt.datetime, settings: Settings, period: str,
                    demo_key: bool, stages: dict[str, dict[str, Any]], summary: dict[str, Any],
                    files: list[dict[str, Any]]) -> dict[str, Any]:  # fmt: skip
-    held = bool(summary.get("held_back_sources") or summary.get("held_back_files")
+    held = bool(summary.get("held_back_sources") or summary.get("held_back_files") or summary.get("withheld_tables")
                 or (summary.get("missing_sources") and summary.get("missing_sources_policy") == "hold"))
     m = settings.pipeline.measures
     return {

@@ -711,6 +711,9 @@ def _prevalence_section(data: _Data) -> str:
         notes.append(f"Age-standardised: direct method, WHO World Standard Population 2000–2025, on the broad "
                      f"age groups {groups}, sexes pooled; shown only where its counts per age group give no "
                      "suppressed count away.")  # fmt: skip
+        if any(r.get("ckd_per_1000_standardised_flag") == "rounded" for r in data.prevalence):
+            notes.append("Some age-standardised rates are rounded to fewer decimals: at two decimals, with their "
+                         "interval and the district's count, they would give an age group's count back.")  # fmt: skip
         if any(r.get("ckd_per_1000_standardised_flag") == "few_events" for r in data.prevalence):
             minimum = int(data.threshold("disclosure", "standardised_min_events", 20))
             notes.append(f"<b>r</b> not shown: fewer than {minimum} persons with confirmed CKD, too few for a "

@@ -301,6 +301,9 @@ class DisclosureSettings(_Strict):
     suppress_max: int = Field(default=10, ge=1)
     #: An age-standardised rate is published only when its district's persons_ckd reaches this.
     standardised_min_events: int = Field(default=20, ge=1)
+    #: The least width of the interval a reader can derive for a blanked count from everything
+    #: published together (pipeline/disclosure_audit.py).
+    protection_width: int = Field(default=10, ge=0)
 
 
 class QualityGateSettings(_Strict):

@@ -282,3 +282,35 @@ def test_deployment_has_its_cron_and_a_triggered_run_publishes(prefect_harness, 
     import pyarrow.parquet as pq
 
     assert b"kidneysurv.pseudonym_key" not in (pq.read_metadata(out / "2026-01" / "district_ckd_prevalence.parquet").metadata or {})
+
+
+def test_the_demo_publishes_no_blank_a_reader_can_narrow(demo_run):
+    """Everything the demo month publishes, read together (every published table, their margins,
+    the standardised rates' splits are checked in the run): no blank confined to 1-10 or to less
+    than the protection width, by each blank's least and greatest value (linear programming,
+    the usual audit of suppressed tables, common practice), and one mark for every blank."""
+    from pipeline.disclosure import PUBLISHED_TABLES
+    from pipeline.disclosure_audit import (
+        MARK,
+        _relations,
+        build_system,
+        failing_cells,
+        table_from_frames,
+    )
+    from pipeline.settings import DisclosureSettings
+    from pipeline.warehouse import fetch_frame
+
+    out, _, _ = demo_run
+    con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)  # an earlier test may close its own
+    tables = {}
+    for spec in PUBLISHED_TABLES:
+        order = list(spec.keys)
+        published = fetch_frame(con, f"select * from published.{spec.name} where period = ?", [PERIOD]).sort(order)
+        internal = fetch_frame(con, f"select * from main.{spec.name} where period = ?", [PERIOD]).sort(order)
+        assert set(published["suppression"].to_list()) <= {"", MARK}
+        for column in spec.counts:
+            assert not published[column].drop_nulls().is_between(1, 10).any(), (spec.name, column)
+        tables[spec.name] = table_from_frames(spec.name, published, internal, spec)
+    con.close()
+    system = build_system(tables, _relations())
+    assert failing_cells(system, DisclosureSettings(), exact=True) == {}
