@@ -234,6 +234,22 @@ PUBLISHED_TABLES = (
             ),
             copied=("persons_tested",)),
     ),
+    # Expected undetected albuminuria (pipeline/undetected.py): its persons with diabetes and with
+    # an ACR are the counts of district_screening_coverage, shown as published there; the
+    # estimate and the untested count are blanked with either of them.
+    PublishedTable(
+        "district_undetected_albuminuria",
+        keys=("period", "district_code"),
+        counts=("with_acr_a2_a3", "without_acr_pooled_stratum"),
+        rates={"share_a2_a3_of_tested": ("with_acr_a2_a3", "with_acr"),
+               "persons_without_acr": ("persons_with_diabetes", "with_acr")}
+        | {c: ("persons_with_diabetes", "with_acr")
+           for c in ("expected_a2_a3_without_acr", "expected_a2_a3_without_acr_low",
+                     "expected_a2_a3_without_acr_high", "expected_share_without_acr")},
+        levels=(("district_code",),),
+        totals=TotalsFrom("district_screening_coverage", join=("period", "district_code"), row={},
+                          partitions=(), copied=("persons_with_diabetes", "with_acr")),
+    ),
 )  # fmt: skip
 
 

@@ -206,8 +206,12 @@ class SummarySettings(_Strict):
     #: Broad age groups of the published age-standardised rate (lower bounds, last open), each a
     #: union of age_bands: the standard weights are summed within each group.
     standardisation_age_bands: list[int] = Field(default=[0, 65, 75])
+    #: Expected undetected albuminuria (pipeline/undetected.py): age groups of its strata (lower
+    #: bounds, last open) and the fewest tested persons a stratum's share may rest on.
+    albuminuria_age_bands: list[int] = Field(default=[0, 45, 65, 75])
+    albuminuria_min_tested: int = Field(default=10, ge=1)
 
-    @field_validator("age_bands", "standardisation_age_bands")
+    @field_validator("age_bands", "standardisation_age_bands", "albuminuria_age_bands")
     @classmethod
     def _increasing(cls, value: list[int]) -> list[int]:
         if not value or value[0] != 0 or any(b <= a for a, b in zip(value, value[1:])):

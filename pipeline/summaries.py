@@ -8,6 +8,7 @@ import polars as pl
 from pipeline.periods import Period
 from pipeline.settings import Settings
 from pipeline.statistics import collapse_weights, standardise_frame, with_wilson_interval
+from pipeline.undetected import age_group_labels, estimate_undetected
 from pipeline.warehouse import (add_missing_columns, build_table, drop_relation, fetch_frame,
                                 replace_period_frame, replace_period_rows)
 
@@ -15,6 +16,7 @@ from pipeline.warehouse import (add_missing_columns, build_table, drop_relation,
 SUMMARY_TABLES = (
     "district_ckd_prevalence",
     "district_screening_coverage",
+    "diabetes_acr_strata",  # input of district_undetected_albuminuria (pipeline/undetected.py)
     "lab_egfr_agreement",
     "source_quality",
     "source_rejection_reasons",
@@ -97,6 +99,18 @@ def add_standardised_rates(frame: pl.DataFrame, settings: Settings) -> pl.DataFr
     return out.with_columns(group.alias(column))  # last, so that older warehouses can add it
 
 
+def build_undetected_albuminuria(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> int:
+    """district_undetected_albuminuria for the period, from its rows of diabetes_acr_strata."""
+    s = settings.pipeline.summaries
+    labels = age_group_labels(s.albuminuria_age_bands)
+    strata = fetch_frame(con, "select * from diabetes_acr_strata where period = ?", [period.label])
+    strata = strata.with_columns(pl.col("age_group_min").replace_strict(labels, return_dtype=pl.String)
+                                 .alias("age_group"))
+    frame = estimate_undetected(strata, s.albuminuria_min_tested, s.confidence)
+    add_missing_columns(con, "main", "district_undetected_albuminuria", frame)
+    return replace_period_frame(con, "district_undetected_albuminuria", period.label, frame)
+
+
 def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> dict[str, int]:
     params = {
         "period": period.label,
@@ -105,6 +119,7 @@ def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: 
         "drift_months": settings.pipeline.summaries.drift_months,
         "drift_threshold": settings.pipeline.summaries.drift_threshold,
         "drift_min_results": settings.pipeline.summaries.drift_min_results,
+        "albuminuria_age_bands": settings.pipeline.summaries.albuminuria_age_bands,
     }
     confidence = settings.pipeline.summaries.confidence
     counts = {}
@@ -119,6 +134,7 @@ def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: 
             frame = add_standardised_rates(frame, settings)
         add_missing_columns(con, "main", name, frame)
         counts[name] = replace_period_frame(con, name, period.label, frame)
+    counts["district_undetected_albuminuria"] = build_undetected_albuminuria(con, settings, period)
     for name in RETIRED_TABLES:
         drop_relation(con, name)
     return counts
