@@ -236,16 +236,17 @@ PUBLISHED_TABLES = (
     ),
     # Expected undetected albuminuria (pipeline/undetected.py): its persons with diabetes and with
     # an ACR are the counts of district_screening_coverage, shown as published there; the
-    # estimate and the untested count are blanked with either of them.
+    # estimate is blanked with either of them. The untested count is a count of its own here (it
+    # is also their difference: relations between columns are not used, see the docstring).
     PublishedTable(
         "district_undetected_albuminuria",
         keys=("period", "district_code"),
-        counts=("with_acr_a2_a3", "without_acr_pooled_stratum"),
+        counts=("persons_without_acr", "with_acr_a2_a3", "without_acr_pooled_stratum"),
         rates={"share_a2_a3_of_tested": ("with_acr_a2_a3", "with_acr"),
-               "persons_without_acr": ("persons_with_diabetes", "with_acr")}
+               "expected_share_without_acr": ("persons_with_diabetes", "with_acr", "persons_without_acr")}
         | {c: ("persons_with_diabetes", "with_acr")
            for c in ("expected_a2_a3_without_acr", "expected_a2_a3_without_acr_low",
-                     "expected_a2_a3_without_acr_high", "expected_share_without_acr")},
+                     "expected_a2_a3_without_acr_high")},
         levels=(("district_code",),),
         totals=TotalsFrom("district_screening_coverage", join=("period", "district_code"), row={},
                           partitions=(), copied=("persons_with_diabetes", "with_acr")),

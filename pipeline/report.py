@@ -24,6 +24,7 @@ from typing import Any, Callable, Sequence
 
 import duckdb
 
+from pipeline import report_indicators  # new sections; it uses this module's helpers
 from pipeline.disclosure import PUBLISHED_TABLES
 from pipeline.periods import Period
 
@@ -39,6 +40,7 @@ READABLE_TABLES = (
     COVERAGE,
     INCIDENCE,
     CATEGORIES,
+    "published.district_undetected_albuminuria",
     "source_quality",
     "source_rejection_reasons",
     "lab_egfr_agreement",
@@ -171,6 +173,7 @@ class _Data:
     agreement: list[dict[str, Any]]
     incidence: list[dict[str, Any]] = field(default_factory=list)
     categories: list[dict[str, Any]] = field(default_factory=list)
+    undetected: list[dict[str, Any]] = field(default_factory=list)  # pipeline/report_indicators.py
 
     @property
     def demo_key(self) -> bool | None:
@@ -251,6 +254,7 @@ def _collect(con: duckdb.DuckDBPyConnection, period: Period) -> _Data:
         suppressed_below=below, coverage=_district_order(coverage), coverage_columns=_columns(con, COVERAGE),
         coverage_trend=trend, quality=quality, reasons=reasons, agreement=agreement,
         incidence=_district_order(incidence), categories=categories,
+        undetected=report_indicators.collect_undetected(con, p),
     )  # fmt: skip
 
 
@@ -994,6 +998,8 @@ def _methods_section(data: _Data) -> str:
          "categories add up to the district totals of the prevalence table and are protected against them; "
          "an age-standardised rate is shown only where its counts per broad age group give no blank away."),
     ]  # fmt: skip
+    if data.undetected:
+        definitions.insert(-1, report_indicators.undetected_definition())
     if intervals:
         definitions.append(("Intervals", f"{_confidence(data)} Wilson score intervals for shares (Wilson 1927; "
                             "Newcombe 1998); Fay–Feuer gamma intervals for age-standardised rates (Fay and "
@@ -1008,6 +1014,9 @@ def _methods_section(data: _Data) -> str:
         "American Diabetes Association. Standards of Care in Diabetes: classification and diagnosis "
         "(HbA1c and fasting glucose thresholds).",
     ]
+    if data.undetected:
+        sources.append("Breslow NE, Day NE. Statistical Methods in Cancer Research, vol. II. IARC 1987 "
+                       "(indirect standardisation).")
     if "ekfc_creatinine" in used:
         sources.append("Pottel H, et al. Ann Intern Med 2021;174:183 (EKFC).")
     if "ckid_u25_creatinine" in used:
@@ -1186,7 +1195,9 @@ def _render(data: _Data) -> str:
         _categories_section(data), "</section>",
         '<section id="coverage"><h2>Kidney testing in diabetes</h2>',
         figure(_trend_chart(data), "One point per published period; each covers the 12 months ending that month."),
-        _coverage_section(data), "</section>",
+        _coverage_section(data),
+        '<h3 id="undetected">Expected cases not yet found</h3>',
+        report_indicators.undetected_section(data.undetected, data), "</section>",
         '<section id="decline"><h2>Sustained eGFR decline</h2>', _incidence_section(data), "</section>",
         '<section id="quality"><h2>Data quality by lab</h2>',
         figure(_quality_chart(data, sources), "Rows the row-level rules rejected, for this month's extract and "

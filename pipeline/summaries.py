@@ -106,7 +106,7 @@ def build_undetected_albuminuria(con: duckdb.DuckDBPyConnection, settings: Setti
     strata = fetch_frame(con, "select * from diabetes_acr_strata where period = ?", [period.label])
     strata = strata.with_columns(pl.col("age_group_min").replace_strict(labels, return_dtype=pl.String)
                                  .alias("age_group"))
-    frame = estimate_undetected(strata, s.albuminuria_min_tested, s.confidence)
+    frame = estimate_undetected(strata, s.albuminuria_min_tested, s.confidence, period.label)
     add_missing_columns(con, "main", "district_undetected_albuminuria", frame)
     return replace_period_frame(con, "district_undetected_albuminuria", period.label, frame)
 

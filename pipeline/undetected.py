@@ -91,11 +91,19 @@ def assign_share_strata(strata: pl.DataFrame, min_tested: int) -> pl.DataFrame:
     ).sort(STRATUM_KEYS)
 
 
-def estimate_undetected(strata: pl.DataFrame, min_tested: int, confidence: float) -> pl.DataFrame:
+def estimate_undetected(strata: pl.DataFrame, min_tested: int, confidence: float,
+                        period: str | None = None) -> pl.DataFrame:
     """Per district and 'ALL' (every district, 'unknown' too): the expected number of persons with
     A2 or A3 among the persons with diabetes without an ACR in the window, with its interval.
 
-    ``strata``: one period's rows of ``diabetes_acr_strata`` with ``age_group`` labelled."""
+    ``strata``: one period's rows of ``diabetes_acr_strata`` with ``age_group`` labelled. With no
+    rows, the 'ALL' row of ``period`` alone, with zero counts (as district_screening_coverage has)."""
+    if strata.height == 0 and period is not None:
+        empty = {"period": period, "district_code": "ALL", "age_group": "unknown", "sex": "U",
+                 "g_category": "unknown", "persons_with_diabetes": 0, "with_acr": 0,
+                 "with_acr_categorised": 0, "with_acr_a2_a3": 0}
+        strata = pl.DataFrame([empty], schema_overrides={k: pl.Int64 for k in list(empty)[5:]})
+        return estimate_undetected(strata, min_tested, confidence).filter(pl.col("district_code") == "ALL")
     shares = assign_share_strata(strata, min_tested)
     z = float(norm.ppf(0.5 + confidence / 2))
     rows = strata.join(shares, on=list(STRATUM_KEYS), how="left").with_columns(

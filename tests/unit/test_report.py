@@ -34,6 +34,7 @@ COUNTS = {
     "table-prevalence": ("district_ckd_prevalence", ("persons_tested", "persons_ckd", "persons_ckd_g3_g5")),
     "table-coverage": ("district_screening_coverage",
                        ("persons_with_diabetes", "with_egfr", "with_acr", "with_egfr_and_acr")),
+    "table-undetected": ("district_undetected_albuminuria", ("persons_with_diabetes", "persons_without_acr")),
 }  # fmt: skip
 
 
@@ -220,6 +221,24 @@ def test_district_tables_show_the_published_cells(con, report):
                 assert shown[(district, column)] == ("s" if value is None else f"{value:,}"), (district, column)
 
 
+def test_expected_cases_not_yet_found_show_the_published_estimate(con, report):
+    """The estimate beside coverage is the published value with its interval, or 's' where the
+    counts it is built on are blanked; the assumption is stated under the table."""
+    cells = {(d, c): t for d, c, t in parse(report).cells["table-undetected"]}
+    published = rows(con, "select district_code, expected_a2_a3_without_acr, expected_a2_a3_without_acr_low, "
+                     "expected_a2_a3_without_acr_high, with_acr from published.district_undetected_albuminuria "
+                     "where period = ?", [PERIOD])
+    assert published
+    for district, value, low, high, with_acr in published:
+        text = cells[(district, "expected_a2_a3_without_acr")]
+        if with_acr is None:
+            assert text == "s", district
+        elif value is not None:
+            assert text == f"{value:,.1f} ({low:,.1f}–{high:,.1f})", district
+    assert "untested persons with diabetes are assumed to have A2 or A3 as often as" in report
+    assert "Expected cases not yet found" in report
+
+
 def test_no_suppressed_small_count_appears_in_any_table_cell(con, report):
     """Every internal count from 1 to 10 is blanked in the published tables (common practice:
     counts 1-10 suppressed); none of them may show in the cell it belongs to, and no count cell of
@@ -301,7 +320,8 @@ def test_interval_columns_are_optional(warehouse):
     mem = restricted_copy(warehouse)
     for table, rate in (("district_ckd_prevalence", "ckd_share_of_tested"),
                         ("district_ckd_prevalence", "ckd_per_1000_standardised"),
-                        ("district_screening_coverage", "share_with_both")):  # fmt: skip
+                        ("district_screening_coverage", "share_with_both"),
+                        ("district_undetected_albuminuria", "expected_a2_a3_without_acr")):  # fmt: skip
         for end in ("low", "high"):
             mem.execute(f"alter table published.{table} drop column if exists {rate}_{end}")
     without = build_report_html(mem, PERIOD)

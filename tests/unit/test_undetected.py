@@ -114,6 +114,7 @@ def test_published_copy_shows_coverage_counts_as_coverage_publishes_them():
     assert pub["WF01"]["with_acr_a2_a3"] is None and pub["WF01"]["share_a2_a3_of_tested"] is None
     assert pub["ALL"]["with_acr_a2_a3"] == 11
     # persons_with_diabetes 49 and with_acr 33 are published in coverage, so the estimate is too
+    assert pub["WF01"]["persons_without_acr"] == 16
     assert pub["WF01"]["expected_a2_a3_without_acr"] == undetected.filter(
         pl.col("district_code") == "WF01")["expected_a2_a3_without_acr"][0]
     # blank with_acr in coverage -> the estimate built on it is blank here
@@ -121,8 +122,17 @@ def test_published_copy_shows_coverage_counts_as_coverage_publishes_them():
                                   .alias("with_acr"))
     changed = undetected.with_columns(pl.when(pl.col("district_code") == "WF02").then(5)
                                       .otherwise(pl.col("with_acr")).alias("with_acr"))
+    changed = changed.with_columns((pl.col("persons_with_diabetes") - pl.col("with_acr")).alias("persons_without_acr"))
     out = suppress_tables({"district_screening_coverage": small, "district_undetected_albuminuria": changed},
                           DisclosureSettings())
     pub = by_district(out["district_undetected_albuminuria"])
     assert pub["WF02"]["with_acr"] is None
-    assert pub["WF02"]["expected_a2_a3_without_acr"] is None and pub["WF02"]["persons_without_acr"] is None
+    assert pub["WF02"]["expected_a2_a3_without_acr"] is None and pub["WF02"]["expected_share_without_acr"] is None
+    assert pub["WF02"]["persons_without_acr"] == 44 and pub["WF01"]["persons_without_acr"] == 16
+
+
+def test_a_period_without_persons_with_diabetes_still_has_its_region_row():
+    empty = strata_frame().head(0)
+    out = estimate_undetected(empty, 10, 0.95, "2026-10").to_dicts()
+    assert [(r["district_code"], r["persons_with_diabetes"], r["persons_without_acr"]) for r in out] == [("ALL", 0, 0)]
+    assert out[0]["expected_a2_a3_without_acr"] == 0.0 and out[0]["period"] == "2026-10"
