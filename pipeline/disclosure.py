@@ -251,6 +251,30 @@ PUBLISHED_TABLES = (
         totals=TotalsFrom("district_screening_coverage", join=("period", "district_code"), row={},
                           partitions=(), copied=("persons_with_diabetes", "with_acr")),
     ),
+    # Equation-change impact (pipeline/equation_impact.py): per district and comparison, the
+    # totals; per GFR category, counts that add up to those totals (protected against them as the
+    # categories of district_ckd_categories are against district_ckd_prevalence).
+    PublishedTable(
+        "district_equation_change",
+        keys=("period", "district_code", "comparison"),
+        counts=("persons_compared", "moved_to_lower_gfr_category", "moved_to_higher_gfr_category"),
+        rates={},
+        levels=(("district_code",),),
+    ),
+    PublishedTable(
+        "district_equation_change_categories",
+        keys=("period", "district_code", "comparison", "g_category"),
+        counts=("persons_in_force", "persons_comparison", "moved_to_lower_gfr_category",
+                "moved_to_higher_gfr_category"),
+        rates={},
+        levels=(("district_code",),),
+        totals=TotalsFrom(
+            "district_equation_change", join=("period", "district_code", "comparison"), row={},
+            partitions=(Partition("persons_in_force", "persons_compared", {}),
+                        Partition("persons_comparison", "persons_compared", {}),
+                        Partition("moved_to_lower_gfr_category", "moved_to_lower_gfr_category", {}),
+                        Partition("moved_to_higher_gfr_category", "moved_to_higher_gfr_category", {}))),
+    ),
 )  # fmt: skip
 
 

@@ -56,8 +56,8 @@ def undetected_section(rows: list[dict[str, Any]], data: Any) -> str:
         "then its age group, then the region."
         + (" Interval: the uncertainty of the region's stratum shares only (normal approximation); it is not "
            "the range of what testing everyone would find." if ci else ""),
-        "Persons tested outside the region's laboratories count as untested, which also pushes the estimate "
-        "up. A dipstick or protein ratio does not count as an ACR.",
+        ("Persons tested outside the region's laboratories count as untested, which also pushes the estimate "
+         "up. A dipstick or protein ratio does not count as an ACR."),
     ]
     return r._table("table-undetected", caption, head, body, notes)
 

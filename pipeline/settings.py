@@ -210,6 +210,16 @@ class SummarySettings(_Strict):
     #: bounds, last open) and the fewest tested persons a stratum's share may rest on.
     albuminuria_age_bands: list[int] = Field(default=[0, 45, 65, 75])
     albuminuria_min_tested: int = Field(default=10, ge=1)
+    #: Equation-change impact (pipeline/equation_impact.py): the adult creatinine equation the
+    #: one in force is compared with.
+    equation_comparison: EquationName = "ckd_epi_2009_creatinine"
+
+    @field_validator("equation_comparison")
+    @classmethod
+    def _adult_equation(cls, value: str) -> str:
+        if value == "ckid_u25_creatinine":
+            raise ValueError("equation_comparison must be an adult creatinine equation (CKiD U25 needs a height)")
+        return value
 
     @field_validator("age_bands", "standardisation_age_bands", "albuminuria_age_bands")
     @classmethod

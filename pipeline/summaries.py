@@ -5,6 +5,7 @@ from __future__ import annotations
 import duckdb
 import polars as pl
 
+from pipeline.equation_impact import COMBINED, daily_comparison, reclassification, summary
 from pipeline.periods import Period
 from pipeline.settings import Settings
 from pipeline.statistics import collapse_weights, standardise_frame, with_wilson_interval
@@ -111,6 +112,28 @@ def build_undetected_albuminuria(con: duckdb.DuckDBPyConnection, settings: Setti
     return replace_period_frame(con, "district_undetected_albuminuria", period.label, frame)
 
 
+def build_equation_change(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> dict[str, int]:
+    """equation_reclassification and district_equation_change for the period
+    (pipeline/equation_impact.py), from a transient person-level input never kept."""
+    params = {"period": period.label, "period_end": period.end,
+              "window_months": settings.pipeline.summaries.window_months,
+              "adult_min_age": settings.pipeline.measures.adult_min_age_years}
+    build_table(con, "equation_comparison_inputs", "equation_comparison_inputs", params, temporary=True)
+    inputs = fetch_frame(con, "select * from equation_comparison_inputs")
+    con.execute("drop table equation_comparison_inputs")
+    comparison = settings.pipeline.summaries.equation_comparison
+    persons = daily_comparison(inputs, comparison)
+    matrix = reclassification(persons, period.label, settings.pipeline.measures.adult_equation,
+                              [comparison, COMBINED])
+    totals, categories = summary(matrix)
+    counts = {}
+    for name, frame in (("equation_reclassification", matrix), ("district_equation_change", totals),
+                        ("district_equation_change_categories", categories)):
+        add_missing_columns(con, "main", name, frame)
+        counts[name] = replace_period_frame(con, name, period.label, frame)
+    return counts
+
+
 def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> dict[str, int]:
     params = {
         "period": period.label,
@@ -135,6 +158,7 @@ def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: 
         add_missing_columns(con, "main", name, frame)
         counts[name] = replace_period_frame(con, name, period.label, frame)
     counts["district_undetected_albuminuria"] = build_undetected_albuminuria(con, settings, period)
+    counts.update(build_equation_change(con, settings, period))
     for name in RETIRED_TABLES:
         drop_relation(con, name)
     return counts
