@@ -41,6 +41,8 @@ READABLE_TABLES = (
     INCIDENCE,
     CATEGORIES,
     "published.district_undetected_albuminuria",
+    "published.district_equation_change",
+    "published.district_equation_change_categories",
     "source_quality",
     "source_rejection_reasons",
     "lab_egfr_agreement",
@@ -174,6 +176,7 @@ class _Data:
     incidence: list[dict[str, Any]] = field(default_factory=list)
     categories: list[dict[str, Any]] = field(default_factory=list)
     undetected: list[dict[str, Any]] = field(default_factory=list)  # pipeline/report_indicators.py
+    equation_change: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
 
     @property
     def demo_key(self) -> bool | None:
@@ -255,6 +258,7 @@ def _collect(con: duckdb.DuckDBPyConnection, period: Period) -> _Data:
         coverage_trend=trend, quality=quality, reasons=reasons, agreement=agreement,
         incidence=_district_order(incidence), categories=categories,
         undetected=report_indicators.collect_undetected(con, p),
+        equation_change=report_indicators.collect_equation_change(con, p),
     )  # fmt: skip
 
 
@@ -1199,6 +1203,8 @@ def _render(data: _Data) -> str:
         '<h3 id="undetected">Expected cases not yet found</h3>',
         report_indicators.undetected_section(data.undetected, data), "</section>",
         '<section id="decline"><h2>Sustained eGFR decline</h2>', _incidence_section(data), "</section>",
+        '<section id="equation-change"><h2>If the eGFR equation changed</h2>',
+        report_indicators.equation_change_section(data.equation_change, data), "</section>",
         '<section id="quality"><h2>Data quality by lab</h2>',
         figure(_quality_chart(data, sources), "Rows the row-level rules rejected, for this month's extract and "
                "for every extract month received so far. Dashed line: the share above which a lab is held back."),

@@ -68,3 +68,79 @@ def undetected_definition() -> tuple[str, str]:
             "with A2 or A3: the region's share of A2/A3 among the tested, per stratum of age group, sex and "
             "GFR category, applied to each district's untested persons and summed (indirect "
             "standardisation; Breslow and Day 1987). " + r._e(ASSUMPTION))
+
+
+EQUATION_TOTALS = "published.district_equation_change"
+EQUATION_CATEGORIES = "published.district_equation_change_categories"
+BELOW_60 = ("G3a", "G3b", "G4", "G5")
+G_LABELS = (("G1", "G1 ≥90"), ("G2", "G2 60–89"), ("G3a", "G3a 45–59"), ("G3b", "G3b 30–44"),
+            ("G4", "G4 15–29"), ("G5", "G5 <15"))
+
+
+def collect_equation_change(con, period: str) -> dict[str, list[dict[str, Any]]]:
+    if not (r._exists(con, EQUATION_TOTALS) and r._exists(con, EQUATION_CATEGORIES)):
+        return {"totals": [], "categories": []}
+    totals = r._select(con, EQUATION_TOTALS, "select * from {t} where period = ? order by comparison", [period])
+    categories = r._select(con, EQUATION_CATEGORIES, "select * from {t} where period = ?", [period])
+    return {"totals": r._district_order(totals), "categories": categories}
+
+
+def _below_60(rows: list[dict[str, Any]], column: str) -> r._Cell:
+    """G3a + G3b + G4 + G5 from the published cells; 's' if any of them is blank."""
+    cells = {row["g_category"]: row for row in rows}
+    if any(g not in cells or r._is_blanked(cells[g], column) or cells[g].get(column) is None for g in BELOW_60):
+        return r._Cell("s", f"below_60_{column}", "s")
+    return r._Cell(r._int(sum(int(cells[g][column]) for g in BELOW_60)), f"below_60_{column}")
+
+
+def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) -> str:
+    totals, categories = change.get("totals") or [], change.get("categories") or []
+    if not totals:
+        return r._missing("equation-change impact")
+    names = r.EQUATION_NAMES
+    in_force = totals[0].get("in_force_equation")
+    comparisons = sorted({t["comparison"] for t in totals}, key=lambda c: c == "ckd_epi_2021_creatinine_cystatin")
+    out = [f"<p>Each adult's latest creatinine eGFR in the {int(data.threshold('summaries', 'window_months', 12))} "
+           f"months to {r._e(data.end_words)}, under the equation in force ({r._e(names.get(in_force, in_force))}) "
+           "and under another. A switch of equation moves these counts by itself, with no change in anyone's "
+           "kidneys. Confirmed CKD is not recomputed under the other equation.</p>"]
+    for comparison in comparisons:
+        label = names.get(comparison, comparison)
+        region = [c for c in categories if c["district_code"] == r.TOTAL and c["comparison"] == comparison]
+        by_g = {c["g_category"]: c for c in region}
+        rows = []
+        for g, text in G_LABELS:
+            row = by_g.get(g)
+            if row is None:
+                continue
+            rows.append((g, r._e(text), [r._count_cell(row, "persons_in_force"),
+                                        r._count_cell(row, "persons_comparison"),
+                                        r._count_cell(row, "moved_to_lower_gfr_category"),
+                                        r._count_cell(row, "moved_to_higher_gfr_category")]))
+        rows.append(("below_60", "Below 60 (G3a–G5)", [_below_60(region, "persons_in_force"),
+                                                       _below_60(region, "persons_comparison"),
+                                                       r._Cell("", "moved_to_lower_gfr_category", "na"),
+                                                       r._Cell("", "moved_to_higher_gfr_category", "na")]))
+        head = ["GFR category", "In force", "Under the other equation", "Of those in force: moved lower",
+                "Moved higher"]
+        what = ("persons whose latest day had a cystatin C too: the creatinine–cystatin C eGFR against the "
+                "creatinine eGFR alone" if comparison == "ckd_epi_2021_creatinine_cystatin" else "adults")
+        caption = (f"All districts: {r._e(label)} against the equation in force, {what}, "
+                   f"{r._e(data.period_words)}")
+        out.append(r._table(f"table-equation-{r._e(comparison)}", caption, head, rows, []))
+    main = comparisons[0]
+    rows = []
+    for t in (t for t in totals if t["comparison"] == main):
+        mine = [c for c in categories if c["district_code"] == t["district_code"] and c["comparison"] == main]
+        rows.append((t["district_code"], r._district_label(data, t["district_code"]), [
+            r._count_cell(t, "persons_compared"), _below_60(mine, "persons_in_force"),
+            _below_60(mine, "persons_comparison"), r._count_cell(t, "moved_to_lower_gfr_category"),
+            r._count_cell(t, "moved_to_higher_gfr_category")]))
+    head = ["District", "Adults compared", "Below 60, in force", "Below 60, other equation",
+            "Moved to a lower category", "Moved to a higher category"]
+    caption = f"By district: {r._e(names.get(main, main))} against the equation in force, {r._e(data.period_words)}"
+    notes = r._suppression_notes(data, False) + [
+        "Below 60 is the sum of the published G3a–G5 counts; shown as <b>s</b> when any of them is suppressed. "
+        "A lower category is a higher G number (lower eGFR)."]
+    out.append(r._table("table-equation-districts", caption, head, rows, notes))
+    return "".join(out)

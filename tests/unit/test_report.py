@@ -431,3 +431,24 @@ def test_standardised_rates_shown_as_published(con, report):
             assert text == "s"
     assert shown_rates >= 3, "the samples publish standardised rates for the larger districts"
     assert dict((d, f) for d, _, f in published)["ALL"] == ""
+
+
+def test_equation_change_shows_the_published_cells(con, report):
+    """Each district's adults compared and moved counts are those published; 'below 60' is the
+    sum of the published G3a..G5 counts (KDIGO 2012: G3a-G5 is an eGFR below 60), or 's' when
+    any of them is blank."""
+    cells = {(d, c): t for d, c, t in parse(report).cells["table-equation-districts"]}
+    totals = rows(con, "select district_code, persons_compared, moved_to_lower_gfr_category from "
+                  "published.district_equation_change where period = ? and comparison = 'ckd_epi_2009_creatinine'",
+                  [PERIOD])
+    assert totals
+    for district, compared, lower in totals:
+        assert cells[(district, "persons_compared")] == ("s" if compared is None else f"{compared:,}")
+        assert cells[(district, "moved_to_lower_gfr_category")] == ("s" if lower is None else f"{lower:,}")
+        below = rows(con, "select persons_in_force from published.district_equation_change_categories where "
+                     "period = ? and comparison = 'ckd_epi_2009_creatinine' and district_code = ? and "
+                     "g_category in ('G3a', 'G3b', 'G4', 'G5')", [PERIOD, district])
+        values = [v for (v,) in below]
+        expected = "s" if any(v is None for v in values) else f"{sum(values):,}"
+        assert cells[(district, "below_60_persons_in_force")] == expected, district
+    assert "with no change in anyone's kidneys" in report
