@@ -251,6 +251,16 @@ PUBLISHED_TABLES = (
         totals=TotalsFrom("district_screening_coverage", join=("period", "district_code"), row={},
                           partitions=(), copied=("persons_with_diabetes", "with_acr")),
     ),
+    # Coverage trend, all districts, as it stood at each of the 12 month ends (no hierarchy: one
+    # row per month; its last row is district_screening_coverage's 'ALL' row).
+    PublishedTable(
+        "region_coverage_trend",
+        keys=("period", "as_of_month"),
+        counts=("persons_with_diabetes", "with_egfr", "with_acr", "with_egfr_and_acr"),
+        rates={"share_with_both": ("with_egfr_and_acr", "persons_with_diabetes"),
+               "share_with_both_low": ("with_egfr_and_acr", "persons_with_diabetes"),
+               "share_with_both_high": ("with_egfr_and_acr", "persons_with_diabetes")},
+    ),
     # Equation-change impact (pipeline/equation_impact.py): per district and comparison, the
     # totals; per GFR category, counts that add up to those totals (protected against them as the
     # categories of district_ckd_categories are against district_ckd_prevalence).

@@ -144,3 +144,26 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
         "A lower category is a higher G number (lower eGFR)."]
     out.append(r._table("table-equation-districts", caption, head, rows, notes))
     return "".join(out)
+
+
+def source_style(source_id: str, present: list[str]) -> tuple[str, int]:
+    """A lab's colour and marker shape, the same in every report whatever other labs are added:
+    taken from a hash of its id (SHA-256, not Python's salted hash) over the palette's colours x 4
+    shapes. Only when two labs shown together draw the same pair does the later (by id) take the
+    next free pair, so a lab keeps its style unless a new one collides with it and sorts first."""
+    import hashlib
+
+    pairs = [(c, shape) for shape in range(4) for c in r.PALETTE]
+
+    def natural(sid: str) -> int:
+        return int.from_bytes(hashlib.sha256(sid.encode("utf-8")).digest()[:8], "big") % len(pairs)
+
+    taken: set[int] = set()
+    for sid in sorted(set(present) | {source_id}):
+        index = natural(sid)
+        while index in taken and len(taken) < len(pairs):
+            index = (index + 1) % len(pairs)
+        taken.add(index)
+        if sid == source_id:
+            return pairs[index]
+    raise AssertionError("unreachable")

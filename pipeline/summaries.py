@@ -18,6 +18,7 @@ SUMMARY_TABLES = (
     "district_ckd_prevalence",
     "district_screening_coverage",
     "diabetes_acr_strata",  # input of district_undetected_albuminuria (pipeline/undetected.py)
+    "region_coverage_trend",
     "lab_egfr_agreement",
     "source_quality",
     "source_rejection_reasons",
@@ -33,6 +34,7 @@ RETIRED_TABLES = ("district_ckd_stages",)  # the wide form of district_ckd_categ
 WILSON_RATES = {
     "district_ckd_prevalence": {"ckd_share_of_tested": ("persons_ckd", "persons_tested")},
     "district_screening_coverage": {"share_with_both": ("with_egfr_and_acr", "persons_with_diabetes")},
+    "region_coverage_trend": {"share_with_both": ("with_egfr_and_acr", "persons_with_diabetes")},
     "district_ckd_categories": {"ckd_per_100_tested": ("persons_ckd", "persons_tested")},
 }
 #: Rates given per 100 (or another base) rather than as a share: their limits are scaled alike.

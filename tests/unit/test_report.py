@@ -161,14 +161,28 @@ def test_every_chart_is_inline_svg_with_title_and_desc(report):
         assert 'class="axis-label"' in body, chart_id
 
 
-def test_trend_has_one_point_per_published_period(con, report):
-    periods = [p for (p,) in rows(con, "select distinct period from published.district_screening_coverage "
-                                       "where period <= ? order by 1", [PERIOD])]  # fmt: skip
-    assert periods == list(PERIODS)
+def test_trend_has_one_point_per_month_end_as_known_then(con, report):
+    """Twelve month ends up to the period, from the published trend; its last point is the
+    published coverage of the period itself (the same persons, counted the same way)."""
+    months = [m for (m,) in rows(con, "select as_of_month from published.region_coverage_trend where period = ? "
+                                      "order by 1", [PERIOD])]  # fmt: skip
+    assert len(months) == 12 and months[-1] == PERIOD and months[0] == "2025-11"
     trend = re.search(r'<svg class="chart" id="chart-coverage-trend".*?</svg>', report, re.S).group(0)
     points = re.findall(r"<title>(\d{4}-\d{2}): ", trend)
-    assert points == periods
-    assert "<polyline" in trend  # two points: a line
+    assert points == [m for m in months if rows(con, "select share_with_both from published.region_coverage_trend "
+                                                     "where period = ? and as_of_month = ?", [PERIOD, m])[0][0]
+                      is not None]
+    assert len(points) > 2 and "<polyline" in trend
+    last = rows(con, "select persons_with_diabetes, with_egfr, with_acr, with_egfr_and_acr from "
+                     "main.region_coverage_trend where period = ? and as_of_month = ?", [PERIOD, PERIOD])
+    coverage = rows(con, "select persons_with_diabetes, with_egfr, with_acr, with_egfr_and_acr from "
+                         "main.district_screening_coverage where period = ? and district_code = 'ALL'", [PERIOD])
+    assert last == coverage
+    # earlier month ends know fewer results: the counts do not fall as the months go on (the
+    # samples grow month by month; a check that the as-of filter is applied at all)
+    first = rows(con, "select persons_with_diabetes from main.region_coverage_trend where period = ? "
+                      "order by as_of_month limit 1", [PERIOD])[0][0]
+    assert first < last[0][0]
 
 
 def test_is_deterministic(con):
