@@ -261,6 +261,15 @@ PUBLISHED_TABLES = (
                "share_with_both_low": ("with_egfr_and_acr", "persons_with_diabetes"),
                "share_with_both_high": ("with_egfr_and_acr", "persons_with_diabetes")},
     ),
+    # What counting estimated albuminuria would add to the default counts (each added count is
+    # a count of persons of its own, protected like any other).
+    PublishedTable(
+        "district_estimated_acr_sensitivity",
+        keys=("period", "district_code"),
+        counts=("persons_tested_added", "persons_ckd_added", "with_acr_added", "with_egfr_and_acr_added"),
+        rates={},
+        levels=(("district_code",),),
+    ),
     # Equation-change impact (pipeline/equation_impact.py): per district and comparison, the
     # totals; per GFR category, counts that add up to those totals (protected against them as the
     # categories of district_ckd_categories are against district_ckd_prevalence).

@@ -45,6 +45,7 @@ READABLE_TABLES = (
     "published.district_equation_change",
     "published.district_equation_change_categories",
     "published.region_coverage_trend",
+    "published.district_estimated_acr_sensitivity",
     "source_quality",
     "source_rejection_reasons",
     "lab_egfr_agreement",
@@ -179,6 +180,7 @@ class _Data:
     categories: list[dict[str, Any]] = field(default_factory=list)
     undetected: list[dict[str, Any]] = field(default_factory=list)  # pipeline/report_indicators.py
     equation_change: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
+    sensitivity: list[dict[str, Any]] = field(default_factory=list)
 
     @property
     def demo_key(self) -> bool | None:
@@ -265,6 +267,7 @@ def _collect(con: duckdb.DuckDBPyConnection, period: Period) -> _Data:
         incidence=_district_order(incidence), categories=categories,
         undetected=report_indicators.collect_undetected(con, p),
         equation_change=report_indicators.collect_equation_change(con, p),
+        sensitivity=report_indicators.collect_sensitivity(con, p),
     )  # fmt: skip
 
 
@@ -1221,7 +1224,9 @@ def _render(data: _Data) -> str:
                "the 12 months ending that month. The last point is the table below."),
         _coverage_section(data),
         '<h3 id="undetected">Expected cases not yet found</h3>',
-        report_indicators.undetected_section(data.undetected, data), "</section>",
+        report_indicators.undetected_section(data.undetected, data),
+        '<h3 id="sensitivity">If estimated albuminuria were counted</h3>',
+        report_indicators.sensitivity_section(data.sensitivity, data), "</section>",
         '<section id="decline"><h2>Sustained eGFR decline</h2>', _incidence_section(data), "</section>",
         '<section id="equation-change"><h2>If the eGFR equation changed</h2>',
         report_indicators.equation_change_section(data.equation_change, data), "</section>",

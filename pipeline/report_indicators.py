@@ -100,10 +100,12 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
     names = r.EQUATION_NAMES
     in_force = totals[0].get("in_force_equation")
     comparisons = sorted({t["comparison"] for t in totals}, key=lambda c: c == "ckd_epi_2021_creatinine_cystatin")
-    out = [f"<p>Each adult's latest creatinine eGFR in the {int(data.threshold('summaries', 'window_months', 12))} "
-           f"months to {r._e(data.end_words)}, under the equation in force ({r._e(names.get(in_force, in_force))}) "
-           "and under another. A switch of equation moves these counts by itself, with no change in anyone's "
-           "kidneys. Confirmed CKD is not recomputed under the other equation.</p>"]
+    window = int(data.threshold("summaries", "window_months", 12))
+    lead = (f"<p>Each adult's latest creatinine eGFR in the {window} months to {r._e(data.end_words)}, under the "
+            f"equation in force ({r._e(names.get(in_force, in_force))}) and under another. A switch of equation "
+            "moves these counts by itself, with no change in anyone's kidneys. Confirmed CKD is not recomputed "
+            "under the other equation.</p>")
+    out = [lead]
     for comparison in comparisons:
         label = names.get(comparison, comparison)
         region = [c for c in categories if c["district_code"] == r.TOTAL and c["comparison"] == comparison]
@@ -140,8 +142,8 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
             "Moved to a lower category", "Moved to a higher category"]
     caption = f"By district: {r._e(names.get(main, main))} against the equation in force, {r._e(data.period_words)}"
     notes = r._suppression_notes(data, False) + [
-        "Below 60 is the sum of the published G3a–G5 counts; shown as <b>s</b> when any of them is suppressed. "
-        "A lower category is a higher G number (lower eGFR)."]
+        ("Below 60 is the sum of the published G3a–G5 counts; shown as <b>s</b> when any of them is suppressed. "
+         "A lower category is a higher G number (lower eGFR).")]
     out.append(r._table("table-equation-districts", caption, head, rows, notes))
     return "".join(out)
 
@@ -167,3 +169,42 @@ def source_style(source_id: str, present: list[str]) -> tuple[str, int]:
         if sid == source_id:
             return pairs[index]
     raise AssertionError("unreachable")
+
+
+SENSITIVITY = "published.district_estimated_acr_sensitivity"
+
+
+def collect_sensitivity(con, period: str) -> list[dict[str, Any]]:
+    if not r._exists(con, SENSITIVITY):
+        return []
+    return r._district_order(r._select(con, SENSITIVITY, "select * from {t} where period = ?", [period]))
+
+
+def sensitivity_section(rows: list[dict[str, Any]], data: Any) -> str:
+    """All districts: the default counts beside the counts with estimated albuminuria counted."""
+    region = next((row for row in rows if row["district_code"] == r.TOTAL), None)
+    prev = next((row for row in data.prevalence if row["district_code"] == r.TOTAL), None)
+    cov = next((row for row in data.coverage if row["district_code"] == r.TOTAL), None)
+    if region is None or prev is None or cov is None:
+        return r._missing("sensitivity to estimated albuminuria")
+    lines = (("Persons tested", prev, "persons_tested", "persons_tested_added"),
+             ("Persons with confirmed CKD", prev, "persons_ckd", "persons_ckd_added"),
+             ("Persons with diabetes with an ACR", cov, "with_acr", "with_acr_added"),
+             ("Persons with diabetes with both eGFR and ACR", cov, "with_egfr_and_acr", "with_egfr_and_acr_added"))
+    body = []
+    for label, base, column, added in lines:
+        default, plus = r._count_cell(base, column), r._count_cell(region, added)
+        if default.kind == "num" and plus.kind == "num":
+            total = r._Cell(r._int(int(base[column]) + int(region[added])), f"{column}_with_estimates")
+        else:
+            total = r._Cell("s", f"{column}_with_estimates", "s")
+        default.column, plus.column = f"{column}_default", added
+        body.append((column, r._e(label), [default, plus, total]))
+    head = ["All districts", "Default (estimates left out)", "Added by estimates", "Estimates counted"]
+    caption = f"Counting ACR estimated from a protein ratio or a dipstick, {r._e(data.period_words)}"
+    notes = r._suppression_notes(data, False) + [
+        ("The default counts only measured ACR: a dipstick misses moderately increased albuminuria (A2), and an "
+         "ACR estimated from a protein ratio is uncertain (Sumida et al. 2020). Counted here, a dipstick of "
+         "trace or 1+ stands for A2 and 2+ or more for A3; a day with a measured ACR goes by the measured "
+         "value. Estimates counted = default + added, shown only where both are published.")]
+    return r._table("table-sensitivity", caption, head, body, notes)

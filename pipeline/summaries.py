@@ -19,6 +19,7 @@ SUMMARY_TABLES = (
     "district_screening_coverage",
     "diabetes_acr_strata",  # input of district_undetected_albuminuria (pipeline/undetected.py)
     "region_coverage_trend",
+    "district_estimated_acr_sensitivity",
     "lab_egfr_agreement",
     "source_quality",
     "source_rejection_reasons",

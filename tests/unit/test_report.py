@@ -466,3 +466,13 @@ def test_equation_change_shows_the_published_cells(con, report):
         expected = "s" if any(v is None for v in values) else f"{sum(values):,}"
         assert cells[(district, "below_60_persons_in_force")] == expected, district
     assert "with no change in anyone's kidneys" in report
+
+
+def test_sensitivity_shows_the_default_beside_estimates_counted(con, report):
+    cells = {(d, c): t for d, c, t in parse(report).cells["table-sensitivity"]}
+    tested = published_total(con, "district_ckd_prevalence")["persons_tested"]
+    added = rows(con, "select persons_tested_added from published.district_estimated_acr_sensitivity "
+                      "where period = ? and district_code = 'ALL'", [PERIOD])[0][0]
+    assert cells[("persons_tested", "persons_tested_default")] == f"{tested:,}"
+    shown = cells[("persons_tested", "persons_tested_with_estimates")]
+    assert shown == ("s" if added is None else f"{tested + added:,}")
