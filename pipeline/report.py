@@ -1142,7 +1142,7 @@ td.num, td.s, td.na { text-align: right; font-variant-numeric: tabular-nums; whi
 td.s, td.na { color: var(--muted); }
 tfoot th, tfoot td { font-weight: 700; border-top: 2px solid var(--ink); }
 th[scope=row] { text-align: left; font-weight: 500; white-space: nowrap; }
-td.reasons { font-size: .8rem; white-space: normal; overflow-wrap: anywhere; min-width: 9em; }
+td.reasons { font-size: .8rem; white-space: normal; overflow-wrap: break-word; }
 #table-quality th, #table-quality td { padding: 5px 5px; }
 #table-quality thead th { white-space: normal; }
 td.nowrap { white-space: nowrap; }
@@ -1174,6 +1174,11 @@ footer { margin-top: 30px; font-size: .78rem; color: var(--muted); border-top: 1
   h2, h3 { break-after: avoid; }
   tbody tr:nth-child(even) { background: none; }
   .table-wrap { overflow: visible; }
+  table { font-size: .72rem; }
+  th, td { padding: 3px 4px; }
+  td.num, td.s, td.na, td.nowrap, th[scope=row] { white-space: normal; }
+  td.reasons { overflow-wrap: anywhere; }
+  .ci { display: block; }
 }
 @page { margin: 16mm 14mm; }
 """

@@ -150,24 +150,25 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
 
 def source_style(source_id: str, present: list[str]) -> tuple[str, int]:
     """A lab's colour and marker shape, the same in every report whatever other labs are added:
-    taken from a hash of its id (SHA-256, not Python's salted hash) over the palette's colours x 4
-    shapes. Only when two labs shown together draw the same pair does the later (by id) take the
-    next free pair, so a lab keeps its style unless a new one collides with it and sorts first."""
+    the colour from a hash of its id (SHA-256, not Python's salted hash) over the palette, the
+    shape from the colour. Only when two labs shown together hash to the same colour does the
+    later (by id) take the next free one, so a lab keeps its colour unless a new lab collides
+    with it and sorts first; up to len(PALETTE) labs always get distinct colours."""
     import hashlib
 
-    pairs = [(c, shape) for shape in range(4) for c in r.PALETTE]
+    size = len(r.PALETTE)
 
     def natural(sid: str) -> int:
-        return int.from_bytes(hashlib.sha256(sid.encode("utf-8")).digest()[:8], "big") % len(pairs)
+        return int.from_bytes(hashlib.sha256(sid.encode("utf-8")).digest()[:8], "big") % size
 
     taken: set[int] = set()
     for sid in sorted(set(present) | {source_id}):
         index = natural(sid)
-        while index in taken and len(taken) < len(pairs):
-            index = (index + 1) % len(pairs)
+        while index in taken and len(taken) < size:
+            index = (index + 1) % size
         taken.add(index)
         if sid == source_id:
-            return pairs[index]
+            return r.PALETTE[index], index % 4
     raise AssertionError("unreachable")
 
 
