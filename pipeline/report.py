@@ -46,6 +46,7 @@ READABLE_TABLES = (
     "published.district_equation_change_categories",
     "published.region_coverage_trend",
     "published.district_estimated_acr_sensitivity",
+    "reference.district_shapes",
     "source_quality",
     "source_rejection_reasons",
     "lab_egfr_agreement",
@@ -181,6 +182,7 @@ class _Data:
     undetected: list[dict[str, Any]] = field(default_factory=list)  # pipeline/report_indicators.py
     equation_change: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
     sensitivity: list[dict[str, Any]] = field(default_factory=list)
+    shapes: dict[str, dict] = field(default_factory=dict)  # district boundaries (GeoJSON geometries)
 
     @property
     def demo_key(self) -> bool | None:
@@ -268,6 +270,7 @@ def _collect(con: duckdb.DuckDBPyConnection, period: Period) -> _Data:
         undetected=report_indicators.collect_undetected(con, p),
         equation_change=report_indicators.collect_equation_change(con, p),
         sensitivity=report_indicators.collect_sensitivity(con, p),
+        shapes=report_indicators.collect_shapes(con),
     )  # fmt: skip
 
 
@@ -1154,6 +1157,12 @@ figure { margin: 18px 0; }
 figcaption { font-size: .82rem; color: var(--muted); max-width: 720px; }
 svg.chart { display: block; width: 100%; max-width: 720px; height: auto; font-family: inherit; }
 svg .chart-title { font-size: 14px; font-weight: 700; fill: var(--ink); }
+.maps { display: flex; flex-wrap: wrap; gap: 8px; }
+.maps figure { margin: 8px 0; }
+svg.map { display: block; max-width: 100%; height: auto; font-family: inherit; }
+svg.map .chart-title { font-size: 11.5px; }
+svg.map .legend { font-size: 10.5px; fill: var(--ink); }
+svg.map .map-label { font-size: 9.5px; fill: var(--ink); paint-order: stroke; stroke: #fff; stroke-width: 2.5px; }
 svg .tick, svg .legend, svg .value, svg .category { font-size: 11.5px; fill: var(--ink); }
 svg .value { paint-order: stroke; stroke: #fff; stroke-width: 3px; stroke-linejoin: round; }
 svg .tick { fill: var(--muted); }
@@ -1219,6 +1228,8 @@ def _render(data: _Data) -> str:
         '<p class="lead-caution">Surveillance indicators for populations, not a diagnosis of any '
         'individual: read the <a href="#cautions">cautions</a> and <a href="#methods">methods</a>.</p>',
         '<section id="headline"><h2>Headline, all districts</h2><div class="headline">', *cards, "</div></section>",
+        '<section id="maps"><h2>Districts on the map</h2>', report_indicators.maps_section(data.shapes, data),
+        "</section>",
         '<section id="prevalence"><h2>Chronic kidney disease by district</h2>',
         figure(_share_chart(data), "Dashed line: all districts. Suppressed districts have no bar."),
         _prevalence_section(data), "</section>",

@@ -209,3 +209,140 @@ def sensitivity_section(rows: list[dict[str, Any]], data: Any) -> str:
          "trace or 1+ stands for A2 and 2+ or more for A3; a day with a measured ACR goes by the measured "
          "value. Estimates counted = default + added, shown only where both are published.")]
     return r._table("table-sensitivity", caption, head, body, notes)
+
+
+# --------------------------------------------------------------------------- maps
+
+SHAPES = "reference.district_shapes"
+#: Five steps of viridis (Garnier et al., matplotlib's default colour map, designed to be read
+#: by people with colour-vision deficiency and in grey scale; common practice for choropleths).
+MAP_COLOURS = ("#fde725", "#5ec962", "#21918c", "#3b528b", "#440154")
+NO_DATA = "#d8dee4"
+
+
+def collect_shapes(con) -> dict[str, dict]:
+    import json
+
+    if not r._exists(con, SHAPES):
+        return {}
+    rows = r._select(con, SHAPES, "select district_code, geometry_geojson from {t} order by district_code")
+    return {row["district_code"]: json.loads(row["geometry_geojson"]) for row in rows}
+
+
+def _polygons(geometry: dict) -> list[list[list[list[float]]]]:
+    return geometry["coordinates"] if geometry["type"] == "MultiPolygon" else [geometry["coordinates"]]
+
+
+def _map_values(data: Any) -> list[tuple[str, str, str, dict[str, tuple[float | None, str]]]]:
+    """(map id, title, unit, district -> (value or None, why blank)) for the three maps."""
+    import math
+
+    std: dict[str, tuple[float | None, str]] = {}
+    for row in data.prevalence:
+        code = row["district_code"]
+        if row.get("ckd_per_1000_standardised_flag") == "few_events":
+            std[code] = (None, "too few cases")
+        elif r._rate_blanked("district_ckd_prevalence", row, "ckd_per_1000_standardised", data):
+            std[code] = (None, "suppressed")
+        else:
+            v = row.get("ckd_per_1000_standardised")
+            std[code] = (None, "no data") if v is None else (float(v), "")
+    cov: dict[str, tuple[float | None, str]] = {}
+    for row in data.coverage:
+        if r._rate_blanked("district_screening_coverage", row, "share_with_both", data):
+            cov[row["district_code"]] = (None, "suppressed")
+        else:
+            v = row.get("share_with_both")
+            cov[row["district_code"]] = (None, "no data") if v is None else (100 * float(v), "")
+    und: dict[str, tuple[float | None, str]] = {}
+    for row in data.undetected:
+        table = "district_undetected_albuminuria"
+        if r._rate_blanked(table, row, "expected_a2_a3_without_acr", data) or r._is_blanked(
+                row, "persons_with_diabetes"):
+            und[row["district_code"]] = (None, "suppressed")
+            continue
+        v, n = row.get("expected_a2_a3_without_acr"), row.get("persons_with_diabetes")
+        und[row["district_code"]] = ((None, "no data") if v is None or not n or math.isnan(float(v))
+                                     else (100 * float(v) / float(n), ""))
+    return [("map-ckd-standardised", "Confirmed CKD per 1,000, age-standardised", "per 1,000", std),
+            ("map-coverage", "Diabetes: tested for eGFR and ACR", "%", cov),
+            ("map-undetected", "Expected cases not yet found per 100 with diabetes", "per 100", und)]
+
+
+def _district_map(map_id: str, title: str, unit: str, values: dict[str, tuple[float | None, str]],
+                  shapes: dict[str, dict], data: Any) -> str:
+    import math
+
+    points = [p for g in shapes.values() for poly in _polygons(g) for ring in poly for p in ring]
+    lat0 = sum(p[1] for p in points) / len(points)
+    k = math.cos(math.radians(lat0))
+    xs, ys = [p[0] * k for p in points], [-p[1] for p in points]
+    width, plot_h, top = 320, 230, 28
+    scale = min((width - 20) / (max(xs) - min(xs) or 1), plot_h / (max(ys) - min(ys) or 1))
+
+    def xy(p: list[float]) -> tuple[float, float]:
+        return 10 + (p[0] * k - min(xs)) * scale, top + (-p[1] - min(ys)) * scale
+
+    shown = [v for v, _ in values.values() if v is not None]
+    low, high = (min(shown), max(shown)) if shown else (0.0, 1.0)
+    step = (high - low) / len(MAP_COLOURS) or 1.0
+
+    def colour(v: float) -> str:
+        return MAP_COLOURS[min(len(MAP_COLOURS) - 1, int((v - low) / step))]
+
+    legend_h = 16 * (len(MAP_COLOURS) + 2) + 8
+    height = top + plot_h + 12 + legend_h
+    words = []
+    parts = [(f'<svg class="map" id="{map_id}" viewBox="0 0 {width} {height}" width="{width}" '
+              f'height="{height}" role="img" aria-labelledby="{map_id}-title {map_id}-desc">'),
+             f'<title id="{map_id}-title">{r._e(title)}</title>', "{desc}",
+             (f'<defs><pattern id="{map_id}-hatch" patternUnits="userSpaceOnUse" width="6" height="6" '
+              'patternTransform="rotate(45)"><rect width="6" height="6" fill="#ffffff"/>'
+              f'<line x1="0" y1="0" x2="0" y2="6" stroke="{r.MUTED}" stroke-width="2"/></pattern></defs>'),
+             f'<text class="chart-title" x="0" y="16">{r._e(title)}</text>']
+    labels = []
+    for code in sorted(shapes):
+        value, why = values.get(code, (None, "no data"))
+        name = data.district_name(code)
+        fill = colour(value) if value is not None else (f"url(#{map_id}-hatch)" if why != "no data" else NO_DATA)
+        d = " ".join("M " + " L ".join(f"{x:.1f} {y:.1f}" for x, y in map(xy, ring)) + " Z"
+                     for poly in _polygons(shapes[code]) for ring in poly)
+        text = f"{r._dec(value, 1)} {unit}" if value is not None else why
+        words.append(f"{name} {text}")
+        klass = "district blanked" if value is None else "district"
+        parts.append(f'<path class="{klass}" data-district="{r._e(code)}" d="{d}" fill="{fill}" stroke="#ffffff" '
+                     f'stroke-width="1.2"><title>{r._e(name)}: {r._e(text)}</title></path>')
+        ring = _polygons(shapes[code])[0][0][:-1]
+        cx = sum(xy(p)[0] for p in ring) / len(ring)
+        cy = sum(xy(p)[1] for p in ring) / len(ring)
+        mark = {"suppressed": "s", "too few cases": "r"}.get(why, "–")
+        label = code if value is not None else f"{code} {mark}"
+        labels.append(f'<text class="map-label" x="{cx:.1f}" y="{cy + 4:.1f}" text-anchor="middle">{r._e(label)}</text>')
+    parts += labels
+    y = top + plot_h + 20
+    bins = [(low + i * step, low + (i + 1) * step) for i in range(len(MAP_COLOURS))] if shown else []
+    for (a, b), c in zip(bins, MAP_COLOURS):
+        parts.append(f'<rect x="10" y="{y - 10}" width="14" height="11" fill="{c}"/>'
+                     f'<text class="legend" x="30" y="{y}">{r._dec(a, 1)} to {r._dec(b, 1)} {r._e(unit)}</text>')
+        y += 16
+    parts.append(f'<rect x="10" y="{y - 10}" width="14" height="11" fill="url(#{map_id}-hatch)" stroke="{r.MUTED}" '
+                 'stroke-width="0.5"/><text class="legend" x="30" y="' + f'{y}">blanked: s suppressed, r too few '
+                 "cases</text>")
+    y += 16
+    parts.append(f'<rect x="10" y="{y - 10}" width="14" height="11" fill="{NO_DATA}"/>'
+                 f'<text class="legend" x="30" y="{y}">no data</text>')
+    desc = f'<desc id="{map_id}-desc">Map of the districts: {r._e(title)}. {r._e("; ".join(words))}.</desc>'
+    parts[2] = desc
+    parts.append("</svg>")
+    return "".join(parts)
+
+
+def maps_section(shapes: dict[str, dict], data: Any) -> str:
+    if not shapes:
+        return ('<p class="notice">No district boundaries are configured (config/regions/districts.geojson): '
+                "no maps.</p>")
+    maps = [_district_map(i, t, u, v, shapes, data) for i, t, u, v in _map_values(data)]
+    return ('<div class="maps">' + "".join(f"<figure>{m}</figure>" for m in maps) + "</div>"
+            '<p class="table-notes">Equal steps between the lowest and highest value shown on each map. Hatched: '
+            "blanked by disclosure control (s) or, for the standardised rate, too few persons with confirmed CKD "
+            "for a reliable rate (r). Boundaries: config/regions/districts.geojson.</p>")

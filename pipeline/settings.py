@@ -508,6 +508,9 @@ def load_settings(config_dir: Path | str = "config") -> Settings:
                 f"{path}: key 'test_codes': LOINC {unknown} not listed in analytes.yaml"
             )
     districts, population = _read_region(config_dir)
+    from pipeline.region_map import read_district_shapes  # here: it imports this module
+
+    read_district_shapes(config_dir, districts)  # every district a shape, every shape a district
     return Settings(
         config_dir=config_dir,
         pipeline=pipeline,

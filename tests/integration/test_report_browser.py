@@ -392,13 +392,18 @@ def test_new_sections_render_and_every_table_fits_the_page(chromium, report, tmp
             "    rows: t.rows.length}])),"
             " page: document.querySelector('main').getBoundingClientRect().right,"
             " reasons: [...document.querySelectorAll('td.reasons')].map(c => c.getBoundingClientRect().right),"
-            " headings: [...document.querySelectorAll('h2, h3')].map(h => h.textContent)})"))
+            " headings: [...document.querySelectorAll('h2, h3')].map(h => h.textContent),"
+            " maps: [...document.querySelectorAll('svg.map')].map(m => [m.id, m.getBBox().width,"
+            "   m.querySelectorAll('path.district').length, m.querySelectorAll('path.blanked').length])})"))
     finally:
         browser.close()
     for table in NEW_TABLES:
         assert table in state["tables"] and state["tables"][table]["rows"] > 2, table
     assert "Expected cases not yet found" in state["headings"]
     assert "If the eGFR equation changed" in state["headings"]
+    # three maps of the 12 districts, drawn, with hatched (blanked) districts among them
+    assert [m[0] for m in state["maps"]] == ["map-ckd-standardised", "map-coverage", "map-undetected"]
+    assert all(width > 200 and districts == 12 and blanked >= 1 for _, width, districts, blanked in state["maps"])
     for table, box in state["tables"].items():
         assert box["right"] <= state["page"] + 1, (media, table, box, state["page"])
     assert state["reasons"] and max(state["reasons"]) <= state["page"] + 1

@@ -476,3 +476,22 @@ def test_sensitivity_shows_the_default_beside_estimates_counted(con, report):
     assert cells[("persons_tested", "persons_tested_default")] == f"{tested:,}"
     shown = cells[("persons_tested", "persons_tested_with_estimates")]
     assert shown == ("s" if added is None else f"{tested + added:,}")
+
+
+def test_maps_colour_the_published_values_and_hatch_the_blanks(con, report):
+    """The coverage map: a district whose published share is blank is hatched and labelled 's';
+    the others are coloured by equal steps between the lowest and highest published share (the
+    lowest in the first colour, the highest in the last)."""
+    svg = re.search(r'<svg class="map" id="map-coverage".*?</svg>', report, re.S).group(0)
+    fills = dict(re.findall(r'data-district="([^"]+)" d="[^"]*" fill="([^"]+)"', svg))
+    published = {d: v for d, v in rows(con, "select district_code, share_with_both from "
+                                            "published.district_screening_coverage where period = ? and "
+                                            "district_code like 'WF%'", [PERIOD])}
+    assert set(fills) == set(published)
+    blank = [d for d, v in published.items() if v is None]
+    assert blank, "the samples have a district whose coverage is suppressed"
+    for d in blank:
+        assert fills[d] == "url(#map-coverage-hatch)" and f">{d} s</text>" in svg
+    shown = {d: v for d, v in published.items() if v is not None}
+    lowest, highest = min(shown, key=shown.get), max(shown, key=shown.get)
+    assert fills[lowest] == "#fde725" and fills[highest] == "#440154"
