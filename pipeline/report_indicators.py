@@ -20,8 +20,19 @@ def collect_undetected(con, period: str) -> list[dict[str, Any]]:
     return r._district_order(r._select(con, UNDETECTED, "select * from {t} where period = ?", [period]))
 
 
+#: Counts shown as district_screening_coverage publishes them: never empty unless blanked there
+#: (this table's own ``suppression`` column does not mark them).
+COPIED = ("persons_with_diabetes", "with_acr")
+
+
+def _copied_blank(row: dict[str, Any]) -> bool:
+    return any(row.get(c) is None for c in COPIED)
+
+
 def _expected_cell(row: dict[str, Any], data: Any, ci: bool) -> r._Cell:
     table = "district_undetected_albuminuria"
+    if _copied_blank(row):
+        return r._Cell("s", "expected_a2_a3_without_acr", "s")
     cell = r._rate_cell(table, row, "expected_a2_a3_without_acr", data, lambda v: r._dec(v, 1), ci)
     if cell.kind == "na" and row.get("persons_without_acr") not in (None, 0):
         cell.text = "not estimable"
@@ -39,9 +50,12 @@ def undetected_section(rows: list[dict[str, Any]], data: Any) -> str:
             "Expected cases not yet found (A2/A3 among those without ACR)"]
     body = []
     for row in rows:
-        cells = [r._count_cell(row, "persons_with_diabetes"),
+        diabetes = (r._Cell("s", "persons_with_diabetes", "s") if row.get("persons_with_diabetes") is None
+                    else r._count_cell(row, "persons_with_diabetes"))
+        cells = [diabetes,
                  r._count_cell(row, "persons_without_acr"),
-                 r._rate_cell(table, row, "share_a2_a3_of_tested", data, r._share_number, False),
+                 (r._Cell("s", "share_a2_a3_of_tested", "s") if row.get("with_acr") is None
+                  else r._rate_cell(table, row, "share_a2_a3_of_tested", data, r._share_number, False)),
                  _expected_cell(row, data, ci)]
         body.append((row["district_code"], r._district_label(data, row["district_code"]), cells))
     window = int(data.threshold("summaries", "window_months", 12))
@@ -257,8 +271,7 @@ def _map_values(data: Any) -> list[tuple[str, str, str, dict[str, tuple[float | 
     und: dict[str, tuple[float | None, str]] = {}
     for row in data.undetected:
         table = "district_undetected_albuminuria"
-        if r._rate_blanked(table, row, "expected_a2_a3_without_acr", data) or r._is_blanked(
-                row, "persons_with_diabetes"):
+        if r._rate_blanked(table, row, "expected_a2_a3_without_acr", data) or _copied_blank(row):
             und[row["district_code"]] = (None, "suppressed")
             continue
         v, n = row.get("expected_a2_a3_without_acr"), row.get("persons_with_diabetes")

@@ -495,3 +495,15 @@ def test_maps_colour_the_published_values_and_hatch_the_blanks(con, report):
     shown = {d: v for d, v in published.items() if v is not None}
     lowest, highest = min(shown, key=shown.get), max(shown, key=shown.get)
     assert fills[lowest] == "#fde725" and fills[highest] == "#440154"
+
+
+def test_a_count_blanked_in_coverage_shows_as_suppressed_beside_it(warehouse):
+    """persons_with_diabetes and with_acr of the expected-cases table are coverage's, blank where
+    coverage blanks them even when this table's own counts are all published: 's', never '–'."""
+    mem = restricted_copy(warehouse)
+    mem.execute("update published.district_undetected_albuminuria set with_acr = null, "
+                "expected_a2_a3_without_acr = null, suppression = '' where period = ? and district_code = 'WF01'",
+                [PERIOD])
+    cells = {(d, c): t for d, c, t in parse(build_report_html(mem, PERIOD)).cells["table-undetected"]}
+    assert cells[("WF01", "expected_a2_a3_without_acr")] == "s"
+    assert cells[("WF01", "share_a2_a3_of_tested")] == "s"
