@@ -276,7 +276,8 @@ PUBLISHED_TABLES = (
     PublishedTable(
         "district_equation_change",
         keys=("period", "district_code", "comparison"),
-        counts=("persons_compared", "moved_to_lower_gfr_category", "moved_to_higher_gfr_category"),
+        counts=("persons_compared", "moved_to_lower_gfr_category", "moved_to_higher_gfr_category",
+                "persons_ckd_in_force", "persons_ckd_comparison"),
         rates={},
         levels=(("district_code",),),
     ),

@@ -19,9 +19,11 @@ comparison) per district; the published ``district_equation_change`` gives, per 
 comparison, the counts by G category under each side, persons below 60 under each, and the
 persons moved to a higher or lower category.
 
-Not covered: confirmed CKD under the other equation (it needs every daily eGFR of a person's
-history recomputed and the trajectory rules run again); children (the CKD-EPI equations are for
-adults). Equation change is an artefact of estimation, not of disease: this table says how much
+Confirmed CKD under the creatinine comparison: every known eGFR the adult equation in force made
+is recomputed (:func:`daily_egfr_under`) and sql/marts/kidney_events.sql runs again on those
+daily values (the ACRs as they are); counted among the adults compared (:func:`ckd_counts`).
+Not covered: children (the CKD-EPI equations are for adults); confirmed CKD for the
+creatinine-cystatin C comparison. Equation change is an artefact of estimation, not of disease: this table says how much
 of a change in prevalence a switch would cause by itself.
 """
 
@@ -103,3 +105,35 @@ def summary(matrix: pl.DataFrame) -> tuple[pl.DataFrame, pl.DataFrame]:
                          "moved_to_lower_gfr_category", "moved_to_higher_gfr_category")
     cells = cells.sort(first, "district_code", "comparison", pl.col("g_category").replace_strict(rank))
     return totals, cells
+
+
+def daily_egfr_under(history: pl.DataFrame, in_force: str, comparison: str) -> pl.DataFrame:
+    """Daily eGFRs (person, day, mean) with every creatinine eGFR made by the adult equation in
+    force recomputed under ``comparison``; other eGFRs (children's equations, cystatin C, the
+    creatinine-cystatin C equation on days with both markers) are kept as they are: a switch of
+    the adult creatinine equation does not change them."""
+    female = pl.when(pl.col("sex") == "F").then(True).when(pl.col("sex") == "M").then(False)
+    scr, age = pl.col("creatinine_mg_dl"), pl.col("age_years").cast(pl.Float64)
+    switched = (pl.col("analyte") == "creatinine") & (pl.col("egfr_equation") == in_force)
+    rows = history.with_columns(
+        pl.when(switched).then(EQUATIONS[comparison](scr, age, female, None)).otherwise(pl.col("egfr"))
+        .alias("egfr_other"))
+    return (rows.filter(pl.col("egfr_other").is_not_null())
+            .group_by("person_key", "collected_date")
+            .agg(pl.col("egfr_other").mean().alias("value"), pl.len().cast(pl.Int64).alias("n_results"))
+            .select("person_key", pl.lit("egfr").alias("measure"), pl.col("collected_date").alias("day"),
+                    "value", "n_results"))
+
+
+def ckd_counts(persons: pl.DataFrame, ckd_in_force: set[str], ckd_other: set[str], comparison: str) -> pl.DataFrame:
+    """Per district and 'ALL': of the adults compared under ``comparison``, persons with
+    confirmed CKD under the equation in force and under the comparison."""
+    mine = persons.filter(pl.col("comparison") == comparison).select(
+        "district_code",
+        pl.col("person_key").is_in(list(ckd_in_force)).alias("ckd_in_force"),
+        pl.col("person_key").is_in(list(ckd_other)).alias("ckd_other"))
+    both = pl.concat([mine, mine.with_columns(pl.lit("ALL").alias("district_code"))])
+    return both.group_by("district_code").agg(
+        pl.col("ckd_in_force").sum().cast(pl.Int64).alias("persons_ckd_in_force"),
+        pl.col("ckd_other").sum().cast(pl.Int64).alias("persons_ckd_comparison"),
+    ).with_columns(pl.lit(comparison).alias("comparison"))

@@ -117,8 +117,8 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
     window = int(data.threshold("summaries", "window_months", 12))
     lead = (f"<p>Each adult's latest creatinine eGFR in the {window} months to {r._e(data.end_words)}, under the "
             f"equation in force ({r._e(names.get(in_force, in_force))}) and under another. A switch of equation "
-            "moves these counts by itself, with no change in anyone's kidneys. Confirmed CKD is not recomputed "
-            "under the other equation.</p>")
+            "moves these counts by itself, with no change in anyone's kidneys. Confirmed CKD under the other "
+            "creatinine equation: every adult creatinine eGFR recomputed and the CKD rules run again.</p>")
     out = [lead]
     for comparison in comparisons:
         label = names.get(comparison, comparison)
@@ -151,9 +151,11 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
         rows.append((t["district_code"], r._district_label(data, t["district_code"]), [
             r._count_cell(t, "persons_compared"), _below_60(mine, "persons_in_force"),
             _below_60(mine, "persons_comparison"), r._count_cell(t, "moved_to_lower_gfr_category"),
-            r._count_cell(t, "moved_to_higher_gfr_category")]))
+            r._count_cell(t, "moved_to_higher_gfr_category"), r._count_cell(t, "persons_ckd_in_force"),
+            r._count_cell(t, "persons_ckd_comparison")]))
     head = ["District", "Adults compared", "Below 60, in force", "Below 60, other equation",
-            "Moved to a lower category", "Moved to a higher category"]
+            "Moved to a lower category", "Moved to a higher category", "Confirmed CKD, in force",
+            "Confirmed CKD, other equation"]
     caption = f"By district: {r._e(names.get(main, main))} against the equation in force, {r._e(data.period_words)}"
     notes = r._suppression_notes(data, False) + [
         ("Below 60 is the sum of the published G3a–G5 counts; shown as <b>s</b> when any of them is suppressed. "

@@ -5,13 +5,15 @@ from __future__ import annotations
 import duckdb
 import polars as pl
 
-from pipeline.equation_impact import COMBINED, daily_comparison, reclassification, summary
+from pipeline.equation_impact import (COMBINED, ckd_counts, daily_comparison, daily_egfr_under, reclassification,
+                                      summary)
+from pipeline.linkage import event_params
 from pipeline.periods import Period
 from pipeline.settings import Settings
 from pipeline.statistics import collapse_weights, standardise_frame, with_wilson_interval
 from pipeline.undetected import age_group_labels, estimate_undetected
 from pipeline.warehouse import (add_missing_columns, build_table, drop_relation, fetch_frame,
-                                replace_period_frame, replace_period_rows)
+                                replace_period_frame, replace_period_rows, sql_over, with_frame)
 
 #: Internal summary tables, in the order they are built (each is sql/reports/<name>.sql).
 SUMMARY_TABLES = (
@@ -129,6 +131,27 @@ def build_equation_change(con: duckdb.DuckDBPyConnection, settings: Settings, pe
     matrix = reclassification(persons, period.label, settings.pipeline.measures.adult_equation,
                               [comparison, COMBINED])
     totals, categories = summary(matrix)
+    # confirmed CKD under the comparison: every known eGFR recomputed, the event rules run again
+    build_table(con, "equation_comparison_history", "equation_comparison_history", params, temporary=True)
+    history = fetch_frame(con, "select * from equation_comparison_history")
+    con.execute("drop table equation_comparison_history")
+    daily = pl.concat([daily_egfr_under(history, settings.pipeline.measures.adult_equation, comparison),
+                       fetch_frame(con, "select person_key, measure, day, value, n_results::bigint as n_results "
+                                        "from int_daily_values_averaged where measure = 'acr'")], how="vertical_relaxed")
+    del history
+    with_frame(con, daily, "create or replace temp table equation_daily_values as select * from _frame")
+    rules = event_params(settings, period)
+    query = sql_over("kidney_events", {"int_daily_values_averaged": "select * from equation_daily_values"})
+    used = {k: v for k, v in rules.items() if f"${k}" in query}
+    other = {k for (k,) in con.execute(f"select distinct person_key from ({query}) where event_type = 'ckd' "
+                                       "and event_status = 'confirmed'", used).fetchall()}
+    con.execute("drop table equation_daily_values")
+    in_force = {k for (k,) in con.execute("select person_key from person_status where period = ? "
+                                          "and has_confirmed_ckd", [period.label]).fetchall()}
+    ckd = ckd_counts(persons, in_force, other, comparison)
+    totals = totals.join(ckd, on=["district_code", "comparison"], how="left", maintain_order="left").with_columns(
+        pl.when(pl.col("comparison") == comparison).then(pl.col(c).fill_null(0)).alias(c)
+        for c in ("persons_ckd_in_force", "persons_ckd_comparison"))
     counts = {}
     for name, frame in (("equation_reclassification", matrix), ("district_equation_change", totals),
                         ("district_equation_change_categories", categories)):

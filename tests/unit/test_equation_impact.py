@@ -93,3 +93,47 @@ def test_cystatin_days_compare_the_combined_equation():
         pl.when(pl.col("person_key") == "B").then(85.0).otherwise(pl.col("egfr")).alias("egfr"))
     persons = daily_comparison(frame, "ckd_epi_2009_creatinine").filter(pl.col("comparison") == COMBINED)
     assert persons.select("person_key", "g_in_force", "g_comparison").rows() == [("B", "G1", "G2")]
+
+
+def test_confirmed_ckd_under_the_comparison_by_hand(tmp_path, small_config):
+    """A woman of 70 (born 1955, tested in 2025) with creatinine 1.0 mg/dL on three days spanning
+    111 days: CKD-EPI 2021 gives 60.6 each time (not below 60: no CKD); CKD-EPI 2009 gives 57.0
+    (worked out in inputs() above), below 60 for more than 90 days: confirmed CKD (KDIGO 2012)."""
+    from tests.conftest import rows, run_month, write_inbox
+
+    header = "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status"
+    lines = [f"TOKQ1,1955,F,WF01,S{i},{day},2160-0,1.0,mg/dL,final"
+             for i, day in enumerate(["2025-03-01", "2025-04-15", "2025-06-20"])]
+    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join([header, *lines]) + "\n"})
+    with run_month(small_config, inbox, tmp_path / "out", period="2026-01") as con:
+        got = rows(con, "select persons_compared, persons_ckd_in_force, persons_ckd_comparison, "
+                        "moved_to_lower_gfr_category from main.district_equation_change "
+                        "where district_code = 'ALL' and comparison = 'ckd_epi_2009_creatinine'")
+        assert got == [(1, 0, 1, 1)]
+        matrix = rows(con, "select g_in_force, g_comparison from main.equation_reclassification "
+                           "where district_code = 'ALL' and comparison = 'ckd_epi_2009_creatinine' and persons = 1")
+        assert matrix == [("G2", "G3a")]
+        # the creatinine-cystatin C comparison compares no one here and counts no CKD
+        assert rows(con, "select persons_compared, persons_ckd_comparison from main.district_equation_change "
+                         f"where district_code = 'ALL' and comparison = '{COMBINED}'") == [(0, None)]
+
+
+def test_the_same_equation_on_both_sides_changes_nothing(tmp_path, small_config):
+    """Identity: compared with itself, the equation in force moves no one and the confirmed CKD
+    recomputed through the rules equals person_status's (the same rules on the same values)."""
+    from tests.conftest import edit_pipeline_yaml, rows, run_month, write_inbox
+
+    edit_pipeline_yaml(small_config, "summaries", "equation_comparison", "ckd_epi_2021_creatinine")
+    header = "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status"
+    days = ["2025-03-01", "2025-04-15", "2025-06-20"]
+    lines = [f"TOK{p},{1950 + i},{'FM'[i % 2]},WF0{i % 4 + 1},S{p}{j},{day},2160-0,{scr},mg/dL,final"
+             for i, (p, scr) in enumerate([("A", 1.0), ("B", 1.6), ("C", 2.4), ("D", 0.8)])
+             for j, day in enumerate(days)]
+    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join([header, *lines]) + "\n"})
+    with run_month(small_config, inbox, tmp_path / "out", period="2026-01") as con:
+        got = rows(con, "select persons_compared, moved_to_lower_gfr_category, moved_to_higher_gfr_category, "
+                        "persons_ckd_in_force, persons_ckd_comparison from main.district_equation_change "
+                        "where district_code = 'ALL' and comparison = 'ckd_epi_2021_creatinine'")
+        ckd = rows(con, "select count(*) from person_status where period = '2026-01' and has_confirmed_ckd")[0][0]
+        assert ckd >= 2  # the check has something to compare (B and C stay below 60 for 111 days)
+        assert got == [(4, 0, 0, ckd, ckd)]
