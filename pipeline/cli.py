@@ -14,6 +14,7 @@ from typing import Annotated, Optional
 
 import typer
 from rich.console import Console
+from rich.markup import escape
 from rich.table import Table
 
 from pipeline.periods import Period
@@ -51,14 +52,22 @@ def _stage_line(name: str, seconds: float, text: str) -> None:
 
 
 def _print_summary(summary: dict, out: Path) -> None:
-    table = Table(title=f"Period {summary['period']}: rows per source", title_justify="left")
-    cols = ("read", "accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending")
+    table = Table(title=f"Period {summary['period']}: rows per source (files ingested for this period)",
+                  title_justify="left")
+    cols = ("files", "read", "accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending", "held_back")
     table.add_column("source")
     for c in cols:
-        table.add_column(c, justify="right")
+        table.add_column(c.replace("_", " "), justify="right")
     for source, counts in summary["sources"].items():
         table.add_row(source, *(f"{counts.get(c, 0):,}" for c in cols))
+    if not summary["sources"]:
+        table.add_row("(no file was ingested for this period)", *("" for _ in cols))
     console.print(table)
+    totals = summary.get("warehouse_sources") or {}
+    if totals:
+        console.print("  warehouse totals, all periods (not this period's): " + "; ".join(
+            f"{s} read {c.get('read', 0):,}, accepted {c.get('accepted', 0):,}" for s, c in totals.items()))
+    _print_period_checks(summary)
     console.print(f"  persons with results up to {summary['period']}: {summary['persons']:,}")
     h = summary.get("headline", {})
     if h.get("persons_tested_12m") is not None:
@@ -73,18 +82,73 @@ def _print_summary(summary: dict, out: Path) -> None:
             f"  people with diabetes: {h['persons_with_diabetes']:,}; with both eGFR and ACR in 12 months: "
             f"{h.get('diabetes_with_egfr_and_acr') or 0:,}" + (f" ({share:.1%})" if share is not None else "")
         )
+    if summary.get("indicators_lack"):
+        console.print("  [yellow]these indicators lack[/] " + ", ".join(summary["indicators_lack"])
+                      + " (see the notices above and below)")
     for path, message in summary["held_back_files"].items():
         console.print(f"  [yellow]held back file[/] {path}: {message}")
     for source, message in summary["held_back_sources"].items():
         console.print(f"  [yellow]held back source[/] {source}: {message}")
+    for source, message in (summary.get("config_drift") or {}).items():
+        console.print(f"  [bold yellow]config changed[/] {message}", soft_wrap=True)
+    for period, n in (summary.get("late_results") or {}).items():
+        console.print(f"  [yellow]late results[/] for published period {period}: {n:,} received now that would "
+                      f"change it if revised ('kidneysurv run --period {period} --revise \"...\"')")
+    rev = summary.get("revision") or {}
+    if rev.get("reason"):
+        console.print(f"  [yellow]revision {rev['number']}[/] of {summary['period']} (revision {rev['previous']} "
+                      f"kept in {out / summary['period'] / 'revisions' / str(rev['previous'])}/): {rev['reason']}")
     console.print(f"  warehouse: {out / 'surveillance.duckdb'}")
     console.print(f"  exports:   {out / summary['period']}/")
     if summary.get("demo_key"):
         console.print("  [dim]made with the public DEMO pseudonymisation key: not for real data[/]")
 
 
+def _print_period_checks(summary: dict) -> None:
+    """What the run says about its own period: missing sources, rows it cannot see, codes the
+    source configs do not map (pipeline/period_checks.py, pipeline/validate.py)."""
+    hold = summary.get("missing_sources_policy") == "hold"
+    for source, message in (summary.get("missing_sources") or {}).items():
+        word = "[red]missing source (holds the period)[/]" if hold else "[yellow]missing source[/]"
+        console.print(f"  {word} {source}: {message}", soft_wrap=True)
+    for line in summary.get("rows_outside_period_notes") or []:
+        console.print(f"  [yellow]rows outside the period[/] {line}", soft_wrap=True)
+    for source, fields in (summary.get("unmapped_codes") or {}).items():
+        for field_name, info in fields.items():
+            values = escape(", ".join(f"{v!r} x{n:,}" for v, n in list(info["values"].items())[:8]))
+            console.print(f"  [yellow]unmapped {field_name}[/] {source}: {info['rows']:,} rows ({values}); "
+                          f"map them under '{info['config_key']}' in config/sources/{source}.yaml", soft_wrap=True)
+
+
+def _check_key_before_start(out: Path, demo: bool) -> None:
+    """The key's strength, and whether it is the warehouse's (before Prefect starts, so a wrong
+    key costs nothing); the flow checks again inside the run's transaction."""
+    import duckdb
+
+    from pipeline.pseudonymise import verify_warehouse_key
+    from pipeline.warehouse import WAREHOUSE_FILE
+
+    key = resolve_key(demo=demo)
+    path = out / WAREHOUSE_FILE
+    if not path.exists():
+        return
+    try:
+        con = duckdb.connect(str(path), read_only=True)
+    except duckdb.Error:
+        return  # in use or not ours: the run itself checks, under the lock
+    try:
+        present = con.execute("select count(*) from duckdb_tables() where table_name = 'key_check' "
+                              "and schema_name = 'main'").fetchall()[0][0]
+        if present and con.execute("select count(*) from key_check").fetchall()[0][0]:
+            verify_warehouse_key(con, key)
+    finally:
+        con.close()
+
+
 def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose: bool,
-         executor: str | None = None) -> int:
+         executor: str | None = None, revise: str | None = None) -> int:
+    from pipeline.revisions import RevisionNeeded
+
     try:
         Period.parse(period)
         settings = load_settings(config)
@@ -92,8 +156,10 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
         _fail(str(exc))
     if not inbox.is_dir():
         _fail(f"{inbox}: inbox folder not found")
+    if revise is not None and not revise.strip():
+        _fail("--revise needs a reason, in words (it is shown in the report of the revised period)")
     try:
-        resolve_key(demo=demo)  # before Prefect starts: a missing key is a usage error
+        _check_key_before_start(out, demo)  # before Prefect starts: a missing, weak or wrong key
     except KeyMissing as exc:
         _fail(str(exc))
     try:
@@ -109,14 +175,18 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
             try:
                 summary = flows.monthly_surveillance(
                     period=period, config_dir=str(config), inbox=str(inbox), out=str(out), demo=demo,
-                    executor=executor,
+                    executor=executor, revise=revise,
                 )
             except KeyMissing as exc:
                 _fail(str(exc))
+            except RevisionNeeded as exc:
+                _fail(str(exc))
+            if summary.get("revision_refused"):
+                _fail(summary["revision_refused"])
             console.print(f"  {'total':<10} {time.perf_counter() - started:6.1f} s (with Prefect)")
             _print_summary(summary, out)
-            held = summary["held_back_sources"] or summary["held_back_files"]
-            return EXIT_HELD_BACK if held else EXIT_OK
+            held = summary["held_back_sources"] or summary["held_back_files"] or summary.get("config_drift")
+            return max(int(summary.get("exit_code") or 0), EXIT_HELD_BACK if held else EXIT_OK)
     except RunLocked as exc:
         err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
         raise typer.Exit(EXIT_LOCKED) from None
@@ -130,10 +200,11 @@ def run(
     out: Annotated[Path, typer.Option(help="Output folder: warehouse and exports.")] = Path("out"),
     verbose: Annotated[bool, typer.Option("--verbose", help="Show Prefect's own log lines.")] = False,
     executor: Annotated[Optional[Executor], typer.Option(help="Person-level work: local, shards or dask (default: config).")] = None,
+    revise: Annotated[Optional[str], typer.Option("--revise", metavar="REASON", help="Publish a revision of an already published period, with the reason shown in its report.")] = None,
 ) -> None:
     """Ingest what is new in the inbox and publish the indicators for one month."""
     raise typer.Exit(_run(period, config, inbox, out, demo=False, verbose=verbose,
-                          executor=executor.value if executor else None))
+                          executor=executor.value if executor else None, revise=revise))
 
 
 @app.command()
@@ -160,6 +231,7 @@ def backfill(
     inbox: Annotated[Path, typer.Option(help="Inbox folder.")] = Path("sample_extracts"),
     out: Annotated[Path, typer.Option(help="Output folder.")] = Path("out"),
     force: Annotated[bool, typer.Option("--force", help="Run months already published again.")] = False,
+    revise: Annotated[Optional[str], typer.Option("--revise", metavar="REASON", help="With --force: publish a revision where a month's figures change.")] = None,
     demo_key: Annotated[bool, typer.Option("--demo-key", help="Use the public demo key (samples only).")] = False,
     verbose: Annotated[bool, typer.Option("--verbose", help="Show Prefect's own log lines.")] = False,
 ) -> None:
@@ -180,9 +252,66 @@ def backfill(
             console.print(f"[{i}/{len(plan)}] {period}: already published, skipped (--force runs it again)")
             continue
         console.print(f"[{i}/{len(plan)}] {period}")
-        code = _run(period.label, config, inbox, out, demo=demo_key, verbose=verbose)
+        code = _run(period.label, config, inbox, out, demo=demo_key, verbose=verbose, revise=revise)
         worst = max(worst, code)
     raise typer.Exit(worst)
+
+
+@app.command()
+def reprocess(
+    source_id: Annotated[str, typer.Argument(help="Source id, as in config/sources/<id>.yaml.")],
+    from_month: Annotated[Optional[str], typer.Option("--from-month", metavar="YYYY-MM", help="Only the files of extract months from this one on.")] = None,
+    file: Annotated[Optional[str], typer.Option("--file", help="Only this file (path in the inbox).")] = None,
+    apply: Annotated[bool, typer.Option("--apply", help="Apply it (default: a dry run that shows the difference).")] = False,
+    config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
+    inbox: Annotated[Path, typer.Option(help="Inbox folder.")] = Path("sample_extracts"),
+    out: Annotated[Path, typer.Option(help="Output folder: warehouse and exports.")] = Path("out"),
+    demo_key: Annotated[bool, typer.Option("--demo-key", help="Use the public demo key (samples only).")] = False,
+) -> None:
+    """Read a source's stored files again under its current config and replace what they gave
+    (old rows kept as superseded versions). A dry run unless --apply; publish the periods it
+    changes with 'run --period P --revise REASON'."""
+    from pipeline.reprocess import ReprocessRefused, reprocess_source
+
+    try:
+        if from_month:
+            Period.parse(from_month)
+        load_settings(config).source(source_id)
+    except (ValueError, ConfigError) as exc:
+        _fail(str(exc))
+    try:
+        r = reprocess_source(config, inbox, out, source_id, from_month=from_month, file=file, apply=apply,
+                             demo=demo_key)
+    except (ReprocessRefused, KeyMissing) as exc:
+        _fail(str(exc))
+    except RunLocked as exc:
+        err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
+        raise typer.Exit(EXIT_LOCKED) from None
+    if r.skipped_current:
+        console.print(f"{len(r.skipped_current)} file(s) of {source_id} already made under the current config "
+                      f"({r.config_after[:12]}): left as they are")
+    if not r.files:
+        console.print(f"{source_id}: nothing to reprocess")
+        raise typer.Exit(EXIT_OK)
+    verb = "reprocessed" if r.applied else "would be reprocessed (dry run; --apply applies it)"
+    console.print(f"{source_id}: {len(r.files)} file(s) {verb} under config {r.config_after[:12]}")
+    table = Table(title="rows per outcome", title_justify="left")
+    for c in ("outcome", "before", "after", "change"):
+        table.add_column(c, justify="left" if c == "outcome" else "right")
+    for name, (b, a) in r.outcomes.items():
+        table.add_row(name, f"{b:,}", f"{a:,}", f"{a - b:+,}")
+    console.print(table)
+    for reason, (b, a) in r.reasons.items():
+        if a != b:
+            console.print(f"  rejected {reason}: {b:,} -> {a:,} ({a - b:+,})")
+    for other, pairs in r.other_sources.items():
+        changes = ", ".join(f"{k} {b:,} -> {a:,}" for k, (b, a) in pairs.items() if a != b)
+        console.print(f"  other source {other}: {changes}")
+    if r.periods:
+        console.print(f"  published periods it reaches: {', '.join(r.periods)}; "
+                      + ("publish each with" if r.applied else "after --apply, publish each with")
+                      + " 'kidneysurv run --period P --revise \"reason\"'")
+    raise typer.Exit(EXIT_OK)
 
 
 @app.command()
@@ -219,22 +348,27 @@ def sources_check(
     file: Annotated[Path, typer.Argument(help="An extract file (for FHIR: the Observation.ndjson).")],
     config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
     examples: Annotated[int, typer.Option(help="Examples shown per reason.")] = 3,
+    period: Annotated[str | None, typer.Option(help="Month the file would be run in, YYYY-MM (default: the month in its name).")] = None,
 ) -> None:
-    """Show what a file would give: rows per outcome and reason, with file:line examples.
+    """Show what a file would give: rows per outcome and reason, with file:line examples, code
+    values the source config does not map, and the rows the period would not count.
 
-    Reads the file into a throw-away in-memory database: the warehouse is not touched.
+    Reads the file into a throw-away in-memory database: the warehouse is not touched. Exits 1
+    when a run would hold the file back or leave rows unmapped.
     """
     from pipeline.checks import check_file
 
     try:
         settings = load_settings(config)
-        settings.source(source_id)
-    except ConfigError as exc:
+        source = settings.source(source_id)
+        if period is not None:
+            Period.parse(period)
+    except (ConfigError, ValueError) as exc:
         _fail(str(exc))
     if not file.is_file():
         _fail(f"{file}: file not found")
     try:
-        report = check_file(settings, source_id, file)
+        report = check_file(settings, source_id, file, period)
     except OSError as exc:
         err.print(f"[bold red]file held back:[/] {file}: cannot be read ({exc.strerror or exc})", soft_wrap=True)
         raise typer.Exit(EXIT_HELD_BACK) from None
@@ -245,10 +379,28 @@ def sources_check(
     for outcome, n in report.outcomes.items():
         console.print(f"  {outcome:<11} {n:>8,}")
     for reason, (n, lines) in report.reasons.items():
-        console.print(f"  rejected {reason}: {n:,}")
+        hint = ""
+        if reason in ("invalid_date", "future_date"):
+            hint = (f" (date_format in config/sources/{source_id}.yaml: '{source.date_format}')" if source.date_format
+                    else f" (no date_format in config/sources/{source_id}.yaml: ISO 8601, YYYY-MM-DD, expected)")
+        console.print(f"  rejected {reason}: {n:,}{hint}", soft_wrap=True)
         for line_no, message in lines[:examples]:
             console.print(f"      {file}:{line_no}: {message}", soft_wrap=True)
-    raise typer.Exit(EXIT_OK)
+    for name, info in report.unmapped.items():
+        values = escape(", ".join(f"{v!r} x{n:,}" for v, n in list(info["values"].items())[:8]))
+        console.print(f"  unmapped {name}: {info['rows']:,} rows ({values}); map them under "
+                      f"'{info['config_key']}' in config/sources/{source_id}.yaml", soft_wrap=True)
+    n_out, lines_out = report.outside_period
+    if report.period is None:
+        console.print("  period: no month in the file name and no --period: rows outside a period not checked")
+    elif n_out:
+        where = ", ".join(str(n) for n in lines_out) + (", ..." if n_out > len(lines_out) else "")
+        console.print(f"  outside {report.period}: {n_out:,} accepted rows collected or reported after "
+                      f"{Period.parse(report.period).end.isoformat()} would not count in it (lines {where})",
+                      soft_wrap=True)
+    for reason in report.would_hold:
+        console.print(f"  [bold red]would be held back:[/] {reason}", soft_wrap=True)
+    raise typer.Exit(EXIT_HELD_BACK if report.would_hold or report.unmapped else EXIT_OK)
 
 
 def main() -> None:  # pragma: no cover

@@ -32,7 +32,7 @@ from __future__ import annotations
 import polars as pl
 
 from pipeline import equations as eq
-from pipeline.measures import EQUATIONS
+from pipeline.measures import EQUATIONS, age_at_collection
 
 G_CATEGORIES = ("G1", "G2", "G3a", "G3b", "G4", "G5")
 COMBINED = "ckd_epi_2021_creatinine_cystatin"
@@ -46,7 +46,8 @@ def daily_comparison(inputs: pl.DataFrame, comparison: str) -> pl.DataFrame:
         raise ValueError(f"summaries.equation_comparison: {comparison!r} is not an adult creatinine equation "
                          f"(one of {sorted(k for k in EQUATIONS if k != 'ckid_u25_creatinine')})")
     female = pl.when(pl.col("sex") == "F").then(True).when(pl.col("sex") == "M").then(False)
-    scr, age = pl.col("creatinine_mg_dl"), pl.col("age_years").cast(pl.Float64)
+    # the age the equation in force was given (pipeline/measures.py), so that only the equation differs
+    scr, age = pl.col("creatinine_mg_dl"), age_at_collection(inputs.columns)
     rows = inputs.with_columns(EQUATIONS[comparison](scr, age, female, None).alias("egfr_comparison"))
     keys = ["district_code", "person_key"]
     creatinine = rows.group_by(keys).agg(
@@ -107,22 +108,26 @@ def summary(matrix: pl.DataFrame) -> tuple[pl.DataFrame, pl.DataFrame]:
     return totals, cells
 
 
-def daily_egfr_under(history: pl.DataFrame, in_force: str, comparison: str) -> pl.DataFrame:
+def daily_egfr_under(history: pl.DataFrame, in_force: str, comparison: str, adult_min_age: int) -> pl.DataFrame:
     """Daily eGFRs (person, day, mean) with every creatinine eGFR made by the adult equation in
     force recomputed under ``comparison``; other eGFRs (children's equations, cystatin C, the
     creatinine-cystatin C equation on days with both markers) are kept as they are: a switch of
-    the adult creatinine equation does not change them."""
+    the adult creatinine equation does not change them. Shaped as the egfr rows of
+    int_daily_values_averaged (one row per person, day and equation family)."""
     female = pl.when(pl.col("sex") == "F").then(True).when(pl.col("sex") == "M").then(False)
-    scr, age = pl.col("creatinine_mg_dl"), pl.col("age_years").cast(pl.Float64)
+    scr, age = pl.col("creatinine_mg_dl"), age_at_collection(history.columns)
     switched = (pl.col("analyte") == "creatinine") & (pl.col("egfr_equation") == in_force)
     rows = history.with_columns(
         pl.when(switched).then(EQUATIONS[comparison](scr, age, female, None)).otherwise(pl.col("egfr"))
         .alias("egfr_other"))
+    family = pl.when(pl.col("age_years") >= adult_min_age).then(pl.lit("adult")).otherwise(pl.lit("child"))
     return (rows.filter(pl.col("egfr_other").is_not_null())
-            .group_by("person_key", "collected_date")
+            .with_columns(family.alias("equation_family"))
+            .group_by("person_key", "collected_date", "equation_family")
             .agg(pl.col("egfr_other").mean().alias("value"), pl.len().cast(pl.Int64).alias("n_results"))
             .select("person_key", pl.lit("egfr").alias("measure"), pl.col("collected_date").alias("day"),
-                    "value", "n_results"))
+                    "value", "n_results", "equation_family",
+                    pl.lit(None, dtype=pl.Boolean).alias("is_at_or_above_a2")))
 
 
 def ckd_counts(persons: pl.DataFrame, ckd_in_force: set[str], ckd_other: set[str], comparison: str) -> pl.DataFrame:

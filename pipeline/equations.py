@@ -325,7 +325,6 @@ SUMIDA_PCR_TO_ACR = SumidaPcrToAcr(
 
 DIPSTICK_A_CATEGORY: dict[str, str] = {
     "negative": "A1",
-    "trace": "A2",
     "1+": "A2",
     "+": "A2",
     "2+": "A3",
@@ -335,8 +334,16 @@ DIPSTICK_A_CATEGORY: dict[str, str] = {
     "4+": "A3",
     "++++": "A3",
 }
-"""Urine protein dipstick to albuminuria category (Sumida et al. 2020): trace or + ↔ A2,
-++ or more ↔ A3; confirmed."""
+"""Urine protein dipstick to albuminuria category, an approximate equivalent only (KDIGO 2012
+CKD guideline, Kidney Int Suppl 2013;3:1, table of albuminuria categories: negative to trace
+~ A1, trace to + ~ A2, + or more ~ A3; Sumida et al., Ann Intern Med 2020;173:426, dipstick
+classes against measured ACR): negative -> A1, 1+ -> A2, 2+ or more -> A3. "trace" is listed in
+DIPSTICK_SPANNING: KDIGO puts it at the A1/A2 border, so it gets no single category. The KDIGO
+strip rows are from memory; verify against the guideline's table."""
+
+DIPSTICK_SPANNING: dict[str, tuple[str, str]] = {"trace": ("A1", "A2")}
+"""Dipstick readings that span two albuminuria categories (KDIGO 2012: trace lies on the A1/A2
+border): no category, reason ``dipstick_trace_spans_a1_a2``."""
 
 KDIGO_RISK: dict[tuple[str, str], str] = {
     **{(g, "A1"): "low" for g in ("G1", "G2")},
@@ -663,8 +670,9 @@ def acr_from_pcr_sumida(pcr_mg_g: pl.Expr) -> pl.Expr:
 
 
 def albuminuria_category_dipstick(reading: pl.Expr) -> pl.Expr:
-    """Albuminuria category from a urine protein dipstick reading (Sumida et al., Ann Intern Med
-    2020;173:426): negative → A1, trace or 1+ → A2, 2+ or more → A3.
+    """Approximate albuminuria category from a urine protein dipstick reading (KDIGO 2012;
+    Sumida et al., Ann Intern Med 2020;173:426): negative → A1, 1+ → A2, 2+ or more → A3;
+    trace spans A1–A2 and gives null (``DIPSTICK_SPANNING``).
 
     Accepts "negative", "trace", "1+" … "4+" and "+" … "++++", ignoring case and surrounding
     spaces; any other text, or null, gives null.

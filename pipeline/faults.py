@@ -12,7 +12,8 @@ called with; then, by ``KIDNEYSURV_FAULT_KIND``:
 
 Points are ``<stage>:before`` and ``<stage>:after`` for every stage of the flow (scan, ingest,
 validate, measure, link, summarise, export, publish) and the steps of the month's publication in
-:mod:`pipeline.runlock` (``publish:journal``, ``publish:committed``, ``publish:moved``).
+:mod:`pipeline.runlock` (``publish:journal``, ``publish:committed``, ``publish:moved``), and of
+a reprocess in :mod:`pipeline.reprocess` (``reprocess:replaced``, ``reprocess:before_commit``).
 """
 
 from __future__ import annotations

@@ -28,8 +28,19 @@ from pipeline.linkage import link_stage  # noqa: E402
 from pipeline.manifest import build_manifest, input_files, record_run  # noqa: E402
 from pipeline.measures import measure_stage  # noqa: E402
 from pipeline.periods import Period  # noqa: E402
-from pipeline.pseudonymise import PseudonymKey, resolve_key  # noqa: E402
+from pipeline.period_checks import period_checks  # noqa: E402
+from pipeline.pseudonymise import PseudonymKey, resolve_key, verify_warehouse_key  # noqa: E402
 from pipeline.report import write_report  # noqa: E402
+from pipeline.reprocess import config_drift, hold_back_drifted  # noqa: E402
+from pipeline.revisions import (  # noqa: E402
+    Release,
+    RevisionNeeded,
+    carry_releases,
+    describe,
+    late_results,
+    settle_release,
+    stash_release,
+)
 from pipeline.publish import (  # noqa: E402
     commit_month,
     open_warehouse,
@@ -61,6 +72,10 @@ class RunContext:
     batch_checks: dict[str, dict[str, Any]] = field(default_factory=dict)
     touched_only: bool = False  # the validate stage settled only the versions new rows touch
     inbox_items: list[InboxFile] | None = None  # the scan stage's listing, read by the ingest stage
+    revise: str | None = None  # the reason given for a revision of an already published period
+    release: Release | None = None  # what the summarise stage published (pipeline/revisions.py)
+    config_drift: dict[str, str] = field(default_factory=dict)  # source -> message (pipeline/reprocess.py)
+    refused: str | None = None  # why this run may not publish (a revision without a reason)
 
 
 _RUNS: dict[str, RunContext] = {}
@@ -82,8 +97,14 @@ def _stage(run_id: str, name: str, work: Callable[[RunContext], dict[str, Any]])
 def scan_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         items = scan_inbox(ctx.con, ctx.settings, ctx.inbox)
+        # a source whose config changed since its stored rows were made: said, and its new files
+        # held back until it is reprocessed (pipeline/reprocess.py), never mixed silently
+        drift = config_drift(ctx.con, ctx.settings)
+        hold_back_drifted(items, drift)
+        ctx.config_drift = {s: d.message() for s, d in drift.items()}
         ctx.inbox_items = items  # hashed once: the ingest stage reads what was scanned
-        return {"files": len(items), "new": sum(i.status != "already_ingested" for i in items)}
+        return {"files": len(items), "new": sum(i.status != "already_ingested" for i in items),
+                "config changed": len(drift)}
 
     return _stage(run_id, "scan", work)
 
@@ -111,7 +132,8 @@ def validate_task(run_id: str) -> dict[str, Any]:
         return {"valid": s.rows_valid, "rejected": s.rows_rejected, "lab_results": s.lab_results,
                 "versions settled": f"{s.scope.versions} ({s.scope.kind})",
                 "batches checked": len(ctx.batch_checks),
-                "by_source": s.by_source, "held_back_sources": s.held_back}  # fmt: skip
+                "by_source": s.by_source, "held_back_sources": s.held_back,
+                "unmapped_codes": s.unmapped}  # fmt: skip
 
     return _stage(run_id, "validate", work)
 
@@ -156,10 +178,17 @@ def link_task(run_id: str) -> dict[str, Any]:
 @task(name="summarise")
 def summarise_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
+        stash_release(ctx.con, ctx.period.label)  # the release now published, to compare with
         counts = summarise_stage(ctx.con, ctx.settings, ctx.period)
         published = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period)
+        try:
+            ctx.release = settle_release(ctx.con, ctx.period.label, ctx.revise, headline(ctx))
+        except RevisionNeeded as exc:  # not a failure of the task: the run stops, unpublished
+            ctx.refused = str(exc)
+            return {"tables": len(counts), "revision": "refused (already published; --revise needed)"}
         return {"tables": len(counts), "rows": sum(counts.values()),
-                "published rows": sum(published.values()), "by_table": counts}  # fmt: skip
+                "published rows": sum(published.values()), "by_table": counts,
+                "revision": ctx.release.revision}  # fmt: skip
 
     return _stage(run_id, "summarise", work)
 
@@ -179,6 +208,8 @@ def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
         folder = write_exports(ctx.con, ctx.out, ctx.period, {"run_summary.json": summary,
                                                                 "run_manifest.json": ctx.manifest},
                                demo_key=ctx.key.is_demo)
+        if ctx.release is not None:
+            carry_releases(ctx.out, ctx.period.label, folder, ctx.release)
         write_report(ctx.con, ctx.period.label, folder / "report.html")
         # staged beside the warehouse; moved into out/<period>/ once the month is committed
         final = ctx.out / ctx.period.label
@@ -213,14 +244,22 @@ def _quiet(name: str, seconds: float, text: str) -> None:
 
 
 def start_run(period: str, config_dir: str, inbox: str, out: str, demo: bool,
-              report: Callable[[str, float, str], None] = _quiet, executor: str | None = None) -> str:
+              report: Callable[[str, float, str], None] = _quiet, executor: str | None = None,
+              revise: str | None = None) -> str:
     """Open the warehouse and register the run; the caller runs the stages. ``executor``
-    overrides ``execution.executor`` of the config (local, shards or dask)."""
+    overrides ``execution.executor`` of the config (local, shards or dask); ``revise`` is the
+    reason for publishing a revision of an already published period (pipeline/revisions.py)."""
     settings = with_executor(load_settings(config_dir), executor)
     key = resolve_key(demo=demo)
     ctx = RunContext(settings, Period.parse(period), Path(inbox), Path(out), key,
                      open_warehouse(Path(out), settings.pipeline.execution.memory_limit), report)  # fmt: skip
+    ctx.revise = revise
     recover_interrupted_run(ctx.out, ctx.con)
+    try:
+        verify_warehouse_key(ctx.con, key)  # a different key would split persons from their history
+    except Exception:
+        ctx.con.close()
+        raise
     run_id = uuid.uuid4().hex
     ctx.run_id = run_id
     _RUNS[run_id] = ctx
@@ -249,12 +288,14 @@ def finish_run(run_id: str) -> dict[str, Any]:
 @flow(name="monthly_surveillance", log_prints=False)
 def monthly_surveillance(period: str | None = None, config_dir: str = "config",
                          inbox: str = "sample_extracts", out: str = "out",
-                         demo: bool = False, executor: str | None = None) -> dict[str, Any]:
+                         demo: bool = False, executor: str | None = None,
+                         revise: str | None = None) -> dict[str, Any]:
     """Ingest what is new, validate, measure, link, summarise and publish one month
     (``period`` None: the previous month, as a scheduled run does)."""
     period = period or Period.previous_month(dt.date.today()).label
     with run_lock(Path(out), period):
-        run_id = start_run(period, config_dir, inbox, out, demo, report=_reporter, executor=executor)
+        run_id = start_run(period, config_dir, inbox, out, demo, report=_reporter, executor=executor,
+                           revise=revise)
         try:
             return run_stages(run_id)
         finally:
@@ -274,19 +315,40 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
     call(measure_task, run_id)
     link = call(link_task, run_id)
     call(summarise_task, run_id)
+    if ctx.refused:  # nothing is published: the caller rolls the transaction back
+        return {"period": ctx.period.label, "revision_refused": ctx.refused}
+    checks = period_checks(ctx.con, ctx.settings, ctx.inbox, ctx.period)
+    missing_policy = ctx.settings.pipeline.completeness.missing_source
     summary = {
         "period": ctx.period.label,
         "demo_key": ctx.key.is_demo,
-        "sources": validate["by_source"],
+        # the period's own rows: files ingested for this period (pipeline/period_checks.py)
+        "sources": checks["period_sources"],
+        "warehouse_sources": validate["by_source"],  # whole-warehouse totals, every period
         "held_back_sources": validate["held_back_sources"],
         "held_back_files": dict(ingest["held_back_files"]),
+        "missing_sources": checks["missing_sources"],
+        "missing_sources_policy": missing_policy,
+        "rows_outside_period": checks["rows_outside_period"],
+        "rows_outside_period_notes": checks["rows_outside_period_notes"],
+        "unmapped_codes": validate.get("unmapped_codes", {}),
+        "indicators_lack": sorted(set(checks["missing_sources"]) | set(validate["held_back_sources"])),
         "persons": link["persons"],
         "headline": headline(ctx),
         "batch_checks": ctx.batch_checks,
+        "config_drift": ctx.config_drift,
+        "late_results": late_results(ctx.con, ctx.period.label),
     }
     ctx.manifest = build_manifest(ctx.run_id, ctx.started_at, ctx.settings, ctx.period.label,
                                   ctx.key.is_demo, ctx.stages, summary,
                                   input_files(ctx.con, ctx.period.label))  # fmt: skip
+    if ctx.release is not None:
+        ctx.manifest["revision"] = summary["revision"] = describe(
+            ctx.release, ctx.period.label, ctx.started_at.date().isoformat(), summary["headline"])
+    if ctx.config_drift:
+        ctx.manifest["config_drift"] = ctx.config_drift
+        if ctx.manifest["exit_code"] == 0:  # published, but a source's current config is not applied yet
+            ctx.manifest["exit_code"], ctx.manifest["status"] = 1, "published_with_config_drift"
     record_run(ctx.con, ctx.manifest)
     summary["exit_code"] = ctx.manifest["exit_code"]
     call(export_task, run_id, summary)  # into <out>/.<period>.partial, inside the transaction
@@ -298,14 +360,19 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
 
 def run_month_plain(period: str, config_dir: str, inbox: str, out: str, demo: bool = False,
                     report: Callable[[str, float, str], None] = _quiet,
-                    executor: str | None = None) -> dict[str, Any]:
-    """The monthly run without Prefect (tests, benchmarks, debugging)."""
+                    executor: str | None = None, revise: str | None = None) -> dict[str, Any]:
+    """The monthly run without Prefect (tests, benchmarks, debugging); raises
+    :class:`RevisionNeeded` when the period is published and would change without ``revise``."""
     with run_lock(Path(out), period):
-        run_id = start_run(period, config_dir, inbox, out, demo, report=report, executor=executor)
+        run_id = start_run(period, config_dir, inbox, out, demo, report=report, executor=executor,
+                           revise=revise)
         try:
-            return run_stages(run_id, plain=True)
+            summary = run_stages(run_id, plain=True)
         finally:
             finish_run(run_id)
+    if summary.get("revision_refused"):
+        raise RevisionNeeded(summary["revision_refused"])
+    return summary
 
 
 # The console reporter of the flow: kept out of the flow's parameters (a function is not a

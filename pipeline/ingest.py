@@ -33,6 +33,7 @@ import duckdb
 import polars as pl
 
 from pipeline import identifiers
+from pipeline.manifest import source_config_sha256
 from pipeline.pseudonymise import SHARED_DOMAIN, PersonKeyCache, PseudonymKey, add_person_keys
 from pipeline.settings import STANDARD_FIELDS, STANDARD_REQUIRED, Settings, SourceConfig
 from pipeline.warehouse import with_frame
@@ -61,7 +62,7 @@ class InboxFile:
     rel_path: str
     sha256: str
     size_bytes: int
-    status: str = "new"  # new | already_ingested | duplicate_file | unreadable
+    status: str = "new"  # new | already_ingested | duplicate_file | unreadable | held_back (config drift)
     same_as: str | None = None
     file_id: int | None = None
     #: why the file could not be read at the scan (status unreadable)
@@ -412,7 +413,7 @@ def _to_landed(frame: pl.DataFrame, source: SourceConfig, item: InboxFile) -> pl
         pl.col("status").alias("status_text"),
         pl.col("height_cm").alias("height_text"),
         pl.col("reported_at").alias("reported_text"),
-        pl.col("fasting").alias("fasting_text"),
+        mapped("fasting", source.fasting_codes).alias("fasting_text"),
     )
 
 
@@ -687,8 +688,25 @@ def extract_month(rel_path: str, run_period: str) -> str:
     return f"{end.year:04d}-{end.month:02d}" if end else run_period
 
 
-def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, ingested_on: dt.date) -> pl.DataFrame:
-    """Parse the collection and report dates; keep the text as reported beside them."""
+def undated_report_date(run_period: str, fallback: dt.date) -> dt.date:
+    """The report date of a row without one, in a file without a month in its name: the last day
+    of the period of the run that first ingests the file (never the day it happened to be
+    loaded, which is after the period end and would hide the rows from their month);
+    ``fallback`` only when ``run_period`` is not a month (``sources check`` without a period)."""
+    match = re.fullmatch(r"(\d{4})-(0[1-9]|1[0-2])", run_period or "")
+    if not match:
+        return fallback
+    year, month = int(match.group(1)), int(match.group(2))
+    return dt.date(year, month, calendar.monthrange(year, month)[1])
+
+
+def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, undated_on: dt.date) -> pl.DataFrame:
+    """Parse the collection and report dates; keep the text as reported beside them.
+
+    A row without a report date is known at the end of its extract's month: the month in the
+    file name (basis ``file_name``), else ``undated_on``, the end of the period of the run that
+    first ingests the file (basis ``run_period``; :func:`undated_report_date`); a row collected
+    after that month, at the end of its own collection month (basis ``collected_month``)."""
     fmt = source.date_format or "%Y-%m-%d"
 
     def parse(col: str) -> pl.Expr:
@@ -697,27 +715,37 @@ def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, ingest
             text = text.str.slice(0, 10)
         return text.str.strptime(pl.Date, fmt, strict=False)
 
-    extract_date = _month_end_from_name(item.rel_path) or ingested_on
-    basis_extract = "file_name" if _month_end_from_name(item.rel_path) else "ingested"
+    from_name = _month_end_from_name(item.rel_path)
+    extract_date = from_name or undated_on
+    basis_extract = "file_name" if from_name else "run_period"
+    collected = parse("collected_text")
+    # a row collected after its extract's month (a history sent as one file) cannot have been
+    # known before its own collection month ended: never date it before it was collected
+    collected_month_end = collected.dt.month_end()
+    later = collected_month_end > pl.lit(extract_date)
     return frame.with_columns(
-        parse("collected_text").alias("collected_date"),
-        pl.coalesce(parse("reported_text"), pl.lit(extract_date)).alias("reported_date"),
+        collected.alias("collected_date"),
+        pl.coalesce(parse("reported_text"), pl.when(later).then(collected_month_end).otherwise(pl.lit(extract_date)))
+        .alias("reported_date"),
         pl.when(parse("reported_text").is_not_null())
         .then(pl.lit("reported"))
+        .when(later)
+        .then(pl.lit("collected_month"))
         .otherwise(pl.lit(basis_extract))
         .alias("reported_date_basis"),
     )
 
 
-def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, ingested_on: dt.date) -> pl.DataFrame:
-    """Landed rows of one file, dates parsed, the person token still present."""
+def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, undated_on: dt.date) -> pl.DataFrame:
+    """Landed rows of one file, dates parsed, the person token still present; ``undated_on`` is
+    the report date of rows without one in a file without a month in its name."""
     if source.layout == "fhir_ndjson":
         frame = read_fhir_export(source, item, settings)
     elif source.layout == "parquet":
         frame = read_parquet(source, item)
     else:
         frame = read_delimited(source, item)
-    return add_dates(frame.select(LANDED_COLUMNS), source, item, ingested_on)
+    return add_dates(frame.select(LANDED_COLUMNS), source, item, undated_on)
 
 
 def land_inbox(
@@ -740,6 +768,7 @@ def land_inbox(
     reads one given file).
     """
     summary = IngestSummary()
+    undated_on = undated_report_date(run_period, ingested_on)
     if items is None:
         items = scan_inbox(con, settings, inbox)
     next_id = con.execute("select coalesce(max(file_id), 0) + 1 from ingest_files").fetchall()[0][0]
@@ -769,7 +798,7 @@ def land_inbox(
             "and status = 'ingested' order by file_id limit 1",
             [item.source_id, item.sha256],
         ).fetchall() if item.status == "duplicate_file" else []  # fmt: skip
-        if item.status == "unreadable":
+        if item.status in ("unreadable", "held_back"):  # held_back: the source's config changed
             status, message = "held_back", item.fault
             summary.files_held_back += 1
             summary.held_back.append((item.rel_path, item.fault or ""))
@@ -780,7 +809,7 @@ def land_inbox(
             summary.files_skipped += 1
         else:  # new, or a copy of a file that was not ingested (held back): read it
             try:
-                frame = read_inbox_file(source, item, settings, ingested_on)
+                frame = read_inbox_file(source, item, settings, undated_on)
             except FileFault as fault:
                 status, message = "held_back", str(fault)
                 summary.files_held_back += 1
@@ -808,11 +837,11 @@ def land_inbox(
                     )
         con.execute(
             "insert into ingest_files (file_id, source_id, file_path, version, sha256, size_bytes, "
-            "status, message, rows_read, rows_duplicate, run_period, extract_month, ingested_at) "
-            "values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, current_timestamp)",
+            "status, message, rows_read, rows_duplicate, run_period, extract_month, ingested_at, config_sha256) "
+            "values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, current_timestamp, ?)",
             [item.file_id, item.source_id, item.rel_path, version, item.sha256, item.size_bytes,
              status, message, rows_read, rows_read if status == "duplicate_file" else 0, run_period,
-             extract_month(item.rel_path, run_period)],
+             extract_month(item.rel_path, run_period), source_config_sha256(settings, item.source_id)],
         )  # fmt: skip
     return summary
 

@@ -45,9 +45,16 @@ def trajectory_rules(settings: Settings) -> pl.DataFrame:
          "min_span_days": t.kidney_failure_min_span_days, "after_baseline": False},
         {"rule_id": "ckd_egfr", "event_type": "ckd", "measure": "egfr", "comparison": "below",
          "threshold": t.ckd_egfr_below, "min_span_days": t.ckd_min_span_days, "after_baseline": False},
-        {"rule_id": "ckd_acr", "event_type": "ckd", "measure": "acr", "comparison": "at_or_above",
+        # the KDIGO A2 category in the unit reported (kidney_measures.is_at_or_above_a2), not a
+        # converted number; the threshold column shows the mg/g equivalent
+        {"rule_id": "ckd_acr", "event_type": "ckd", "measure": "acr", "comparison": "at_or_above_a2",
          "threshold": t.ckd_acr_at_or_above_mg_g, "min_span_days": t.ckd_min_span_days,
          "after_baseline": False},
+        # KDIGO 2012: a worse G category with a fall of 25 % or more from the baseline, held over
+        # consecutive values spanning progression_min_span_days
+        {"rule_id": "progression", "event_type": "progression", "measure": "egfr",
+         "comparison": "worse_category_and_fraction_of_baseline", "threshold": t.progression_decline,
+         "min_span_days": t.progression_min_span_days, "after_baseline": True},
     ]  # fmt: skip
     return pl.DataFrame(rows)
 
@@ -65,6 +72,8 @@ def event_params(settings: Settings, period: Period) -> dict:
         "glucose_mg_dl": m.diabetes_fasting_glucose_mg_dl,
         "glucose_mmol_l": m.diabetes_fasting_glucose_mmol_l,
         "risk_window_days": m.risk_pairing_window_days,
+        "adult_min_age": m.adult_min_age_years,
+        "diabetes_min_results": 2 if m.diabetes_rule == "confirmed" else 1,
     }  # fmt: skip
 
 

@@ -51,6 +51,17 @@ def effective_config(settings: Settings) -> dict[str, Any]:
     }  # fmt: skip
 
 
+def source_config_sha256(settings: Settings, source_id: str) -> str:
+    """What one source's stored rows depend on: its own config, the analytes (codes, units,
+    factors, readings) and the plausible ranges. Recorded per file in ``ingest_files``; a run
+    whose current hash differs says so and holds the source's new files back (reprocess)."""
+    data = {"source": settings.source(source_id).model_dump(mode="json"),
+            "analytes": settings.analytes.model_dump(mode="json"),
+            "ranges": {k: v.model_dump(mode="json") for k, v in settings.pipeline.ranges.items()}}
+    text = json.dumps(data, sort_keys=True, separators=(",", ":"))
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
 def config_sha256(settings: Settings) -> str:
     text = json.dumps(effective_config(settings), sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()
@@ -76,7 +87,8 @@ def input_files(con: duckdb.DuckDBPyConnection, run_period: str) -> list[dict[st
 def build_manifest(run_id: str, started_at: dt.datetime, settings: Settings, period: str,
                    demo_key: bool, stages: dict[str, dict[str, Any]], summary: dict[str, Any],
                    files: list[dict[str, Any]]) -> dict[str, Any]:  # fmt: skip
-    held = bool(summary.get("held_back_sources") or summary.get("held_back_files"))
+    held = bool(summary.get("held_back_sources") or summary.get("held_back_files")
+                or (summary.get("missing_sources") and summary.get("missing_sources_policy") == "hold"))
     m = settings.pipeline.measures
     return {
         "run_id": run_id,
@@ -106,15 +118,23 @@ def build_manifest(run_id: str, started_at: dt.datetime, settings: Settings, per
                          "held_back_files": summary.get("held_back_files", {}),
                          "batch_checks": summary.get("batch_checks", {})},  # fmt: skip
         "headline": summary.get("headline", {}),
+        # what the run says about its own period (pipeline/period_checks.py, unmapped codes)
+        "period_checks": {k: summary.get(k) for k in (
+            "sources", "warehouse_sources", "missing_sources", "missing_sources_policy",
+            "rows_outside_period", "rows_outside_period_notes", "unmapped_codes", "indicators_lack")},
     }
 
 
 def record_run(con: duckdb.DuckDBPyConnection, manifest: dict[str, Any]) -> None:
     """The manifest as a row of ``runs`` (inside the month's transaction)."""
+    revision = manifest.get("revision") or {}
     con.execute(
-        "insert or replace into runs values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+        "insert or replace into runs (run_id, period, started_at, status, exit_code, package_version, "
+        "git_commit, config_sha256, demo_key, manifest, revision, revision_reason) "
+        "values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
         [manifest["run_id"], manifest["period"], manifest["started_at"], manifest["status"],
          manifest["exit_code"], manifest["package_version"], manifest["git_commit"],
-         manifest["config_sha256"], manifest["demo_key"], json.dumps(manifest, default=str)],
+         manifest["config_sha256"], manifest["demo_key"], json.dumps(manifest, default=str),
+         revision.get("number"), revision.get("reason")],
     )  # fmt: skip
 

@@ -30,7 +30,7 @@ MEASURE_COLUMNS = [
     "egfr", "egfr_equation", "g_category", "egfr_reason", "is_hyperfiltration",
     "egfr_creatinine", "lab_reported_egfr", "lab_reported_egfr_comparator",
     "acr_mg_g", "acr_comparator", "aer_mg_24h", "acr_basis", "is_acr_estimated", "a_category",
-    "acr_reason",
+    "acr_reason", "is_at_or_above_a2",
 ]  # fmt: skip
 
 #: Analytes read from lab_results by this stage.
@@ -48,9 +48,27 @@ class MeasureSummary:
     acr_categorised: int
 
 
+#: Day of the year a birth is assumed on when only the birth year is known: 1 July, about the
+#: middle of the year, so the estimated age is off by at most about half a year either way (a
+#: person born on 1 January is up to 0.5 years older, one born on 31 December up to 0.5 years
+#: younger). Common practice for birth-year-only data.
+MID_YEAR = (7, 1)
+
+
+def age_at_collection(columns: list[str]) -> pl.Expr:
+    """Age in years (fractional) at collection, estimated from the birth year at mid-year
+    (:data:`MID_YEAR`); ``age_years`` where the birth year is not among the columns. Never
+    below 0 (a result collected in the birth year before 1 July)."""
+    if "birth_year" not in columns:
+        return pl.col("age_years").cast(pl.Float64)
+    born = pl.date(pl.col("birth_year"), MID_YEAR[0], MID_YEAR[1])
+    days = (pl.col("collected_date") - born).dt.total_days()
+    return (days / 365.25).clip(lower_bound=0.0).cast(pl.Float64)
+
+
 def equation_for(m: MeasureSettings) -> pl.Expr:
     """Which equation applies to a creatinine row, or null (with a reason set elsewhere)."""
-    age = pl.col("age_years")
+    age = pl.col("age_exact")
     child = (age >= m.min_age_years) & (age < m.adult_min_age_years)
     with_height = pl.col("height_cm").is_not_null() & pl.lit(m.use_height_for_children)
     return (
@@ -67,7 +85,7 @@ def equation_for(m: MeasureSettings) -> pl.Expr:
 
 
 def egfr_reason(m: MeasureSettings) -> pl.Expr:
-    age = pl.col("age_years")
+    age = pl.col("age_exact")
     return (
         pl.when(pl.col("comparator").is_not_null())
         .then(pl.lit("censored_creatinine"))
@@ -83,7 +101,7 @@ def egfr_reason(m: MeasureSettings) -> pl.Expr:
 def compute_egfr(creatinine: pl.DataFrame, m: MeasureSettings) -> pl.DataFrame:
     """eGFR per creatinine row: equation chosen by age, G category, hyperfiltration flag."""
     female = pl.when(pl.col("sex") == "F").then(True).when(pl.col("sex") == "M").then(False)
-    scr, age, height = pl.col("value"), pl.col("age_years").cast(pl.Float64), pl.col("height_cm")
+    scr, age, height = pl.col("value"), pl.col("age_exact"), pl.col("height_cm")
     frame = creatinine.with_columns(equation_for(m).alias("egfr_equation"))
     egfr = pl.lit(None, dtype=pl.Float64)
     for name in dict.fromkeys([m.adult_equation, m.child_equation, m.child_equation_with_height]):
@@ -108,8 +126,8 @@ def add_cystatin(creatinine: pl.DataFrame, cystatin: pl.DataFrame, m: MeasureSet
     et al., NEJM 2021) and the cystatin row no eGFR of its own (reason ``combined_with_creatinine``),
     so the day is counted once.
     """
-    age = pl.col("age_years").cast(pl.Float64)
-    adult = pl.col("age_years") >= m.adult_min_age_years
+    age = pl.col("age_exact")
+    adult = age >= m.adult_min_age_years
     cystatin = cystatin.with_columns(
         pl.when(pl.col("comparator").is_null() & adult)
         .then(eq.ckd_epi_2012_cystatin(pl.col("value"), age, _female()))
@@ -154,39 +172,90 @@ def _categorise_egfr(frame: pl.DataFrame, m: MeasureSettings) -> pl.DataFrame:
     )
 
 
-def censored_acr_category(m: MeasureSettings, bound: pl.Expr | None = None) -> pl.Expr:
-    """A category of a censored ACR, only when every value it admits falls in one category.
+def _category_from_bounds(m: MeasureSettings) -> pl.Expr:
+    """A category from ``cat_value`` against the row's own ``a2_from`` / ``a3_above`` (the KDIGO
+    thresholds of the unit the value is compared in), counting a censored value only as far as
+    it is certain.
 
-    "<3 mg/mmol" (< 26.5 mg/g) is A1; ">300 mg/g" is A3; ">=300 mg/g" could be 300 (A2 by
-    default) or more (A3), so it stays uncategorised.
+    Uncensored: A1 below a2_from, A2 up to a3_above (inclusive unless ``acr_300_is_a2`` is
+    false), A3 above. Censored: "<X" with X <= a2_from and "<=X" with X < a2_from are A1; ">X"
+    with X >= a3_above is A3, and ">=X" when every value it admits is above A2; anything else
+    spans two categories and stays null.
     """
-    bound = pl.col("acr_mg_g") if bound is None else bound
-    cmp = pl.col("acr_comparator")
-    a2_top = 300.0
+    v, a2, a3, cmp = pl.col("cat_value"), pl.col("a2_from"), pl.col("a3_above"), pl.col("acr_comparator")
+    inclusive = m.acr_300_is_a2
+    in_a2 = (v <= a3) if inclusive else (v < a3)
+    uncensored = pl.when(v < a2).then(pl.lit("A1")).when(in_a2).then(pl.lit("A2")).otherwise(pl.lit("A3"))
+    ge_is_a3 = (v > a3) if inclusive else (v >= a3)
+    censored = (
+        pl.when((cmp == "<") & (v <= a2)).then(pl.lit("A1"))
+        .when((cmp == "<=") & (v < a2)).then(pl.lit("A1"))
+        .when((cmp == ">") & (v >= a3)).then(pl.lit("A3"))
+        .when((cmp == ">=") & ge_is_a3).then(pl.lit("A3"))
+    )  # fmt: skip
+    valid = v.is_finite() & (v >= 0)
+    return pl.when(valid & cmp.is_null()).then(uncensored).when(valid).then(censored).cast(pl.String)
+
+
+def _at_or_above_a2() -> pl.Expr:
+    """Whether the value is certainly at or above the A2 threshold (the CKD-by-albuminuria rule),
+    in the unit it is compared in; null when a censored bound leaves it open (KDIGO 2012: A2 from
+    30 mg/g, 3 mg/mmol, 30 mg/24 h). "<X" with X <= a2_from is below; ">X" or ">=X" with
+    X >= a2_from is above; "<X" above it, or ">X" below it, is unknown."""
+    v, a2, cmp = pl.col("cat_value"), pl.col("a2_from"), pl.col("acr_comparator")
     return (
-        pl.when((cmp == "<") & (bound <= 30)).then(pl.lit("A1"))
-        .when((cmp == "<=") & (bound < 30)).then(pl.lit("A1"))
-        .when((cmp == ">") & (bound >= a2_top)).then(pl.lit("A3"))
-        .when((cmp == ">=") & ((bound > a2_top) | ((bound == a2_top) & pl.lit(not m.acr_300_is_a2))))
-        .then(pl.lit("A3"))
+        pl.when(~(v.is_finite() & (v >= 0))).then(None)
+        .when(cmp.is_null()).then(v >= a2)
+        .when((cmp == "<") & (v <= a2)).then(False)
+        .when((cmp == "<=") & (v < a2)).then(False)
+        .when(cmp.is_in([">", ">="]) & (v >= a2)).then(True)
+        .cast(pl.Boolean)
     )  # fmt: skip
 
 
+def _thresholds(basis: str, unit_col: str) -> tuple[pl.Expr, pl.Expr, pl.Expr]:
+    """(value compared, A2 threshold, A3 threshold) of each albuminuria row, in the unit KDIGO
+    gives thresholds for: a measured ACR reported in mg/mmol against 3 / 30 mg/mmol on the
+    reported number, any other ACR against 30 / 300 mg/g, a timed excretion against 30 / 300
+    mg/24 h (KDIGO 2012, Kidney Int Suppl 2013;3:1, albuminuria category table)."""
+    mmol = (pl.col(basis) == "measured_acr") & (pl.col(unit_col) == eq.ACR_MG_MMOL.unit)
+    timed = pl.col(basis) == "timed_albumin_excretion"
+    value = (
+        pl.when(mmol).then(pl.col("reported_value"))
+        .when(timed).then(pl.col("aer_mg_24h"))
+        .otherwise(pl.col("acr_mg_g"))
+    )  # fmt: skip
+    a2 = pl.when(mmol).then(eq.ACR_MG_MMOL.a2_from).when(timed).then(eq.AER_MG_24H.a2_from).otherwise(eq.ACR_MG_G.a2_from)
+    a3 = pl.when(mmol).then(eq.ACR_MG_MMOL.a3_above).when(timed).then(eq.AER_MG_24H.a3_above).otherwise(eq.ACR_MG_G.a3_above)
+    return value.cast(pl.Float64), a2.cast(pl.Float64), a3.cast(pl.Float64)
+
+
 def compute_albuminuria(results: pl.DataFrame, m: MeasureSettings, readings_map: dict[str, str]) -> pl.DataFrame:
-    """Albuminuria on one scale with its basis.
+    """Albuminuria on one scale with its basis, and its KDIGO category in the unit reported.
 
     ACR in mg/g from a measured ACR, from urine albumin and creatinine on the same specimen, or
     estimated from a protein ratio (Sumida et al. 2020, flagged). A timed 24-hour albumin
     excretion keeps its own scale (``aer_mg_24h``) and thresholds; a dipstick reading gives an
     estimated category only (``readings_map``: spelling -> reading, from analytes.yaml).
+
+    The category and ``is_at_or_above_a2`` are taken in the unit KDIGO gives thresholds for
+    (:func:`_thresholds`), not after conversion: 3.2 mg/mmol is A2 although 3.2 x 8.84 = 28.3
+    mg/g. A censored value counts only as far as it is certain (:func:`_category_from_bounds`,
+    :func:`_at_or_above_a2`); its bound is not a measured value, so ``acr_mg_g`` and
+    ``aer_mg_24h`` are null on it (the bound stays in lab_results).
     """
     keys = ["source_id", "file_id", "line_no", "person_key", "specimen_id", "collected_date",
             "reported_date", "analyte", "sex", "age_years", "district_code"]  # fmt: skip
+    if "reported_unit" not in results.columns:
+        results = results.with_columns(pl.lit(None, dtype=pl.String).alias("reported_unit"))
+    if "reported_value" not in results.columns:
+        results = results.with_columns(pl.col("value").alias("reported_value"))
     measured = results.filter(pl.col("analyte") == "acr").select(
         *keys,
         pl.col("value").alias("acr_mg_g"),
         pl.col("comparator").alias("acr_comparator"),
         pl.lit("measured_acr").alias("acr_basis"),
+        pl.col("reported_value").cast(pl.Float64), pl.col("reported_unit"),
     )
     pcr = results.filter(pl.col("analyte") == "pcr").select(
         *keys,
@@ -234,30 +303,45 @@ def compute_albuminuria(results: pl.DataFrame, m: MeasureSettings, readings_map:
         .replace_strict(readings, default=None, return_dtype=pl.String).alias("reading"),
     )
     frame = pl.concat([measured, computed, pcr, timed, dipstick], how="diagonal_relaxed")
-    # 30/300 thresholds apply to ACR in mg/g and to AER in mg/24 h alike (KDIGO 2012)
-    scale = pl.coalesce(pl.col("acr_mg_g"), pl.col("aer_mg_24h"))
-    uncensored = (
-        pl.when(pl.col("acr_basis") == "timed_albumin_excretion")
-        .then(eq.albuminuria_category_aer(pl.col("aer_mg_24h"), upper_a2_inclusive=m.acr_300_is_a2))
-        .when(pl.col("acr_basis") == "estimated_from_dipstick")
-        .then(eq.albuminuria_category_dipstick(pl.col("reading")))
-        .otherwise(eq.albuminuria_category_acr(pl.col("acr_mg_g"), upper_a2_inclusive=m.acr_300_is_a2))
-    )
-    return frame.with_columns(
+    for name, dtype in (("aer_mg_24h", pl.Float64), ("reading", pl.String), ("acr_mg_g", pl.Float64),
+                        ("reported_value", pl.Float64), ("reported_unit", pl.String)):  # fmt: skip
+        if name not in frame.columns:
+            frame = frame.with_columns(pl.lit(None, dtype=dtype).alias(name))
+    value, a2, a3 = _thresholds("acr_basis", "reported_unit")
+    frame = frame.with_columns(value.alias("cat_value"), a2.alias("a2_from"), a3.alias("a3_above"))
+    dipstick_category = eq.albuminuria_category_dipstick(pl.col("reading"))
+    is_dipstick = pl.col("acr_basis") == "estimated_from_dipstick"
+    spanning = pl.col("reading").is_in(list(eq.DIPSTICK_SPANNING))
+    frame = frame.with_columns(
         pl.col("acr_basis").is_in(["estimated_from_pcr", "estimated_from_dipstick"]).alias("is_acr_estimated"),
-        pl.when(pl.col("acr_comparator").is_null()).then(uncensored)
-        .otherwise(censored_acr_category(m, scale)).alias("a_category"),
-    ).drop("reading").with_columns(
+        pl.when(is_dipstick).then(dipstick_category).otherwise(_category_from_bounds(m)).alias("a_category"),
+    ).with_columns(
+        pl.when(is_dipstick & pl.col("a_category").is_not_null()).then(pl.col("a_category").is_in(["A2", "A3"]))
+        .when(is_dipstick).then(None)
+        .otherwise(_at_or_above_a2()).alias("is_at_or_above_a2"),
+    ).with_columns(
+        pl.when(pl.col("acr_comparator").is_null()).then(pl.col("acr_mg_g")).alias("acr_mg_g"),
+        pl.when(pl.col("acr_comparator").is_null()).then(pl.col("aer_mg_24h")).alias("aer_mg_24h"),
         pl.when(pl.col("a_category").is_not_null()).then(None)
+        .when(is_dipstick & spanning).then(pl.lit("dipstick_trace_spans_a1_a2"))
+        .when(pl.col("acr_comparator").is_not_null() & pl.col("is_at_or_above_a2").is_null())
+        .then(pl.lit("censored_spans_a2_threshold"))
         .when(pl.col("acr_comparator").is_not_null()).then(pl.lit("censored_ambiguous"))
         .otherwise(pl.lit("not_computable"))
-        .alias("acr_reason")
-    )  # fmt: skip
+        .alias("acr_reason"),
+    ).drop("reading", "cat_value", "a2_from", "a3_above", "reported_value", "reported_unit")
+    return frame  # fmt: skip
 
 
 def measure_frame(results: pl.DataFrame, settings: Settings) -> pl.DataFrame:
     """kidney_measures rows from lab_results rows (plain function, no database)."""
     m = settings.pipeline.measures
+    results = results.with_columns(age_at_collection(results.columns).alias("age_exact"))
+    if "birth_year" in results.columns:
+        # the completed years of the same estimate (as int_results_validated.sql computes them),
+        # so that a measure's age and the equation it got always agree, also on rows stored by
+        # an earlier version that took collection year - birth year
+        results = results.with_columns(pl.col("age_exact").floor().cast(pl.Int64).alias("age_years"))
     creatinine = compute_egfr(results.filter(pl.col("analyte") == "creatinine"), m)
     frames = []
     if m.use_cystatin:
@@ -306,6 +390,14 @@ def measure_stage(con: duckdb.DuckDBPyConnection, settings: Settings, touched_on
     ``scope_persons``) only those persons' measures are computed again (:func:`update_touched`).
     """
     analytes = list(MEASURED_ANALYTES)
+    stored = [c for (c,) in con.execute(
+        "select column_name from duckdb_columns() where schema_name = 'main' "
+        "and table_name = 'kidney_measures' order by column_index"
+    ).fetchall()]  # fmt: skip
+    if stored and stored != MEASURE_COLUMNS:
+        # a warehouse measured by an earlier version (other columns, other rules): every row is
+        # computed again, never mixed with rows made under the old rules
+        touched_only = False
     if touched_only:
         update_touched(con, settings, analytes)
         return _summary(con)

@@ -40,6 +40,31 @@ class KeyFileUnsafe(KeyMissing):
     """The key file cannot be read, is empty, or others than its owner may read it."""
 
 
+class KeyWeak(KeyMissing):
+    """The key is too short or trivially guessable."""
+
+
+class KeyMismatch(KeyMissing):
+    """The key is not the one the warehouse was built with (its check value differs)."""
+
+
+#: Shortest key accepted: 24 characters (a key made by ``secrets.token_urlsafe(32)`` has 43).
+#: Common practice: an HMAC key should carry at least as many bits as the hash's security level
+#: (RFC 2104, section 3: "less than L bytes is strongly discouraged"); 24 random URL-safe
+#: characters carry 144 bits.
+MIN_KEY_LENGTH = 24
+#: Fewest distinct characters in a key: refuses "aaaa...", "abababab..." and the like.
+MIN_KEY_DISTINCT = 8
+HOW_TO_MAKE_A_KEY = (
+    'make one with: python -c "import secrets; print(secrets.token_urlsafe(32))" and keep it in an '
+    f"owner-only file named by {KEY_FILE_ENV}"
+)
+
+#: The label whose HMAC under the key is the warehouse's key check value. Fixed forever: a new
+#: label would make every warehouse refuse its own key.
+KEY_CHECK_LABEL = b"kidneysurv key check value v1"
+
+
 @dataclass(frozen=True)
 class PseudonymKey:
     secret: bytes
@@ -75,16 +100,75 @@ def read_key_file(path: Path) -> bytes:
     return secret
 
 
+def check_key_strength(secret: bytes, where: str) -> None:
+    """Refuse a key that is short, only whitespace, has whitespace at either end (a copy
+    mistake), or is trivially weak (one character repeated, too few distinct characters)."""
+    text = secret.decode("utf-8", errors="replace")
+    problem = None
+    if not text.strip():
+        problem = "is only whitespace"
+    elif text != text.strip():
+        problem = "begins or ends with whitespace (a copy mistake?)"
+    elif len(text) < MIN_KEY_LENGTH:
+        problem = f"is {len(text)} characters long, fewer than the {MIN_KEY_LENGTH} required"
+    elif len(set(text)) == 1:
+        problem = "is one character repeated"
+    elif len(set(text)) < MIN_KEY_DISTINCT:
+        problem = f"uses only {len(set(text))} distinct characters (at least {MIN_KEY_DISTINCT} required)"
+    if problem:
+        raise KeyWeak(f"{where}: the pseudonymisation key {problem}; {HOW_TO_MAKE_A_KEY}")
+
+
+def key_check_value(key: PseudonymKey) -> str:
+    """A non-reversible check value of the key: HMAC-SHA256 of a fixed label under the key, in
+    hex. It tells whether a later run uses the same key; it gives nothing of the key itself (nor
+    of any person key, whose messages never equal the label)."""
+    return hmac.new(key.secret, KEY_CHECK_LABEL, hashlib.sha256).hexdigest()
+
+
+def verify_warehouse_key(con, key: PseudonymKey) -> None:
+    """Compare the key with the check value the warehouse recorded at its first run (table
+    ``key_check``); record it when there is none. A different key raises :class:`KeyMismatch`
+    with what to do: one month keyed otherwise would split every person from their history."""
+    value = key_check_value(key)
+    stored = con.execute("select check_value, demo_key, recorded_at from key_check").fetchall()
+    if not stored:
+        con.execute("insert into key_check values (?, ?, current_timestamp)", [value, key.is_demo])
+        return
+    check, was_demo, recorded_at = stored[0]
+    if hmac.compare_digest(check, value):
+        return
+    when = f"{recorded_at:%Y-%m-%d}" if recorded_at else "its first run"
+    if was_demo and not key.is_demo:
+        raise KeyMismatch(
+            "this warehouse was built with the public DEMO key; a real key's data never goes into "
+            "it: give the run a new output folder (--out) for real data"
+        )
+    if key.is_demo and not was_demo:
+        raise KeyMismatch(
+            "this warehouse holds data keyed with the region's own key; the public demo key cannot "
+            "be used with it: run the demo into another output folder (--out)"
+        )
+    raise KeyMismatch(
+        f"the pseudonymisation key is not the one this warehouse was built with (check value "
+        f"recorded {when}); a month keyed otherwise would split every person from their history. "
+        f"Set {KEY_ENV} (or {KEY_FILE_ENV}) to the region's key. If the key was changed on purpose, "
+        "start a new output folder (--out) and load the history again with 'kidneysurv backfill'"
+    )
+
+
 def resolve_key(demo: bool) -> PseudonymKey:
     """The key from ``KIDNEYSURV_PSEUDONYM_KEY``, else from the owner-only file named by
     ``KIDNEYSURV_PSEUDONYM_KEY_FILE``, else the public demo key for a demo run; a non-demo run
-    without a key raises :class:`KeyMissing`."""
+    without a key raises :class:`KeyMissing`, a weak key :class:`KeyWeak`."""
     value = os.environ.get(KEY_ENV, "")
     if value:
+        check_key_strength(value.encode("utf-8"), KEY_ENV)
         return PseudonymKey(secret=value.encode("utf-8"), is_demo=value == DEMO_KEY)
     key_file = os.environ.get(KEY_FILE_ENV, "")
     if key_file:
         secret = read_key_file(Path(key_file))
+        check_key_strength(secret, f"{KEY_FILE_ENV}={key_file}")
         return PseudonymKey(secret=secret, is_demo=secret == DEMO_KEY.encode("utf-8"))
     if demo:
         return PseudonymKey(secret=DEMO_KEY.encode("utf-8"), is_demo=True)

@@ -359,15 +359,25 @@ def _cells_frame(con: duckdb.DuckDBPyConnection, present: dict[str, str]) -> Any
                case when {withdrawn} then null else g.greatest end as value_max,
                case when {withdrawn} then null else r.min_value end as range_min,
                case when {withdrawn} then null else r.max_value end as range_max,
-               case when {withdrawn} then 0 else g.rows - g.numbers end as missing_value{null_columns}
+               -- an ordinal result (a dipstick reading) carries a reading, not a number
+               case when {withdrawn} or a.result_type = 'ordinal' then 0
+                    else g.rows - g.numbers end as missing_value{null_columns}
         from g
         left join reference.ranges as r on r.analyte = g.analyte
+        left join reference.analytes as a on a.analyte = g.analyte
         order by 1, 2, 3, 4, 5, 6
     """)  # fmt: skip
 
 
 def _totals_frame(con: duckdb.DuckDBPyConnection) -> Any:
     """One row per source with rows in the run: batch, rejected, duplicated ids, rows read."""
+    # this run's files: those it landed (a reprocess lands earlier files again), else every file
+    # from the batch's first on
+    landed = con.execute(
+        "select count(*) from duckdb_tables() where temporary and table_name = 'landed_files'"
+    ).fetchall()[0][0]
+    these_files = ("file_id in (select file_id from landed_files)" if landed
+                   else f"file_id >= (select min(file_id) from {_TABLE})")  # fmt: skip
     return _frame(con, f"""
         with batch as (
             select source_id,
@@ -385,7 +395,7 @@ def _totals_frame(con: duckdb.DuckDBPyConnection) -> Any:
         files as (
             select source_id, sum(rows_read) as rows_read
             from ingest_files
-            where status <> 'duplicate_file' and file_id >= (select min(file_id) from {_TABLE})
+            where status <> 'duplicate_file' and {these_files}
             group by source_id
         )
         select b.source_id, b.rows, b.rejected, b.rows + b.rejected as rows_landed,
@@ -445,10 +455,12 @@ def _checks(spec: _SuiteSpec) -> list[_Check]:
         _Check("expect_column_values_to_be_in_set(analyte_unit)", "batch_cells",
                e.ExpectColumnValuesToBeInSet(
                    column="analyte_unit",
-                   value_set=[f"{a} [{u}]" for a, u in sorted(spec.canonical_units.items())],
-                   notes="each analyte in its canonical unit (reference.analytes)"),
+                   value_set=[f"{a} [{u if u is not None else '(none)'}]"
+                              for a, u in sorted(spec.canonical_units.items())],
+                   notes="each analyte in its canonical unit (reference.analytes); an ordinal "
+                         "analyte (dipstick) without one"),
                "not exists (select 1 from reference.analytes as a "
-               "where a.analyte = v.analyte and a.canonical_unit = v.unit)"),
+               "where a.analyte = v.analyte and a.canonical_unit is not distinct from v.unit)"),
         _Check("expect_column_values_to_be_in_set(status)", "batch_cells",
                e.ExpectColumnValuesToBeInSet(column="status", value_set=list(FHIR_STATUSES)),
                f"v.status not in ({statuses})"),
@@ -459,8 +471,10 @@ def _checks(spec: _SuiteSpec) -> list[_Check]:
         _Check("expect_column_values_to_be_between(missing_value, 0, 0)", "batch_cells",
                e.ExpectColumnValuesToBeBetween(
                    column="missing_value", min_value=0, max_value=0,
-                   notes="rows of a result-bearing status without a (finite) value"),
-               f"not {_WITHDRAWN} and not ({_NUMBER})"),
+                   notes="rows of a result-bearing status without a (finite) value; an ordinal "
+                         "result (dipstick reading) has none"),
+               f"not {_WITHDRAWN} and not ({_NUMBER}) and v.analyte not in "
+               "(select analyte from reference.analytes where result_type = 'ordinal')"),
         _Check("expect_column_pair_values_a_to_be_greater_than_b(value_min, range_min)", "batch_cells",
                e.ExpectColumnPairValuesAToBeGreaterThanB(
                    column_A="value_min", column_B="range_min", or_equal=True,

@@ -1002,9 +1002,11 @@ def _methods_section(data: _Data) -> str:
     definitions = [
         ("Persons tested", f"Persons with at least one eGFR or urine ACR collected in the {window} months "
          f"ending {_e(data.end_words)}, counted once whichever labs they used."),
-        ("Confirmed CKD", f"An eGFR below {ckd_egfr} mL/min/1.73 m², or ACR at or above {ckd_acr} mg/g, on "
-         f"consecutive days of testing spanning at least {ckd_days} days: kidney damage or reduced function "
-         "lasting more than three months, as KDIGO 2012 defines CKD. One low value is not enough."),
+        ("Confirmed CKD", f"An eGFR below {ckd_egfr} mL/min/1.73 m², or albuminuria in category A2 or A3 "
+         f"(ACR at or above {ckd_acr} mg/g or 3 mg/mmol in the unit reported, or a timed excretion of 30 mg/24 h), "
+         f"on consecutive days of testing spanning at least {ckd_days} days: kidney damage or reduced function "
+         "lasting more than three months, as KDIGO 2012 defines CKD. One low value is not enough. A censored "
+         "ACR (such as <5 mg/mmol) counts only where it is certainly below or above A2."),
         ("Share of tested and per 1,000 residents", "The share is among persons tested, who are not a random "
          "sample of residents; per 1,000 residents divides the same count by the whole resident population. "
          "Neither is the prevalence of CKD in the population."),
@@ -1013,7 +1015,10 @@ def _methods_section(data: _Data) -> str:
          "(Levey et al. 2014); at 30 %, 40 % and 57 %, in the sustained eGFR decline table of this report "
          "(events dated in the window), and per person in the warehouse (kidney_events)."),
         ("Lab-evidenced diabetes", f"An HbA1c at or above {hba1c} % ({hba1c_ifcc} mmol/mol) or fasting glucose at "
-         f"or above {glucose} mg/dL ({glucose_si} mmol/L) on any result (ADA Standards of Care)."),
+         f"or above {glucose} mg/dL ({glucose_si} mmol/L) (ADA Standards of Care), "
+         + ("confirmed by a second abnormal result: on the same day from the other test, or on another day."
+            if t("measures", "diabetes_rule", "confirmed") == "confirmed"
+            else "on a single result (this run does not ask for a confirming second result).")),
         ("Screening coverage", f"Among persons with lab-evidenced diabetes and any result in the {window} "
          "months, the share who had an eGFR, a urine ACR, and both, in that window. An ACR estimated from a "
          "protein ratio or a dipstick (Sumida et al. 2020) does not count: a dipstick misses moderately "
@@ -1107,6 +1112,49 @@ def _run_footer(data: _Data) -> str:
     return f"<footer><p>{text}</p></footer>"
 
 
+def _period_checks_section(data: _Data) -> str:
+    """What the run said about its own period (run manifest, ``period_checks``): sources that
+    sent nothing, rows it could not count, code values no config maps, and the period's own
+    rows per source beside the warehouse's totals."""
+    checks = data.manifest.get("period_checks") or {}
+    if not checks:
+        return ""
+    out = ['<h3 id="period-checks">This period\'s deliveries and coding</h3>']
+    notes = []
+    hold = checks.get("missing_sources_policy") == "hold"
+    for source, message in sorted((checks.get("missing_sources") or {}).items()):
+        notes.append(f"<li><strong>Missing source{' (holds the period)' if hold else ''}:</strong> "
+                     f"{_e(source)}: {_e(message)}</li>")
+    for line in checks.get("rows_outside_period_notes") or []:
+        notes.append(f"<li><strong>Rows outside the period:</strong> {_e(line)}</li>")
+    for source, fields in sorted((checks.get("unmapped_codes") or {}).items()):
+        for name, info in sorted(fields.items()):
+            values = ", ".join(f"{_e(v)} ({_int(n)})" for v, n in list(info.get("values", {}).items())[:8])
+            notes.append(f"<li><strong>Unmapped {_e(name)}:</strong> {_e(source)}: {_int(info.get('rows'))} rows "
+                         f"({values}); map them under <code>{_e(info.get('config_key'))}</code> in the source "
+                         "config</li>")
+    if checks.get("indicators_lack"):
+        notes.append("<li><strong>The indicators lack:</strong> "
+                     + ", ".join(_e(s) for s in checks["indicators_lack"]) + "</li>")
+    out.append(f'<ul class="period-checks">{"".join(notes)}</ul>' if notes
+               else "<p>Every configured source delivered; no unmapped code; every accepted row of this "
+                    "period's files is counted in it.</p>")
+    cols = ("files", "read", "accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending", "held_back")
+    head = "".join(f'<th scope="col">{c.replace("_", " ")}</th>' for c in cols)
+    body = "".join(
+        f'<tr><th scope="row">{_e(src)}</th>' + "".join(f"<td>{_int(c.get(k, 0))}</td>" for k in cols) + "</tr>"
+        for src, c in sorted((checks.get("sources") or {}).items()))  # fmt: skip
+    out.append(f'<table id="period-rows"><caption>Rows of the files ingested for {_e(data.period.label)}, per '
+               f'source (per file, read = the sum of the outcomes)</caption><thead><tr><th scope="col">source</th>'
+               f"{head}</tr></thead><tbody>{body}</tbody></table>")
+    totals = checks.get("warehouse_sources") or {}
+    if totals:
+        out.append("<p>Warehouse totals, all periods (not this period's): " + "; ".join(
+            f"{_e(s)} read {_int(c.get('read', 0))}, accepted {_int(c.get('accepted', 0))}"
+            for s, c in sorted(totals.items())) + ".</p>")
+    return "\n".join(out)
+
+
 # --------------------------------------------------------------------------- page
 
 CSS = """
@@ -1196,6 +1244,45 @@ footer { margin-top: 30px; font-size: .78rem; color: var(--muted); border-top: 1
 CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:"
 
 
+#: How the headline keys of the run manifest read in a revision banner.
+_HEADLINE_WORDS = {
+    "persons_tested_12m": "persons tested in 12 months",
+    "persons_confirmed_ckd": "persons with confirmed CKD",
+    "ckd_share_of_tested": "confirmed CKD, share of tested",
+    "persons_with_diabetes": "persons with diabetes",
+    "diabetes_with_egfr_and_acr": "with diabetes, both eGFR and ACR in 12 months",
+    "diabetes_share_with_both": "with diabetes, share with both",
+}
+
+
+def _revision_banner(revision: dict[str, Any]) -> str:
+    """A revised period says so before anything else: when, why, and the headline before/after."""
+    if not revision.get("reason"):
+        return ""
+
+    def shown(v: Any) -> str:
+        if v is None:
+            return "suppressed or not available"
+        return f"{v:.1%}" if isinstance(v, float) else f"{v:,}"
+
+    before, after = revision.get("headline_before") or {}, revision.get("headline_after") or {}
+    rows = "".join(
+        f"<tr><td>{_e(_HEADLINE_WORDS.get(k, k))}</td><td>{_e(shown(before.get(k)))}</td>"
+        f"<td>{_e(shown(after.get(k)))}</td></tr>"
+        for k in _HEADLINE_WORDS if k in before or k in after
+    )
+    return (
+        f'<div class="banner" id="revision-banner" role="alert"><p>Revised release: revision '
+        f"{_e(str(revision.get('number')))} of this period, published {_e(str(revision.get('revised_on')))}, "
+        f"replaces revision {_e(str(revision.get('previous')))} (published "
+        f"{_e(str(revision.get('previous_published_at', ''))[:10])}). Reason: {_e(str(revision.get('reason')))}. "
+        f"The earlier release stays readable (exports in revisions/{_e(str(revision.get('previous')))}/, "
+        "tables in schema published_history).</p>"
+        f"<table><thead><tr><th>headline</th><th>before</th><th>after</th></tr></thead><tbody>{rows}"
+        "</tbody></table></div>"
+    )
+
+
 def _render(data: _Data) -> str:
     title = f"Kidney surveillance report, {data.period_words}"
     names = [data.districts[c] for c in sorted(data.districts)]
@@ -1204,11 +1291,22 @@ def _render(data: _Data) -> str:
     banner = ""
     if data.demo_key is not False:
         banner = f'<p class="banner" id="demo-banner" role="alert">{_e(data.key_notice)}</p>'
+    banner += _revision_banner(data.manifest.get("revision") or {})
     held = data.manifest.get("quality_gate", {}).get("held_back_sources") or {}
     held_note = ""
     if held:
         held_note = ('<p class="notice">Held back by the quality gate this month (not in the counts): '
                      + ", ".join(_e(s) for s in sorted(held)) + ".</p>")  # fmt: skip
+    drift = data.manifest.get("config_drift") or {}
+    if drift:
+        held_note += ('<p class="notice" id="config-drift">Config changed since their rows were stored, not yet '
+                      "reprocessed (their new files are held back; these figures use their rows as first "
+                      "read): " + ", ".join(_e(s) for s in sorted(drift)) + ".</p>")  # fmt: skip
+    lacking = (data.manifest.get("period_checks") or {}).get("indicators_lack") or []
+    if lacking:
+        held_note += ('<p class="notice" id="indicators-lack">These indicators lack: '
+                      + ", ".join(_e(s) for s in lacking)
+                      + ' (held back or sent nothing; see <a href="#period-checks">data quality</a>).</p>')
     cards = []
     for h in _headlines(data):
         klass = " suppressed" if h.value.startswith(("suppressed", "not available")) else ""
@@ -1252,7 +1350,7 @@ def _render(data: _Data) -> str:
         figure(_agreement_chart(data), "Each lab's own eGFR against the one recomputed here (CKD-EPI 2021 for "
                "adults). A steady offset suggests the lab reports another equation; a sudden step, an assay or "
                "calibration change."),
-        _quality_table(data, sources), "</section>",
+        _quality_table(data, sources), _period_checks_section(data), "</section>",
         _methods_section(data), _cautions_section(), _run_footer(data),
     ]  # fmt: skip
     return ("<!DOCTYPE html>\n"

@@ -41,6 +41,48 @@ class ConfigError(Exception):
     """A configuration file is missing or invalid; the message names the file and the key."""
 
 
+#: strftime directives a date column may use (day, month, year; a time part is ignored only
+#: when written in the format).
+_DATE_DIRECTIVES = set("dmyYbBjHMSIpfzaAeT%")
+
+
+def check_date_format(value: str | None) -> str | None:
+    """``value`` if it is a strftime format that reads a whole date (day, month and year), else
+    a ValueError saying what is wrong: a typo such as ``%d/%m/%y%`` or ``dd/mm/yyyy`` would
+    otherwise turn every row into ``invalid_date``."""
+    if value is None:
+        return value
+    import datetime as dt
+
+    directives = []
+    i = 0
+    while i < len(value):
+        if value[i] == "%":
+            if i + 1 >= len(value):
+                raise ValueError(f"{value!r} ends with a lone '%'; write e.g. '%d/%m/%Y'")
+            directives.append(value[i + 1])
+            i += 2
+        else:
+            i += 1
+    unknown = sorted({d for d in directives if d not in _DATE_DIRECTIVES})
+    if unknown:
+        raise ValueError(f"{value!r} uses unknown directive(s) {['%' + d for d in unknown]}; "
+                         "write e.g. '%d/%m/%Y' (strftime codes)")
+    has_day = "d" in directives or "e" in directives or "j" in directives
+    has_month = bool({"m", "b", "B"} & set(directives)) or "j" in directives
+    has_year = bool({"Y", "y"} & set(directives))
+    if not (has_day and has_month and has_year):
+        raise ValueError(f"{value!r} does not read a whole date (a day, a month and a year); "
+                         "write e.g. '%d/%m/%Y' or '%Y%m%d' (strftime codes)")
+    try:
+        sample = dt.date(2026, 3, 14).strftime(value)
+        if dt.datetime.strptime(sample, value).date() != dt.date(2026, 3, 14):
+            raise ValueError
+    except ValueError:
+        raise ValueError(f"{value!r} does not read back the dates it writes; write e.g. '%d/%m/%Y'") from None
+    return value
+
+
 class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
@@ -74,7 +116,16 @@ class SourceConfig(_Strict):
     status_codes: dict[str, str] = Field(default_factory=dict)
     sex_codes: dict[str, str] = Field(default_factory=dict)
     unit_aliases: dict[str, str] = Field(default_factory=dict)
+    #: The lab's own spellings of the fasting flag, mapped to Y or N (Y/N, yes/no, true/false,
+    #: 1/0 need no entry).
+    fasting_codes: dict[str, Literal["Y", "N"]] = Field(default_factory=dict)
     max_rejection_rate: float | None = Field(default=None, ge=0, le=1)
+    #: This source's own limit on the share of rows with an unmapped sex or unit (default:
+    #: quality_gate.max_unmapped_share).
+    max_unmapped_share: float | None = Field(default=None, ge=0, le=1)
+    #: How often the lab sends an extract: monthly (the default), quarterly, or none (sends when
+    #: it has results; never reported missing).
+    cadence: Literal["monthly", "quarterly", "none"] = "monthly"
     fhir: FhirOptions = Field(default_factory=FhirOptions)
     #: Columns the identifier screen would refuse but that this source may send, each with the
     #: written reason (recorded in the run manifest), e.g. {"birth_year": "year only, reviewed"}.
@@ -94,6 +145,11 @@ class SourceConfig(_Strict):
         if value.startswith("/") or ".." in Path(value).parts:
             raise ValueError("must be a subfolder of the inbox (no '/' at the start, no '..')")
         return value
+
+    @field_validator("date_format")
+    @classmethod
+    def _valid_date_format(cls, value: str | None) -> str | None:
+        return check_date_format(value)
 
     @field_validator("delimiter")
     @classmethod
@@ -171,6 +227,9 @@ class MeasureSettings(_Strict):
     diabetes_hba1c_mmol_mol: float = 48
     diabetes_fasting_glucose_mg_dl: float = 126
     diabetes_fasting_glucose_mmol_l: float = 7.0
+    #: confirmed: two abnormal results, on one day from two different tests or on two days (ADA
+    #: Standards of Care); single: one abnormal result.
+    diabetes_rule: Literal["confirmed", "single"] = "confirmed"
 
 
 class TrajectorySettings(_Strict):
@@ -186,6 +245,16 @@ class TrajectorySettings(_Strict):
     rapid_decline_min_values: int = Field(default=3, ge=2)
     rapid_decline_min_span_days: int = Field(default=365, gt=0)
     progression_decline: float = Field(default=0.25, gt=0, lt=1)
+    #: Progression must hold over consecutive daily eGFRs spanning this many days (chronicity).
+    progression_min_span_days: int = Field(default=90, gt=0)
+
+    @field_validator("ckd_acr_at_or_above_mg_g")
+    @classmethod
+    def _kdigo_a2(cls, value: float) -> float:
+        if value != 30:
+            raise ValueError("the CKD-by-albuminuria rule follows the KDIGO A2 category in the unit "
+                             "reported (30 mg/g, 3 mg/mmol, 30 mg/24 h); this must be 30")
+        return value
 
     @field_validator("decline_thresholds")
     @classmethod
@@ -246,6 +315,9 @@ class DisclosureSettings(_Strict):
 
 class QualityGateSettings(_Strict):
     max_rejection_rate: float = Field(default=0.05, ge=0, le=1)
+    #: A source whose share of rows with a sex or unit value its config does not map is above
+    #: this is held back, as for the rejection rate.
+    max_unmapped_share: float = Field(default=0.01, ge=0, le=1)
     great_expectations: bool = True
     #: When the Great Expectations Data Docs are built into out/<period>/quality/: on_failure
     #: (only when some batch fails its suite), always, or never.
@@ -307,6 +379,12 @@ class ExecutionSettings(_Strict):
     memory_limit: str = Field(default="2GB", pattern=r"^[1-9][0-9]*(\.[0-9]+)?(MB|GB)$")
 
 
+class CompletenessSettings(_Strict):
+    #: A configured source with no new extract for the period (or no inbox folder): warn (name
+    #: it and publish) or hold (name it, publish, and exit 1 as for a source held back).
+    missing_source: Literal["warn", "hold"] = "warn"
+
+
 class PipelineConfig(_Strict):
     demo: DemoSettings
     measures: MeasureSettings = Field(default_factory=MeasureSettings)
@@ -316,6 +394,7 @@ class PipelineConfig(_Strict):
     quality_gate: QualityGateSettings = Field(default_factory=QualityGateSettings)
     schedule: ScheduleSettings = Field(default_factory=ScheduleSettings)
     execution: ExecutionSettings = Field(default_factory=ExecutionSettings)
+    completeness: CompletenessSettings = Field(default_factory=CompletenessSettings)
     ranges: dict[str, RangeSetting]
 
 

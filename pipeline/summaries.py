@@ -135,9 +135,11 @@ def build_equation_change(con: duckdb.DuckDBPyConnection, settings: Settings, pe
     build_table(con, "equation_comparison_history", "equation_comparison_history", params, temporary=True)
     history = fetch_frame(con, "select * from equation_comparison_history")
     con.execute("drop table equation_comparison_history")
-    daily = pl.concat([daily_egfr_under(history, settings.pipeline.measures.adult_equation, comparison),
-                       fetch_frame(con, "select person_key, measure, day, value, n_results::bigint as n_results "
-                                        "from int_daily_values_averaged where measure = 'acr'")], how="vertical_relaxed")
+    m = settings.pipeline.measures
+    daily = pl.concat([daily_egfr_under(history, m.adult_equation, comparison, m.adult_min_age_years),
+                       fetch_frame(con, "select person_key, measure, day, value, n_results::bigint as n_results, "
+                                        "equation_family, is_at_or_above_a2 from int_daily_values_averaged "
+                                        "where measure = 'acr'")], how="vertical_relaxed")
     del history
     with_frame(con, daily, "create or replace temp table equation_daily_values as select * from _frame")
     rules = event_params(settings, period)

@@ -42,6 +42,8 @@ class ValidateSummary:
     by_source: dict[str, dict[str, int]] = field(default_factory=dict)
     held_back: dict[str, str] = field(default_factory=dict)  # source -> reason
     scope: Scope | None = None
+    #: source -> field -> {config_key, rows, values}: code values the source config does not map
+    unmapped: dict[str, dict[str, dict]] = field(default_factory=dict)
 
 
 def _judged_sql() -> str:
@@ -52,9 +54,19 @@ def _judged_sql() -> str:
     })  # fmt: skip
 
 
+def _unmapped_sql() -> str:
+    """int_unmapped_codes over one landed frame (``_frame``), its staging inlined."""
+    return sql_over("int_unmapped_codes", {
+        "landed_rows": "select * from _frame",
+        "stg_landed_rows": "sql:stg_landed_rows",
+    })  # fmt: skip
+
+
 def begin_judging(con: duckdb.DuckDBPyConnection) -> None:
-    """Start this run's ``int_results_validated`` (a temporary table), empty."""
+    """Start this run's ``int_results_validated`` and ``int_unmapped_codes`` (temporary
+    tables), empty."""
     with_frame(con, empty_landed(), "create or replace temp table int_results_validated as\n" + _judged_sql())
+    with_frame(con, empty_landed(), "create or replace temp table int_unmapped_codes as\n" + _unmapped_sql())
 
 
 def judge_file(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> None:
@@ -63,6 +75,95 @@ def judge_file(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> None:
     The rules read one row and the reference tables only, so judging file by file gives the
     same rows as judging the run at once; the raw line is kept on rejected rows only."""
     with_frame(con, frame, "insert into int_results_validated\n" + _judged_sql(), batch_rows=JUDGE_BATCH_ROWS)
+    candidates = _unmapped_candidates(con, frame)
+    if candidates.height:  # usually none: the unmapped-code query then costs nothing
+        with_frame(con, candidates, "insert into int_unmapped_codes\n" + _unmapped_sql())
+
+
+_KNOWN_SEX = ["F", "FEMALE", "M", "MALE", "U", "UNKNOWN", "OTHER"]
+_KNOWN_FASTING = ["Y", "YES", "TRUE", "1", "N", "NO", "FALSE", "0"]
+_FHIR = ["final", "amended", "corrected", "cancelled", "entered-in-error", "preliminary"]
+
+
+def _unmapped_candidates(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> pl.DataFrame:
+    """The rows of ``frame`` that may carry a code no config maps: a superset of what
+    ``int_unmapped_codes.sql`` counts, found in polars against the (small) reference tables, so
+    that the query runs only over them."""
+    if not frame.height:
+        return frame
+    loincs = [r[0] for r in con.execute("select loinc from reference.analyte_codes").fetchall()]
+    units = [r[0] for r in con.execute("select distinct unit from reference.unit_factors").fetchall()]
+    keys = [r[0] for r in con.execute("select alias_key from reference.unit_aliases").fetchall()]
+
+    def text(col: str) -> pl.Expr:
+        return pl.col(col).str.strip_chars()
+
+    def given(col: str) -> pl.Expr:
+        return text(col).fill_null("") != ""
+
+    unit_key = text("unit_text").str.to_lowercase().str.replace_all("µ", "u", literal=True) \
+        .str.replace_all("μ", "u", literal=True)  # fmt: skip
+    mask = (
+        (given("sex_text") & ~text("sex_text").str.to_uppercase().is_in(_KNOWN_SEX))
+        | (given("fasting_text") & ~text("fasting_text").str.to_uppercase().is_in(_KNOWN_FASTING))
+        | (given("status_text") & ~pl.col("status").fill_null("").is_in(_FHIR))
+        | (given("test_code_text") & ~pl.col("test_code").fill_null("").is_in(loincs))
+        | (given("unit_text") & ~text("unit_text").is_in(units) & ~unit_key.is_in(keys))
+    )
+    return frame.filter(mask.fill_null(True))
+
+
+#: Fields whose unmapped values change an indicator without rejecting the row (an unknown sex
+#: gives no eGFR) or reject it wholesale (an unknown unit): their share is gated.
+GATED_UNMAPPED_FIELDS = ("sex", "unit")
+
+
+def _has_unmapped_table(con: duckdb.DuckDBPyConnection) -> bool:
+    return bool(con.execute("select count(*) from duckdb_tables() where temporary "
+                            "and table_name = 'int_unmapped_codes'").fetchall()[0][0])
+
+
+def unmapped_codes(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, dict]]:
+    """This run's unmapped code values, per source and field: the config key that maps them,
+    the rows affected and the rows per value (most frequent first, at most 20 values)."""
+    out: dict[str, dict[str, dict]] = {}
+    if not _has_unmapped_table(con):
+        return out
+    for source, field_name, key, code, n in con.execute(
+        "select source_id, field, config_key, code, sum(rows)::bigint from int_unmapped_codes "
+        "group by all order by source_id, field, sum(rows) desc, code"
+    ).fetchall():
+        entry = out.setdefault(source, {}).setdefault(field_name, {"config_key": key, "rows": 0, "values": {}})
+        entry["rows"] += int(n)
+        if len(entry["values"]) < 20:
+            entry["values"][code] = int(n)
+    return out
+
+
+def unmapped_over_limit(con: duckdb.DuckDBPyConnection, limits: dict[str, float]) -> dict[str, str]:
+    """Sources whose share of this run's rows with an unmapped sex or unit value exceeds their
+    limit, with the reason (the quality gate holds them back like the rejection rate)."""
+    held: dict[str, str] = {}
+    if not _has_unmapped_table(con):
+        return held
+    rows = con.execute(
+        """
+        select r.source_id, r.n, coalesce(u.unmapped, 0) as unmapped
+        from (select source_id, count(*) as n from int_results_validated group by source_id) as r
+        left join (select source_id, sum(rows) as unmapped from int_unmapped_codes
+                   where field in (select unnest($fields::varchar[])) group by source_id) as u
+            on u.source_id = r.source_id
+        order by r.source_id
+        """,
+        {"fields": list(GATED_UNMAPPED_FIELDS)},
+    ).fetchall()
+    for source, n, unmapped in rows:
+        limit = limits.get(source, 1.0)
+        if n and unmapped / n > limit:
+            held[source] = (f"{int(unmapped)} of {n} rows have a sex or unit value the source config does not map "
+                            f"({unmapped / n:.1%}), above the limit of {limit:.1%}; map them under 'sex_codes' / "
+                            "'unit_aliases' (see 'kidneysurv sources check')")
+    return held
 
 
 #: Rows per Arrow batch when judging a file: the judging query then runs on every core.
@@ -73,6 +174,7 @@ def validate_landed(
     con: duckdb.DuckDBPyConnection,
     rejection_limits: dict[str, float],
     batch_gate: Callable[[duckdb.DuckDBPyConnection], dict[str, str]] | None = None,
+    unmapped_limits: dict[str, float] | None = None,
 ) -> tuple[int, int, dict[str, str]]:
     """Settle this run's judged rows (``int_results_validated``, filled by :func:`judge_file`):
     append them to rejected_rows, or keep them as this run's versions (the temporary view
@@ -84,7 +186,8 @@ def validate_landed(
     batch failed, with the reason; they are held back the same way.
     """
     failed_batches = batch_gate(con) if batch_gate is not None else {}
-    held = hold_back_sources(con, rejection_limits, failed_batches)
+    unmapped = unmapped_over_limit(con, unmapped_limits) if unmapped_limits else {}
+    held = hold_back_sources(con, rejection_limits, failed_batches, unmapped)
     rejected = con.execute(
         """
         insert into rejected_rows
@@ -111,9 +214,10 @@ def validate_landed(
 
 
 def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str, float],
-                      failed_batches: dict[str, str] | None = None) -> dict[str, str]:
-    """The quality gate: mark the files of sources over their rejection limit, or whose batch
-    failed its expectation suite."""
+                      failed_batches: dict[str, str] | None = None,
+                      unmapped: dict[str, str] | None = None) -> dict[str, str]:
+    """The quality gate: mark the files of sources over their rejection limit, over their
+    limit of unmapped sex or unit values, or whose batch failed its expectation suite."""
     rates = con.execute(
         """
         select source_id, count(*) as n, count(*) filter (where reason_code is not null) as rejected
@@ -129,6 +233,8 @@ def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str
                 f"{rejected} of {n} rows rejected ({rejected / n:.1%}), above the limit of "
                 f"{limit:.1%}; see rejected reasons with 'kidneysurv sources check'"
             )
+        if unmapped and source_id in unmapped:
+            reasons.append(unmapped[source_id])
         if failed_batches and source_id in failed_batches:
             reasons.append(f"batch failed its expectation suite: {failed_batches[source_id]}")
         if reasons:
@@ -161,7 +267,7 @@ class Scope:
     persons: int
 
 
-def settle_scope(con: duckdb.DuckDBPyConnection) -> Scope:
+def settle_scope(con: duckdb.DuckDBPyConnection, full: bool = False) -> Scope:
     """Point the view ``versions_in_scope`` at the versions whose outcome this run must settle.
 
     New rows (this run's ``new_versions``) can change only the outcome of versions that share a
@@ -170,7 +276,8 @@ def settle_scope(con: duckdb.DuckDBPyConnection) -> Scope:
     person) or the same source + specimen + analyte (versions with a specimen id, which a
     faulty extract may give under two persons). The scope is the closure of both relations,
     taken until it stops growing, so settling it gives exactly what settling every version
-    would. When most versions are new (a first run, a backfill) the whole table is the scope.
+    would. When most versions are new (a first run, a backfill) the whole table is the scope,
+    and so it is when ``full`` (a reprocess, whose replaced rows no longer seed the closure).
     """
     con.execute(
         "create or replace temp view all_versions as "
@@ -179,7 +286,7 @@ def settle_scope(con: duckdb.DuckDBPyConnection) -> Scope:
     stored = con.execute("select count(*) from result_versions").fetchall()[0][0]
     new = con.execute("select count(*) from new_versions").fetchall()[0][0]
     total = stored + new
-    if total == 0 or new >= FULL_SCOPE_SHARE * total:
+    if total == 0 or full or new >= FULL_SCOPE_SHARE * total:
         con.execute("create or replace temp view versions_in_scope as select * from all_versions")
         persons = con.execute("select count(distinct person_key) from all_versions").fetchall()[0][0]
         return Scope("all", total, persons)
@@ -245,14 +352,14 @@ def close_over_partitions(con: duckdb.DuckDBPyConnection, seed: str, params: dic
     return size
 
 
-def resolve_versions(con: duckdb.DuckDBPyConnection) -> tuple[int, Scope]:
+def resolve_versions(con: duckdb.DuckDBPyConnection, full: bool = False) -> tuple[int, Scope]:
     """Settle the outcome of the versions in scope and bring lab_results up to date.
 
     Returns the rows of lab_results (a view: the accepted versions) and the scope; in a touched
     scope ``scope_persons`` names the persons whose results may have changed, for the measure
     stage.
     """
-    scope = settle_scope(con)
+    scope = settle_scope(con, full)
     build_table(con, "int_result_versions_resolved", params={"as_of": NO_LIMIT}, temporary=True)
     if scope.kind == "touched":
         # the results whose accepted set this run can change: its own versions and the stored
@@ -374,7 +481,13 @@ def validate_stage(
         s.id: s.max_rejection_rate if s.max_rejection_rate is not None else default
         for s in settings.sources
     }
-    valid, rejected, held = validate_landed(con, limits, batch_gate)
+    gate = settings.pipeline.quality_gate
+    unmapped_limits = {
+        s.id: s.max_unmapped_share if s.max_unmapped_share is not None else gate.max_unmapped_share
+        for s in settings.sources
+    }
+    unmapped = unmapped_codes(con)  # before the gate: a held-back source's gaps are named too
+    valid, rejected, held = validate_landed(con, limits, batch_gate, unmapped_limits)
     n_results, scope = resolve_versions(con)
     update_ledger_counts(con, scope)
-    return ValidateSummary(valid, rejected, n_results, outcome_counts(con), held, scope)
+    return ValidateSummary(valid, rejected, n_results, outcome_counts(con), held, scope, unmapped)

@@ -24,7 +24,8 @@ from pipeline.settings import Settings
 SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
 WAREHOUSE_FILE = "surveillance.duckdb"
 _NAME = re.compile(r"^[a-z][a-z0-9_]{0,62}$")
-LEDGER_TABLES = ("ingest_files", "result_versions", "rejected_rows", "runs", "link_snapshots")
+LEDGER_TABLES = ("ingest_files", "result_versions", "rejected_rows", "runs", "link_snapshots", "key_check",
+                 "result_versions_replaced", "rejected_rows_replaced", "reprocess_log")
 
 
 def sql_path(name: str) -> Path:
@@ -62,6 +63,9 @@ def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
         con.execute(read_sql(table))
     # columns added after a table was first written (warehouses made by an earlier version)
     con.execute("alter table ingest_files add column if not exists extract_month varchar")
+    con.execute("alter table ingest_files add column if not exists config_sha256 varchar")
+    con.execute("alter table runs add column if not exists revision integer")
+    con.execute("alter table runs add column if not exists revision_reason varchar")
 
 
 def build_table(con: duckdb.DuckDBPyConnection, name: str, target: str | None = None,

@@ -55,6 +55,8 @@ def make_small_config(target: Path, max_rejection_rate: float = 1.0) -> Path:
     shutil.copytree(CONFIG_DIR, target, ignore=shutil.ignore_patterns("regions"))
     write_region(target)
     edit_pipeline_yaml(target, "quality_gate", "max_rejection_rate", max_rejection_rate)
+    # the unmapped sex/unit gate goes with the rejection gate (off at 1.0, so defects are rows)
+    edit_pipeline_yaml(target, "quality_gate", "max_unmapped_share", max_rejection_rate)
     # Great Expectations costs seconds per run: its suites are tested in test_quality.py and in
     # the integration tests, which use the shipped config
     edit_pipeline_yaml(target, "quality_gate", "great_expectations", False)

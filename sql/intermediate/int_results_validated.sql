@@ -13,7 +13,15 @@ with converted as (
         k.unit is not null as unit_known,
         a.allowed_units,
         o.other_units,
-        year(s.collected_date) - s.birth_year as age_years
+        -- age at collection in completed years, the birth taken at mid-year (1 July) when only
+        -- the year is known: off by at most about half a year (pipeline/measures.py, MID_YEAR)
+        -- (a birth year more than 200 years back keeps the crude difference, which the age rule
+        -- rejects, so that make_date never sees a year it cannot represent)
+        case
+            when s.birth_year between year(s.collected_date) - 200 and year(s.collected_date)
+                then greatest(0, floor(datediff('day', make_date(s.birth_year, 7, 1), s.collected_date) / 365.25))::bigint
+            else year(s.collected_date) - s.birth_year
+        end as age_years
     from stg_landed_rows as s
     left join reference.unit_factors as f on f.analyte = s.analyte and f.unit = s.reported_unit
     left join (

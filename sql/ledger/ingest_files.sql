@@ -1,5 +1,6 @@
 -- ingest_files: one row per input file version (the ledger). Counts are brought up to date by
 -- every run, because a later file can supersede or withdraw the rows of an earlier one.
+-- config_sha256: the source's config the file's rows were made under (pipeline/reprocess.py).
 create table if not exists ingest_files (
     file_id          bigint primary key,
     source_id        varchar not null,
@@ -18,5 +19,6 @@ create table if not exists ingest_files (
     rows_pending     bigint not null default 0,
     run_period       varchar not null,
     extract_month    varchar,
-    ingested_at      timestamp not null
+    ingested_at      timestamp not null,
+    config_sha256    varchar
 );

@@ -1,6 +1,7 @@
 -- person_status: one row per person with any accepted result as known at the period end
 -- ($period_end): demographics from the latest result, latest eGFR and ACR with their KDIGO
--- categories, confirmed CKD, lab-evidenced diabetes and the KDIGO risk category.
+-- categories, confirmed CKD, lab-evidenced diabetes (confirmed as set by diabetes_rule) and the
+-- KDIGO risk category.
 with known as not materialized (
     -- not materialized: read twice (demographics, diabetes) rather than written out
     select * from int_results_known
@@ -34,9 +35,10 @@ latest_acr as (
     where a_category is not null and not is_acr_estimated
     group by person_key
 ),
-diabetes as (
-    -- ADA Standards of Care thresholds, compared in the unit the lab reported
-    select person_key, min(collected_date) as diabetes_first_date
+abnormal_glycaemia as (
+    -- ADA Standards of Care thresholds, compared in the unit the lab reported; a censored value
+    -- counts only when certainly at or above the threshold
+    select person_key, collected_date as day, analyte
     from known
     where (analyte = 'hba1c' and comparator is distinct from '<' and comparator is distinct from '<=' and (
                (reported_unit = '%' and reported_value >= $hba1c_percent)
@@ -44,6 +46,19 @@ diabetes as (
        or (analyte = 'glucose' and is_fasting and comparator is distinct from '<' and comparator is distinct from '<=' and (
                (reported_unit = 'mg/dL' and reported_value >= $glucose_mg_dl)
             or (reported_unit = 'mmol/L' and reported_value >= $glucose_mmol_l)))
+),
+glycaemia_days as (
+    select person_key, day, count(distinct analyte) as tests,
+           row_number() over (partition by person_key order by day) - 1 as earlier_days
+    from abnormal_glycaemia
+    group by person_key, day
+),
+diabetes as (
+    -- ADA Standards of Care: diabetes by labs on the day a second abnormal result confirms it
+    -- (two tests on one day, or a second day); $diabetes_min_results = 1 with diabetes_rule single
+    select person_key, min(day) as diabetes_first_date
+    from glycaemia_days
+    where tests >= $diabetes_min_results or earlier_days + 1 >= $diabetes_min_results
     group by person_key
 ),
 ckd as (

@@ -6,8 +6,8 @@
 --   persons_ckd_added: of the persons tested counting those, persons without confirmed CKD whose
 --     albuminuria, estimated days counted, stays at or above the CKD threshold (rule ckd_acr of
 --     reference.trajectory_rules: 30 mg/g) on consecutive days spanning its min_span_days (90);
---     a day with a measured ACR goes by the measured daily mean, a day with only estimates by
---     the estimated category (A2 or A3 qualifies);
+--     a day with a measured ACR goes by its A2 status (is_at_or_above_a2, as the rule reads it), a
+--     day with only estimates by the estimated category (A2 or A3 qualifies);
 --   with_acr_added / with_egfr_and_acr_added: persons with diabetes (as
 --     district_screening_coverage) whose ACR in the window is estimated only, and of those, with
 --     an eGFR (they would move into with_egfr_and_acr).
@@ -20,17 +20,18 @@ window_start as (
 ),
 estimated_days as (
     select person_key, collected_date as day,
-           bool_or(a_category in ('A2', 'A3')) as qualifies
+           bool_or(coalesce(is_at_or_above_a2, a_category in ('A2', 'A3'))) as qualifies
     from int_measures_known
-    where is_acr_estimated and a_category is not null
+    where is_acr_estimated and (is_at_or_above_a2 is not null or a_category is not null)
     group by person_key, collected_date
 ),
 albuminuria_days as (
-    -- measured daily mean first; a day with only estimates by its estimated category
+    -- a measured day by its A2 status (as the ckd_acr rule reads it); a day with only estimates
+    -- by their estimated category
     select coalesce(m.person_key, e.person_key) as person_key, coalesce(m.day, e.day) as day,
-           case when m.person_key is not null then m.value >= (select threshold from rule)
-                else e.qualifies end as qualifies
-    from (select person_key, day, value from int_daily_values_averaged where measure = 'acr') as m
+           coalesce(m.is_at_or_above_a2, e.qualifies) as qualifies
+    from (select person_key, day, is_at_or_above_a2 from int_daily_values_averaged
+          where measure = 'acr' and is_at_or_above_a2 is not null) as m
     full join estimated_days as e on e.person_key = m.person_key and e.day = m.day
 ),
 islands as (

@@ -9,7 +9,7 @@ with known_egfr as (
     where m.egfr is not null
 )
 select k.person_key, k.collected_date, k.analyte, k.sex, k.age_years, k.egfr, k.egfr_equation,
-       r.value as creatinine_mg_dl
+       r.value as creatinine_mg_dl, r.birth_year
 from known_egfr as k
 left join int_results_known as r
     on r.source_id = k.source_id and r.file_id = k.file_id and r.line_no = k.line_no

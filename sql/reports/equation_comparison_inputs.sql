@@ -6,7 +6,7 @@
 -- district_equation_change (pipeline/equation_impact.py).
 with window_creatinine as (
     select m.person_key, m.collected_date as day, m.sex, m.age_years, m.egfr, m.egfr_equation,
-           m.egfr_creatinine, r.value as creatinine_mg_dl
+           m.egfr_creatinine, r.value as creatinine_mg_dl, r.birth_year
     from int_measures_known as m
     join int_results_known as r
         on r.source_id = m.source_id and r.file_id = m.file_id and r.line_no = m.line_no
@@ -20,8 +20,8 @@ latest as (
     from window_creatinine
     group by person_key
 )
-select p.district_code, w.person_key, w.day, w.sex, w.age_years, w.egfr, w.egfr_equation,
-       w.egfr_creatinine, w.creatinine_mg_dl
+select p.district_code, w.person_key, w.day as collected_date, w.sex, w.age_years, w.birth_year, w.egfr,
+       w.egfr_equation, w.egfr_creatinine, w.creatinine_mg_dl
 from window_creatinine as w
 join latest as l on l.person_key = w.person_key and l.day = w.day
 join person_status as p on p.person_key = w.person_key and p.period = $period

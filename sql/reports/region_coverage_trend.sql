@@ -11,11 +11,18 @@ with month_ends as (
     from range(0, 12) as t(k)
 ),
 known_tests as (
-    select person_key, collected_date, reported_date,
-           egfr is not null as is_egfr,
-           acr_mg_g is not null and not is_acr_estimated as is_acr
-    from int_measures_known
-    where egfr is not null or (acr_mg_g is not null and not is_acr_estimated)
+    -- an eGFR, or an ACR as int_daily_values_averaged counts one (what coverage counts)
+    select person_key, collected_date, reported_date, is_egfr, is_acr
+    from (
+        select person_key, collected_date, reported_date,
+               egfr is not null as is_egfr,
+               coalesce(acr_basis in ('measured_acr', 'computed_from_albumin_and_creatinine',
+                                      'timed_albumin_excretion')
+                        and (acr_mg_g is not null or aer_mg_24h is not null or acr_comparator is not null),
+                        false) as is_acr
+        from int_measures_known
+    )
+    where is_egfr or is_acr
 ),
 diabetic as (
     select person_key, diabetes_first_date

@@ -54,6 +54,8 @@ select
         when upper(trim(n.sex_text)) in ('M', 'MALE') then 'M'
         else 'U'
     end as sex,
+    n.sex_text,
+    n.fasting_text,
     try_cast(n.birth_year_text as integer) as birth_year,
     n.birth_year_text,
     nullif(trim(n.district_code), '') as district_code

@@ -49,12 +49,15 @@ from tests.conftest import make_small_config, rows, write_inbox
 
 ROOT = Path(__file__).resolve().parents[2]
 PERIOD = "2026-01"
+#: January is run again after a late file: a revision of the published month (README, "Corrections")
+REASON = "a late January file"
 LAB = "westerfold_general_lab"
 HEADER = ("person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,"
           "status,height_cm,reported_at,fasting\n")  # fmt: skip
 #: The run under test, in a child process: ``python -c CHILD root period config inbox out``.
 CHILD = ("import sys; sys.path.insert(0, sys.argv[1]); from pipeline.flows import run_month_plain; "
-         "run_month_plain(sys.argv[2], sys.argv[3], sys.argv[4], sys.argv[5], demo=True)")  # fmt: skip
+         "run_month_plain(sys.argv[2], sys.argv[3], sys.argv[4], sys.argv[5], demo=True, "
+         "revise='a late January file')")  # fmt: skip
 #: Killed here, the run has not committed: everything must be as before it.
 BEFORE_COMMIT = ["ingest:after", "summarise:after", "export:after", "publish:journal"]
 #: Killed here, the month is committed: the next run (or recovery) completes the publication.
@@ -139,12 +142,12 @@ def scenario(tmp_path_factory) -> Scenario:
     config = make_small_config(base / "config")
     inbox = write_inbox(base, {f"{LAB}/results_{PERIOD}.csv": results_csv(0, 60, "WGH")})
     before = base / "before"
-    run_month_plain(PERIOD, str(config), str(inbox), str(before), demo=True)
+    run_month_plain(PERIOD, str(config), str(inbox), str(before), demo=True, revise=REASON)
     # the run under test: a late file for the same month arrives and January is run again
     write_inbox(base, {f"{LAB}/results_{PERIOD}_late.csv": results_csv(60, 40, "LATE")})
     reference = base / "reference"
     shutil.copytree(before, reference)
-    run_month_plain(PERIOD, str(config), str(inbox), str(reference), demo=True)
+    run_month_plain(PERIOD, str(config), str(inbox), str(reference), demo=True, revise=REASON)
     s = Scenario(config, inbox, before, reference, warehouse_dump(before), published_files(before),
                  warehouse_dump(reference, across_runs=True), published_files(reference, tables_only=True))  # fmt: skip
     # the late file changes the published tables, so "as before" and "as the reference" differ
@@ -182,7 +185,7 @@ for point, out in jobs.items():
     if pid == 0:
         os.environ["KIDNEYSURV_FAULT_AT"] = point
         try:
-            run_month_plain(period, config, inbox, out, demo=True)
+            run_month_plain(period, config, inbox, out, demo=True, revise="a late January file")
         except BaseException as exc:
             print(f"{point}: {exc!r}", file=sys.stderr)
             os._exit(1)
@@ -229,7 +232,7 @@ def test_killed_before_the_commit_leaves_everything_as_before(scenario, killed, 
 @pytest.mark.parametrize("point", BEFORE_COMMIT)
 def test_after_a_kill_before_the_commit_the_next_run_is_as_uninterrupted(scenario, killed, point):
     out = killed[point]
-    run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True)
+    run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
     assert_as_reference(scenario, out)
 
 
@@ -254,7 +257,7 @@ def test_killed_after_the_commit_the_month_is_committed_and_recovery_publishes_i
     # recovery put the killed run's own exports in place (nothing was recomputed)
     manifest = json.loads((out / PERIOD / "run_manifest.json").read_text(encoding="utf-8"))
     assert manifest["run_id"] == journal["run_id"]
-    run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True)
+    run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
     assert_as_reference(scenario, out)
 
 
@@ -264,10 +267,10 @@ def test_killed_after_the_commit_the_month_is_committed_and_recovery_publishes_i
 def test_same_period_twice_gives_byte_identical_exports(scenario, tmp_path):
     out = tmp_path / "again"
     shutil.copytree(scenario.reference, out)
-    run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True)
+    run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
     assert published_files(out, tables_only=True) == scenario.reference_tables  # sha256 of CSV and Parquet
     assert warehouse_dump(out, across_runs=True) == scenario.reference_dump
-    assert len(scenario.reference_tables) == 2 * len(PUBLISHED_TABLES)
+    assert len(scenario.reference_tables) == 2 * 2 * len(PUBLISHED_TABLES)  # CSV + Parquet, revision 2 and 1
 
 
 # --------------------------------------------------------------------------- one run at a time
@@ -290,7 +293,7 @@ def test_a_second_concurrent_run_is_refused_and_does_no_harm(scenario, tmp_path)
             time.sleep(0.1)
         # the first run holds the lock, in the middle of its transaction
         with pytest.raises(RunLocked) as refused:
-            run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True)
+            run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
         message = str(refused.value)
         assert str(out) in message and f"pid {first.pid}" in message and "changed nothing" in message
         cli = subprocess.run(
@@ -347,7 +350,7 @@ def test_disk_full_while_writing_exports_changes_nothing(scenario, tmp_path, mon
             monkeypatch.setenv("KIDNEYSURV_FAULT_AT", "export:before" if how == "small_disk" else "export:after")
             monkeypatch.setenv("KIDNEYSURV_FAULT_KIND", "enospc")
         with pytest.raises(Exception) as full:
-            run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True)
+            run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
         assert "No space left on device" in str(full.value) or getattr(full.value, "errno", None) == errno.ENOSPC
         if mounted:  # the message names the export file being written
             assert str(out / f".{PERIOD}.partial") in str(full.value), str(full.value)
@@ -356,7 +359,7 @@ def test_disk_full_while_writing_exports_changes_nothing(scenario, tmp_path, mon
         if mounted:
             ballast.unlink()
         monkeypatch.delenv("KIDNEYSURV_FAULT_AT", raising=False)
-        run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True)
+        run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
         assert_as_reference(scenario, out)
     finally:
         if mounted:
@@ -420,7 +423,7 @@ def faulty(tmp_path_factory) -> FaultyRun:
     out = base / "out"
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(Path, "open", open_)
-        summary = run_month_plain(PERIOD, str(config), str(inbox), str(out), demo=True)
+        summary = run_month_plain(PERIOD, str(config), str(inbox), str(out), demo=True, revise=REASON)
     denied.chmod(0o600)
     con = duckdb.connect(str(out / WAREHOUSE_FILE), read_only=True)
     try:

@@ -11,8 +11,10 @@ from tests.conftest import rows, run_month, write_inbox
 HEADER = ("person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status,"
           "reported_at")
 LINES = [
-    # HbA1c 7.0 % collected 2025-06-01, reported 06-02: diabetes from June
+    # HbA1c 7.0 % on 2025-06-01 confirmed by a second on 06-15 (ADA: a second abnormal test),
+    # reported the next day: diabetes from June
     "TOKT1,1960,F,WF01,S1,2025-06-01,4548-4,7.0,%,final,2025-06-02",
+    "TOKT1,1960,F,WF01,S1B,2025-06-15,4548-4,7.2,%,final,2025-06-16",
     # ACR collected 07-10, reported 07-12: counts from the July month end
     "TOKT1,1960,F,WF01,S2,2025-07-10,9318-7,12,mg/g,final,2025-07-12",
     # creatinine collected 07-10 but reported 09-05: its eGFR counts only from the September month end

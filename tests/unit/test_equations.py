@@ -611,17 +611,19 @@ def test_albuminuria_categories_partition_the_number_line(values, inclusive):
 
 
 def test_dipstick_mapping_confirmed():
-    # Sumida et al. 2020 (confirmed mapping): negative → A1, trace or + → A2, ++ or more → A3.
+    # KDIGO 2012 (Kidney Int Suppl 2013;3:1, albuminuria categories, reagent strip row; from
+    # memory) and Sumida et al. 2020: negative → A1, trace on the A1/A2 border (no category),
+    # + → A2, ++ or more → A3.
     readings = ["negative", "trace", "1+", "+", "2+", "++", "3+", "+++", "4+"]
     frame = pl.DataFrame({"x": readings})
     got = column(eq.albuminuria_category_dipstick(X), frame)
-    assert got == ["A1", "A2", "A2", "A2", "A3", "A3", "A3", "A3", "A3"]
+    assert got == ["A1", None, "A2", "A2", "A3", "A3", "A3", "A3", "A3"]
 
 
 def test_dipstick_case_spaces_unknown_and_null():
     frame = pl.DataFrame({"x": [" Trace ", "NEGATIVE", "moderate", "", None, "5+"]})
     got = column(eq.albuminuria_category_dipstick(X), frame)
-    assert got == ["A2", "A1", None, None, None, None]
+    assert got == [None, "A1", None, None, None, None]  # trace spans A1-A2 (KDIGO 2012)
 
 
 @pytest.mark.parametrize(

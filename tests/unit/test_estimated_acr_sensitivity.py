@@ -3,7 +3,7 @@ estimated albuminuria adds to the default counts. The rules checked, with their 
 CKD confirmed by albuminuria at or above 30 mg/g lasting more than 3 months (KDIGO 2012, Kidney
 Int Suppl 2013;3:1; this project's run of consecutive daily values spanning 90 days); a dipstick
 of trace or 1+ stands for A2, 2+ or more for A3 (Sumida et al., Ann Intern Med 2020;173:426);
-diabetes by HbA1c of 6.5 % or more (ADA Standards of Care). Each person's expected effect is
+diabetes by HbA1c of 6.5 % or more, confirmed by a second test (ADA Standards of Care). Each person's expected effect is
 worked out in the comments."""
 
 from __future__ import annotations
@@ -20,12 +20,14 @@ LINES = [
     "TOKP1,1960,F,WF01,S101,2025-06-01,5804-0,2+,,final",
     "TOKP1,1960,F,WF01,S102,2025-09-15,5804-0,1+,,final",
     "TOKP1,1960,F,WF01,S103,2025-06-01,4548-4,7.0,%,final",
+    "TOKP1,1960,F,WF01,S104,2025-06-20,4548-4,7.2,%,final",  # a second test confirms diabetes (ADA)
     # P2 (WF01): creatinine (tested by default), dipsticks 61 days apart (no run of 90 days), HbA1c
     # 7.0 %: +1 with ACR, +1 with both (it has an eGFR).
     "TOKP2,1950,M,WF01,S201,2025-06-01,2160-0,1.0,mg/dL,final",
     "TOKP2,1950,M,WF01,S202,2025-06-01,5804-0,2+,,final",
     "TOKP2,1950,M,WF01,S203,2025-08-01,5804-0,1+,,final",
     "TOKP2,1950,M,WF01,S204,2025-06-01,4548-4,7.0,%,final",
+    "TOKP2,1950,M,WF01,S205,2025-06-20,4548-4,7.2,%,final",
     # P3 (WF02): measured ACR 50 (05-01), dipstick 2+ (07-01), measured ACR 10 (08-15): the measured
     # A1 day breaks the run, which spans 61 days: nothing added.
     "TOKP3,1970,F,WF02,S301,2025-05-01,9318-7,50,mg/g,final",

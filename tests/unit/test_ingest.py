@@ -88,8 +88,9 @@ def test_standard_layout_line_numbers_and_masked_raw_text(settings: Settings):
     assert rows[4]["value_text"] == "<3" and rows[4]["value_clean"] == "<3"
     # optional columns absent from the file are null
     assert rows[2]["height_text"] is None and rows[2]["reported_text"] is None
-    # no report date and no month in the file name: the ingestion date stands in
-    assert rows[2]["reported_date"] == TODAY and rows[2]["reported_date_basis"] == "ingested"
+    # no report date and no month in the file name: the date given for undated rows (in a run,
+    # the last day of its period) stands in
+    assert rows[2]["reported_date"] == TODAY and rows[2]["reported_date_basis"] == "run_period"
 
 
 def test_standard_layout_short_row_is_flagged(settings: Settings):

@@ -41,7 +41,8 @@ def warehouse(settings):
         create table measures_base (
             person_key varchar, collected_date date, reported_date date, analyte varchar,
             egfr double, acr_mg_g double, is_acr_estimated boolean, a_category varchar,
-            aer_mg_24h double
+            aer_mg_24h double, age_years bigint, acr_basis varchar, acr_comparator varchar,
+            is_at_or_above_a2 boolean
         )
         """
     )
@@ -60,17 +61,19 @@ def day(offset: int) -> dt.date:
 
 
 def insert(con, person: str, egfr: list[tuple[int, float]] = (), acr: list[tuple[int, float]] = (),
-           estimated_acr: bool = False, reported_lag: int = 1) -> None:  # fmt: skip
+           estimated_acr: bool = False, reported_lag: int = 1, age: int = 50) -> None:  # fmt: skip
     for offset, value in egfr:
         con.execute(
-            "insert into measures_base values (?, ?, ?, 'creatinine', ?, null, null, null, null)",
-            [person, day(offset), day(offset + reported_lag), value],
+            "insert into measures_base values (?, ?, ?, 'creatinine', ?, null, null, null, null, ?, "
+            "null, null, null)",
+            [person, day(offset), day(offset + reported_lag), value, age],
         )
     for offset, value in acr:
         con.execute(
-            "insert into measures_base values (?, ?, ?, 'acr', null, ?, ?, ?, null)",
+            "insert into measures_base values (?, ?, ?, 'acr', null, ?, ?, ?, null, ?, ?, null, ?)",
             [person, day(offset), day(offset + reported_lag), value, estimated_acr,
-             "A1" if value < 30 else "A2" if value <= 300 else "A3"],
+             "A1" if value < 30 else "A2" if value <= 300 else "A3", age,
+             "estimated_from_pcr" if estimated_acr else "measured_acr", value >= 30],
         )
 
 
@@ -233,7 +236,8 @@ def test_rules_follow_the_settings(settings):
     rules = trajectory_rules(settings)
     by_id = {r["rule_id"]: r for r in rules.iter_rows(named=True)}
     assert set(by_id) == {"sustained_decline_30", "sustained_decline_40", "sustained_decline_57",
-                          "kidney_failure", "ckd_egfr", "ckd_acr"}  # fmt: skip
+                          "kidney_failure", "ckd_egfr", "ckd_acr", "progression"}  # fmt: skip
+    assert by_id["progression"]["min_span_days"] == 90 and by_id["progression"]["threshold"] == 0.25
     assert by_id["sustained_decline_40"]["threshold"] == 0.40
     assert by_id["sustained_decline_40"]["after_baseline"] is True
     assert by_id["ckd_egfr"]["min_span_days"] == 90
@@ -279,14 +283,168 @@ def test_progression_needs_a_worse_category_and_a_25_percent_fall(warehouse):
 
 
 def test_new_onset_albuminuria_after_diabetes(warehouse):
-    # ADA: HbA1c >= 6.5 % evidences diabetes; new-onset = first A2/A3 after that, none before
+    # ADA: HbA1c >= 6.5 % on two days evidences diabetes (on the second); new-onset = first
+    # A2/A3 after that, none before
     for person, hba1c_day in (("onset", 10), ("before", 100)):
-        warehouse.execute(
-            "insert into int_results_known values (?, ?, ?, 'hba1c', null, '%', 7.2, null)",
-            [person, day(hba1c_day), day(hba1c_day + 1)],
-        )
+        for d in (hba1c_day - 7, hba1c_day):
+            warehouse.execute(
+                "insert into int_results_known values (?, ?, ?, 'hba1c', null, '%', 7.2, null)",
+                [person, day(d), day(d + 1)],
+            )
     insert(warehouse, "onset", acr=[(5, 12.0), (60, 45.0)])
     insert(warehouse, "before", acr=[(50, 45.0), (150, 60.0)])  # albuminuric before diabetes
     events = build(warehouse)
     assert events[("onset", "new_onset_albuminuria")]["days_since_diabetes"] == 50
     assert ("before", "new_onset_albuminuria") not in events
+
+
+# --------------------------------------------------------------------------- clinical rules
+
+
+def insert_acr(con, person: str, offset: int, *, acr_mg_g: float | None, above_a2: bool | None,
+               comparator: str | None = None, basis: str = "measured_acr", aer: float | None = None) -> None:  # fmt: skip
+    """One albuminuria measure as pipeline/measures.py leaves it (its A2 status in the unit
+    reported already taken; tests/unit/test_measures.py checks that against KDIGO 2012)."""
+    con.execute(
+        "insert into measures_base values (?, ?, ?, 'acr', null, ?, false, null, ?, 50, ?, ?, ?)",
+        [person, day(offset), day(offset + 1), acr_mg_g, aer, basis, comparator, above_a2],
+    )
+
+
+def test_censored_acrs_below_a2_are_not_ckd(warehouse):
+    # two "<30 mg/g" 100 days apart: every value below the KDIGO A2 threshold, so no CKD by ACR
+    # (KDIGO 2012: CKD by albuminuria = ACR >= 30 mg/g for more than 3 months)
+    for offset in (0, 100):
+        insert_acr(warehouse, "p", offset, acr_mg_g=None, above_a2=False, comparator="<")
+    events = build(warehouse)
+    assert status(events, "p", "ckd_acr") is None
+    daily = rows(warehouse, "select value, is_at_or_above_a2 from int_daily_values_averaged where measure = 'acr'")
+    assert daily == [(None, False), (None, False)]  # the bound is not averaged as a value
+
+
+def test_a_censored_acr_spanning_a2_neither_counts_nor_breaks_a_run(warehouse):
+    # "<5 mg/mmol" could be A1 or A2 (KDIGO 2012: A2 from 3 mg/mmol): unknown for the rule
+    insert_acr(warehouse, "p", 0, acr_mg_g=50.0, above_a2=True)
+    insert_acr(warehouse, "p", 50, acr_mg_g=None, above_a2=None, comparator="<")
+    insert_acr(warehouse, "p", 95, acr_mg_g=60.0, above_a2=True)
+    event = build(warehouse)[("p", "ckd_acr")]
+    assert event["event_status"] == "confirmed" and event["n_values"] == 2
+
+
+def test_ckd_by_acr_follows_the_category_in_the_unit_reported(warehouse):
+    # 3.2 mg/mmol is A2 (KDIGO 2012), although 3.2 x 8.84 = 28.3 mg/g is below 30 mg/g
+    for offset in (0, 100):
+        insert_acr(warehouse, "p", offset, acr_mg_g=28.3, above_a2=True)
+    assert status(build(warehouse), "p", "ckd_acr") == "confirmed"
+
+
+def test_timed_albumin_excretion_counts_for_ckd(warehouse):
+    # KDIGO 2012: AER >= 30 mg/24 h is A2 or above
+    for offset in (0, 100):
+        insert_acr(warehouse, "p", offset, acr_mg_g=None, above_a2=True, basis="timed_albumin_excretion", aer=45.0)
+    assert status(build(warehouse), "p", "ckd_acr") == "confirmed"
+
+
+# progression (KDIGO 2012): a drop in G category with a fall of 25 % or more from the baseline;
+# CKD is defined over more than 3 months and a fluctuation or AKI is not progression, so the
+# fall must hold over consecutive values spanning 90 days (project setting)
+
+
+def test_one_low_egfr_then_recovery_is_not_progression(warehouse):
+    # baseline 70 (G2), then 40 (G3b, 43 % lower) and four weeks later 68 again
+    insert(warehouse, "p", [(0, 70.0), (100, 40.0), (128, 68.0)])
+    assert status(build(warehouse), "p", "progression") is None
+
+
+def test_progression_pending_then_confirmed_after_90_days(warehouse):
+    insert(warehouse, "p", [(0, 70.0), (100, 40.0), (150, 41.0)])
+    insert(warehouse, "q", [(0, 70.0), (100, 40.0), (150, 41.0), (190, 42.0)])
+    events = build(warehouse)
+    assert status(events, "p", "progression") == "pending"
+    event = events[("q", "progression")]
+    assert event["event_status"] == "confirmed" and event["confirmation_date"] == day(190)
+    assert event["baseline_egfr"] == 70.0
+
+
+def test_a_fall_within_the_same_category_is_not_progression(warehouse):
+    # baseline 58 (G3a), 44 is G3b but only 24 % lower: both conditions are needed
+    insert(warehouse, "p", [(0, 58.0), (100, 44.0), (200, 44.0)])
+    assert status(build(warehouse), "p", "progression") is None
+
+
+# equation family: CKD-EPI 2021 from 18, EKFC below (config/pipeline.yaml); for the same
+# creatinine the adult equation gives a different eGFR, so a child baseline is not compared
+# with adult values (project rule, from the equations' published forms)
+
+
+def test_decline_does_not_cross_from_the_child_to_the_adult_equation(warehouse):
+    # child baseline 120 at 17, adult values 80 from 18: 33 % lower but not a decline
+    insert(warehouse, "p", [(0, 120.0), (30, 120.0)], age=17)
+    insert(warehouse, "p", [(200, 80.0), (240, 80.0), (420, 80.0)], age=18)
+    events = build(warehouse, period_end=dt.date(2026, 12, 31))  # rapid decline needs a year
+    assert status(events, "p", "sustained_decline_30") is None
+    assert status(events, "p", "rapid_decline") is None
+    families = rows(warehouse, "select equation_family, count(*) from int_daily_values_averaged "
+                               "where measure = 'egfr' group by all order by 1")  # fmt: skip
+    assert families == [("adult", 3), ("child", 2)]
+
+
+def test_a_new_adult_baseline_starts_at_18(warehouse):
+    # adult baseline 100 (first adult value and those within 90 days), then 60: a 40 % decline
+    insert(warehouse, "p", [(0, 130.0)], age=17)
+    insert(warehouse, "p", [(100, 100.0), (250, 60.0), (280, 60.0)], age=18)
+    event = build(warehouse)[("p", "sustained_decline_40")]
+    assert event["event_status"] == "confirmed" and event["baseline_egfr"] == 100.0
+
+
+# diabetes by labs (ADA Standards of Care, diagnosis: HbA1c >= 6.5 %, fasting glucose >= 126
+# mg/dL; a second abnormal result, from the same sample or a second one, confirms it)
+
+
+def hba1c(con, person: str, offset: int, value: float = 7.0, analyte: str = "hba1c",
+          unit: str = "%", fasting: bool | None = None, comparator: str | None = None) -> None:  # fmt: skip
+    con.execute(
+        "insert into int_results_known values (?, ?, ?, ?, ?, ?, ?, ?)",
+        [person, day(offset), day(offset + 1), analyte, comparator, unit, value, fasting],
+    )
+
+
+def diabetic_onsets(con, params_override: dict | None = None) -> dict[str, int]:
+    events = build_with(con, params_override or {})
+    return {p: e["days_since_diabetes"] for (p, rule), e in events.items() if rule == "new_onset_albuminuria"}
+
+
+def build_with(con, override: dict) -> dict:
+    params = {**event_params(load_settings(CONFIG_DIR), Period.parse(PERIOD)), **override}
+    con.execute("create or replace table int_measures_known as select * from measures_base")
+    build_table(con, "int_daily_values_averaged", params=params)
+    build_table(con, "kidney_events", params=params)
+    frame = con.sql("select * from kidney_events").pl()
+    return {(r["person_key"], r["rule_id"]): r for r in frame.iter_rows(named=True)}
+
+
+def test_diabetes_needs_a_second_abnormal_result(warehouse):
+    hba1c(warehouse, "one", 10)  # a single HbA1c of 7.0 %: not confirmed
+    hba1c(warehouse, "two_days", 10)
+    hba1c(warehouse, "two_days", 40)  # confirmed on day 40
+    hba1c(warehouse, "two_tests", 10)
+    hba1c(warehouse, "two_tests", 10, 130.0, "glucose", "mg/dL", fasting=True)  # same day, two tests
+    hba1c(warehouse, "censored", 10, 6.0, comparator="<")  # "<6.0 %" is below 6.5 %: never abnormal
+    hba1c(warehouse, "censored", 40, 7.0)
+    for d in (10, 40):
+        hba1c(warehouse, "above_low_bound", d, 6.0, comparator=">")  # ">6.0 %": maybe below 6.5 %
+        hba1c(warehouse, "above_high_bound", d, 14.0, comparator=">")  # ">14 %": certainly >= 6.5 %
+    for person in ("one", "two_days", "two_tests", "censored", "above_low_bound", "above_high_bound"):
+        insert_acr(warehouse, person, 100, acr_mg_g=50.0, above_a2=True)
+    assert diabetic_onsets(warehouse) == {"two_days": 60, "two_tests": 90, "above_high_bound": 60}
+    # diabetes_rule: single (one abnormal result)
+    got = diabetic_onsets(warehouse, {"diabetes_min_results": 1})
+    assert got == {"one": 90, "two_days": 90, "two_tests": 90, "censored": 60, "above_high_bound": 90}
+
+
+def test_diabetes_rule_setting_reaches_the_sql(settings):
+    # ADA Standards of Care: a second abnormal result confirms (the default); single = one
+    assert event_params(settings, Period.parse(PERIOD))["diabetes_min_results"] == 2
+    measures = settings.pipeline.measures.model_copy(update={"diabetes_rule": "single"})
+    single = settings.model_copy(update={"pipeline": settings.pipeline.model_copy(update={"measures": measures})})
+    assert event_params(single, Period.parse(PERIOD))["diabetes_min_results"] == 1

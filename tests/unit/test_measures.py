@@ -135,7 +135,7 @@ def test_hyperfiltration_flag_above_the_configured_threshold():
         (3 * 8.84, "<", "A1", None),  # "<3 mg/mmol" (1 mg/mmol = 8.84 mg/g): every value is A1
         (300.0, ">", "A3", None),  # ">300 mg/g": every value is A3
         (300.0, ">=", None, "censored_ambiguous"),  # could be 300 (A2) or more (A3)
-        (100.0, "<", None, "censored_ambiguous"),  # could be A1 or A2
+        (100.0, "<", None, "censored_spans_a2_threshold"),  # could be A1 or A2
     ],
 )
 def test_measured_acr_categories(value, comparator, category, reason):
@@ -166,10 +166,11 @@ def test_timed_albumin_excretion_uses_its_own_thresholds(aer, category):
 
 @pytest.mark.parametrize(
     ("reading", "category"),
-    [("negative", "A1"), ("Trace", "A2"), ("1+", "A2"), ("++", "A3"), ("3+", "A3")],
+    [("negative", "A1"), ("Trace", None), ("1+", "A2"), ("++", "A3"), ("3+", "A3")],
 )
 def test_dipstick_gives_an_estimated_category_only(reading, category):
-    # Sumida et al., Ann Intern Med 2020 (confirmed mapping): trace to + ~ A2, ++ or more ~ A3
+    # KDIGO 2012 (reagent strip row, from memory) and Sumida et al., Ann Intern Med 2020:
+    # negative ~ A1, trace on the A1/A2 border (no category), + ~ A2, ++ or more ~ A3
     row = one(measures(result(1, "urine_protein_dipstick", None, text=reading)), 1)
     assert row["acr_basis"] == "estimated_from_dipstick"
     assert row["a_category"] == category
@@ -207,15 +208,125 @@ def test_a_negative_dipstick_does_not_count_as_an_acr_screen(tmp_path: Path):
     by a urine dipstick, so screening coverage counts a measured ACR only (KDIGO 2012)."""
     config = make_small_config(tmp_path / "config")
     lines = [HEADER]
-    for n in range(12):  # 12 people with diabetes (HbA1c 7.0 %, ADA >= 6.5 %): above suppression
+    for n in range(12):  # 12 people with diabetes (HbA1c 7.0 % twice, ADA >= 6.5 %): above suppression
         token = f"WF-d{n:02d}"
         lines += [
             f"{token},1960,F,WF01,H{n},2026-01-05,4548-4,7.0,%,final,2026-01-06",
+            f"{token},1960,F,WF01,I{n},2026-01-02,4548-4,7.0,%,final,2026-01-06",
             f"{token},1960,F,WF01,C{n},2026-01-05,2160-0,1.0,mg/dL,final,2026-01-06",
             f"{token},1960,F,WF01,D{n},2026-01-05,5804-0,negative,,final,2026-01-06",
         ]
+    # ADA Standards of Care: one abnormal HbA1c is not confirmed diabetes (diabetes_rule confirmed)
+    lines += [f"WF-s{n},1960,F,WF01,S{n},2026-01-05,4548-4,7.0,%,final,2026-01-06" for n in range(3)]
     inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join(lines) + "\n"})
     with run_month(config, inbox, tmp_path / "out") as con:
         got = rows(con, "select persons_with_diabetes, with_egfr, with_acr from "
                         "district_screening_coverage where district_code = 'ALL'")  # fmt: skip
     assert got == [(12, 12, 0)]
+
+
+# --------------------------------------------------------------------------- clinical rules
+# KDIGO 2012 CKD guideline (Kidney Int Suppl 2013;3:1), the albuminuria category table: A1 below
+# 30 mg/g / 3 mg/mmol / 30 mg/24 h, A2 30-300 mg/g / 3-30 mg/mmol / 30-300 mg/24 h, A3 above.
+
+
+def reported(row: dict, value: float, unit: str) -> dict:
+    return {**row, "reported_value": value, "reported_unit": unit}
+
+
+def measures_reported(*results: dict) -> pl.DataFrame:
+    schema = {**LAB_COLUMNS, "reported_value": pl.Float64, "reported_unit": pl.String}
+    return measure_frame(pl.DataFrame(list(results), schema=schema), SETTINGS)
+
+
+@pytest.mark.parametrize(
+    ("mg_mmol", "category"),
+    [(2.99, "A1"), (3.0, "A2"), (3.39, "A2"), (30.0, "A2"), (30.5, "A3"), (33.9, "A3")],
+)
+def test_acr_in_mg_mmol_is_categorised_on_the_mg_mmol_thresholds(mg_mmol, category):
+    # KDIGO 2012: A2 from 3 mg/mmol, A3 above 30 mg/mmol, in the unit reported (3.0 mg/mmol x
+    # 8.84 = 26.5 mg/g would be A1 after conversion; 30.5 x 8.84 = 270 mg/g would be A2)
+    row = one(measures_reported(reported(result(1, "acr", mg_mmol * 8.84), mg_mmol, "mg/mmol")), 1)
+    assert row["a_category"] == category
+    assert row["is_at_or_above_a2"] is (category != "A1")
+
+
+@pytest.mark.parametrize(
+    ("bound", "unit", "comparator", "category", "above_a2", "reason"),
+    [
+        (30.0, "mg/g", "<", "A1", False, None),  # every value below 30 mg/g: below A2
+        (3.0, "mg/mmol", "<", "A1", False, None),  # every value below 3 mg/mmol
+        (5.0, "mg/mmol", "<", None, None, "censored_spans_a2_threshold"),  # 0-5: A1 or A2
+        (300.0, "mg/g", "<", None, None, "censored_spans_a2_threshold"),  # A1 or A2
+        (30.0, "mg/mmol", ">", "A3", True, None),  # above 30 mg/mmol: A3
+        (100.0, "mg/g", ">", None, True, "censored_ambiguous"),  # A2 or A3, certainly >= A2
+        (20.0, "mg/g", ">", None, None, "censored_spans_a2_threshold"),  # A1, A2 or A3
+    ],
+)
+def test_censored_acr_counts_only_as_far_as_certain(bound, unit, comparator, category, above_a2, reason):
+    # KDIGO 2012 thresholds; a censored value ("<X") is only known to lie on one side of X
+    factor = 8.84 if unit == "mg/mmol" else 1.0
+    row = one(measures_reported(reported(result(1, "acr", bound * factor, comparator=comparator), bound, unit)), 1)
+    assert (row["a_category"], row["is_at_or_above_a2"], row["acr_reason"]) == (category, above_a2, reason)
+    assert row["acr_mg_g"] is None  # a bound is not a measurement
+
+
+def test_censored_timed_excretion_and_its_a2_status():
+    # KDIGO 2012: AER A2 from 30 mg/24 h
+    below = one(measures(result(1, "urine_albumin_24h", 20.0, comparator="<")), 1)
+    above = one(measures(result(2, "urine_albumin_24h", 45.0)), 2)
+    assert (below["a_category"], below["is_at_or_above_a2"], below["aer_mg_24h"]) == ("A1", False, None)
+    assert (above["a_category"], above["is_at_or_above_a2"]) == ("A2", True)
+
+
+@pytest.mark.parametrize(
+    ("birth_year", "collected", "equation", "reason"),
+    [
+        # born 2008, collected 1 Mar 2026: 2026 - 2008 = 18, but at mid-year birth 17.7 years
+        (2008, dt.date(2026, 3, 1), "ekfc_creatinine", None),
+        (2008, dt.date(2026, 8, 1), "ckd_epi_2021_creatinine", None),  # 18.1 years
+        # born 2024, collected 15 Jan 2026: 2 by the year difference, about 1.5 years old
+        (2024, dt.date(2026, 1, 15), None, "age_under_minimum"),
+    ],
+)
+def test_age_at_collection_is_estimated_from_mid_year(birth_year, collected, equation, reason):
+    # EKFC from 2 years, CKD-EPI 2021 from 18 (Pottel et al. 2021; Inker et al. 2021); age from
+    # the birth year at mid-year (common practice for birth-year-only data)
+    row = {**result(1, "creatinine", 0.8, day=collected), "birth_year": birth_year}
+    frame = measure_frame(pl.DataFrame([row], schema={**LAB_COLUMNS, "birth_year": pl.Int64}), SETTINGS)
+    got = one(frame, 1)
+    assert (got["egfr_equation"], got["egfr_reason"]) == (equation, reason)
+
+
+def test_dipsticks_pass_the_gate_and_reach_kidney_measures_estimated(tmp_path: Path):
+    """From a lab file to the warehouse with the Great Expectations gate on: a dipstick row has no
+    number and must not hold its source back. Mapping: KDIGO 2012 (reagent strip, from memory)
+    and Sumida et al., Ann Intern Med 2020;173:426: negative ~ A1, trace spans A1-A2, + ~ A2,
+    ++ or more ~ A3."""
+    from tests.conftest import edit_pipeline_yaml
+
+    config = make_small_config(tmp_path / "config", max_rejection_rate=0.05)
+    edit_pipeline_yaml(config, "quality_gate", "great_expectations", True)
+    edit_pipeline_yaml(config, "quality_gate", "data_docs", "never")
+    lines = [HEADER]
+    readings = ["negative", "trace", "+", "++", "3+"]
+    for n, reading in enumerate(readings):
+        lines.append(f"WF-q{n},1960,F,WF01,D{n},2026-01-05,5804-0,{reading},,final,2026-01-06")
+    lines.append("WF-q9,1960,F,WF01,C9,2026-01-05,2160-0,1.0,mg/dL,final,2026-01-06")
+    # born 2008: 17 at 5 Jan 2026 with the birth at mid-year, so the children's equation
+    lines.append("WF-q8,2008,M,WF01,C8,2026-01-05,2160-0,0.9,mg/dL,final,2026-01-06")
+    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join(lines) + "\n"})
+    with run_month(config, inbox, tmp_path / "out") as con:
+        assert rows(con, "select count(*) from lab_results") == [(7,)]  # nothing held back
+        got = rows(con, "select acr_basis, is_acr_estimated, a_category, acr_reason, acr_mg_g "
+                        "from kidney_measures where analyte = 'urine_protein_dipstick' order by line_no")  # fmt: skip
+        teen = rows(con, "select l.age_years, m.egfr_equation from lab_results as l join kidney_measures "
+                         "as m using (file_id, line_no) where l.birth_year = 2008")  # fmt: skip
+    assert got == [
+        ("estimated_from_dipstick", True, "A1", None, None),
+        ("estimated_from_dipstick", True, None, "dipstick_trace_spans_a1_a2", None),
+        ("estimated_from_dipstick", True, "A2", None, None),
+        ("estimated_from_dipstick", True, "A3", None, None),
+        ("estimated_from_dipstick", True, "A3", None, None),
+    ]
+    assert teen == [(17, "ekfc_creatinine")]

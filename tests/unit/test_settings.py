@@ -197,3 +197,17 @@ def test_unknown_source_lookup(small_config: Path):
     settings = load_settings(small_config)
     with pytest.raises(ConfigError, match="unknown source 'nobody'"):
         settings.source("nobody")
+
+
+def test_clinical_rule_settings_are_checked(small_config: Path):
+    from tests.conftest import edit_pipeline_yaml
+
+    # ADA Standards of Care: confirmed (two abnormal results) or single; nothing else
+    edit_pipeline_yaml(small_config, "measures", "diabetes_rule", "twice")
+    message = config_error(small_config)
+    assert "diabetes_rule" in message and "pipeline.yaml" in message
+    edit_pipeline_yaml(small_config, "measures", "diabetes_rule", "confirmed")
+    # KDIGO 2012: the CKD-by-albuminuria rule follows the A2 category (30 mg/g)
+    edit_pipeline_yaml(small_config, "trajectories", "ckd_acr_at_or_above_mg_g", 25)
+    message = config_error(small_config)
+    assert "ckd_acr_at_or_above_mg_g" in message and "A2" in message

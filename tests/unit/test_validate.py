@@ -48,6 +48,9 @@ RULE_ROWS = {
     "future": (row("R11", "1.0", collected="2025-06-20", reported="2025-06-10"), "future_date"),
     "before_birth": (row("R12", "1.0", born="2030"), "collected_before_birth"),
     "age_125": (row("R13", "1.0", born="1900"), "age_over_120"),
+    # a birth year no calendar date can hold (found by the reader property test): rejected, and
+    # the mid-year age estimate never builds a date from it
+    "born_absurd": (row("R13b", "1.0", born="-175532933"), "age_over_120"),
     "short_row": ("WF-val0001,1960,F,WF01,R14,2025-06-02,2160-0,1.0,mg/dL,final", "wrong_field_count"),
     "bad_status": (row("R15", "1.0", status="done"), "unknown_status"),
     "no_token": (row("R16", "1.0", token=""), "missing_person"),
