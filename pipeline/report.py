@@ -1234,7 +1234,7 @@ footer { margin-top: 30px; font-size: .78rem; color: var(--muted); border-top: 1
   table { font-size: .72rem; }
   th, td { padding: 3px 4px; }
   td.num, td.s, td.na, td.nowrap, th[scope=row] { white-space: normal; }
-  td.reasons { overflow-wrap: anywhere; }
+  td.reasons, th[scope=row], thead th { overflow-wrap: anywhere; }
   .ci { display: block; }
 }
 @page { margin: 16mm 14mm; }
