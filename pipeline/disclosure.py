@@ -235,6 +235,67 @@ PUBLISHED_TABLES = (
             ),
             copied=("persons_tested",)),
     ),
+    # Expected undetected albuminuria (pipeline/undetected.py): its persons with diabetes and with
+    # an ACR are the counts of district_screening_coverage, shown as published there; the
+    # estimate is blanked with either of them. The untested count is a count of its own here (it
+    # is also their difference: relations between columns are not used, see the docstring).
+    PublishedTable(
+        "district_undetected_albuminuria",
+        keys=("period", "district_code"),
+        counts=("persons_without_acr", "with_acr_a2_a3", "without_acr_pooled_stratum"),
+        rates={"share_a2_a3_of_tested": ("with_acr_a2_a3", "with_acr"),
+               "expected_share_without_acr": ("persons_with_diabetes", "with_acr", "persons_without_acr")}
+        | {c: ("persons_with_diabetes", "with_acr")
+           for c in ("expected_a2_a3_without_acr", "expected_a2_a3_without_acr_low",
+                     "expected_a2_a3_without_acr_high")},
+        levels=(("district_code",),),
+        totals=TotalsFrom("district_screening_coverage", join=("period", "district_code"), row={},
+                          partitions=(), copied=("persons_with_diabetes", "with_acr")),
+    ),
+    # Coverage trend, all districts, as it stood at each of the 12 month ends (no hierarchy: one
+    # row per month; its last row is district_screening_coverage's 'ALL' row).
+    PublishedTable(
+        "region_coverage_trend",
+        keys=("period", "as_of_month"),
+        counts=("persons_with_diabetes", "with_egfr", "with_acr", "with_egfr_and_acr"),
+        rates={"share_with_both": ("with_egfr_and_acr", "persons_with_diabetes"),
+               "share_with_both_low": ("with_egfr_and_acr", "persons_with_diabetes"),
+               "share_with_both_high": ("with_egfr_and_acr", "persons_with_diabetes")},
+    ),
+    # What counting estimated albuminuria would add to the default counts (each added count is
+    # a count of persons of its own, protected like any other).
+    PublishedTable(
+        "district_estimated_acr_sensitivity",
+        keys=("period", "district_code"),
+        counts=("persons_tested_added", "persons_ckd_added", "with_acr_added", "with_egfr_and_acr_added"),
+        rates={},
+        levels=(("district_code",),),
+    ),
+    # Equation-change impact (pipeline/equation_impact.py): per district and comparison, the
+    # totals; per GFR category, counts that add up to those totals (protected against them as the
+    # categories of district_ckd_categories are against district_ckd_prevalence).
+    PublishedTable(
+        "district_equation_change",
+        keys=("period", "district_code", "comparison"),
+        counts=("persons_compared", "moved_to_lower_gfr_category", "moved_to_higher_gfr_category",
+                "persons_ckd_in_force", "persons_ckd_comparison"),
+        rates={},
+        levels=(("district_code",),),
+    ),
+    PublishedTable(
+        "district_equation_change_categories",
+        keys=("period", "district_code", "comparison", "g_category"),
+        counts=("persons_in_force", "persons_comparison", "moved_to_lower_gfr_category",
+                "moved_to_higher_gfr_category"),
+        rates={},
+        levels=(("district_code",),),
+        totals=TotalsFrom(
+            "district_equation_change", join=("period", "district_code", "comparison"), row={},
+            partitions=(Partition("persons_in_force", "persons_compared", {}),
+                        Partition("persons_comparison", "persons_compared", {}),
+                        Partition("moved_to_lower_gfr_category", "moved_to_lower_gfr_category", {}),
+                        Partition("moved_to_higher_gfr_category", "moved_to_higher_gfr_category", {}))),
+    ),
 )  # fmt: skip
 
 

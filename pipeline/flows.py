@@ -52,6 +52,7 @@ from pipeline.runlock import commit_and_install, recover_interrupted_run, run_lo
 from pipeline.settings import Settings, load_settings  # noqa: E402
 from pipeline.summaries import summarise_stage  # noqa: E402
 from pipeline.validate import begin_judging, judge_file, validate_stage  # noqa: E402
+from pipeline.region_map import write_district_shapes  # noqa: E402
 from pipeline.warehouse import load_reference_tables  # noqa: E402
 
 
@@ -112,6 +113,7 @@ def scan_task(run_id: str) -> dict[str, Any]:
 def ingest_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         load_reference_tables(ctx.con, ctx.settings)
+        write_district_shapes(ctx.con, ctx.settings.config_dir, ctx.settings.districts)  # the report's maps
         begin_judging(ctx.con)  # each file is judged by the validate stage's rules as it lands
         s = land_inbox(ctx.con, ctx.settings, ctx.inbox, ctx.key, ctx.period.label, dt.date.today(),
                        items=ctx.inbox_items, sink=judge_file)

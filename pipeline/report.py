@@ -24,6 +24,7 @@ from typing import Any, Callable, Sequence
 
 import duckdb
 
+from pipeline import report_indicators  # new sections; it uses this module's helpers
 from pipeline.disclosure import PUBLISHED_TABLES
 from pipeline.periods import Period
 
@@ -33,12 +34,19 @@ PREVALENCE = "published.district_ckd_prevalence"
 COVERAGE = "published.district_screening_coverage"
 INCIDENCE = "published.district_decline_incidence"
 CATEGORIES = "published.district_ckd_categories"
+TREND = "published.region_coverage_trend"
 #: The only tables the report reads: publishable, quality per lab, reference and the manifest.
 READABLE_TABLES = (
     PREVALENCE,
     COVERAGE,
     INCIDENCE,
     CATEGORIES,
+    "published.district_undetected_albuminuria",
+    "published.district_equation_change",
+    "published.district_equation_change_categories",
+    "published.region_coverage_trend",
+    "published.district_estimated_acr_sensitivity",
+    "reference.district_shapes",
     "source_quality",
     "source_rejection_reasons",
     "lab_egfr_agreement",
@@ -171,6 +179,10 @@ class _Data:
     agreement: list[dict[str, Any]]
     incidence: list[dict[str, Any]] = field(default_factory=list)
     categories: list[dict[str, Any]] = field(default_factory=list)
+    undetected: list[dict[str, Any]] = field(default_factory=list)  # pipeline/report_indicators.py
+    equation_change: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
+    sensitivity: list[dict[str, Any]] = field(default_factory=list)
+    shapes: dict[str, dict] = field(default_factory=dict)  # district boundaries (GeoJSON geometries)
 
     @property
     def demo_key(self) -> bool | None:
@@ -233,8 +245,12 @@ def _collect(con: duckdb.DuckDBPyConnection, period: Period) -> _Data:
         con, PREVALENCE, "select district_code, sum(n_suppressed) as n from {t} where period = ? group by 1", [p])}
     below[TOTAL] = sum(below.values())
     coverage = _select(con, COVERAGE, "select * from {t} where period = ?", [p])
-    trend = _select(con, COVERAGE, "select * from {t} where district_code = 'ALL' and period <= ? "
-                    "order by period", [p])  # fmt: skip
+    if _exists(con, TREND):  # as it stood at each of the 12 month ends (sql/reports/region_coverage_trend.sql)
+        trend = _select(con, TREND, "select * exclude (period), as_of_month as period from {t} where period = ? "
+                        "order by as_of_month", [p])  # fmt: skip
+    else:
+        trend = _select(con, COVERAGE, "select * from {t} where district_code = 'ALL' and period <= ? "
+                        "order by period", [p])  # fmt: skip
     quality = _select(con, "source_quality", "select * from {t} where period = ? "
                       "order by source_id, extract_month", [p])  # fmt: skip
     reasons = _select(con, "source_rejection_reasons",
@@ -251,6 +267,10 @@ def _collect(con: duckdb.DuckDBPyConnection, period: Period) -> _Data:
         suppressed_below=below, coverage=_district_order(coverage), coverage_columns=_columns(con, COVERAGE),
         coverage_trend=trend, quality=quality, reasons=reasons, agreement=agreement,
         incidence=_district_order(incidence), categories=categories,
+        undetected=report_indicators.collect_undetected(con, p),
+        equation_change=report_indicators.collect_equation_change(con, p),
+        sensitivity=report_indicators.collect_sensitivity(con, p),
+        shapes=report_indicators.collect_shapes(con),
     )  # fmt: skip
 
 
@@ -456,12 +476,14 @@ class _Svg:
         self.add(f'<line x1="{x1:.1f}" y1="{y1:.1f}" x2="{x2:.1f}" y2="{y2:.1f}" stroke="{stroke}" '
                  f'stroke-width="{width}"{d}/>')  # fmt: skip
 
-    def legend(self, names: Sequence[str], x: float, y: float, swatch: bool = False) -> None:
-        """Colour keys; ``swatch`` draws squares (bars) instead of the series' point markers."""
+    def legend(self, names: Sequence[str], x: float, y: float, swatch: bool = False,
+               styles: Sequence[tuple[str, int]] | None = None) -> None:  # fmt: skip
+        """Colour keys; ``swatch`` draws squares (bars) instead of the series' point markers;
+        ``styles``: (colour, marker shape) per name, else by position."""
         for i, name in enumerate(names):
-            colour = PALETTE[i % len(PALETTE)]
+            colour, shape = styles[i] if styles else (PALETTE[i % len(PALETTE)], i)
             self.add(f'<rect x="{x:.1f}" y="{y - 9:.1f}" width="11" height="11" fill="{colour}"/>' if swatch
-                     else _marker(i, x + 6, y - 4, colour, 5))
+                     else _marker(shape, x + 6, y - 4, colour, 5))
             self.text(x + 16, y, name, cls="legend")
             x += 26 + 7 * len(name)
 
@@ -560,15 +582,16 @@ def _line_chart(chart_id: str, title: str, desc: str, x_labels: list[str],
                 series: list[tuple[str, list[float | None], list[tuple[float, float] | None] | None]],
                 axis_label: str, x_axis_label: str, suffix: str, fmt: Callable[[float], str],
                 y_range: tuple[float, float] | None = None, zero_line: bool = False,
-                height: int = 280) -> str:  # fmt: skip
+                height: int = 280, styles: Sequence[tuple[str, int]] | None = None) -> str:  # fmt: skip
     """Lines over categories on the x axis (months), a gap where a value is missing; a shaded
-    band where an interval is given."""
+    band where an interval is given. ``styles``: (colour, marker shape) per series (default: by
+    position)."""
     left, right, top, bottom = 70, 24, 40 + (18 if len(series) > 1 else 0), 56
     width = 720
     plot_w, plot_h = width - left - right, height - top - bottom
     svg = _Svg(chart_id, width, height, title, desc)
     if len(series) > 1:
-        svg.legend([name for name, _, _ in series], left, 44)
+        svg.legend([name for name, _, _ in series], left, 44, styles=styles)
     values = [v for _, vs, _ in series for v in vs if v is not None]
     values += [b for _, _, iv in series for pair in (iv or []) if pair for b in pair]
     if y_range is not None:
@@ -603,7 +626,7 @@ def _line_chart(chart_id: str, title: str, desc: str, x_labels: list[str],
     svg.text(14, top + plot_h / 2, axis_label, "middle", "axis-label",
              f' transform="rotate(-90 14 {top + plot_h / 2:.1f})"')  # fmt: skip
     for j, (name, vs, intervals) in enumerate(series):
-        colour = PALETTE[j % len(PALETTE)]
+        colour, shape = styles[j] if styles else (PALETTE[j % len(PALETTE)], j)
         if intervals:
             for segment in _segments([i for i, pair in enumerate(intervals) if pair]):
                 if len(segment) == 1:
@@ -618,13 +641,13 @@ def _line_chart(chart_id: str, title: str, desc: str, x_labels: list[str],
         for segment in _segments([i for i, v in enumerate(vs) if v is not None]):
             if len(segment) > 1:
                 pts = " ".join(f"{x_of(i):.1f},{y_of(vs[i]):.1f}" for i in segment)  # type: ignore[arg-type]
-                dash = ' stroke-dasharray="6 3"' if j % 2 else ""
+                dash = ' stroke-dasharray="6 3"' if shape % 2 else ""
                 svg.add(f'<polyline class="series" points="{pts}" fill="none" stroke="{colour}" '
                         f'stroke-width="2"{dash}/>')  # fmt: skip
         for i, v in enumerate(vs):
             if v is not None:
                 prefix = f"{name}, " if len(series) > 1 else ""
-                svg.add(_marker(j, x_of(i), y_of(v), colour, 4, f"{prefix}{x_labels[i]}: {fmt(v)}{suffix}"))
+                svg.add(_marker(shape, x_of(i), y_of(v), colour, 4, f"{prefix}{x_labels[i]}: {fmt(v)}{suffix}"))
         if n == 1 and vs and vs[0] is not None:
             svg.text(x_of(0) + 10, y_of(vs[0]) - 8, f"{fmt(vs[0])}{suffix}", cls="value")
     return svg.render()
@@ -790,7 +813,11 @@ def _incidence_section(data: _Data) -> str:
         rows.append((r["district_code"], _district_label(data, r["district_code"]), cells))
     caption = (f"Sustained eGFR decline with its event in the 12 months to {_e(data.end_words)}, by district "
                "(confirmed: every daily eGFR of the run at or below the threshold for at least 28 days)")
-    return (_table("table-incidence", caption, head, rows, _suppression_notes(data, False))
+    notes = _suppression_notes(data, False) + [
+        "Each column counts the persons whose event at that threshold is dated in the window. A person whose "
+        "30 % decline was dated before the window and whose 40 % decline falls in it is counted at 40 % and "
+        "not at 30 %, so the ≥40 % count can exceed the ≥30 % count."]
+    return (_table("table-incidence", caption, head, rows, notes)
             if rows else _missing("sustained-decline incidence"))  # fmt: skip
 
 
@@ -847,10 +874,11 @@ def _trend_chart(data: _Data) -> str:
         return ""
     one = " Only one period is published so far." if len(labels) == 1 else ""
     desc = ("Line: share of persons with lab-evidenced diabetes who had both an eGFR and an ACR in the "
-            f"12 months ending each period, all districts. {'; '.join(words)}.{one}")  # fmt: skip
+            f"12 months ending each month, as the data stood at that month's end, all districts. "
+            f"{'; '.join(words)}.{one}")  # fmt: skip
     return _line_chart("chart-coverage-trend", "Persons with diabetes tested for both eGFR and ACR, all districts",
                        desc, labels, [("all districts", values, intervals if ci else None)],
-                       "Both eGFR and ACR (%)", "Period (12 months ending that month)", " %", _dec,
+                       "Both eGFR and ACR (%)", "Month end (12 months ending that month)", " %", _dec,
                        y_range=(0.0, 100.0))  # fmt: skip
 
 
@@ -909,7 +937,8 @@ def _agreement_chart(data: _Data) -> str:
             f"and collection month, {months[0]} to {months[-1]}. " + "; ".join(words) + ".")  # fmt: skip
     return _line_chart("chart-egfr-agreement", "Lab-reported minus recomputed eGFR, median by lab and month",
                        desc, months, series, "Median difference (mL/min/1.73 m²)", "Collection month", "",
-                       lambda v: _dec(v, 2), zero_line=True, height=300)  # fmt: skip
+                       lambda v: _dec(v, 2), zero_line=True, height=300,
+                       styles=[report_indicators.source_style(s, sources) for s in sources])  # fmt: skip
 
 
 def _quality_table(data: _Data, sources: list[dict[str, Any]]) -> str:
@@ -986,7 +1015,8 @@ def _methods_section(data: _Data) -> str:
          "Neither is the prevalence of CKD in the population."),
         ("Sustained decline", f"A person's daily eGFRs after a baseline (the mean of the eGFRs in the first "
          f"{base_days} days) stay at or below the baseline less {decline} for at least {decline_days} days "
-         "(Levey et al. 2014). Followed in the warehouse; not among this report's tables."),
+         "(Levey et al. 2014); at 30 %, 40 % and 57 %, in the sustained eGFR decline table of this report "
+         "(events dated in the window), and per person in the warehouse (kidney_events)."),
         ("Lab-evidenced diabetes", f"An HbA1c at or above {hba1c} % ({hba1c_ifcc} mmol/mol) or fasting glucose at "
          f"or above {glucose} mg/dL ({glucose_si} mmol/L) (ADA Standards of Care), "
          + ("confirmed by a second abnormal result: on the same day from the other test, or on another day."
@@ -1002,6 +1032,8 @@ def _methods_section(data: _Data) -> str:
          "categories add up to the district totals of the prevalence table and are protected against them; "
          "an age-standardised rate is shown only where its counts per broad age group give no blank away."),
     ]  # fmt: skip
+    if data.undetected:
+        definitions.insert(-1, report_indicators.undetected_definition())
     if intervals:
         definitions.append(("Intervals", f"{_confidence(data)} Wilson score intervals for shares (Wilson 1927; "
                             "Newcombe 1998); Fay–Feuer gamma intervals for age-standardised rates (Fay and "
@@ -1016,6 +1048,9 @@ def _methods_section(data: _Data) -> str:
         "American Diabetes Association. Standards of Care in Diabetes: classification and diagnosis "
         "(HbA1c and fasting glucose thresholds).",
     ]
+    if data.undetected:
+        sources.append("Breslow NE, Day NE. Statistical Methods in Cancer Research, vol. II. IARC 1987 "
+                       "(indirect standardisation).")
     if "ekfc_creatinine" in used:
         sources.append("Pottel H, et al. Ann Intern Med 2021;174:183 (EKFC).")
     if "ckid_u25_creatinine" in used:
@@ -1161,7 +1196,9 @@ td.num, td.s, td.na { text-align: right; font-variant-numeric: tabular-nums; whi
 td.s, td.na { color: var(--muted); }
 tfoot th, tfoot td { font-weight: 700; border-top: 2px solid var(--ink); }
 th[scope=row] { text-align: left; font-weight: 500; white-space: nowrap; }
-td.reasons { font-size: .8rem; white-space: nowrap; }
+td.reasons { font-size: .8rem; white-space: normal; overflow-wrap: break-word; }
+#table-quality th, #table-quality td { padding: 5px 5px; }
+#table-quality thead th { white-space: normal; }
 td.nowrap { white-space: nowrap; }
 .code { color: var(--muted); font-size: .8em; }
 .ci { color: var(--muted); font-size: .85em; }
@@ -1171,6 +1208,12 @@ figure { margin: 18px 0; }
 figcaption { font-size: .82rem; color: var(--muted); max-width: 720px; }
 svg.chart { display: block; width: 100%; max-width: 720px; height: auto; font-family: inherit; }
 svg .chart-title { font-size: 14px; font-weight: 700; fill: var(--ink); }
+.maps { display: flex; flex-wrap: wrap; gap: 8px; }
+.maps figure { margin: 8px 0; }
+svg.map { display: block; max-width: 100%; height: auto; font-family: inherit; }
+svg.map .chart-title { font-size: 11.5px; }
+svg.map .legend { font-size: 10.5px; fill: var(--ink); }
+svg.map .map-label { font-size: 9.5px; fill: var(--ink); paint-order: stroke; stroke: #fff; stroke-width: 2.5px; }
 svg .tick, svg .legend, svg .value, svg .category { font-size: 11.5px; fill: var(--ink); }
 svg .value { paint-order: stroke; stroke: #fff; stroke-width: 3px; stroke-linejoin: round; }
 svg .tick { fill: var(--muted); }
@@ -1190,6 +1233,12 @@ footer { margin-top: 30px; font-size: .78rem; color: var(--muted); border-top: 1
   figure, table, .card, .cautions { break-inside: avoid; }
   h2, h3 { break-after: avoid; }
   tbody tr:nth-child(even) { background: none; }
+  .table-wrap { overflow: visible; }
+  table { font-size: .72rem; }
+  th, td { padding: 3px 4px; }
+  td.num, td.s, td.na, td.nowrap, th[scope=row] { white-space: normal; }
+  td.reasons, th[scope=row], thead th { overflow-wrap: anywhere; }
+  .ci { display: block; }
 }
 @page { margin: 16mm 14mm; }
 """
@@ -1280,15 +1329,24 @@ def _render(data: _Data) -> str:
         '<p class="lead-caution">Surveillance indicators for populations, not a diagnosis of any '
         'individual: read the <a href="#cautions">cautions</a> and <a href="#methods">methods</a>.</p>',
         '<section id="headline"><h2>Headline, all districts</h2><div class="headline">', *cards, "</div></section>",
+        '<section id="maps"><h2>Districts on the map</h2>', report_indicators.maps_section(data.shapes, data),
+        "</section>",
         '<section id="prevalence"><h2>Chronic kidney disease by district</h2>',
         figure(_share_chart(data), "Dashed line: all districts. Suppressed districts have no bar."),
         _prevalence_section(data), "</section>",
         '<section id="categories"><h2>Confirmed CKD by GFR and albuminuria category</h2>',
         _categories_section(data), "</section>",
         '<section id="coverage"><h2>Kidney testing in diabetes</h2>',
-        figure(_trend_chart(data), "One point per published period; each covers the 12 months ending that month."),
-        _coverage_section(data), "</section>",
+        figure(_trend_chart(data), "One point per month end, as the results reported by then stood; each covers "
+               "the 12 months ending that month. The last point is the table below."),
+        _coverage_section(data),
+        '<h3 id="undetected">Expected cases not yet found</h3>',
+        report_indicators.undetected_section(data.undetected, data),
+        '<h3 id="sensitivity">If estimated albuminuria were counted</h3>',
+        report_indicators.sensitivity_section(data.sensitivity, data), "</section>",
         '<section id="decline"><h2>Sustained eGFR decline</h2>', _incidence_section(data), "</section>",
+        '<section id="equation-change"><h2>If the eGFR equation changed</h2>',
+        report_indicators.equation_change_section(data.equation_change, data), "</section>",
         '<section id="quality"><h2>Data quality by lab</h2>',
         figure(_quality_chart(data, sources), "Rows the row-level rules rejected, for this month's extract and "
                "for every extract month received so far. Dashed line: the share above which a lab is held back."),

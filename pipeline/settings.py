@@ -279,8 +279,22 @@ class SummarySettings(_Strict):
     #: Broad age groups of the published age-standardised rate (lower bounds, last open), each a
     #: union of age_bands: the standard weights are summed within each group.
     standardisation_age_bands: list[int] = Field(default=[0, 65, 75])
+    #: Expected undetected albuminuria (pipeline/undetected.py): age groups of its strata (lower
+    #: bounds, last open) and the fewest tested persons a stratum's share may rest on.
+    albuminuria_age_bands: list[int] = Field(default=[0, 45, 65, 75])
+    albuminuria_min_tested: int = Field(default=10, ge=1)
+    #: Equation-change impact (pipeline/equation_impact.py): the adult creatinine equation the
+    #: one in force is compared with.
+    equation_comparison: EquationName = "ckd_epi_2009_creatinine"
 
-    @field_validator("age_bands", "standardisation_age_bands")
+    @field_validator("equation_comparison")
+    @classmethod
+    def _adult_equation(cls, value: str) -> str:
+        if value == "ckid_u25_creatinine":
+            raise ValueError("equation_comparison must be an adult creatinine equation (CKiD U25 needs a height)")
+        return value
+
+    @field_validator("age_bands", "standardisation_age_bands", "albuminuria_age_bands")
     @classmethod
     def _increasing(cls, value: list[int]) -> list[int]:
         if not value or value[0] != 0 or any(b <= a for a, b in zip(value, value[1:])):
@@ -580,6 +594,9 @@ def load_settings(config_dir: Path | str = "config") -> Settings:
                 f"{path}: key 'test_codes': LOINC {unknown} not listed in analytes.yaml"
             )
     districts, population = _read_region(config_dir)
+    from pipeline.region_map import read_district_shapes  # here: it imports this module
+
+    read_district_shapes(config_dir, districts)  # every district a shape, every shape a district
     return Settings(
         config_dir=config_dir,
         pipeline=pipeline,

@@ -5,16 +5,23 @@ from __future__ import annotations
 import duckdb
 import polars as pl
 
+from pipeline.equation_impact import (COMBINED, ckd_counts, daily_comparison, daily_egfr_under, reclassification,
+                                      summary)
+from pipeline.linkage import event_params
 from pipeline.periods import Period
 from pipeline.settings import Settings
 from pipeline.statistics import collapse_weights, standardise_frame, with_wilson_interval
+from pipeline.undetected import age_group_labels, estimate_undetected
 from pipeline.warehouse import (add_missing_columns, build_table, drop_relation, fetch_frame,
-                                replace_period_frame, replace_period_rows)
+                                replace_period_frame, replace_period_rows, sql_over, with_frame)
 
 #: Internal summary tables, in the order they are built (each is sql/reports/<name>.sql).
 SUMMARY_TABLES = (
     "district_ckd_prevalence",
     "district_screening_coverage",
+    "diabetes_acr_strata",  # input of district_undetected_albuminuria (pipeline/undetected.py)
+    "region_coverage_trend",
+    "district_estimated_acr_sensitivity",
     "lab_egfr_agreement",
     "source_quality",
     "source_rejection_reasons",
@@ -30,6 +37,7 @@ RETIRED_TABLES = ("district_ckd_stages",)  # the wide form of district_ckd_categ
 WILSON_RATES = {
     "district_ckd_prevalence": {"ckd_share_of_tested": ("persons_ckd", "persons_tested")},
     "district_screening_coverage": {"share_with_both": ("with_egfr_and_acr", "persons_with_diabetes")},
+    "region_coverage_trend": {"share_with_both": ("with_egfr_and_acr", "persons_with_diabetes")},
     "district_ckd_categories": {"ckd_per_100_tested": ("persons_ckd", "persons_tested")},
 }
 #: Rates given per 100 (or another base) rather than as a share: their limits are scaled alike.
@@ -97,6 +105,63 @@ def add_standardised_rates(frame: pl.DataFrame, settings: Settings) -> pl.DataFr
     return out.with_columns(group.alias(column))  # last, so that older warehouses can add it
 
 
+def build_undetected_albuminuria(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> int:
+    """district_undetected_albuminuria for the period, from its rows of diabetes_acr_strata."""
+    s = settings.pipeline.summaries
+    labels = age_group_labels(s.albuminuria_age_bands)
+    strata = fetch_frame(con, "select * from diabetes_acr_strata where period = ?", [period.label])
+    strata = strata.with_columns(pl.col("age_group_min").replace_strict(labels, return_dtype=pl.String)
+                                 .alias("age_group"))
+    frame = estimate_undetected(strata, s.albuminuria_min_tested, s.confidence, period.label)
+    add_missing_columns(con, "main", "district_undetected_albuminuria", frame)
+    return replace_period_frame(con, "district_undetected_albuminuria", period.label, frame)
+
+
+def build_equation_change(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> dict[str, int]:
+    """equation_reclassification and district_equation_change for the period
+    (pipeline/equation_impact.py), from a transient person-level input never kept."""
+    params = {"period": period.label, "period_end": period.end,
+              "window_months": settings.pipeline.summaries.window_months,
+              "adult_min_age": settings.pipeline.measures.adult_min_age_years}
+    build_table(con, "equation_comparison_inputs", "equation_comparison_inputs", params, temporary=True)
+    inputs = fetch_frame(con, "select * from equation_comparison_inputs")
+    con.execute("drop table equation_comparison_inputs")
+    comparison = settings.pipeline.summaries.equation_comparison
+    persons = daily_comparison(inputs, comparison)
+    matrix = reclassification(persons, period.label, settings.pipeline.measures.adult_equation,
+                              [comparison, COMBINED])
+    totals, categories = summary(matrix)
+    # confirmed CKD under the comparison: every known eGFR recomputed, the event rules run again
+    build_table(con, "equation_comparison_history", "equation_comparison_history", params, temporary=True)
+    history = fetch_frame(con, "select * from equation_comparison_history")
+    con.execute("drop table equation_comparison_history")
+    m = settings.pipeline.measures
+    daily = pl.concat([daily_egfr_under(history, m.adult_equation, comparison, m.adult_min_age_years),
+                       fetch_frame(con, "select person_key, measure, day, value, n_results::bigint as n_results, "
+                                        "equation_family, is_at_or_above_a2 from int_daily_values_averaged "
+                                        "where measure = 'acr'")], how="vertical_relaxed")
+    del history
+    with_frame(con, daily, "create or replace temp table equation_daily_values as select * from _frame")
+    rules = event_params(settings, period)
+    query = sql_over("kidney_events", {"int_daily_values_averaged": "select * from equation_daily_values"})
+    used = {k: v for k, v in rules.items() if f"${k}" in query}
+    other = {k for (k,) in con.execute(f"select distinct person_key from ({query}) where event_type = 'ckd' "
+                                       "and event_status = 'confirmed'", used).fetchall()}
+    con.execute("drop table equation_daily_values")
+    in_force = {k for (k,) in con.execute("select person_key from person_status where period = ? "
+                                          "and has_confirmed_ckd", [period.label]).fetchall()}
+    ckd = ckd_counts(persons, in_force, other, comparison)
+    totals = totals.join(ckd, on=["district_code", "comparison"], how="left", maintain_order="left").with_columns(
+        pl.when(pl.col("comparison") == comparison).then(pl.col(c).fill_null(0)).alias(c)
+        for c in ("persons_ckd_in_force", "persons_ckd_comparison"))
+    counts = {}
+    for name, frame in (("equation_reclassification", matrix), ("district_equation_change", totals),
+                        ("district_equation_change_categories", categories)):
+        add_missing_columns(con, "main", name, frame)
+        counts[name] = replace_period_frame(con, name, period.label, frame)
+    return counts
+
+
 def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> dict[str, int]:
     params = {
         "period": period.label,
@@ -105,6 +170,7 @@ def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: 
         "drift_months": settings.pipeline.summaries.drift_months,
         "drift_threshold": settings.pipeline.summaries.drift_threshold,
         "drift_min_results": settings.pipeline.summaries.drift_min_results,
+        "albuminuria_age_bands": settings.pipeline.summaries.albuminuria_age_bands,
     }
     confidence = settings.pipeline.summaries.confidence
     counts = {}
@@ -119,6 +185,8 @@ def summarise_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: 
             frame = add_standardised_rates(frame, settings)
         add_missing_columns(con, "main", name, frame)
         counts[name] = replace_period_frame(con, name, period.label, frame)
+    counts["district_undetected_albuminuria"] = build_undetected_albuminuria(con, settings, period)
+    counts.update(build_equation_change(con, settings, period))
     for name in RETIRED_TABLES:
         drop_relation(con, name)
     return counts

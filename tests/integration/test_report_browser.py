@@ -367,3 +367,43 @@ def test_screenshot_for_review(chromium, report, tmp_path):
     target = report.with_suffix(".png")
     target.write_bytes(data)
     assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 200_000 and height > 3000
+
+
+NEW_TABLES = ("table-undetected", "table-sensitivity", "table-equation-ckd_epi_2009_creatinine",
+              "table-equation-districts")
+
+
+@pytest.mark.parametrize("media", ["screen", "print"])
+def test_new_sections_render_and_every_table_fits_the_page(chromium, report, tmp_path, media):
+    """The sections added beside coverage (expected cases not yet found, estimated albuminuria)
+    and the equation-change section are drawn; no table runs past the page (the data-quality
+    table's reasons column used to be cut off), on screen and in print."""
+    browser = DevTools(chromium, tmp_path / "profile", *NO_NETWORK, "--window-size=1000,1000")
+    try:
+        browser.open_page(report.as_uri())
+        browser.call("Emulation.setEmulatedMedia", {"media": media})
+        if media == "print":  # an A4 page less its margins is about 680 CSS px wide
+            browser.call("Emulation.setDeviceMetricsOverride", {"width": 680, "height": 1000,
+                                                                "deviceScaleFactor": 1, "mobile": False})
+        state = json.loads(browser.evaluate(
+            "JSON.stringify({"
+            " tables: Object.fromEntries([...document.querySelectorAll('table')].map(t => [t.id,"
+            "   {width: t.getBoundingClientRect().width, right: t.getBoundingClientRect().right,"
+            "    rows: t.rows.length}])),"
+            " page: document.querySelector('main').getBoundingClientRect().right,"
+            " reasons: [...document.querySelectorAll('td.reasons')].map(c => c.getBoundingClientRect().right),"
+            " headings: [...document.querySelectorAll('h2, h3')].map(h => h.textContent),"
+            " maps: [...document.querySelectorAll('svg.map')].map(m => [m.id, m.getBBox().width,"
+            "   m.querySelectorAll('path.district').length, m.querySelectorAll('path.blanked').length])})"))
+    finally:
+        browser.close()
+    for table in NEW_TABLES:
+        assert table in state["tables"] and state["tables"][table]["rows"] > 2, table
+    assert "Expected cases not yet found" in state["headings"]
+    assert "If the eGFR equation changed" in state["headings"]
+    # three maps of the 12 districts, drawn, with hatched (blanked) districts among them
+    assert [m[0] for m in state["maps"]] == ["map-ckd-standardised", "map-coverage", "map-undetected"]
+    assert all(width > 200 and districts == 12 and blanked >= 1 for _, width, districts, blanked in state["maps"])
+    for table, box in state["tables"].items():
+        assert box["right"] <= state["page"] + 1, (media, table, box, state["page"])
+    assert state["reasons"] and max(state["reasons"]) <= state["page"] + 1

@@ -34,6 +34,7 @@ COUNTS = {
     "table-prevalence": ("district_ckd_prevalence", ("persons_tested", "persons_ckd", "persons_ckd_g3_g5")),
     "table-coverage": ("district_screening_coverage",
                        ("persons_with_diabetes", "with_egfr", "with_acr", "with_egfr_and_acr")),
+    "table-undetected": ("district_undetected_albuminuria", ("persons_with_diabetes", "persons_without_acr")),
 }  # fmt: skip
 
 
@@ -160,14 +161,28 @@ def test_every_chart_is_inline_svg_with_title_and_desc(report):
         assert 'class="axis-label"' in body, chart_id
 
 
-def test_trend_has_one_point_per_published_period(con, report):
-    periods = [p for (p,) in rows(con, "select distinct period from published.district_screening_coverage "
-                                       "where period <= ? order by 1", [PERIOD])]  # fmt: skip
-    assert periods == list(PERIODS)
+def test_trend_has_one_point_per_month_end_as_known_then(con, report):
+    """Twelve month ends up to the period, from the published trend; its last point is the
+    published coverage of the period itself (the same persons, counted the same way)."""
+    months = [m for (m,) in rows(con, "select as_of_month from published.region_coverage_trend where period = ? "
+                                      "order by 1", [PERIOD])]  # fmt: skip
+    assert len(months) == 12 and months[-1] == PERIOD and months[0] == "2025-11"
     trend = re.search(r'<svg class="chart" id="chart-coverage-trend".*?</svg>', report, re.S).group(0)
     points = re.findall(r"<title>(\d{4}-\d{2}): ", trend)
-    assert points == periods
-    assert "<polyline" in trend  # two points: a line
+    assert points == [m for m in months if rows(con, "select share_with_both from published.region_coverage_trend "
+                                                     "where period = ? and as_of_month = ?", [PERIOD, m])[0][0]
+                      is not None]
+    assert len(points) > 2 and "<polyline" in trend
+    last = rows(con, "select persons_with_diabetes, with_egfr, with_acr, with_egfr_and_acr from "
+                     "main.region_coverage_trend where period = ? and as_of_month = ?", [PERIOD, PERIOD])
+    coverage = rows(con, "select persons_with_diabetes, with_egfr, with_acr, with_egfr_and_acr from "
+                         "main.district_screening_coverage where period = ? and district_code = 'ALL'", [PERIOD])
+    assert last == coverage
+    # earlier month ends know fewer results: the counts do not fall as the months go on (the
+    # samples grow month by month; a check that the as-of filter is applied at all)
+    first = rows(con, "select persons_with_diabetes from main.region_coverage_trend where period = ? "
+                      "order by as_of_month limit 1", [PERIOD])[0][0]
+    assert first < last[0][0]
 
 
 def test_is_deterministic(con):
@@ -218,6 +233,24 @@ def test_district_tables_show_the_published_cells(con, report):
         for district, values in published.items():
             for column, value in zip(counts, values):
                 assert shown[(district, column)] == ("s" if value is None else f"{value:,}"), (district, column)
+
+
+def test_expected_cases_not_yet_found_show_the_published_estimate(con, report):
+    """The estimate beside coverage is the published value with its interval, or 's' where the
+    counts it is built on are blanked; the assumption is stated under the table."""
+    cells = {(d, c): t for d, c, t in parse(report).cells["table-undetected"]}
+    published = rows(con, "select district_code, expected_a2_a3_without_acr, expected_a2_a3_without_acr_low, "
+                     "expected_a2_a3_without_acr_high, with_acr from published.district_undetected_albuminuria "
+                     "where period = ?", [PERIOD])
+    assert published
+    for district, value, low, high, with_acr in published:
+        text = cells[(district, "expected_a2_a3_without_acr")]
+        if with_acr is None:
+            assert text == "s", district
+        elif value is not None:
+            assert text == f"{value:,.1f} ({low:,.1f}–{high:,.1f})", district
+    assert "untested persons with diabetes are assumed to have A2 or A3 as often as" in report
+    assert "Expected cases not yet found" in report
 
 
 def test_no_suppressed_small_count_appears_in_any_table_cell(con, report):
@@ -301,7 +334,8 @@ def test_interval_columns_are_optional(warehouse):
     mem = restricted_copy(warehouse)
     for table, rate in (("district_ckd_prevalence", "ckd_share_of_tested"),
                         ("district_ckd_prevalence", "ckd_per_1000_standardised"),
-                        ("district_screening_coverage", "share_with_both")):  # fmt: skip
+                        ("district_screening_coverage", "share_with_both"),
+                        ("district_undetected_albuminuria", "expected_a2_a3_without_acr")):  # fmt: skip
         for end in ("low", "high"):
             mem.execute(f"alter table published.{table} drop column if exists {rate}_{end}")
     without = build_report_html(mem, PERIOD)
@@ -413,3 +447,65 @@ def test_standardised_rates_shown_as_published(con, report):
     # blanked count (pipeline/disclosure_audit.py): the region's rate is published.
     assert shown_rates >= 1, "the samples publish the region's standardised rate"
     assert dict((d, f) for d, _, f in published)["ALL"] == ""
+
+
+def test_equation_change_shows_the_published_cells(con, report):
+    """Each district's adults compared and moved counts are those published; 'below 60' is the
+    sum of the published G3a..G5 counts (KDIGO 2012: G3a-G5 is an eGFR below 60), or 's' when
+    any of them is blank."""
+    cells = {(d, c): t for d, c, t in parse(report).cells["table-equation-districts"]}
+    totals = rows(con, "select district_code, persons_compared, moved_to_lower_gfr_category from "
+                  "published.district_equation_change where period = ? and comparison = 'ckd_epi_2009_creatinine'",
+                  [PERIOD])
+    assert totals
+    for district, compared, lower in totals:
+        assert cells[(district, "persons_compared")] == ("s" if compared is None else f"{compared:,}")
+        assert cells[(district, "moved_to_lower_gfr_category")] == ("s" if lower is None else f"{lower:,}")
+        below = rows(con, "select persons_in_force from published.district_equation_change_categories where "
+                     "period = ? and comparison = 'ckd_epi_2009_creatinine' and district_code = ? and "
+                     "g_category in ('G3a', 'G3b', 'G4', 'G5')", [PERIOD, district])
+        values = [v for (v,) in below]
+        expected = "s" if any(v is None for v in values) else f"{sum(values):,}"
+        assert cells[(district, "below_60_persons_in_force")] == expected, district
+    assert "with no change in anyone's kidneys" in report
+
+
+def test_sensitivity_shows_the_default_beside_estimates_counted(con, report):
+    cells = {(d, c): t for d, c, t in parse(report).cells["table-sensitivity"]}
+    tested = published_total(con, "district_ckd_prevalence")["persons_tested"]
+    added = rows(con, "select persons_tested_added from published.district_estimated_acr_sensitivity "
+                      "where period = ? and district_code = 'ALL'", [PERIOD])[0][0]
+    assert cells[("persons_tested", "persons_tested_default")] == f"{tested:,}"
+    shown = cells[("persons_tested", "persons_tested_with_estimates")]
+    assert shown == ("s" if added is None else f"{tested + added:,}")
+
+
+def test_maps_colour_the_published_values_and_hatch_the_blanks(con, report):
+    """The coverage map: a district whose published share is blank is hatched and labelled 's';
+    the others are coloured by equal steps between the lowest and highest published share (the
+    lowest in the first colour, the highest in the last)."""
+    svg = re.search(r'<svg class="map" id="map-coverage".*?</svg>', report, re.S).group(0)
+    fills = dict(re.findall(r'data-district="([^"]+)" d="[^"]*" fill="([^"]+)"', svg))
+    published = {d: v for d, v in rows(con, "select district_code, share_with_both from "
+                                            "published.district_screening_coverage where period = ? and "
+                                            "district_code like 'WF%'", [PERIOD])}
+    assert set(fills) == set(published)
+    blank = [d for d, v in published.items() if v is None]
+    assert blank, "the samples have a district whose coverage is suppressed"
+    for d in blank:
+        assert fills[d] == "url(#map-coverage-hatch)" and f">{d} s</text>" in svg
+    shown = {d: v for d, v in published.items() if v is not None}
+    lowest, highest = min(shown, key=shown.get), max(shown, key=shown.get)
+    assert fills[lowest] == "#fde725" and fills[highest] == "#440154"
+
+
+def test_a_count_blanked_in_coverage_shows_as_suppressed_beside_it(warehouse):
+    """persons_with_diabetes and with_acr of the expected-cases table are coverage's, blank where
+    coverage blanks them even when this table's own counts are all published: 's', never '–'."""
+    mem = restricted_copy(warehouse)
+    mem.execute("update published.district_undetected_albuminuria set with_acr = null, "
+                "expected_a2_a3_without_acr = null, suppression = '' where period = ? and district_code = 'WF01'",
+                [PERIOD])
+    cells = {(d, c): t for d, c, t in parse(build_report_html(mem, PERIOD)).cells["table-undetected"]}
+    assert cells[("WF01", "expected_a2_a3_without_acr")] == "s"
+    assert cells[("WF01", "share_a2_a3_of_tested")] == "s"
