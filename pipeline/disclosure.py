@@ -181,6 +181,13 @@ class PublishedTable:
     totals: TotalsFrom | None = None
     #: Standardised rates published by the broad-group rule of the module docstring.
     standardised: Standardised | None = None
+    #: Columns read to blank this table's figures but not published with it: counts another
+    #: table publishes (a count published under one name in two tables is one cell to the joint
+    #: audit, which cannot protect a copy that lags the other table's blanks), or a difference
+    #: of them. After the joint audit the figures of a row are blanked again wherever the other
+    #: table's final rows blank one of ``follows`` (:func:`follow_final_blanks`).
+    hidden: tuple[str, ...] = ()
+    follows: tuple[str, tuple[str, ...], tuple[str, ...]] | None = None  # (table, its counts, our columns)
 
 
 PUBLISHED_TABLES = (
@@ -236,21 +243,25 @@ PUBLISHED_TABLES = (
             copied=("persons_tested",)),
     ),
     # Expected undetected albuminuria (pipeline/undetected.py): its persons with diabetes and with
-    # an ACR are the counts of district_screening_coverage, shown as published there; the
-    # estimate is blanked with either of them. The untested count is a count of its own here (it
-    # is also their difference: relations between columns are not used, see the docstring).
+    # an ACR are the counts of district_screening_coverage, and the untested their difference.
+    # They are read here only to blank the estimates (which are bounded by the untested count)
+    # wherever coverage blanks either count, and are not published again: readers take them
+    # from coverage, the one place the joint audit protects them.
     PublishedTable(
         "district_undetected_albuminuria",
         keys=("period", "district_code"),
-        counts=("persons_without_acr", "with_acr_a2_a3", "without_acr_pooled_stratum"),
-        rates={"share_a2_a3_of_tested": ("with_acr_a2_a3", "with_acr"),
-               "expected_share_without_acr": ("persons_with_diabetes", "with_acr", "persons_without_acr")}
+        counts=("with_acr_a2_a3", "without_acr_pooled_stratum"),
+        rates={"share_a2_a3_of_tested": ("with_acr_a2_a3", "with_acr")}
         | {c: ("persons_with_diabetes", "with_acr")
-           for c in ("expected_a2_a3_without_acr", "expected_a2_a3_without_acr_low",
-                     "expected_a2_a3_without_acr_high")},
+           for c in ("expected_share_without_acr", "expected_a2_a3_without_acr",
+                     "expected_a2_a3_without_acr_low", "expected_a2_a3_without_acr_high")},
         levels=(("district_code",),),
         totals=TotalsFrom("district_screening_coverage", join=("period", "district_code"), row={},
                           partitions=(), copied=("persons_with_diabetes", "with_acr")),
+        hidden=("persons_with_diabetes", "with_acr", "persons_without_acr"),
+        follows=("district_screening_coverage", ("persons_with_diabetes", "with_acr"),
+                 ("share_a2_a3_of_tested", "expected_share_without_acr", "expected_a2_a3_without_acr",
+                  "expected_a2_a3_without_acr_low", "expected_a2_a3_without_acr_high")),
     ),
     # Coverage trend, all districts, as it stood at each of the 12 month ends (no hierarchy: one
     # row per month; its last row is district_screening_coverage's 'ALL' row).
@@ -957,7 +968,27 @@ def _disclose(frame: pl.DataFrame, table: PublishedTable, rules: DisclosureSetti
         hide = flags.is_in([FEW_EVENTS, SUPPRESSED])
         columns += [pl.when(hide).then(None).otherwise(pl.col(r)).alias(r) for r in spec.rates if r in frame.columns]
         columns.append(flags)
-    return _Disclosed(frame, frame.with_columns(columns), state)
+    published = frame.with_columns(columns)
+    return _Disclosed(frame, published.drop([c for c in table.hidden if c in published.columns]), state)
+
+
+def follow_final_blanks(frames: dict[str, pl.DataFrame]) -> dict[str, pl.DataFrame]:
+    """Blank the figures of each table with ``follows`` wherever the other table's final
+    (audited) row blanks one of the named counts; a row the other table lacks is blanked too."""
+    out = dict(frames)
+    for table in PUBLISHED_TABLES:
+        if table.follows is None or table.name not in out or table.totals is None:
+            continue
+        other, counts, ours = table.follows
+        mine, keys = out[table.name], list(table.totals.join)
+        if other in out and out[other].height:
+            blank = out[other].select(*keys, pl.any_horizontal([pl.col(c).is_null() for c in counts]).alias("_gone"))
+            gone = mine.select(keys).join(blank, on=keys, how="left", maintain_order="left")["_gone"].fill_null(True)
+        else:
+            gone = pl.Series("_gone", [True] * mine.height)
+        out[table.name] = mine.with_columns(
+            [pl.when(gone).then(None).otherwise(pl.col(c)).alias(c) for c in ours if c in mine.columns])
+    return out
 
 
 def _below(state: _Table, table: PublishedTable, blank: dict[str, pl.Series]) -> dict[str, pl.Series]:
@@ -1029,7 +1060,7 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
         if _exists(con, name):
             previous[name] = fetch_frame(con, f"select * from published.{name} where period = ?", [last])
     result = audit(audited, rules, basis, previous)
-    for name, published in result.frames.items():
+    for name, published in follow_final_blanks(result.frames).items():
         if not _exists(con, name):
             with_frame(con, published, f"create table published.{name} as select * from _frame")
         else:
@@ -1062,7 +1093,9 @@ def audit_frames(frames: Mapping[str, pl.DataFrame], rules: DisclosureSettings, 
         marks = {c: [s if s in _BLANKED else "" for s in disclosed.state.status[c][: frame.height]]
                  for c in table.counts}  # fmt: skip
         audited[table.name] = table_from_frames(table.name, disclosed.frame, frame, table, marks)
-    return audit(audited, rules, basis)
+    result = audit(audited, rules, basis)
+    result.frames = follow_final_blanks(result.frames)
+    return result
 
 
 def _previous_label(period: Period) -> str:

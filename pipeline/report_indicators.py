@@ -17,7 +17,13 @@ UNDETECTED = "published.district_undetected_albuminuria"
 def collect_undetected(con, period: str) -> list[dict[str, Any]]:
     if not r._exists(con, UNDETECTED):
         return []
-    return r._district_order(r._select(con, UNDETECTED, "select * from {t} where period = ?", [period]))
+    # the counts of persons with diabetes and with an ACR are coverage's, published there only
+    # (pipeline/disclosure.py): shown beside the estimates as coverage publishes them
+    query = ("select u.*, c.persons_with_diabetes, c.with_acr, "
+             "c.persons_with_diabetes - c.with_acr as persons_without_acr "
+             "from {t} as u left join published.district_screening_coverage as c "
+             "on c.period = u.period and c.district_code = u.district_code where u.period = ?")
+    return r._district_order(r._select(con, UNDETECTED, query, [period]))
 
 
 #: Counts shown as district_screening_coverage publishes them: never empty unless blanked there
