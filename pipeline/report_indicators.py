@@ -58,8 +58,15 @@ def undetected_section(rows: list[dict[str, Any]], data: Any) -> str:
     for row in rows:
         diabetes = (r._Cell("s", "persons_with_diabetes", "s") if row.get("persons_with_diabetes") is None
                     else r._count_cell(row, "persons_with_diabetes"))
+        untested = row.get("persons_without_acr")
+        # the difference of two of coverage's counts: shown only where both are and it is not a
+        # count from 1 to suppress_max itself
+        if _copied_blank(row) or (untested is not None and 1 <= untested <= data.suppress_max):
+            untested_cell = r._Cell("s", "persons_without_acr", "s")
+        else:
+            untested_cell = r._count_cell(row, "persons_without_acr")
         cells = [diabetes,
-                 r._count_cell(row, "persons_without_acr"),
+                 untested_cell,
                  (r._Cell("s", "share_a2_a3_of_tested", "s") if row.get("with_acr") is None
                   else r._rate_cell(table, row, "share_a2_a3_of_tested", data, r._share_number, False)),
                  _expected_cell(row, data, ci)]
