@@ -307,7 +307,7 @@ def test_dipsticks_pass_the_gate_and_reach_kidney_measures_estimated(tmp_path: P
 
     config = make_small_config(tmp_path / "config", max_rejection_rate=0.05)
     edit_pipeline_yaml(config, "quality_gate", "great_expectations", True)
-    edit_pipeline_yaml(config, "quality_gate", "data_docs", "never")
+    edit_pipeline_yaml(config, "quality_gate", "quality_pages", "never")
     lines = [HEADER]
     readings = ["negative", "trace", "+", "++", "3+"]
     for n, reading in enumerate(readings):
