@@ -74,7 +74,7 @@ log = logging.getLogger(__name__)
 MAX_UNEXPECTED_IDS = 20
 #: Statuses that withdraw a result: no value is expected and none is range-checked.
 WITHDRAWN_STATUSES = ("cancelled", "entered-in-error")
-#: Sex codes after staging (DESIGN.md: F, M, U; FHIR female/male mapped, anything else U).
+#: Sex codes after staging (DEVELOPERS.md, Design notes: F, M, U; FHIR female/male mapped, anything else U).
 SEX_CODES = ("F", "M", "U")
 #: Columns that must never be null on a well-formed row.
 KEY_COLUMNS = ("person_key", "collected_date", "analyte", "source_id", "file_id", "line_no")

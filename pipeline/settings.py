@@ -18,7 +18,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 #: Identifiers taken from config end up in SQL as table values or file names: keep them plain.
 IDENTIFIER_PATTERN = r"^[a-z][a-z0-9_]{0,62}$"
 
-#: Fields of the standard extract layout (DESIGN.md), required and optional.
+#: Fields of the standard extract layout (DEVELOPERS.md, Design notes), required and optional.
 STANDARD_REQUIRED = (
     "person_token",
     "birth_year",

@@ -11,7 +11,7 @@ one real month run in which a defect that slipped past the row rules holds its s
 Outside references: the FHIR R4 Observation status value set (final, amended, corrected,
 cancelled, entered-in-error, preliminary; HL7 FHIR R4, ValueSet observation-status); canonical
 units creatinine mg/dL, ACR mg/g, HbA1c % (NGSP) are UCUM codes of the project's contract
-(DESIGN.md); the plausible range of serum creatinine 0.1-25 mg/dL is config/pipeline.yaml's
+(DEVELOPERS.md, Design notes); the plausible range of serum creatinine 0.1-25 mg/dL is config/pipeline.yaml's
 ("common practice": wide physiological limits). Row values are invented (region Westerfold).
 """
 
@@ -51,7 +51,7 @@ LEDGER_ROW = (
     "insert into ingest_files (file_id, source_id, file_path, version, sha256, size_bytes, status, "
     "rows_read, run_period, ingested_at) values (?, ?, ?, 1, 'sha', 1, ?, ?, '2025-06', now())"
 )
-# LOINC and canonical unit (UCUM) per analyte used here (DESIGN.md canonical units)
+# LOINC and canonical unit (UCUM) per analyte used here (DEVELOPERS.md, Design notes canonical units)
 ANALYTES = {"creatinine": ("2160-0", "mg/dL"), "acr": ("9318-7", "mg/g"), "hba1c": ("4548-4", "%")}
 
 
