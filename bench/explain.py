@@ -26,7 +26,7 @@ REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
 #: SQL files over persisted tables, in pipeline order, with the parameters they get.
-FILES = ("int_result_versions_resolved", "lab_results", "int_daily_values_averaged", "kidney_events", "person_status")
+FILES = ("result_versions_resolved", "lab_results", "daily_values_averaged", "kidney_events", "person_status")
 
 
 def operators(node: dict, out: list[tuple[float, str, int, str]]) -> list[tuple[float, str, int, str]]:

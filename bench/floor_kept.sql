@@ -1,4 +1,4 @@
--- floor_kept.sql: what the warehouse must keep of a month (DESIGN.md, data contracts), written
+-- floor_kept.sql: what the warehouse must keep of a month (DEVELOPERS.md, Design notes), written
 -- the cheapest way, as a second lower bound beside floor.sql. Run after floor.sql in the same
 -- connection, attached to a DuckDB file, in one transaction (as a run is):
 --   every input row once, typed, in the 24 columns of result_versions (the person token

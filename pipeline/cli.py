@@ -29,8 +29,10 @@ app = typer.Typer(
     "decline and diabetes screening coverage by district, with small counts suppressed.",
     no_args_is_help=True,
     add_completion=False,
+    rich_markup_mode=None,  # plain help: a flag is shown as a flag, not as an option taking <bool>
 )
-sources_app = typer.Typer(help="Look at lab sources and their files.", no_args_is_help=True)
+sources_app = typer.Typer(help="Look at lab sources and their files.", no_args_is_help=True,
+                          rich_markup_mode=None)
 app.add_typer(sources_app, name="sources")
 console = Console(highlight=False, width=None if sys.stdout.isatty() else 120)
 err = Console(stderr=True, highlight=False)
@@ -510,6 +512,41 @@ def sources_check(
     for reason in report.would_hold:
         console.print(f"  [bold red]would be held back:[/] {reason}", soft_wrap=True)
     raise typer.Exit(EXIT_HELD_BACK if report.would_hold or report.unmapped else EXIT_OK)
+
+
+@sources_app.command("list")
+def sources_list(
+    config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
+) -> None:
+    """List the configured lab sources: id, layout, inbox folder, cadence and files expected."""
+    try:
+        settings = load_settings(config)
+    except ConfigError as exc:
+        _fail(str(exc))
+    table = Table("source", "layout", "inbox folder", "cadence", "files")
+    for source in sorted(settings.sources, key=lambda s: s.id):
+        table.add_row(source.id, source.layout, source.folder, source.cadence, source.file_glob)
+    console.print(table)
+    console.print(f"{len(settings.sources)} sources in {config / 'sources'}")
+
+
+def _print_version(value: bool) -> None:
+    if value:
+        from importlib.metadata import PackageNotFoundError, version
+
+        try:
+            console.print(f"kidneysurv {version('kidneysurv')}")
+        except PackageNotFoundError:  # run from a checkout that was never installed
+            console.print("kidneysurv (not installed)")
+        raise typer.Exit(EXIT_OK)
+
+
+@app.callback()
+def _main(
+    show_version: Annotated[bool, typer.Option("--version", callback=_print_version, is_eager=True,
+                                               help="Print the version and exit.")] = False,
+) -> None:
+    """Population kidney surveillance from monthly lab extracts."""
 
 
 def main() -> None:  # pragma: no cover

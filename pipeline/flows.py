@@ -145,8 +145,8 @@ def _expectations(ctx: RunContext, con: duckdb.DuckDBPyConnection) -> dict[str, 
         return {}
     from pipeline.quality import check_batches  # GX itself is imported inside (it takes seconds)
 
-    docs = quality_docs_dir(ctx.out, ctx.period) if gate.data_docs != "never" else None
-    checks = check_batches(con, ctx.settings, docs, data_docs=gate.data_docs)
+    docs = quality_docs_dir(ctx.out, ctx.period) if gate.quality_pages != "never" else None
+    checks = check_batches(con, ctx.settings, docs, quality_pages=gate.quality_pages)
     ctx.batch_checks = {
         s: {"success": c.success, "evaluated": c.evaluated, "failed": c.failed,
             "unexpected_row_ids": c.unexpected_row_ids, "seconds": round(c.seconds, 3)}

@@ -1,6 +1,6 @@
 """Link: person trajectories across labs and months, events and person status at the period end.
 
-The rules are in ``sql/marts/kidney_events.sql`` and ``sql/marts/person_status.sql``; their
+The rules are in ``sql/analysis/kidney_events.sql`` and ``sql/analysis/person_status.sql``; their
 numbers come from config/pipeline.yaml ("trajectories") through ``reference.trajectory_rules``
 and bound parameters.
 """
@@ -83,7 +83,7 @@ def write_trajectory_rules(con: duckdb.DuckDBPyConnection, settings: Settings) -
 
 
 def build_known_at_period_end(con: duckdb.DuckDBPyConnection, period: Period) -> bool:
-    """The results as known at the period end (``int_results_known``): versions reported later
+    """The results as known at the period end (``results_known``): versions reported later
     do not count, so a past period is rebuilt as it was known then.
 
     Returns True when nothing in the warehouse is reported after the period end (the usual
@@ -93,27 +93,27 @@ def build_known_at_period_end(con: duckdb.DuckDBPyConnection, period: Period) ->
     later = con.execute(
         "select count(*) from result_versions where reported_date > ?", [period.end]
     ).fetchall()[0][0]
-    drop_relation(con, "int_results_known")
+    drop_relation(con, "results_known")
     if later == 0:
-        # the same rows as sql/intermediate/int_results_known.sql gives in this case, as a view
+        # the same rows as sql/derived/results_known.sql gives in this case, as a view
         # (no copy); the date is a datetime.date, written as an ISO literal
         con.execute(
-            "create view int_results_known as select * from result_versions "
+            "create view results_known as select * from result_versions "
             f"where outcome = 'accepted' and collected_date <= date '{period.end.isoformat()}'"
         )
         return True
     con.execute("create or replace temp view versions_in_scope as select * from result_versions")
-    build_table(con, "int_result_versions_resolved", "int_versions_as_of", {"as_of": period.end}, temporary=True)
+    build_table(con, "result_versions_resolved", "versions_as_of", {"as_of": period.end}, temporary=True)
     con.execute("drop view versions_in_scope")
-    build_table(con, "int_results_known", params={"period_end": period.end})
-    con.execute("drop table int_versions_as_of")
+    build_table(con, "results_known", params={"period_end": period.end})
+    con.execute("drop table versions_as_of")
     return False
 
 
 def build_person_tables(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period,
                         sharded: bool = False, as_stored: bool = False,
                         snapshot: Snapshot | None = None) -> int:
-    """From ``int_results_known``: the measures known at the period end, daily values, events
+    """From ``results_known``: the measures known at the period end, daily values, events
     and person status; returns the persons whose events were computed.
 
     ``as_stored``: the results known at the period end are those of ``lab_results``, so their
@@ -123,23 +123,23 @@ def build_person_tables(con: duckdb.DuckDBPyConnection, settings: Settings, peri
     (plain tables, no other periods to keep).
     """
     params = event_params(settings, period)
-    drop_relation(con, "int_measures_known")
+    drop_relation(con, "measures_known")
     if as_stored:
         con.execute(
-            "create view int_measures_known as select * from kidney_measures "
+            "create view measures_known as select * from kidney_measures "
             f"where collected_date <= date '{period.end.isoformat()}'"
         )
     else:
         results = fetch_frame(
-            con, "select * from int_results_known where list_contains($analytes, analyte)",
+            con, "select * from results_known where list_contains($analytes, analyte)",
             {"analytes": list(MEASURED_ANALYTES)},
         )
         known = measure_frame(results, settings)
         del results
-        with_frame(con, known, "create table int_measures_known as select * from _frame")
+        with_frame(con, known, "create table measures_known as select * from _frame")
     if snapshot is not None:
         return carry_over(con, settings, period, snapshot)
-    build_table(con, "int_daily_values_averaged", params=params)
+    build_table(con, "daily_values_averaged", params=params)
     if sharded:
         build_table(con, "kidney_events", params=params)
         build_table(con, "person_status", params=params)
@@ -169,8 +169,8 @@ def logic_fingerprint(settings: Settings) -> str:
 #: Code and SQL whose change makes every person's events be recomputed.
 LOGIC_FILES = tuple(
     [Path(__file__).with_name(n) for n in ("measures.py", "equations.py", "linkage.py")]
-    + [sql_path(n) for n in ("int_results_known", "int_daily_values_averaged", "kidney_events",
-                             "int_result_versions_resolved")]
+    + [sql_path(n) for n in ("results_known", "daily_values_averaged", "kidney_events",
+                             "result_versions_resolved")]
 )  # fmt: skip
 
 
@@ -238,7 +238,7 @@ def carry_over(con: duckdb.DuckDBPyConnection, settings: Settings, period: Perio
 
     Why this equals a full rebuild: daily values and events depend on a person's values only;
     of person status only the age and age band depend on the period end, and they are
-    recomputed here as in ``sql/marts/person_status.sql``.
+    recomputed here as in ``sql/analysis/person_status.sql``.
     """
     n = changed_persons(con, period, snapshot)
     params = event_params(settings, period)
@@ -251,18 +251,18 @@ def carry_over(con: duckdb.DuckDBPyConnection, settings: Settings, period: Perio
         ).fetchall()]  # fmt: skip
         for table in tables:
             _copy_into(scratch, table, con.sql(f"select * from {table}").to_arrow_table())
-        for table in ("int_results_known", "int_measures_known"):
+        for table in ("results_known", "measures_known"):
             rows = con.sql(f"select * from {table} semi join link_persons using (person_key)").to_arrow_table()
             _copy_into(scratch, table, rows)
-        build_table(scratch, "int_daily_values_averaged", params=params)
+        build_table(scratch, "daily_values_averaged", params=params)
         build_table(scratch, "kidney_events", params=params)
         build_table(scratch, "person_status", params=params)
         fresh = {t: scratch.sql(f"select * from {t}").to_arrow_table()
-                 for t in ("int_daily_values_averaged", "kidney_events", "person_status")}  # fmt: skip
+                 for t in ("daily_values_averaged", "kidney_events", "person_status")}  # fmt: skip
     finally:
         scratch.close()
-    con.execute("delete from int_daily_values_averaged where person_key in (select person_key from link_persons)")
-    _insert_arrow(con, "int_daily_values_averaged", fresh["int_daily_values_averaged"])
+    con.execute("delete from daily_values_averaged where person_key in (select person_key from link_persons)")
+    _insert_arrow(con, "daily_values_averaged", fresh["daily_values_averaged"])
     con.execute(
         "create or replace temp table kidney_events_new as "
         "select * replace ($period as period) from kidney_events "
@@ -308,8 +308,8 @@ def record_snapshot(con: duckdb.DuckDBPyConnection, period: Period, fingerprint:
 
 #: Row order of the person-level tables (as their SQL orders them), for putting shards together.
 PERSON_TABLE_ORDER = {
-    "int_measures_known": ["person_key", "collected_date", "analyte", "file_id", "line_no"],
-    "int_daily_values_averaged": ["person_key", "measure", "day"],
+    "measures_known": ["person_key", "collected_date", "analyte", "file_id", "line_no"],
+    "daily_values_averaged": ["person_key", "measure", "day"],
     "kidney_events": ["person_key", "rule_id"],
     "person_status": ["person_key"],
 }

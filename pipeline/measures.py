@@ -338,7 +338,7 @@ def measure_frame(results: pl.DataFrame, settings: Settings) -> pl.DataFrame:
     m = settings.pipeline.measures
     results = results.with_columns(age_at_collection(results.columns).alias("age_exact"))
     if "birth_year" in results.columns:
-        # the completed years of the same estimate (as int_results_validated.sql computes them),
+        # the completed years of the same estimate (as results_validated.sql computes them),
         # so that a measure's age and the equation it got always agree, also on rows stored by
         # an earlier version that took collection year - birth year
         results = results.with_columns(pl.col("age_exact").floor().cast(pl.Int64).alias("age_years"))

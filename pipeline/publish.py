@@ -31,8 +31,8 @@ def open_warehouse(out_dir: Path, memory_limit: str = "2GB") -> duckdb.DuckDBPyC
 
 def commit_month(con: duckdb.DuckDBPyConnection) -> None:
     apply_comments(con)
-    for table in ("landed_rows", "stg_landed_rows", "int_results_validated",
-                  "int_result_versions_resolved", "scope_persons", "scope_versions",
+    for table in ("landed_rows", "landed_rows_typed", "results_validated",
+                  "result_versions_resolved", "scope_persons", "scope_versions",
                   "link_persons"):  # transient: not kept
         con.execute(f"drop table if exists staging.{table}")
     con.execute("commit")

@@ -1,7 +1,7 @@
 """Quality gate per source batch: Great Expectations suites on a summary of the run's batches.
 
 Runs inside the validate stage after this run's rows were judged
-(``int_results_validated``). A source's batch is its well-formed rows of this run
+(``results_validated``). A source's batch is its well-formed rows of this run
 (``reason_code`` null). The row-level rules in SQL already judge every row; this gate is the
 batch-level check that the standardised table is what the marts expect, so that a rule that
 slips (a join that fans out, a unit factor or range left out, a mapping gone wrong) shows up
@@ -42,8 +42,8 @@ overlaps: in a 10M month the scan and ingest slowed by 0.8-2.6 s and the gate ga
 about nothing on balance.
 
 Data Docs: with ``docs_dir`` given, the HTML report is built there (the caller passes
-``out/<period>/quality/``) when a batch failed, or on every run with ``data_docs="always"``
-(setting ``quality_gate.data_docs``). Pages load their stylesheets, scripts and fonts from CDNs
+``out/<period>/quality/``) when a batch failed, or on every run with ``quality_pages="always"``
+(setting ``quality_gate.quality_pages``). Pages load their stylesheets, scripts and fonts from CDNs
 by default; the copies vendored in ``pipeline/quality_assets/`` are put beside the pages
 (``static/vendor/``) and every such link is rewritten to a relative path, so the report renders
 offline.
@@ -74,12 +74,12 @@ log = logging.getLogger(__name__)
 MAX_UNEXPECTED_IDS = 20
 #: Statuses that withdraw a result: no value is expected and none is range-checked.
 WITHDRAWN_STATUSES = ("cancelled", "entered-in-error")
-#: Sex codes after staging (DESIGN.md: F, M, U; FHIR female/male mapped, anything else U).
+#: Sex codes after staging (DEVELOPERS.md, Design notes: F, M, U; FHIR female/male mapped, anything else U).
 SEX_CODES = ("F", "M", "U")
 #: Columns that must never be null on a well-formed row.
 KEY_COLUMNS = ("person_key", "collected_date", "analyte", "source_id", "file_id", "line_no")
-#: When the Data Docs are built (setting ``quality_gate.data_docs``).
-DATA_DOCS_CHOICES = ("on_failure", "always", "never")
+#: When the Data Docs are built (setting ``quality_gate.quality_pages``).
+QUALITY_PAGES_CHOICES = ("on_failure", "always", "never")
 
 #: The standardised table (the columns of result_versions, before the outcome is settled) and
 #: the DuckDB type of each.
@@ -114,7 +114,7 @@ FRAMES: dict[str, tuple[str, ...]] = {
     "batch_cells": ("source_id", "analyte_unit", "status", "sex"),
     "batch_totals": ("source_id",),
 }
-_TABLE = "int_results_validated"  # a temporary table of the run's connection
+_TABLE = "results_validated"  # a temporary table of the run's connection
 _WITHDRAWN = "coalesce(v.status, '') in ('cancelled', 'entered-in-error')"
 _NUMBER = "v.value is not null and not isnan(v.value)"
 
@@ -202,7 +202,7 @@ class BatchCheck:
 class _Check:
     """One expectation, the frame it runs on, and the rows of a batch that break it.
 
-    ``rows`` is a SQL predicate over ``int_results_validated as v`` (left-joined to
+    ``rows`` is a SQL predicate over ``results_validated as v`` (left-joined to
     ``reference.ranges as r``) that holds exactly on the well-formed rows behind a failing
     summary row; None for a check that is not about rows (columns, row-count balance).
     """
@@ -218,20 +218,20 @@ def check_batches(
     settings: Settings,
     docs_dir: Path | None,
     *,
-    data_docs: str | None = None,
+    quality_pages: str | None = None,
 ) -> dict[str, BatchCheck]:
     """Validate the summary of every source's batch of this run; build Data Docs if asked.
 
-    Returns one :class:`BatchCheck` per source with rows in ``int_results_validated``.
+    Returns one :class:`BatchCheck` per source with rows in ``results_validated``.
     ``docs_dir`` (restricted output: see the module docstring) receives the Data Docs; None
-    skips them. ``data_docs`` (default: the setting ``quality_gate.data_docs``): on_failure
+    skips them. ``quality_pages`` (default: the setting ``quality_gate.quality_pages``): on_failure
     builds them only when some batch failed (a clean run leaves no report there), always on
     every call, never not at all.
     """
     started = time.perf_counter()
-    mode = data_docs or getattr(settings.pipeline.quality_gate, "data_docs", "on_failure")
-    if mode not in DATA_DOCS_CHOICES:
-        raise ValueError(f"data_docs must be one of {', '.join(DATA_DOCS_CHOICES)}, not {mode!r}")
+    mode = quality_pages or getattr(settings.pipeline.quality_gate, "quality_pages", "on_failure")
+    if mode not in QUALITY_PAGES_CHOICES:
+        raise ValueError(f"quality_pages must be one of {', '.join(QUALITY_PAGES_CHOICES)}, not {mode!r}")
     present = _present_columns(con)
     frames = {
         "standardised_columns": _schema_frame(con),
@@ -302,7 +302,7 @@ def _present_columns(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
     """Columns of the table and their DuckDB types."""
     return dict(con.execute(
         "select column_name, data_type from duckdb_columns() "
-        "where database_name = 'temp' and schema_name = 'main' and table_name = 'int_results_validated'"
+        "where database_name = 'temp' and schema_name = 'main' and table_name = 'results_validated'"
     ).fetchall())  # fmt: skip
 
 
@@ -325,7 +325,7 @@ def _schema_frame(con: duckdb.DuckDBPyConnection) -> Any:
     return _frame(con, f"""
         select column_name, data_type, column_name || ' ' || data_type as column_type
         from duckdb_columns()
-        where database_name = 'temp' and schema_name = 'main' and table_name = 'int_results_validated'
+        where database_name = 'temp' and schema_name = 'main' and table_name = 'results_validated'
           and column_name in ({names})
         order by column_index
     """)  # fmt: skip

@@ -322,7 +322,7 @@ def _batch_gate(settings: Settings) -> Any:
     def check(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
         from pipeline.quality import check_batches  # GX is imported only when the gate runs
 
-        checks = check_batches(con, settings, None, data_docs="never")
+        checks = check_batches(con, settings, None, quality_pages="never")
         return {s: "; ".join(c.failed[:3]) for s, c in checks.items() if not c.success}
 
     return check

@@ -18,7 +18,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 #: Identifiers taken from config end up in SQL as table values or file names: keep them plain.
 IDENTIFIER_PATTERN = r"^[a-z][a-z0-9_]{0,62}$"
 
-#: Fields of the standard extract layout (DESIGN.md), required and optional.
+#: Fields of the standard extract layout (DEVELOPERS.md, Design notes), required and optional.
 STANDARD_REQUIRED = (
     "person_token",
     "birth_year",
@@ -326,16 +326,16 @@ class QualityGateSettings(_Strict):
     #: this is held back, as for the rejection rate.
     max_unmapped_share: float = Field(default=0.01, ge=0, le=1)
     great_expectations: bool = True
-    #: When the Great Expectations Data Docs are built into out/<period>/quality/: on_failure
+    #: When the quality pages (Great Expectations' rendered HTML of the suites) are built into out/<period>/quality/: on_failure
     #: (only when some batch fails its suite), always, or never.
-    data_docs: Literal["on_failure", "always", "never"] = "on_failure"
+    quality_pages: Literal["on_failure", "always", "never"] = "on_failure"
 
-    @field_validator("data_docs", mode="before")
+    @field_validator("quality_pages", mode="before")
     @classmethod
-    def _data_docs_choice(cls, value: Any) -> Any:
+    def _quality_pages_choice(cls, value: Any) -> Any:
         if value not in ("on_failure", "always", "never"):
             raise ValueError(
-                "must be one of on_failure (build the Data Docs only when a batch fails), always "
+                "must be one of on_failure (build the quality pages only when a batch fails), always "
                 "or never; YAML reads true/false/yes/no/on/off as booleans, so write the word"
             )
         return value

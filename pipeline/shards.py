@@ -29,7 +29,7 @@ from pipeline.settings import Settings, load_settings
 REFERENCE_TABLES = ("gfr_categories", "gfr_categories_ordered", "kdigo_risk", "age_bands",
                     "districts", "trajectory_rules")  # fmt: skip
 #: Tables a shard writes, in the order they are built.
-SHARD_OUTPUTS = ("int_measures_known", "int_daily_values_averaged", "kidney_events", "person_status")
+SHARD_OUTPUTS = ("measures_known", "daily_values_averaged", "kidney_events", "person_status")
 
 
 def shard_expression(shards: int) -> str:
@@ -49,8 +49,8 @@ def export_shard_inputs(con: duckdb.DuckDBPyConnection, work: Path, shards: int)
         folder = work / f"shard_{shard:03d}"
         folder.mkdir()
         con.execute(
-            f"copy (select * from int_results_known where {shard_expression(shards)} = {shard}) "
-            f"to {_literal(folder / 'int_results_known.parquet')} (format parquet)"
+            f"copy (select * from results_known where {shard_expression(shards)} = {shard}) "
+            f"to {_literal(folder / 'results_known.parquet')} (format parquet)"
         )
         folders.append(folder)
     return folders
@@ -74,8 +74,8 @@ def run_shard(folder: str, config_dir: str, period_label: str) -> str:
         for path in sorted((folder_path.parent / "reference").glob("*.parquet")):
             con.execute(f"create table reference.{path.stem} as select * from read_parquet({_literal(path)})")
         con.execute(
-            "create table int_results_known as select * from "
-            f"read_parquet({_literal(folder_path / 'int_results_known.parquet')})"
+            "create table results_known as select * from "
+            f"read_parquet({_literal(folder_path / 'results_known.parquet')})"
         )
         build_person_tables(con, settings, period, sharded=True)
         for table in SHARD_OUTPUTS:

@@ -1,7 +1,7 @@
 """Validate: row-level rules, versions and duplicates, and the per-file balance.
 
-Each file's landed rows go through ``sql/staging/stg_landed_rows.sql`` and
-``sql/intermediate/int_results_validated.sql`` as the ingest stage hands them over
+Each file's landed rows go through ``sql/landing/landed_rows_typed.sql`` and
+``sql/derived/results_validated.sql`` as the ingest stage hands them over
 (:func:`judge_file`), so a run's rows are read and written once. Then, over the whole run, the
 quality gate holds back the sources over their rejection limit or failing their expectation
 suite; a row breaking a rule goes to ``rejected_rows`` with its reason code, a message and its
@@ -47,37 +47,37 @@ class ValidateSummary:
 
 
 def _judged_sql() -> str:
-    """int_results_validated over one landed frame (``_frame``), its staging inlined."""
-    return sql_over("int_results_validated", {
+    """results_validated over one landed frame (``_frame``), its staging inlined."""
+    return sql_over("results_validated", {
         "landed_rows": "select * from _frame",
-        "stg_landed_rows": "sql:stg_landed_rows",
+        "landed_rows_typed": "sql:landed_rows_typed",
     })  # fmt: skip
 
 
 def _unmapped_sql() -> str:
-    """int_unmapped_codes over one landed frame (``_frame``), its staging inlined."""
-    return sql_over("int_unmapped_codes", {
+    """unmapped_code_values over one landed frame (``_frame``), its staging inlined."""
+    return sql_over("unmapped_code_values", {
         "landed_rows": "select * from _frame",
-        "stg_landed_rows": "sql:stg_landed_rows",
+        "landed_rows_typed": "sql:landed_rows_typed",
     })  # fmt: skip
 
 
 def begin_judging(con: duckdb.DuckDBPyConnection) -> None:
-    """Start this run's ``int_results_validated`` and ``int_unmapped_codes`` (temporary
+    """Start this run's ``results_validated`` and ``unmapped_code_values`` (temporary
     tables), empty."""
-    with_frame(con, empty_landed(), "create or replace temp table int_results_validated as\n" + _judged_sql())
-    with_frame(con, empty_landed(), "create or replace temp table int_unmapped_codes as\n" + _unmapped_sql())
+    with_frame(con, empty_landed(), "create or replace temp table results_validated as\n" + _judged_sql())
+    with_frame(con, empty_landed(), "create or replace temp table unmapped_code_values as\n" + _unmapped_sql())
 
 
 def judge_file(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> None:
-    """Judge one file's landed rows (the ingest stage's sink) into ``int_results_validated``.
+    """Judge one file's landed rows (the ingest stage's sink) into ``results_validated``.
 
     The rules read one row and the reference tables only, so judging file by file gives the
     same rows as judging the run at once; the raw line is kept on rejected rows only."""
-    with_frame(con, frame, "insert into int_results_validated\n" + _judged_sql(), batch_rows=JUDGE_BATCH_ROWS)
+    with_frame(con, frame, "insert into results_validated\n" + _judged_sql(), batch_rows=JUDGE_BATCH_ROWS)
     candidates = _unmapped_candidates(con, frame)
     if candidates.height:  # usually none: the unmapped-code query then costs nothing
-        with_frame(con, candidates, "insert into int_unmapped_codes\n" + _unmapped_sql())
+        with_frame(con, candidates, "insert into unmapped_code_values\n" + _unmapped_sql())
 
 
 _KNOWN_SEX = ["F", "FEMALE", "M", "MALE", "U", "UNKNOWN", "OTHER"]
@@ -87,7 +87,7 @@ _FHIR = ["final", "amended", "corrected", "cancelled", "entered-in-error", "prel
 
 def _unmapped_candidates(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> pl.DataFrame:
     """The rows of ``frame`` that may carry a code no config maps: a superset of what
-    ``int_unmapped_codes.sql`` counts, found in polars against the (small) reference tables, so
+    ``unmapped_code_values.sql`` counts, found in polars against the (small) reference tables, so
     that the query runs only over them."""
     if not frame.height:
         return frame
@@ -120,7 +120,7 @@ GATED_UNMAPPED_FIELDS = ("sex", "unit")
 
 def _has_unmapped_table(con: duckdb.DuckDBPyConnection) -> bool:
     return bool(con.execute("select count(*) from duckdb_tables() where temporary "
-                            "and table_name = 'int_unmapped_codes'").fetchall()[0][0])
+                            "and table_name = 'unmapped_code_values'").fetchall()[0][0])
 
 
 def unmapped_codes(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, dict]]:
@@ -130,7 +130,7 @@ def unmapped_codes(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, dict]]
     if not _has_unmapped_table(con):
         return out
     for source, field_name, key, code, n in con.execute(
-        "select source_id, field, config_key, code, sum(rows)::bigint from int_unmapped_codes "
+        "select source_id, field, config_key, code, sum(rows)::bigint from unmapped_code_values "
         "group by all order by source_id, field, sum(rows) desc, code"
     ).fetchall():
         entry = out.setdefault(source, {}).setdefault(field_name, {"config_key": key, "rows": 0, "values": {}})
@@ -149,8 +149,8 @@ def unmapped_over_limit(con: duckdb.DuckDBPyConnection, limits: dict[str, float]
     rows = con.execute(
         """
         select r.source_id, r.n, coalesce(u.unmapped, 0) as unmapped
-        from (select source_id, count(*) as n from int_results_validated group by source_id) as r
-        left join (select source_id, sum(rows) as unmapped from int_unmapped_codes
+        from (select source_id, count(*) as n from results_validated group by source_id) as r
+        left join (select source_id, sum(rows) as unmapped from unmapped_code_values
                    where field in (select unnest($fields::varchar[])) group by source_id) as u
             on u.source_id = r.source_id
         order by r.source_id
@@ -176,7 +176,7 @@ def validate_landed(
     batch_gate: Callable[[duckdb.DuckDBPyConnection], dict[str, str]] | None = None,
     unmapped_limits: dict[str, float] | None = None,
 ) -> tuple[int, int, dict[str, str]]:
-    """Settle this run's judged rows (``int_results_validated``, filled by :func:`judge_file`):
+    """Settle this run's judged rows (``results_validated``, filled by :func:`judge_file`):
     append them to rejected_rows, or keep them as this run's versions (the temporary view
     ``new_versions``, stored by :func:`resolve_versions`).
 
@@ -192,7 +192,7 @@ def validate_landed(
         """
         insert into rejected_rows
         select v.source_id, v.file_id, f.file_path, v.line_no, v.raw_text, v.reason_code, v.message
-        from int_results_validated as v
+        from results_validated as v
         join ingest_files as f on f.file_id = v.file_id
         where v.reason_code is not null and v.file_id not in (select file_id from ingest_files where status = 'held_back')
         """
@@ -201,13 +201,13 @@ def validate_landed(
     # just above) or belong to a held-back file. They wait, as a view, until their outcomes are
     # settled (resolve_versions): inserted once with their outcome, not inserted and then updated
     con.execute(
-        "delete from int_results_validated where reason_code is not null "
+        "delete from results_validated where reason_code is not null "
         "or file_id in (select file_id from ingest_files where status = 'held_back')"
     )
     con.execute(
         "create or replace temp view new_versions as "
         "select * exclude (reason_code, message, raw_text), cast(null as varchar) as outcome "
-        "from int_results_validated"
+        "from results_validated"
     )
     valid = con.execute("select count(*) from new_versions").fetchall()[0][0]
     return valid, rejected, held
@@ -221,7 +221,7 @@ def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str
     rates = con.execute(
         """
         select source_id, count(*) as n, count(*) filter (where reason_code is not null) as rejected
-        from int_results_validated group by source_id order by source_id
+        from results_validated group by source_id order by source_id
         """
     ).fetchall()
     held: dict[str, str] = {}
@@ -271,7 +271,7 @@ def settle_scope(con: duckdb.DuckDBPyConnection, full: bool = False) -> Scope:
     """Point the view ``versions_in_scope`` at the versions whose outcome this run must settle.
 
     New rows (this run's ``new_versions``) can change only the outcome of versions that share a
-    partition with them in ``int_result_versions_resolved.sql``: the same person (copies, and
+    partition with them in ``result_versions_resolved.sql``: the same person (copies, and
     versions without a specimen id, and the same result from two sources are all within one
     person) or the same source + specimen + analyte (versions with a specimen id, which a
     faulty extract may give under two persons). The scope is the closure of both relations,
@@ -360,7 +360,7 @@ def resolve_versions(con: duckdb.DuckDBPyConnection, full: bool = False) -> tupl
     stage.
     """
     scope = settle_scope(con, full)
-    build_table(con, "int_result_versions_resolved", params={"as_of": NO_LIMIT}, temporary=True)
+    build_table(con, "result_versions_resolved", params={"as_of": NO_LIMIT}, temporary=True)
     if scope.kind == "touched":
         # the results whose accepted set this run can change: its own versions and the stored
         # ones whose outcome changes; the measure stage recomputes only around them
@@ -371,7 +371,7 @@ def resolve_versions(con: duckdb.DuckDBPyConnection, full: bool = False) -> tupl
             union
             select v.person_key, v.source_id, v.specimen_id, v.collected_date
             from result_versions as v
-            join int_result_versions_resolved as r on r.file_id = v.file_id and r.line_no = v.line_no
+            join result_versions_resolved as r on r.file_id = v.file_id and r.line_no = v.line_no
             where v.outcome is distinct from r.outcome
             """
         )
@@ -380,7 +380,7 @@ def resolve_versions(con: duckdb.DuckDBPyConnection, full: bool = False) -> tupl
     con.execute(
         """
         update result_versions as v set outcome = r.outcome
-        from int_result_versions_resolved as r
+        from result_versions_resolved as r
         where r.file_id = v.file_id and r.line_no = v.line_no
           and v.outcome is distinct from r.outcome
         """
@@ -390,7 +390,7 @@ def resolve_versions(con: duckdb.DuckDBPyConnection, full: bool = False) -> tupl
         insert into result_versions
         select n.* replace (r.outcome as outcome)
         from new_versions as n
-        join int_result_versions_resolved as r on r.file_id = n.file_id and r.line_no = n.line_no
+        join result_versions_resolved as r on r.file_id = n.file_id and r.line_no = n.line_no
         """
     )
     record_specimen_conflicts(con)
@@ -410,7 +410,7 @@ def record_specimen_conflicts(con: duckdb.DuckDBPyConnection) -> None:
         """
         delete from rejected_rows as j
         where j.reason_code = 'specimen_conflict'
-          and exists (select 1 from int_result_versions_resolved as r
+          and exists (select 1 from result_versions_resolved as r
                       where r.file_id = j.file_id and r.line_no = j.line_no)
         """
     )
@@ -421,7 +421,7 @@ def record_specimen_conflicts(con: duckdb.DuckDBPyConnection) -> None:
                'specimen ' || v.specimen_id || ' (' || v.analyte || ') is reported under more than one '
                || 'person: every row of it is kept out until the lab corrects it'
         from result_versions as v
-        join int_result_versions_resolved as r on r.file_id = v.file_id and r.line_no = v.line_no
+        join result_versions_resolved as r on r.file_id = v.file_id and r.line_no = v.line_no
         join ingest_files as f on f.file_id = v.file_id
         where r.outcome = 'rejected'
         """

@@ -280,7 +280,7 @@ class Specimen:
 class Result:
     specimen: Specimen
     analyte: str
-    value: float  # canonical unit (see DESIGN.md)
+    value: float  # canonical unit (see DEVELOPERS.md, Design notes)
     report_day: int
     fasting: str = ""
     height: float | None = None

@@ -1,6 +1,6 @@
 -- result_versions: every well-formed input row, one row per (file, line), in canonical units.
 -- Its outcome (accepted, superseded, duplicate, withdrawn, pending; rejected for a specimen id under two persons) is settled each run by
--- int_result_versions_resolved.sql over all versions of the same result.
+-- result_versions_resolved.sql over all versions of the same result.
 create table if not exists result_versions (
     source_id           varchar not null,
     file_id             bigint not null,

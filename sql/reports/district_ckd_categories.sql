@@ -8,7 +8,7 @@
 -- persons_ckd_g3_g5, and persons_tested is its persons_tested.
 with tested as (
     select distinct person_key
-    from int_daily_values_averaged
+    from daily_values_averaged
     where day > $period_end - to_months(cast($window_months as integer))
 ),
 persons as (

@@ -7,7 +7,7 @@
 -- population: residents from config/regions/population.csv.
 with tested as (
     select distinct person_key
-    from int_daily_values_averaged
+    from daily_values_averaged
     where day > $period_end - to_months(cast($window_months as integer))
 ),
 persons as (

@@ -6,7 +6,7 @@
 -- (persons with one eGFR in the window add none), in years of 365.25 days.
 with window_egfr as (
     select person_key, min(day) as first_day, max(day) as last_day
-    from int_daily_values_averaged
+    from daily_values_averaged
     where measure = 'egfr' and day > $period_end - to_months(cast($window_months as integer))
     group by person_key
 ),

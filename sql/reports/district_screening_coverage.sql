@@ -6,13 +6,13 @@ with window_values as (
     select person_key,
            bool_or(measure = 'egfr') as has_egfr,
            bool_or(measure = 'acr') as has_acr
-    from int_daily_values_averaged
+    from daily_values_averaged
     where day > $period_end - to_months(cast($window_months as integer))
     group by person_key
 ),
 active as (
     select distinct person_key
-    from int_results_known
+    from results_known
     where collected_date > $period_end - to_months(cast($window_months as integer))
 ),
 diabetic as (

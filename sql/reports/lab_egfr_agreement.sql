@@ -12,7 +12,7 @@ with pairs as (
         egfr_creatinine as ours,
         lab_reported_egfr as lab,
         lab_reported_egfr_comparator as lab_comparator
-    from int_measures_known
+    from measures_known
     where analyte = 'creatinine'
       and egfr_creatinine is not null and lab_reported_egfr is not null
 )

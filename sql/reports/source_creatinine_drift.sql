@@ -10,7 +10,7 @@ with values_ as (
            case when r.age_years < 40 then '18-39' when r.age_years < 60 then '40-59'
                 when r.age_years < 80 then '60-79' else '80+' end as age_group,
            r.value as creatinine_mg_dl
-    from int_results_known as r
+    from results_known as r
     where r.analyte = 'creatinine' and r.comparator is null and r.age_years >= 18
       and r.sex in ('F', 'M')
 ),

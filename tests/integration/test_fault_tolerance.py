@@ -16,7 +16,7 @@
 - SQL safety: names from config are checked against a plain-identifier pattern, and hostile
   text in the data is stored as data.
 
-The guarantees are those of DESIGN.md ("Atomic", "Deterministic") and DEVELOPERS.md (Threat
+The guarantees are those of DEVELOPERS.md, Design notes ("Atomic", "Deterministic") and DEVELOPERS.md (Threat
 model). SIGKILL, flock and tmpfs behave as POSIX/Linux document them (common practice).
 All data are invented (Westerfold).
 """
@@ -455,7 +455,7 @@ def test_the_other_files_and_sources_publish(faulty):
         status, _, read = faulty.ledger[rel]
         assert status == "ingested" and read > 0, rel
     assert (faulty.out / PERIOD / "district_ckd_prevalence.csv").is_file()
-    assert faulty.summary["exit_code"] == 1  # held-back files: exit code 1 (DESIGN.md, CLI contract)
+    assert faulty.summary["exit_code"] == 1  # held-back files: exit code 1 (DEVELOPERS.md, Design notes, CLI contract)
 
 
 def test_a_truncated_last_ndjson_record_is_a_rejected_row(faulty):

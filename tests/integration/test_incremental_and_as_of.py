@@ -1,5 +1,5 @@
 """Month by month equals all at once, and a past period rebuilt later equals what was published
-then (the as-of principle of DESIGN.md). Runs without Prefect on the first months of the
+then (the as-of principle of DEVELOPERS.md, Design notes). Runs without Prefect on the first months of the
 shipped samples."""
 
 from __future__ import annotations

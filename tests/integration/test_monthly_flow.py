@@ -188,7 +188,7 @@ THREE_LAYOUTS = {
 
 
 def test_same_measurement_in_three_layouts_gives_one_canonical_value(prefect_harness, tmp_path):
-    """88.4 µmol/L = 1.00 mg/dL (1 mg/dL = 88.4 µmol/L; REFERENCES.md, confirmed)."""
+    """88.4 µmol/L = 1.00 mg/dL (1 mg/dL = 88.4 µmol/L; DEVELOPERS.md, Methods and sources, confirmed)."""
     from pipeline.flows import monthly_surveillance
 
     inbox = tmp_path / "inbox"

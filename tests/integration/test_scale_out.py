@@ -17,7 +17,7 @@ REPO = Path(__file__).resolve().parents[2]
 SAMPLES = REPO / "sample_extracts"
 PERIOD = "2025-04"
 SOURCES = ("westerfold_general_lab", "corvale_lab_chain", "fallowmere_reference_lab")
-TABLES = ("person_status", "kidney_events", "int_measures_known", "int_daily_values_averaged",
+TABLES = ("person_status", "kidney_events", "measures_known", "daily_values_averaged",
           "published.district_ckd_prevalence", "published.district_screening_coverage",
           "published.district_decline_incidence")  # fmt: skip
 

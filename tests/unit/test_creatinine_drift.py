@@ -35,9 +35,9 @@ def make_rows(seed: int) -> list[tuple]:
 
 def drift_table(rows: list[tuple]) -> dict[tuple, tuple]:
     con = duckdb.connect()
-    con.execute("create table int_results_known (source_id varchar, collected_date date, sex varchar, "
+    con.execute("create table results_known (source_id varchar, collected_date date, sex varchar, "
                 "age_years integer, value double, analyte varchar, comparator varchar)")  # fmt: skip
-    con.executemany("insert into int_results_known values (?, ?, ?, ?, ?, 'creatinine', null)", rows)
+    con.executemany("insert into results_known values (?, ?, ?, ?, ?, 'creatinine', null)", rows)
     build_table(con, "source_creatinine_drift", params=PARAMS)
     got = con.execute("select source_id, month, previous_results, previous_median_mg_dl "
                       "from source_creatinine_drift").fetchall()  # fmt: skip

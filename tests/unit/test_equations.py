@@ -247,7 +247,7 @@ def test_ekfc_q_switches_to_adult_at_18_from_memory(female, adult_q):
     ],
 )
 def test_ckid_u25_end_points_from_memory(scr, height_cm, age, female, expected):
-    # Pierce et al. 2021, K end-points per REFERENCES.md (from memory, end-points confirmed).
+    # Pierce et al. 2021, K end-points per DEVELOPERS.md, Methods and sources (from memory, end-points confirmed).
     got = one(
         eq.ckid_u25_creatinine(SCR, HEIGHT, AGE, FEMALE),
         scr=scr,

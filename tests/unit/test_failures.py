@@ -1,4 +1,4 @@
-"""Failures that are not the data's fault say so: exit code 4 (DESIGN.md's CLI contract), one
+"""Failures that are not the data's fault say so: exit code 4 (CLI contract, DEVELOPERS.md Design notes), one
 line naming what failed and where the traceback was written, the traceback itself only with
 --verbose; and they never look like a held-back source (exit 1).
 

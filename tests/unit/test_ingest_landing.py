@@ -112,10 +112,10 @@ def test_judging_file_by_file_equals_judging_the_run_at_once(small_config: Path,
             validate.judge_file(con_, frame)
 
         land_inbox(con, settings, inbox, KEY, "2025-06", TODAY, sink=judge_and_keep)
-        by_file = con.sql("select * from int_results_validated").pl()
+        by_file = con.sql("select * from results_validated").pl()
         validate.begin_judging(con)
         validate.judge_file(con, pl.concat(sink.frames))
-        at_once = con.sql("select * from int_results_validated").pl()
+        at_once = con.sql("select * from results_validated").pl()
     finally:
         con.close()
     assert by_file.height == sum(f.height for f in sink.frames) > 0

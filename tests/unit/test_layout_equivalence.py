@@ -1,5 +1,5 @@
 """The same creatinine values sent through the three layouts give the same events
-(1 mg/dL = 88.4 µmol/L, REFERENCES.md, confirmed; sustained 40 % decline, Levey et al., AJKD
+(1 mg/dL = 88.4 µmol/L, DEVELOPERS.md, Methods and sources, confirmed; sustained 40 % decline, Levey et al., AJKD
 2014;64:821)."""
 
 from __future__ import annotations

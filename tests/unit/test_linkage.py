@@ -1,4 +1,4 @@
-"""Tests for the link stage's SQL (int_daily_values_averaged.sql, kidney_events.sql) on crafted
+"""Tests for the link stage's SQL (daily_values_averaged.sql, kidney_events.sql) on crafted
 daily eGFR and ACR trajectories inserted straight into the measures table the SQL reads.
 
 Outside references: sustained 30 % / 40 % eGFR decline endpoints (Levey et al., AJKD
@@ -46,9 +46,9 @@ def warehouse(settings):
         )
         """
     )
-    # no results of other analytes: the diabetes rules see an empty int_results_known
+    # no results of other analytes: the diabetes rules see an empty results_known
     con.execute(
-        "create table int_results_known (person_key varchar, collected_date date, reported_date date, "
+        "create table results_known (person_key varchar, collected_date date, reported_date date, "
         "analyte varchar, comparator varchar, reported_unit varchar, reported_value double, "
         "is_fasting boolean)"
     )
@@ -79,12 +79,12 @@ def insert(con, person: str, egfr: list[tuple[int, float]] = (), acr: list[tuple
 
 def build(con, period_end: dt.date = PERIOD_END) -> dict[tuple[str, str], dict]:
     params = {**event_params(load_settings(CONFIG_DIR), Period.parse(PERIOD)), "period_end": period_end}
-    # what int_results_known / int_measures_known do upstream: only what is known by the period end
+    # what results_known / measures_known do upstream: only what is known by the period end
     con.execute(
-        "create or replace table int_measures_known as select * from measures_base "
+        "create or replace table measures_known as select * from measures_base "
         "where collected_date <= ? and reported_date <= ?", [period_end, period_end],
     )
-    build_table(con, "int_daily_values_averaged", params=params)
+    build_table(con, "daily_values_averaged", params=params)
     build_table(con, "kidney_events", params=params)
     frame = con.sql("select * from kidney_events").pl()
     return {(r["person_key"], r["rule_id"]): r for r in frame.iter_rows(named=True)}
@@ -168,7 +168,7 @@ def test_baseline_is_the_mean_of_the_window(warehouse):
 def test_several_results_on_one_day_are_averaged(warehouse):
     insert(warehouse, "p", BASE + [(100, 50.0), (100, 70.0), (128, 60.0)])
     events = build(warehouse)
-    daily = rows(warehouse, "select day, value, n_results from int_daily_values_averaged "
+    daily = rows(warehouse, "select day, value, n_results from daily_values_averaged "
                             "where person_key = 'p' and measure = 'egfr' order by day")  # fmt: skip
     assert daily == [(day(0), 100.0, 1), (day(100), 60.0, 2), (day(128), 60.0, 1)]
     # the day's mean (60), not its lowest value (50), meets the 40 % rule
@@ -288,7 +288,7 @@ def test_new_onset_albuminuria_after_diabetes(warehouse):
     for person, hba1c_day in (("onset", 10), ("before", 100)):
         for d in (hba1c_day - 7, hba1c_day):
             warehouse.execute(
-                "insert into int_results_known values (?, ?, ?, 'hba1c', null, '%', 7.2, null)",
+                "insert into results_known values (?, ?, ?, 'hba1c', null, '%', 7.2, null)",
                 [person, day(d), day(d + 1)],
             )
     insert(warehouse, "onset", acr=[(5, 12.0), (60, 45.0)])
@@ -318,7 +318,7 @@ def test_censored_acrs_below_a2_are_not_ckd(warehouse):
         insert_acr(warehouse, "p", offset, acr_mg_g=None, above_a2=False, comparator="<")
     events = build(warehouse)
     assert status(events, "p", "ckd_acr") is None
-    daily = rows(warehouse, "select value, is_at_or_above_a2 from int_daily_values_averaged where measure = 'acr'")
+    daily = rows(warehouse, "select value, is_at_or_above_a2 from daily_values_averaged where measure = 'acr'")
     assert daily == [(None, False), (None, False)]  # the bound is not averaged as a value
 
 
@@ -384,7 +384,7 @@ def test_decline_does_not_cross_from_the_child_to_the_adult_equation(warehouse):
     events = build(warehouse, period_end=dt.date(2026, 12, 31))  # rapid decline needs a year
     assert status(events, "p", "sustained_decline_30") is None
     assert status(events, "p", "rapid_decline") is None
-    families = rows(warehouse, "select equation_family, count(*) from int_daily_values_averaged "
+    families = rows(warehouse, "select equation_family, count(*) from daily_values_averaged "
                                "where measure = 'egfr' group by all order by 1")  # fmt: skip
     assert families == [("adult", 3), ("child", 2)]
 
@@ -404,7 +404,7 @@ def test_a_new_adult_baseline_starts_at_18(warehouse):
 def hba1c(con, person: str, offset: int, value: float = 7.0, analyte: str = "hba1c",
           unit: str = "%", fasting: bool | None = None, comparator: str | None = None) -> None:  # fmt: skip
     con.execute(
-        "insert into int_results_known values (?, ?, ?, ?, ?, ?, ?, ?)",
+        "insert into results_known values (?, ?, ?, ?, ?, ?, ?, ?)",
         [person, day(offset), day(offset + 1), analyte, comparator, unit, value, fasting],
     )
 
@@ -416,8 +416,8 @@ def diabetic_onsets(con, params_override: dict | None = None) -> dict[str, int]:
 
 def build_with(con, override: dict) -> dict:
     params = {**event_params(load_settings(CONFIG_DIR), Period.parse(PERIOD)), **override}
-    con.execute("create or replace table int_measures_known as select * from measures_base")
-    build_table(con, "int_daily_values_averaged", params=params)
+    con.execute("create or replace table measures_known as select * from measures_base")
+    build_table(con, "daily_values_averaged", params=params)
     build_table(con, "kidney_events", params=params)
     frame = con.sql("select * from kidney_events").pl()
     return {(r["person_key"], r["rule_id"]): r for r in frame.iter_rows(named=True)}

@@ -74,7 +74,7 @@ def test_equation_by_age_sex_and_censoring(age, height, sex, comparator, equatio
 
 def test_ckid_u25_is_k_times_height_over_creatinine():
     # Pierce et al., Kidney Int 2021: eGFR = K x height (m) / Scr; girl of 12: K = 36.1
-    # (end-point, from memory per REFERENCES.md)
+    # (end-point, from memory per DEVELOPERS.md, Methods and sources)
     row = one(measures(result(1, "creatinine", 0.6, age=12, height=150.0)), 1)
     assert row["egfr"] == pytest.approx(36.1 * 1.50 / 0.6, rel=1e-9)
 
@@ -145,7 +145,7 @@ def test_measured_acr_categories(value, comparator, category, reason):
 
 
 def test_acr_computed_from_albumin_and_creatinine_on_the_same_specimen():
-    # ACR mg/g = 100 x albumin (mg/L) / urine creatinine (mg/dL) (REFERENCES.md, units)
+    # ACR mg/g = 100 x albumin (mg/L) / urine creatinine (mg/dL) (DEVELOPERS.md, Methods and sources, units)
     frame = measures(
         result(1, "urine_albumin", 30.0, specimen="U1"),
         result(2, "urine_creatinine", 100.0, specimen="U1"),
@@ -307,7 +307,7 @@ def test_dipsticks_pass_the_gate_and_reach_kidney_measures_estimated(tmp_path: P
 
     config = make_small_config(tmp_path / "config", max_rejection_rate=0.05)
     edit_pipeline_yaml(config, "quality_gate", "great_expectations", True)
-    edit_pipeline_yaml(config, "quality_gate", "data_docs", "never")
+    edit_pipeline_yaml(config, "quality_gate", "quality_pages", "never")
     lines = [HEADER]
     readings = ["negative", "trace", "+", "++", "3+"]
     for n, reading in enumerate(readings):

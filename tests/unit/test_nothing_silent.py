@@ -8,7 +8,7 @@ without a word, each run on invented data (the fictional region Westerfold):
 5. the per-source table showing the whole warehouse instead of the period.
 
 Facts checked are of the trade's own rules (common practice): an indicator "as of the period
-end" counts only results collected and known by that day (DESIGN.md, two dates on every result);
+end" counts only results collected and known by that day (DEVELOPERS.md, Design notes, two dates on every result);
 every input row has one outcome, and per file the outcomes add up to the rows read.
 """
 

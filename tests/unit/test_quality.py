@@ -1,6 +1,6 @@
 """Tests for the Great Expectations quality gate per source batch (pipeline.quality).
 
-One in-memory warehouse holds a hand-made ``int_results_validated`` with one source per
+One in-memory warehouse holds a hand-made ``results_validated`` with one source per
 case: a clean batch, and batches that each break one expectation once. All of them are checked
 in a single ``check_batches`` call (Great Expectations is imported once for the module; the
 import alone takes seconds), which also writes the Data Docs (a batch failed). Further tests:
@@ -11,7 +11,7 @@ one real month run in which a defect that slipped past the row rules holds its s
 Outside references: the FHIR R4 Observation status value set (final, amended, corrected,
 cancelled, entered-in-error, preliminary; HL7 FHIR R4, ValueSet observation-status); canonical
 units creatinine mg/dL, ACR mg/g, HbA1c % (NGSP) are UCUM codes of the project's contract
-(DESIGN.md); the plausible range of serum creatinine 0.1-25 mg/dL is config/pipeline.yaml's
+(DEVELOPERS.md, Design notes); the plausible range of serum creatinine 0.1-25 mg/dL is config/pipeline.yaml's
 ("common practice": wide physiological limits). Row values are invented (region Westerfold).
 """
 
@@ -34,7 +34,7 @@ pytestmark = pytest.mark.skipif(
 )
 
 STAGING_DDL = """
-create temp table int_results_validated (
+create temp table results_validated (
     source_id varchar, file_id bigint, line_no bigint, raw_text varchar, person_key varchar,
     specimen_id varchar, collected_date date, reported_date date, reported_date_basis varchar,
     loinc varchar, analyte varchar, status varchar, value_text varchar, comparator varchar,
@@ -51,7 +51,7 @@ LEDGER_ROW = (
     "insert into ingest_files (file_id, source_id, file_path, version, sha256, size_bytes, status, "
     "rows_read, run_period, ingested_at) values (?, ?, ?, 1, 'sha', 1, ?, ?, '2025-06', now())"
 )
-# LOINC and canonical unit (UCUM) per analyte used here (DESIGN.md canonical units)
+# LOINC and canonical unit (UCUM) per analyte used here (DEVELOPERS.md, Design notes canonical units)
 ANALYTES = {"creatinine": ("2160-0", "mg/dL"), "acr": ("9318-7", "mg/g"), "hba1c": ("4548-4", "%")}
 
 
@@ -130,7 +130,7 @@ def build_warehouse(settings, cases: dict[str, tuple[list[dict[str, Any]], Any, 
     placeholders = ", ".join("?" for _ in COLUMNS)
     rows = [tuple(r[c] for c in COLUMNS) for rows, _, _ in cases.values() for r in rows]
     if rows:
-        con.executemany(f"insert into int_results_validated values ({placeholders})", rows)
+        con.executemany(f"insert into results_validated values ({placeholders})", rows)
     for source, (source_rows, _, _) in cases.items():
         file_id = source_rows[0]["file_id"]
         con.execute(LEDGER_ROW, [file_id, source, f"{source}/a.csv", "ingested", rows_read[source]])
@@ -216,7 +216,7 @@ def insert_generated_batch(con, source: str, file_id: int, rows: int) -> None:
     """``rows`` well-formed creatinine results (invented), values 1.0-1.6 mg/dL, F and M."""
     con.execute(
         f"""
-        insert into int_results_validated
+        insert into results_validated
         select '{source}', {file_id}, i + 2, '[person],...', 'pk-wf-' || (i % 500)::varchar,
                'S' || i::varchar, date '2025-06-02', date '2025-06-03', 'reported_at', '2160-0',
                'creatinine', 'final', null, null, 1.0 + (i % 7) / 10, 'mg/dL', null, null,
@@ -239,7 +239,7 @@ def test_the_summary_does_not_grow_with_the_rows_and_still_names_every_bad_row(s
     assert clean.success, clean.failed
     assert (clean.rows, clean.cells) == (20_000, 2)
     # 30 mg/dL is above creatinine's plausible maximum, 25 mg/dL (pipeline.yaml, common practice)
-    con.execute("update int_results_validated set value = 30 where line_no between 100 and 124")
+    con.execute("update results_validated set value = 30 where line_no between 100 and 124")
     check = check_batches(con, settings, None)["big_lab"]
     con.close()
     assert [f.split(":", 1)[0] for f in check.failed] == [f"{PAIR}(range_max, value_max)"]
@@ -252,8 +252,8 @@ def test_a_broken_table_schema_fails_every_batch(settings):
 
     cases = {s: CASES[s] for s in ("clean_lab", "low_lab")}
     con = build_warehouse(settings, cases, ROWS_READ)
-    con.execute("alter table int_results_validated drop column district_code")
-    con.execute("alter table int_results_validated alter birth_year type varchar")
+    con.execute("alter table results_validated drop column district_code")
+    con.execute("alter table results_validated alter birth_year type varchar")
     checks = check_batches(con, settings, None)
     con.close()
     schema = ["expect_column_distinct_values_to_equal_set(column_name)",
@@ -320,15 +320,15 @@ def test_data_docs_only_on_failure_unless_always(settings, tmp_path):
 
     con = build_warehouse(settings, {"clean_lab": CASES["clean_lab"]}, ROWS_READ)
     docs = tmp_path / "quality"
-    assert check_batches(con, settings, docs, data_docs="always")["clean_lab"].success
+    assert check_batches(con, settings, docs, quality_pages="always")["clean_lab"].success
     assert (docs / "index.html").is_file()
     # a clean run under on_failure leaves no report, and removes the earlier one
-    check_batches(con, settings, docs, data_docs="on_failure")
+    check_batches(con, settings, docs, quality_pages="on_failure")
     assert not docs.exists()
-    check_batches(con, settings, docs, data_docs="never")
+    check_batches(con, settings, docs, quality_pages="never")
     assert not docs.exists()
     # the default is the setting, on_failure in the shipped config
-    assert settings.pipeline.quality_gate.data_docs == "on_failure"
+    assert settings.pipeline.quality_gate.quality_pages == "on_failure"
     check_batches(con, settings, docs)
     con.close()
     assert not docs.exists()
@@ -370,7 +370,7 @@ def test_a_defect_that_slips_past_the_row_rules_holds_its_source_back(gx_config,
     real = flows._expectations
 
     def slipped(ctx, con):
-        con.execute("update int_results_validated set value = 400 "
+        con.execute("update results_validated set value = 400 "
                     "where source_id = 'westerfold_general_lab' and specimen_id = 'S2'")  # fmt: skip
         return real(ctx, con)
 
@@ -409,4 +409,4 @@ def test_a_clean_month_run_passes_the_gate_and_writes_no_data_docs(gx_config, tm
     checks = json.loads((out / "2026-01" / "run_manifest.json").read_text())["quality_gate"]["batch_checks"]
     assert sorted(checks) == ["corvale_lab_chain", "westerfold_general_lab"]
     assert all(c["success"] for c in checks.values())
-    assert not (out / "2026-01" / "quality").exists()  # data_docs: on_failure
+    assert not (out / "2026-01" / "quality").exists()  # quality_pages: on_failure

@@ -13,22 +13,22 @@ from tests.conftest import edit_pipeline_yaml
 
 @pytest.mark.parametrize("choice", ["on_failure", "always", "never"])
 def test_data_docs_choices_load(small_config, choice):
-    edit_pipeline_yaml(small_config, "quality_gate", "data_docs", choice)
-    assert load_settings(small_config).pipeline.quality_gate.data_docs == choice
+    edit_pipeline_yaml(small_config, "quality_gate", "quality_pages", choice)
+    assert load_settings(small_config).pipeline.quality_gate.quality_pages == choice
 
 
 def test_data_docs_defaults_to_on_failure(small_config):
-    assert load_settings(small_config).pipeline.quality_gate.data_docs == "on_failure"
+    assert load_settings(small_config).pipeline.quality_gate.quality_pages == "on_failure"
 
 
 # true/false (YAML also reads yes/no/on/off so) no longer say when: a clear error, not a guess
 @pytest.mark.parametrize("value", [True, False, "sometimes", 1])
 def test_data_docs_other_values_are_refused_with_the_choices(small_config, value):
-    edit_pipeline_yaml(small_config, "quality_gate", "data_docs", value)
+    edit_pipeline_yaml(small_config, "quality_gate", "quality_pages", value)
     with pytest.raises(ConfigError) as info:
         load_settings(small_config)
     message = str(info.value)
-    assert "pipeline.yaml: key 'quality_gate.data_docs'" in message
+    assert "pipeline.yaml: key 'quality_gate.quality_pages'" in message
     assert "on_failure" in message and "always" in message and "never" in message
     assert repr(value) in message
 

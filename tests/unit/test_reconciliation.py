@@ -22,7 +22,7 @@ def _outcomes(tmp_path: Path, standard: str, semicolon: str) -> list[tuple]:
 
 
 def test_same_value_from_two_sources_is_one_result(tmp_path):
-    # 97.24 umol/L / 88.4 = 1.10 mg/dL (1 mg/dL = 88.4 umol/L, REFERENCES.md)
+    # 97.24 umol/L / 88.4 = 1.10 mg/dL (1 mg/dL = 88.4 umol/L, DEVELOPERS.md, Methods and sources)
     got = _outcomes(
         tmp_path,
         "WF-r1,1960,F,WF01,G1,2026-01-10,2160-0,1.10,mg/dL,final,2026-01-12\n",

@@ -330,8 +330,8 @@ def test_reads_only_the_publishable_and_quality_tables(con, warehouse, report):
     """Rendered from a database holding only READABLE_TABLES, the report is byte-identical: it
     cannot have read a person-level table."""
     person_level = {"person_status", "kidney_events", "lab_results", "kidney_measures", "result_versions",
-                    "rejected_rows", "int_results_known", "int_measures_known",
-                    "int_daily_values_averaged"}  # fmt: skip
+                    "rejected_rows", "results_known", "measures_known",
+                    "daily_values_averaged"}  # fmt: skip
     assert not person_level & {t.rpartition(".")[2] for t in READABLE_TABLES}
     mem = restricted_copy(warehouse)
     assert build_report_html(mem, PERIOD) == report

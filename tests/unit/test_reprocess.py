@@ -193,7 +193,7 @@ def test_one_earlier_file_passes_the_expectation_suites(wrongly_mapped):
 
     _, fixed, inbox, out = wrongly_mapped
     edit_pipeline_yaml(fixed, "quality_gate", "great_expectations", True)
-    edit_pipeline_yaml(fixed, "quality_gate", "data_docs", "never")
+    edit_pipeline_yaml(fixed, "quality_gate", "quality_pages", "never")
     done = reprocess_source(fixed, inbox, out, LAB, file=f"{LAB}/export_202505.csv", apply=True, demo=True)
     assert done.applied and done.files == [f"{LAB}/export_202505.csv"]
     assert done.outcomes["accepted"] == (60, 60)

@@ -60,7 +60,7 @@ def test_shipped_config_loads():
 
 @pytest.mark.parametrize("path", sorted((CONFIG_DIR / "sources").glob("*.yaml")), ids=lambda p: p.stem)
 def test_every_shipped_source_config_loads(path: Path):
-    # picked up by glob: a new source config is tested with no new test code (STYLE.md)
+    # picked up by glob: a new source config is tested with no new test code (DEVELOPERS.md, Conventions)
     source = load_source(path)
     assert source.id == path.stem
 

@@ -142,12 +142,12 @@ def test_comparators_are_kept(rules_run):
     assert accepted(rules_run, "ge")[:3] == (">=", 300.0, "mg/g")
     cmp, value, unit, text = accepted(rules_run, "le_unicode")
     assert (cmp, unit, text) == ("<=", "mg/g", "≤3")
-    # 1 mg/mmol = 8.84 mg/g (REFERENCES.md, KDIGO 2012, confirmed)
+    # 1 mg/mmol = 8.84 mg/g (DEVELOPERS.md, Methods and sources, KDIGO 2012, confirmed)
     assert value == pytest.approx(3 * 8.84)
 
 
 def test_canonical_units(rules_run):
-    # 1 mg/dL = 88.4 umol/L (REFERENCES.md, confirmed)
+    # 1 mg/dL = 88.4 umol/L (DEVELOPERS.md, Methods and sources, confirmed)
     assert accepted(rules_run, "umol")[1] == pytest.approx(1.0, rel=1e-9)
     assert accepted(rules_run, "alias")[1:3] == (1.2, "mg/dL")
 

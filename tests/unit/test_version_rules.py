@@ -1,7 +1,7 @@
-"""int_result_versions_resolved.sql against the version rules written out in plain Python.
+"""result_versions_resolved.sql against the version rules written out in plain Python.
 
-The SQL ranks only the rows whose group hash repeats (sql/intermediate/
-int_result_versions_resolved.sql, "How"). These checks generate small sets of versions crowded
+The SQL ranks only the rows whose group hash repeats (sql/derived/
+result_versions_resolved.sql, "How"). These checks generate small sets of versions crowded
 onto few persons, specimens, days, values and sources, so that copies, amendments, cancellations
 and the same result from two sources are frequent, and compare every row's outcome with the
 rules as DEVELOPERS.md ("Statuses and duplicates") states them, written out below without any
@@ -129,7 +129,7 @@ def resolved(rows: list[dict], sql: str) -> dict[tuple[int, int], str]:
     return {(f, line): o for f, line, o in got}
 
 
-SQL = read_sql("int_result_versions_resolved")
+SQL = read_sql("result_versions_resolved")
 #: every group hash the same: each row goes through the exact ranking
 ALL_COLLIDE = SQL.replace("hash(", "0::ubigint * hash(")
 

@@ -71,9 +71,9 @@ def test_sql_over_puts_inputs_in_front_of_a_sql_file():
     """The staging SQL run over a frame by name: a CTE shadows the table it names."""
     from pipeline.warehouse import sql_over
 
-    text = sql_over("int_results_validated", {"landed_rows": "select * from _frame",
-                                              "stg_landed_rows": "sql:stg_landed_rows"})  # fmt: skip
+    text = sql_over("results_validated", {"landed_rows": "select * from _frame",
+                                              "landed_rows_typed": "sql:landed_rows_typed"})  # fmt: skip
     assert text.startswith("with landed_rows as (\nselect * from _frame\n),\nstg_landed_rows as (")
-    assert "from stg_landed_rows as s" in text
+    assert "from landed_rows_typed as s" in text
     with pytest.raises(ValueError, match="not a plain relation name"):
-        sql_over("int_results_validated", {"x; drop": "select 1"})
+        sql_over("results_validated", {"x; drop": "select 1"})

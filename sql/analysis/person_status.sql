@@ -4,7 +4,7 @@
 -- KDIGO risk category.
 with known as not materialized (
     -- not materialized: read twice (demographics, diabetes) rather than written out
-    select * from int_results_known
+    select * from results_known
 ),
 demographics as (
     -- from the person's latest result (one arg_max of the three, all from the same row)
@@ -22,7 +22,7 @@ latest_egfr as (
     select person_key,
            arg_max(value, day) as egfr,
            max(day) as last_egfr_date
-    from int_daily_values_averaged
+    from daily_values_averaged
     where measure = 'egfr'
     group by person_key
 ),
@@ -31,7 +31,7 @@ latest_acr as (
            arg_max(a_category, (collected_date, source_id, file_id, line_no)) as a_category,
            arg_max(acr_mg_g, (collected_date, source_id, file_id, line_no)) as acr_mg_g,
            max(collected_date) as last_acr_date
-    from int_measures_known
+    from measures_known
     where a_category is not null and not is_acr_estimated
     group by person_key
 ),

@@ -1,11 +1,11 @@
--- int_unmapped_codes: one row per source, file, field and code value of this run's landed rows
+-- unmapped_code_values: one row per source, file, field and code value of this run's landed rows
 -- that the source's config does not map, with the config key that would map it and the rows
 -- affected. Built one file at a time, as each is landed (pipeline/validate.py, judge_file).
 -- Without it a sex written 'W' silently becomes unknown (no eGFR), and a unit, status, test code
 -- or fasting flag the config does not know is only a rejection reason, never named as a gap in
 -- the mapping. A blank value is missing, not unmapped; rows with a whole-row fault are left out.
 with staged as (
-    select * from stg_landed_rows where row_fault is null
+    select * from landed_rows_typed where row_fault is null
 ),
 unmapped as (
     select source_id, file_id, 'sex' as field, 'sex_codes' as config_key, trim(sex_text) as code

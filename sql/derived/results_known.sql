@@ -1,4 +1,4 @@
--- int_results_known: the accepted results as known at the period end ($period_end): for each
+-- results_known: the accepted results as known at the period end ($period_end): for each
 -- result, the latest version reported by then, if it is final, amended or corrected, collected
 -- by then, and not the same result already received from another source. The as-of twin of
 -- lab_results; every person-level table of a period reads this, not lab_results.
@@ -8,5 +8,5 @@
 -- settling the versions a second time).
 select v.*
 from result_versions as v
-join int_versions_as_of as k on k.file_id = v.file_id and k.line_no = v.line_no
+join versions_as_of as k on k.file_id = v.file_id and k.line_no = v.line_no
 where k.outcome = 'accepted' and v.collected_date <= $period_end

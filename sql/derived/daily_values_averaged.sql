@@ -1,5 +1,5 @@
--- int_daily_values_averaged: one row per person, measure (egfr or acr), collection day and
--- equation family, as known at the period end (int_measures_known: results collected or
+-- daily_values_averaged: one row per person, measure (egfr or acr), collection day and
+-- equation family, as known at the period end (measures_known: results collected or
 -- reported later, and amendments or cancellations reported later, are left out).
 -- egfr: value = the mean of that person's eGFRs on that day, across labs; equation_family =
 --   'child' for results collected before $adult_min_age (age estimated at collection, the birth
@@ -18,14 +18,14 @@
 select person_key, 'egfr' as measure, collected_date as day, avg(egfr) as value, count(*) as n_results,
        case when age_years >= $adult_min_age then 'adult' else 'child' end as equation_family,
        cast(null as boolean) as is_at_or_above_a2
-from int_measures_known
+from measures_known
 where egfr is not null
 group by person_key, collected_date, equation_family
 union all
 select person_key, 'acr' as measure, collected_date as day, avg(acr_mg_g) as value, count(*) as n_results,
        cast(null as varchar) as equation_family,
        bool_and(is_at_or_above_a2) as is_at_or_above_a2
-from int_measures_known
+from measures_known
 where acr_basis in ('measured_acr', 'computed_from_albumin_and_creatinine', 'timed_albumin_excretion')
   and (acr_mg_g is not null or aer_mg_24h is not null or acr_comparator is not null)
 group by person_key, collected_date

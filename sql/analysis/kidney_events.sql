@@ -28,7 +28,7 @@
 --     Standards of Care: on one day from two different tests, or on two days; 1 with the
 --     setting diabetes_rule: single).
 with daily as (
-    select * from int_daily_values_averaged
+    select * from daily_values_averaged
 ),
 first_egfr as (
     select person_key, equation_family, min(day) as first_day
@@ -158,7 +158,7 @@ abnormal_glycaemia as (
     -- counts only when it is certainly at or above the threshold (">X" or ">=X" with X at or
     -- above it; "<X" never)
     select person_key, collected_date as day, analyte
-    from int_results_known
+    from results_known
     where comparator is distinct from '<' and comparator is distinct from '<='
       and ((analyte = 'hba1c' and ((reported_unit = '%' and reported_value >= $hba1c_percent)
                                 or (reported_unit = 'mmol/mol' and reported_value >= $hba1c_mmol_mol)))
@@ -182,7 +182,7 @@ diabetes as (
 ),
 albuminuric as (
     select person_key, collected_date as day, acr_mg_g, aer_mg_24h
-    from int_measures_known
+    from measures_known
     where is_at_or_above_a2 and not is_acr_estimated
 ),
 new_onset as (

@@ -1,7 +1,7 @@
--- stg_landed_rows: one row per landed input row, renamed, cast and tagged.
+-- landed_rows_typed: one row per landed input row, renamed, cast and tagged.
 -- Reads landed_rows (one file's rows as pipeline/ingest.py reads them: the validate stage
 -- runs this over each file as it is landed) and the reference tables; judges nothing (that
--- is int_results_validated).
+-- is results_validated).
 with parsed as (
     select
         l.*,

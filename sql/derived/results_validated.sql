@@ -1,4 +1,4 @@
--- int_results_validated: one row per landed row of this run, with its value in the canonical
+-- results_validated: one row per landed row of this run, with its value in the canonical
 -- unit and the first rule it breaks (reason_code null = well-formed). The order of the CASE is
 -- the order in which rules are checked; DEVELOPERS.md lists every code. The raw line is kept
 -- on a rejected row only (for rejected_rows). Built one file at a time, as each is landed.
@@ -22,7 +22,7 @@ with converted as (
                 then greatest(0, floor(datediff('day', make_date(s.birth_year, 7, 1), s.collected_date) / 365.25))::bigint
             else year(s.collected_date) - s.birth_year
         end as age_years
-    from stg_landed_rows as s
+    from landed_rows_typed as s
     left join reference.unit_factors as f on f.analyte = s.analyte and f.unit = s.reported_unit
     left join (
         select a.analyte, a.canonical_unit, string_agg(u.unit, ', ' order by u.unit) as allowed_units
