@@ -20,7 +20,7 @@ comparison, the counts by G category under each side, persons below 60 under eac
 persons moved to a higher or lower category.
 
 Confirmed CKD under the creatinine comparison: every known eGFR the adult equation in force made
-is recomputed (:func:`daily_egfr_under`) and sql/marts/kidney_events.sql runs again on those
+is recomputed (:func:`daily_egfr_under`) and sql/analysis/kidney_events.sql runs again on those
 daily values (the ACRs as they are); counted among the adults compared (:func:`ckd_counts`).
 Not covered: children (the CKD-EPI equations are for adults); confirmed CKD for the
 creatinine-cystatin C comparison. Equation change is an artefact of estimation, not of disease: this table says how much
@@ -113,7 +113,7 @@ def daily_egfr_under(history: pl.DataFrame, in_force: str, comparison: str, adul
     force recomputed under ``comparison``; other eGFRs (children's equations, cystatin C, the
     creatinine-cystatin C equation on days with both markers) are kept as they are: a switch of
     the adult creatinine equation does not change them. Shaped as the egfr rows of
-    int_daily_values_averaged (one row per person, day and equation family)."""
+    daily_values_averaged (one row per person, day and equation family)."""
     female = pl.when(pl.col("sex") == "F").then(True).when(pl.col("sex") == "M").then(False)
     scr, age = pl.col("creatinine_mg_dl"), age_at_collection(history.columns)
     switched = (pl.col("analyte") == "creatinine") & (pl.col("egfr_equation") == in_force)

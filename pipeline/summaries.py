@@ -138,12 +138,12 @@ def build_equation_change(con: duckdb.DuckDBPyConnection, settings: Settings, pe
     m = settings.pipeline.measures
     daily = pl.concat([daily_egfr_under(history, m.adult_equation, comparison, m.adult_min_age_years),
                        fetch_frame(con, "select person_key, measure, day, value, n_results::bigint as n_results, "
-                                        "equation_family, is_at_or_above_a2 from int_daily_values_averaged "
+                                        "equation_family, is_at_or_above_a2 from daily_values_averaged "
                                         "where measure = 'acr'")], how="vertical_relaxed")
     del history
     with_frame(con, daily, "create or replace temp table equation_daily_values as select * from _frame")
     rules = event_params(settings, period)
-    query = sql_over("kidney_events", {"int_daily_values_averaged": "select * from equation_daily_values"})
+    query = sql_over("kidney_events", {"daily_values_averaged": "select * from equation_daily_values"})
     used = {k: v for k, v in rules.items() if f"${k}" in query}
     other = {k for (k,) in con.execute(f"select distinct person_key from ({query}) where event_type = 'ckd' "
                                        "and event_status = 'confirmed'", used).fetchall()}

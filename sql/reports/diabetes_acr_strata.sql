@@ -6,12 +6,12 @@
 -- expected undetected albuminuria (district_undetected_albuminuria, pipeline/undetected.py).
 with window_acr as (
     select distinct person_key
-    from int_daily_values_averaged
+    from daily_values_averaged
     where measure = 'acr' and day > $period_end - to_months(cast($window_months as integer))
 ),
 active as (
     select distinct person_key
-    from int_results_known
+    from results_known
     where collected_date > $period_end - to_months(cast($window_months as integer))
 ),
 diabetic as (

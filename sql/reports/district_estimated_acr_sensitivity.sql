@@ -21,7 +21,7 @@ window_start as (
 estimated_days as (
     select person_key, collected_date as day,
            bool_or(coalesce(is_at_or_above_a2, a_category in ('A2', 'A3'))) as qualifies
-    from int_measures_known
+    from measures_known
     where is_acr_estimated and (is_at_or_above_a2 is not null or a_category is not null)
     group by person_key, collected_date
 ),
@@ -30,7 +30,7 @@ albuminuria_days as (
     -- by their estimated category
     select coalesce(m.person_key, e.person_key) as person_key, coalesce(m.day, e.day) as day,
            coalesce(m.is_at_or_above_a2, e.qualifies) as qualifies
-    from (select person_key, day, is_at_or_above_a2 from int_daily_values_averaged
+    from (select person_key, day, is_at_or_above_a2 from daily_values_averaged
           where measure = 'acr' and is_at_or_above_a2 is not null) as m
     full join estimated_days as e on e.person_key = m.person_key and e.day = m.day
 ),
@@ -48,7 +48,7 @@ confirmed_with_estimates as (
     having max(day) - min(day) >= (select min_span_days from rule)
 ),
 tested_default as (
-    select distinct person_key from int_daily_values_averaged where day > (select day from window_start)
+    select distinct person_key from daily_values_averaged where day > (select day from window_start)
 ),
 tested_estimated as (
     select distinct person_key from estimated_days where day > (select day from window_start)
@@ -66,12 +66,12 @@ persons as (
 ),
 window_values as (
     select person_key, bool_or(measure = 'egfr') as has_egfr, bool_or(measure = 'acr') as has_acr
-    from int_daily_values_averaged
+    from daily_values_averaged
     where day > (select day from window_start)
     group by person_key
 ),
 active as (
-    select distinct person_key from int_results_known where collected_date > (select day from window_start)
+    select distinct person_key from results_known where collected_date > (select day from window_start)
 ),
 diabetic as (
     select p.district_code,

@@ -5,13 +5,13 @@
 with known_egfr as (
     select m.person_key, m.collected_date, m.analyte, m.sex, m.age_years, m.egfr, m.egfr_equation,
            m.source_id, m.file_id, m.line_no
-    from int_measures_known as m
+    from measures_known as m
     where m.egfr is not null
 )
 select k.person_key, k.collected_date, k.analyte, k.sex, k.age_years, k.egfr, k.egfr_equation,
        r.value as creatinine_mg_dl, r.birth_year
 from known_egfr as k
-left join int_results_known as r
+left join results_known as r
     on r.source_id = k.source_id and r.file_id = k.file_id and r.line_no = k.line_no
    and k.analyte = 'creatinine'
 order by k.person_key, k.collected_date

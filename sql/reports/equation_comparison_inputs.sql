@@ -7,8 +7,8 @@
 with window_creatinine as (
     select m.person_key, m.collected_date as day, m.sex, m.age_years, m.egfr, m.egfr_equation,
            m.egfr_creatinine, r.value as creatinine_mg_dl, r.birth_year
-    from int_measures_known as m
-    join int_results_known as r
+    from measures_known as m
+    join results_known as r
         on r.source_id = m.source_id and r.file_id = m.file_id and r.line_no = m.line_no
     where m.analyte = 'creatinine'
       and m.egfr_creatinine is not null

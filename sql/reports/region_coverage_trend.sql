@@ -11,7 +11,7 @@ with month_ends as (
     from range(0, 12) as t(k)
 ),
 known_tests as (
-    -- an eGFR, or an ACR as int_daily_values_averaged counts one (what coverage counts)
+    -- an eGFR, or an ACR as daily_values_averaged counts one (what coverage counts)
     select person_key, collected_date, reported_date, is_egfr, is_acr
     from (
         select person_key, collected_date, reported_date,
@@ -20,7 +20,7 @@ known_tests as (
                                       'timed_albumin_excretion')
                         and (acr_mg_g is not null or aer_mg_24h is not null or acr_comparator is not null),
                         false) as is_acr
-        from int_measures_known
+        from measures_known
     )
     where is_egfr or is_acr
 ),
@@ -45,7 +45,7 @@ per_month as (
 active as (
     select distinct m.as_of, r.person_key
     from month_ends as m
-    join int_results_known as r
+    join results_known as r
         on r.collected_date > m.as_of - to_months(cast($window_months as integer))
        and r.collected_date <= m.as_of
        and r.reported_date <= m.as_of
