@@ -10,7 +10,7 @@ export PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS := 180
 export PREFECT_SERVER_ANALYTICS_ENABLED := false
 export PREFECT_LOGGING_LEVEL := WARNING
 
-.PHONY: setup demo test test-fast bench samples clean
+.PHONY: setup demo lint test test-fast bench samples clean
 
 setup: $(STAMP)
 
@@ -21,6 +21,11 @@ $(STAMP): pyproject.toml constraints.txt
 
 demo: setup
 	$(BIN)/kidneysurv demo --out out
+
+# ruff's rules and format (pyproject.toml); .ci/run runs this before the tests
+lint: setup
+	$(BIN)/ruff check .
+	$(BIN)/ruff format --check .
 
 test: setup
 	$(BIN)/python -m pytest -q

@@ -142,11 +142,15 @@ def run_pipeline(args: argparse.Namespace) -> dict:
     t0 = time.perf_counter()
     if args.flow:
         flows.set_reporter(report)
-        summary = flows.monthly_surveillance(args.period, args.config, args.inbox, args.out, demo=True)
+        summary = flows.monthly_surveillance(
+            args.period, args.config, args.inbox, args.out, demo=True
+        )
     else:
         if profiler:
             profiler.enable()
-        summary = flows.run_month_plain(args.period, args.config, args.inbox, args.out, demo=True, report=report)
+        summary = flows.run_month_plain(
+            args.period, args.config, args.inbox, args.out, demo=True, report=report
+        )
         if profiler:
             profiler.disable()
     wall = time.perf_counter() - t0
@@ -160,11 +164,15 @@ def run_pipeline(args: argparse.Namespace) -> dict:
         "stage_rss_basis": "per_stage" if can_reset else "cumulative",
         "rss_before_run_mb": round(baseline_mb, 1),
         # the kernel's ru_maxrss only covers the time since the last reset: take the larger
-        "self_peak_rss_mb": round(max(_self_maxrss_mb(), max(peak_kb) / 1024, _status_kb("VmHWM") / 1024), 1),
+        "self_peak_rss_mb": round(
+            max(_self_maxrss_mb(), max(peak_kb) / 1024, _status_kb("VmHWM") / 1024), 1
+        ),
         "sources": summary.get("sources"),
         "held_back_sources": summary.get("held_back_sources"),
         "exit_code": summary.get("exit_code"),
-        "batch_checks_seconds": {s: c.get("seconds") for s, c in (summary.get("batch_checks") or {}).items()},
+        "batch_checks_seconds": {
+            s: c.get("seconds") for s, c in (summary.get("batch_checks") or {}).items()
+        },
         "persons": summary.get("persons"),
     }
     if trace is not None:
@@ -233,12 +241,17 @@ def main() -> None:
     ap.add_argument("--inbox")
     ap.add_argument("--out")
     ap.add_argument("--flow", action="store_true")
-    ap.add_argument("--trace", action="store_true", help="time the main pipeline functions (TRACED)")
+    ap.add_argument(
+        "--trace", action="store_true", help="time the main pipeline functions (TRACED)"
+    )
     ap.add_argument("--profile", help="write a cProfile summary of the plain run to this file")
     ap.add_argument("--input-glob")
     ap.add_argument("--period-end")
     ap.add_argument("--memory-limit", default="2GB")
-    ap.add_argument("--kept", help="floor: then write what the warehouse keeps (floor_kept.sql) to this DuckDB file")
+    ap.add_argument(
+        "--kept",
+        help="floor: then write what the warehouse keeps (floor_kept.sql) to this DuckDB file",
+    )
     args = ap.parse_args()
     result = run_pipeline(args) if args.mode == "pipeline" else run_floor(args)
     Path(args.stats).write_text(json.dumps(result, indent=2) + "\n", encoding="utf-8")

@@ -26,10 +26,18 @@ REPO = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(REPO))
 
 #: SQL files over persisted tables, in pipeline order, with the parameters they get.
-FILES = ("result_versions_resolved", "lab_results", "daily_values_averaged", "kidney_events", "person_status")
+FILES = (
+    "result_versions_resolved",
+    "lab_results",
+    "daily_values_averaged",
+    "kidney_events",
+    "person_status",
+)
 
 
-def operators(node: dict, out: list[tuple[float, str, int, str]]) -> list[tuple[float, str, int, str]]:
+def operators(
+    node: dict, out: list[tuple[float, str, int, str]]
+) -> list[tuple[float, str, int, str]]:
     """(seconds, operator, rows out, detail) of every operator of DuckDB's JSON profile."""
     info = node.get("extra_info") or {}
     detail = next((f"{k}: {info[k]}" for k in ("Table", "Partition By", "Order By", "Groups", "Conditions",

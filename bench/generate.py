@@ -45,7 +45,9 @@ HEADER = ["person_token", "birth_year", "sex", "district_code", "specimen_id", "
           "test_code", "value", "unit", "status", "height_cm", "reported_at", "fasting"]  # fmt: skip
 DISTRICTS = [f"WF{i:02d}" for i in range(1, 13)]
 # relative district sizes (invented)
-DISTRICT_WEIGHTS = np.array([4200, 900, 5200, 1500, 2600, 4100, 650, 1800, 1100, 420, 2000, 530], float)
+DISTRICT_WEIGHTS = np.array(
+    [4200, 900, 5200, 1500, 2600, 4100, 650, 1800, 1100, 420, 2000, 530], float
+)
 DEFAULT_SEED = 20261031
 DEFAULT_END_MONTH = "2026-10"
 DEFAULT_MONTHS = 60
@@ -131,7 +133,9 @@ def make_persons(n_persons: int, seed: int, first_day: int, last_day: int) -> pl
     rng = np.random.default_rng([seed, 1])
     idx = np.arange(n_persons, dtype=np.uint64)
     # an odd multiplier is a bijection mod 2^32: distinct persons get distinct tokens
-    scrambled = ((idx * np.uint64(2654435761) + np.uint64(seed)) % np.uint64(2**32)).astype(np.uint32)
+    scrambled = ((idx * np.uint64(2654435761) + np.uint64(seed)) % np.uint64(2**32)).astype(
+        np.uint32
+    )
     ref_year = dt.date(1970, 1, 1).year + int(round((first_day + last_day) / 2 / 365.25))
     age_ref = np.clip(rng.normal(58, 18, n_persons), 3, 98)
     birth_year = (ref_year - age_ref).round().astype(np.int32)
@@ -139,7 +143,9 @@ def make_persons(n_persons: int, seed: int, first_day: int, last_day: int) -> pl
     sex = np.where(female_true, "F", "M").astype(object)
     sex[rng.random(n_persons) < 0.01] = "U"
     district = rng.choice(len(DISTRICTS), n_persons, p=DISTRICT_WEIGHTS / DISTRICT_WEIGHTS.sum())
-    base = np.clip(118 - 0.85 * np.clip(age_ref - 20, 0, None) + rng.normal(0, 13, n_persons), 9, 140)
+    base = np.clip(
+        118 - 0.85 * np.clip(age_ref - 20, 0, None) + rng.normal(0, 13, n_persons), 9, 140
+    )
     slope = rng.normal(-1.0, 1.2, n_persons)  # mL/min/1.73 m2 per year
     declining = rng.random(n_persons) < SHARE_DECLINING
     span = last_day - first_day
@@ -178,8 +184,15 @@ def _true_egfr(p: dict[str, np.ndarray], day: np.ndarray, first_day: int) -> np.
     return np.clip(e, 4, 160)
 
 
-def make_results(persons: pl.DataFrame, n_rows: int, seed: int, first_day: int, last_day: int,
-                 stream: int = 2, visit_offset: int = 0) -> pl.DataFrame:
+def make_results(
+    persons: pl.DataFrame,
+    n_rows: int,
+    seed: int,
+    first_day: int,
+    last_day: int,
+    stream: int = 2,
+    visit_offset: int = 0,
+) -> pl.DataFrame:
     """``n_rows`` result rows collected between first_day and last_day (epoch days), as codes
     (numbers and small integer codes; :func:`format_rows` writes them out)."""
     rng = np.random.default_rng([seed, stream])
@@ -191,7 +204,9 @@ def make_results(persons: pl.DataFrame, n_rows: int, seed: int, first_day: int, 
     who = rng.choice(persons.height, n_visits, p=weights / weights.sum())
     visit_day = rng.integers(first_day, last_day + 1, n_visits)
     # which tests each visit has (at least one: a creatinine)
-    has = np.stack([rng.random(n_visits) < p for p in (P_CREAT, P_ACR, P_HBA1C, P_CYS, P_PCR)], axis=1)
+    has = np.stack(
+        [rng.random(n_visits) < p for p in (P_CREAT, P_ACR, P_HBA1C, P_CYS, P_PCR)], axis=1
+    )
     has[~has.any(axis=1), 0] = True
     visit_of_row, test_of_row = np.nonzero(has)  # row-major: a visit's tests stay together
     visit_of_row, test_of_row = visit_of_row[:n_base], test_of_row[:n_base]
@@ -203,7 +218,9 @@ def make_results(persons: pl.DataFrame, n_rows: int, seed: int, first_day: int, 
     cols = {c: persons[c].to_numpy()[pid] for c in
             ("base_egfr", "slope", "declining", "t1", "t2", "drop", "albuminuric", "diabetic",
              "female", "birth_year")}  # fmt: skip
-    collected_year = (np.datetime64("1970-01-01") + day.astype("timedelta64[D]")).astype("datetime64[Y]")
+    collected_year = (np.datetime64("1970-01-01") + day.astype("timedelta64[D]")).astype(
+        "datetime64[Y]"
+    )
     age = np.clip(collected_year.astype(np.int64) + 1970 - cols["birth_year"], 1, 120).astype(float)
     egfr = _true_egfr(cols, day, first_day)
     female = cols["female"]
@@ -212,7 +229,11 @@ def make_results(persons: pl.DataFrame, n_rows: int, seed: int, first_day: int, 
     cys = np.clip(cystatin_from_egfr(egfr, age, female) * noise, 0.3, 8)
     acr = np.clip(rng.lognormal(np.where(cols["albuminuric"], 4.6, 2.0), 0.9), 0.5, 5000)
     pcr = np.clip(acr * 1.6 + rng.lognormal(4.0, 0.4, n_base), 20, 20000)
-    hba1c = np.clip(np.where(cols["diabetic"], rng.normal(7.6, 1.2, n_base), rng.normal(5.5, 0.4, n_base)), 4, 16)
+    hba1c = np.clip(
+        np.where(cols["diabetic"], rng.normal(7.6, 1.2, n_base), rng.normal(5.5, 0.4, n_base)),
+        4,
+        16,
+    )
     number = np.select([kind == 0, kind == 1, kind == 2, kind == 3, kind == 4],
                        [np.round(scr, 2), np.round(scr * UMOL_PER_MG_DL), np.round(acr, 1),
                         np.round(hba1c, 1), np.round(cys, 2)], np.round(pcr))  # fmt: skip
@@ -240,9 +261,15 @@ def make_results(persons: pl.DataFrame, n_rows: int, seed: int, first_day: int, 
     pick = rng.choice(n_base, n_amend + n_cancel, replace=False)
     later = pl.Series(rng.integers(1, 15, n_amend + n_cancel))
     copies = frame[pick].with_columns(
-        pl.min_horizontal(pl.col("reported") + later, pl.lit(last_day)).cast(pl.Int32).alias("reported"),
-        (pl.col("number") * pl.Series(np.r_[rng.uniform(0.9, 1.1, n_amend), np.ones(n_cancel)])).alias("number"),
-        pl.Series(np.r_[np.zeros(n_amend), np.full(n_cancel, 2)].astype(np.int8)).alias("value_code"),
+        pl.min_horizontal(pl.col("reported") + later, pl.lit(last_day))
+        .cast(pl.Int32)
+        .alias("reported"),
+        (
+            pl.col("number") * pl.Series(np.r_[rng.uniform(0.9, 1.1, n_amend), np.ones(n_cancel)])
+        ).alias("number"),
+        pl.Series(np.r_[np.zeros(n_amend), np.full(n_cancel, 2)].astype(np.int8)).alias(
+            "value_code"
+        ),
         pl.Series(np.r_[np.ones(n_amend), np.full(n_cancel, 2)].astype(np.int8)).alias("status"),
     )
     frame = pl.concat([frame, copies])
@@ -305,9 +332,13 @@ def format_rows(part: pl.DataFrame, persons: pl.DataFrame) -> pl.DataFrame:
         "birth_year",
         "sex",
         "district_code",
-        pl.format("WGH{}", pl.col("specimen_no").cast(pl.String).str.zfill(10)).alias("specimen_id"),
+        pl.format("WGH{}", pl.col("specimen_no").cast(pl.String).str.zfill(10)).alias(
+            "specimen_id"
+        ),
         collected.alias("collected_date"),
-        kind.replace_strict({k: c for k, (c, _) in KINDS.items()}, return_dtype=pl.String).alias("test_code"),
+        kind.replace_strict({k: c for k, (c, _) in KINDS.items()}, return_dtype=pl.String).alias(
+            "test_code"
+        ),
         value.alias("value"),
         unit.alias("unit"),
         pl.col("status").replace_strict(STATUSES, return_dtype=pl.String).alias("status"),
@@ -334,8 +365,14 @@ def write_months(frame: pl.DataFrame, persons: pl.DataFrame, folder: Path) -> di
     return counts
 
 
-def generate(rows: int, target: Path, seed: int = DEFAULT_SEED, months: int = DEFAULT_MONTHS,
-             end_month: str = DEFAULT_END_MONTH, extra_rows: int = 0) -> dict:
+def generate(
+    rows: int,
+    target: Path,
+    seed: int = DEFAULT_SEED,
+    months: int = DEFAULT_MONTHS,
+    end_month: str = DEFAULT_END_MONTH,
+    extra_rows: int = 0,
+) -> dict:
     """Write the inbox (and the extra month) under ``target``; return what was written."""
     started = time.perf_counter()
     first_day, last_day = month_range(end_month, months)
@@ -349,7 +386,9 @@ def generate(rows: int, target: Path, seed: int = DEFAULT_SEED, months: int = DE
     if extra_rows:
         month = next_month(end_month)
         e_first, e_last = month_range(month, 1)
-        extra = make_results(persons, extra_rows, seed, e_first, e_last, stream=3, visit_offset=10**9)
+        extra = make_results(
+            persons, extra_rows, seed, e_first, e_last, stream=3, visit_offset=10**9
+        )
         info["extra_month"] = month
         info["extra_files"] = write_months(extra, persons, target / "extra" / SOURCE)
         info["extra_rows"] = extra_rows
@@ -361,11 +400,15 @@ def generate(rows: int, target: Path, seed: int = DEFAULT_SEED, months: int = DE
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     ap.add_argument("--rows", type=int, required=True)
-    ap.add_argument("--dir", type=Path, required=True, help="target folder (inbox/ and extra/ below it)")
+    ap.add_argument(
+        "--dir", type=Path, required=True, help="target folder (inbox/ and extra/ below it)"
+    )
     ap.add_argument("--seed", type=int, default=DEFAULT_SEED)
     ap.add_argument("--months", type=int, default=DEFAULT_MONTHS)
     ap.add_argument("--end-month", default=DEFAULT_END_MONTH)
-    ap.add_argument("--extra-rows", type=int, default=0, help="rows of the following month (incremental)")
+    ap.add_argument(
+        "--extra-rows", type=int, default=0, help="rows of the following month (incremental)"
+    )
     args = ap.parse_args()
     info = generate(args.rows, args.dir, args.seed, args.months, args.end_month, args.extra_rows)
     print(f"wrote {args.rows} rows in {len(info['files'])} files under {args.dir / 'inbox'} "

@@ -76,7 +76,10 @@ def stages_done(log: Path) -> dict:
     for line in log.read_text(encoding="utf-8", errors="replace").splitlines():
         match = _STAGE_LINE.match(line.strip())
         if match:
-            done[match.group(1)] = {"seconds": float(match.group(2)), "peak_rss_mb": float(match.group(3))}
+            done[match.group(1)] = {
+                "seconds": float(match.group(2)),
+                "peak_rss_mb": float(match.group(3)),
+            }
     return done
 
 
@@ -95,8 +98,9 @@ def _rss_mb(pid: int) -> float:
     return 0.0
 
 
-def run_child(args: list[str], log: Path, env: dict[str, str] | None = None,
-              rss_cap_gb: float = RSS_CAP_GB) -> dict:
+def run_child(
+    args: list[str], log: Path, env: dict[str, str] | None = None, rss_cap_gb: float = RSS_CAP_GB
+) -> dict:
     """Run bench/child.py with ``args``; its stats, the process wall and the child's peak RSS.
 
     The child's RSS is polled: above ``rss_cap_gb`` the child (and only it) is killed and
@@ -124,13 +128,19 @@ def run_child(args: list[str], log: Path, env: dict[str, str] | None = None,
                 elapsed = time.perf_counter() - started
                 raise MemoryCapExceeded(
                     f"stopped at {rss / 1024:.1f} GB RSS (cap {rss_cap_gb:g} GB) {elapsed:.0f} s after start, "
-                    f"after stage {list(done)[-1] if done else '(none)'}", done, elapsed, rss)
+                    f"after stage {list(done)[-1] if done else '(none)'}",
+                    done,
+                    elapsed,
+                    rss,
+                )
             time.sleep(0.2)
         proc.returncode = os.waitstatus_to_exitcode(status)
     process_wall = time.perf_counter() - started
     if proc.returncode != 0:
         tail = log.read_text(encoding="utf-8", errors="replace")[-3000:]
-        raise RuntimeError(f"child {' '.join(args[:1])} failed ({proc.returncode}); log {log}:\n{tail}")
+        raise RuntimeError(
+            f"child {' '.join(args[:1])} failed ({proc.returncode}); log {log}:\n{tail}"
+        )
     result = json.loads(stats.read_text(encoding="utf-8"))
     result["process_wall_seconds"] = round(process_wall, 3)
     # CPU time (user + system, all threads) of the whole child: less sensitive than wall to other
@@ -148,10 +158,30 @@ def run_child(args: list[str], log: Path, env: dict[str, str] | None = None,
     return result
 
 
-def pipeline_child(period: str, config: Path, inbox: Path, out: Path, log: Path, *, flow: bool = False,
-                   env: dict | None = None, profile: Path | None = None, rss_cap_gb: float = RSS_CAP_GB,
-                   trace: bool = True) -> dict:
-    args = ["pipeline", "--period", period, "--config", str(config), "--inbox", str(inbox), "--out", str(out)]
+def pipeline_child(
+    period: str,
+    config: Path,
+    inbox: Path,
+    out: Path,
+    log: Path,
+    *,
+    flow: bool = False,
+    env: dict | None = None,
+    profile: Path | None = None,
+    rss_cap_gb: float = RSS_CAP_GB,
+    trace: bool = True,
+) -> dict:
+    args = [
+        "pipeline",
+        "--period",
+        period,
+        "--config",
+        str(config),
+        "--inbox",
+        str(inbox),
+        "--out",
+        str(out),
+    ]
     if flow:
         args.append("--flow")
     if trace and not flow:
@@ -209,7 +239,10 @@ def gx_off_config(source: Path, target: Path) -> Path:
     text = path.read_text(encoding="utf-8")
     if "  great_expectations: true" not in text:
         raise RuntimeError(f"{path}: 'quality_gate.great_expectations: true' not found")
-    path.write_text(text.replace("  great_expectations: true", "  great_expectations: false", 1), encoding="utf-8")
+    path.write_text(
+        text.replace("  great_expectations: true", "  great_expectations: false", 1),
+        encoding="utf-8",
+    )
     return target
 
 
@@ -223,8 +256,10 @@ def code_fingerprint() -> dict:
     for path in sorted([*(REPO / "pipeline").rglob("*.py"), *(REPO / "sql").rglob("*.sql")]):
         digest.update(path.relative_to(REPO).as_posix().encode() + b"\0" + path.read_bytes())
         newest = max(newest, path.stat().st_mtime)
-    return {"code_sha256": digest.hexdigest()[:16],
-            "newest_code_file_at": dt.datetime.fromtimestamp(newest).strftime("%Y-%m-%d %H:%M:%S")}
+    return {
+        "code_sha256": digest.hexdigest()[:16],
+        "newest_code_file_at": dt.datetime.fromtimestamp(newest).strftime("%Y-%m-%d %H:%M:%S"),
+    }
 
 
 def month_end(label: str) -> str:
@@ -249,7 +284,10 @@ def best_of(repeat: int, label: str, measure) -> tuple[dict, list[float]]:
         run["load_before"] = load
         runs.append(run)
         if repeat > 1:
-            print(f"[bench]   {label} {i + 1}/{repeat}: {run['wall_seconds']:.1f} s (load {load})", flush=True)
+            print(
+                f"[bench]   {label} {i + 1}/{repeat}: {run['wall_seconds']:.1f} s (load {load})",
+                flush=True,
+            )
     best = min(runs, key=lambda r: r["wall_seconds"])
     best["repeat_index"] = runs.index(best)
     return best, [r["wall_seconds"] for r in runs]
@@ -276,8 +314,13 @@ def bench_size(rows: int, args: argparse.Namespace, with_prefect: bool) -> dict:
 
     print(f"[bench] {rows:,} rows: (a) pipeline, plain, period {period}", flush=True)
     try:
-        full, walls = best_of(args.repeat, "pipeline", lambda i: pipeline_child(
-            period, config, inbox, work / f"full_{i}", logs / f"pipeline_{i}", rss_cap_gb=cap))
+        full, walls = best_of(
+            args.repeat,
+            "pipeline",
+            lambda i: pipeline_child(
+                period, config, inbox, work / f"full_{i}", logs / f"pipeline_{i}", rss_cap_gb=cap
+            ),
+        )
     except MemoryCapExceeded as exc:
         full = None
         # what the stopped run tells: its finished stages, and lower bounds for wall and RSS
@@ -319,7 +362,9 @@ def bench_size(rows: int, args: argparse.Namespace, with_prefect: bool) -> dict:
                                                   / floor["wall_seconds"], 1)  # fmt: skip
         return result
     result["ratio_vs_floor"] = round(full["wall_seconds"] / floor["wall_seconds"], 2)
-    result["ratio_vs_floor_kept"] = round(full["wall_seconds"] / result["floor_kept"]["wall_seconds"], 2)
+    result["ratio_vs_floor_kept"] = round(
+        full["wall_seconds"] / result["floor_kept"]["wall_seconds"], 2
+    )
     if full.get("cpu_seconds") and floor.get("cpu_seconds"):  # whole processes, imports included
         result["cpu_ratio_vs_floor"] = round(full["cpu_seconds"] / floor["cpu_seconds"], 2)
 
@@ -329,8 +374,9 @@ def bench_size(rows: int, args: argparse.Namespace, with_prefect: bool) -> dict:
 
         def gx_off(i: int) -> dict:
             shutil.rmtree(work / "gx_off", ignore_errors=True)
-            return pipeline_child(period, off_config, inbox, work / "gx_off", logs / f"gx_off_{i}",
-                                  rss_cap_gb=cap)
+            return pipeline_child(
+                period, off_config, inbox, work / "gx_off", logs / f"gx_off_{i}", rss_cap_gb=cap
+            )
 
         off, walls = best_of(args.repeat, "without GX", gx_off)
         result["great_expectations"] = {
@@ -386,8 +432,9 @@ def bench_size(rows: int, args: argparse.Namespace, with_prefect: bool) -> dict:
               f"({info['extra_rows']:,} rows) into the same out dir", flush=True)  # fmt: skip
         link_inbox(extra_files, inbox)
         load = _loadavg()
-        incr = pipeline_child(extra_period, config, inbox, work / "full", logs / "incremental",
-                              rss_cap_gb=cap)
+        incr = pipeline_child(
+            extra_period, config, inbox, work / "full", logs / "incremental", rss_cap_gb=cap
+        )
         result["incremental"] = {
             "period": extra_period,
             "new_rows": info["extra_rows"],
@@ -439,7 +486,9 @@ def _pipeline_view(run: dict, rows: int) -> dict:
 def _check_accounting(run: dict, rows: int) -> None:
     read = sum(s["read"] for s in (run.get("sources") or {}).values())
     if read != rows or run.get("held_back_sources"):
-        raise RuntimeError(f"pipeline read {read} rows of {rows}, held back {run.get('held_back_sources')}")
+        raise RuntimeError(
+            f"pipeline read {read} rows of {rows}, held back {run.get('held_back_sources')}"
+        )
 
 
 # --------------------------------------------------------------------------- machine and reports
@@ -454,7 +503,9 @@ def machine_facts() -> dict:
     cpu = ""
     try:
         with open("/proc/cpuinfo", encoding="utf-8") as fh:
-            cpu = next((ln.split(":", 1)[1].strip() for ln in fh if ln.startswith("model name")), "")
+            cpu = next(
+                (ln.split(":", 1)[1].strip() for ln in fh if ln.startswith("model name")), ""
+            )
     except OSError:
         pass
 
@@ -486,8 +537,12 @@ def _fmt_mb(x: float | None) -> str:
 def render_tables(results: dict) -> str:
     m = results["machine"]
     lines = [
-        "Measured: " + "; ".join(f"{r['rows']:,} rows on {r.get('measured_at', '?')} (`{r.get('command', '?')}`)"
-                                 for r in sorted(results["runs"], key=lambda r: r["rows"])) + ".",
+        "Measured: "
+        + "; ".join(
+            f"{r['rows']:,} rows on {r.get('measured_at', '?')} (`{r.get('command', '?')}`)"
+            for r in sorted(results["runs"], key=lambda r: r["rows"])
+        )
+        + ".",
         "",
         f"Machine: {m['nproc']} cores ({m['cpu'] or 'cpu unknown'}), {m['ram_gb']} GB RAM, Linux {m['kernel']}; "
         f"Python {m['python']}, DuckDB {m['duckdb']}, polars {m['polars']}, pyarrow {m['pyarrow']}, "
@@ -513,7 +568,10 @@ def render_tables(results: dict) -> str:
     row("pipeline wall, s (plain, GX on)", lambda r: _fmt_s(r["pipeline"]["wall_seconds"])
         if "wall_seconds" in r["pipeline"]
         else f"> {_fmt_s(r['pipeline']['elapsed_at_stop_seconds'])} (stopped)")  # fmt: skip
-    row("pipeline walls of the repeats, s", lambda r: ", ".join(_fmt_s(w) for w in r["pipeline"]["walls_seconds"]))
+    row(
+        "pipeline walls of the repeats, s",
+        lambda r: ", ".join(_fmt_s(w) for w in r["pipeline"]["walls_seconds"]),
+    )
     row("pipeline peak RSS, MB", lambda r: _fmt_mb(r["pipeline"]["peak_rss_mb"])
         if "peak_rss_mb" in r["pipeline"]
         else f"> {_fmt_mb(r['pipeline']['peak_rss_at_least_mb'])} (stopped)")  # fmt: skip
@@ -524,14 +582,22 @@ def render_tables(results: dict) -> str:
     row("**ratio_vs_floor**", lambda r: f"**{r['ratio_vs_floor']:.1f}×**" if "ratio_vs_floor" in r
         else f"**> {r['ratio_vs_floor_at_least']:.0f}×** (stopped)")  # fmt: skip
     row("CPU-time ratio (whole processes)", lambda r: f"{r['cpu_ratio_vs_floor']:.1f}×")
-    row("floor, then keeping the rows (floor_kept.sql), s",
-        lambda r: f"{_fmt_s(r['floor_kept']['floor_part_seconds'])} + {_fmt_s(r['floor_kept']['kept_seconds'])}")
+    row(
+        "floor, then keeping the rows (floor_kept.sql), s",
+        lambda r: (
+            f"{_fmt_s(r['floor_kept']['floor_part_seconds'])} + {_fmt_s(r['floor_kept']['kept_seconds'])}"
+        ),
+    )
     row("pipeline / (floor + keeping the rows)", lambda r: f"{r['ratio_vs_floor_kept']:.1f}×")
     row("incremental month: wall, s", lambda r: _fmt_s(r["incremental"]["wall_seconds"]))
     row("**incremental fraction of full**", lambda r: f"**{r['incremental']['fraction']:.0%}**")
-    row("pipeline wall without GX, s", lambda r: _fmt_s(r["great_expectations"]["wall_off_seconds"]))
-    row("**GX share of wall** (gate timed in the run)",
-        lambda r: f"**{r['great_expectations']['traced_share']:.0%}**")
+    row(
+        "pipeline wall without GX, s", lambda r: _fmt_s(r["great_expectations"]["wall_off_seconds"])
+    )
+    row(
+        "**GX share of wall** (gate timed in the run)",
+        lambda r: f"**{r['great_expectations']['traced_share']:.0%}**",
+    )
     row("GX share from wall on − off", lambda r: f"{r['great_expectations']['share']:.0%}")
     row("GX peak RSS on / off, MB", lambda r: f"{_fmt_mb(r['great_expectations']['peak_rss_on_mb'])} / "
         f"{_fmt_mb(r['great_expectations']['peak_rss_off_mb'])}")  # fmt: skip
@@ -551,7 +617,10 @@ def render_tables(results: dict) -> str:
     for name in stage_names:
         row(name, lambda r, n=name: f"{_fmt_s(r['pipeline']['stages'][n]['seconds'])} / "
             f"{_fmt_mb(r['pipeline']['stages'][n]['peak_rss_mb'])}")  # fmt: skip
-    row("between stages (manifest, headline)", lambda r: _fmt_s(r["pipeline"]["between_stages_seconds"]))
+    row(
+        "between stages (manifest, headline)",
+        lambda r: _fmt_s(r["pipeline"]["between_stages_seconds"]),
+    )
     row("**total**", lambda r: f"**{_fmt_s(r['pipeline']['wall_seconds'])} / "
         f"{_fmt_mb(r['pipeline']['peak_rss_mb'])}**")  # fmt: skip
 
@@ -563,7 +632,9 @@ def render_tables(results: dict) -> str:
                   "| function (SQL file) | calls | s | share of wall |", "|---|---:|---:|---:|"]  # fmt: skip
         ranked = sorted(r["pipeline"]["trace"].items(), key=lambda kv: -kv[1]["seconds"])
         for name, t in ranked[:18]:
-            lines.append(f"| `{name}` | {t['calls']} | {_fmt_s(t['seconds'])} | {t['seconds'] / wall:.0%} |")
+            lines.append(
+                f"| `{name}` | {t['calls']} | {_fmt_s(t['seconds'])} | {t['seconds'] / wall:.0%} |"
+            )
 
     lines += ["", "### Targets", "", "| target | measured | met |", "|---|---|---|"]
     by_rows = {r["rows"]: r for r in runs}
@@ -572,27 +643,46 @@ def render_tables(results: dict) -> str:
         if value is None:
             lines.append(f"| {label} | not measured | – |")
         else:
-            lines.append(f"| {label} | {format(value, fmt)} | {'yes' if value <= limit else '**no**'} |")
+            lines.append(
+                f"| {label} | {format(value, fmt)} | {'yes' if value <= limit else '**no**'} |"
+            )
 
     big = by_rows.get(10_000_000)
     one = by_rows.get(1_000_000)
     big_ratio = big and (big.get("ratio_vs_floor") or big.get("ratio_vs_floor_at_least"))
     target("10M end to end ≤ 3× floor", big_ratio, TARGETS["ratio_vs_floor_10m"], ".1f")
-    target("1M end to end ≤ 4× floor", one and one.get("ratio_vs_floor"), TARGETS["ratio_vs_floor_1m"], ".1f")
-    big_rss = big and (big["pipeline"].get("peak_rss_mb") or big["pipeline"].get("peak_rss_at_least_mb", 0))
+    target(
+        "1M end to end ≤ 4× floor",
+        one and one.get("ratio_vs_floor"),
+        TARGETS["ratio_vs_floor_1m"],
+        ".1f",
+    )
+    big_rss = big and (
+        big["pipeline"].get("peak_rss_mb") or big["pipeline"].get("peak_rss_at_least_mb", 0)
+    )
     target("peak RSS ≤ 3 GB at 10M (GB)", big_rss / 1024 if big_rss else None,
            TARGETS["peak_rss_gb_10m"], ".2f")  # fmt: skip
     largest = runs[-1]
-    target(f"incremental ≤ 10 % of full ({largest['rows']:,} rows)",
-           largest.get("incremental", {}).get("fraction"), TARGETS["incremental_fraction"], ".0%")
-    target(f"GX ≤ 15 % ({largest['rows']:,} rows; gate timed in the run)",
-           largest.get("great_expectations", {}).get("traced_share"), TARGETS["gx_share"], ".0%")
+    target(
+        f"incremental ≤ 10 % of full ({largest['rows']:,} rows)",
+        largest.get("incremental", {}).get("fraction"),
+        TARGETS["incremental_fraction"],
+        ".0%",
+    )
+    target(
+        f"GX ≤ 15 % ({largest['rows']:,} rows; gate timed in the run)",
+        largest.get("great_expectations", {}).get("traced_share"),
+        TARGETS["gx_share"],
+        ".0%",
+    )
     return "\n".join(lines)
 
 
 def write_reports(results: dict, results_dir: Path) -> None:
     results_dir.mkdir(parents=True, exist_ok=True)
-    (results_dir / "results.json").write_text(json.dumps(results, indent=2, sort_keys=True) + "\n", encoding="utf-8")
+    (results_dir / "results.json").write_text(
+        json.dumps(results, indent=2, sort_keys=True) + "\n", encoding="utf-8"
+    )
     md_path = results_dir / "results.md"
     block = f"{BEGIN}\n{render_tables(results)}\n{END}"
     if md_path.is_file():
@@ -607,19 +697,37 @@ def write_reports(results: dict, results_dir: Path) -> None:
 
 def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description="kidneysurv benchmark harness (bench/README.md)")
-    ap.add_argument("--rows", required=True, help="result rows, or several sizes separated by commas")
-    ap.add_argument("--data", type=Path, default=BENCH / "data", help="generated extracts (default bench/data)")
-    ap.add_argument("--out", type=Path, default=BENCH / "out", help="run folders (default bench/out)")
-    ap.add_argument("--results-dir", type=Path, default=BENCH, help="where results.json/.md go (default bench/)")
+    ap.add_argument(
+        "--rows", required=True, help="result rows, or several sizes separated by commas"
+    )
+    ap.add_argument(
+        "--data", type=Path, default=BENCH / "data", help="generated extracts (default bench/data)"
+    )
+    ap.add_argument(
+        "--out", type=Path, default=BENCH / "out", help="run folders (default bench/out)"
+    )
+    ap.add_argument(
+        "--results-dir", type=Path, default=BENCH, help="where results.json/.md go (default bench/)"
+    )
     ap.add_argument("--seed", type=int, default=generate.DEFAULT_SEED)
     ap.add_argument("--skip-prefect", action="store_true", help="no Prefect flow run")
     ap.add_argument("--skip-gx", action="store_true", help="no run without Great Expectations")
     ap.add_argument("--skip-incremental", action="store_true", help="no incremental month")
-    ap.add_argument("--repeat", type=int, default=1,
-                    help="runs of the pipeline, floor, GX-off and Prefect measurements; the least wall is kept")
-    ap.add_argument("--profile", action="store_true", help="also a cProfile'd plain run (not timed)")
-    ap.add_argument("--rss-cap-gb", type=float, default=RSS_CAP_GB,
-                    help=f"stop a measured run whose RSS goes above this (default {RSS_CAP_GB} GB)")
+    ap.add_argument(
+        "--repeat",
+        type=int,
+        default=1,
+        help="runs of the pipeline, floor, GX-off and Prefect measurements; the least wall is kept",
+    )
+    ap.add_argument(
+        "--profile", action="store_true", help="also a cProfile'd plain run (not timed)"
+    )
+    ap.add_argument(
+        "--rss-cap-gb",
+        type=float,
+        default=RSS_CAP_GB,
+        help=f"stop a measured run whose RSS goes above this (default {RSS_CAP_GB} GB)",
+    )
     ap.add_argument("--keep", action="store_true", help="keep the out dirs of the extra runs")
     ap.add_argument("--no-merge", action="store_true", help="drop sizes of an earlier results.json")
     args = ap.parse_args(argv)
@@ -631,7 +739,9 @@ def main(argv: list[str] | None = None) -> int:
     previous = args.results_dir / "results.json"
     runs: dict[int, dict] = {}
     if previous.is_file() and not args.no_merge:
-        runs = {r["rows"]: r for r in json.loads(previous.read_text(encoding="utf-8")).get("runs", [])}
+        runs = {
+            r["rows"]: r for r in json.loads(previous.read_text(encoding="utf-8")).get("runs", [])
+        }
     command = "python bench/run.py " + " ".join(argv if argv is not None else sys.argv[1:])
     for rows in sizes:
         runs[rows] = bench_size(rows, args, with_prefect=not args.skip_prefect and rows == sizes[0])

@@ -31,7 +31,8 @@ def months_to_run(out: Path, first: Period, last: Period, force: bool) -> list[t
     """Every month from ``first`` to ``last``, with True where it is skipped: published in the
     warehouse and its exports in place (``<out>/<period>/``). A month that committed but whose
     exports never reached their folder is run again unless :func:`finish_interrupted` could
-    put them in place first."""
+    put them in place first.
+    """
     done = set() if force else published_periods(out)
     return [(p, p.label in done and (out / p.label).is_dir()) for p in months_between(first, last)]
 
@@ -39,11 +40,16 @@ def months_to_run(out: Path, first: Period, last: Period, force: bool) -> list[t
 def finish_interrupted(out: Path) -> list[str]:
     """Finish what a stopped run left in ``out`` (a month committed whose exports were not yet
     moved into place: they are installed; staged exports of a month not committed: removed),
-    under the run lock, as the next run would. Returns one line per thing done."""
+    under the run lock, as the next run would. Returns one line per thing done.
+    """
     from pipeline.runlock import recover_interrupted_run, run_lock
 
     path = out / WAREHOUSE_FILE
-    if not path.exists() or not any(out.glob(".*.publishing.json")) and not any(out.glob(".*.partial")):
+    if (
+        not path.exists()
+        or not any(out.glob(".*.publishing.json"))
+        and not any(out.glob(".*.partial"))
+    ):
         return []
     with run_lock(out):
         con = duckdb.connect(str(path))

@@ -38,12 +38,15 @@ class CheckReport:
     outside_period: tuple[int, list[int]] = (0, [])
 
 
-def check_file(settings: Settings, source_id: str, path: Path, period: str | None = None) -> CheckReport:
+def check_file(
+    settings: Settings, source_id: str, path: Path, period: str | None = None
+) -> CheckReport:
     """Ingest and validate one file into an in-memory warehouse and report its outcomes.
 
     ``period`` (YYYY-MM; default: the month in the file name) is the run the file would go
     into: undated rows are dated at its end, and the rows it would not count (collected or
-    reported after its end) are listed."""
+    reported after its end) are listed.
+    """
     if period is None:
         named = extract_month(f"{path.parent.name}/{path.name}", "")  # FHIR: the export's folder
         period = named or None
@@ -54,8 +57,16 @@ def check_file(settings: Settings, source_id: str, path: Path, period: str | Non
         # person keys are never shown here, so a throw-away key is enough
         key = PseudonymKey(secret=DEMO_KEY.encode(), is_demo=True)
         begin_judging(con)
-        summary = land_inbox(con, settings, path.parent, key, period or "check", dt.date.today(), items=[item],
-                             sink=judge_file)
+        summary = land_inbox(
+            con,
+            settings,
+            path.parent,
+            key,
+            period or "check",
+            dt.date.today(),
+            items=[item],
+            sink=judge_file,
+        )
         report = CheckReport(period=period)
         if summary.held_back:
             report.fault = summary.held_back[0][1]
@@ -63,7 +74,11 @@ def check_file(settings: Settings, source_id: str, path: Path, period: str | Non
         source = settings.source(source_id)
         gate = settings.pipeline.quality_gate
         report.unmapped = unmapped_codes(con).get(source_id, {})
-        unmapped_limit = source.max_unmapped_share if source.max_unmapped_share is not None else gate.max_unmapped_share
+        unmapped_limit = (
+            source.max_unmapped_share
+            if source.max_unmapped_share is not None
+            else gate.max_unmapped_share
+        )
         report.would_hold.extend(unmapped_over_limit(con, {source_id: unmapped_limit}).values())
         validate_landed(con, {})
         _, scope = resolve_versions(con)
@@ -74,12 +89,19 @@ def check_file(settings: Settings, source_id: str, path: Path, period: str | Non
         ).fetchall()[0]
         report.rows_read = row[0]
         names = ("accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending")
-        report.outcomes = dict(zip(names, row[1:]))
-        limit = source.max_rejection_rate if source.max_rejection_rate is not None else gate.max_rejection_rate
+        report.outcomes = dict(zip(names, row[1:], strict=False))
+        limit = (
+            source.max_rejection_rate
+            if source.max_rejection_rate is not None
+            else gate.max_rejection_rate
+        )
         if report.rows_read and report.outcomes["rejected"] / report.rows_read > limit:
             share = report.outcomes["rejected"] / report.rows_read
-            report.would_hold.insert(0, f"{report.outcomes['rejected']} of {report.rows_read} rows rejected "
-                                        f"({share:.1%}), above the limit of {limit:.1%}")
+            report.would_hold.insert(
+                0,
+                f"{report.outcomes['rejected']} of {report.rows_read} rows rejected "
+                f"({share:.1%}), above the limit of {limit:.1%}",
+            )
         if period is not None:
             end = Period.parse(period).end
             n, lines = con.execute(

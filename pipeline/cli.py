@@ -10,9 +10,9 @@ from __future__ import annotations
 import os
 import sys
 import time
-from enum import Enum
+from enum import StrEnum
 from pathlib import Path
-from typing import Annotated, Optional
+from typing import Annotated
 
 import typer
 from rich.console import Console
@@ -31,8 +31,9 @@ app = typer.Typer(
     add_completion=False,
     rich_markup_mode=None,  # plain help: a flag is shown as a flag, not as an option taking <bool>
 )
-sources_app = typer.Typer(help="Look at lab sources and their files.", no_args_is_help=True,
-                          rich_markup_mode=None)
+sources_app = typer.Typer(
+    help="Look at lab sources and their files.", no_args_is_help=True, rich_markup_mode=None
+)
 app.add_typer(sources_app, name="sources")
 console = Console(highlight=False, width=None if sys.stdout.isatty() else 120)
 err = Console(stderr=True, highlight=False)
@@ -43,7 +44,8 @@ EXIT_INTERNAL = 4
 
 def write_failure_log(out: Path, period: str, text: str) -> Path | None:
     """Write ``text`` (a traceback) to ``<out>/<period>/logs/``, or to the system's temporary
-    folder when the output folder cannot be written (read-only, full); None if neither can."""
+    folder when the output folder cannot be written (read-only, full); None if neither can.
+    """
     import datetime as dt
     import tempfile
 
@@ -68,12 +70,17 @@ def write_failure_log(out: Path, period: str, text: str) -> Path | None:
 
 def report_failure(exc: BaseException, out: Path, period: str, verbose: bool) -> int:
     """One line on the terminal (what failed, where the traceback is), the traceback in the log
-    file (and on the terminal too with ``--verbose``); returns :data:`EXIT_INTERNAL`."""
+    file (and on the terminal too with ``--verbose``); returns :data:`EXIT_INTERNAL`.
+    """
     import traceback
 
     text = "".join(traceback.format_exception(exc))
     log = write_failure_log(out, period, text)
-    where = f"traceback in {log}" if log else "the traceback could not be written anywhere; run with --verbose"
+    where = (
+        f"traceback in {log}"
+        if log
+        else "the traceback could not be written anywhere; run with --verbose"
+    )
     first = (str(exc).strip().splitlines() or [""])[0][:300]
     hint = _failure_hint(exc)
     if verbose:
@@ -89,7 +96,8 @@ class WarehouseDamaged(Exception):
 
 def check_warehouse_opens(out: Path) -> None:
     """Open an existing warehouse read-only before Prefect starts, so that a damaged file is
-    reported at once (exit 4), not after the temporary server's start-up."""
+    reported at once (exit 4), not after the temporary server's start-up.
+    """
     import duckdb
 
     from pipeline.warehouse import WAREHOUSE_FILE
@@ -100,7 +108,9 @@ def check_warehouse_opens(out: Path) -> None:
     try:
         duckdb.connect(str(path), read_only=True).close()
     except duckdb.Error as exc:
-        raise WarehouseDamaged(f"{path}: the warehouse file cannot be opened ({str(exc).splitlines()[0][:200]})") from exc
+        raise WarehouseDamaged(
+            f"{path}: the warehouse file cannot be opened ({str(exc).splitlines()[0][:200]})"
+        ) from exc
 
 
 def _failure_hint(exc: BaseException) -> str:
@@ -110,17 +120,29 @@ def _failure_hint(exc: BaseException) -> str:
     import duckdb
 
     if isinstance(exc, OSError) and exc.errno == errno.ENOSPC:
-        return " (the disk is full: free space, then run again; the last published month is unchanged)"
-    if isinstance(exc, PermissionError | OSError) and exc.errno in (errno.EACCES, errno.EROFS, errno.EPERM):
-        return " (the output folder cannot be written: check its permissions; nothing was published)"
+        return (
+            " (the disk is full: free space, then run again; the last published month is unchanged)"
+        )
+    if isinstance(exc, PermissionError | OSError) and exc.errno in (
+        errno.EACCES,
+        errno.EROFS,
+        errno.EPERM,
+    ):
+        return (
+            " (the output folder cannot be written: check its permissions; nothing was published)"
+        )
     if isinstance(exc, duckdb.Error) and "no space left" in str(exc).lower():
-        return " (the disk is full: free space, then run again; the last published month is unchanged)"
+        return (
+            " (the disk is full: free space, then run again; the last published month is unchanged)"
+        )
     if isinstance(exc, duckdb.Error | WarehouseDamaged):
-        return " (the warehouse file could not be used: it may be damaged; restore it from a backup)"
+        return (
+            " (the warehouse file could not be used: it may be damaged; restore it from a backup)"
+        )
     return ""
 
 
-class Executor(str, Enum):
+class Executor(StrEnum):
     local = "local"
     shards = "shards"
     dask = "dask"
@@ -136,9 +158,21 @@ def _stage_line(name: str, seconds: float, text: str) -> None:
 
 
 def _print_summary(summary: dict, out: Path) -> None:
-    table = Table(title=f"Period {summary['period']}: rows per source (files ingested for this period)",
-                  title_justify="left")
-    cols = ("files", "read", "accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending", "held_back")
+    table = Table(
+        title=f"Period {summary['period']}: rows per source (files ingested for this period)",
+        title_justify="left",
+    )
+    cols = (
+        "files",
+        "read",
+        "accepted",
+        "rejected",
+        "superseded",
+        "duplicate",
+        "withdrawn",
+        "pending",
+        "held_back",
+    )
     table.add_column("source")
     for c in cols:
         table.add_column(c.replace("_", " "), justify="right")
@@ -149,8 +183,13 @@ def _print_summary(summary: dict, out: Path) -> None:
     console.print(table)
     totals = summary.get("warehouse_sources") or {}
     if totals:
-        console.print("  warehouse totals, all periods (not this period's): " + "; ".join(
-            f"{s} read {c.get('read', 0):,}, accepted {c.get('accepted', 0):,}" for s, c in totals.items()))
+        console.print(
+            "  warehouse totals, all periods (not this period's): "
+            + "; ".join(
+                f"{s} read {c.get('read', 0):,}, accepted {c.get('accepted', 0):,}"
+                for s, c in totals.items()
+            )
+        )
     _print_period_checks(summary)
     console.print(f"  persons with results up to {summary['period']}: {summary['persons']:,}")
     h = summary.get("headline", {})
@@ -158,32 +197,41 @@ def _print_summary(summary: dict, out: Path) -> None:
         share = h.get("ckd_share_of_tested")
         console.print(
             f"  tested in the last 12 months: {h['persons_tested_12m']:,}; confirmed CKD: "
-            f"{h.get('persons_confirmed_ckd') or 0:,}" + (f" ({share:.1%} of tested)" if share is not None else "")
+            f"{h.get('persons_confirmed_ckd') or 0:,}"
+            + (f" ({share:.1%} of tested)" if share is not None else "")
         )
     if h.get("persons_with_diabetes") is not None:
         share = h.get("diabetes_share_with_both")
         console.print(
             f"  people with diabetes: {h['persons_with_diabetes']:,}; with both eGFR and ACR in 12 months: "
-            f"{h.get('diabetes_with_egfr_and_acr') or 0:,}" + (f" ({share:.1%})" if share is not None else "")
+            f"{h.get('diabetes_with_egfr_and_acr') or 0:,}"
+            + (f" ({share:.1%})" if share is not None else "")
         )
     if summary.get("indicators_lack"):
-        console.print("  [yellow]these indicators lack[/] " + ", ".join(summary["indicators_lack"])
-                      + " (see the notices above and below)")
+        console.print(
+            "  [yellow]these indicators lack[/] "
+            + ", ".join(summary["indicators_lack"])
+            + " (see the notices above and below)"
+        )
     for path, message in summary["held_back_files"].items():
         console.print(f"  [yellow]held back file[/] {path}: {message}")
     for source, message in summary["held_back_sources"].items():
         console.print(f"  [yellow]held back source[/] {source}: {message}")
     for table, message in summary.get("withheld_tables", {}).items():
         console.print(f"  [yellow]withheld table[/] {table} (disclosure audit): {message}")
-    for source, message in (summary.get("config_drift") or {}).items():
+    for message in (summary.get("config_drift") or {}).values():
         console.print(f"  [bold yellow]config changed[/] {message}", soft_wrap=True)
     for period, n in (summary.get("late_results") or {}).items():
-        console.print(f"  [yellow]late results[/] for published period {period}: {n:,} received now that would "
-                      f"change it if revised ('kidneysurv run --period {period} --revise \"...\"')")
+        console.print(
+            f"  [yellow]late results[/] for published period {period}: {n:,} received now that would "
+            f"change it if revised ('kidneysurv run --period {period} --revise \"...\"')"
+        )
     rev = summary.get("revision") or {}
     if rev.get("reason"):
-        console.print(f"  [yellow]revision {rev['number']}[/] of {summary['period']} (revision {rev['previous']} "
-                      f"kept in {out / summary['period'] / 'revisions' / str(rev['previous'])}/): {rev['reason']}")
+        console.print(
+            f"  [yellow]revision {rev['number']}[/] of {summary['period']} (revision {rev['previous']} "
+            f"kept in {out / summary['period'] / 'revisions' / str(rev['previous'])}/): {rev['reason']}"
+        )
     console.print(f"  warehouse: {out / 'surveillance.duckdb'}")
     console.print(f"  exports:   {out / summary['period']}/")
     if summary.get("demo_key"):
@@ -192,7 +240,8 @@ def _print_summary(summary: dict, out: Path) -> None:
 
 def _print_period_checks(summary: dict) -> None:
     """What the run says about its own period: missing sources, rows it cannot see, codes the
-    source configs do not map (pipeline/period_checks.py, pipeline/validate.py)."""
+    source configs do not map (pipeline/period_checks.py, pipeline/validate.py).
+    """
     hold = summary.get("missing_sources_policy") == "hold"
     for source, message in (summary.get("missing_sources") or {}).items():
         word = "[red]missing source (holds the period)[/]" if hold else "[yellow]missing source[/]"
@@ -202,13 +251,17 @@ def _print_period_checks(summary: dict) -> None:
     for source, fields in (summary.get("unmapped_codes") or {}).items():
         for field_name, info in fields.items():
             values = escape(", ".join(f"{v!r} x{n:,}" for v, n in list(info["values"].items())[:8]))
-            console.print(f"  [yellow]unmapped {field_name}[/] {source}: {info['rows']:,} rows ({values}); "
-                          f"map them under '{info['config_key']}' in config/sources/{source}.yaml", soft_wrap=True)
+            console.print(
+                f"  [yellow]unmapped {field_name}[/] {source}: {info['rows']:,} rows ({values}); "
+                f"map them under '{info['config_key']}' in config/sources/{source}.yaml",
+                soft_wrap=True,
+            )
 
 
 def _check_key_before_start(out: Path, demo: bool) -> None:
     """The key's strength, and whether it is the warehouse's (before Prefect starts, so a wrong
-    key costs nothing); the flow checks again inside the run's transaction."""
+    key costs nothing); the flow checks again inside the run's transaction.
+    """
     import duckdb
 
     from pipeline.pseudonymise import verify_warehouse_key
@@ -223,16 +276,26 @@ def _check_key_before_start(out: Path, demo: bool) -> None:
     except duckdb.Error:
         return  # in use or not ours: the run itself checks, under the lock
     try:
-        present = con.execute("select count(*) from duckdb_tables() where table_name = 'key_check' "
-                              "and schema_name = 'main'").fetchall()[0][0]
+        present = con.execute(
+            "select count(*) from duckdb_tables() where table_name = 'key_check' "
+            "and schema_name = 'main'"
+        ).fetchall()[0][0]
         if present and con.execute("select count(*) from key_check").fetchall()[0][0]:
             verify_warehouse_key(con, key)
     finally:
         con.close()
 
 
-def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose: bool,
-         executor: str | None = None, revise: str | None = None) -> int:
+def _run(
+    period: str,
+    config: Path,
+    inbox: Path,
+    out: Path,
+    demo: bool,
+    verbose: bool,
+    executor: str | None = None,
+    revise: str | None = None,
+) -> int:
     from pipeline.revisions import RevisionNeeded
 
     try:
@@ -262,16 +325,25 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
 
                 for name in ("prefect.flow_runs", "prefect.task_runs"):
                     logging.getLogger(name).setLevel(logging.CRITICAL)
-            if not os.environ.get("PREFECT_API_URL"):  # Prefect's temporary server: ended if this run is killed
+            if not os.environ.get(
+                "PREFECT_API_URL"
+            ):  # Prefect's temporary server: ended if this run is killed
                 from pipeline import reaper
 
                 reaper.watch()
-            console.print(f"kidneysurv: monthly run for {period} ({len(settings.sources)} sources, inbox {inbox})")
+            console.print(
+                f"kidneysurv: monthly run for {period} ({len(settings.sources)} sources, inbox {inbox})"
+            )
             started = time.perf_counter()
             try:
                 summary = flows.monthly_surveillance(
-                    period=period, config_dir=str(config), inbox=str(inbox), out=str(out), demo=demo,
-                    executor=executor, revise=revise,
+                    period=period,
+                    config_dir=str(config),
+                    inbox=str(inbox),
+                    out=str(out),
+                    demo=demo,
+                    executor=executor,
+                    revise=revise,
                 )
             except KeyMissing as exc:
                 _fail(str(exc))
@@ -281,8 +353,12 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
                 _fail(summary["revision_refused"])
             console.print(f"  {'total':<10} {time.perf_counter() - started:6.1f} s (with Prefect)")
             _print_summary(summary, out)
-            held = (summary["held_back_sources"] or summary["held_back_files"] or summary.get("config_drift")
-                    or summary.get("withheld_tables"))
+            held = (
+                summary["held_back_sources"]
+                or summary["held_back_files"]
+                or summary.get("config_drift")
+                or summary.get("withheld_tables")
+            )
             return max(int(summary.get("exit_code") or 0), EXIT_HELD_BACK if held else EXIT_OK)
     except RunLocked as exc:
         err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
@@ -295,24 +371,52 @@ def _run(period: str, config: Path, inbox: Path, out: Path, demo: bool, verbose:
 
 @app.command()
 def run(
-    period: Annotated[str, typer.Option(help="Month to publish, YYYY-MM (indicators as of its last day).")],
+    period: Annotated[
+        str, typer.Option(help="Month to publish, YYYY-MM (indicators as of its last day).")
+    ],
     config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
-    inbox: Annotated[Path, typer.Option(help="Inbox folder with one subfolder per source.")] = Path("sample_extracts"),
+    inbox: Annotated[Path, typer.Option(help="Inbox folder with one subfolder per source.")] = Path(
+        "sample_extracts"
+    ),
     out: Annotated[Path, typer.Option(help="Output folder: warehouse and exports.")] = Path("out"),
-    verbose: Annotated[bool, typer.Option("--verbose", help="Show Prefect's own log lines.")] = False,
-    executor: Annotated[Optional[Executor], typer.Option(help="Person-level work: local, shards or dask (default: config).")] = None,
-    revise: Annotated[Optional[str], typer.Option("--revise", metavar="REASON", help="Publish a revision of an already published period, with the reason shown in its report.")] = None,
+    verbose: Annotated[
+        bool, typer.Option("--verbose", help="Show Prefect's own log lines.")
+    ] = False,
+    executor: Annotated[
+        Executor | None,
+        typer.Option(help="Person-level work: local, shards or dask (default: config)."),
+    ] = None,
+    revise: Annotated[
+        str | None,
+        typer.Option(
+            "--revise",
+            metavar="REASON",
+            help="Publish a revision of an already published period, with the reason shown in its report.",
+        ),
+    ] = None,
 ) -> None:
     """Ingest what is new in the inbox and publish the indicators for one month."""
-    raise typer.Exit(_run(period, config, inbox, out, demo=False, verbose=verbose,
-                          executor=executor.value if executor else None, revise=revise))
+    raise typer.Exit(
+        _run(
+            period,
+            config,
+            inbox,
+            out,
+            demo=False,
+            verbose=verbose,
+            executor=executor.value if executor else None,
+            revise=revise,
+        )
+    )
 
 
 @app.command()
 def demo(
     out: Annotated[Path, typer.Option(help="Output folder.")] = Path("out"),
     config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
-    verbose: Annotated[bool, typer.Option("--verbose", help="Show Prefect's own log lines.")] = False,
+    verbose: Annotated[
+        bool, typer.Option("--verbose", help="Show Prefect's own log lines.")
+    ] = False,
 ) -> None:
     """Run the latest complete month of the shipped sample extracts (public demo key)."""
     try:
@@ -331,10 +435,23 @@ def backfill(
     config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
     inbox: Annotated[Path, typer.Option(help="Inbox folder.")] = Path("sample_extracts"),
     out: Annotated[Path, typer.Option(help="Output folder.")] = Path("out"),
-    force: Annotated[bool, typer.Option("--force", help="Run months already published again.")] = False,
-    revise: Annotated[Optional[str], typer.Option("--revise", metavar="REASON", help="With --force: publish a revision where a month's figures change.")] = None,
-    demo_key: Annotated[bool, typer.Option("--demo-key", help="Use the public demo key (samples only).")] = False,
-    verbose: Annotated[bool, typer.Option("--verbose", help="Show Prefect's own log lines.")] = False,
+    force: Annotated[
+        bool, typer.Option("--force", help="Run months already published again.")
+    ] = False,
+    revise: Annotated[
+        str | None,
+        typer.Option(
+            "--revise",
+            metavar="REASON",
+            help="With --force: publish a revision where a month's figures change.",
+        ),
+    ] = None,
+    demo_key: Annotated[
+        bool, typer.Option("--demo-key", help="Use the public demo key (samples only).")
+    ] = False,
+    verbose: Annotated[
+        bool, typer.Option("--verbose", help="Show Prefect's own log lines.")
+    ] = False,
 ) -> None:
     """Run a range of months in order, skipping those already published (unless --force)."""
     from pipeline.backfill import months_to_run
@@ -360,7 +477,9 @@ def backfill(
     worst = EXIT_OK
     for i, (period, skip) in enumerate(plan, start=1):
         if skip:
-            console.print(f"[{i}/{len(plan)}] {period}: already published, skipped (--force runs it again)")
+            console.print(
+                f"[{i}/{len(plan)}] {period}: already published, skipped (--force runs it again)"
+            )
             continue
         console.print(f"[{i}/{len(plan)}] {period}")
         code = _run(period.label, config, inbox, out, demo=demo_key, verbose=verbose, revise=revise)
@@ -371,17 +490,32 @@ def backfill(
 @app.command()
 def reprocess(
     source_id: Annotated[str, typer.Argument(help="Source id, as in config/sources/<id>.yaml.")],
-    from_month: Annotated[Optional[str], typer.Option("--from-month", metavar="YYYY-MM", help="Only the files of extract months from this one on.")] = None,
-    file: Annotated[Optional[str], typer.Option("--file", help="Only this file (path in the inbox).")] = None,
-    apply: Annotated[bool, typer.Option("--apply", help="Apply it (default: a dry run that shows the difference).")] = False,
+    from_month: Annotated[
+        str | None,
+        typer.Option(
+            "--from-month",
+            metavar="YYYY-MM",
+            help="Only the files of extract months from this one on.",
+        ),
+    ] = None,
+    file: Annotated[
+        str | None, typer.Option("--file", help="Only this file (path in the inbox).")
+    ] = None,
+    apply: Annotated[
+        bool,
+        typer.Option("--apply", help="Apply it (default: a dry run that shows the difference)."),
+    ] = False,
     config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
     inbox: Annotated[Path, typer.Option(help="Inbox folder.")] = Path("sample_extracts"),
     out: Annotated[Path, typer.Option(help="Output folder: warehouse and exports.")] = Path("out"),
-    demo_key: Annotated[bool, typer.Option("--demo-key", help="Use the public demo key (samples only).")] = False,
+    demo_key: Annotated[
+        bool, typer.Option("--demo-key", help="Use the public demo key (samples only).")
+    ] = False,
 ) -> None:
     """Read a source's stored files again under its current config and replace what they gave
     (old rows kept as superseded versions). A dry run unless --apply; publish the periods it
-    changes with 'run --period P --revise REASON'."""
+    changes with 'run --period P --revise REASON'.
+    """
     from pipeline.reprocess import ReprocessRefused, reprocess_source
 
     try:
@@ -391,16 +525,26 @@ def reprocess(
     except (ValueError, ConfigError) as exc:
         _fail(str(exc))
     try:
-        r = reprocess_source(config, inbox, out, source_id, from_month=from_month, file=file, apply=apply,
-                             demo=demo_key)
+        r = reprocess_source(
+            config,
+            inbox,
+            out,
+            source_id,
+            from_month=from_month,
+            file=file,
+            apply=apply,
+            demo=demo_key,
+        )
     except (ReprocessRefused, KeyMissing) as exc:
         _fail(str(exc))
     except RunLocked as exc:
         err.print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
         raise typer.Exit(EXIT_LOCKED) from None
     if r.skipped_current:
-        console.print(f"{len(r.skipped_current)} file(s) of {source_id} already made under the current config "
-                      f"({r.config_after[:12]}): left as they are")
+        console.print(
+            f"{len(r.skipped_current)} file(s) of {source_id} already made under the current config "
+            f"({r.config_after[:12]}): left as they are"
+        )
     if not r.files:
         console.print(f"{source_id}: nothing to reprocess")
         raise typer.Exit(EXIT_OK)
@@ -419,9 +563,11 @@ def reprocess(
         changes = ", ".join(f"{k} {b:,} -> {a:,}" for k, (b, a) in pairs.items() if a != b)
         console.print(f"  other source {other}: {changes}")
     if r.periods:
-        console.print(f"  published periods it reaches: {', '.join(r.periods)}; "
-                      + ("publish each with" if r.applied else "after --apply, publish each with")
-                      + " 'kidneysurv run --period P --revise \"reason\"'")
+        console.print(
+            f"  published periods it reaches: {', '.join(r.periods)}; "
+            + ("publish each with" if r.applied else "after --apply, publish each with")
+            + " 'kidneysurv run --period P --revise \"reason\"'"
+        )
     raise typer.Exit(EXIT_OK)
 
 
@@ -432,7 +578,8 @@ def schedule(
     out: Annotated[Path, typer.Option(help="Output folder.")] = Path("out"),
 ) -> None:
     """Serve the monthly run on its cron schedule (config/pipeline.yaml, schedule) against the
-    Prefect server in PREFECT_API_URL; runs are listed in the Prefect UI. Ctrl-C stops it."""
+    Prefect server in PREFECT_API_URL; runs are listed in the Prefect UI. Ctrl-C stops it.
+    """
     import os
 
     from pipeline.schedule import serve
@@ -443,23 +590,34 @@ def schedule(
     except (ConfigError, KeyMissing) as exc:
         _fail(str(exc))
     if not os.environ.get("PREFECT_API_URL"):
-        _fail("set PREFECT_API_URL to a running Prefect server (start one with 'prefect server "
-              "start'; it prints the URL); a temporary server never fires schedules")
+        _fail(
+            "set PREFECT_API_URL to a running Prefect server (start one with 'prefect server "
+            "start'; it prints the URL); a temporary server never fires schedules"
+        )
     from pipeline import prefect_env
 
     prefect_env.configure()
     s = settings.pipeline.schedule
-    console.print(f"serving monthly_surveillance/monthly: cron '{s.cron}' ({s.timezone}), previous month each time")
+    console.print(
+        f"serving monthly_surveillance/monthly: cron '{s.cron}' ({s.timezone}), previous month each time"
+    )
     serve(settings, config, inbox, out)
 
 
 @sources_app.command("check")
 def sources_check(
     source_id: Annotated[str, typer.Argument(help="Source id, as in config/sources/<id>.yaml.")],
-    file: Annotated[Path, typer.Argument(help="An extract file (for FHIR: the Observation.ndjson).")],
+    file: Annotated[
+        Path, typer.Argument(help="An extract file (for FHIR: the Observation.ndjson).")
+    ],
     config: Annotated[Path, typer.Option(help="Config folder.")] = Path("config"),
     examples: Annotated[int, typer.Option(help="Examples shown per reason.")] = 3,
-    period: Annotated[str | None, typer.Option(help="Month the file would be run in, YYYY-MM (default: the month in its name).")] = None,
+    period: Annotated[
+        str | None,
+        typer.Option(
+            help="Month the file would be run in, YYYY-MM (default: the month in its name)."
+        ),
+    ] = None,
 ) -> None:
     """Show what a file would give: rows per outcome and reason, with file:line examples, code
     values the source config does not map, and the rows the period would not count.
@@ -481,7 +639,10 @@ def sources_check(
     try:
         report = check_file(settings, source_id, file, period)
     except OSError as exc:
-        err.print(f"[bold red]file held back:[/] {file}: cannot be read ({exc.strerror or exc})", soft_wrap=True)
+        err.print(
+            f"[bold red]file held back:[/] {file}: cannot be read ({exc.strerror or exc})",
+            soft_wrap=True,
+        )
         raise typer.Exit(EXIT_HELD_BACK) from None
     if report.fault:
         err.print(f"[bold red]file held back:[/] {report.fault}", soft_wrap=True)
@@ -492,23 +653,33 @@ def sources_check(
     for reason, (n, lines) in report.reasons.items():
         hint = ""
         if reason in ("invalid_date", "future_date"):
-            hint = (f" (date_format in config/sources/{source_id}.yaml: '{source.date_format}')" if source.date_format
-                    else f" (no date_format in config/sources/{source_id}.yaml: ISO 8601, YYYY-MM-DD, expected)")
+            hint = (
+                f" (date_format in config/sources/{source_id}.yaml: '{source.date_format}')"
+                if source.date_format
+                else f" (no date_format in config/sources/{source_id}.yaml: ISO 8601, YYYY-MM-DD, expected)"
+            )
         console.print(f"  rejected {reason}: {n:,}{hint}", soft_wrap=True)
         for line_no, message in lines[:examples]:
             console.print(f"      {file}:{line_no}: {message}", soft_wrap=True)
     for name, info in report.unmapped.items():
         values = escape(", ".join(f"{v!r} x{n:,}" for v, n in list(info["values"].items())[:8]))
-        console.print(f"  unmapped {name}: {info['rows']:,} rows ({values}); map them under "
-                      f"'{info['config_key']}' in config/sources/{source_id}.yaml", soft_wrap=True)
+        console.print(
+            f"  unmapped {name}: {info['rows']:,} rows ({values}); map them under "
+            f"'{info['config_key']}' in config/sources/{source_id}.yaml",
+            soft_wrap=True,
+        )
     n_out, lines_out = report.outside_period
     if report.period is None:
-        console.print("  period: no month in the file name and no --period: rows outside a period not checked")
+        console.print(
+            "  period: no month in the file name and no --period: rows outside a period not checked"
+        )
     elif n_out:
         where = ", ".join(str(n) for n in lines_out) + (", ..." if n_out > len(lines_out) else "")
-        console.print(f"  outside {report.period}: {n_out:,} accepted rows collected or reported after "
-                      f"{Period.parse(report.period).end.isoformat()} would not count in it (lines {where})",
-                      soft_wrap=True)
+        console.print(
+            f"  outside {report.period}: {n_out:,} accepted rows collected or reported after "
+            f"{Period.parse(report.period).end.isoformat()} would not count in it (lines {where})",
+            soft_wrap=True,
+        )
     for reason in report.would_hold:
         console.print(f"  [bold red]would be held back:[/] {reason}", soft_wrap=True)
     raise typer.Exit(EXIT_HELD_BACK if report.would_hold or report.unmapped else EXIT_OK)
@@ -543,8 +714,12 @@ def _print_version(value: bool) -> None:
 
 @app.callback()
 def _main(
-    show_version: Annotated[bool, typer.Option("--version", callback=_print_version, is_eager=True,
-                                               help="Print the version and exit.")] = False,
+    show_version: Annotated[
+        bool,
+        typer.Option(
+            "--version", callback=_print_version, is_eager=True, help="Print the version and exit."
+        ),
+    ] = False,
 ) -> None:
     """Population kidney surveillance from monthly lab extracts."""
 

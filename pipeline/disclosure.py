@@ -134,7 +134,8 @@ class DisclosureError(ValueError):
 @dataclass(frozen=True)
 class Partition:
     """Rows of a table (those whose columns hold the values in ``where``) that add up, per value
-    of :attr:`TotalsFrom.join`, to the count ``total`` of the other table's total row."""
+    of :attr:`TotalsFrom.join`, to the count ``total`` of the other table's total row.
+    """
 
     column: str  # the count of this table
     total: str  # the count of the other table the rows add up to
@@ -156,7 +157,8 @@ class TotalsFrom:
 @dataclass(frozen=True)
 class Standardised:
     """Directly standardised rates on total rows, functions of the broad-age-group counts of the
-    cells below (``group``: the cell's group, null for a cell outside the rate)."""
+    cells below (``group``: the cell's group, null for a cell outside the rate).
+    """
 
     count: str
     group: str
@@ -187,7 +189,9 @@ class PublishedTable:
     #: of them. After the joint audit the figures of a row are blanked again wherever the other
     #: table's final rows blank one of ``follows`` (:func:`follow_final_blanks`).
     hidden: tuple[str, ...] = ()
-    follows: tuple[str, tuple[str, ...], tuple[str, ...]] | None = None  # (table, its counts, our columns)
+    follows: tuple[str, tuple[str, ...], tuple[str, ...]] | None = (
+        None  # (table, its counts, our columns)
+    )
 
 
 PUBLISHED_TABLES = (
@@ -319,12 +323,17 @@ class _Group:
     cells: list[int]  # row indices of the rows it adds up
 
 
-def _hierarchy(frame: pl.DataFrame, table: PublishedTable) -> tuple[list[int], list[_Group], list[int]]:
+def _hierarchy(
+    frame: pl.DataFrame, table: PublishedTable
+) -> tuple[list[int], list[_Group], list[int]]:
     """Row order (by key), the sum groups, and each row's parent (-1: none)."""
     level_cols = [c for level in table.levels for c in level]
     outer = [k for k in table.keys if k not in level_cols]
     key_rows = frame.select(list(table.keys)).rows()
-    order = sorted(range(frame.height), key=lambda i: (tuple("" if v is None else str(v) for v in key_rows[i]), i))
+    order = sorted(
+        range(frame.height),
+        key=lambda i: (tuple("" if v is None else str(v) for v in key_rows[i]), i),
+    )
     parent = [-1] * frame.height
     if not table.levels:
         return order, [], parent
@@ -338,7 +347,8 @@ def _hierarchy(frame: pl.DataFrame, table: PublishedTable) -> tuple[list[int], l
                 specific = False
             elif any(marks) or not specific:
                 raise DisclosureError(
-                    f"{table.name}: row {dict(row)} is not a cell or a total of the hierarchy {table.levels}")
+                    f"{table.name}: row {dict(row)} is not a cell or a total of the hierarchy {table.levels}"
+                )
             else:
                 depth += 1
         path = (tuple(row[c] for c in outer),
@@ -392,12 +402,15 @@ def _propagate(lo: list[float], hi: list[float], groups: list[_Group]) -> None:
                     hi[c], changed = new_hi, True
         if not changed:
             return
-    raise DisclosureError("bounds did not settle")  # pragma: no cover - a tree settles in a few sweeps
+    raise DisclosureError(
+        "bounds did not settle"
+    )  # pragma: no cover - a tree settles in a few sweeps
 
 
 def _is_hierarchy(groups: list[_Group], among: set[int] | None = None) -> bool:
     """Every variable (of ``among``) is a cell of one group at most and the total of one at most:
-    nested sums, for which propagation gives the exact range."""
+    nested sums, for which propagation gives the exact range.
+    """
     as_cell: set[int] = set()
     as_total: set[int] = set()
     for g in groups:
@@ -419,7 +432,8 @@ def _exactly_pinned(lo: list[float], hi: list[float], groups: list[_Group], targ
     bounds ``lo``/``hi`` (a variable with lo == hi is known) and ``truth``, the actual counts (a
     feasible point). Only the parts of the system that are not nested sums are solved
     (propagation is exact on those that are). On a network of sums the linear programming range
-    is the integer range (total unimodularity)."""
+    is the integer range (total unimodularity).
+    """
     unknown = {v for g in groups for v in (g.total, *g.cells) if lo[v] < hi[v]}
     wanted = [t for t in targets if t in unknown]
     if not wanted:
@@ -445,7 +459,9 @@ def _exactly_pinned(lo: list[float], hi: list[float], groups: list[_Group], targ
     pinned = []
     for variables in components.values():
         targets_here = [t for t in wanted if t in variables]
-        touching = [g for g in live if (g.total in variables) or any(c in variables for c in g.cells)]
+        touching = [
+            g for g in live if (g.total in variables) or any(c in variables for c in g.cells)
+        ]
         if not targets_here or _is_hierarchy(touching, variables):
             continue
         pinned += _linear_ranges(lo, hi, touching, sorted(variables), targets_here, truth)
@@ -456,7 +472,8 @@ def _linear_ranges(lo: list[float], hi: list[float], groups: list[_Group], varia
                    targets: list[int], truth: list) -> list[int]:  # fmt: skip
     """The targets a linear program pins. The actual counts are one feasible point, so any
     solution that moves a target away from its count shows that target is not pinned: two
-    solves over all targets (least and greatest sum) settle most of them, the rest one by one."""
+    solves over all targets (least and greatest sum) settle most of them, the rest one by one.
+    """
     index = {v: j for j, v in enumerate(variables)}
     a_eq = np.zeros((len(groups), len(variables)))
     b_eq = np.zeros(len(groups))
@@ -467,7 +484,11 @@ def _linear_ranges(lo: list[float], hi: list[float], groups: list[_Group], varia
             else:
                 b_eq[i] -= sign * lo[v]
     bounds = [(lo[v], None if hi[v] == _INF else hi[v]) for v in variables]
-    cap = 2.0 * max([float(truth[v]) for v in variables] + [hi[v] for v in variables if hi[v] != _INF]) + 1.0
+    cap = (
+        2.0
+        * max([float(truth[v]) for v in variables] + [hi[v] for v in variables if hi[v] != _INF])
+        + 1.0
+    )
     capped = [(low, cap if high is None else high) for low, high in bounds]
     open_ = set(targets)
 
@@ -476,7 +497,9 @@ def _linear_ranges(lo: list[float], hi: list[float], groups: list[_Group], varia
         if result.status not in (0, 3):  # 3: unbounded (only when maximising)
             raise DisclosureError(f"the published sums are inconsistent ({result.message})")
         if result.status == 0:
-            open_.difference_update(t for t in list(open_) if abs(result.x[index[t]] - truth[t]) > 1e-6)
+            open_.difference_update(
+                t for t in list(open_) if abs(result.x[index[t]] - truth[t]) > 1e-6
+            )
         return result
 
     for sign in (1.0, -1.0):  # least, then greatest, sum of the open targets
@@ -513,7 +536,8 @@ class _Table:
 
     Variables 0 .. n-1 are the frame's rows; a table whose sums end in another table's totals
     (:class:`TotalsFrom`) has those totals as further variables, known or bounded as the other
-    table publishes them, never blanked here."""
+    table publishes them, never blanked here.
+    """
 
     def __init__(self, frame: pl.DataFrame, table: PublishedTable, rules: DisclosureSettings,
                  others: Mapping[str, _Disclosed] | None = None):  # fmt: skip
@@ -528,9 +552,13 @@ class _Table:
             for c, values in self.values.items()
         }  # fmt: skip
         self.groups = {c: list(groups) for c in table.counts}
-        self.outside: dict[str, list[tuple[float, float]]] = {c: [] for c in table.counts}  # bounds of the totals
+        self.outside: dict[str, list[tuple[float, float]]] = {
+            c: [] for c in table.counts
+        }  # bounds of the totals
         self.copied: dict[str, list] = {}  # copied column -> its published value per row
-        self.partitions: list[tuple[str, tuple, set[int], bool]] = []  # column, join key, rows, total blanked
+        self.partitions: list[
+            tuple[str, tuple, set[int], bool]
+        ] = []  # column, join key, rows, total blanked
         self.copied_blank: dict[str, list[bool]] = {}
         if table.totals is not None:
             self._link(frame, table.totals, others or {})
@@ -546,30 +574,45 @@ class _Table:
 
     # ------------------------------------------------------------------ totals in another table
 
-    def _link(self, frame: pl.DataFrame, spec: TotalsFrom, others: Mapping[str, _Disclosed]) -> None:
+    def _link(
+        self, frame: pl.DataFrame, spec: TotalsFrom, others: Mapping[str, _Disclosed]
+    ) -> None:
         other = others.get(spec.table)
         if other is None:
-            raise DisclosureError(f"{self.table.name}: {spec.table} must be disclosed first (its totals are used)")
+            raise DisclosureError(
+                f"{self.table.name}: {spec.table} must be disclosed first (its totals are used)"
+            )
         marks = [(other.source[k] == v).to_list() for k, v in spec.row.items()]
         total_row = {key: i for i, key in enumerate(other.source.select(list(spec.join)).rows())
                      if all(m[i] for m in marks)}  # fmt: skip
         keys = frame.select(list(spec.join)).rows()
         rows_of = [total_row.get(k) for k in keys]
-        missing = sorted({k for k, r in zip(keys, rows_of) if r is None}, key=str)
+        missing = sorted({k for k, r in zip(keys, rows_of, strict=False) if r is None}, key=str)
         if missing:
-            raise DisclosureError(f"{self.table.name}: no total row in {spec.table} for {missing[:3]}")
+            raise DisclosureError(
+                f"{self.table.name}: no total row in {spec.table} for {missing[:3]}"
+            )
         for column in spec.copied:
             internal, published = other.source[column].to_list(), other.frame[column].to_list()
             here = frame[column].to_list()
-            if any(h != internal[r] for h, r in zip(here, rows_of)):
-                raise DisclosureError(f"{self.table.name}.{column} differs from {spec.table}.{column}")
+            if any(h != internal[r] for h, r in zip(here, rows_of, strict=False)):
+                raise DisclosureError(
+                    f"{self.table.name}.{column} differs from {spec.table}.{column}"
+                )
             self.copied[column] = [published[r] for r in rows_of]
-            self.copied_blank[column] = [published[r] is None and internal[r] is not None for r in rows_of]
+            self.copied_blank[column] = [
+                published[r] is None and internal[r] is not None for r in rows_of
+            ]
         bounds = {}
         variable: dict[tuple[str, str, int], int] = {}
-        partitions: list[tuple[str, tuple, set[int], bool]] = []  # column, join key, rows, total blanked
+        partitions: list[
+            tuple[str, tuple, set[int], bool]
+        ] = []  # column, join key, rows, total blanked
         for part in spec.partitions:
-            inside = [all(frame[k][r] in allowed for k, allowed in part.where.items()) for r in range(self.n)]
+            inside = [
+                all(frame[k][r] in allowed for k, allowed in part.where.items())
+                for r in range(self.n)
+            ]
             members: dict[tuple, list[int]] = {}
             for r in range(self.n):
                 if inside[r]:
@@ -589,17 +632,27 @@ class _Table:
                     variable[name] = self._outside_variable(part.column, total, other.state.status[part.total][o_row],
                                                             (low[o_row], high[o_row]))  # fmt: skip
                 self.groups[part.column].append(_Group(variable[name], cells))
-                partitions.append((part.column, key, set(cells), other.state.blanked(part.total, o_row)))
+                partitions.append(
+                    (part.column, key, set(cells), other.state.blanked(part.total, o_row))
+                )
         self.partitions = partitions
         # sums among those totals in the other table (the districts' totals add up to 'ALL')
         for column, o_column in sorted({(c, oc) for c, oc, _ in variable}):
-            mapped = {o_row: var for (c, oc, o_row), var in variable.items() if (c, oc) == (column, o_column)}
+            mapped = {
+                o_row: var
+                for (c, oc, o_row), var in variable.items()
+                if (c, oc) == (column, o_column)
+            }
             for g in other.state.groups[o_column]:
                 if g.total in mapped and all(c in mapped for c in g.cells):
-                    self.groups[column].append(_Group(mapped[g.total], [mapped[c] for c in g.cells]))
+                    self.groups[column].append(
+                        _Group(mapped[g.total], [mapped[c] for c in g.cells])
+                    )
         self._withhold(partitions)
 
-    def _outside_variable(self, column: str, value: int, status: str, bounds: tuple[float, float]) -> int:
+    def _outside_variable(
+        self, column: str, value: int, status: str, bounds: tuple[float, float]
+    ) -> int:
         self.values[column].append(value)
         self.status[column].append(status)
         self.outside[column].append(bounds)
@@ -607,7 +660,8 @@ class _Table:
 
     def _withhold(self, partitions: list[tuple[str, tuple, set[int], bool]]) -> None:
         """Blank every row of a partition whose total is blanked in the other table, and of every
-        partition sharing a row with it (G1 + G2 + unknown would give persons_ckd_g3_g5 back)."""
+        partition sharing a row with it (G1 + G2 + unknown would give persons_ckd_g3_g5 back).
+        """
         by_key: dict[tuple, list[tuple[set[int], bool]]] = {}
         for column, key, rows, blanked in partitions:
             by_key.setdefault((column, key), []).append((rows, blanked))
@@ -616,7 +670,8 @@ class _Table:
 
     def _hide(self, column: str, parts: list[tuple[set[int], bool]], hidden: set[int]) -> bool:
         """Withhold ``hidden`` and the partitions marked blanked, and every partition sharing a
-        row with those (transitively); True if a row was newly withheld."""
+        row with those (transitively); True if a row was newly withheld.
+        """
         grow = True
         while grow:
             grow = False
@@ -634,7 +689,8 @@ class _Table:
     def withhold_around(self, column: str, row: int) -> bool:
         """Withhold the partitions holding ``row`` (a cell pinned by sums that blanking more
         published counts cannot open, e.g. G1 + G2 + unknown = persons_ckd - persons_ckd_g3_g5
-        with a published zero among them); True if anything changed."""
+        with a published zero among them); True if anything changed.
+        """
         parts = [(rows, False) for c, _, rows, _ in self.partitions if c == column]
         mine = [rows for rows, _ in parts if row in rows]
         if not mine:
@@ -659,7 +715,9 @@ class _Table:
     def initial_bounds(self, column: str) -> tuple[list[float], list[float]]:
         """What a reader of the published table knows of each count from the count itself."""
         rules, lo, hi = self.rules, [], []
-        for row, (value, state) in enumerate(zip(self.values[column][: self.n], self.status[column])):
+        for row, (value, state) in enumerate(
+            zip(self.values[column][: self.n], self.status[column], strict=False)
+        ):
             if state == _PUBLISHED:
                 lo.append(float(value))
                 hi.append(float(value))
@@ -675,7 +733,10 @@ class _Table:
                 if flag == SECONDARY:
                     low = float(rules.suppress_max + 1)  # blanked only to protect: above the band
                 elif flag == PRIMARY and self.row_blanked(row) == 1:
-                    low, high = float(rules.suppress_min), float(rules.suppress_max)  # the small one
+                    low, high = (
+                        float(rules.suppress_min),
+                        float(rules.suppress_max),
+                    )  # the small one
                 lo.append(low)
                 hi.append(high)
         for low, high in self.outside[column]:
@@ -691,7 +752,8 @@ class _Table:
 
     def _guarded(self, column: str, row: int) -> bool:
         """A blanked count that must not be pinned: every one but a withheld zero (a zero is
-        published anyway; a withheld row is blanked for its total's sake)."""
+        published anyway; a withheld row is blanked for its total's sake).
+        """
         withheld_zero = self.status[column][row] == WITHHELD and self.values[column][row] == 0
         return self.blanked(column, row) and not withheld_zero
 
@@ -699,13 +761,20 @@ class _Table:
         lo, hi = self.bounds(column)
         rows = [r for r in range(self.n) if self._guarded(column, r) and lo[r] >= hi[r]]
         if not rows and exact and not self.nested[column]:
-            rows = _exactly_pinned(lo, hi, self.groups[column],
-                                   [r for r in range(self.n) if self._guarded(column, r)], self.values[column])
+            rows = _exactly_pinned(
+                lo,
+                hi,
+                self.groups[column],
+                [r for r in range(self.n) if self._guarded(column, r)],
+                self.values[column],
+            )
         return sorted(rows, key=lambda r: (self._depth(r), self.rank[r]))
 
     def _is_pinned(self, column: str, row: int) -> bool:
         lo, hi = self.bounds(column)
-        return lo[row] >= hi[row] or bool(_exactly_pinned(lo, hi, self.groups[column], [row], self.values[column]))
+        return lo[row] >= hi[row] or bool(
+            _exactly_pinned(lo, hi, self.groups[column], [row], self.values[column])
+        )
 
     def _depth(self, row: int) -> int:
         depth = 0
@@ -718,20 +787,27 @@ class _Table:
         key order. Only counts above the band are used (zeros never; counts below
         ``suppress_min``, when it is above 1, neither), so a secondary count is always above
         ``suppress_max``, which is what the 'secondary' mark tells a reader. Totals of another
-        table are never blanked here."""
+        table are never blanked here.
+        """
         values, status = self.values[column], self.status[column]
         floor = self.rules.suppress_max
-        usable = {r for r in rows if r != row and r < self.n and status[r] == _PUBLISHED and values[r] > floor}
+        usable = {
+            r
+            for r in rows
+            if r != row and r < self.n and status[r] == _PUBLISHED and values[r] > floor
+        }
         return sorted(usable, key=lambda r: (values[r], self.rank[r]))
 
     def _try(self, column: str, option: int, row: int, exact: bool) -> bool:
-        """Would blanking ``option`` alone free ``row``?"""
+        """Tell whether blanking ``option`` alone frees ``row``."""
         self.status[column][option] = SECONDARY
         freed = not self._is_pinned(column, row) if exact else row not in self.pinned(column)
         self.status[column][option] = _PUBLISHED
         return freed
 
-    def choose(self, column: str, row: int, exact: bool = False, withhold: bool = True) -> int | None:
+    def choose(
+        self, column: str, row: int, exact: bool = False, withhold: bool = True
+    ) -> int | None:
         """The count to blank next to protect the pinned ``row``.
 
         First the cells next to it in its groups and, for a total, the cells below it: the first
@@ -743,7 +819,11 @@ class _Table:
         as_cell = self.cells_of[column].get(row, [])
         as_total = self.totals_of[column].get(row, [])
         siblings = self._open(column, [c for g in as_cell for c in g.cells], row)
-        below = [r for r in self._open(column, [c for g in as_total for c in g.cells], row) if r not in siblings]
+        below = [
+            r
+            for r in self._open(column, [c for g in as_total for c in g.cells], row)
+            if r not in siblings
+        ]
         near = siblings + below
         for option in near[:_TRIES]:
             if self._try(column, option, row, exact):
@@ -757,7 +837,7 @@ class _Table:
         return anywhere[0] if anywhere else None
 
     def _freed_by_all(self, column: str, row: int) -> bool:
-        """Would blanking every count that may be blanked free ``row`` (checked exactly)?"""
+        """Tell whether blanking every count that may be blanked frees ``row`` (checked exactly)."""
         options = self._open(column, self.order, row)
         for option in options:
             self.status[column][option] = SECONDARY
@@ -794,7 +874,11 @@ class _Table:
                 # Blanking more next to it cannot help: blank every count of the column (a small
                 # region still gets its run); the joint audit then decides, and withholds the
                 # table with its reason if even that is not enough.
-                whole = [r for r in range(self.n) if self.status[column][r] == _PUBLISHED and self.values[column][r]]
+                whole = [
+                    r
+                    for r in range(self.n)
+                    if self.status[column][r] == _PUBLISHED and self.values[column][r]
+                ]
                 if not whole:
                     return changed
                 for r in whole:
@@ -820,7 +904,8 @@ def _standardised_flags(state: _Table, frame: pl.DataFrame, spec: Standardised) 
     """'' (publish), few_events or suppressed per row with a rate; None where there is none.
 
     Totals are decided deepest first (districts, then the region), each with the broad-group
-    counts of the rates already accepted taken as known (module docstring)."""
+    counts of the rates already accepted taken as known (module docstring).
+    """
     column, rules = spec.count, state.rules
     rate = frame[spec.rates[0]].to_list() if spec.rates[0] in frame.columns else [None] * state.n
     if spec.group in frame.columns:
@@ -887,7 +972,7 @@ def _standardised_flags(state: _Table, frame: pl.DataFrame, spec: Standardised) 
             flags[t] = FEW_EVENTS
             continue
         trial = []
-        for name, parts in sorted(sums_under(t).items()):
+        for _name, parts in sorted(sums_under(t).items()):
             if len(parts) == 1:
                 trial.append((parts[0], []))
             else:  # a higher total: its group sums are sums of its rows' group sums
@@ -901,7 +986,9 @@ def _standardised_flags(state: _Table, frame: pl.DataFrame, spec: Standardised) 
                 extra.append(_Group(var, parts))
         system = nested_groups + extra
         _propagate(t_lo, t_hi, system)
-        pinned = [r for r in blanked if t_lo[r] >= t_hi[r]] or _exactly_pinned(t_lo, t_hi, system, blanked, values)
+        pinned = [r for r in blanked if t_lo[r] >= t_hi[r]] or _exactly_pinned(
+            t_lo, t_hi, system, blanked, values
+        )
         if pinned:
             flags[t] = SUPPRESSED
         else:
@@ -934,9 +1021,12 @@ def suppress(frame: pl.DataFrame, table: PublishedTable, rules: DisclosureSettin
     return _disclose(frame, table, rules, done).frame
 
 
-def suppress_tables(frames: Mapping[str, pl.DataFrame], rules: DisclosureSettings) -> dict[str, pl.DataFrame]:
+def suppress_tables(
+    frames: Mapping[str, pl.DataFrame], rules: DisclosureSettings
+) -> dict[str, pl.DataFrame]:
     """Every published table given in ``frames`` (internal rows), in the order of
-    :data:`PUBLISHED_TABLES`, each using the tables disclosed before it."""
+    :data:`PUBLISHED_TABLES`, each using the tables disclosed before it.
+    """
     done: dict[str, _Disclosed] = {}
     for table in PUBLISHED_TABLES:
         if table.name in frames:
@@ -966,15 +1056,22 @@ def _disclose(frame: pl.DataFrame, table: PublishedTable, rules: DisclosureSetti
     if spec is not None and any(r in frame.columns for r in spec.rates):
         flags = pl.Series(spec.flag, _standardised_flags(state, frame, spec), dtype=pl.String)
         hide = flags.is_in([FEW_EVENTS, SUPPRESSED])
-        columns += [pl.when(hide).then(None).otherwise(pl.col(r)).alias(r) for r in spec.rates if r in frame.columns]
+        columns += [
+            pl.when(hide).then(None).otherwise(pl.col(r)).alias(r)
+            for r in spec.rates
+            if r in frame.columns
+        ]
         columns.append(flags)
     published = frame.with_columns(columns)
-    return _Disclosed(frame, published.drop([c for c in table.hidden if c in published.columns]), state)
+    return _Disclosed(
+        frame, published.drop([c for c in table.hidden if c in published.columns]), state
+    )
 
 
 def follow_final_blanks(frames: dict[str, pl.DataFrame]) -> dict[str, pl.DataFrame]:
     """Blank the figures of each table with ``follows`` wherever the other table's final
-    (audited) row blanks one of the named counts; a row the other table lacks is blanked too."""
+    (audited) row blanks one of the named counts; a row the other table lacks is blanked too.
+    """
     out = dict(frames)
     for table in PUBLISHED_TABLES:
         if table.follows is None or table.name not in out or table.totals is None:
@@ -982,16 +1079,29 @@ def follow_final_blanks(frames: dict[str, pl.DataFrame]) -> dict[str, pl.DataFra
         other, counts, ours = table.follows
         mine, keys = out[table.name], list(table.totals.join)
         if other in out and out[other].height:
-            blank = out[other].select(*keys, pl.any_horizontal([pl.col(c).is_null() for c in counts]).alias("_gone"))
-            gone = mine.select(keys).join(blank, on=keys, how="left", maintain_order="left")["_gone"].fill_null(True)
+            blank = out[other].select(
+                *keys, pl.any_horizontal([pl.col(c).is_null() for c in counts]).alias("_gone")
+            )
+            gone = (
+                mine.select(keys)
+                .join(blank, on=keys, how="left", maintain_order="left")["_gone"]
+                .fill_null(True)
+            )
         else:
             gone = pl.Series("_gone", [True] * mine.height)
         out[table.name] = mine.with_columns(
-            [pl.when(gone).then(None).otherwise(pl.col(c)).alias(c) for c in ours if c in mine.columns])
+            [
+                pl.when(gone).then(None).otherwise(pl.col(c)).alias(c)
+                for c in ours
+                if c in mine.columns
+            ]
+        )
     return out
 
 
-def _below(state: _Table, table: PublishedTable, blank: dict[str, pl.Series]) -> dict[str, pl.Series]:
+def _below(
+    state: _Table, table: PublishedTable, blank: dict[str, pl.Series]
+) -> dict[str, pl.Series]:
     """Per count column: the row's count or a count of a row below it is blanked."""
     out = {}
     for column in {s for srcs in table.group_rates.values() for s in srcs}:
@@ -1007,9 +1117,13 @@ def _below(state: _Table, table: PublishedTable, blank: dict[str, pl.Series]) ->
 
 
 def _exists(con: duckdb.DuckDBPyConnection, name: str) -> bool:
-    return con.execute(
-        "select count(*) from duckdb_tables() where schema_name = 'published' and table_name = ?", [name]
-    ).fetchall()[0][0] > 0
+    return (
+        con.execute(
+            "select count(*) from duckdb_tables() where schema_name = 'published' and table_name = ?",
+            [name],
+        ).fetchall()[0][0]
+        > 0
+    )
 
 
 def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, period: Period,
@@ -1020,7 +1134,8 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
     publishes is audited together (:mod:`pipeline.disclosure_audit`), which may blank more or
     withhold a table. ``summaries`` (SummarySettings) lets the audit check the standardised
     rates' integer splits. ``audit_out``, when given, receives ``withheld`` (table -> reason)
-    and ``notes``."""
+    and ``notes``.
+    """
     from pipeline.disclosure_audit import RateBasis, audit, table_from_frames
 
     counts: dict[str, int] = {}
@@ -1042,10 +1157,14 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
     for name in _published_names(con):  # tables published by another step: audited with the rest
         if name in declared or name in audited:
             continue
-        published = fetch_frame(con, f"select * from published.{name} where period = ?", [period.label])
+        published = fetch_frame(
+            con, f"select * from published.{name} where period = ?", [period.label]
+        )
         if published.height == 0:
             continue
-        audited[name] = table_from_frames(name, published, _internal_rows(con, name, published), None)
+        audited[name] = table_from_frames(
+            name, published, _internal_rows(con, name, published), None
+        )
     basis = None
     if summaries is not None and getattr(summaries, "standardisation_age_bands", None):
         from pipeline.statistics import collapse_weights
@@ -1058,7 +1177,9 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
     last = _previous_label(period)
     for name in audited:
         if _exists(con, name):
-            previous[name] = fetch_frame(con, f"select * from published.{name} where period = ?", [last])
+            previous[name] = fetch_frame(
+                con, f"select * from published.{name} where period = ?", [last]
+            )
     result = audit(audited, rules, basis, previous)
     for name, published in follow_final_blanks(result.frames).items():
         if not _exists(con, name):
@@ -1076,10 +1197,13 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
     return counts
 
 
-def audit_frames(frames: Mapping[str, pl.DataFrame], rules: DisclosureSettings, basis: object | None = None):
+def audit_frames(
+    frames: Mapping[str, pl.DataFrame], rules: DisclosureSettings, basis: object | None = None
+):
     """The publishable frames of internal ``frames`` (one period): each table protected on its
     own, then all of them audited together (:func:`pipeline.disclosure_audit.audit`). Returns the
-    audit's result (frames, withheld tables and notes)."""
+    audit's result (frames, withheld tables and notes).
+    """
     from pipeline.disclosure_audit import audit, table_from_frames
 
     done: dict[str, _Disclosed] = {}
@@ -1107,14 +1231,18 @@ def _published_names(con: duckdb.DuckDBPyConnection) -> list[str]:
     rows = con.execute(
         "select t.table_name from duckdb_tables() t join duckdb_columns() c on c.schema_name = t.schema_name "
         "and c.table_name = t.table_name and c.column_name = 'period' where t.schema_name = 'published' "
-        "order by 1").fetchall()
+        "order by 1"
+    ).fetchall()
     return [r[0] for r in rows]
 
 
-def _internal_rows(con: duckdb.DuckDBPyConnection, name: str, published: pl.DataFrame) -> pl.DataFrame:
+def _internal_rows(
+    con: duckdb.DuckDBPyConnection, name: str, published: pl.DataFrame
+) -> pl.DataFrame:
     """The internal rows behind a published table not declared here, in the published order (by
     its text keys); the published rows themselves when there is no internal table (then the
-    audit can only check, and blank whole, what is published)."""
+    audit can only check, and blank whole, what is published).
+    """
     exists = con.execute("select count(*) from duckdb_tables() where schema_name = 'main' and table_name = ?",
                          [name]).fetchall()[0][0]  # fmt: skip
     if not exists:
@@ -1130,14 +1258,24 @@ def _internal_rows(con: duckdb.DuckDBPyConnection, name: str, published: pl.Data
     return joined if joined.height == published.height else published
 
 
-def _record_cells(con: duckdb.DuckDBPyConnection, period: Period, tables: Mapping, withheld: Mapping[str, str]) -> None:
+def _record_cells(
+    con: duckdb.DuckDBPyConnection, period: Period, tables: Mapping, withheld: Mapping[str, str]
+) -> None:
     """One internal row per blanked count of the period: why it is blank (never published)."""
     rows = []
     for name, t in tables.items():
         for column in t.counts:
             for r in range(t.n):
-                if name in withheld or t.values[column][r] is None and t.truth[column][r] is not None:
-                    key = "; ".join(f"{k}={v}" for k, v in zip(t.keys, t.key_rows[r]) if k != "period")
+                if (
+                    name in withheld
+                    or t.values[column][r] is None
+                    and t.truth[column][r] is not None
+                ):
+                    key = "; ".join(
+                        f"{k}={v}"
+                        for k, v in zip(t.keys, t.key_rows[r], strict=False)
+                        if k != "period"
+                    )
                     mark = "withheld_table" if name in withheld else (t.marks[column][r] or "audit")
                     rows.append((period.label, name, key, column, mark, withheld.get(name)))
     frame = pl.DataFrame(rows, schema={"period": pl.String, "table_name": pl.String, "row_key": pl.String,

@@ -107,7 +107,8 @@ class AuditTable:
 
     ``published`` and ``internal`` have the same rows in the same order. ``marks`` holds the
     internal reason per blanked count (primary, secondary, withheld; audit for those blanked
-    here), keyed by column."""
+    here), keyed by column.
+    """
 
     name: str
     published: pl.DataFrame
@@ -129,7 +130,9 @@ class AuditTable:
         self.truth = {c: self.internal[c].to_list() for c in self.counts}
         for c in self.counts:
             self.marks.setdefault(c, [""] * self.published.height)
-        self.key_rows = self.published.select(self.keys).rows() if self.keys else [()] * self.published.height
+        self.key_rows = (
+            self.published.select(self.keys).rows() if self.keys else [()] * self.published.height
+        )
 
     @property
     def n(self) -> int:
@@ -139,7 +142,9 @@ class AuditTable:
         return self.values[column][row] is None and self.truth[column][row] is not None
 
     def describe(self, column: str, row: int) -> str:
-        where = ", ".join(f"{k}={v}" for k, v in zip(self.keys, self.key_rows[row]) if k != "period")
+        where = ", ".join(
+            f"{k}={v}" for k, v in zip(self.keys, self.key_rows[row], strict=False) if k != "period"
+        )
         return f"{self.name}.{column} ({where})"
 
 
@@ -158,21 +163,34 @@ def infer_levels(frame: pl.DataFrame, keys: Sequence[str]) -> list[tuple[str, ..
 def table_from_frames(name: str, published: pl.DataFrame, internal: pl.DataFrame,
                       spec: object | None = None, marks: Mapping[str, list[str]] | None = None) -> AuditTable:  # fmt: skip
     """An :class:`AuditTable` from a declared table (``spec``, a PublishedTable) or, for a table
-    not declared, from its columns: text columns are keys, integer columns counts."""
+    not declared, from its columns: text columns are keys, integer columns counts.
+    """
     public = set(getattr(spec, "public", ()) or ())
     if spec is not None:
         keys = list(spec.keys)
         counts = [c for c in spec.counts if c in published.columns]
-        counts += [c for c in getattr(spec.totals, "copied", ()) if c in published.columns] if spec.totals else []
+        counts += (
+            [c for c in getattr(spec.totals, "copied", ()) if c in published.columns]
+            if spec.totals
+            else []
+        )
         levels = [tuple(level) for level in spec.levels] or infer_levels(published, keys)
-        rates, group_rates, standardised = dict(spec.rates), dict(spec.group_rates), spec.standardised
+        rates, group_rates, standardised = (
+            dict(spec.rates),
+            dict(spec.group_rates),
+            spec.standardised,
+        )
     else:
         keys = [c for c, t in published.schema.items() if t == pl.String and c != "suppression"]
         counts = [c for c, t in published.schema.items()
                   if t.is_integer() and c not in _NOT_COUNTS and c not in public]  # fmt: skip
         levels = infer_levels(published, keys)
         rates, group_rates, standardised = {}, {}, None
-    copied = tuple(c for c in getattr(spec.totals, "copied", ()) if c in counts) if spec and spec.totals else ()
+    copied = (
+        tuple(c for c in getattr(spec.totals, "copied", ()) if c in counts)
+        if spec and spec.totals
+        else ()
+    )
     return AuditTable(name, published, internal, keys, counts, levels, rates, group_rates, standardised,
                       {c: list(v) for c, v in (marks or {}).items() if c in counts}, None, copied,
                       spec.totals if copied else None)  # fmt: skip
@@ -185,10 +203,13 @@ class _System:
     """Every count of every published table as a variable: a published count is fixed at its
     value, a blanked one lies in [1, inf) (a zero in [0, inf)). Every relation is a row of
     ``A x <= 0`` (a sum is two rows). Blanking a count only widens its bounds, so the system is
-    built once per audit."""
+    built once per audit.
+    """
 
     def __init__(self) -> None:
-        self.cells: list[tuple[str, str, int]] = []  # variable -> (table, column, row); ("", "", -1) extra
+        self.cells: list[
+            tuple[str, str, int]
+        ] = []  # variable -> (table, column, row); ("", "", -1) extra
         self.index: dict[tuple[str, str, int], int] = {}
         self.truth: list[float] = []
         self.lower: list[float] = []
@@ -196,7 +217,9 @@ class _System:
         self.rows: list[dict[int, float]] = []  # each: sum(coef * x) <= 0
         self.rate_vars: dict[tuple[str, int], list[int]] = {}  # standardised rate -> its group sums
 
-    def variable(self, truth: float, lower: float, upper: float, cell: tuple[str, str, int] | None = None) -> int:
+    def variable(
+        self, truth: float, lower: float, upper: float, cell: tuple[str, str, int] | None = None
+    ) -> int:
         self.truth.append(float(truth))
         self.lower.append(float(lower))
         self.upper.append(float(upper))
@@ -220,7 +243,11 @@ class _System:
     def positive(self) -> list[int]:
         if getattr(self, "_positive", None) is None or len(self._positive_of) != len(self.truth):
             self._positive_of = list(self.truth)
-            self._positive = [v for v, (c, t) in enumerate(zip(self.cells, self.truth)) if c[2] >= 0 and t > 0]
+            self._positive = [
+                v
+                for v, (c, t) in enumerate(zip(self.cells, self.truth, strict=False))
+                if c[2] >= 0 and t > 0
+            ]
         return self._positive
 
     def matrix(self) -> csr_matrix:
@@ -233,9 +260,12 @@ class _System:
         return csr_matrix((data, (ri, ci)), shape=(len(self.rows), len(self.truth)))
 
 
-def _add_relation(system: _System, terms: list[tuple[AuditTable, str, int, float]], kind: str) -> None:
+def _add_relation(
+    system: _System, terms: list[tuple[AuditTable, str, int, float]], kind: str
+) -> None:
     """sum(coef * cell) == 0 (kind 'eq') or <= 0 ('ub'), kept only when it holds on the internal
-    counts."""
+    counts.
+    """
     truth = 0.0
     coefs: dict[int, float] = {}
     for table, column, row, coef in terms:
@@ -283,7 +313,8 @@ def build_system(tables: Mapping[str, AuditTable], relations: Sequence = (),
 
 def _table_sums(system: _System, t: AuditTable) -> None:
     """Each row marked 'ALL' in a level is the sum of the rows that agree with it elsewhere and are
-    not 'ALL' in that level."""
+    not 'ALL' in that level.
+    """
     position = {k: i for i, k in enumerate(t.keys)}
     for level in t.levels:
         inside = [position[c] for c in level if c in position]
@@ -302,34 +333,42 @@ def _table_sums(system: _System, t: AuditTable) -> None:
             if not rows:
                 continue
             for column in t.counts:
-                _add_relation(system, [(t, column, total, -1.0)] + [(t, column, r, 1.0) for r in rows], "eq")
+                _add_relation(
+                    system, [(t, column, total, -1.0)] + [(t, column, r, 1.0) for r in rows], "eq"
+                )
 
 
 def _cross_sums(system: _System, tables: Mapping[str, AuditTable], relations) -> None:
     """Declared sums between tables: rows of ``table`` (``where``) per ``join`` add up to the
-    total row (``row``) of ``other``."""
+    total row (``row``) of ``other``.
+    """
     for name, column, other_name, where, join, row_marks, total in relations:
         t, o = tables.get(name), tables.get(other_name)
         if t is None or o is None or column not in t.counts or total not in o.counts:
             continue
         o_rows = {}
         for r in range(o.n):
-            key = dict(zip(o.keys, o.key_rows[r]))
+            key = dict(zip(o.keys, o.key_rows[r], strict=False))
             if all(key.get(k) == v for k, v in row_marks.items()):
                 o_rows[tuple(key.get(j) for j in join)] = r
         members: dict[tuple, list[int]] = {}
         for r in range(t.n):
-            key = dict(zip(t.keys, t.key_rows[r]))
+            key = dict(zip(t.keys, t.key_rows[r], strict=False))
             if all(key.get(k) in allowed for k, allowed in where.items()):
                 members.setdefault(tuple(key.get(j) for j in join), []).append(r)
         for key, rows in members.items():
             if key in o_rows:
-                _add_relation(system, [(o, total, o_rows[key], -1.0)] + [(t, column, r, 1.0) for r in rows], "eq")
+                _add_relation(
+                    system,
+                    [(o, total, o_rows[key], -1.0)] + [(t, column, r, 1.0) for r in rows],
+                    "eq",
+                )
 
 
 def _same_counts(system: _System, tables: Mapping[str, AuditTable]) -> None:
     """A count published under the same name in two tables for the same keys (the other table's
-    further keys 'ALL'), equal on every such pair: the same number."""
+    further keys 'ALL'), equal on every such pair: the same number.
+    """
     names = sorted(tables)
     for a_name in names:
         for b_name in names:
@@ -342,13 +381,13 @@ def _same_counts(system: _System, tables: Mapping[str, AuditTable]) -> None:
                 continue
             b_rows = {}
             for r in range(b.n):
-                key = dict(zip(b.keys, b.key_rows[r]))
+                key = dict(zip(b.keys, b.key_rows[r], strict=False))
                 if all(key[k] == TOTAL for k in extra_b):
                     b_rows[tuple(key[k] for k in shared)] = r
             for column in sorted(set(a.counts) & set(b.counts)):
                 pairs = []
                 for r in range(a.n):
-                    key = dict(zip(a.keys, a.key_rows[r]))
+                    key = dict(zip(a.keys, a.key_rows[r], strict=False))
                     other = b_rows.get(tuple(key[k] for k in shared))
                     if other is not None:
                         pairs.append((r, other))
@@ -368,8 +407,12 @@ def _rate_groups(system: _System, tables: Mapping[str, AuditTable],
         column, label = t.standardised.count, t.internal[t.standardised.group].to_list()
         head = _head(t, total_row)
         for group, (low, high) in groups.items():
-            rows = [r for r in range(t.n) if label[r] == group and (head is None or _head(t, r) == head)]
-            cells = [system.index[(name, column, r)] for r in rows if (name, column, r) in system.index]
+            rows = [
+                r for r in range(t.n) if label[r] == group and (head is None or _head(t, r) == head)
+            ]
+            cells = [
+                system.index[(name, column, r)] for r in rows if (name, column, r) in system.index
+            ]
             truth = sum(system.truth[v] for v in cells)
             var = system.variable(truth, float(low), float(high))
             system.rate_vars.setdefault((name, total_row), []).append(var)
@@ -380,7 +423,7 @@ def _rate_groups(system: _System, tables: Mapping[str, AuditTable],
 
 def _head(t: AuditTable, row: int) -> str | None:
     """The district of a row (None for the region's total: every cell)."""
-    district = dict(zip(t.keys, t.key_rows[row])).get("district_code")
+    district = dict(zip(t.keys, t.key_rows[row], strict=False)).get("district_code")
     return None if district == TOTAL else district
 
 
@@ -392,9 +435,12 @@ def _ok(low: float, high: float, rules: DisclosureSettings) -> bool:
     return not within_band and high - low >= rules.protection_width
 
 
-def propagate(a: csr_matrix, lower: Sequence[float], upper: Sequence[float]) -> tuple[np.ndarray, np.ndarray]:
+def propagate(
+    a: csr_matrix, lower: Sequence[float], upper: Sequence[float]
+) -> tuple[np.ndarray, np.ndarray]:
     """Outer bounds of every variable from ``A x <= 0`` by bound propagation (integer variables:
-    bounds rounded inwards). Sound: the range a reader can derive lies inside them."""
+    bounds rounded inwards). Sound: the range a reader can derive lies inside them.
+    """
     lo = np.array(lower, dtype=float)
     hi = np.array(upper, dtype=float)
     if a.nnz == 0:
@@ -442,7 +488,8 @@ _BANNER_SHOWN = False
 
 def _new_highs(highspy: object) -> object:
     """A silent HiGHS instance. The first one of a process prints a banner on the C stdout, which
-    would land in the CLI's output: it goes to /dev/null."""
+    would land in the CLI's output: it goes to /dev/null.
+    """
     global _BANNER_SHOWN
     if _BANNER_SHOWN:
         h = highspy.Highs()
@@ -466,7 +513,8 @@ def _new_highs(highspy: object) -> object:
 
 class _Model:
     """One part of the system as a HiGHS linear program (``A x <= b``), solved again and again
-    with another objective from the last basis (warm start: about a millisecond a solve)."""
+    with another objective from the last basis (warm start: about a millisecond a solve).
+    """
 
     def __init__(self, a: csr_matrix, b: np.ndarray, lower: np.ndarray, upper: np.ndarray):
         import highspy
@@ -482,7 +530,11 @@ class _Model:
         lp.row_lower_ = np.full(csc.shape[0], -highspy.kHighsInf)
         lp.row_upper_ = np.asarray(b, dtype=float)
         lp.a_matrix_.format_ = highspy.MatrixFormat.kColwise
-        lp.a_matrix_.start_, lp.a_matrix_.index_, lp.a_matrix_.value_ = csc.indptr, csc.indices, csc.data
+        lp.a_matrix_.start_, lp.a_matrix_.index_, lp.a_matrix_.value_ = (
+            csc.indptr,
+            csc.indices,
+            csc.data,
+        )
         lp.a_matrix_.num_col_, lp.a_matrix_.num_row_ = csc.shape[1], csc.shape[0]
         self.h.passModel(lp)
         self.cost: dict[int, float] = {}
@@ -499,10 +551,16 @@ class _Model:
         status = self.h.getModelStatus()
         states = self._highspy.HighsModelStatus
         if status == states.kOptimal:
-            return "optimal", self.h.getInfo().objective_function_value, np.asarray(self.h.getSolution().col_value)
+            return (
+                "optimal",
+                self.h.getInfo().objective_function_value,
+                np.asarray(self.h.getSolution().col_value),
+            )
         if status in (states.kUnbounded, states.kUnboundedOrInfeasible):
             return "unbounded", -math.inf, np.zeros(0)
-        raise AuditFailure(f"the published figures are inconsistent ({self.h.modelStatusToString(status)})")
+        raise AuditFailure(
+            f"the published figures are inconsistent ({self.h.modelStatusToString(status)})"
+        )
 
 
 def _solve_part(system: _System, rules: DisclosureSettings, a: csr_matrix, rows: np.ndarray, lo: np.ndarray,
@@ -565,7 +623,8 @@ def failing_cells(system: _System, rules: DisclosureSettings, only: Sequence[int
     Bound propagation first: its bounds hold every value a reader can derive, so a count they
     already confine fails. The rest by linear programming over its part of the system; the
     internal counts and every solution are feasible points, and a count is cleared as soon as
-    two of them are far enough apart (``exact``: solve each count's least and greatest value)."""
+    two of them are far enough apart (``exact``: solve each count's least and greatest value).
+    """
     a = system.matrix() if a is None else a
     if only is None:
         targets = system.checked()
@@ -620,13 +679,25 @@ def _blank_rates(t: AuditTable) -> None:
             if rate not in frame.columns or not all(s in hit for s in sources):
                 continue
             mask = [any(hit[s][r] for s in sources) for r in range(t.n)]
-            updates.append(pl.when(pl.Series(mask, dtype=pl.Boolean)).then(None).otherwise(pl.col(rate)).alias(rate))
+            updates.append(
+                pl.when(pl.Series(mask, dtype=pl.Boolean))
+                .then(None)
+                .otherwise(pl.col(rate))
+                .alias(rate)
+            )
     if not t.rates and not t.group_rates and t.standardised is None:
         # a table not declared: any decimal figure on a row with a blank goes with it
-        row_blank = [any(blank[c][r] and t.truth[c][r] is not None for c in t.counts) for r in range(t.n)]
+        row_blank = [
+            any(blank[c][r] and t.truth[c][r] is not None for c in t.counts) for r in range(t.n)
+        ]
         for c, dtype in frame.schema.items():
             if dtype.is_float():
-                updates.append(pl.when(pl.Series(row_blank, dtype=pl.Boolean)).then(None).otherwise(pl.col(c)).alias(c))
+                updates.append(
+                    pl.when(pl.Series(row_blank, dtype=pl.Boolean))
+                    .then(None)
+                    .otherwise(pl.col(c))
+                    .alias(c)
+                )
     if updates:
         t.published = frame.with_columns(updates)
 
@@ -654,20 +725,29 @@ def _parents(t: AuditTable) -> list[int]:
 def finish(t: AuditTable) -> pl.DataFrame:
     """The publishable frame: counts as decided, rates on blanked counts blanked, one mark."""
     t.published = t.published.with_columns(
-        [pl.Series(c, t.values[c], dtype=t.published.schema[c]) for c in t.counts])
+        [pl.Series(c, t.values[c], dtype=t.published.schema[c]) for c in t.counts]
+    )
     _blank_rates(t)
     spec = t.standardised
     if spec is not None and spec.count in t.values:  # a rate whose count ended up blank goes too
         gone = pl.Series([v is None for v in t.values[spec.count]], dtype=pl.Boolean)
         cols = [c for c in spec.rates if c in t.published.columns]
-        updates = [pl.when(gone & pl.col(c).is_not_null()).then(None).otherwise(pl.col(c)).alias(c) for c in cols]
+        updates = [
+            pl.when(gone & pl.col(c).is_not_null()).then(None).otherwise(pl.col(c)).alias(c)
+            for c in cols
+        ]
         if spec.flag in t.published.columns and cols:
             updates.append(pl.when(gone & pl.col(cols[0]).is_not_null()).then(pl.lit("suppressed"))
                            .otherwise(pl.col(spec.flag)).alias(spec.flag))  # fmt: skip
         t.published = t.published.with_columns(updates)
-    row_blank = [sum(1 for c in t.counts if t.values[c][r] is None and t.truth[c][r] is not None) for r in range(t.n)]
-    columns = [pl.Series("n_suppressed", row_blank, dtype=pl.Int32),
-               pl.Series("suppression", [MARK if k else "" for k in row_blank], dtype=pl.String)]
+    row_blank = [
+        sum(1 for c in t.counts if t.values[c][r] is None and t.truth[c][r] is not None)
+        for r in range(t.n)
+    ]
+    columns = [
+        pl.Series("n_suppressed", row_blank, dtype=pl.Int32),
+        pl.Series("suppression", [MARK if k else "" for k in row_blank], dtype=pl.String),
+    ]
     return t.published.with_columns(columns)
 
 
@@ -683,7 +763,8 @@ def rate_splits(total: int, populations: Sequence[float], weights: Sequence[floa
     whose directly standardised rate and Fay-Feuer interval (:func:`pipeline.statistics.
     direct_standardised_rate`), rounded to ``digits``, are the ``published`` three. None when
     there are more than ``_MAX_SPLITS`` splits to try (:func:`rate_group_bounds` then bounds
-    the groups by linear programming from the rate alone)."""
+    the groups by linear programming from the rate alone).
+    """
     from pipeline.statistics import direct_standardised_rate
 
     n = np.asarray(populations, dtype=float)
@@ -694,8 +775,11 @@ def rate_splits(total: int, populations: Sequence[float], weights: Sequence[floa
         return np.zeros((0, k), dtype=np.int64)
     if math.comb(total + len(free) - 1, len(free) - 1) > _MAX_SPLITS:
         return None
-    grids = np.indices((total + 1,) * (len(free) - 1)).reshape(len(free) - 1, -1).T if len(free) > 1 \
+    grids = (
+        np.indices((total + 1,) * (len(free) - 1)).reshape(len(free) - 1, -1).T
+        if len(free) > 1
         else np.zeros((1, 0), dtype=np.int64)
+    )
     grids = grids[grids.sum(axis=1) <= total]
     last = total - grids.sum(axis=1, keepdims=True)
     splits_free = np.hstack([grids, last]).astype(np.int64)
@@ -707,7 +791,9 @@ def rate_splits(total: int, populations: Sequence[float], weights: Sequence[floa
     keep = np.abs(splits @ a * per - rate) <= half
     splits = splits[keep]
     if splits.shape[0] and (low is not None or high is not None):
-        _, lo, hi = direct_standardised_rate(splits.astype(float), np.broadcast_to(n, splits.shape), w, confidence)
+        _, lo, hi = direct_standardised_rate(
+            splits.astype(float), np.broadcast_to(n, splits.shape), w, confidence
+        )
         ok = np.ones(splits.shape[0], dtype=bool)
         if low is not None:
             ok &= np.abs(np.atleast_1d(lo) * per - low) <= half
@@ -721,7 +807,8 @@ def rate_group_bounds(total: int, populations: Sequence[float], weights: Sequenc
                       published: tuple[float, float | None, float | None], digits: int,
                       ) -> list[tuple[int, int]]:  # fmt: skip
     """[least, greatest] count per broad group a reader can get from the district's published
-    count and its rate (and interval) at their rounding."""
+    count and its rate (and interval) at their rounding.
+    """
     splits = rate_splits(total, populations, weights, confidence, published, digits)
     if splits is not None and splits.shape[0]:
         return [(int(splits[:, g].min()), int(splits[:, g].max())) for g in range(splits.shape[1])]
@@ -737,8 +824,24 @@ def rate_group_bounds(total: int, populations: Sequence[float], weights: Sequenc
     for g in range(k):
         c = np.zeros(k)
         c[g] = 1.0
-        lo = linprog(c, A_ub=a_ub, b_ub=b_ub, A_eq=np.ones((1, k)), b_eq=[total], bounds=bounds, method="highs")
-        hi = linprog(-c, A_ub=a_ub, b_ub=b_ub, A_eq=np.ones((1, k)), b_eq=[total], bounds=bounds, method="highs")
+        lo = linprog(
+            c,
+            A_ub=a_ub,
+            b_ub=b_ub,
+            A_eq=np.ones((1, k)),
+            b_eq=[total],
+            bounds=bounds,
+            method="highs",
+        )
+        hi = linprog(
+            -c,
+            A_ub=a_ub,
+            b_ub=b_ub,
+            A_eq=np.ones((1, k)),
+            b_eq=[total],
+            bounds=bounds,
+            method="highs",
+        )
         if lo.status != 0 or hi.status != 0:
             return [(0, total)] * k
         out.append((math.ceil(lo.fun - 1e-6), math.floor(-hi.fun + 1e-6)))
@@ -762,15 +865,22 @@ def protect_rates(t: AuditTable, basis: RateBasis, rules: DisclosureSettings,
                   ) -> tuple[dict[int, dict[str, tuple[int, int]]], list[str]]:  # fmt: skip
     """Round coarser or blank each published standardised rate whose integer splits pin a broad
     group's count into ``suppress_min``..``suppress_max``. Returns the group bounds of the rates
-    left published (by total row) and one note per rate changed."""
+    left published (by total row) and one note per rate changed.
+    """
     spec = t.standardised
-    if spec is None or spec.rates[0] not in t.published.columns or spec.group not in t.internal.columns:
+    if (
+        spec is None
+        or spec.rates[0] not in t.published.columns
+        or spec.group not in t.internal.columns
+    ):
         return {}, []
     rate_cols = [c for c in spec.rates if c in t.published.columns]
     values = {c: t.published[c].to_list() for c in rate_cols}
     flags = t.published[spec.flag].to_list() if spec.flag in t.published.columns else [None] * t.n
     label = t.internal[spec.group].to_list()
-    population = t.internal["population"].to_list() if "population" in t.internal.columns else [0] * t.n
+    population = (
+        t.internal["population"].to_list() if "population" in t.internal.columns else [0] * t.n
+    )
     internal = {c: t.internal[c].to_list() for c in rate_cols}
     out: dict[int, dict[str, tuple[int, int]]] = {}
     notes = []
@@ -794,7 +904,9 @@ def protect_rates(t: AuditTable, basis: RateBasis, rules: DisclosureSettings,
         for digits in (2, 1, 0):
             figures = tuple(None if c is None or internal[c][row] is None else round(float(internal[c][row]), digits)
                             for c in (rate_cols[0], low_col, high_col))  # fmt: skip
-            bounds = rate_group_bounds(int(total), pops, basis.weights, basis.confidence, figures, digits)
+            bounds = rate_group_bounds(
+                int(total), pops, basis.weights, basis.confidence, figures, digits
+            )
             if not _pins(bounds, rules):
                 chosen = (digits, figures, bounds)
                 break
@@ -803,18 +915,22 @@ def protect_rates(t: AuditTable, basis: RateBasis, rules: DisclosureSettings,
             for c in rate_cols:
                 values[c][row] = None
             flags[row] = "suppressed"
-            notes.append(f"{where}: standardised rate blanked (its integer splits pin an age group's count "
-                         f"into {rules.suppress_min}-{rules.suppress_max} at any rounding)")
+            notes.append(
+                f"{where}: standardised rate blanked (its integer splits pin an age group's count "
+                f"into {rules.suppress_min}-{rules.suppress_max} at any rounding)"
+            )
             continue
         digits, figures, bounds = chosen
         if digits < 2:
-            for c, v in zip((rate_cols[0], low_col, high_col), figures):
+            for c, v in zip((rate_cols[0], low_col, high_col), figures, strict=False):
                 if c is not None:
                     values[c][row] = v
             flags[row] = "rounded"
-            notes.append(f"{where}: standardised rate rounded to {digits} decimal(s) (at 2 its integer splits "
-                         f"pin an age group's count into {rules.suppress_min}-{rules.suppress_max})")
-        out[row] = dict(zip(basis.groups, bounds))
+            notes.append(
+                f"{where}: standardised rate rounded to {digits} decimal(s) (at 2 its integer splits "
+                f"pin an age group's count into {rules.suppress_min}-{rules.suppress_max})"
+            )
+        out[row] = dict(zip(basis.groups, bounds, strict=False))
     updates = [pl.Series(c, values[c], dtype=t.published.schema[c]) for c in rate_cols]
     if spec.flag in t.published.columns:
         updates.append(pl.Series(spec.flag, flags, dtype=pl.String))
@@ -825,7 +941,10 @@ def protect_rates(t: AuditTable, basis: RateBasis, rules: DisclosureSettings,
 def _drop_rate(t: AuditTable, row: int, note: list[str], reason: str) -> None:
     spec = t.standardised
     cols = [c for c in spec.rates if c in t.published.columns]
-    updates = [pl.when(pl.int_range(pl.len()) == row).then(None).otherwise(pl.col(c)).alias(c) for c in cols]
+    updates = [
+        pl.when(pl.int_range(pl.len()) == row).then(None).otherwise(pl.col(c)).alias(c)
+        for c in cols
+    ]
     if spec.flag in t.published.columns:
         updates.append(pl.when(pl.int_range(pl.len()) == row).then(pl.lit("suppressed"))
                        .otherwise(pl.col(spec.flag)).alias(spec.flag))  # fmt: skip
@@ -861,7 +980,8 @@ def _relations() -> list:
 def _candidates(system: _System, a: csr_matrix, tables: Mapping[str, AuditTable], var: int,
                 depth: int = 3, limit: int = 40) -> list[int]:  # fmt: skip
     """Published non-zero counts near ``var`` (sharing a sum or an order with it, then with those,
-    ...): nearest first, then its own table, then smallest, then by key."""
+    ...): nearest first, then its own table, then smallest, then by key.
+    """
     at = a.tocsc()
     own = system.cells[var][0]
     seen = {var}
@@ -870,20 +990,29 @@ def _candidates(system: _System, a: csr_matrix, tables: Mapping[str, AuditTable]
     for hop in range(depth):
         rows = set()
         for v in frontier:
-            rows.update(at.indices[at.indptr[v]:at.indptr[v + 1]].tolist())
+            rows.update(at.indices[at.indptr[v] : at.indptr[v + 1]].tolist())
         nxt = []
         for r in sorted(rows):
-            for v in a.indices[a.indptr[r]:a.indptr[r + 1]].tolist():
+            for v in a.indices[a.indptr[r] : a.indptr[r + 1]].tolist():
                 if v in seen:
                     continue
                 seen.add(v)
                 nxt.append(v)
                 name, column, row = system.cells[v]
-                if row >= 0 and not system.is_blank(v) and system.truth[v] > 0 and column not in tables[name].copied:
+                if (
+                    row >= 0
+                    and not system.is_blank(v)
+                    and system.truth[v] > 0
+                    and column not in tables[name].copied
+                ):
                     key = tables[name].key_rows[row]
                     names = tables[name].keys
-                    margin = all(k == TOTAL for k, n in zip(key, names) if n != "period")  # the grand total last
-                    found.append((hop, margin, name != own, system.truth[v], name, column, str(key), v))
+                    margin = all(
+                        k == TOTAL for k, n in zip(key, names, strict=False) if n != "period"
+                    )  # the grand total last
+                    found.append(
+                        (hop, margin, name != own, system.truth[v], name, column, str(key), v)
+                    )
         if len(found) >= limit:
             break
         frontier = nxt
@@ -908,24 +1037,40 @@ def _protect(system: _System, tables: Mapping[str, AuditTable], rules: Disclosur
         failing = failing_cells(system, rules, a=a, passed=cleared)
         if not failing:
             return None
-        var = min(failing, key=lambda v: (system.cells[v][1] in tables[system.cells[v][0]].copied, system.cells[v]))
+        var = min(
+            failing,
+            key=lambda v: (
+                system.cells[v][1] in tables[system.cells[v][0]].copied,
+                system.cells[v],
+            ),
+        )
         name, column, row = system.cells[var]
         t = tables[name]
         # a standardised rate gives way to the counts: free the rates around it first
         rated = [key for key, vs in system.rate_vars.items()
                  if any(system.upper[v] != math.inf or system.lower[v] > 0 for v in vs)]  # fmt: skip
         if rated:
-            keep = {v: (system.lower[v], system.upper[v]) for key in rated for v in system.rate_vars[key]}
+            keep = {
+                v: (system.lower[v], system.upper[v])
+                for key in rated
+                for v in system.rate_vars[key]
+            }
             for v in keep:
                 system.lower[v], system.upper[v] = 0.0, math.inf
             if not failing_cells(system, rules, only=[var], a=a):
                 for v, (low, high) in keep.items():
                     system.lower[v], system.upper[v] = low, high
                 hops = _hops(var_rows, a, var, 6)
-                order = sorted(rated, key=lambda k: (min(hops.get(v, 99) for v in system.rate_vars[k]), k))
+                order = sorted(
+                    rated, key=lambda k: (min(hops.get(v, 99) for v in system.rate_vars[k]), k)
+                )
                 for key in order:  # the nearest rate first, until the count is free
-                    _drop_rate(tables[key[0]], key[1], notes,
-                               f"with the published counts it narrowed {t.describe(column, row)}")
+                    _drop_rate(
+                        tables[key[0]],
+                        key[1],
+                        notes,
+                        f"with the published counts it narrowed {t.describe(column, row)}",
+                    )
                     rate_bounds.pop(key, None)
                     for v in system.rate_vars[key]:
                         system.lower[v], system.upper[v] = 0.0, math.inf
@@ -958,7 +1103,9 @@ def _protect(system: _System, tables: Mapping[str, AuditTable], rules: Disclosur
         if whole:
             for v in whole:
                 _blank_cell(system, tables, v)
-            notes.append(f"{name}.{column}: blanked whole (a blanked count could not be protected otherwise)")
+            notes.append(
+                f"{name}.{column}: blanked whole (a blanked count could not be protected otherwise)"
+            )
             continue
         # the reason is printed and exported: it names the cell, never the range it was narrowed to
         return name, (f"a blanked count ({t.describe(column, row)}) could be narrowed from the published "
@@ -972,8 +1119,8 @@ def _hops(var_rows: csr_matrix, a: csr_matrix, var: int, depth: int) -> dict[int
     for hop in range(1, depth + 1):
         nxt = []
         for v in frontier:
-            for r in var_rows.indices[var_rows.indptr[v]:var_rows.indptr[v + 1]].tolist():
-                for u in a.indices[a.indptr[r]:a.indptr[r + 1]].tolist():
+            for r in var_rows.indices[var_rows.indptr[v] : var_rows.indptr[v + 1]].tolist():
+                for u in a.indices[a.indptr[r] : a.indptr[r + 1]].tolist():
                     if u not in seen:
                         seen[u] = hop
                         nxt.append(u)
@@ -984,7 +1131,8 @@ def _hops(var_rows: csr_matrix, a: csr_matrix, var: int, depth: int) -> dict[int
 def audit(tables: dict[str, AuditTable], rules: DisclosureSettings, basis: RateBasis | None = None,
           previous: Mapping[str, pl.DataFrame] | None = None, max_rounds: int = 5000) -> AuditResult:  # fmt: skip
     """Blank more until every blanked count passes the rule over the joint system (module
-    docstring); withhold a table that cannot be made to pass."""
+    docstring); withhold a table that cannot be made to pass.
+    """
     notes: list[str] = []
     withheld: dict[str, str] = {}
     rate_bounds: dict[tuple[str, int], dict[str, tuple[int, int]]] = {}
@@ -1029,12 +1177,12 @@ def _recopy(t: AuditTable, source: AuditTable) -> None:
     spec = t.copied_from
     at = {}
     for r in range(source.n):
-        key = dict(zip(source.keys, source.key_rows[r]))
+        key = dict(zip(source.keys, source.key_rows[r], strict=False))
         if all(key.get(k) == v for k, v in spec.row.items()):
             at[tuple(key.get(j) for j in spec.join)] = r
     for column in t.copied:
         for r in range(t.n):
-            key = dict(zip(t.keys, t.key_rows[r]))
+            key = dict(zip(t.keys, t.key_rows[r], strict=False))
             o = at.get(tuple(key.get(j) for j in spec.join))
             if o is not None and column in source.values:
                 t.values[column][r] = source.values[column][o]
@@ -1044,7 +1192,8 @@ def _recopy(t: AuditTable, source: AuditTable) -> None:
 
 def _changes(live: Mapping[str, AuditTable], previous: Mapping[str, pl.DataFrame]) -> list[str]:
     """Blank a published ``<count>_change`` where the count is blanked now and was published in
-    the previous period (the two would give it back)."""
+    the previous period (the two would give it back).
+    """
     notes = []
     for name, t in live.items():
         before = previous.get(name)
@@ -1058,10 +1207,18 @@ def _changes(live: Mapping[str, AuditTable], previous: Mapping[str, pl.DataFrame
             last = {tuple(r[:-1]): r[-1] for r in before.select(keys + [column]).rows()}
             mask = []
             for row in range(t.n):
-                key = tuple(v for k, v in zip(t.keys, t.key_rows[row]) if k != "period")
+                key = tuple(
+                    v for k, v in zip(t.keys, t.key_rows[row], strict=False) if k != "period"
+                )
                 mask.append(t.values[column][row] is None and last.get(key) is not None)
             if any(mask):
                 t.published = t.published.with_columns(
-                    pl.when(pl.Series(mask, dtype=pl.Boolean)).then(None).otherwise(pl.col(change)).alias(change))
-                notes.append(f"{name}.{change}: blanked where {column} is blanked now and was published last period")
+                    pl.when(pl.Series(mask, dtype=pl.Boolean))
+                    .then(None)
+                    .otherwise(pl.col(change))
+                    .alias(change)
+                )
+                notes.append(
+                    f"{name}.{change}: blanked where {column} is blanked now and was published last period"
+                )
     return notes

@@ -117,7 +117,8 @@ CKD_EPI_2012_CYSTATIN = CkdEpiCystatin(
 @dataclass(frozen=True)
 class CkdEpiCreatinineCystatin:
     """eGFR = multiplier × min(Scr/κ,1)^α × max(Scr/κ,1)^β_cr × min(Scys/κ_cys,1)^α_cys
-    × max(Scys/κ_cys,1)^β_cys × age_base^age × female_factor[F]."""
+    × max(Scys/κ_cys,1)^β_cys × age_base^age × female_factor[F].
+    """
 
     multiplier: float
     kappa_female: float
@@ -298,7 +299,8 @@ PCR_MG_G = AlbuminuriaThresholds(150.0, 500.0, "mg/g", KDIGO_SOURCE, CONFIRMED)
 @dataclass(frozen=True)
 class SumidaPcrToAcr:
     """Crude ACR (mg/g) = exp(intercept + b_low·ln(min(PCR/knot_low, 1))
-    + b_mid·ln(max(min(PCR/knot_high, 1), mid_floor)) + b_high·ln(max(PCR/knot_high, 1)))."""
+    + b_mid·ln(max(min(PCR/knot_high, 1), mid_floor)) + b_high·ln(max(PCR/knot_high, 1))).
+    """
 
     intercept: float
     b_low: float
@@ -384,7 +386,8 @@ HBA1C_IFCC_TO_NGSP = HbA1cMasterEquation(
 
 def _expr(value: pl.Expr | float | int) -> pl.Expr:
     """Accept an expression or a numeric literal; strings are refused to avoid the column-name
-    ambiguity of polars' own APIs."""
+    ambiguity of polars' own APIs.
+    """
     if isinstance(value, pl.Expr):
         return value
     if isinstance(value, (int, float)) and not isinstance(value, bool):
@@ -538,9 +541,7 @@ def ekfc_creatinine(scr: pl.Expr, age: pl.Expr, female: pl.Expr) -> pl.Expr:
     return pl.when(_positive(scr) & _age_between(age, c.min_age)).then(egfr)
 
 
-def ckid_u25_creatinine(
-    scr: pl.Expr, height_cm: pl.Expr, age: pl.Expr, female: pl.Expr
-) -> pl.Expr:
+def ckid_u25_creatinine(scr: pl.Expr, height_cm: pl.Expr, age: pl.Expr, female: pl.Expr) -> pl.Expr:
     """CKiD U25 creatinine equation (Pierce et al., Kidney Int 2021;99:948).
 
     eGFR = K × height (m) / Scr, K by sex and age band (< 12, 12 to < 18, ≥ 18). Valid for
@@ -602,9 +603,9 @@ def gfr_category(egfr: pl.Expr) -> pl.Expr:
     chain = None
     for category, lower in KDIGO_GFR_LOWER_BOUNDS:
         condition = egfr >= lower
-        chain = (
-            pl.when(condition) if chain is None else chain.when(condition)
-        ).then(pl.lit(category, dtype=pl.Utf8))
+        chain = (pl.when(condition) if chain is None else chain.when(condition)).then(
+            pl.lit(category, dtype=pl.Utf8)
+        )
     return pl.when(egfr.is_finite()).then(chain)
 
 
@@ -643,13 +644,15 @@ def albuminuria_category_acr_mg_mmol(acr: pl.Expr, upper_a2_inclusive: bool = Tr
 
 def albuminuria_category_aer(mg_per_24h: pl.Expr, upper_a2_inclusive: bool = True) -> pl.Expr:
     """KDIGO 2012 albuminuria category from albumin excretion rate (mg/24 h): A1 < 30,
-    A2 30–300, A3 > 300. Source: Kidney Int Suppl 2013;3:1."""
+    A2 30–300, A3 > 300. Source: Kidney Int Suppl 2013;3:1.
+    """
     return _albuminuria_category(mg_per_24h, AER_MG_24H, upper_a2_inclusive)
 
 
 def albuminuria_category_pcr(pcr_mg_g: pl.Expr, upper_a2_inclusive: bool = True) -> pl.Expr:
     """KDIGO 2012 category from protein-to-creatinine ratio (mg/g): A1 < 150, A2 150–500,
-    A3 > 500. Source: Kidney Int Suppl 2013;3:1."""
+    A3 > 500. Source: Kidney Int Suppl 2013;3:1.
+    """
     return _albuminuria_category(pcr_mg_g, PCR_MG_G, upper_a2_inclusive)
 
 
@@ -694,7 +697,8 @@ def kdigo_risk(g_category: pl.Expr, a_category: pl.Expr) -> pl.Expr:
 
 def hba1c_ifcc_to_ngsp(mmol_mol: pl.Expr) -> pl.Expr:
     """HbA1c from IFCC (mmol/mol) to NGSP (%) by the master equation NGSP = 0.09148 × IFCC +
-    2.152 (Hoelzel et al., Clin Chem 2004). Null for null, non-finite or negative input."""
+    2.152 (Hoelzel et al., Clin Chem 2004). Null for null, non-finite or negative input.
+    """
     c = HBA1C_IFCC_TO_NGSP
     x = _float(mmol_mol)
     return pl.when(x.is_finite() & (x >= 0)).then(c.slope * x + c.intercept)
@@ -702,5 +706,6 @@ def hba1c_ifcc_to_ngsp(mmol_mol: pl.Expr) -> pl.Expr:
 
 def hyperfiltration(egfr: pl.Expr, threshold: pl.Expr | float) -> pl.Expr:
     """True where eGFR is above ``threshold`` (strictly). There is no single guideline
-    cut-off; the threshold comes from configuration. Null where eGFR is null."""
+    cut-off; the threshold comes from configuration. Null where eGFR is null.
+    """
     return _float(egfr) > _float(threshold)

@@ -10,9 +10,10 @@ from __future__ import annotations
 import datetime as dt
 import time
 import uuid
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any
 
 from pipeline import prefect_env
 
@@ -27,9 +28,17 @@ from pipeline.ingest import InboxFile, land_inbox, scan_inbox  # noqa: E402
 from pipeline.linkage import link_stage  # noqa: E402
 from pipeline.manifest import build_manifest, input_files, record_run  # noqa: E402
 from pipeline.measures import measure_stage  # noqa: E402
-from pipeline.periods import Period  # noqa: E402
 from pipeline.period_checks import period_checks  # noqa: E402
+from pipeline.periods import Period  # noqa: E402
 from pipeline.pseudonymise import PseudonymKey, resolve_key, verify_warehouse_key  # noqa: E402
+from pipeline.publish import (  # noqa: E402
+    commit_month,
+    open_warehouse,
+    quality_docs_dir,
+    write_exports,
+    write_json,
+)
+from pipeline.region_map import write_district_shapes  # noqa: E402
 from pipeline.report import write_report  # noqa: E402
 from pipeline.reprocess import config_drift, hold_back_drifted  # noqa: E402
 from pipeline.revisions import (  # noqa: E402
@@ -41,18 +50,10 @@ from pipeline.revisions import (  # noqa: E402
     settle_release,
     stash_release,
 )
-from pipeline.publish import (  # noqa: E402
-    commit_month,
-    open_warehouse,
-    quality_docs_dir,
-    write_exports,
-    write_json,
-)
 from pipeline.runlock import commit_and_install, recover_interrupted_run, run_lock  # noqa: E402
 from pipeline.settings import Settings, load_settings  # noqa: E402
 from pipeline.summaries import summarise_stage  # noqa: E402
 from pipeline.validate import begin_judging, judge_file, validate_stage  # noqa: E402
-from pipeline.region_map import write_district_shapes  # noqa: E402
 from pipeline.warehouse import load_reference_tables  # noqa: E402
 
 
@@ -66,7 +67,7 @@ class RunContext:
     con: duckdb.DuckDBPyConnection
     report: Callable[[str, float, str], None]
     run_id: str = ""
-    started_at: dt.datetime = field(default_factory=lambda: dt.datetime.now(dt.timezone.utc))
+    started_at: dt.datetime = field(default_factory=lambda: dt.datetime.now(dt.UTC))
     stages: dict[str, dict[str, Any]] = field(default_factory=dict)
     manifest: dict[str, Any] = field(default_factory=dict)
     batch_checks: dict[str, dict[str, Any]] = field(default_factory=dict)
@@ -74,7 +75,9 @@ class RunContext:
     inbox_items: list[InboxFile] | None = None  # the scan stage's listing, read by the ingest stage
     revise: str | None = None  # the reason given for a revision of an already published period
     release: Release | None = None  # what the summarise stage published (pipeline/revisions.py)
-    config_drift: dict[str, str] = field(default_factory=dict)  # source -> message (pipeline/reprocess.py)
+    config_drift: dict[str, str] = field(
+        default_factory=dict
+    )  # source -> message (pipeline/reprocess.py)
     refused: str | None = None  # why this run may not publish (a revision without a reason)
 
 
@@ -89,7 +92,11 @@ def _stage(run_id: str, name: str, work: Callable[[RunContext], dict[str, Any]])
     maybe_fail(f"{name}:after")
     seconds = time.perf_counter() - started
     ctx.stages[name] = {**result, "seconds": round(seconds, 3)}
-    ctx.report(name, seconds, ", ".join(f"{k} {v}" for k, v in result.items() if not isinstance(v, dict | list)))
+    ctx.report(
+        name,
+        seconds,
+        ", ".join(f"{k} {v}" for k, v in result.items() if not isinstance(v, dict | list)),
+    )
     return result
 
 
@@ -103,8 +110,11 @@ def scan_task(run_id: str) -> dict[str, Any]:
         hold_back_drifted(items, drift)
         ctx.config_drift = {s: d.message() for s, d in drift.items()}
         ctx.inbox_items = items  # hashed once: the ingest stage reads what was scanned
-        return {"files": len(items), "new": sum(i.status != "already_ingested" for i in items),
-                "config changed": len(drift)}
+        return {
+            "files": len(items),
+            "new": sum(i.status != "already_ingested" for i in items),
+            "config changed": len(drift),
+        }
 
     return _stage(run_id, "scan", work)
 
@@ -113,10 +123,20 @@ def scan_task(run_id: str) -> dict[str, Any]:
 def ingest_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         load_reference_tables(ctx.con, ctx.settings)
-        write_district_shapes(ctx.con, ctx.settings.config_dir, ctx.settings.districts)  # the report's maps
+        write_district_shapes(
+            ctx.con, ctx.settings.config_dir, ctx.settings.districts
+        )  # the report's maps
         begin_judging(ctx.con)  # each file is judged by the validate stage's rules as it lands
-        s = land_inbox(ctx.con, ctx.settings, ctx.inbox, ctx.key, ctx.period.label, dt.date.today(),
-                       items=ctx.inbox_items, sink=judge_file)
+        s = land_inbox(
+            ctx.con,
+            ctx.settings,
+            ctx.inbox,
+            ctx.key,
+            ctx.period.label,
+            dt.date.today(),
+            items=ctx.inbox_items,
+            sink=judge_file,
+        )
         return {"new files": s.files_new, "skipped": s.files_skipped, "held back": s.files_held_back,
                 "rows": s.rows_landed, "held_back_files": s.held_back,
                 "allowed_identifiers": s.allowed_identifiers}  # fmt: skip
@@ -169,8 +189,12 @@ def measure_task(run_id: str) -> dict[str, Any]:
 def link_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         s = link_stage(ctx.con, ctx.settings, ctx.period, work=ctx.out / ".work" / ctx.period.label)
-        return {"persons": s.persons, "events confirmed": s.events_confirmed, "pending": s.events_pending,
-                "recomputed": s.persons_recomputed}
+        return {
+            "persons": s.persons,
+            "events confirmed": s.events_confirmed,
+            "pending": s.events_pending,
+            "recomputed": s.persons_recomputed,
+        }
 
     return _stage(run_id, "link", work)
 
@@ -187,7 +211,10 @@ def summarise_task(run_id: str) -> dict[str, Any]:
             ctx.release = settle_release(ctx.con, ctx.period.label, ctx.revise, headline(ctx))
         except RevisionNeeded as exc:  # not a failure of the task: the run stops, unpublished
             ctx.refused = str(exc)
-            return {"tables": len(counts), "revision": "refused (already published; --revise needed)"}
+            return {
+                "tables": len(counts),
+                "revision": "refused (already published; --revise needed)",
+            }
         return {"tables": len(counts), "rows": sum(counts.values()),
                 "published rows": sum(published.values()), "blanked by the joint audit": audit.get("added", 0),
                 "by_table": counts, "revision": ctx.release.revision,
@@ -208,9 +235,13 @@ def publish_task(run_id: str) -> dict[str, Any]:
 @task(name="export", retries=2, retry_delay_seconds=[2, 10])
 def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        folder = write_exports(ctx.con, ctx.out, ctx.period, {"run_summary.json": summary,
-                                                                "run_manifest.json": ctx.manifest},
-                               demo_key=ctx.key.is_demo)
+        folder = write_exports(
+            ctx.con,
+            ctx.out,
+            ctx.period,
+            {"run_summary.json": summary, "run_manifest.json": ctx.manifest},
+            demo_key=ctx.key.is_demo,
+        )
         if ctx.release is not None:
             carry_releases(ctx.out, ctx.period.label, folder, ctx.release)
         write_report(ctx.con, ctx.period.label, folder / "report.html")
@@ -235,10 +266,16 @@ def headline(ctx: RunContext) -> dict[str, Any]:
     ).fetchall()
     out: dict[str, Any] = {}
     if prevalence:
-        out.update(zip(("persons_tested_12m", "persons_confirmed_ckd", "ckd_share_of_tested"), prevalence[0]))
+        out.update(
+            zip(
+                ("persons_tested_12m", "persons_confirmed_ckd", "ckd_share_of_tested"),
+                prevalence[0],
+                strict=False,
+            )
+        )
     if coverage:
         out.update(zip(("persons_with_diabetes", "diabetes_with_egfr_and_acr", "diabetes_share_with_both"),
-                       coverage[0]))  # fmt: skip
+                       coverage[0], strict=False))  # fmt: skip
     return out
 
 
@@ -246,12 +283,20 @@ def _quiet(name: str, seconds: float, text: str) -> None:
     pass
 
 
-def start_run(period: str, config_dir: str, inbox: str, out: str, demo: bool,
-              report: Callable[[str, float, str], None] = _quiet, executor: str | None = None,
-              revise: str | None = None) -> str:
+def start_run(
+    period: str,
+    config_dir: str,
+    inbox: str,
+    out: str,
+    demo: bool,
+    report: Callable[[str, float, str], None] = _quiet,
+    executor: str | None = None,
+    revise: str | None = None,
+) -> str:
     """Open the warehouse and register the run; the caller runs the stages. ``executor``
     overrides ``execution.executor`` of the config (local, shards or dask); ``revise`` is the
-    reason for publishing a revision of an already published period (pipeline/revisions.py)."""
+    reason for publishing a revision of an already published period (pipeline/revisions.py).
+    """
     settings = with_executor(load_settings(config_dir), executor)
     key = resolve_key(demo=demo)
     ctx = RunContext(settings, Period.parse(period), Path(inbox), Path(out), key,
@@ -273,7 +318,8 @@ def with_executor(settings: Settings, executor: str | None) -> Settings:
     if executor is None:
         return settings
     execution = settings.pipeline.execution.model_validate(
-        {**settings.pipeline.execution.model_dump(), "executor": executor})
+        {**settings.pipeline.execution.model_dump(), "executor": executor}
+    )
     pipeline = settings.pipeline.model_copy(update={"execution": execution})
     return settings.model_copy(update={"pipeline": pipeline})
 
@@ -289,16 +335,23 @@ def finish_run(run_id: str) -> dict[str, Any]:
 
 
 @flow(name="monthly_surveillance", log_prints=False)
-def monthly_surveillance(period: str | None = None, config_dir: str = "config",
-                         inbox: str = "sample_extracts", out: str = "out",
-                         demo: bool = False, executor: str | None = None,
-                         revise: str | None = None) -> dict[str, Any]:
+def monthly_surveillance(
+    period: str | None = None,
+    config_dir: str = "config",
+    inbox: str = "sample_extracts",
+    out: str = "out",
+    demo: bool = False,
+    executor: str | None = None,
+    revise: str | None = None,
+) -> dict[str, Any]:
     """Ingest what is new, validate, measure, link, summarise and publish one month
-    (``period`` None: the previous month, as a scheduled run does)."""
+    (``period`` None: the previous month, as a scheduled run does).
+    """
     period = period or Period.previous_month(dt.date.today()).label
     with run_lock(Path(out), period):
-        run_id = start_run(period, config_dir, inbox, out, demo, report=_reporter, executor=executor,
-                           revise=revise)
+        run_id = start_run(
+            period, config_dir, inbox, out, demo, report=_reporter, executor=executor, revise=revise
+        )
         try:
             return run_stages(run_id)
         finally:
@@ -336,7 +389,9 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
         "rows_outside_period": checks["rows_outside_period"],
         "rows_outside_period_notes": checks["rows_outside_period_notes"],
         "unmapped_codes": validate.get("unmapped_codes", {}),
-        "indicators_lack": sorted(set(checks["missing_sources"]) | set(validate["held_back_sources"])),
+        "indicators_lack": sorted(
+            set(checks["missing_sources"]) | set(validate["held_back_sources"])
+        ),
         "persons": link["persons"],
         "headline": headline(ctx),
         "batch_checks": ctx.batch_checks,
@@ -348,10 +403,13 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
                                   input_files(ctx.con, ctx.period.label))  # fmt: skip
     if ctx.release is not None:
         ctx.manifest["revision"] = summary["revision"] = describe(
-            ctx.release, ctx.period.label, ctx.started_at.date().isoformat(), summary["headline"])
+            ctx.release, ctx.period.label, ctx.started_at.date().isoformat(), summary["headline"]
+        )
     if ctx.config_drift:
         ctx.manifest["config_drift"] = ctx.config_drift
-        if ctx.manifest["exit_code"] == 0:  # published, but a source's current config is not applied yet
+        if (
+            ctx.manifest["exit_code"] == 0
+        ):  # published, but a source's current config is not applied yet
             ctx.manifest["exit_code"], ctx.manifest["status"] = 1, "published_with_config_drift"
     record_run(ctx.con, ctx.manifest)
     summary["exit_code"] = ctx.manifest["exit_code"]
@@ -362,14 +420,23 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
     return summary
 
 
-def run_month_plain(period: str, config_dir: str, inbox: str, out: str, demo: bool = False,
-                    report: Callable[[str, float, str], None] = _quiet,
-                    executor: str | None = None, revise: str | None = None) -> dict[str, Any]:
+def run_month_plain(
+    period: str,
+    config_dir: str,
+    inbox: str,
+    out: str,
+    demo: bool = False,
+    report: Callable[[str, float, str], None] = _quiet,
+    executor: str | None = None,
+    revise: str | None = None,
+) -> dict[str, Any]:
     """The monthly run without Prefect (tests, benchmarks, debugging); raises
-    :class:`RevisionNeeded` when the period is published and would change without ``revise``."""
+    :class:`RevisionNeeded` when the period is published and would change without ``revise``.
+    """
     with run_lock(Path(out), period):
-        run_id = start_run(period, config_dir, inbox, out, demo, report=report, executor=executor,
-                           revise=revise)
+        run_id = start_run(
+            period, config_dir, inbox, out, demo, report=report, executor=executor, revise=revise
+        )
         try:
             summary = run_stages(run_id, plain=True)
         finally:

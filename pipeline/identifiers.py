@@ -53,39 +53,68 @@ _VALUE_PATTERNS = tuple(p for p in PATTERNS if p != "record_number")
 
 #: Column names (normalised to snake_case words) that say what the column holds.
 _NAME_RULES: list[tuple[str, re.Pattern[str]]] = [
-    ("person_name", re.compile(
-        r"^(?:patient|person|client|subject|full|display)?_?names?$"
-        r"|(?:^|_)(?:first|last|given|family|middle|maiden|birth|sur|fore|christian|full|patient"
-        r"|person)_?names?(?:$|_)"
-        r"|(?:^|_)(?:surname|forenames?|initials)(?:$|_)"
-        # the same words in the other languages labs of the region export in (French, German,
-        # Spanish, Dutch): common practice for data-minimisation screens
-        r"|(?:^|_)(?:nom|prenom|nom_de_famille|nachname|vorname|familienname|apellidos?|nombre"
-        r"|naam|achternaam|voornaam)(?:$|_)")),
-    ("birth_date", re.compile(
-        r"(?:^|_)(?:dob|birth_?date|birth_?day|date_of_birth|birth_dt|born_on|born_date"
-        r"|date_naissance|date_de_naissance|ddn|geburtsdatum|geb_datum|fecha_(?:de_)?nacimiento"
-        r"|geboortedatum)(?:$|_)")),
-    ("email", re.compile(r"(?:^|_)(?:e_?mail|e_?mail_address|mail_address|courriel|correo"
-                         r"|correo_electronico)(?:$|_)")),
-    ("phone", re.compile(
-        r"(?:^|_)(?:phone|telephone|tel|tel_no|mobile|mobile_no|cellphone|cell_phone|fax"
-        r"|contact_number|phone_number|telefon|telefoon|telefono|telephone_portable|portable"
-        r"|handy|movil|celular|gsm)(?:$|_)")),
-    ("national_id", re.compile(
-        r"(?:^|_)(?:ssn|national_?id|national_?number|national_?no|national_insurance"
-        r"|social_security|passport(?:_no|_number)?|id_card|identity_card|identity_number"
-        r"|personal_?id|personal_?number|personal_code|citizen_?id|insurance_number"
-        r"|health_?card|health_number|tax_?id)(?:$|_)")),
-    ("street_address", re.compile(
-        r"(?:^|_)(?:address|addr|street|address_line\d?|house_number|house_no|postcode|post_code"
-        r"|postal_code|zip|zip_code|zipcode|adresse|direccion|strasse|rue|calle|adres"
-        r"|postleitzahl|plz|code_postal|codigo_postal|postcode_nl)(?:$|_)")),
-    ("record_number", re.compile(
-        r"(?:^|_)(?:mrn|urn|medical_record(?:_number|_no|_nr)?|record_(?:number|no|nr)|chart_(?:number|no)"
-        r"|hospital_(?:number|no|id)|patient_(?:number|no|nr)|case_(?:number|no)|unit_number"
-        r"|dossier|dossiernummer|patientennummer|numero_(?:de_)?(?:dossier|historia)"
-        r"|historia_clinica)(?:$|_)")),
+    (
+        "person_name",
+        re.compile(
+            r"^(?:patient|person|client|subject|full|display)?_?names?$"
+            r"|(?:^|_)(?:first|last|given|family|middle|maiden|birth|sur|fore|christian|full|patient"
+            r"|person)_?names?(?:$|_)"
+            r"|(?:^|_)(?:surname|forenames?|initials)(?:$|_)"
+            # the same words in the other languages labs of the region export in (French, German,
+            # Spanish, Dutch): common practice for data-minimisation screens
+            r"|(?:^|_)(?:nom|prenom|nom_de_famille|nachname|vorname|familienname|apellidos?|nombre"
+            r"|naam|achternaam|voornaam)(?:$|_)"
+        ),
+    ),
+    (
+        "birth_date",
+        re.compile(
+            r"(?:^|_)(?:dob|birth_?date|birth_?day|date_of_birth|birth_dt|born_on|born_date"
+            r"|date_naissance|date_de_naissance|ddn|geburtsdatum|geb_datum|fecha_(?:de_)?nacimiento"
+            r"|geboortedatum)(?:$|_)"
+        ),
+    ),
+    (
+        "email",
+        re.compile(
+            r"(?:^|_)(?:e_?mail|e_?mail_address|mail_address|courriel|correo"
+            r"|correo_electronico)(?:$|_)"
+        ),
+    ),
+    (
+        "phone",
+        re.compile(
+            r"(?:^|_)(?:phone|telephone|tel|tel_no|mobile|mobile_no|cellphone|cell_phone|fax"
+            r"|contact_number|phone_number|telefon|telefoon|telefono|telephone_portable|portable"
+            r"|handy|movil|celular|gsm)(?:$|_)"
+        ),
+    ),
+    (
+        "national_id",
+        re.compile(
+            r"(?:^|_)(?:ssn|national_?id|national_?number|national_?no|national_insurance"
+            r"|social_security|passport(?:_no|_number)?|id_card|identity_card|identity_number"
+            r"|personal_?id|personal_?number|personal_code|citizen_?id|insurance_number"
+            r"|health_?card|health_number|tax_?id)(?:$|_)"
+        ),
+    ),
+    (
+        "street_address",
+        re.compile(
+            r"(?:^|_)(?:address|addr|street|address_line\d?|house_number|house_no|postcode|post_code"
+            r"|postal_code|zip|zip_code|zipcode|adresse|direccion|strasse|rue|calle|adres"
+            r"|postleitzahl|plz|code_postal|codigo_postal|postcode_nl)(?:$|_)"
+        ),
+    ),
+    (
+        "record_number",
+        re.compile(
+            r"(?:^|_)(?:mrn|urn|medical_record(?:_number|_no|_nr)?|record_(?:number|no|nr)|chart_(?:number|no)"
+            r"|hospital_(?:number|no|id)|patient_(?:number|no|nr)|case_(?:number|no)|unit_number"
+            r"|dossier|dossiernummer|patientennummer|numero_(?:de_)?(?:dossier|historia)"
+            r"|historia_clinica)(?:$|_)"
+        ),
+    ),
 ]
 
 #: FHIR element paths (resource type dropped, list positions ignored) that are identifiers by
@@ -119,16 +148,16 @@ def column_name_pattern(name: str) -> str | None:
 _EMAIL = re.compile(r"[A-Za-z0-9._%+-]+@[A-Za-z0-9-]+(?:\.[A-Za-z0-9-]+)*\.[A-Za-z]{2,}")
 #: International form (+ and a country code) or a national form with a leading 0 and separators.
 _PHONE = re.compile(
-    r"\+[1-9][0-9 ().-]{6,20}"                      # international: + and a country code
-    r"|\(?0\d{1,4}\)?[ .-]?\d{3,4}[ .-]\d{3,4}"     # national, a leading 0 and separators
-    r"|\(\d{2,5}\) ?\d{3,4}[ .-]?\d{3,4}"            # an area code in brackets
-    r"|\d{3,4}[ .-]\d{3}[ .-]\d{3,4}"                 # local groups of 3-4 digits
+    r"\+[1-9][0-9 ().-]{6,20}"  # international: + and a country code
+    r"|\(?0\d{1,4}\)?[ .-]?\d{3,4}[ .-]\d{3,4}"  # national, a leading 0 and separators
+    r"|\(\d{2,5}\) ?\d{3,4}[ .-]?\d{3,4}"  # an area code in brackets
+    r"|\d{3,4}[ .-]\d{3}[ .-]\d{3,4}"  # local groups of 3-4 digits
 )
 _NATIONAL_ID = re.compile(
-    r"\d{3}-\d{2}-\d{4}"                  # 3-2-4 digit groups
-    r"|\d{6}[-+]\d{4}"                     # six digits (a birth date), a sign, four digits
-    r"|\d{3} \d{3} \d{3,4}"                # 9 or 10 digits in groups of three
-    r"|\d{3}\.\d{3}\.\d{3}-\d{2}"          # 3.3.3-2
+    r"\d{3}-\d{2}-\d{4}"  # 3-2-4 digit groups
+    r"|\d{6}[-+]\d{4}"  # six digits (a birth date), a sign, four digits
+    r"|\d{3} \d{3} \d{3,4}"  # 9 or 10 digits in groups of three
+    r"|\d{3}\.\d{3}\.\d{3}-\d{2}"  # 3.3.3-2
     r"|[A-Z]{2} ?\d{2} ?\d{2} ?\d{2} ?[A-D]"  # two letters, six digits, a letter
 )
 _STREET_WORDS = (
@@ -136,17 +165,68 @@ _STREET_WORDS = (
     "Terrace|Gardens|Row|Square|Sq|Hill|Boulevard|Blvd|Walk|Mews|Parade|Grove"
 )
 _STREET = re.compile(rf"\b\d{{1,5}}[A-Za-z]?,? (?:[A-Z][a-z]+ ){{1,3}}(?:{_STREET_WORDS})\b\.?")
-_NAME_TITLE = re.compile(r"[A-Z][a-z'’-]+(?: [A-Z][a-z'’-]+){1,3}|[A-Z][a-z'’-]+, [A-Z][a-z'’-]+(?: [A-Z][a-z'’-]+)?")
-_NAME_UPPER = re.compile(r"[A-Z]{2,}(?: [A-Z]{2,}){1,3}|[A-Z]{2,}, [A-Z]{2,}"
-                         r"|[A-Z][A-Z'’-]+, [A-Z][a-z'’-]+(?: [A-Z][a-z'’-]+)?")  # SURNAME, Given
+_NAME_TITLE = re.compile(
+    r"[A-Z][a-z'’-]+(?: [A-Z][a-z'’-]+){1,3}|[A-Z][a-z'’-]+, [A-Z][a-z'’-]+(?: [A-Z][a-z'’-]+)?"
+)
+_NAME_UPPER = re.compile(
+    r"[A-Z]{2,}(?: [A-Z]{2,}){1,3}|[A-Z]{2,}, [A-Z]{2,}"
+    r"|[A-Z][A-Z'’-]+, [A-Z][a-z'’-]+(?: [A-Z][a-z'’-]+)?"
+)  # SURNAME, Given
 #: Words of lab reports and places that make a two-word capitalised value not a name.
 _NOT_NAME_WORDS = {
-    "serum", "plasma", "urine", "blood", "whole", "random", "fasting", "spot", "total", "ratio",
-    "creatinine", "cystatin", "albumin", "protein", "glucose", "haemoglobin", "hemoglobin",
-    "glycated", "estimated", "see", "note", "not", "done", "test", "sample", "result", "lab",
-    "laboratory", "hospital", "general", "reference", "district", "north", "south", "east",
-    "west", "upper", "lower", "new", "old", "final", "amended", "corrected", "cancelled",
-    "preliminary", "entered", "error", "unknown", "other", "female", "male", "nd", "na",
+    "serum",
+    "plasma",
+    "urine",
+    "blood",
+    "whole",
+    "random",
+    "fasting",
+    "spot",
+    "total",
+    "ratio",
+    "creatinine",
+    "cystatin",
+    "albumin",
+    "protein",
+    "glucose",
+    "haemoglobin",
+    "hemoglobin",
+    "glycated",
+    "estimated",
+    "see",
+    "note",
+    "not",
+    "done",
+    "test",
+    "sample",
+    "result",
+    "lab",
+    "laboratory",
+    "hospital",
+    "general",
+    "reference",
+    "district",
+    "north",
+    "south",
+    "east",
+    "west",
+    "upper",
+    "lower",
+    "new",
+    "old",
+    "final",
+    "amended",
+    "corrected",
+    "cancelled",
+    "preliminary",
+    "entered",
+    "error",
+    "unknown",
+    "other",
+    "female",
+    "male",
+    "nd",
+    "na",
 }
 _DATE_FORMS = (
     re.compile(r"(\d{4})-(\d{1,2})-(\d{1,2})(?:[T ][\d:.+Z-]*)?"),
@@ -240,22 +320,30 @@ _PRINTABLE_ASCII = r"\A[\x20-\x7E]*\z"
 def _ascii(pattern: re.Pattern[str] | str, whole: bool = False) -> str:
     """``pattern`` for polars over printable-ASCII values; ``whole``: what ``fullmatch`` does.
     The one non-ASCII character of the patterns (the typographic apostrophe of names) cannot
-    occur in such a value, and ASCII mode refuses it, so it is left out."""
+    occur in such a value, and ASCII mode refuses it, so it is left out.
+    """
     text = (pattern if isinstance(pattern, str) else pattern.pattern).replace("’", "")
     return rf"(?-u)\A(?:{text})\z" if whole else f"(?-u){text}"
 
 
-_NOT_NAME = r"(?:\A|[ ,])(?:" + "|".join(re.escape(w) for w in sorted(_NOT_NAME_WORDS)) + r")(?:[ ,]|\z)"
+_NOT_NAME = (
+    r"(?:\A|[ ,])(?:" + "|".join(re.escape(w) for w in sorted(_NOT_NAME_WORDS)) + r")(?:[ ,]|\z)"
+)
 
 
 def _vector_flags(value: pl.Expr, birth: pl.Expr) -> list[pl.Expr]:
     """One boolean per pattern for printable-ASCII stripped values: the shapes of
     :func:`value_patterns` (and of :func:`_full_date` in birth columns) as polars expressions.
     Three are candidates only, refined on the few rows that have them (:func:`_refine`): a
-    phone number's digit count, a name's words, a birth date's calendar."""
+    phone number's digit count, a name's words, a birth date's calendar.
+    """
     digit = value.str.contains(r"(?-u)[0-9]")
-    name = value.str.contains(_ascii(_NAME_TITLE, whole=True)) | value.str.contains(_ascii(_NAME_UPPER, whole=True))
-    dated = pl.any_horizontal([value.str.contains(_ascii(form, whole=True)) for form in _DATE_FORMS])
+    name = value.str.contains(_ascii(_NAME_TITLE, whole=True)) | value.str.contains(
+        _ascii(_NAME_UPPER, whole=True)
+    )
+    dated = pl.any_horizontal(
+        [value.str.contains(_ascii(form, whole=True)) for form in _DATE_FORMS]
+    )
     return [
         value.str.contains(_ascii(_EMAIL)).alias("email"),
         (digit & value.str.contains(_ascii(_PHONE, whole=True))).alias("phone"),
@@ -272,7 +360,8 @@ def _refine(fast: pl.DataFrame, places: frozenset[str] = frozenset()) -> pl.Data
     checks = {
         "phone": value.str.count_matches(r"(?-u)[0-9]").is_between(8, 15),
         # a place name of the region's config (a district) is not a person's name
-        "person_name": ~value.str.to_lowercase().str.contains(_ascii(_NOT_NAME)) & ~value.is_in(list(places)),
+        "person_name": ~value.str.to_lowercase().str.contains(_ascii(_NOT_NAME))
+        & ~value.is_in(list(places)),
     }
     for flag, check in checks.items():
         candidates = fast.filter(pl.col(flag))
@@ -281,7 +370,9 @@ def _refine(fast: pl.DataFrame, places: frozenset[str] = frozenset()) -> pl.Data
             fast = fast.with_columns(pl.col(flag) & ~pl.col("seq").is_in(failed))
     candidates = fast.filter(pl.col("birth_date"))
     if candidates.height:  # the few date-shaped values of a birth column: a real calendar date?
-        failed = candidates.filter(pl.Series([not _full_date(v) for v in candidates["value"]]))["seq"]
+        failed = candidates.filter(pl.Series([not _full_date(v) for v in candidates["value"]]))[
+            "seq"
+        ]
         fast = fast.with_columns(pl.col("birth_date") & ~pl.col("seq").is_in(failed))
     return fast
 
@@ -294,17 +385,22 @@ def sampled_mask(index: pl.Expr) -> pl.Expr:
 @dataclass
 class _Column:
     """What the sample of one column showed: its non-empty values, and per pattern the number
-    of matching values with the first line numbers, and how many distinct name-like values."""
+    of matching values with the first line numbers, and how many distinct name-like values.
+    """
 
     values: int = 0
-    hits: dict[str, tuple[int, list[int]]] = field(default_factory=dict)  # pattern -> (count, first lines)
+    hits: dict[str, tuple[int, list[int]]] = field(
+        default_factory=dict
+    )  # pattern -> (count, first lines)
     names: int = 0  # distinct name-like values, counted up to 1000
 
 
 _VALUES_SCHEMA = {"key": pl.Int64, "line": pl.Int64, "value": pl.String, "birth": pl.Boolean}
 
 
-def _judge(values: pl.DataFrame, places: frozenset[str] = frozenset()) -> tuple[dict[int, _Column], pl.DataFrame]:
+def _judge(
+    values: pl.DataFrame, places: frozenset[str] = frozenset()
+) -> tuple[dict[int, _Column], pl.DataFrame]:
     """Judge values given in file order as columns ``key`` (the column), ``line``, ``value``
     (as read) and ``birth`` (a birth column): a :class:`_Column` per key with a non-empty
     value, and the matching values' ``key``, ``line`` and one boolean per pattern.
@@ -312,7 +408,8 @@ def _judge(values: pl.DataFrame, places: frozenset[str] = frozenset()) -> tuple[
 
     Every row of a file is screened, and its values repeat (codes, units, dates, statuses, a
     person's several results), so each distinct value is judged once and only the few that
-    match are joined back to their lines."""
+    match are joined back to their lines.
+    """
     values = values.with_row_index("seq").filter(pl.col("value") != "")
     distinct = values.select("value", "birth").unique()
     ascii_ = pl.col("value").str.contains(_PRINTABLE_ASCII)
@@ -344,7 +441,10 @@ def _judge(values: pl.DataFrame, places: frozenset[str] = frozenset()) -> tuple[
     if hits.height:
         summary = hits.group_by("key").agg(
             *(pl.col(p).sum().alias(f"{p}:n") for p in _VALUE_PATTERNS),
-            *(pl.col("line").filter(pl.col(p)).head(3).alias(f"{p}:lines") for p in _VALUE_PATTERNS),
+            *(
+                pl.col("line").filter(pl.col(p)).head(3).alias(f"{p}:lines")
+                for p in _VALUE_PATTERNS
+            ),
             pl.col("value").filter(pl.col("person_name")).n_unique().alias("names"),
         )
         for r in summary.iter_rows(named=True):
@@ -362,11 +462,14 @@ _MIN_SHARE = {"email": 0.0, "street_address": 0.0, "birth_date": 0.0,
               "phone": 0.5, "national_id": 0.5, "person_name": 0.5, "record_number": 0.5}  # fmt: skip
 
 
-def _column_findings(column: str, col: _Column, hits: pl.DataFrame | None = None, key: int | None = None) -> list[Finding]:
+def _column_findings(
+    column: str, col: _Column, hits: pl.DataFrame | None = None, key: int | None = None
+) -> list[Finding]:
     """A finding per pattern with any matching value: of the whole column when the share of
     :data:`_MIN_SHARE` is met, else of the few rows that hold one (``hits``: their lines).
     Repeated names count as names: a person has several results, so a column of names
-    repeats them."""
+    repeats them.
+    """
     out = []
     for pattern in PATTERNS:
         count, lines = col.hits.get(pattern, (0, []))
@@ -377,7 +480,12 @@ def _column_findings(column: str, col: _Column, hits: pl.DataFrame | None = None
         whole = count >= _MIN_SHARE[pattern] * col.values
         rows: tuple[int, ...] = ()
         if not whole and hits is not None:
-            rows = tuple(hits.filter((pl.col("key") == key) & pl.col(pattern))["line"].unique().sort().to_list())
+            rows = tuple(
+                hits.filter((pl.col("key") == key) & pl.col(pattern))["line"]
+                .unique()
+                .sort()
+                .to_list()
+            )
         out.append(Finding(column, pattern, evidence, whole_column=whole, lines=rows))
     return out
 
@@ -411,12 +519,19 @@ def screen_table(header: Sequence[str], rows: Iterable[tuple[int, Sequence[str]]
     return screen_values(header, frame, birth_columns, places)
 
 
-def screen_values(header: Sequence[str], values: pl.DataFrame, birth_columns: Iterable[str] = (),
-                  places: Iterable[str] = ()) -> list[Finding]:
+def screen_values(
+    header: Sequence[str],
+    values: pl.DataFrame,
+    birth_columns: Iterable[str] = (),
+    places: Iterable[str] = (),
+) -> list[Finding]:
     """:func:`screen_table` with the sampled fields as a frame in sample order: ``line``,
-    ``position`` (0-based field index, beyond the header too) and ``value`` as read."""
+    ``position`` (0-based field index, beyond the header too) and ``value`` as read.
+    """
     findings, flagged = _name_findings(header)
-    births = set(birth_columns) | {h for h in header if re.search(r"birth|born|dob", normalise_column(h))}
+    births = set(birth_columns) | {
+        h for h in header if re.search(r"birth|born|dob", normalise_column(h))
+    }
     birth_positions = [i for i, h in enumerate(header) if h in births]
     judged, hits = _judge(values.select(
         pl.col("position").cast(pl.Int64).alias("key"), pl.col("line").cast(pl.Int64), "value",
@@ -442,7 +557,9 @@ def _leaves(value: Any, path: str) -> Iterator[tuple[str, str]]:
         yield path, value
 
 
-def screen_resources(resource_type: str, records: Iterable[tuple[int, Any]], places: Iterable[str] = ()) -> list[Finding]:
+def screen_resources(
+    resource_type: str, records: Iterable[tuple[int, Any]], places: Iterable[str] = ()
+) -> list[Finding]:
     """Findings of FHIR resources given as (line, parsed JSON), by element path and value.
 
     A Patient's ``birthDate`` is not judged: the reader keeps its year only and Patient
@@ -473,7 +590,11 @@ def screen_resources(resource_type: str, records: Iterable[tuple[int, Any]], pla
     findings = []
     for path, (pattern, lines) in sorted(path_hits.items()):
         where = ", ".join(str(n) for n in lines[:3])
-        findings.append(Finding(path, pattern, f"element present, line {where}" + (" ..." if len(lines) > 3 else "")))
+        findings.append(
+            Finding(
+                path, pattern, f"element present, line {where}" + (" ..." if len(lines) > 3 else "")
+            )
+        )
     for path, (col, k) in sorted(by_path.items()):
         findings.extend(_column_findings(path, col, hits, k))
     return findings
@@ -482,13 +603,16 @@ def screen_resources(resource_type: str, records: Iterable[tuple[int, Any]], pla
 def split_allowed(findings: Iterable[Finding], allowed: Mapping[str, str],
                   aliases: Mapping[str, str] | None = None) -> tuple[list[Finding], list[Finding]]:  # fmt: skip
     """(refused, allowed) findings. ``allowed`` maps a column (or the standard field it is
-    mapped to, via ``aliases`` column -> field; or a FHIR path prefix) to the written reason."""
+    mapped to, via ``aliases`` column -> field; or a FHIR path prefix) to the written reason.
+    """
     aliases = aliases or {}
     refused, kept = [], []
     for f in findings:
         reason = allowed.get(f.column) or allowed.get(aliases.get(f.column, "\0"))
         if reason is None:
-            reason = next((why for key, why in allowed.items() if f.column.startswith(key + ".")), None)
+            reason = next(
+                (why for key, why in allowed.items() if f.column.startswith(key + ".")), None
+            )
         if reason is None:
             refused.append(f)
         else:
@@ -515,7 +639,8 @@ def allowance_note(allowed: Sequence[Finding]) -> str:
 
 def quarantine_reason(finding: Finding) -> str:
     """The row_fault of a row holding a value that looks like an identifier: the column and
-    the pattern, never the value."""
+    the pattern, never the value.
+    """
     return f"identifier_in_value:field {finding.column!r} holds what looks like {PATTERNS[finding.pattern]}"
 
 
@@ -523,7 +648,8 @@ def quarantine_note(findings: Sequence[Finding]) -> str:
     """The ledger note of a file some of whose rows were quarantined by the screen."""
     return "identifier screen: rows quarantined, " + "; ".join(
         f"column {f.column!r}: {PATTERNS[f.pattern]} in {len(f.lines)} row(s), line "
-        + ", ".join(str(n) for n in f.lines[:3]) + (" ..." if len(f.lines) > 3 else "")
+        + ", ".join(str(n) for n in f.lines[:3])
+        + (" ..." if len(f.lines) > 3 else "")
         for f in findings
     )
 
@@ -538,7 +664,8 @@ def file_name_patterns(name: str) -> set[str]:
     """The patterns a file's name matches (its folders and extension left out): an e-mail
     address, a phone-like run of 9 to 15 digits (a date or a month has at most 8), or two
     capitalised words that read as a person's name. A name that matches is stored as its
-    hash (:func:`withheld_file_name`), never in clear."""
+    hash (:func:`withheld_file_name`), never in clear.
+    """
     stem = name.rsplit("/", 1)[-1]
     stem = stem.rsplit(".", 1)[0] if "." in stem else stem
     found: set[str] = set()
@@ -549,8 +676,13 @@ def file_name_patterns(name: str) -> set[str]:
             found.add("phone")
     words = [w for w in _NAME_PARTS.split(stem) if w]
     for a, b in itertools.pairwise(words):
-        if a.isalpha() and b.isalpha() and (
-            _looks_like_name(f"{a} {b}") or (a.isupper() and len(a) > 1 and _looks_like_name(f"{a}, {b}"))
+        if (
+            a.isalpha()
+            and b.isalpha()
+            and (
+                _looks_like_name(f"{a} {b}")
+                or (a.isupper() and len(a) > 1 and _looks_like_name(f"{a}, {b}"))
+            )
         ):
             found.add("person_name")
     return found
@@ -559,7 +691,8 @@ def file_name_patterns(name: str) -> set[str]:
 def withheld_file_name(rel_path: str, month: str | None) -> str:
     """What is stored for a file whose name looks identifying: its folder, the first 16 hex
     digits of the SHA-256 of its path, the extract month read from the name (so that dating
-    still works) and its extension."""
+    still works) and its extension.
+    """
     folder, _, base = rel_path.rpartition("/")
     suffix = "." + base.rsplit(".", 1)[-1] if "." in base else ""
     digest = hashlib.sha256(rel_path.encode("utf-8")).hexdigest()[:16]

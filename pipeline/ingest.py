@@ -36,7 +36,6 @@ from pipeline import identifiers
 from pipeline.manifest import source_config_sha256
 from pipeline.pseudonymise import SHARED_DOMAIN, PersonKeyCache, PseudonymKey, add_person_keys
 from pipeline.settings import STANDARD_FIELDS, STANDARD_REQUIRED, Settings, SourceConfig
-from pipeline.warehouse import with_frame
 
 #: Columns of the landed frame, all text except where typed.
 LANDED_COLUMNS = [
@@ -62,7 +61,9 @@ class InboxFile:
     rel_path: str
     sha256: str
     size_bytes: int
-    status: str = "new"  # new | already_ingested | duplicate_file | unreadable | held_back (config drift)
+    status: str = (
+        "new"  # new | already_ingested | duplicate_file | unreadable | held_back (config drift)
+    )
     same_as: str | None = None
     file_id: int | None = None
     #: why the file could not be read at the scan (status unreadable)
@@ -77,7 +78,9 @@ class InboxFile:
     def safe(self, message: str) -> str:
         """``message`` with the file's name withheld if the name looks identifying."""
         if self.name_withheld:
-            message = message.replace(str(self.path), self.rel_path).replace(self.path.name, self.rel_path)
+            message = message.replace(str(self.path), self.rel_path).replace(
+                self.path.name, self.rel_path
+            )
         return message
 
 
@@ -94,8 +97,14 @@ class IngestSummary:
 
 def _unreadable(path: Path, exc: OSError) -> FileFault:
     reason = exc.strerror or type(exc).__name__
-    hint = "check the file's owner and permissions" if isinstance(exc, PermissionError) else "check the file"
-    return FileFault(f"{path}: the file cannot be read ({reason}); {hint}, it is tried again next run")
+    hint = (
+        "check the file's owner and permissions"
+        if isinstance(exc, PermissionError)
+        else "check the file"
+    )
+    return FileFault(
+        f"{path}: the file cannot be read ({reason}); {hint}, it is tried again next run"
+    )
 
 
 def read_file_bytes(path: Path) -> bytes:
@@ -121,7 +130,9 @@ def sha256_of(path: Path) -> str:
     return digest.hexdigest()
 
 
-def scan_inbox(con: duckdb.DuckDBPyConnection | None, settings: Settings, inbox: Path) -> list[InboxFile]:
+def scan_inbox(
+    con: duckdb.DuckDBPyConnection | None, settings: Settings, inbox: Path
+) -> list[InboxFile]:
     """List every file of every source, in a stable order, marked new or already ingested."""
     seen: dict[tuple[str, str], str] = {}  # (source, sha) -> path first ingested with it
     recorded: set[tuple[str, str, str]] = set()  # (source, sha, path) already in the ledger
@@ -152,7 +163,9 @@ def scan_inbox(con: duckdb.DuckDBPyConnection | None, settings: Settings, inbox:
                 sha = sha256_of(path)
                 size = path.stat().st_size
             except OSError as exc:  # held back by land_inbox, with the reason
-                bad = InboxFile(source.id, path, rel, "", 0, status="unreadable", name_withheld=name_flags)
+                bad = InboxFile(
+                    source.id, path, rel, "", 0, status="unreadable", name_withheld=name_flags
+                )
                 bad.fault = bad.safe(str(_unreadable(path, exc)))
                 found.append(bad)
                 continue
@@ -179,18 +192,24 @@ def _decode(path: Path, data: bytes, encoding: str) -> str:
     except UnicodeDecodeError as exc:
         line = data[: exc.start].count(b"\n") + 1
         raise FileFault(
-            f"{path}: line {line}: bytes that are not {encoding} ({data[exc.start:exc.start + 4]!r}); "
+            f"{path}: line {line}: bytes that are not {encoding} ({data[exc.start : exc.start + 4]!r}); "
             f"re-export the file as {encoding}, or set 'encoding' in the source config"
         ) from None
 
 
-def _header_fault(path: Path, header: list[str], wanted: dict[str, str], delimiter: str | None) -> str | None:
+def _header_fault(
+    path: Path, header: list[str], wanted: dict[str, str], delimiter: str | None
+) -> str | None:
     """Why the header lacks a required column, or None; ``delimiter`` None: a Parquet schema."""
     missing = [col for col in wanted.values() if col not in header]
     if not missing:
         return None
     where = "line 1" if delimiter is not None else "the file's schema"
-    if delimiter is not None and len(header) == 1 and any(d in header[0] for d in ",;\t|" if d != delimiter):
+    if (
+        delimiter is not None
+        and len(header) == 1
+        and any(d in header[0] for d in ",;\t|" if d != delimiter)
+    ):
         return (
             f"{path}: line 1: the header has one column {header[0][:60]!r}; the file does not "
             f"seem to use the delimiter {delimiter!r} set for this source"
@@ -227,13 +246,15 @@ def fast_path_applies(text: str, delimiter: str) -> bool:
 def withheld_text(fields: list[str]) -> str:
     """The raw text kept for a row whose fields cannot be matched to the header with certainty
     (too many or too few): the field count and each field's length, never the text, since a
-    person token or a name may sit in any field."""
+    person token or a name may sit in any field.
+    """
     return f"[text withheld: {len(fields)} fields, lengths {','.join(str(len(f)) for f in fields)}]"
 
 
 def _rejoin(fields: list[str], delimiter: str) -> str:
     """A row's fields written back as one line of the file (quoted where the csv module
-    would quote them); for a file without quotes, the line as read."""
+    would quote them); for a file without quotes, the line as read.
+    """
     out = io.StringIO()
     # "\r\n" as the terminator: the csv module then quotes a field holding either character
     csv.writer(out, delimiter=delimiter, lineterminator="\r\n").writerow(fields)
@@ -268,7 +289,9 @@ def _rows_by_csv(path: Path, text: str, delimiter: str, n_fields: int,
         except StopIteration:
             break
         except csv.Error as exc:
-            raise FileFault(f"{path}: line {reader.line_num}: cannot be read as CSV ({exc})") from None
+            raise FileFault(
+                f"{path}: line {reader.line_num}: cannot be read as CSV ({exc})"
+            ) from None
         end = reader.line_num
         line_no, start = start, end + 1
         if not row or (len(row) == 1 and not row[0].strip()):
@@ -304,10 +327,15 @@ def _rows_in_bulk(text: str, delimiter: str, n_fields: int,
     """The same rows as :func:`_rows_by_csv`, for a file :func:`fast_path_applies` to: every
     line split at once in polars. Returns the rows and the identifier screen's sample (line,
     field position, value: the fields as read, before any padding), or None for a file with a
-    line over the csv module's field limit (left to the csv module, which names the line)."""
+    line over the csv module's field limit (left to the csv module, which names the line).
+    """
     if "\r" in text:  # a line ends at \r\n, \n or \r, as for the csv module
         text = text.replace("\r\n", "\n").replace("\r", "\n")
-    lines = pl.DataFrame({"raw_text": [text]}).select(pl.col("raw_text").str.split("\n")).explode("raw_text")
+    lines = (
+        pl.DataFrame({"raw_text": [text]})
+        .select(pl.col("raw_text").str.split("\n"))
+        .explode("raw_text")
+    )
     limit = csv.field_size_limit()
     if len(text) > limit and lines["raw_text"].str.len_chars().max() > limit:
         return None
@@ -316,7 +344,10 @@ def _rows_in_bulk(text: str, delimiter: str, n_fields: int,
     frame = (
         lines.with_row_index("line_no", offset=1)
         .slice(1)  # the header
-        .with_columns(pl.col("line_no").cast(pl.Int64), pl.col("raw_text").str.split(delimiter).alias("fields"))
+        .with_columns(
+            pl.col("line_no").cast(pl.Int64),
+            pl.col("raw_text").str.split(delimiter).alias("fields"),
+        )
         # a blank line (nothing but white space) is not a row; its number is still counted
         .filter(~((n == 1) & (fields.list.first().str.strip_chars(PY_WHITESPACE) == "")))
     )
@@ -390,7 +421,11 @@ def read_delimited(source: SourceConfig, item: InboxFile, reader: str = "auto",
     if extra:
         item.notes.append(f"columns not in the layout, ignored: {', '.join(extra)}")
     bulk = fast_path_applies(text, source.delimiter)
-    split = _rows_in_bulk(text, source.delimiter, len(header), index) if bulk and reader != "csv" else None
+    split = (
+        _rows_in_bulk(text, source.delimiter, len(header), index)
+        if bulk and reader != "csv"
+        else None
+    )
     if reader == "bulk" and split is None:
         raise ValueError(f"{path}: the bulk reader does not apply to this file")
     if split is not None:
@@ -426,12 +461,21 @@ TRUNCATED = ("truncated_line:the file's last line has no line end and may have b
              "lab to send the file again (or set last_line_end: optional if its files end so)")  # fmt: skip
 
 
-def _apply_screen(source: SourceConfig, item: InboxFile, path: Path, findings: list[identifiers.Finding],
-                  aliases: dict[str, str] | None = None, rows_ok: bool = True) -> list[identifiers.Finding]:
+def _apply_screen(
+    source: SourceConfig,
+    item: InboxFile,
+    path: Path,
+    findings: list[identifiers.Finding],
+    aliases: dict[str, str] | None = None,
+    rows_ok: bool = True,
+) -> list[identifiers.Finding]:
     """Refuse the file (a FileFault) for any finding of a whole column the source does not
     allow; return the findings of a few values (their rows are quarantined), keep the rest.
-    ``rows_ok`` False: any finding refuses the file (records that are not stored as rows)."""
-    refused, allowed = identifiers.split_allowed(findings, source.allowed_identifier_columns, aliases)
+    ``rows_ok`` False: any finding refuses the file (records that are not stored as rows).
+    """
+    refused, allowed = identifiers.split_allowed(
+        findings, source.allowed_identifier_columns, aliases
+    )
     whole = [f for f in refused if f.whole_column or not rows_ok]
     if whole:
         raise FileFault(identifiers.refusal_message(path, whole, source.id))
@@ -444,7 +488,8 @@ def _apply_screen(source: SourceConfig, item: InboxFile, path: Path, findings: l
 
 def _quarantine(frame: pl.DataFrame, findings: list[identifiers.Finding]) -> pl.DataFrame:
     """Reject every row holding a value the screen flagged (``identifier_in_value``): the reason
-    names the column and the pattern, and the row's text is not kept."""
+    names the column and the pattern, and the row's text is not kept.
+    """
     if not findings:
         return frame
     reasons: dict[int, str] = {}
@@ -457,8 +502,10 @@ def _quarantine(frame: pl.DataFrame, findings: list[identifiers.Finding]) -> pl.
     hit = pl.col("_reason").is_not_null()
     return out.with_columns(
         pl.when(hit).then(pl.col("_reason")).otherwise(pl.col("row_fault")).alias("row_fault"),
-        pl.when(hit).then(pl.lit("[text withheld: the identifier screen flagged a field]"))
-        .otherwise(pl.col("raw_text")).alias("raw_text"),
+        pl.when(hit)
+        .then(pl.lit("[text withheld: the identifier screen flagged a field]"))
+        .otherwise(pl.col("raw_text"))
+        .alias("raw_text"),
     ).drop("_reason")
 
 
@@ -518,7 +565,8 @@ def _parquet_fault(path: Path, exc: BaseException) -> FileFault:
 
 def _as_text(path: Path, frame: pl.DataFrame) -> pl.DataFrame:
     """Every column as text, as reported (numbers and dates in their usual text form); a
-    missing value is an empty field, as in a delimited file."""
+    missing value is an empty field, as in a delimited file.
+    """
     out = []
     for name, dtype in frame.schema.items():
         if dtype.is_nested() or dtype == pl.Object:
@@ -528,10 +576,14 @@ def _as_text(path: Path, frame: pl.DataFrame) -> pl.DataFrame:
     try:
         return frame.select(out).with_columns(pl.all().fill_null(""))
     except pl.exceptions.PolarsError as exc:  # e.g. a binary column that is not UTF-8
-        raise FileFault(f"{path}: a column cannot be read as text ({str(exc).splitlines()[0][:160]})") from None
+        raise FileFault(
+            f"{path}: a column cannot be read as text ({str(exc).splitlines()[0][:160]})"
+        ) from None
 
 
-def read_parquet(source: SourceConfig, item: InboxFile, places: tuple[str, ...] = ()) -> pl.DataFrame:
+def read_parquet(
+    source: SourceConfig, item: InboxFile, places: tuple[str, ...] = ()
+) -> pl.DataFrame:
     """Read one Parquet file (layout ``parquet``) into landed rows, mapped by ``columns``.
 
     ``line_no`` is the row's 1-based number in the file; ``raw_text`` the row as compact JSON of
@@ -568,7 +620,11 @@ def read_parquet(source: SourceConfig, item: InboxFile, places: tuple[str, ...] 
         item.notes.append(f"columns not in the layout, ignored: {', '.join(extra)}")
     if not frame.height:
         raise FileFault(f"{path}: the file has a schema but no rows")
-    text = _as_text(path, frame).with_row_index("line_no", offset=1).with_columns(pl.col("line_no").cast(pl.Int64))
+    text = (
+        _as_text(path, frame)
+        .with_row_index("line_no", offset=1)
+        .with_columns(pl.col("line_no").cast(pl.Int64))
+    )
     del frame
     sample = pl.concat([
         text.with_row_index("row").filter(identifiers.sampled_mask(pl.col("row").cast(pl.Int64)))
@@ -580,9 +636,16 @@ def read_parquet(source: SourceConfig, item: InboxFile, places: tuple[str, ...] 
     flagged = _apply_screen(source, item, path, findings, {c: f for f, c in wanted.items()})
     token = pl.col(wanted["person_token"]).str.strip_chars(PY_WHITESPACE)
 
-    def masked(col: str) -> pl.Expr:  # str.replace of the token in every value, as in a line of text
+    def masked(
+        col: str,
+    ) -> pl.Expr:  # str.replace of the token in every value, as in a line of text
         value = pl.col(col)
-        return pl.when(token != "").then(value.str.split(token).list.join(_MASK)).otherwise(value).alias(col)
+        return (
+            pl.when(token != "")
+            .then(value.str.split(token).list.join(_MASK))
+            .otherwise(value)
+            .alias(col)
+        )
 
     rows = text.select(
         "line_no",
@@ -590,7 +653,9 @@ def read_parquet(source: SourceConfig, item: InboxFile, places: tuple[str, ...] 
         pl.lit(None, dtype=pl.String).alias("row_fault"),
         *(pl.col(c).alias(f) for f, c in wanted.items() if c in header),
     )
-    rows = rows.with_columns(pl.lit(None, dtype=pl.String).alias(f) for f in STANDARD_FIELDS if f not in rows.columns)
+    rows = rows.with_columns(
+        pl.lit(None, dtype=pl.String).alias(f) for f in STANDARD_FIELDS if f not in rows.columns
+    )
     return _to_landed(_quarantine(rows, flagged), source, item)
 
 
@@ -633,10 +698,14 @@ def _ndjson_lines(text: str) -> list[str]:
     return [line.removesuffix("\r") for line in text.split("\n")]
 
 
-def _read_patients(path: Path, source: SourceConfig, item: InboxFile, settings: Settings) -> dict[str, dict]:
+def _read_patients(
+    path: Path, source: SourceConfig, item: InboxFile, settings: Settings
+) -> dict[str, dict]:
     patients: dict[str, dict] = {}
     if not path.is_file():
-        raise FileFault(f"{path}: Patient.ndjson is missing beside {path.parent / 'Observation.ndjson'}")
+        raise FileFault(
+            f"{path}: Patient.ndjson is missing beside {path.parent / 'Observation.ndjson'}"
+        )
     text = _decode(path, read_file_bytes(path), "utf-8")
     sample: list[tuple[int, dict]] = []
     ids_by_line: dict[int, str] = {}
@@ -648,7 +717,11 @@ def _read_patients(path: Path, source: SourceConfig, item: InboxFile, settings: 
             res = json.loads(line)
         except json.JSONDecodeError as exc:
             raise FileFault(f"{path}: line {line_no}: not valid JSON ({exc.msg})") from None
-        if not isinstance(res, dict) or res.get("resourceType") != "Patient" or not isinstance(res.get("id"), str):
+        if (
+            not isinstance(res, dict)
+            or res.get("resourceType") != "Patient"
+            or not isinstance(res.get("id"), str)
+        ):
             raise FileFault(f"{path}: line {line_no}: expected a Patient resource with an id")
         if identifiers.sampled(len(patients)):
             sample.append((line_no, res))
@@ -658,7 +731,10 @@ def _read_patients(path: Path, source: SourceConfig, item: InboxFile, settings: 
             for ident in _objects(res, "identifier"):
                 value = _text(ident, "value")
                 if system and _text(ident, "system") == system and value:
-                    token, domain = value, SHARED_DOMAIN if source.linkage == "shared" else source.id
+                    token, domain = (
+                        value,
+                        SHARED_DOMAIN if source.linkage == "shared" else source.id,
+                    )
                     break
             addresses = _objects(res, "address")
             patients[res["id"]] = {
@@ -670,7 +746,12 @@ def _read_patients(path: Path, source: SourceConfig, item: InboxFile, settings: 
             }
         except _Malformed as exc:
             raise FileFault(f"{path}: line {line_no}: Patient {res['id']}: {exc}") from None
-    flagged = _apply_screen(source, item, path, identifiers.screen_resources("Patient", sample, district_places(settings)))
+    flagged = _apply_screen(
+        source,
+        item,
+        path,
+        identifiers.screen_resources("Patient", sample, district_places(settings)),
+    )
     # a Patient with a value that looks like an identifier: every Observation of it is
     # quarantined with the reason (the Patient records themselves are never stored)
     for f in flagged:
@@ -682,7 +763,11 @@ def _read_patients(path: Path, source: SourceConfig, item: InboxFile, settings: 
 def _observation_fields(res: dict) -> dict[str, str | None]:
     """The standard fields of one Observation; ``_Malformed`` when a field has the wrong type."""
     loinc = next(
-        (_text(c, "code") for c in _objects(_obj(res, "code"), "coding") if _text(c, "system") == "http://loinc.org"),
+        (
+            _text(c, "code")
+            for c in _objects(_obj(res, "code"), "coding")
+            if _text(c, "system") == "http://loinc.org"
+        ),
         None,
     )
     fields: dict[str, str | None] = {"test_code": loinc, "test_code_text": loinc}
@@ -741,14 +826,18 @@ def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) 
         except (json.JSONDecodeError, _Malformed) as exc:
             rec["row_fault"] = f"malformed_record:{getattr(exc, 'msg', str(exc))}"
             # not readable as an Observation: which part is what is not certain, no text kept
-            rec["raw_text"] = f"[text withheld: a record of {len(line)} characters that is not a readable Observation]"
+            rec["raw_text"] = (
+                f"[text withheld: a record of {len(line)} characters that is not a readable Observation]"
+            )
             for f, v in rec.items():
                 rows[f].append(v)
             continue
         patient = patients.get(subject.removeprefix("Patient/"))
         if patient is not None and "quarantine" in patient:
             rec["row_fault"] = patient["quarantine"]
-            rec["raw_text"] = "[text withheld: the identifier screen flagged a field of its Patient]"
+            rec["raw_text"] = (
+                "[text withheld: the identifier screen flagged a field of its Patient]"
+            )
             rec["person_token"] = patient["person_token"]
             rec["linkage_domain"] = patient["linkage_domain"]
             for f, v in rec.items():
@@ -767,8 +856,15 @@ def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) 
             rows[f].append(v)
     if not rows["line_no"]:
         raise FileFault(f"{path}: no Observation records")
-    flagged = _apply_screen(source, item, path, identifiers.screen_resources("Observation", sample, district_places(settings)))
-    frame = pl.DataFrame(rows, schema={f: pl.Int64 if f == "line_no" else pl.String for f in _FHIR_FIELDS})
+    flagged = _apply_screen(
+        source,
+        item,
+        path,
+        identifiers.screen_resources("Observation", sample, district_places(settings)),
+    )
+    frame = pl.DataFrame(
+        rows, schema={f: pl.Int64 if f == "line_no" else pl.String for f in _FHIR_FIELDS}
+    )
     frame = _quarantine(frame, flagged)
     return frame.with_columns(
         pl.lit(source.id).alias("source_id"), pl.lit(item.file_id, dtype=pl.Int64).alias("file_id")
@@ -793,7 +889,9 @@ def extract_month(rel_path: str, run_period: str) -> str:
 
 
 #: A date in ISO 8601 as the standard layout sends it: a calendar date, optionally a time.
-_ISO_DATE = r"\d{4}-\d{2}-\d{2}(?:[T ]\d{2}:\d{2}(?::\d{2}(?:[.,]\d+)?)?(?:Z|[+-]\d{2}(?::?\d{2})?)?)?"
+_ISO_DATE = (
+    r"\d{4}-\d{2}-\d{2}(?:[T ]\d{2}:\d{2}(?::\d{2}(?:[.,]\d+)?)?(?:Z|[+-]\d{2}(?::?\d{2})?)?)?"
+)
 _STRFTIME_PARTS = {"Y": r"\d{4}", "m": r"\d{2}", "d": r"\d{2}", "H": r"\d{2}", "M": r"\d{2}", "S": r"\d{2}",
                    "y": r"\d{2}", "f": r"\d{1,9}", "b": r"[A-Za-z]{3}", "B": r"[A-Za-z]{3,9}",
                    "z": r"[+-]\d{4}", "%": "%"}  # fmt: skip
@@ -802,7 +900,8 @@ _STRFTIME_PARTS = {"Y": r"\d{4}", "m": r"\d{2}", "d": r"\d{2}", "H": r"\d{2}", "
 def date_shape(date_format: str | None) -> str:
     """The regular expression a date text must match in full: ISO 8601 when no format is set,
     else the configured strftime format with each part at its full width (``%d`` two digits),
-    so that trailing text and unpadded dates are refused rather than read leniently."""
+    so that trailing text and unpadded dates are refused rather than read leniently.
+    """
     if date_format is None:
         return _ISO_DATE
     out, i = [], 0
@@ -831,11 +930,15 @@ _CHECKED_FIELDS = {
 
 def reject_control_characters(frame: pl.DataFrame) -> pl.DataFrame:
     """Reject a row with a control character in any field (``control_character``), naming
-    the field, not the value; in the kept raw text each such character becomes U+FFFD."""
+    the field, not the value; in the kept raw text each such character becomes U+FFFD.
+    """
     fault = pl.lit(None, dtype=pl.String)
     for col, name in reversed(_CHECKED_FIELDS.items()):
-        fault = pl.when(pl.col(col).str.contains(CONTROL)).then(
-            pl.lit(f"control_character:field {name!r} holds a control character")).otherwise(fault)
+        fault = (
+            pl.when(pl.col(col).str.contains(CONTROL))
+            .then(pl.lit(f"control_character:field {name!r} holds a control character"))
+            .otherwise(fault)
+        )
     return frame.with_columns(
         pl.coalesce(pl.col("row_fault"), fault).alias("row_fault"),
         pl.col("raw_text").str.replace_all(CONTROL, "\ufffd"),
@@ -846,7 +949,8 @@ def undated_report_date(run_period: str, fallback: dt.date) -> dt.date:
     """The report date of a row without one, in a file without a month in its name: the last day
     of the period of the run that first ingests the file (never the day it happened to be
     loaded, which is after the period end and would hide the rows from their month);
-    ``fallback`` only when ``run_period`` is not a month (``sources check`` without a period)."""
+    ``fallback`` only when ``run_period`` is not a month (``sources check`` without a period).
+    """
     match = re.fullmatch(r"(\d{4})-(0[1-9]|1[0-2])", run_period or "")
     if not match:
         return fallback
@@ -890,8 +994,10 @@ def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, undate
     reported_given = pl.col("reported_text").str.strip_chars().fill_null("") != ""
     out = frame.with_columns(
         collected.alias("collected_date"),
-        pl.coalesce(parse("reported_text"), pl.when(later).then(collected_month_end).otherwise(pl.lit(extract_date)))
-        .alias("reported_date"),
+        pl.coalesce(
+            parse("reported_text"),
+            pl.when(later).then(collected_month_end).otherwise(pl.lit(extract_date)),
+        ).alias("reported_date"),
         pl.when(parse("reported_text").is_not_null())
         .then(pl.lit("reported"))
         .when(later)
@@ -912,7 +1018,8 @@ def add_dates(frame: pl.DataFrame, source: SourceConfig, item: InboxFile, undate
 
 def district_places(settings: Settings) -> tuple[str, ...]:
     """The region's district names and codes: two capitalised words there are a place, not a
-    person (the identifier screen leaves them alone)."""
+    person (the identifier screen leaves them alone).
+    """
     return (*settings.districts.values(), *settings.districts.keys())
 
 
@@ -920,14 +1027,17 @@ def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, u
                     run_day: dt.date | None = None) -> pl.DataFrame:  # fmt: skip
     """Landed rows of one file, dates parsed, the person token still present; ``undated_on`` is
     the report date of rows without one in a file without a month in its name, ``run_day`` the
-    day of the run (a collection date after it is rejected; today if not given)."""
+    day of the run (a collection date after it is rejected; today if not given).
+    """
     if source.layout == "fhir_ndjson":
         frame = read_fhir_export(source, item, settings)
     elif source.layout == "parquet":
         frame = read_parquet(source, item, district_places(settings))
     else:
         frame = read_delimited(source, item, places=district_places(settings))
-    return add_dates(reject_control_characters(frame.select(LANDED_COLUMNS)), source, item, undated_on, run_day)
+    return add_dates(
+        reject_control_characters(frame.select(LANDED_COLUMNS)), source, item, undated_on, run_day
+    )
 
 
 def land_inbox(
@@ -986,7 +1096,9 @@ def land_inbox(
             summary.held_back.append((item.rel_path, item.fault or ""))
         elif original:
             status = "duplicate_file"
-            message = f"same content as {item.same_as}, already ingested; every row counted as duplicate"
+            message = (
+                f"same content as {item.same_as}, already ingested; every row counted as duplicate"
+            )
             rows_read = original[0][0]
             summary.files_skipped += 1
         else:  # new, or a copy of a file that was not ingested (held back): read it
@@ -1001,7 +1113,9 @@ def land_inbox(
                 keyed = add_person_keys(frame, key, keys)
                 del frame
                 if keyed.schema != _LANDED_SCHEMA:
-                    raise AssertionError(f"landed columns {dict(keyed.schema)} differ from {dict(_LANDED_SCHEMA)}")
+                    raise AssertionError(
+                        f"landed columns {dict(keyed.schema)} differ from {dict(_LANDED_SCHEMA)}"
+                    )
                 sink(con, keyed)
                 del keyed
                 if rows_read:
@@ -1031,10 +1145,16 @@ def land_inbox(
 def empty_landed() -> pl.DataFrame:
     """The landed rows of a file as the sink receives them, without rows: the landed columns
     without the token, the parsed dates, then the person key (the order a read and keyed file
-    has)."""
+    has).
+    """
     schema = {c: pl.Int64 if c in ("file_id", "line_no") else pl.String
               for c in LANDED_COLUMNS if c not in ("person_token", "linkage_domain")}  # fmt: skip
-    schema.update(collected_date=pl.Date, reported_date=pl.Date, reported_date_basis=pl.String, person_key=pl.String)
+    schema.update(
+        collected_date=pl.Date,
+        reported_date=pl.Date,
+        reported_date_basis=pl.String,
+        person_key=pl.String,
+    )
     return pl.DataFrame(schema=schema)
 
 

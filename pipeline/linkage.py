@@ -15,11 +15,19 @@ from pathlib import Path
 import duckdb
 import polars as pl
 
+from pipeline.measures import MEASURED_ANALYTES, measure_frame
 from pipeline.periods import Period
 from pipeline.settings import Settings
-from pipeline.measures import MEASURED_ANALYTES, measure_frame
-from pipeline.warehouse import (build_table, fetch_frame, replace_period_frame, replace_period_rows,
-                                drop_relation, sql_path, swap_period_rows, with_frame)
+from pipeline.warehouse import (
+    build_table,
+    drop_relation,
+    fetch_frame,
+    replace_period_frame,
+    replace_period_rows,
+    sql_path,
+    swap_period_rows,
+    with_frame,
+)
 
 
 @dataclass
@@ -34,9 +42,15 @@ def trajectory_rules(settings: Settings) -> pl.DataFrame:
     """One row per event rule, from the trajectories settings."""
     t = settings.pipeline.trajectories
     rows = [
-        {"rule_id": f"sustained_decline_{round(x * 100)}", "event_type": "sustained_decline",
-         "measure": "egfr", "comparison": "at_or_below_fraction_of_baseline", "threshold": x,
-         "min_span_days": t.decline_min_span_days, "after_baseline": True}
+        {
+            "rule_id": f"sustained_decline_{round(x * 100)}",
+            "event_type": "sustained_decline",
+            "measure": "egfr",
+            "comparison": "at_or_below_fraction_of_baseline",
+            "threshold": x,
+            "min_span_days": t.decline_min_span_days,
+            "after_baseline": True,
+        }
         for x in t.decline_thresholds
     ]
     rows += [
@@ -78,8 +92,11 @@ def event_params(settings: Settings, period: Period) -> dict:
 
 
 def write_trajectory_rules(con: duckdb.DuckDBPyConnection, settings: Settings) -> None:
-    with_frame(con, trajectory_rules(settings),
-               "create or replace table reference.trajectory_rules as select * from _frame")
+    with_frame(
+        con,
+        trajectory_rules(settings),
+        "create or replace table reference.trajectory_rules as select * from _frame",
+    )
 
 
 def build_known_at_period_end(con: duckdb.DuckDBPyConnection, period: Period) -> bool:
@@ -103,16 +120,23 @@ def build_known_at_period_end(con: duckdb.DuckDBPyConnection, period: Period) ->
         )
         return True
     con.execute("create or replace temp view versions_in_scope as select * from result_versions")
-    build_table(con, "result_versions_resolved", "versions_as_of", {"as_of": period.end}, temporary=True)
+    build_table(
+        con, "result_versions_resolved", "versions_as_of", {"as_of": period.end}, temporary=True
+    )
     con.execute("drop view versions_in_scope")
     build_table(con, "results_known", params={"period_end": period.end})
     con.execute("drop table versions_as_of")
     return False
 
 
-def build_person_tables(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period,
-                        sharded: bool = False, as_stored: bool = False,
-                        snapshot: Snapshot | None = None) -> int:
+def build_person_tables(
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    period: Period,
+    sharded: bool = False,
+    as_stored: bool = False,
+    snapshot: Snapshot | None = None,
+) -> int:
     """From ``results_known``: the measures known at the period end, daily values, events
     and person status; returns the persons whose events were computed.
 
@@ -131,7 +155,8 @@ def build_person_tables(con: duckdb.DuckDBPyConnection, settings: Settings, peri
         )
     else:
         results = fetch_frame(
-            con, "select * from results_known where list_contains($analytes, analyte)",
+            con,
+            "select * from results_known where list_contains($analytes, analyte)",
             {"analytes": list(MEASURED_ANALYTES)},
         )
         known = measure_frame(results, settings)
@@ -174,7 +199,9 @@ LOGIC_FILES = tuple(
 )  # fmt: skip
 
 
-def usable_snapshot(con: duckdb.DuckDBPyConnection, period: Period, fingerprint: str) -> Snapshot | None:
+def usable_snapshot(
+    con: duckdb.DuckDBPyConnection, period: Period, fingerprint: str
+) -> Snapshot | None:
     """The latest built period, when it ends before this one and was built by the same logic."""
     rows = con.execute(
         "select period, period_end, max_file_id, fingerprint from link_snapshots "
@@ -192,10 +219,15 @@ def changed_persons(con: duckdb.DuckDBPyConnection, period: Period, snapshot: Sn
     """``link_persons``: the persons whose results as known at this period end may differ
     from those known when the snapshot was built: a version ingested since, or reported between
     the two period ends, and (as in the validate stage's scope) every person sharing a version
-    partition with one of those. Every other person's events are the snapshot's."""
+    partition with one of those. Every other person's events are the snapshot's.
+    """
     from pipeline.validate import close_over_partitions
 
-    params = {"max_file_id": snapshot.max_file_id, "snap_end": snapshot.period_end, "period_end": period.end}
+    params = {
+        "max_file_id": snapshot.max_file_id,
+        "snap_end": snapshot.period_end,
+        "period_end": period.end,
+    }
     if _same_seed_as_validate(con, params):
         # the usual month: the versions ingested since the snapshot are this run's, and no
         # earlier one is reported between the two period ends, so the seed is the validate
@@ -212,7 +244,8 @@ def changed_persons(con: duckdb.DuckDBPyConnection, period: Period, snapshot: Sn
 
 def _same_seed_as_validate(con: duckdb.DuckDBPyConnection, params: dict) -> bool:
     """Whether this run's validate stage settled a touched scope whose seed (this run's new
-    versions) is exactly the snapshot's seed."""
+    versions) is exactly the snapshot's seed.
+    """
     touched = con.execute(
         "select count(*) from duckdb_tables() where temporary and table_name = 'scope_persons'"
     ).fetchall()[0][0]
@@ -224,14 +257,19 @@ def _same_seed_as_validate(con: duckdb.DuckDBPyConnection, params: dict) -> bool
         where (file_id > $max_file_id and file_id not in (select file_id from landed_files))
            or (file_id <= $max_file_id and reported_date > $snap_end and reported_date <= $period_end)
         """,
-        {"max_file_id": params["max_file_id"], "snap_end": params["snap_end"], "period_end": params["period_end"]},
+        {
+            "max_file_id": params["max_file_id"],
+            "snap_end": params["snap_end"],
+            "period_end": params["period_end"],
+        },
     ).fetchall()[0][0]
     return other == 0
 
 
-def carry_over(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period,
-               snapshot: Snapshot) -> int:
-    """This period's person-level rows from the snapshot's, for every person whose results did
+def carry_over(
+    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period, snapshot: Snapshot
+) -> int:
+    """Build this period's person-level rows from the snapshot's, for every person whose results did
     not change since it was built; the changed persons' rows computed from their own results in
     a scratch database with the same SQL (daily values, events, person status). Returns the
     changed persons.
@@ -252,7 +290,9 @@ def carry_over(con: duckdb.DuckDBPyConnection, settings: Settings, period: Perio
         for table in tables:
             _copy_into(scratch, table, con.sql(f"select * from {table}").to_arrow_table())
         for table in ("results_known", "measures_known"):
-            rows = con.sql(f"select * from {table} semi join link_persons using (person_key)").to_arrow_table()
+            rows = con.sql(
+                f"select * from {table} semi join link_persons using (person_key)"
+            ).to_arrow_table()
             _copy_into(scratch, table, rows)
         build_table(scratch, "daily_values_averaged", params=params)
         build_table(scratch, "kidney_events", params=params)
@@ -261,7 +301,9 @@ def carry_over(con: duckdb.DuckDBPyConnection, settings: Settings, period: Perio
                  for t in ("daily_values_averaged", "kidney_events", "person_status")}  # fmt: skip
     finally:
         scratch.close()
-    con.execute("delete from daily_values_averaged where person_key in (select person_key from link_persons)")
+    con.execute(
+        "delete from daily_values_averaged where person_key in (select person_key from link_persons)"
+    )
     _insert_arrow(con, "daily_values_averaged", fresh["daily_values_averaged"])
     con.execute(
         "create or replace temp table kidney_events_new as "
@@ -296,8 +338,12 @@ def _copy_into(con: duckdb.DuckDBPyConnection, table: str, rows: object) -> None
     with_frame(con, rows, f"create table {table} as select * from _frame")
 
 
-def record_snapshot(con: duckdb.DuckDBPyConnection, period: Period, fingerprint: str, recomputed: int) -> None:
-    persons = con.execute("select count(*) from person_status where period = ?", [period.label]).fetchall()[0][0]
+def record_snapshot(
+    con: duckdb.DuckDBPyConnection, period: Period, fingerprint: str, recomputed: int
+) -> None:
+    persons = con.execute(
+        "select count(*) from person_status where period = ?", [period.label]
+    ).fetchall()[0][0]
     con.execute("delete from link_snapshots where period = ?", [period.label])
     con.execute(
         "insert into link_snapshots select ?, ?, (select coalesce(max(file_id), 0) from ingest_files), "
@@ -315,8 +361,9 @@ PERSON_TABLE_ORDER = {
 }
 
 
-def build_person_tables_sharded(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period,
-                                work: Path) -> int:
+def build_person_tables_sharded(
+    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period, work: Path
+) -> int:
     """The same tables through person-hash shards (executor ``shards`` or ``dask``)."""
     from pipeline.shards import export_shard_inputs, load_shard_outputs, run_shards
 
@@ -333,21 +380,27 @@ def build_person_tables_sharded(con: duckdb.DuckDBPyConnection, settings: Settin
     return len(done)
 
 
-def link_stage(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period,
-               work: Path | None = None) -> LinkSummary:
+def link_stage(
+    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period, work: Path | None = None
+) -> LinkSummary:
     """The link stage; with executor ``shards`` or ``dask`` the person-level tables are built
-    per person-hash shard in ``work`` (pipeline/shards.py)."""
+    per person-hash shard in ``work`` (pipeline/shards.py).
+    """
     write_trajectory_rules(con, settings)
     as_stored = build_known_at_period_end(con, period)
     fingerprint = logic_fingerprint(settings)
     if settings.pipeline.execution.executor == "local" or work is None:
         snapshot = usable_snapshot(con, period, fingerprint) if as_stored else None
-        recomputed = build_person_tables(con, settings, period, as_stored=as_stored, snapshot=snapshot)
+        recomputed = build_person_tables(
+            con, settings, period, as_stored=as_stored, snapshot=snapshot
+        )
     else:
         build_person_tables_sharded(con, settings, period, work)
         recomputed = -1
     record_snapshot(con, period, fingerprint, recomputed)
-    persons = con.execute("select count(*) from person_status where period = ?", [period.label]).fetchall()[0][0]
+    persons = con.execute(
+        "select count(*) from person_status where period = ?", [period.label]
+    ).fetchall()[0][0]
     confirmed, pending = con.execute(
         "select count(*) filter (where event_status = 'confirmed'), "
         "count(*) filter (where event_status = 'pending') from kidney_events where period = ?",

@@ -54,10 +54,13 @@ def effective_config(settings: Settings) -> dict[str, Any]:
 def source_config_sha256(settings: Settings, source_id: str) -> str:
     """What one source's stored rows depend on: its own config, the analytes (codes, units,
     factors, readings) and the plausible ranges. Recorded per file in ``ingest_files``; a run
-    whose current hash differs says so and holds the source's new files back (reprocess)."""
-    data = {"source": settings.source(source_id).model_dump(mode="json"),
-            "analytes": settings.analytes.model_dump(mode="json"),
-            "ranges": {k: v.model_dump(mode="json") for k, v in settings.pipeline.ranges.items()}}
+    whose current hash differs says so and holds the source's new files back (reprocess).
+    """
+    data = {
+        "source": settings.source(source_id).model_dump(mode="json"),
+        "analytes": settings.analytes.model_dump(mode="json"),
+        "ranges": {k: v.model_dump(mode="json") for k, v in settings.pipeline.ranges.items()},
+    }
     text = json.dumps(data, sort_keys=True, separators=(",", ":"))
     return hashlib.sha256(text.encode()).hexdigest()
 
@@ -69,7 +72,8 @@ def config_sha256(settings: Settings) -> str:
 
 def input_files(con: duckdb.DuckDBPyConnection, run_period: str) -> list[dict[str, Any]]:
     """Every file version in the ledger with its hash and outcome counts; ``this_run`` marks
-    the ones this run ingested or held back."""
+    the ones this run ingested or held back.
+    """
     rows = con.execute(
         """
         select source_id, file_path, version, sha256, status, message, rows_read, rows_accepted,
@@ -81,14 +85,20 @@ def input_files(con: duckdb.DuckDBPyConnection, run_period: str) -> list[dict[st
     keys = ("source_id", "file_path", "version", "sha256", "status", "message", "rows_read",
             "rows_accepted", "rows_rejected", "rows_superseded", "rows_duplicate", "rows_withdrawn",
             "rows_pending")  # fmt: skip
-    return [{**dict(zip(keys, r[:-1])), "this_run": r[-1] == run_period} for r in rows]
+    return [
+        {**dict(zip(keys, r[:-1], strict=False)), "this_run": r[-1] == run_period} for r in rows
+    ]
 
 
 def build_manifest(run_id: str, started_at: dt.datetime, settings: Settings, period: str,
                    demo_key: bool, stages: dict[str, dict[str, Any]], summary: dict[str, Any],
                    files: list[dict[str, Any]]) -> dict[str, Any]:  # fmt: skip
-    held = bool(summary.get("held_back_sources") or summary.get("held_back_files") or summary.get("withheld_tables")
-                or (summary.get("missing_sources") and summary.get("missing_sources_policy") == "hold"))
+    held = bool(
+        summary.get("held_back_sources")
+        or summary.get("held_back_files")
+        or summary.get("withheld_tables")
+        or (summary.get("missing_sources") and summary.get("missing_sources_policy") == "hold")
+    )
     m = settings.pipeline.measures
     return {
         "run_id": run_id,
@@ -100,28 +110,48 @@ def build_manifest(run_id: str, started_at: dt.datetime, settings: Settings, per
         "git_commit": git_commit(),
         "config_sha256": config_sha256(settings),
         "demo_key": demo_key,
-        "equations": {"adult": m.adult_equation, "child": m.child_equation,
-                      "child_with_height": m.child_equation_with_height,
-                      "use_height_for_children": m.use_height_for_children,
-                      "cystatin": "ckd_epi_2012_cystatin" if m.use_cystatin else None,
-                      "creatinine_with_cystatin": "ckd_epi_2021_creatinine_cystatin"
-                      if m.combine_same_day_cystatin else None},  # fmt: skip
-        "thresholds": {"measures": settings.pipeline.measures.model_dump(mode="json"),
-                       "trajectories": settings.pipeline.trajectories.model_dump(mode="json"),
-                       "summaries": settings.pipeline.summaries.model_dump(mode="json"),
-                       "disclosure": settings.pipeline.disclosure.model_dump(mode="json"),
-                       "quality_gate": settings.pipeline.quality_gate.model_dump(mode="json")},  # fmt: skip
+        "equations": {
+            "adult": m.adult_equation,
+            "child": m.child_equation,
+            "child_with_height": m.child_equation_with_height,
+            "use_height_for_children": m.use_height_for_children,
+            "cystatin": "ckd_epi_2012_cystatin" if m.use_cystatin else None,
+            "creatinine_with_cystatin": "ckd_epi_2021_creatinine_cystatin"
+            if m.combine_same_day_cystatin
+            else None,
+        },  # fmt: skip
+        "thresholds": {
+            "measures": settings.pipeline.measures.model_dump(mode="json"),
+            "trajectories": settings.pipeline.trajectories.model_dump(mode="json"),
+            "summaries": settings.pipeline.summaries.model_dump(mode="json"),
+            "disclosure": settings.pipeline.disclosure.model_dump(mode="json"),
+            "quality_gate": settings.pipeline.quality_gate.model_dump(mode="json"),
+        },  # fmt: skip
         "input_files": files,
-        "stages": {name: {k: v for k, v in info.items() if k != "seconds"} for name, info in stages.items()},
+        "stages": {
+            name: {k: v for k, v in info.items() if k != "seconds"} for name, info in stages.items()
+        },
         "durations_seconds": {name: info.get("seconds") for name, info in stages.items()},
-        "quality_gate": {"held_back_sources": summary.get("held_back_sources", {}),
-                         "held_back_files": summary.get("held_back_files", {}),
-                         "batch_checks": summary.get("batch_checks", {})},  # fmt: skip
+        "quality_gate": {
+            "held_back_sources": summary.get("held_back_sources", {}),
+            "held_back_files": summary.get("held_back_files", {}),
+            "batch_checks": summary.get("batch_checks", {}),
+        },  # fmt: skip
         "headline": summary.get("headline", {}),
         # what the run says about its own period (pipeline/period_checks.py, unmapped codes)
-        "period_checks": {k: summary.get(k) for k in (
-            "sources", "warehouse_sources", "missing_sources", "missing_sources_policy",
-            "rows_outside_period", "rows_outside_period_notes", "unmapped_codes", "indicators_lack")},
+        "period_checks": {
+            k: summary.get(k)
+            for k in (
+                "sources",
+                "warehouse_sources",
+                "missing_sources",
+                "missing_sources_policy",
+                "rows_outside_period",
+                "rows_outside_period_notes",
+                "unmapped_codes",
+                "indicators_lack",
+            )
+        },
     }
 
 
@@ -137,4 +167,3 @@ def record_run(con: duckdb.DuckDBPyConnection, manifest: dict[str, Any]) -> None
          manifest["config_sha256"], manifest["demo_key"], json.dumps(manifest, default=str),
          revision.get("number"), revision.get("reason")],
     )  # fmt: skip
-

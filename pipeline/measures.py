@@ -18,10 +18,16 @@ from pipeline.settings import MeasureSettings, Settings
 from pipeline.warehouse import fetch_frame, with_frame
 
 EQUATIONS = {
-    "ckd_epi_2021_creatinine": lambda scr, age, female, height: eq.ckd_epi_2021_creatinine(scr, age, female),
-    "ckd_epi_2009_creatinine": lambda scr, age, female, height: eq.ckd_epi_2009_creatinine(scr, age, female),
+    "ckd_epi_2021_creatinine": lambda scr, age, female, height: eq.ckd_epi_2021_creatinine(
+        scr, age, female
+    ),
+    "ckd_epi_2009_creatinine": lambda scr, age, female, height: eq.ckd_epi_2009_creatinine(
+        scr, age, female
+    ),
     "ekfc_creatinine": lambda scr, age, female, height: eq.ekfc_creatinine(scr, age, female),
-    "ckid_u25_creatinine": lambda scr, age, female, height: eq.ckid_u25_creatinine(scr, height, age, female),
+    "ckid_u25_creatinine": lambda scr, age, female, height: eq.ckid_u25_creatinine(
+        scr, height, age, female
+    ),
 }
 
 MEASURE_COLUMNS = [
@@ -58,7 +64,8 @@ MID_YEAR = (7, 1)
 def age_at_collection(columns: list[str]) -> pl.Expr:
     """Age in years (fractional) at collection, estimated from the birth year at mid-year
     (:data:`MID_YEAR`); ``age_years`` where the birth year is not among the columns. Never
-    below 0 (a result collected in the birth year before 1 July)."""
+    below 0 (a result collected in the birth year before 1 July).
+    """
     if "birth_year" not in columns:
         return pl.col("age_years").cast(pl.Float64)
     born = pl.date(pl.col("birth_year"), MID_YEAR[0], MID_YEAR[1])
@@ -72,7 +79,9 @@ def equation_for(m: MeasureSettings) -> pl.Expr:
     child = (age >= m.min_age_years) & (age < m.adult_min_age_years)
     with_height = pl.col("height_cm").is_not_null() & pl.lit(m.use_height_for_children)
     return (
-        pl.when(pl.col("comparator").is_not_null() | (pl.col("sex") == "U") | (age < m.min_age_years))
+        pl.when(
+            pl.col("comparator").is_not_null() | (pl.col("sex") == "U") | (age < m.min_age_years)
+        )
         .then(None)
         .when(age >= m.adult_min_age_years)
         .then(pl.lit(m.adult_equation))
@@ -99,16 +108,23 @@ def egfr_reason(m: MeasureSettings) -> pl.Expr:
 
 
 def compute_egfr(creatinine: pl.DataFrame, m: MeasureSettings) -> pl.DataFrame:
-    """eGFR per creatinine row: equation chosen by age, G category, hyperfiltration flag."""
+    """EGFR per creatinine row: equation chosen by age, G category, hyperfiltration flag."""
     female = pl.when(pl.col("sex") == "F").then(True).when(pl.col("sex") == "M").then(False)
     scr, age, height = pl.col("value"), pl.col("age_exact"), pl.col("height_cm")
     frame = creatinine.with_columns(equation_for(m).alias("egfr_equation"))
     egfr = pl.lit(None, dtype=pl.Float64)
     for name in dict.fromkeys([m.adult_equation, m.child_equation, m.child_equation_with_height]):
-        egfr = pl.when(pl.col("egfr_equation") == name).then(EQUATIONS[name](scr, age, female, height)).otherwise(egfr)
+        egfr = (
+            pl.when(pl.col("egfr_equation") == name)
+            .then(EQUATIONS[name](scr, age, female, height))
+            .otherwise(egfr)
+        )
     frame = frame.with_columns(egfr.alias("egfr"))
     return frame.with_columns(
-        pl.when(pl.col("egfr").is_null()).then(None).otherwise(pl.col("egfr_equation")).alias("egfr_equation"),
+        pl.when(pl.col("egfr").is_null())
+        .then(None)
+        .otherwise(pl.col("egfr_equation"))
+        .alias("egfr_equation"),
         egfr_reason(m).alias("egfr_reason"),
         pl.col("egfr").alias("egfr_creatinine"),
     )
@@ -118,7 +134,9 @@ def _female() -> pl.Expr:
     return pl.when(pl.col("sex") == "F").then(True).when(pl.col("sex") == "M").then(False)
 
 
-def add_cystatin(creatinine: pl.DataFrame, cystatin: pl.DataFrame, m: MeasureSettings) -> tuple[pl.DataFrame, pl.DataFrame]:
+def add_cystatin(
+    creatinine: pl.DataFrame, cystatin: pl.DataFrame, m: MeasureSettings
+) -> tuple[pl.DataFrame, pl.DataFrame]:
     """Cystatin C eGFR, and the combined equation on creatinine rows with a same-day cystatin C.
 
     CKD-EPI 2012 cystatin C (Inker et al., NEJM 2012) for each uncensored cystatin C from 18; on a
@@ -134,34 +152,53 @@ def add_cystatin(creatinine: pl.DataFrame, cystatin: pl.DataFrame, m: MeasureSet
         .alias("egfr_cys_only")
     )
     if not m.combine_same_day_cystatin:
-        same_day = cystatin.head(0).select("person_key", "collected_date", pl.col("value").alias("scys"))
+        same_day = cystatin.head(0).select(
+            "person_key", "collected_date", pl.col("value").alias("scys")
+        )
     else:
         same_day = (
             cystatin.filter(pl.col("comparator").is_null())
             .group_by("person_key", "collected_date")
             .agg(pl.col("value").mean().alias("scys"))
         )
-    creatinine = creatinine.join(same_day, on=["person_key", "collected_date"], how="left", maintain_order="left")
+    creatinine = creatinine.join(
+        same_day, on=["person_key", "collected_date"], how="left", maintain_order="left"
+    )
     combined = eq.ckd_epi_2021_creatinine_cystatin(pl.col("value"), pl.col("scys"), age, _female())
     use_combined = pl.col("scys").is_not_null() & pl.col("egfr").is_not_null() & adult
     creatinine = creatinine.with_columns(
         pl.when(use_combined).then(combined).otherwise(pl.col("egfr")).alias("egfr"),
-        pl.when(use_combined).then(pl.lit("ckd_epi_2021_creatinine_cystatin"))
-        .otherwise(pl.col("egfr_equation")).alias("egfr_equation"),
+        pl.when(use_combined)
+        .then(pl.lit("ckd_epi_2021_creatinine_cystatin"))
+        .otherwise(pl.col("egfr_equation"))
+        .alias("egfr_equation"),
     ).drop("scys")
-    paired_days = creatinine.filter(pl.col("egfr_equation") == "ckd_epi_2021_creatinine_cystatin").select(
-        "person_key", "collected_date", pl.lit(True).alias("has_combined")
-    ).unique()
-    cystatin = cystatin.join(paired_days, on=["person_key", "collected_date"], how="left", maintain_order="left")
-    cystatin = cystatin.with_columns(
-        pl.when(pl.col("has_combined").is_null()).then(pl.col("egfr_cys_only")).alias("egfr"),
-    ).with_columns(
-        pl.when(pl.col("egfr").is_not_null()).then(pl.lit("ckd_epi_2012_cystatin")).alias("egfr_equation"),
-        pl.when(pl.col("has_combined").is_not_null()).then(pl.lit("combined_with_creatinine"))
-        .when(pl.col("comparator").is_not_null()).then(pl.lit("censored_cystatin"))
-        .when(pl.col("egfr").is_null()).then(pl.lit("outside_equation_range"))
-        .alias("egfr_reason"),
-    ).drop("egfr_cys_only", "has_combined")
+    paired_days = (
+        creatinine.filter(pl.col("egfr_equation") == "ckd_epi_2021_creatinine_cystatin")
+        .select("person_key", "collected_date", pl.lit(True).alias("has_combined"))
+        .unique()
+    )
+    cystatin = cystatin.join(
+        paired_days, on=["person_key", "collected_date"], how="left", maintain_order="left"
+    )
+    cystatin = (
+        cystatin.with_columns(
+            pl.when(pl.col("has_combined").is_null()).then(pl.col("egfr_cys_only")).alias("egfr"),
+        )
+        .with_columns(
+            pl.when(pl.col("egfr").is_not_null())
+            .then(pl.lit("ckd_epi_2012_cystatin"))
+            .alias("egfr_equation"),
+            pl.when(pl.col("has_combined").is_not_null())
+            .then(pl.lit("combined_with_creatinine"))
+            .when(pl.col("comparator").is_not_null())
+            .then(pl.lit("censored_cystatin"))
+            .when(pl.col("egfr").is_null())
+            .then(pl.lit("outside_equation_range"))
+            .alias("egfr_reason"),
+        )
+        .drop("egfr_cys_only", "has_combined")
+    )
     return creatinine, cystatin
 
 
@@ -182,10 +219,17 @@ def _category_from_bounds(m: MeasureSettings) -> pl.Expr:
     with X >= a3_above is A3, and ">=X" when every value it admits is above A2; anything else
     spans two categories and stays null.
     """
-    v, a2, a3, cmp = pl.col("cat_value"), pl.col("a2_from"), pl.col("a3_above"), pl.col("acr_comparator")
+    v, a2, a3, cmp = (
+        pl.col("cat_value"),
+        pl.col("a2_from"),
+        pl.col("a3_above"),
+        pl.col("acr_comparator"),
+    )
     inclusive = m.acr_300_is_a2
     in_a2 = (v <= a3) if inclusive else (v < a3)
-    uncensored = pl.when(v < a2).then(pl.lit("A1")).when(in_a2).then(pl.lit("A2")).otherwise(pl.lit("A3"))
+    uncensored = (
+        pl.when(v < a2).then(pl.lit("A1")).when(in_a2).then(pl.lit("A2")).otherwise(pl.lit("A3"))
+    )
     ge_is_a3 = (v > a3) if inclusive else (v >= a3)
     censored = (
         pl.when((cmp == "<") & (v <= a2)).then(pl.lit("A1"))
@@ -194,14 +238,17 @@ def _category_from_bounds(m: MeasureSettings) -> pl.Expr:
         .when((cmp == ">=") & ge_is_a3).then(pl.lit("A3"))
     )  # fmt: skip
     valid = v.is_finite() & (v >= 0)
-    return pl.when(valid & cmp.is_null()).then(uncensored).when(valid).then(censored).cast(pl.String)
+    return (
+        pl.when(valid & cmp.is_null()).then(uncensored).when(valid).then(censored).cast(pl.String)
+    )
 
 
 def _at_or_above_a2() -> pl.Expr:
     """Whether the value is certainly at or above the A2 threshold (the CKD-by-albuminuria rule),
     in the unit it is compared in; null when a censored bound leaves it open (KDIGO 2012: A2 from
     30 mg/g, 3 mg/mmol, 30 mg/24 h). "<X" with X <= a2_from is below; ">X" or ">=X" with
-    X >= a2_from is above; "<X" above it, or ">X" below it, is unknown."""
+    X >= a2_from is above; "<X" above it, or ">X" below it, is unknown.
+    """
     v, a2, cmp = pl.col("cat_value"), pl.col("a2_from"), pl.col("acr_comparator")
     return (
         pl.when(~(v.is_finite() & (v >= 0))).then(None)
@@ -217,7 +264,8 @@ def _thresholds(basis: str, unit_col: str) -> tuple[pl.Expr, pl.Expr, pl.Expr]:
     """(value compared, A2 threshold, A3 threshold) of each albuminuria row, in the unit KDIGO
     gives thresholds for: a measured ACR reported in mg/mmol against 3 / 30 mg/mmol on the
     reported number, any other ACR against 30 / 300 mg/g, a timed excretion against 30 / 300
-    mg/24 h (KDIGO 2012, Kidney Int Suppl 2013;3:1, albuminuria category table)."""
+    mg/24 h (KDIGO 2012, Kidney Int Suppl 2013;3:1, albuminuria category table).
+    """
     mmol = (pl.col(basis) == "measured_acr") & (pl.col(unit_col) == eq.ACR_MG_MMOL.unit)
     timed = pl.col(basis) == "timed_albumin_excretion"
     value = (
@@ -225,12 +273,26 @@ def _thresholds(basis: str, unit_col: str) -> tuple[pl.Expr, pl.Expr, pl.Expr]:
         .when(timed).then(pl.col("aer_mg_24h"))
         .otherwise(pl.col("acr_mg_g"))
     )  # fmt: skip
-    a2 = pl.when(mmol).then(eq.ACR_MG_MMOL.a2_from).when(timed).then(eq.AER_MG_24H.a2_from).otherwise(eq.ACR_MG_G.a2_from)
-    a3 = pl.when(mmol).then(eq.ACR_MG_MMOL.a3_above).when(timed).then(eq.AER_MG_24H.a3_above).otherwise(eq.ACR_MG_G.a3_above)
+    a2 = (
+        pl.when(mmol)
+        .then(eq.ACR_MG_MMOL.a2_from)
+        .when(timed)
+        .then(eq.AER_MG_24H.a2_from)
+        .otherwise(eq.ACR_MG_G.a2_from)
+    )
+    a3 = (
+        pl.when(mmol)
+        .then(eq.ACR_MG_MMOL.a3_above)
+        .when(timed)
+        .then(eq.AER_MG_24H.a3_above)
+        .otherwise(eq.ACR_MG_G.a3_above)
+    )
     return value.cast(pl.Float64), a2.cast(pl.Float64), a3.cast(pl.Float64)
 
 
-def compute_albuminuria(results: pl.DataFrame, m: MeasureSettings, readings_map: dict[str, str]) -> pl.DataFrame:
+def compute_albuminuria(
+    results: pl.DataFrame, m: MeasureSettings, readings_map: dict[str, str]
+) -> pl.DataFrame:
     """Albuminuria on one scale with its basis, and its KDIGO category in the unit reported.
 
     ACR in mg/g from a measured ACR, from urine albumin and creatinine on the same specimen, or
@@ -255,11 +317,14 @@ def compute_albuminuria(results: pl.DataFrame, m: MeasureSettings, readings_map:
         pl.col("value").alias("acr_mg_g"),
         pl.col("comparator").alias("acr_comparator"),
         pl.lit("measured_acr").alias("acr_basis"),
-        pl.col("reported_value").cast(pl.Float64), pl.col("reported_unit"),
+        pl.col("reported_value").cast(pl.Float64),
+        pl.col("reported_unit"),
     )
     pcr = results.filter(pl.col("analyte") == "pcr").select(
         *keys,
-        pl.when(pl.col("comparator").is_null()).then(eq.acr_from_pcr_sumida(pl.col("value"))).alias("acr_mg_g"),
+        pl.when(pl.col("comparator").is_null())
+        .then(eq.acr_from_pcr_sumida(pl.col("value")))
+        .alias("acr_mg_g"),
         pl.lit(None, dtype=pl.String).alias("acr_comparator"),
         pl.lit("estimated_from_pcr").alias("acr_basis"),
     )
@@ -272,17 +337,28 @@ def compute_albuminuria(results: pl.DataFrame, m: MeasureSettings, readings_map:
     # reported separately). 100 x albumin (mg/L) / creatinine (mg/dL) = mg/g.
     with_id = albumin.filter(pl.col("specimen_id").is_not_null()).join(
         ucreat.filter(pl.col("specimen_id").is_not_null()).drop("collected_date"),
-        on=["source_id", "person_key", "specimen_id"], how="inner", maintain_order="left",
+        on=["source_id", "person_key", "specimen_id"],
+        how="inner",
+        maintain_order="left",
     )
     without_id = albumin.filter(pl.col("specimen_id").is_null()).join(
-        ucreat.filter(pl.col("specimen_id").is_null()).drop("specimen_id")
+        ucreat.filter(pl.col("specimen_id").is_null())
+        .drop("specimen_id")
         .unique(["source_id", "person_key", "collected_date"], keep="first", maintain_order=True),
-        on=["source_id", "person_key", "collected_date"], how="inner", maintain_order="left",
+        on=["source_id", "person_key", "collected_date"],
+        how="inner",
+        maintain_order="left",
     )
-    paired = pl.concat([with_id.select(sorted(with_id.columns)), without_id.select(sorted(with_id.columns))])
+    paired = pl.concat(
+        [with_id.select(sorted(with_id.columns)), without_id.select(sorted(with_id.columns))]
+    )
     computed = paired.select(
         *keys,
-        pl.when(pl.col("comparator").is_null() & pl.col("ucreat_cmp").is_null() & (pl.col("ucreat_mg_dl") > 0))
+        pl.when(
+            pl.col("comparator").is_null()
+            & pl.col("ucreat_cmp").is_null()
+            & (pl.col("ucreat_mg_dl") > 0)
+        )
         .then(100 * pl.col("value") / pl.col("ucreat_mg_dl"))
         .alias("acr_mg_g"),
         pl.lit(None, dtype=pl.String).alias("acr_comparator"),
@@ -299,8 +375,11 @@ def compute_albuminuria(results: pl.DataFrame, m: MeasureSettings, readings_map:
         *keys,
         pl.lit(None, dtype=pl.String).alias("acr_comparator"),
         pl.lit("estimated_from_dipstick").alias("acr_basis"),
-        pl.col("value_text").str.strip_chars().str.to_lowercase()
-        .replace_strict(readings, default=None, return_dtype=pl.String).alias("reading"),
+        pl.col("value_text")
+        .str.strip_chars()
+        .str.to_lowercase()
+        .replace_strict(readings, default=None, return_dtype=pl.String)
+        .alias("reading"),
     )
     frame = pl.concat([measured, computed, pcr, timed, dipstick], how="diagonal_relaxed")
     for name, dtype in (("aer_mg_24h", pl.Float64), ("reading", pl.String), ("acr_mg_g", pl.Float64),
@@ -312,24 +391,42 @@ def compute_albuminuria(results: pl.DataFrame, m: MeasureSettings, readings_map:
     dipstick_category = eq.albuminuria_category_dipstick(pl.col("reading"))
     is_dipstick = pl.col("acr_basis") == "estimated_from_dipstick"
     spanning = pl.col("reading").is_in(list(eq.DIPSTICK_SPANNING))
-    frame = frame.with_columns(
-        pl.col("acr_basis").is_in(["estimated_from_pcr", "estimated_from_dipstick"]).alias("is_acr_estimated"),
-        pl.when(is_dipstick).then(dipstick_category).otherwise(_category_from_bounds(m)).alias("a_category"),
-    ).with_columns(
-        pl.when(is_dipstick & pl.col("a_category").is_not_null()).then(pl.col("a_category").is_in(["A2", "A3"]))
-        .when(is_dipstick).then(None)
-        .otherwise(_at_or_above_a2()).alias("is_at_or_above_a2"),
-    ).with_columns(
-        pl.when(pl.col("acr_comparator").is_null()).then(pl.col("acr_mg_g")).alias("acr_mg_g"),
-        pl.when(pl.col("acr_comparator").is_null()).then(pl.col("aer_mg_24h")).alias("aer_mg_24h"),
-        pl.when(pl.col("a_category").is_not_null()).then(None)
-        .when(is_dipstick & spanning).then(pl.lit("dipstick_trace_spans_a1_a2"))
-        .when(pl.col("acr_comparator").is_not_null() & pl.col("is_at_or_above_a2").is_null())
-        .then(pl.lit("censored_spans_a2_threshold"))
-        .when(pl.col("acr_comparator").is_not_null()).then(pl.lit("censored_ambiguous"))
-        .otherwise(pl.lit("not_computable"))
-        .alias("acr_reason"),
-    ).drop("reading", "cat_value", "a2_from", "a3_above", "reported_value", "reported_unit")
+    frame = (
+        frame.with_columns(
+            pl.col("acr_basis")
+            .is_in(["estimated_from_pcr", "estimated_from_dipstick"])
+            .alias("is_acr_estimated"),
+            pl.when(is_dipstick)
+            .then(dipstick_category)
+            .otherwise(_category_from_bounds(m))
+            .alias("a_category"),
+        )
+        .with_columns(
+            pl.when(is_dipstick & pl.col("a_category").is_not_null())
+            .then(pl.col("a_category").is_in(["A2", "A3"]))
+            .when(is_dipstick)
+            .then(None)
+            .otherwise(_at_or_above_a2())
+            .alias("is_at_or_above_a2"),
+        )
+        .with_columns(
+            pl.when(pl.col("acr_comparator").is_null()).then(pl.col("acr_mg_g")).alias("acr_mg_g"),
+            pl.when(pl.col("acr_comparator").is_null())
+            .then(pl.col("aer_mg_24h"))
+            .alias("aer_mg_24h"),
+            pl.when(pl.col("a_category").is_not_null())
+            .then(None)
+            .when(is_dipstick & spanning)
+            .then(pl.lit("dipstick_trace_spans_a1_a2"))
+            .when(pl.col("acr_comparator").is_not_null() & pl.col("is_at_or_above_a2").is_null())
+            .then(pl.lit("censored_spans_a2_threshold"))
+            .when(pl.col("acr_comparator").is_not_null())
+            .then(pl.lit("censored_ambiguous"))
+            .otherwise(pl.lit("not_computable"))
+            .alias("acr_reason"),
+        )
+        .drop("reading", "cat_value", "a2_from", "a3_above", "reported_value", "reported_unit")
+    )
     return frame  # fmt: skip
 
 
@@ -341,11 +438,15 @@ def measure_frame(results: pl.DataFrame, settings: Settings) -> pl.DataFrame:
         # the completed years of the same estimate (as results_validated.sql computes them),
         # so that a measure's age and the equation it got always agree, also on rows stored by
         # an earlier version that took collection year - birth year
-        results = results.with_columns(pl.col("age_exact").floor().cast(pl.Int64).alias("age_years"))
+        results = results.with_columns(
+            pl.col("age_exact").floor().cast(pl.Int64).alias("age_years")
+        )
     creatinine = compute_egfr(results.filter(pl.col("analyte") == "creatinine"), m)
     frames = []
     if m.use_cystatin:
-        creatinine, cystatin = add_cystatin(creatinine, results.filter(pl.col("analyte") == "cystatin_c"), m)
+        creatinine, cystatin = add_cystatin(
+            creatinine, results.filter(pl.col("analyte") == "cystatin_c"), m
+        )
         frames.append(_categorise_egfr(cystatin, m))
     reported = (
         results.filter((pl.col("analyte") == "egfr_reported") & pl.col("specimen_id").is_not_null())
@@ -356,15 +457,19 @@ def measure_frame(results: pl.DataFrame, settings: Settings) -> pl.DataFrame:
     )  # fmt: skip
     # the person is part of the key: a specimen id that a faulty extract gives to two persons
     # does not lend one person's reported eGFR to the other (and measures stay per person)
-    creatinine = creatinine.join(reported, on=["source_id", "person_key", "specimen_id"], how="left",
-                                 maintain_order="left")
+    creatinine = creatinine.join(
+        reported, on=["source_id", "person_key", "specimen_id"], how="left", maintain_order="left"
+    )
     frames.insert(0, _categorise_egfr(creatinine, m))
     readings = settings.analytes.analytes.get("urine_protein_dipstick")
     frames.append(compute_albuminuria(results, m, readings.readings if readings else {}))
     out = pl.concat(
-        [f.select([c for c in MEASURE_COLUMNS if c in f.columns]) for f in frames], how="diagonal_relaxed"
+        [f.select([c for c in MEASURE_COLUMNS if c in f.columns]) for f in frames],
+        how="diagonal_relaxed",
     )
-    return out.select(MEASURE_COLUMNS).sort("person_key", "collected_date", "analyte", "file_id", "line_no")
+    return out.select(MEASURE_COLUMNS).sort(
+        "person_key", "collected_date", "analyte", "file_id", "line_no"
+    )
 
 
 #: Results measured per pass: the measure step holds one pass in memory (about 1 GB per million
@@ -376,13 +481,18 @@ def person_range(chunk: int, chunks: int) -> tuple[str, str]:
     """The person keys of one chunk: ``lower <= person_key < upper``. A person key is the hex of
     an HMAC-SHA256 (pipeline/pseudonymise.py), spread uniformly, so equal ranges of its first
     eight hex digits hold about equal numbers of persons; comparing text is about four times
-    cheaper per row than hashing it again (measured at 10M results)."""
+    cheaper per row than hashing it again (measured at 10M results).
+    """
     lower = f"{(chunk << 32) // chunks:08x}"
-    upper = f"{((chunk + 1) << 32) // chunks:08x}" if chunk + 1 < chunks else "g"  # after every hex digit
+    upper = (
+        f"{((chunk + 1) << 32) // chunks:08x}" if chunk + 1 < chunks else "g"
+    )  # after every hex digit
     return lower, upper
 
 
-def measure_stage(con: duckdb.DuckDBPyConnection, settings: Settings, touched_only: bool = False) -> MeasureSummary:
+def measure_stage(
+    con: duckdb.DuckDBPyConnection, settings: Settings, touched_only: bool = False
+) -> MeasureSummary:
     """Bring ``kidney_measures`` up to date with ``lab_results``.
 
     Measures depend on one person's results only, so they are computed per chunk of persons,
@@ -402,7 +512,9 @@ def measure_stage(con: duckdb.DuckDBPyConnection, settings: Settings, touched_on
         update_touched(con, settings, analytes)
         return _summary(con)
     con.execute("drop table if exists kidney_measures")
-    total = con.execute("select count(*) from lab_results where list_contains($a, analyte)", {"a": analytes}).fetchall()[0][0]
+    total = con.execute(
+        "select count(*) from lab_results where list_contains($a, analyte)", {"a": analytes}
+    ).fetchall()[0][0]
     chunks = max(1, -(-total // CHUNK_RESULTS))
     for chunk in range(chunks):
         lower, upper = person_range(chunk, chunks)
@@ -468,7 +580,8 @@ def update_touched(con: duckdb.DuckDBPyConnection, settings: Settings, analytes:
     frame = measure_frame(results, settings)
     del results
     with_frame(
-        con, frame,
+        con,
+        frame,
         "create or replace temp table measures_touched as select * from _frame "
         "semi join measure_rows as r on r.file_id = _frame.file_id and r.line_no = _frame.line_no",
     )

@@ -31,10 +31,13 @@ PERIOD_COLUMNS = ("files", "read", "accepted", "rejected", "superseded", "duplic
                   "pending", "held_back")  # fmt: skip
 
 
-def rows_outside_period(con: duckdb.DuckDBPyConnection, period: Period) -> dict[str, dict[str, int]]:
+def rows_outside_period(
+    con: duckdb.DuckDBPyConnection, period: Period
+) -> dict[str, dict[str, int]]:
     """Per source, the accepted rows of this run's files (temporary table ``landed_files``) and
     how many of them were collected or reported after the period end (invisible to the period);
-    only sources with such rows."""
+    only sources with such rows.
+    """
     rows = con.execute(
         """
         select v.source_id,
@@ -53,7 +56,7 @@ def rows_outside_period(con: duckdb.DuckDBPyConnection, period: Period) -> dict[
         {"period_end": period.end},
     ).fetchall()
     keys = ("accepted", "after_period_end", "reported_after", "collected_after")
-    return {r[0]: dict(zip(keys, (int(x) for x in r[1:]))) for r in rows}
+    return {r[0]: dict(zip(keys, (int(x) for x in r[1:]), strict=False)) for r in rows}
 
 
 def outside_period_lines(outside: dict[str, dict[str, int]], period: Period) -> list[str]:
@@ -85,15 +88,18 @@ def missing_deliveries(con: duckdb.DuckDBPyConnection, settings: Settings, inbox
     """Configured sources that sent nothing for ``period``, with why: no inbox folder, or no
     file of the source in the ledger for this period (ingested by a run of this period, or
     named for one of its months). A source with ``cadence: none`` (sends when it has results)
-    is never expected."""
+    is never expected.
+    """
     missing: dict[str, str] = {}
     for source in settings.sources:
         if source.cadence == "none":
             continue
         folder = inbox / source.folder
         if not folder.is_dir():
-            missing[source.id] = (f"no inbox folder {folder} ({settings.config_dir / 'sources' / (source.id + '.yaml')}, key 'folder'); "
-                                  "nothing from this source is in the period")
+            missing[source.id] = (
+                f"no inbox folder {folder} ({settings.config_dir / 'sources' / (source.id + '.yaml')}, key 'folder'); "
+                "nothing from this source is in the period"
+            )
             continue
         months = _months_back(period, source.cadence)
         n = con.execute(
@@ -102,15 +108,18 @@ def missing_deliveries(con: duckdb.DuckDBPyConnection, settings: Settings, inbox
             {"source": source.id, "period": period.label, "months": months},
         ).fetchall()[0][0]
         if not n:
-            missing[source.id] = (f"no new extract for {period.label} in {folder} (cadence {source.cadence}); "
-                                  "the indicators lack this source's results for the period")
+            missing[source.id] = (
+                f"no new extract for {period.label} in {folder} (cadence {source.cadence}); "
+                "the indicators lack this source's results for the period"
+            )
     return missing
 
 
 def period_counts(con: duckdb.DuckDBPyConnection, period: Period) -> dict[str, dict[str, int]]:
     """Rows of the files ingested for ``period`` (``ingest_files.run_period``), per source and
     outcome; rows of held-back files are counted as ``held_back``, so per file rows read =
-    accepted + rejected + superseded + duplicate + withdrawn + pending + held back."""
+    accepted + rejected + superseded + duplicate + withdrawn + pending + held back.
+    """
     rows = con.execute(
         """
         select source_id,
@@ -130,7 +139,9 @@ def period_counts(con: duckdb.DuckDBPyConnection, period: Period) -> dict[str, d
         """,
         {"period": period.label},
     ).fetchall()
-    return {r[0]: {k: int(v or 0) for k, v in zip(PERIOD_COLUMNS, r[1:])} for r in rows}
+    return {
+        r[0]: {k: int(v or 0) for k, v in zip(PERIOD_COLUMNS, r[1:], strict=False)} for r in rows
+    }
 
 
 def period_checks(con: duckdb.DuckDBPyConnection, settings: Settings, inbox: Path,

@@ -79,7 +79,9 @@ def read_key_file(path: Path) -> bytes:
     try:
         info = path.stat()
     except OSError as exc:
-        raise KeyFileUnsafe(f"{KEY_FILE_ENV}={path}: the key file cannot be used ({exc.strerror})") from None
+        raise KeyFileUnsafe(
+            f"{KEY_FILE_ENV}={path}: the key file cannot be used ({exc.strerror})"
+        ) from None
     if not stat.S_ISREG(info.st_mode):
         raise KeyFileUnsafe(f"{KEY_FILE_ENV}={path}: not a regular file")
     mode = stat.S_IMODE(info.st_mode)
@@ -90,11 +92,15 @@ def read_key_file(path: Path) -> bytes:
             "inbox and the output folder"
         )
     if hasattr(os, "geteuid") and info.st_uid != os.geteuid():
-        raise KeyFileUnsafe(f"{KEY_FILE_ENV}={path}: the key file belongs to another user (uid {info.st_uid})")
+        raise KeyFileUnsafe(
+            f"{KEY_FILE_ENV}={path}: the key file belongs to another user (uid {info.st_uid})"
+        )
     try:
         secret = path.read_bytes().rstrip(b"\r\n")
     except OSError as exc:
-        raise KeyFileUnsafe(f"{KEY_FILE_ENV}={path}: the key file cannot be read ({exc.strerror})") from None
+        raise KeyFileUnsafe(
+            f"{KEY_FILE_ENV}={path}: the key file cannot be read ({exc.strerror})"
+        ) from None
     if not secret.strip():
         raise KeyFileUnsafe(f"{KEY_FILE_ENV}={path}: the key file is empty")
     return secret
@@ -102,7 +108,8 @@ def read_key_file(path: Path) -> bytes:
 
 def check_key_strength(secret: bytes, where: str) -> None:
     """Refuse a key that is short, only whitespace, has whitespace at either end (a copy
-    mistake), or is trivially weak (one character repeated, too few distinct characters)."""
+    mistake), or is trivially weak (one character repeated, too few distinct characters).
+    """
     text = secret.decode("utf-8", errors="replace")
     problem = None
     if not text.strip():
@@ -114,7 +121,9 @@ def check_key_strength(secret: bytes, where: str) -> None:
     elif len(set(text)) == 1:
         problem = "is one character repeated"
     elif len(set(text)) < MIN_KEY_DISTINCT:
-        problem = f"uses only {len(set(text))} distinct characters (at least {MIN_KEY_DISTINCT} required)"
+        problem = (
+            f"uses only {len(set(text))} distinct characters (at least {MIN_KEY_DISTINCT} required)"
+        )
     if problem:
         raise KeyWeak(f"{where}: the pseudonymisation key {problem}; {HOW_TO_MAKE_A_KEY}")
 
@@ -122,14 +131,16 @@ def check_key_strength(secret: bytes, where: str) -> None:
 def key_check_value(key: PseudonymKey) -> str:
     """A non-reversible check value of the key: HMAC-SHA256 of a fixed label under the key, in
     hex. It tells whether a later run uses the same key; it gives nothing of the key itself (nor
-    of any person key, whose messages never equal the label)."""
+    of any person key, whose messages never equal the label).
+    """
     return hmac.new(key.secret, KEY_CHECK_LABEL, hashlib.sha256).hexdigest()
 
 
 def verify_warehouse_key(con, key: PseudonymKey) -> None:
     """Compare the key with the check value the warehouse recorded at its first run (table
     ``key_check``); record it when there is none. A different key raises :class:`KeyMismatch`
-    with what to do: one month keyed otherwise would split every person from their history."""
+    with what to do: one month keyed otherwise would split every person from their history.
+    """
     value = key_check_value(key)
     stored = con.execute("select check_value, demo_key, recorded_at from key_check").fetchall()
     if not stored:
@@ -160,7 +171,8 @@ def verify_warehouse_key(con, key: PseudonymKey) -> None:
 def resolve_key(demo: bool) -> PseudonymKey:
     """The key from ``KIDNEYSURV_PSEUDONYM_KEY``, else from the owner-only file named by
     ``KIDNEYSURV_PSEUDONYM_KEY_FILE``, else the public demo key for a demo run; a non-demo run
-    without a key raises :class:`KeyMissing`, a weak key :class:`KeyWeak`."""
+    without a key raises :class:`KeyMissing`, a weak key :class:`KeyWeak`.
+    """
     value = os.environ.get(KEY_ENV, "")
     if value:
         check_key_strength(value.encode("utf-8"), KEY_ENV)
@@ -186,10 +198,11 @@ def person_key(key: PseudonymKey, domain: str, token: str) -> str:
 
 def _hash_pairs(key: PseudonymKey, pairs: pl.DataFrame) -> pl.DataFrame:
     """``pairs`` (linkage_domain, person_token) with their ``person_key``: :func:`person_key` of
-    each, the HMAC's key schedule done once (``hmac.copy``, the same digest)."""
+    each, the HMAC's key schedule done once (``hmac.copy``, the same digest).
+    """
     base = hmac.new(key.secret, digestmod=hashlib.sha256)
     keys = []
-    for domain, token in zip(pairs["linkage_domain"], pairs["person_token"]):
+    for domain, token in zip(pairs["linkage_domain"], pairs["person_token"], strict=False):
         mac = base.copy()
         mac.update(f"{domain}\x1f{token}".encode())
         keys.append(mac.hexdigest()[:32])
@@ -199,7 +212,8 @@ def _hash_pairs(key: PseudonymKey, pairs: pl.DataFrame) -> pl.DataFrame:
 class PersonKeyCache:
     """The person keys computed so far in one run, so that each (linkage domain, token) is
     hashed once per run however many files carry it. Held in memory only, for the run: it is
-    never written, logged or printed (its repr gives the count only)."""
+    never written, logged or printed (its repr gives the count only).
+    """
 
     def __init__(self, key: PseudonymKey) -> None:
         self.key = key
@@ -222,7 +236,9 @@ class PersonKeyCache:
         return pl.concat([seen, new])
 
 
-def add_person_keys(frame: pl.DataFrame, key: PseudonymKey, cache: PersonKeyCache | None = None) -> pl.DataFrame:
+def add_person_keys(
+    frame: pl.DataFrame, key: PseudonymKey, cache: PersonKeyCache | None = None
+) -> pl.DataFrame:
     """Replace ``person_token`` (with ``linkage_domain``) by ``person_key``.
 
     Only the distinct tokens are hashed, then joined back, so the cost follows the number of
@@ -233,6 +249,6 @@ def add_person_keys(frame: pl.DataFrame, key: PseudonymKey, cache: PersonKeyCach
         raise ValueError("the key cache was made for another key")
     pairs = frame.select("linkage_domain", "person_token").unique().drop_nulls()
     keys = cache.keys_for(pairs) if cache is not None else _hash_pairs(key, pairs)
-    return frame.join(keys, on=["linkage_domain", "person_token"], how="left", maintain_order="left").drop(
-        "person_token", "linkage_domain"
-    )
+    return frame.join(
+        keys, on=["linkage_domain", "person_token"], how="left", maintain_order="left"
+    ).drop("person_token", "linkage_domain")

@@ -31,9 +31,15 @@ def open_warehouse(out_dir: Path, memory_limit: str = "2GB") -> duckdb.DuckDBPyC
 
 def commit_month(con: duckdb.DuckDBPyConnection) -> None:
     apply_comments(con)
-    for table in ("landed_rows", "landed_rows_typed", "results_validated",
-                  "result_versions_resolved", "scope_persons", "scope_versions",
-                  "link_persons"):  # transient: not kept
+    for table in (
+        "landed_rows",
+        "landed_rows_typed",
+        "results_validated",
+        "result_versions_resolved",
+        "scope_persons",
+        "scope_versions",
+        "link_persons",
+    ):  # transient: not kept
         con.execute(f"drop table if exists staging.{table}")
     con.execute("commit")
 
@@ -56,27 +62,45 @@ DEMO_NOTICE = "made with the public demo key: invented data, not for real use"
 DEMO_COLUMN = "key_notice"
 
 
-def write_exports(con: duckdb.DuckDBPyConnection, out_dir: Path, period: Period,
-                  documents: dict[str, object], demo_key: bool = False) -> Path:
+def write_exports(
+    con: duckdb.DuckDBPyConnection,
+    out_dir: Path,
+    period: Period,
+    documents: dict[str, object],
+    demo_key: bool = False,
+) -> Path:
     """Parquet and CSV of every published table for the period, plus the run's JSON documents,
     staged in ``<out>/.<period>.partial/``; ``runlock.commit_and_install`` moves them into
     ``<out>/<period>/`` after the commit. With the demo key every CSV row ends with the column
     ``key_notice`` and every Parquet file carries the entry ``kidneysurv.pseudonym_key: demo``
-    (the Parquet columns stay those of the published table)."""
+    (the Parquet columns stay those of the published table).
+    """
     work = out_dir / f".{period.label}.partial"
     shutil.rmtree(work, ignore_errors=True)
     work.mkdir(parents=True, mode=0o700)
     for table in PUBLISHED_TABLES:
         order = ", ".join(table.keys)
         query = f"select * from published.{table.name} where period = $period order by {order}"
-        marked = query.replace("select *", f"select *, $notice as {DEMO_COLUMN}", 1) if demo_key else query
-        parquet = "format parquet" + (", kv_metadata {'kidneysurv.pseudonym_key': 'demo'}" if demo_key else "")
-        con.execute(
-            f"copy ({query}) to {_literal(work / (table.name + '.parquet'))} ({parquet})", {"period": period.label}
+        marked = (
+            query.replace("select *", f"select *, $notice as {DEMO_COLUMN}", 1)
+            if demo_key
+            else query
         )
-        params = {"period": period.label, "notice": DEMO_NOTICE} if demo_key else {"period": period.label}
+        parquet = "format parquet" + (
+            ", kv_metadata {'kidneysurv.pseudonym_key': 'demo'}" if demo_key else ""
+        )
         con.execute(
-            f"copy ({marked}) to {_literal(work / (table.name + '.csv'))} (format csv, header true)", params
+            f"copy ({query}) to {_literal(work / (table.name + '.parquet'))} ({parquet})",
+            {"period": period.label},
+        )
+        params = (
+            {"period": period.label, "notice": DEMO_NOTICE}
+            if demo_key
+            else {"period": period.label}
+        )
+        con.execute(
+            f"copy ({marked}) to {_literal(work / (table.name + '.csv'))} (format csv, header true)",
+            params,
         )
     for name, data in documents.items():
         write_json(work / name, data)

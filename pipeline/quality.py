@@ -231,7 +231,9 @@ def check_batches(
     started = time.perf_counter()
     mode = quality_pages or getattr(settings.pipeline.quality_gate, "quality_pages", "on_failure")
     if mode not in QUALITY_PAGES_CHOICES:
-        raise ValueError(f"quality_pages must be one of {', '.join(QUALITY_PAGES_CHOICES)}, not {mode!r}")
+        raise ValueError(
+            f"quality_pages must be one of {', '.join(QUALITY_PAGES_CHOICES)}, not {mode!r}"
+        )
     present = _present_columns(con)
     frames = {
         "standardised_columns": _schema_frame(con),
@@ -252,7 +254,10 @@ def check_batches(
         definition = _validation_definition(context, datasource, frame_name, suite)
         result = definition.run(
             batch_parameters={"dataframe": frames[frame_name]},
-            result_format={"result_format": "COMPLETE", "unexpected_index_column_names": list(index)},
+            result_format={
+                "result_format": "COMPLETE",
+                "unexpected_index_column_names": list(index),
+            },
             run_id=_run_id(),
         )
         for item in result.results:
@@ -308,7 +313,8 @@ def _present_columns(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
 
 def _col(present: dict[str, str], name: str) -> str:
     """``v.<name>``; a typed null where the column is missing, a TRY_CAST where its type is
-    wrong (the column checks fail then, and the other checks still run)."""
+    wrong (the column checks fail then, and the other checks still run).
+    """
     want = STANDARD_COLUMNS[name]
     if name not in present:
         return f"null::{want}"
@@ -341,7 +347,9 @@ def _cells_frame(con: duckdb.DuckDBPyConnection, present: dict[str, str]) -> Any
     c = {name: _col(present, name) for name in STANDARD_COLUMNS}
     number = f"nullif({c['value']}, 'nan'::double)"
     withdrawn = f"coalesce(g.status, '') in ({', '.join(repr(s) for s in WITHDRAWN_STATUSES)})"
-    nulls = "".join(f",\n                   count(*) - count({c[k]}) as null_{k}" for k in KEY_COLUMNS)
+    nulls = "".join(
+        f",\n                   count(*) - count({c[k]}) as null_{k}" for k in KEY_COLUMNS
+    )
     null_columns = "".join(f", g.null_{k}" for k in KEY_COLUMNS)
     return _frame(con, f"""
         with g as (
@@ -522,7 +530,9 @@ def _suite(name: str, checks: list[_Check]) -> Any:
 # --------------------------------------------------------------------------- verdicts
 
 
-def _failing_sources(item: Any, check: _Check, sources: list[str]) -> dict[str, list[dict[str, Any]]]:
+def _failing_sources(
+    item: Any, check: _Check, sources: list[str]
+) -> dict[str, list[dict[str, Any]]]:
     """The sources a failed expectation names, each with its failing summary rows.
 
     A failed column check, an expectation that raised, or a failing row without a source id
@@ -558,11 +568,15 @@ def _reason(con: duckdb.DuckDBPyConnection, check: _Check, item: Any, cells: lis
             return f"unexpected {_short(unexpected)}", []
         return f"observed {_short(outcome.get('observed_value'))}", []
     count, ids = _failing_rows(con, check.rows, totals["source_id"])
-    where = "; ".join(_describe(c) for c in cells[:3]) + (f"; {len(cells) - 3} more" if len(cells) > 3 else "")
+    where = "; ".join(_describe(c) for c in cells[:3]) + (
+        f"; {len(cells) - 3} more" if len(cells) > 3 else ""
+    )
     return f"{where}: {count} of {totals['rows']} rows unexpected", ids
 
 
-def _failing_rows(con: duckdb.DuckDBPyConnection, predicate: str, source_id: str) -> tuple[int, list[str]]:
+def _failing_rows(
+    con: duckdb.DuckDBPyConnection, predicate: str, source_id: str
+) -> tuple[int, list[str]]:
     """How many of the source's well-formed rows break a check, and the first row ids."""
     base = (f"from {_TABLE} as v left join reference.ranges as r on r.analyte = v.analyte "
             f"where v.source_id = $source and v.reason_code is null and ({predicate})")  # fmt: skip
@@ -578,6 +592,7 @@ def _failing_rows(con: duckdb.DuckDBPyConnection, predicate: str, source_id: str
 
 def _describe(cell: dict[str, Any]) -> str:
     """A failing summary row in a few words: its cell, then the values checked."""
+
     def text(value: Any) -> str:
         if isinstance(value, float):
             return f"{value:g}"
@@ -624,13 +639,14 @@ def _ephemeral_context(docs_dir: Path | None) -> Any:
     return gx.get_context(mode="ephemeral", project_config=config)
 
 
-
 def _validation_definition(context: Any, datasource: Any, name: str, suite: Any) -> Any:
     """A validation definition of a suite on a whole in-memory frame."""
     import great_expectations as gx
 
     batch = datasource.add_dataframe_asset(name).add_batch_definition_whole_dataframe("run")
-    return context.validation_definitions.add(gx.ValidationDefinition(name=name, data=batch, suite=suite))
+    return context.validation_definitions.add(
+        gx.ValidationDefinition(name=name, data=batch, suite=suite)
+    )
 
 
 def _run_id() -> Any:
@@ -704,17 +720,19 @@ def _rewrite(text: str, static: Path, page_dir: Path) -> str:
         url = found.group(3)
         if url in CDN_ASSETS:
             local = f"{vendor_rel}/{CDN_ASSETS[url]}"
-            whole = whole[: found.start(3)] + local + whole[found.end(3):]
+            whole = whole[: found.start(3)] + local + whole[found.end(3) :]
             return _SRI.sub("", whole)  # the CDN's integrity hash and CORS mode do not apply
         in_site = _SITE_STATIC.match(url)
         if in_site:  # GX counts one folder too few for validation pages' favicon
-            local = f"{static_rel}/{url[in_site.end():]}"
-            return whole[: found.start(3)] + local + whole[found.end(3):]
+            local = f"{static_rel}/{url[in_site.end() :]}"
+            return whole[: found.start(3)] + local + whole[found.end(3) :]
         return whole
 
     def script_drop(text: str) -> str:
         for url in DROPPED_SCRIPTS:
-            script = r"<script\b[^>]*\bsrc\s*=\s*[\"']" + re.escape(url) + r"[\"'][^>]*>\s*</script>\s*"
+            script = (
+                r"<script\b[^>]*\bsrc\s*=\s*[\"']" + re.escape(url) + r"[\"'][^>]*>\s*</script>\s*"
+            )
             text = re.sub(script, "", text, flags=re.IGNORECASE)
         return text
 

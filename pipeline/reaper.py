@@ -54,7 +54,8 @@ def _descendants(parent, me: int) -> dict[int, float]:
 
 def reap(known: dict[int, float]) -> list[int]:
     """Terminate the processes of ``known`` (pid -> start time) that are still the same
-    processes, kill those still alive after the grace time; returns the pids ended."""
+    processes, kill those still alive after the grace time; returns the pids ended.
+    """
     import psutil
 
     alive = []

@@ -34,7 +34,11 @@ def read_district_shapes(config_dir: Path, districts: dict[str, str]) -> dict[st
         doc = json.loads(path.read_text(encoding="utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError) as exc:
         raise ConfigError(f"{path}: not valid GeoJSON ({exc})") from None
-    if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection" or not isinstance(doc.get("features"), list):
+    if (
+        not isinstance(doc, dict)
+        or doc.get("type") != "FeatureCollection"
+        or not isinstance(doc.get("features"), list)
+    ):
         raise ConfigError(f"{path}: expected a GeoJSON FeatureCollection")
     shapes: dict[str, dict] = {}
     for n, feature in enumerate(doc["features"], start=1):
@@ -43,11 +47,17 @@ def read_district_shapes(config_dir: Path, districts: dict[str, str]) -> dict[st
         geometry = (feature or {}).get("geometry") or {}
         if not isinstance(code, str) or not code:
             raise ConfigError(f"{path}: feature {n} has no property district_code")
-        if geometry.get("type") not in ("Polygon", "MultiPolygon") or not _valid_coordinates(geometry):
-            raise ConfigError(f"{path}: feature {n} ({code}): geometry must be a Polygon or MultiPolygon "
-                              "of [longitude, latitude] positions")
+        if geometry.get("type") not in ("Polygon", "MultiPolygon") or not _valid_coordinates(
+            geometry
+        ):
+            raise ConfigError(
+                f"{path}: feature {n} ({code}): geometry must be a Polygon or MultiPolygon "
+                "of [longitude, latitude] positions"
+            )
         if code in shapes:
-            raise ConfigError(f"{path}: district_code {code} has more than one feature (use one MultiPolygon)")
+            raise ConfigError(
+                f"{path}: district_code {code} has more than one feature (use one MultiPolygon)"
+            )
         shapes[code] = geometry
     no_shape = sorted(set(districts) - set(shapes))
     no_district = sorted(set(shapes) - set(districts))
@@ -55,28 +65,47 @@ def read_district_shapes(config_dir: Path, districts: dict[str, str]) -> dict[st
     if no_shape:
         problems.append(f"no shape for district(s) {', '.join(no_shape)} of regions/districts.csv")
     if no_district:
-        problems.append(f"shape(s) for {', '.join(no_district)}, not a district in regions/districts.csv")
+        problems.append(
+            f"shape(s) for {', '.join(no_district)}, not a district in regions/districts.csv"
+        )
     if problems:
         raise ConfigError(f"{path}: " + "; ".join(problems))
     return shapes
 
 
 def _valid_coordinates(geometry: dict) -> bool:
-    polygons = geometry["coordinates"] if geometry["type"] == "MultiPolygon" else [geometry["coordinates"]]
+    polygons = (
+        geometry["coordinates"] if geometry["type"] == "MultiPolygon" else [geometry["coordinates"]]
+    )
     try:
         return bool(polygons) and all(
-            len(ring) >= 4 and all(len(p) >= 2 and -180 <= float(p[0]) <= 180 and -90 <= float(p[1]) <= 90
-                                   for p in ring)
-            for polygon in polygons for ring in polygon)
+            len(ring) >= 4
+            and all(
+                len(p) >= 2 and -180 <= float(p[0]) <= 180 and -90 <= float(p[1]) <= 90
+                for p in ring
+            )
+            for polygon in polygons
+            for ring in polygon
+        )
     except (TypeError, ValueError):
         return False
 
 
-def write_district_shapes(con: duckdb.DuckDBPyConnection, config_dir: Path, districts: dict[str, str]) -> int:
+def write_district_shapes(
+    con: duckdb.DuckDBPyConnection, config_dir: Path, districts: dict[str, str]
+) -> int:
     """Replace ``reference.district_shapes`` from the config (empty when there is no file)."""
     shapes = read_district_shapes(config_dir, districts)
-    frame = pl.DataFrame({"district_code": sorted(shapes),
-                          "geometry_geojson": [json.dumps(shapes[c], separators=(",", ":")) for c in sorted(shapes)]},
-                         schema={"district_code": pl.String, "geometry_geojson": pl.String})
-    with_frame(con, frame, "create or replace table reference.district_shapes as select * from _frame")
+    frame = pl.DataFrame(
+        {
+            "district_code": sorted(shapes),
+            "geometry_geojson": [
+                json.dumps(shapes[c], separators=(",", ":")) for c in sorted(shapes)
+            ],
+        },
+        schema={"district_code": pl.String, "geometry_geojson": pl.String},
+    )
+    with_frame(
+        con, frame, "create or replace table reference.district_shapes as select * from _frame"
+    )
     return frame.height

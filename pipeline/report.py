@@ -18,9 +18,10 @@ import html
 import json
 import math
 import os
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Callable, Sequence
+from typing import Any
 
 import duckdb
 
@@ -86,11 +87,22 @@ _GROUP_RATES = {t.name: t.group_rates for t in PUBLISHED_TABLES}
 _STANDARDISED = {t.name: t.standardised for t in PUBLISHED_TABLES if t.standardised is not None}
 #: The categories of district_ckd_categories, in the order shown, with their KDIGO 2012 ranges.
 CATEGORY_AXES = {
-    "gfr": ("GFR category of the latest eGFR (KDIGO 2012)",
-            (("G1", "G1 ≥90"), ("G2", "G2 60–89"), ("G3a", "G3a 45–59"), ("G3b", "G3b 30–44"),
-             ("G4", "G4 15–29"), ("G5", "G5 <15"), ("unknown", "No eGFR"))),
-    "albuminuria": ("albuminuria category of the latest measured ACR (KDIGO 2012)",
-                    (("A1", "A1 <30 mg/g"), ("A2", "A2 30–300"), ("A3", "A3 >300"), ("unknown", "No ACR"))),
+    "gfr": (
+        "GFR category of the latest eGFR (KDIGO 2012)",
+        (
+            ("G1", "G1 ≥90"),
+            ("G2", "G2 60–89"),
+            ("G3a", "G3a 45–59"),
+            ("G3b", "G3b 30–44"),
+            ("G4", "G4 15–29"),
+            ("G5", "G5 <15"),
+            ("unknown", "No eGFR"),
+        ),
+    ),
+    "albuminuria": (
+        "albuminuria category of the latest measured ACR (KDIGO 2012)",
+        (("A1", "A1 <30 mg/g"), ("A2", "A2 30–300"), ("A3", "A3 >300"), ("unknown", "No ACR")),
+    ),
 }
 
 
@@ -139,7 +151,7 @@ def _select(con: duckdb.DuckDBPyConnection, table: str, query: str,
         return []
     cur = con.execute(query.format(t=table), list(params))
     names = [d[0] for d in cur.description]
-    return [dict(zip(names, row)) for row in cur.fetchall()]
+    return [dict(zip(names, row, strict=False)) for row in cur.fetchall()]
 
 
 def _exists(con: duckdb.DuckDBPyConnection, table: str) -> bool:
@@ -182,7 +194,9 @@ class _Data:
     undetected: list[dict[str, Any]] = field(default_factory=list)  # pipeline/report_indicators.py
     equation_change: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
     sensitivity: list[dict[str, Any]] = field(default_factory=list)
-    shapes: dict[str, dict] = field(default_factory=dict)  # district boundaries (GeoJSON geometries)
+    shapes: dict[str, dict] = field(
+        default_factory=dict
+    )  # district boundaries (GeoJSON geometries)
 
     @property
     def demo_key(self) -> bool | None:
@@ -241,11 +255,20 @@ def _collect(con: duckdb.DuckDBPyConnection, period: Period) -> _Data:
         manifest = json.loads(raw) if isinstance(raw, str) else dict(raw or {})
     prevalence = _select(con, PREVALENCE, "select * from {t} where period = ? and sex = 'ALL' "
                          "and age_band = 'ALL'", [p])  # fmt: skip
-    below = {r["district_code"]: int(r["n"] or 0) for r in _select(
-        con, PREVALENCE, "select district_code, sum(n_suppressed) as n from {t} where period = ? group by 1", [p])}
+    below = {
+        r["district_code"]: int(r["n"] or 0)
+        for r in _select(
+            con,
+            PREVALENCE,
+            "select district_code, sum(n_suppressed) as n from {t} where period = ? group by 1",
+            [p],
+        )
+    }
     below[TOTAL] = sum(below.values())
     coverage = _select(con, COVERAGE, "select * from {t} where period = ?", [p])
-    if _exists(con, TREND):  # as it stood at each of the 12 month ends (sql/reports/region_coverage_trend.sql)
+    if _exists(
+        con, TREND
+    ):  # as it stood at each of the 12 month ends (sql/reports/region_coverage_trend.sql)
         trend = _select(con, TREND, "select * exclude (period), as_of_month as period from {t} where period = ? "
                         "order by as_of_month", [p])  # fmt: skip
     else:
@@ -297,13 +320,15 @@ def _dec(value: float, digits: int = 1) -> str:
 
 def _is_blanked(row: dict[str, Any], column: str) -> bool:
     """A count of a published row is blanked when it is empty in a row that suppressed counts
-    (a public count, the resident population, is never blanked: empty means there is none)."""
+    (a public count, the resident population, is never blanked: empty means there is none).
+    """
     return column not in _PUBLIC and row.get(column) is None and bool(row.get("suppression"))
 
 
 def _rate_blanked(table: str, row: dict[str, Any], rate: str, data: _Data) -> bool:
     """A rate is shown only when none of the counts it is built on is blanked (even if a value is
-    there: the report does not rely on the disclosure step having blanked it)."""
+    there: the report does not rely on the disclosure step having blanked it).
+    """
     sources = _RATES.get(table, {}).get(rate)
     if sources is not None:
         return any(_is_blanked(row, s) for s in sources)
@@ -312,7 +337,9 @@ def _rate_blanked(table: str, row: dict[str, Any], rate: str, data: _Data) -> bo
     spec = _STANDARDISED.get(table)
     if spec is not None and rate in spec.rates:
         if spec.flag in row:  # published with its flag: shown exactly when the flag is ''
-            return row.get(spec.flag) not in ("", None) or (row.get(spec.flag) is None and row.get(rate) is not None)
+            return row.get(spec.flag) not in ("", None) or (
+                row.get(spec.flag) is None and row.get(rate) is not None
+            )
         return row.get(rate) is None and data.suppressed_below.get(row["district_code"], 0) > 0
     return row.get(rate) is None and bool(row.get("suppression"))
 
@@ -405,7 +432,9 @@ def _headlines(data: _Data) -> list[_Headline]:
     elif both == "not available":
         both_detail = ""
     else:
-        both_detail = f"{both} had both an eGFR and an ACR" + (f": {both_n} persons" if both_n[:1].isdigit() else "")
+        both_detail = f"{both} had both an eGFR and an ACR" + (
+            f": {both_n} persons" if both_n[:1].isdigit() else ""
+        )
     return [
         _Headline("persons_tested", f"Persons tested (eGFR or ACR) in the {window} months to {data.end_words}",
                   _headline_value(prev, "persons_tested", data)),
@@ -468,7 +497,9 @@ class _Svg:
     def text(self, x: float, y: float, text: str, anchor: str = "start", cls: str = "",
              extra: str = "") -> None:  # fmt: skip
         klass = f' class="{cls}"' if cls else ""
-        self.add(f'<text x="{x:.1f}" y="{y:.1f}" text-anchor="{anchor}"{klass}{extra}>{_e(text)}</text>')
+        self.add(
+            f'<text x="{x:.1f}" y="{y:.1f}" text-anchor="{anchor}"{klass}{extra}>{_e(text)}</text>'
+        )
 
     def line(self, x1: float, y1: float, x2: float, y2: float, stroke: str = INK, width: float = 1,
              dash: str = "") -> None:  # fmt: skip
@@ -479,11 +510,15 @@ class _Svg:
     def legend(self, names: Sequence[str], x: float, y: float, swatch: bool = False,
                styles: Sequence[tuple[str, int]] | None = None) -> None:  # fmt: skip
         """Colour keys; ``swatch`` draws squares (bars) instead of the series' point markers;
-        ``styles``: (colour, marker shape) per name, else by position."""
+        ``styles``: (colour, marker shape) per name, else by position.
+        """
         for i, name in enumerate(names):
             colour, shape = styles[i] if styles else (PALETTE[i % len(PALETTE)], i)
-            self.add(f'<rect x="{x:.1f}" y="{y - 9:.1f}" width="11" height="11" fill="{colour}"/>' if swatch
-                     else _marker(shape, x + 6, y - 4, colour, 5))
+            self.add(
+                f'<rect x="{x:.1f}" y="{y - 9:.1f}" width="11" height="11" fill="{colour}"/>'
+                if swatch
+                else _marker(shape, x + 6, y - 4, colour, 5)
+            )
             self.text(x + 16, y, name, cls="legend")
             x += 26 + 7 * len(name)
 
@@ -534,7 +569,12 @@ def _bar_chart(chart_id: str, title: str, desc: str, categories: list[str], seri
     svg = _Svg(chart_id, 720, height, title, desc)
     if len(series) > 1:
         svg.legend([name for name, _ in series], left, 44, swatch=True)
-    highs = [b.high if b.high is not None else b.value for _, bars in series for b in bars if b.value is not None]
+    highs = [
+        b.high if b.high is not None else b.value
+        for _, bars in series
+        for b in bars
+        if b.value is not None
+    ]
     highs += [r.value for r in references]
     ticks = _nice_ticks(0.0, max(highs, default=1.0) or 1.0)
     top_tick = ticks[-1]
@@ -551,7 +591,9 @@ def _bar_chart(chart_id: str, title: str, desc: str, categories: list[str], seri
     for k, ref in enumerate(references):
         x = x_of(ref.value)
         svg.line(x, top - 6, x, plot_bottom, INK, 1.2, "5 3")
-        svg.text(x, top - 10 - 12 * k, ref.label, "middle" if x < left + plot_w - 60 else "end", "ref")
+        svg.text(
+            x, top - 10 - 12 * k, ref.label, "middle" if x < left + plot_w - 60 else "end", "ref"
+        )
     for i, name in enumerate(categories):
         y0 = top + i * band + gap / 2
         svg.text(left - 8, y0 + band / 2 - gap / 2 + 4, name, "end", "category")
@@ -561,7 +603,9 @@ def _bar_chart(chart_id: str, title: str, desc: str, categories: list[str], seri
             if bar.value is None:
                 svg.text(left + 6, y + bar_h - 4, bar.note, cls="note")
                 continue
-            label = f"{name}{', ' + series_name if len(series) > 1 else ''}: {fmt(bar.value)}{suffix}"
+            label = (
+                f"{name}{', ' + series_name if len(series) > 1 else ''}: {fmt(bar.value)}{suffix}"
+            )
             tip = label + (f" (interval {fmt(bar.low)}–{fmt(bar.high)}{suffix})"
                            if bar.low is not None and bar.high is not None else "")  # fmt: skip
             width = max(0.5, x_of(bar.value) - left)
@@ -585,7 +629,8 @@ def _line_chart(chart_id: str, title: str, desc: str, x_labels: list[str],
                 height: int = 280, styles: Sequence[tuple[str, int]] | None = None) -> str:  # fmt: skip
     """Lines over categories on the x axis (months), a gap where a value is missing; a shaded
     band where an interval is given. ``styles``: (colour, marker shape) per series (default: by
-    position)."""
+    position).
+    """
     left, right, top, bottom = 70, 24, 40 + (18 if len(series) > 1 else 0), 56
     width = 720
     plot_w, plot_h = width - left - right, height - top - bottom
@@ -647,7 +692,16 @@ def _line_chart(chart_id: str, title: str, desc: str, x_labels: list[str],
         for i, v in enumerate(vs):
             if v is not None:
                 prefix = f"{name}, " if len(series) > 1 else ""
-                svg.add(_marker(shape, x_of(i), y_of(v), colour, 4, f"{prefix}{x_labels[i]}: {fmt(v)}{suffix}"))
+                svg.add(
+                    _marker(
+                        shape,
+                        x_of(i),
+                        y_of(v),
+                        colour,
+                        4,
+                        f"{prefix}{x_labels[i]}: {fmt(v)}{suffix}",
+                    )
+                )
         if n == 1 and vs and vs[0] is not None:
             svg.text(x_of(0) + 10, y_of(vs[0]) - 8, f"{fmt(vs[0])}{suffix}", cls="value")
     return svg.render()
@@ -670,8 +724,11 @@ def _segments(indices: list[int]) -> list[list[int]]:
 def _table(table_id: str, caption: str, head: list[str], rows: list[tuple[str, str, list[_Cell]]],
            notes: list[str]) -> str:  # fmt: skip
     """A table with a text first column; rows are (district code, label, cells); the last row in
-    a tfoot when its code is the total."""
-    out = [f'<div class="table-wrap"><table id="{table_id}"><caption>{caption}</caption><thead><tr>']
+    a tfoot when its code is the total.
+    """
+    out = [
+        f'<div class="table-wrap"><table id="{table_id}"><caption>{caption}</caption><thead><tr>'
+    ]
     out += [f'<th scope="col"{" class=num" if i else ""}>{h}</th>' for i, h in enumerate(head)]
     out.append("</tr></thead><tbody>")
     for code, label, cells in rows:
@@ -723,8 +780,11 @@ def _prevalence_section(data: _Data) -> str:
         ]
         if std:
             few = r.get("ckd_per_1000_standardised_flag") == "few_events"
-            cells.append(_Cell("r", "ckd_per_1000_standardised", "s") if few else
-                         _rate_cell(table, r, "ckd_per_1000_standardised", data, _rate_number, std_ci))
+            cells.append(
+                _Cell("r", "ckd_per_1000_standardised", "s")
+                if few
+                else _rate_cell(table, r, "ckd_per_1000_standardised", data, _rate_number, std_ci)
+            )
         cells.append(_count_cell(r, "population"))
         rows.append((r["district_code"], _district_label(data, r["district_code"]), cells))
     caption = f"Confirmed CKD among persons tested, by district, {_e(data.period_words)}"
@@ -741,17 +801,20 @@ def _prevalence_section(data: _Data) -> str:
             minimum = int(data.threshold("disclosure", "standardised_min_events", 20))
             notes.append(f"<b>r</b> not shown: fewer than {minimum} persons with confirmed CKD, too few for a "
                          "reliable standardised rate (common practice).")  # fmt: skip
-    return _table("table-prevalence", caption, head, rows, notes) if rows else _missing("prevalence")
+    return (
+        _table("table-prevalence", caption, head, rows, notes) if rows else _missing("prevalence")
+    )
 
 
 def _age_groups(bounds: Sequence[int]) -> str:
     b = [int(x) for x in bounds]
-    return ", ".join([f"{lo}–{hi - 1}" for lo, hi in zip(b, b[1:])] + [f"{b[-1]}+"])
+    return ", ".join([f"{lo}–{hi - 1}" for lo, hi in zip(b, b[1:], strict=False)] + [f"{b[-1]}+"])
 
 
 def _categories_section(data: _Data) -> str:
     """One table per axis: districts down, categories across; each cell the count and, in small
-    type, per 100 persons tested."""
+    type, per 100 persons tested.
+    """
     if not data.categories:
         return _missing("CKD by category")
     table = "district_ckd_categories"
@@ -771,7 +834,9 @@ def _categories_section(data: _Data) -> str:
                 cell = _count_cell(r, "persons_ckd")
                 cell.column = category
                 if cell.kind == "num":
-                    rate = _rate_cell(table, r, "ckd_per_100_tested", data, lambda v: _dec(v, 1), False)
+                    rate = _rate_cell(
+                        table, r, "ckd_per_100_tested", data, lambda v: _dec(v, 1), False
+                    )
                     if rate.kind == "num":
                         cell = _Cell(f'{cell.text} <span class="rate">{rate.text}</span>', category)
                 cells.append(cell)
@@ -789,10 +854,20 @@ def _categories_section(data: _Data) -> str:
 def _coverage_section(data: _Data) -> str:
     table = "district_screening_coverage"
     ci = _has_interval(data.coverage_columns, "share_with_both")
-    head = ["District", "With diabetes", "With eGFR", "With ACR", "With both", "Share with both (%)"]
+    head = [
+        "District",
+        "With diabetes",
+        "With eGFR",
+        "With ACR",
+        "With both",
+        "Share with both (%)",
+    ]
     rows = []
     for r in data.coverage:
-        cells = [_count_cell(r, c) for c in ("persons_with_diabetes", "with_egfr", "with_acr", "with_egfr_and_acr")]
+        cells = [
+            _count_cell(r, c)
+            for c in ("persons_with_diabetes", "with_egfr", "with_acr", "with_egfr_and_acr")
+        ]
         cells.append(_rate_cell(table, r, "share_with_both", data, _share_number, ci))
         rows.append((r["district_code"], _district_label(data, r["district_code"]), cells))
     caption = f"Kidney testing among persons with lab-evidenced diabetes, by district, {_e(data.period_words)}"
@@ -806,17 +881,27 @@ def _incidence_section(data: _Data) -> str:
             "≥40 % per 1,000 person-years"]  # fmt: skip
     rows = []
     for r in data.incidence:
-        cells = [_count_cell(r, "persons_tested"),
-                 _Cell(_dec(r["person_years"], 1) if r.get("person_years") is not None else "–", "person_years")]
+        cells = [
+            _count_cell(r, "persons_tested"),
+            _Cell(
+                _dec(r["person_years"], 1) if r.get("person_years") is not None else "–",
+                "person_years",
+            ),
+        ]
         cells += [_count_cell(r, f"persons_decline_{t}") for t in (30, 40, 57)]
-        cells.append(_rate_cell(table, r, "decline_40_per_1000_person_years", data, _rate_number, False))
+        cells.append(
+            _rate_cell(table, r, "decline_40_per_1000_person_years", data, _rate_number, False)
+        )
         rows.append((r["district_code"], _district_label(data, r["district_code"]), cells))
-    caption = (f"Sustained eGFR decline with its event in the 12 months to {_e(data.end_words)}, by district "
-               "(confirmed: every daily eGFR of the run at or below the threshold for at least 28 days)")
+    caption = (
+        f"Sustained eGFR decline with its event in the 12 months to {_e(data.end_words)}, by district "
+        "(confirmed: every daily eGFR of the run at or below the threshold for at least 28 days)"
+    )
     notes = _suppression_notes(data, False) + [
         "Each column counts the persons whose event at that threshold is dated in the window. A person whose "
         "30 % decline was dated before the window and whose 40 % decline falls in it is counted at 40 % and "
-        "not at 30 %, so the ≥40 % count can exceed the ≥30 % count."]
+        "not at 30 %, so the ≥40 % count can exceed the ≥30 % count."
+    ]
     return (_table("table-incidence", caption, head, rows, notes)
             if rows else _missing("sustained-decline incidence"))  # fmt: skip
 
@@ -833,7 +918,11 @@ def _share_chart(data: _Data) -> str:
     for r in data.prevalence:
         code = r["district_code"]
         blanked = _rate_blanked(table, r, "ckd_share_of_tested", data)
-        value = None if blanked or r.get("ckd_share_of_tested") is None else r["ckd_share_of_tested"] * 100
+        value = (
+            None
+            if blanked or r.get("ckd_share_of_tested") is None
+            else r["ckd_share_of_tested"] * 100
+        )
         if code == TOTAL:
             total = value
             continue
@@ -895,7 +984,10 @@ def _quality_by_source(data: _Data) -> list[dict[str, Any]]:
         s["accepted"] += int(r["rows_accepted"] or 0)
         s["rejected"] += int(r["rows_rejected"] or 0)
         if r["extract_month"] == data.period.label:
-            s["this_read"], s["this_rejected"] = int(r["rows_read"] or 0), int(r["rows_rejected"] or 0)
+            s["this_read"], s["this_rejected"] = (
+                int(r["rows_read"] or 0),
+                int(r["rows_rejected"] or 0),
+            )
     return [out[k] for k in sorted(out)]
 
 
@@ -912,7 +1004,11 @@ def _quality_chart(data: _Data, sources: list[dict[str, Any]]) -> str:
                      f"{'none' if v_this is None else _dec(v_this, 2) + ' %'}, all extract months "
                      f"{'none' if v_all is None else _dec(v_all, 2) + ' %'}")  # fmt: skip
     gate = data.manifest.get("thresholds", {}).get("quality_gate", {}).get("max_rejection_rate")
-    refs = [_Reference(100 * float(gate), f"quality gate {_dec(100 * float(gate))} %")] if gate is not None else []
+    refs = (
+        [_Reference(100 * float(gate), f"quality gate {_dec(100 * float(gate))} %")]
+        if gate is not None
+        else []
+    )
     desc = f"Horizontal bars: share of rows rejected per lab source. {'; '.join(words)}."
     return _bar_chart("chart-rejected-share", "Rows rejected, share of rows read, by lab", desc,
                       [s["source_id"] for s in sources],
@@ -946,20 +1042,35 @@ def _quality_table(data: _Data, sources: list[dict[str, Any]]) -> str:
         return '<p class="notice">No data quality rows for this period.</p>'
     reasons: dict[str, list[str]] = {}
     for r in data.reasons:
-        reasons.setdefault(r["source_id"], []).append(f"{_e(r['reason_code'])}&nbsp;{_int(r['rows'])}")
+        reasons.setdefault(r["source_id"], []).append(
+            f"{_e(r['reason_code'])}&nbsp;{_int(r['rows'])}"
+        )
     head = ["Lab source", "Extract months", "Files", "Held back", "Rows read", "Accepted", "Rejected",
             "Rejected (%)", "Main rejection reasons"]  # fmt: skip
     out = ['<div class="table-wrap"><table id="table-quality"><caption>Rows per lab source, all extract '
            f'months in the warehouse at {_e(data.period.label)}</caption><thead><tr>']  # fmt: skip
-    out += [f'<th scope="col"{" class=num" if 1 < i < 8 else ""}>{h}</th>' for i, h in enumerate(head)]
+    out += [
+        f'<th scope="col"{" class=num" if 1 < i < 8 else ""}>{h}</th>' for i, h in enumerate(head)
+    ]
     out.append("</tr></thead><tbody>")
     for s in sources:
         months = f"{s['months'][0]} – {s['months'][-1]}" if len(s["months"]) > 1 else s["months"][0]
         share = _dec(100 * s["rejected"] / s["read"], 2) if s["read"] else "–"
-        cells = [_int(s["files"]), _int(s["held"]), _int(s["read"]), _int(s["accepted"]), _int(s["rejected"]), share]
-        out.append(f'<tr><th scope="row">{_e(s["source_id"])}</th><td class="text nowrap">{_e(months)}</td>')
+        cells = [
+            _int(s["files"]),
+            _int(s["held"]),
+            _int(s["read"]),
+            _int(s["accepted"]),
+            _int(s["rejected"]),
+            share,
+        ]
+        out.append(
+            f'<tr><th scope="row">{_e(s["source_id"])}</th><td class="text nowrap">{_e(months)}</td>'
+        )
         out += [f'<td class="num">{c}</td>' for c in cells]
-        out.append(f'<td class="text reasons">{"<br>".join(reasons.get(s["source_id"], [])[:3]) or "–"}</td></tr>')
+        out.append(
+            f'<td class="text reasons">{"<br>".join(reasons.get(s["source_id"], [])[:3]) or "–"}</td></tr>'
+        )
     out.append("</tbody></table></div>")
     out.append('<p class="table-notes">Counts of data rows, not of persons. Reason codes are listed in the '
                "project's developer guide.</p>")  # fmt: skip
@@ -994,12 +1105,15 @@ def _methods_section(data: _Data) -> str:
     ckd_acr = _num(t("trajectories", "ckd_acr_at_or_above_mg_g", 30))
     ckd_days = int(t("trajectories", "ckd_min_span_days", 90))
     base_days = int(t("trajectories", "baseline_window_days", 90))
-    decline = ", ".join(f"{_num(100 * float(x))} %" for x in t("trajectories", "decline_thresholds", [0.3, 0.4, 0.57]))
+    decline = ", ".join(
+        f"{_num(100 * float(x))} %"
+        for x in t("trajectories", "decline_thresholds", [0.3, 0.4, 0.57])
+    )
     decline_days = int(t("trajectories", "decline_min_span_days", 28))
     hba1c = _num(t("measures", "diabetes_hba1c_percent", 6.5))
     hba1c_ifcc = _num(t("measures", "diabetes_hba1c_mmol_mol", 48))
     glucose = _num(t("measures", "diabetes_fasting_glucose_mg_dl", 126))
-    glucose_si = f'{float(t("measures", "diabetes_fasting_glucose_mmol_l", 7.0)):.1f}'
+    glucose_si = f"{float(t('measures', 'diabetes_fasting_glucose_mmol_l', 7.0)):.1f}"
     intervals = (_has_interval(data.prevalence_columns, "ckd_share_of_tested")
                  or _has_interval(data.coverage_columns, "share_with_both"))  # fmt: skip
     definitions = [
@@ -1049,8 +1163,10 @@ def _methods_section(data: _Data) -> str:
         "(HbA1c and fasting glucose thresholds).",
     ]
     if data.undetected:
-        sources.append("Breslow NE, Day NE. Statistical Methods in Cancer Research, vol. II. IARC 1987 "
-                       "(indirect standardisation).")
+        sources.append(
+            "Breslow NE, Day NE. Statistical Methods in Cancer Research, vol. II. IARC 1987 "
+            "(indirect standardisation)."
+        )
     if "ekfc_creatinine" in used:
         sources.append("Pottel H, et al. Ann Intern Med 2021;174:183 (EKFC).")
     if "ckid_u25_creatinine" in used:
@@ -1066,7 +1182,7 @@ def _methods_section(data: _Data) -> str:
            "GFR categories follow KDIGO 2012 on the unrounded eGFR; albuminuria is put on one scale, ACR in "
            "mg/g.</p>", _equations_table(data), "<h3>Definitions</h3><dl>"]  # fmt: skip
     out += [f"<dt>{_e(term)}</dt><dd>{text}</dd>" for term, text in definitions]
-    out.append("</dl><h3>Sources</h3><ul class=\"sources\">")
+    out.append('</dl><h3>Sources</h3><ul class="sources">')
     out += [f"<li>{_e(s)}</li>" for s in sources]
     out.append("</ul></section>")
     return "".join(out)
@@ -1101,7 +1217,7 @@ def _cautions_section() -> str:
 
 def _run_footer(data: _Data) -> str:
     if data.run is None:
-        return '<footer><p>No run manifest is recorded for this period.</p></footer>'
+        return "<footer><p>No run manifest is recorded for this period.</p></footer>"
     r = data.run
     held = data.manifest.get("quality_gate", {}).get("held_back_sources") or {}
     parts = [f"Run {_e(r['run_id'])}", f"started {_e(r['started_at'])} UTC", f"status {_e(r['status'])}",
@@ -1111,14 +1227,17 @@ def _run_footer(data: _Data) -> str:
     parts.append(f"configuration {_e(str(r['config_sha256'])[:12])}")
     text = " · ".join(parts)
     if held:
-        text += "<br>Held back by the quality gate: " + "; ".join(f"{_e(k)} ({_e(v)})" for k, v in sorted(held.items()))
+        text += "<br>Held back by the quality gate: " + "; ".join(
+            f"{_e(k)} ({_e(v)})" for k, v in sorted(held.items())
+        )
     return f"<footer><p>{text}</p></footer>"
 
 
 def _period_checks_section(data: _Data) -> str:
     """What the run said about its own period (run manifest, ``period_checks``): sources that
     sent nothing, rows it could not count, code values no config maps, and the period's own
-    rows per source beside the warehouse's totals."""
+    rows per source beside the warehouse's totals.
+    """
     checks = data.manifest.get("period_checks") or {}
     if not checks:
         return ""
@@ -1126,35 +1245,64 @@ def _period_checks_section(data: _Data) -> str:
     notes = []
     hold = checks.get("missing_sources_policy") == "hold"
     for source, message in sorted((checks.get("missing_sources") or {}).items()):
-        notes.append(f"<li><strong>Missing source{' (holds the period)' if hold else ''}:</strong> "
-                     f"{_e(source)}: {_e(message)}</li>")
+        notes.append(
+            f"<li><strong>Missing source{' (holds the period)' if hold else ''}:</strong> "
+            f"{_e(source)}: {_e(message)}</li>"
+        )
     for line in checks.get("rows_outside_period_notes") or []:
         notes.append(f"<li><strong>Rows outside the period:</strong> {_e(line)}</li>")
     for source, fields in sorted((checks.get("unmapped_codes") or {}).items()):
         for name, info in sorted(fields.items()):
-            values = ", ".join(f"{_e(v)} ({_int(n)})" for v, n in list(info.get("values", {}).items())[:8])
-            notes.append(f"<li><strong>Unmapped {_e(name)}:</strong> {_e(source)}: {_int(info.get('rows'))} rows "
-                         f"({values}); map them under <code>{_e(info.get('config_key'))}</code> in the source "
-                         "config</li>")
+            values = ", ".join(
+                f"{_e(v)} ({_int(n)})" for v, n in list(info.get("values", {}).items())[:8]
+            )
+            notes.append(
+                f"<li><strong>Unmapped {_e(name)}:</strong> {_e(source)}: {_int(info.get('rows'))} rows "
+                f"({values}); map them under <code>{_e(info.get('config_key'))}</code> in the source "
+                "config</li>"
+            )
     if checks.get("indicators_lack"):
-        notes.append("<li><strong>The indicators lack:</strong> "
-                     + ", ".join(_e(s) for s in checks["indicators_lack"]) + "</li>")
-    out.append(f'<ul class="period-checks">{"".join(notes)}</ul>' if notes
-               else "<p>Every configured source delivered; no unmapped code; every accepted row of this "
-                    "period's files is counted in it.</p>")
-    cols = ("files", "read", "accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending", "held_back")
+        notes.append(
+            "<li><strong>The indicators lack:</strong> "
+            + ", ".join(_e(s) for s in checks["indicators_lack"])
+            + "</li>"
+        )
+    out.append(
+        f'<ul class="period-checks">{"".join(notes)}</ul>'
+        if notes
+        else "<p>Every configured source delivered; no unmapped code; every accepted row of this "
+        "period's files is counted in it.</p>"
+    )
+    cols = (
+        "files",
+        "read",
+        "accepted",
+        "rejected",
+        "superseded",
+        "duplicate",
+        "withdrawn",
+        "pending",
+        "held_back",
+    )
     head = "".join(f'<th scope="col">{c.replace("_", " ")}</th>' for c in cols)
     body = "".join(
         f'<tr><th scope="row">{_e(src)}</th>' + "".join(f"<td>{_int(c.get(k, 0))}</td>" for k in cols) + "</tr>"
         for src, c in sorted((checks.get("sources") or {}).items()))  # fmt: skip
-    out.append(f'<table id="period-rows"><caption>Rows of the files ingested for {_e(data.period.label)}, per '
-               f'source (per file, read = the sum of the outcomes)</caption><thead><tr><th scope="col">source</th>'
-               f"{head}</tr></thead><tbody>{body}</tbody></table>")
+    out.append(
+        f'<table id="period-rows"><caption>Rows of the files ingested for {_e(data.period.label)}, per '
+        f'source (per file, read = the sum of the outcomes)</caption><thead><tr><th scope="col">source</th>'
+        f"{head}</tr></thead><tbody>{body}</tbody></table>"
+    )
     totals = checks.get("warehouse_sources") or {}
     if totals:
-        out.append("<p>Warehouse totals, all periods (not this period's): " + "; ".join(
-            f"{_e(s)} read {_int(c.get('read', 0))}, accepted {_int(c.get('accepted', 0))}"
-            for s, c in sorted(totals.items())) + ".</p>")
+        out.append(
+            "<p>Warehouse totals, all periods (not this period's): "
+            + "; ".join(
+                f"{_e(s)} read {_int(c.get('read', 0))}, accepted {_int(c.get('accepted', 0))}"
+                for s, c in sorted(totals.items())
+            )
+            + ".</p>"
+        )
     return "\n".join(out)
 
 
@@ -1272,7 +1420,8 @@ def _revision_banner(revision: dict[str, Any]) -> str:
     rows = "".join(
         f"<tr><td>{_e(_HEADLINE_WORDS.get(k, k))}</td><td>{_e(shown(before.get(k)))}</td>"
         f"<td>{_e(shown(after.get(k)))}</td></tr>"
-        for k in _HEADLINE_WORDS if k in before or k in after
+        for k in _HEADLINE_WORDS
+        if k in before or k in after
     )
     return (
         f'<div class="banner" id="revision-banner" role="alert"><p>Revised release: revision '
@@ -1307,9 +1456,11 @@ def _render(data: _Data) -> str:
                       "read): " + ", ".join(_e(s) for s in sorted(drift)) + ".</p>")  # fmt: skip
     lacking = (data.manifest.get("period_checks") or {}).get("indicators_lack") or []
     if lacking:
-        held_note += ('<p class="notice" id="indicators-lack">These indicators lack: '
-                      + ", ".join(_e(s) for s in lacking)
-                      + ' (held back or sent nothing; see <a href="#period-checks">data quality</a>).</p>')
+        held_note += (
+            '<p class="notice" id="indicators-lack">These indicators lack: '
+            + ", ".join(_e(s) for s in lacking)
+            + ' (held back or sent nothing; see <a href="#period-checks">data quality</a>).</p>'
+        )
     cards = []
     for h in _headlines(data):
         klass = " suppressed" if h.value.startswith(("suppressed", "not available")) else ""

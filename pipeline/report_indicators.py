@@ -2,7 +2,8 @@
 albuminuria ("expected cases not yet found") and, where published, the equation-change impact.
 
 Kept apart from pipeline/report.py so that the core report can change without touching these;
-they use its table and cell helpers and read only published tables (report.READABLE_TABLES)."""
+they use its table and cell helpers and read only published tables (report.READABLE_TABLES).
+"""
 
 from __future__ import annotations
 
@@ -19,10 +20,12 @@ def collect_undetected(con, period: str) -> list[dict[str, Any]]:
         return []
     # the counts of persons with diabetes and with an ACR are coverage's, published there only
     # (pipeline/disclosure.py): shown beside the estimates as coverage publishes them
-    query = ("select u.*, c.persons_with_diabetes, c.with_acr, "
-             "c.persons_with_diabetes - c.with_acr as persons_without_acr "
-             "from {t} as u left join published.district_screening_coverage as c "
-             "on c.period = u.period and c.district_code = u.district_code where u.period = ?")
+    query = (
+        "select u.*, c.persons_with_diabetes, c.with_acr, "
+        "c.persons_with_diabetes - c.with_acr as persons_without_acr "
+        "from {t} as u left join published.district_screening_coverage as c "
+        "on c.period = u.period and c.district_code = u.district_code where u.period = ?"
+    )
     return r._district_order(r._select(con, UNDETECTED, query, [period]))
 
 
@@ -47,17 +50,26 @@ def _expected_cell(row: dict[str, Any], data: Any, ci: bool) -> r._Cell:
 
 def undetected_section(rows: list[dict[str, Any]], data: Any) -> str:
     """The table shown beside screening coverage: untested persons with diabetes and the
-    expected number of them with A2 or A3."""
+    expected number of them with A2 or A3.
+    """
     if not rows:
         return r._missing("expected undetected albuminuria")
     table = "district_undetected_albuminuria"
     ci = r._has_interval(set(rows[0]), "expected_a2_a3_without_acr")
-    head = ["District", "With diabetes", "Without ACR", "A2/A3 among tested (%)",
-            "Expected cases not yet found (A2/A3 among those without ACR)"]
+    head = [
+        "District",
+        "With diabetes",
+        "Without ACR",
+        "A2/A3 among tested (%)",
+        "Expected cases not yet found (A2/A3 among those without ACR)",
+    ]
     body = []
     for row in rows:
-        diabetes = (r._Cell("s", "persons_with_diabetes", "s") if row.get("persons_with_diabetes") is None
-                    else r._count_cell(row, "persons_with_diabetes"))
+        diabetes = (
+            r._Cell("s", "persons_with_diabetes", "s")
+            if row.get("persons_with_diabetes") is None
+            else r._count_cell(row, "persons_with_diabetes")
+        )
         untested = row.get("persons_without_acr")
         # the difference of two of coverage's counts: shown only where both are and it is not a
         # count from 1 to suppress_max itself
@@ -65,49 +77,72 @@ def undetected_section(rows: list[dict[str, Any]], data: Any) -> str:
             untested_cell = r._Cell("s", "persons_without_acr", "s")
         else:
             untested_cell = r._count_cell(row, "persons_without_acr")
-        cells = [diabetes,
-                 untested_cell,
-                 (r._Cell("s", "share_a2_a3_of_tested", "s") if row.get("with_acr") is None
-                  else r._rate_cell(table, row, "share_a2_a3_of_tested", data, r._share_number, False)),
-                 _expected_cell(row, data, ci)]
+        cells = [
+            diabetes,
+            untested_cell,
+            (
+                r._Cell("s", "share_a2_a3_of_tested", "s")
+                if row.get("with_acr") is None
+                else r._rate_cell(table, row, "share_a2_a3_of_tested", data, r._share_number, False)
+            ),
+            _expected_cell(row, data, ci),
+        ]
         body.append((row["district_code"], r._district_label(data, row["district_code"]), cells))
     window = int(data.threshold("summaries", "window_months", 12))
     minimum = int(data.threshold("summaries", "albuminuria_min_tested", 10))
     groups = r._age_groups(data.threshold("summaries", "albuminuria_age_bands", [0, 45, 65, 75]))
-    caption = (f"Expected cases not yet found: moderately or severely increased albuminuria (A2/A3) among "
-               f"persons with diabetes without a urine ACR in the {window} months, {r._e(data.period_words)}")
+    caption = (
+        f"Expected cases not yet found: moderately or severely increased albuminuria (A2/A3) among "
+        f"persons with diabetes without a urine ACR in the {window} months, {r._e(data.period_words)}"
+    )
     notes = r._suppression_notes(data, ci) + [
         "<b>Estimate, not a count.</b> " + r._e(ASSUMPTION),
         f"Strata: age groups {groups}, sex and GFR category of the latest eGFR; a stratum with fewer than "
         f"{minimum} tested persons takes its share from the pooled sparse strata of its age group and sex, "
         "then its age group, then the region."
-        + (" Interval: the uncertainty of the region's stratum shares only (normal approximation); it is not "
-           "the range of what testing everyone would find." if ci else ""),
-        ("Persons tested outside the region's laboratories count as untested, which also pushes the estimate "
-         "up. A dipstick or protein ratio does not count as an ACR."),
+        + (
+            " Interval: the uncertainty of the region's stratum shares only (normal approximation); it is not "
+            "the range of what testing everyone would find."
+            if ci
+            else ""
+        ),
+        (
+            "Persons tested outside the region's laboratories count as untested, which also pushes the estimate "
+            "up. A dipstick or protein ratio does not count as an ACR."
+        ),
     ]
     return r._table("table-undetected", caption, head, body, notes)
 
 
 def undetected_definition() -> tuple[str, str]:
-    return ("Expected cases not yet found",
-            "Among persons with lab-evidenced diabetes and no urine ACR in the window, the expected number "
-            "with A2 or A3: the region's share of A2/A3 among the tested, per stratum of age group, sex and "
-            "GFR category, applied to each district's untested persons and summed (indirect "
-            "standardisation; Breslow and Day 1987). " + r._e(ASSUMPTION))
+    return (
+        "Expected cases not yet found",
+        "Among persons with lab-evidenced diabetes and no urine ACR in the window, the expected number "
+        "with A2 or A3: the region's share of A2/A3 among the tested, per stratum of age group, sex and "
+        "GFR category, applied to each district's untested persons and summed (indirect "
+        "standardisation; Breslow and Day 1987). " + r._e(ASSUMPTION),
+    )
 
 
 EQUATION_TOTALS = "published.district_equation_change"
 EQUATION_CATEGORIES = "published.district_equation_change_categories"
 BELOW_60 = ("G3a", "G3b", "G4", "G5")
-G_LABELS = (("G1", "G1 ≥90"), ("G2", "G2 60–89"), ("G3a", "G3a 45–59"), ("G3b", "G3b 30–44"),
-            ("G4", "G4 15–29"), ("G5", "G5 <15"))
+G_LABELS = (
+    ("G1", "G1 ≥90"),
+    ("G2", "G2 60–89"),
+    ("G3a", "G3a 45–59"),
+    ("G3b", "G3b 30–44"),
+    ("G4", "G4 15–29"),
+    ("G5", "G5 <15"),
+)
 
 
 def collect_equation_change(con, period: str) -> dict[str, list[dict[str, Any]]]:
     if not (r._exists(con, EQUATION_TOTALS) and r._exists(con, EQUATION_CATEGORIES)):
         return {"totals": [], "categories": []}
-    totals = r._select(con, EQUATION_TOTALS, "select * from {t} where period = ? order by comparison", [period])
+    totals = r._select(
+        con, EQUATION_TOTALS, "select * from {t} where period = ? order by comparison", [period]
+    )
     categories = r._select(con, EQUATION_CATEGORIES, "select * from {t} where period = ?", [period])
     return {"totals": r._district_order(totals), "categories": categories}
 
@@ -115,7 +150,10 @@ def collect_equation_change(con, period: str) -> dict[str, list[dict[str, Any]]]
 def _below_60(rows: list[dict[str, Any]], column: str) -> r._Cell:
     """G3a + G3b + G4 + G5 from the published cells; 's' if any of them is blank."""
     cells = {row["g_category"]: row for row in rows}
-    if any(g not in cells or r._is_blanked(cells[g], column) or cells[g].get(column) is None for g in BELOW_60):
+    if any(
+        g not in cells or r._is_blanked(cells[g], column) or cells[g].get(column) is None
+        for g in BELOW_60
+    ):
         return r._Cell("s", f"below_60_{column}", "s")
     return r._Cell(r._int(sum(int(cells[g][column]) for g in BELOW_60)), f"below_60_{column}")
 
@@ -126,53 +164,110 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
         return r._missing("equation-change impact")
     names = r.EQUATION_NAMES
     in_force = totals[0].get("in_force_equation")
-    comparisons = sorted({t["comparison"] for t in totals}, key=lambda c: c == "ckd_epi_2021_creatinine_cystatin")
+    comparisons = sorted(
+        {t["comparison"] for t in totals}, key=lambda c: c == "ckd_epi_2021_creatinine_cystatin"
+    )
     window = int(data.threshold("summaries", "window_months", 12))
-    lead = (f"<p>Each adult's latest creatinine eGFR in the {window} months to {r._e(data.end_words)}, under the "
-            f"equation in force ({r._e(names.get(in_force, in_force))}) and under another. A switch of equation "
-            "moves these counts by itself, with no change in anyone's kidneys. Confirmed CKD under the other "
-            "creatinine equation: every adult creatinine eGFR recomputed and the CKD rules run again.</p>")
+    lead = (
+        f"<p>Each adult's latest creatinine eGFR in the {window} months to {r._e(data.end_words)}, under the "
+        f"equation in force ({r._e(names.get(in_force, in_force))}) and under another. A switch of equation "
+        "moves these counts by itself, with no change in anyone's kidneys. Confirmed CKD under the other "
+        "creatinine equation: every adult creatinine eGFR recomputed and the CKD rules run again.</p>"
+    )
     out = [lead]
     for comparison in comparisons:
         label = names.get(comparison, comparison)
-        region = [c for c in categories if c["district_code"] == r.TOTAL and c["comparison"] == comparison]
+        region = [
+            c for c in categories if c["district_code"] == r.TOTAL and c["comparison"] == comparison
+        ]
         by_g = {c["g_category"]: c for c in region}
         rows = []
         for g, text in G_LABELS:
             row = by_g.get(g)
             if row is None:
                 continue
-            rows.append((g, r._e(text), [r._count_cell(row, "persons_in_force"),
-                                        r._count_cell(row, "persons_comparison"),
-                                        r._count_cell(row, "moved_to_lower_gfr_category"),
-                                        r._count_cell(row, "moved_to_higher_gfr_category")]))
-        rows.append(("below_60", "Below 60 (G3a–G5)", [_below_60(region, "persons_in_force"),
-                                                       _below_60(region, "persons_comparison"),
-                                                       r._Cell("", "moved_to_lower_gfr_category", "na"),
-                                                       r._Cell("", "moved_to_higher_gfr_category", "na")]))
-        head = ["GFR category", "In force", "Under the other equation", "Of those in force: moved lower",
-                "Moved higher"]
-        what = ("persons whose latest day had a cystatin C too: the creatinine–cystatin C eGFR against the "
-                "creatinine eGFR alone" if comparison == "ckd_epi_2021_creatinine_cystatin" else "adults")
-        caption = (f"All districts: {r._e(label)} against the equation in force, {what}, "
-                   f"{r._e(data.period_words)}")
+            rows.append(
+                (
+                    g,
+                    r._e(text),
+                    [
+                        r._count_cell(row, "persons_in_force"),
+                        r._count_cell(row, "persons_comparison"),
+                        r._count_cell(row, "moved_to_lower_gfr_category"),
+                        r._count_cell(row, "moved_to_higher_gfr_category"),
+                    ],
+                )
+            )
+        rows.append(
+            (
+                "below_60",
+                "Below 60 (G3a–G5)",
+                [
+                    _below_60(region, "persons_in_force"),
+                    _below_60(region, "persons_comparison"),
+                    r._Cell("", "moved_to_lower_gfr_category", "na"),
+                    r._Cell("", "moved_to_higher_gfr_category", "na"),
+                ],
+            )
+        )
+        head = [
+            "GFR category",
+            "In force",
+            "Under the other equation",
+            "Of those in force: moved lower",
+            "Moved higher",
+        ]
+        what = (
+            "persons whose latest day had a cystatin C too: the creatinine–cystatin C eGFR against the "
+            "creatinine eGFR alone"
+            if comparison == "ckd_epi_2021_creatinine_cystatin"
+            else "adults"
+        )
+        caption = (
+            f"All districts: {r._e(label)} against the equation in force, {what}, "
+            f"{r._e(data.period_words)}"
+        )
         out.append(r._table(f"table-equation-{r._e(comparison)}", caption, head, rows, []))
     main = comparisons[0]
     rows = []
     for t in (t for t in totals if t["comparison"] == main):
-        mine = [c for c in categories if c["district_code"] == t["district_code"] and c["comparison"] == main]
-        rows.append((t["district_code"], r._district_label(data, t["district_code"]), [
-            r._count_cell(t, "persons_compared"), _below_60(mine, "persons_in_force"),
-            _below_60(mine, "persons_comparison"), r._count_cell(t, "moved_to_lower_gfr_category"),
-            r._count_cell(t, "moved_to_higher_gfr_category"), r._count_cell(t, "persons_ckd_in_force"),
-            r._count_cell(t, "persons_ckd_comparison")]))
-    head = ["District", "Adults compared", "Below 60, in force", "Below 60, other equation",
-            "Moved to a lower category", "Moved to a higher category", "Confirmed CKD, in force",
-            "Confirmed CKD, other equation"]
+        mine = [
+            c
+            for c in categories
+            if c["district_code"] == t["district_code"] and c["comparison"] == main
+        ]
+        rows.append(
+            (
+                t["district_code"],
+                r._district_label(data, t["district_code"]),
+                [
+                    r._count_cell(t, "persons_compared"),
+                    _below_60(mine, "persons_in_force"),
+                    _below_60(mine, "persons_comparison"),
+                    r._count_cell(t, "moved_to_lower_gfr_category"),
+                    r._count_cell(t, "moved_to_higher_gfr_category"),
+                    r._count_cell(t, "persons_ckd_in_force"),
+                    r._count_cell(t, "persons_ckd_comparison"),
+                ],
+            )
+        )
+    head = [
+        "District",
+        "Adults compared",
+        "Below 60, in force",
+        "Below 60, other equation",
+        "Moved to a lower category",
+        "Moved to a higher category",
+        "Confirmed CKD, in force",
+        "Confirmed CKD, other equation",
+    ]
     caption = f"By district: {r._e(names.get(main, main))} against the equation in force, {r._e(data.period_words)}"
     notes = r._suppression_notes(data, False) + [
-        ("Below 60 is the sum of the published G3a–G5 counts; shown as <b>s</b> when any of them is suppressed. "
-         "A lower category is a higher G number (lower eGFR).")]
+        (
+            "Below 60 is the sum of the published G3a–G5 counts; shown as <b>s</b> when any of them is suppressed. "
+            "A lower category is a higher G number (lower eGFR)."
+        )
+    ]
     out.append(r._table("table-equation-districts", caption, head, rows, notes))
     return "".join(out)
 
@@ -182,7 +277,8 @@ def source_style(source_id: str, present: list[str]) -> tuple[str, int]:
     the colour from a hash of its id (SHA-256, not Python's salted hash) over the palette, the
     shape from the colour. Only when two labs shown together hash to the same colour does the
     later (by id) take the next free one, so a lab keeps its colour unless a new lab collides
-    with it and sorts first; up to len(PALETTE) labs always get distinct colours."""
+    with it and sorts first; up to len(PALETTE) labs always get distinct colours.
+    """
     import hashlib
 
     size = len(r.PALETTE)
@@ -207,7 +303,9 @@ SENSITIVITY = "published.district_estimated_acr_sensitivity"
 def collect_sensitivity(con, period: str) -> list[dict[str, Any]]:
     if not r._exists(con, SENSITIVITY):
         return []
-    return r._district_order(r._select(con, SENSITIVITY, "select * from {t} where period = ?", [period]))
+    return r._district_order(
+        r._select(con, SENSITIVITY, "select * from {t} where period = ?", [period])
+    )
 
 
 def sensitivity_section(rows: list[dict[str, Any]], data: Any) -> str:
@@ -217,26 +315,45 @@ def sensitivity_section(rows: list[dict[str, Any]], data: Any) -> str:
     cov = next((row for row in data.coverage if row["district_code"] == r.TOTAL), None)
     if region is None or prev is None or cov is None:
         return r._missing("sensitivity to estimated albuminuria")
-    lines = (("Persons tested", prev, "persons_tested", "persons_tested_added"),
-             ("Persons with confirmed CKD", prev, "persons_ckd", "persons_ckd_added"),
-             ("Persons with diabetes with an ACR", cov, "with_acr", "with_acr_added"),
-             ("Persons with diabetes with both eGFR and ACR", cov, "with_egfr_and_acr", "with_egfr_and_acr_added"))
+    lines = (
+        ("Persons tested", prev, "persons_tested", "persons_tested_added"),
+        ("Persons with confirmed CKD", prev, "persons_ckd", "persons_ckd_added"),
+        ("Persons with diabetes with an ACR", cov, "with_acr", "with_acr_added"),
+        (
+            "Persons with diabetes with both eGFR and ACR",
+            cov,
+            "with_egfr_and_acr",
+            "with_egfr_and_acr_added",
+        ),
+    )
     body = []
     for label, base, column, added in lines:
         default, plus = r._count_cell(base, column), r._count_cell(region, added)
         if default.kind == "num" and plus.kind == "num":
-            total = r._Cell(r._int(int(base[column]) + int(region[added])), f"{column}_with_estimates")
+            total = r._Cell(
+                r._int(int(base[column]) + int(region[added])), f"{column}_with_estimates"
+            )
         else:
             total = r._Cell("s", f"{column}_with_estimates", "s")
         default.column, plus.column = f"{column}_default", added
         body.append((column, r._e(label), [default, plus, total]))
-    head = ["All districts", "Default (estimates left out)", "Added by estimates", "Estimates counted"]
-    caption = f"Counting ACR estimated from a protein ratio or a dipstick, {r._e(data.period_words)}"
+    head = [
+        "All districts",
+        "Default (estimates left out)",
+        "Added by estimates",
+        "Estimates counted",
+    ]
+    caption = (
+        f"Counting ACR estimated from a protein ratio or a dipstick, {r._e(data.period_words)}"
+    )
     notes = r._suppression_notes(data, False) + [
-        ("The default counts only measured ACR: a dipstick misses moderately increased albuminuria (A2), and an "
-         "ACR estimated from a protein ratio is uncertain (Sumida et al. 2020). Counted here, a dipstick of "
-         "trace or 1+ stands for A2 and 2+ or more for A3; a day with a measured ACR goes by the measured "
-         "value. Estimates counted = default + added, shown only where both are published.")]
+        (
+            "The default counts only measured ACR: a dipstick misses moderately increased albuminuria (A2), and an "
+            "ACR estimated from a protein ratio is uncertain (Sumida et al. 2020). Counted here, a dipstick of "
+            "trace or 1+ stands for A2 and 2+ or more for A3; a day with a measured ACR goes by the measured "
+            "value. Estimates counted = default + added, shown only where both are published."
+        )
+    ]
     return r._table("table-sensitivity", caption, head, body, notes)
 
 
@@ -254,12 +371,16 @@ def collect_shapes(con) -> dict[str, dict]:
 
     if not r._exists(con, SHAPES):
         return {}
-    rows = r._select(con, SHAPES, "select district_code, geometry_geojson from {t} order by district_code")
+    rows = r._select(
+        con, SHAPES, "select district_code, geometry_geojson from {t} order by district_code"
+    )
     return {row["district_code"]: json.loads(row["geometry_geojson"]) for row in rows}
 
 
 def _polygons(geometry: dict) -> list[list[list[list[float]]]]:
-    return geometry["coordinates"] if geometry["type"] == "MultiPolygon" else [geometry["coordinates"]]
+    return (
+        geometry["coordinates"] if geometry["type"] == "MultiPolygon" else [geometry["coordinates"]]
+    )
 
 
 def _map_values(data: Any) -> list[tuple[str, str, str, dict[str, tuple[float | None, str]]]]:
@@ -290,15 +411,26 @@ def _map_values(data: Any) -> list[tuple[str, str, str, dict[str, tuple[float | 
             und[row["district_code"]] = (None, "suppressed")
             continue
         v, n = row.get("expected_a2_a3_without_acr"), row.get("persons_with_diabetes")
-        und[row["district_code"]] = ((None, "no data") if v is None or not n or math.isnan(float(v))
-                                     else (100 * float(v) / float(n), ""))
-    return [("map-ckd-standardised", "Confirmed CKD per 1,000, age-standardised", "per 1,000", std),
-            ("map-coverage", "Diabetes: tested for eGFR and ACR", "%", cov),
-            ("map-undetected", "Expected cases not yet found per 100 with diabetes", "per 100", und)]
+        und[row["district_code"]] = (
+            (None, "no data")
+            if v is None or not n or math.isnan(float(v))
+            else (100 * float(v) / float(n), "")
+        )
+    return [
+        ("map-ckd-standardised", "Confirmed CKD per 1,000, age-standardised", "per 1,000", std),
+        ("map-coverage", "Diabetes: tested for eGFR and ACR", "%", cov),
+        ("map-undetected", "Expected cases not yet found per 100 with diabetes", "per 100", und),
+    ]
 
 
-def _district_map(map_id: str, title: str, unit: str, values: dict[str, tuple[float | None, str]],
-                  shapes: dict[str, dict], data: Any) -> str:
+def _district_map(
+    map_id: str,
+    title: str,
+    unit: str,
+    values: dict[str, tuple[float | None, str]],
+    shapes: dict[str, dict],
+    data: Any,
+) -> str:
     import math
 
     points = [p for g in shapes.values() for poly in _polygons(g) for ring in poly for p in ring]
@@ -321,44 +453,71 @@ def _district_map(map_id: str, title: str, unit: str, values: dict[str, tuple[fl
     legend_h = 16 * (len(MAP_COLOURS) + 2) + 8
     height = top + plot_h + 12 + legend_h
     words = []
-    parts = [(f'<svg class="map" id="{map_id}" viewBox="0 0 {width} {height}" width="{width}" '
-              f'height="{height}" role="img" aria-labelledby="{map_id}-title {map_id}-desc">'),
-             f'<title id="{map_id}-title">{r._e(title)}</title>', "{desc}",
-             (f'<defs><pattern id="{map_id}-hatch" patternUnits="userSpaceOnUse" width="6" height="6" '
-              'patternTransform="rotate(45)"><rect width="6" height="6" fill="#ffffff"/>'
-              f'<line x1="0" y1="0" x2="0" y2="6" stroke="{r.MUTED}" stroke-width="2"/></pattern></defs>'),
-             f'<text class="chart-title" x="0" y="16">{r._e(title)}</text>']
+    parts = [
+        (
+            f'<svg class="map" id="{map_id}" viewBox="0 0 {width} {height}" width="{width}" '
+            f'height="{height}" role="img" aria-labelledby="{map_id}-title {map_id}-desc">'
+        ),
+        f'<title id="{map_id}-title">{r._e(title)}</title>',
+        "{desc}",
+        (
+            f'<defs><pattern id="{map_id}-hatch" patternUnits="userSpaceOnUse" width="6" height="6" '
+            'patternTransform="rotate(45)"><rect width="6" height="6" fill="#ffffff"/>'
+            f'<line x1="0" y1="0" x2="0" y2="6" stroke="{r.MUTED}" stroke-width="2"/></pattern></defs>'
+        ),
+        f'<text class="chart-title" x="0" y="16">{r._e(title)}</text>',
+    ]
     labels = []
     for code in sorted(shapes):
         value, why = values.get(code, (None, "no data"))
         name = data.district_name(code)
-        fill = colour(value) if value is not None else (f"url(#{map_id}-hatch)" if why != "no data" else NO_DATA)
-        d = " ".join("M " + " L ".join(f"{x:.1f} {y:.1f}" for x, y in map(xy, ring)) + " Z"
-                     for poly in _polygons(shapes[code]) for ring in poly)
+        fill = (
+            colour(value)
+            if value is not None
+            else (f"url(#{map_id}-hatch)" if why != "no data" else NO_DATA)
+        )
+        d = " ".join(
+            "M " + " L ".join(f"{x:.1f} {y:.1f}" for x, y in map(xy, ring)) + " Z"
+            for poly in _polygons(shapes[code])
+            for ring in poly
+        )
         text = f"{r._dec(value, 1)} {unit}" if value is not None else why
         words.append(f"{name} {text}")
         klass = "district blanked" if value is None else "district"
-        parts.append(f'<path class="{klass}" data-district="{r._e(code)}" d="{d}" fill="{fill}" stroke="#ffffff" '
-                     f'stroke-width="1.2"><title>{r._e(name)}: {r._e(text)}</title></path>')
+        parts.append(
+            f'<path class="{klass}" data-district="{r._e(code)}" d="{d}" fill="{fill}" stroke="#ffffff" '
+            f'stroke-width="1.2"><title>{r._e(name)}: {r._e(text)}</title></path>'
+        )
         ring = _polygons(shapes[code])[0][0][:-1]
         cx = sum(xy(p)[0] for p in ring) / len(ring)
         cy = sum(xy(p)[1] for p in ring) / len(ring)
         mark = {"suppressed": "s", "too few cases": "r"}.get(why, "–")
         label = code if value is not None else f"{code} {mark}"
-        labels.append(f'<text class="map-label" x="{cx:.1f}" y="{cy + 4:.1f}" text-anchor="middle">{r._e(label)}</text>')
+        labels.append(
+            f'<text class="map-label" x="{cx:.1f}" y="{cy + 4:.1f}" text-anchor="middle">{r._e(label)}</text>'
+        )
     parts += labels
     y = top + plot_h + 20
-    bins = [(low + i * step, low + (i + 1) * step) for i in range(len(MAP_COLOURS))] if shown else []
-    for (a, b), c in zip(bins, MAP_COLOURS):
-        parts.append(f'<rect x="10" y="{y - 10}" width="14" height="11" fill="{c}"/>'
-                     f'<text class="legend" x="30" y="{y}">{r._dec(a, 1)} to {r._dec(b, 1)} {r._e(unit)}</text>')
+    bins = (
+        [(low + i * step, low + (i + 1) * step) for i in range(len(MAP_COLOURS))] if shown else []
+    )
+    for (a, b), c in zip(bins, MAP_COLOURS, strict=False):
+        parts.append(
+            f'<rect x="10" y="{y - 10}" width="14" height="11" fill="{c}"/>'
+            f'<text class="legend" x="30" y="{y}">{r._dec(a, 1)} to {r._dec(b, 1)} {r._e(unit)}</text>'
+        )
         y += 16
-    parts.append(f'<rect x="10" y="{y - 10}" width="14" height="11" fill="url(#{map_id}-hatch)" stroke="{r.MUTED}" '
-                 'stroke-width="0.5"/><text class="legend" x="30" y="' + f'{y}">blanked: s suppressed, r too few '
-                 "cases</text>")
+    parts.append(
+        f'<rect x="10" y="{y - 10}" width="14" height="11" fill="url(#{map_id}-hatch)" stroke="{r.MUTED}" '
+        'stroke-width="0.5"/><text class="legend" x="30" y="'
+        + f'{y}">blanked: s suppressed, r too few '
+        "cases</text>"
+    )
     y += 16
-    parts.append(f'<rect x="10" y="{y - 10}" width="14" height="11" fill="{NO_DATA}"/>'
-                 f'<text class="legend" x="30" y="{y}">no data</text>')
+    parts.append(
+        f'<rect x="10" y="{y - 10}" width="14" height="11" fill="{NO_DATA}"/>'
+        f'<text class="legend" x="30" y="{y}">no data</text>'
+    )
     desc = f'<desc id="{map_id}-desc">Map of the districts: {r._e(title)}. {r._e("; ".join(words))}.</desc>'
     parts[2] = desc
     parts.append("</svg>")
@@ -367,10 +526,14 @@ def _district_map(map_id: str, title: str, unit: str, values: dict[str, tuple[fl
 
 def maps_section(shapes: dict[str, dict], data: Any) -> str:
     if not shapes:
-        return ('<p class="notice">No district boundaries are configured (config/regions/districts.geojson): '
-                "no maps.</p>")
+        return (
+            '<p class="notice">No district boundaries are configured (config/regions/districts.geojson): '
+            "no maps.</p>"
+        )
     maps = [_district_map(i, t, u, v, shapes, data) for i, t, u, v in _map_values(data)]
-    return ('<div class="maps">' + "".join(f"<figure>{m}</figure>" for m in maps) + "</div>"
-            '<p class="table-notes">Equal steps between the lowest and highest value shown on each map. Hatched: '
-            "blanked by disclosure control (s) or, for the standardised rate, too few persons with confirmed CKD "
-            "for a reliable rate (r). Boundaries: config/regions/districts.geojson.</p>")
+    return (
+        '<div class="maps">' + "".join(f"<figure>{m}</figure>" for m in maps) + "</div>"
+        '<p class="table-notes">Equal steps between the lowest and highest value shown on each map. Hatched: '
+        "blanked by disclosure control (s) or, for the standardised rate, too few persons with confirmed CKD "
+        "for a reliable rate (r). Boundaries: config/regions/districts.geojson.</p>"
+    )

@@ -79,7 +79,8 @@ class Drift:
 
 def config_drift(con: duckdb.DuckDBPyConnection, settings: Settings) -> dict[str, Drift]:
     """Sources whose ingested files were made under another config than the current one (files
-    recorded before the hash was kept, with none, are not counted)."""
+    recorded before the hash was kept, with none, are not counted).
+    """
     out: dict[str, Drift] = {}
     for source in settings.sources:
         current = source_config_sha256(settings, source.id)
@@ -99,7 +100,10 @@ def hold_back_drifted(items: list[InboxFile], drift: dict[str, Drift]) -> None:
     """Mark the new files of drifted sources held back (the ingest stage records them so)."""
     for item in items:
         if item.source_id in drift and item.status == "new":
-            item.status, item.fault = "held_back", f"{item.rel_path}: " + drift[item.source_id].message()
+            item.status, item.fault = (
+                "held_back",
+                f"{item.rel_path}: " + drift[item.source_id].message(),
+            )
 
 
 @dataclass
@@ -110,7 +114,9 @@ class ReprocessResult:
     applied: bool
     config_after: str
     outcomes: dict[str, tuple[int, int]] = field(default_factory=dict)  # outcome -> (before, after)
-    reasons: dict[str, tuple[int, int]] = field(default_factory=dict)  # reason code -> (before, after)
+    reasons: dict[str, tuple[int, int]] = field(
+        default_factory=dict
+    )  # reason code -> (before, after)
     other_sources: dict[str, dict[str, tuple[int, int]]] = field(default_factory=dict)
     periods: list[str] = field(default_factory=list)  # published periods the change reaches
     reprocess_id: str = ""
@@ -118,8 +124,10 @@ class ReprocessResult:
 
 def _select_files(con: duckdb.DuckDBPyConnection, source_id: str, from_month: str | None,
                   file: str | None) -> list[tuple]:  # fmt: skip
-    query = ("select file_id, file_path, sha256, size_bytes, ingested_at, config_sha256, run_period from ingest_files "
-             "where source_id = $s and status = 'ingested'")
+    query = (
+        "select file_id, file_path, sha256, size_bytes, ingested_at, config_sha256, run_period from ingest_files "
+        "where source_id = $s and status = 'ingested'"
+    )
     params: dict[str, Any] = {"s": source_id}
     if from_month:
         query += " and extract_month >= $m"
@@ -132,18 +140,20 @@ def _select_files(con: duckdb.DuckDBPyConnection, source_id: str, from_month: st
 
 def _outcomes(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
     row = con.execute(
-        "select " + ", ".join(f"coalesce(sum(rows_{o}), 0)" for o in ALL_OUTCOMES)
+        "select "
+        + ", ".join(f"coalesce(sum(rows_{o}), 0)" for o in ALL_OUTCOMES)
         + " from ingest_files where file_id in (select file_id from reprocess_files)"
     ).fetchall()[0]
-    return dict(zip(ALL_OUTCOMES, (int(v) for v in row)))
+    return dict(zip(ALL_OUTCOMES, (int(v) for v in row), strict=False))
 
 
 def _per_file(con: duckdb.DuckDBPyConnection) -> dict[int, dict[str, int]]:
     rows = con.execute(
-        "select file_id, " + ", ".join(f"rows_{o}" for o in ALL_OUTCOMES)
+        "select file_id, "
+        + ", ".join(f"rows_{o}" for o in ALL_OUTCOMES)
         + " from ingest_files where file_id in (select file_id from reprocess_files)"
     ).fetchall()
-    return {r[0]: dict(zip(ALL_OUTCOMES, r[1:])) for r in rows}
+    return {r[0]: dict(zip(ALL_OUTCOMES, r[1:], strict=False)) for r in rows}
 
 
 def _reasons(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
@@ -154,10 +164,11 @@ def _reasons(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
 
 def _by_source(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, int]]:
     rows = con.execute(
-        "select source_id, " + ", ".join(f"sum(rows_{o})" for o in ALL_OUTCOMES)
+        "select source_id, "
+        + ", ".join(f"sum(rows_{o})" for o in ALL_OUTCOMES)
         + " from ingest_files where status in ('ingested', 'duplicate_file') group by 1 order by 1"
     ).fetchall()
-    return {r[0]: dict(zip(ALL_OUTCOMES, (int(v or 0) for v in r[1:]))) for r in rows}
+    return {r[0]: dict(zip(ALL_OUTCOMES, (int(v or 0) for v in r[1:]), strict=False)) for r in rows}
 
 
 def _pairs(before: dict[str, int], after: dict[str, int]) -> dict[str, tuple[int, int]]:
@@ -178,7 +189,8 @@ def reprocess_source(config_dir: str | Path, inbox: str | Path, out: str | Path,
                      from_month: str | None = None, file: str | None = None, apply: bool = False,
                      demo: bool = False) -> ReprocessResult:  # fmt: skip
     """Read the stored files of ``source_id`` again under the current config (see the module
-    docstring); a dry run unless ``apply``. Raises :class:`ReprocessRefused` (nothing changed)."""
+    docstring); a dry run unless ``apply``. Raises :class:`ReprocessRefused` (nothing changed).
+    """
     settings = load_settings(config_dir)
     source = settings.source(source_id)
     key = resolve_key(demo=demo)
@@ -189,11 +201,21 @@ def reprocess_source(config_dir: str | Path, inbox: str | Path, out: str | Path,
         con = open_warehouse(out, settings.pipeline.execution.memory_limit)
         try:
             recover_interrupted_run(out, con)
-            verify_warehouse_key(con, key)  # another key would split every person from their history
+            verify_warehouse_key(
+                con, key
+            )  # another key would split every person from their history
             chosen = _select_files(con, source_id, from_month, rel_file)
             if not chosen:
-                what = f"file {rel_file}" if rel_file else f"files from {from_month}" if from_month else "files"
-                raise ReprocessRefused(f"source {source_id}: no ingested {what} in the warehouse {out}; nothing to reprocess")
+                what = (
+                    f"file {rel_file}"
+                    if rel_file
+                    else f"files from {from_month}"
+                    if from_month
+                    else "files"
+                )
+                raise ReprocessRefused(
+                    f"source {source_id}: no ingested {what} in the warehouse {out}; nothing to reprocess"
+                )
             todo = [f for f in chosen if f[5] != current]
             result = ReprocessResult(source_id, [f[1] for f in todo], [f[1] for f in chosen if f[5] == current],
                                      applied=False, config_after=current)  # fmt: skip
@@ -204,13 +226,15 @@ def reprocess_source(config_dir: str | Path, inbox: str | Path, out: str | Path,
                 if not path.is_file():
                     raise ReprocessRefused(
                         f"{path}: ingested earlier but no longer in the inbox; nothing was reprocessed. Put the "
-                        "file back as it was received, or leave it out with --from-month or --file")
+                        "file back as it was received, or leave it out with --from-month or --file"
+                    )
                 now = sha256_of(path)
                 if now != sha:
                     raise ReprocessRefused(
                         f"{path}: its content differs from what was ingested (SHA-256 now {now[:12]}, "
                         f"ingested {sha[:12]}); nothing was reprocessed. A changed file is a new version: "
-                        "the monthly run ingests it; reprocess the unchanged files with --file or --from-month")
+                        "the monthly run ingests it; reprocess the unchanged files with --file or --from-month"
+                    )
             _replace(con, settings, source, key, inbox, todo, result, current)
             if apply:
                 maybe_fail("reprocess:before_commit")
@@ -237,18 +261,27 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
     reprocess_id = uuid.uuid4().hex
     result.reprocess_id = reprocess_id
     # the old rows are kept as superseded versions; the new ones take their (file_id, line_no)
-    add_missing_columns(con, "main", "result_versions_replaced", fetch_frame(con, "select * from result_versions limit 0"))
+    add_missing_columns(
+        con,
+        "main",
+        "result_versions_replaced",
+        fetch_frame(con, "select * from result_versions limit 0"),
+    )
     con.execute(
         "insert into result_versions_replaced by name select $id as reprocess_id, outcome as outcome_before, "
         "* replace ('superseded' as outcome) from result_versions where file_id in (select file_id from reprocess_files)",
         {"id": reprocess_id},
     )
-    con.execute("create or replace temp table reprocess_old_persons as select distinct person_key "
-                "from result_versions where file_id in (select file_id from reprocess_files)")
+    con.execute(
+        "create or replace temp table reprocess_old_persons as select distinct person_key "
+        "from result_versions where file_id in (select file_id from reprocess_files)"
+    )
     con.execute(
         "insert into rejected_rows_replaced by name select $id as reprocess_id, * from rejected_rows "
         "where file_id in (select file_id from reprocess_files)", {"id": reprocess_id})  # fmt: skip
-    con.execute("delete from result_versions where file_id in (select file_id from reprocess_files)")
+    con.execute(
+        "delete from result_versions where file_id in (select file_id from reprocess_files)"
+    )
     con.execute("delete from rejected_rows where file_id in (select file_id from reprocess_files)")
     maybe_fail("reprocess:replaced")
     # the same path as a monthly run: reference tables, row rules file by file, gate, versions
@@ -259,7 +292,9 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
     for file_id, rel, sha, size, ingested_at, _, run_period in todo:
         item = InboxFile(source.id, inbox / rel, rel, sha, size, file_id=file_id)
         # rows without a report date get the one they got when first ingested
-        undated_on = undated_report_date(run_period, ingested_at.date() if ingested_at else dt.date.today())
+        undated_on = undated_report_date(
+            run_period, ingested_at.date() if ingested_at else dt.date.today()
+        )
         try:
             frame = read_inbox_file(source, item, settings, undated_on)
         except FileFault as fault:
@@ -273,8 +308,14 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
     default = settings.pipeline.quality_gate.max_rejection_rate
     limit = source.max_rejection_rate if source.max_rejection_rate is not None else default
     gate = settings.pipeline.quality_gate
-    unmapped = source.max_unmapped_share if source.max_unmapped_share is not None else gate.max_unmapped_share
-    _, _, held = validate_landed(con, {source.id: limit}, _batch_gate(settings), {source.id: unmapped})
+    unmapped = (
+        source.max_unmapped_share
+        if source.max_unmapped_share is not None
+        else gate.max_unmapped_share
+    )
+    _, _, held = validate_landed(
+        con, {source.id: limit}, _batch_gate(settings), {source.id: unmapped}
+    )
     if held:
         raise ReprocessRefused(f"source {source.id}: under the current config the quality gate would hold it "
                                f"back ({held.get(source.id, '')}); nothing was reprocessed")  # fmt: skip
@@ -292,7 +333,8 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
     if old_persons >= 5 and shared == 0:
         raise ReprocessRefused(
             f"source {source.id}: none of the {old_persons} persons of the stored rows has the same person key "
-            "now: the pseudonymisation key is not the one the warehouse was built with; nothing was reprocessed")
+            "now: the pseudonymisation key is not the one the warehouse was built with; nothing was reprocessed"
+        )
     outcomes_after = _outcomes(con)
     result.outcomes = {k: (outcomes_before[k], outcomes_after[k]) for k in ALL_OUTCOMES}
     result.reasons = _pairs(reasons_before, _reasons(con))
@@ -326,4 +368,3 @@ def _batch_gate(settings: Settings) -> Any:
         return {s: "; ".join(c.failed[:3]) for s, c in checks.items() if not c.success}
 
     return check
-

@@ -52,19 +52,25 @@ class Release:
 
 
 def _published(con: duckdb.DuckDBPyConnection, schema: str, name: str) -> bool:
-    return con.execute(
-        "select count(*) from duckdb_tables() where schema_name = ? and table_name = ? "
-        "and database_name = current_database()",
-        [schema, name],
-    ).fetchall()[0][0] > 0
+    return (
+        con.execute(
+            "select count(*) from duckdb_tables() where schema_name = ? and table_name = ? "
+            "and database_name = current_database()",
+            [schema, name],
+        ).fetchall()[0][0]
+        > 0
+    )
 
 
 def _has_column(con: duckdb.DuckDBPyConnection, table: str, column: str) -> bool:
-    return con.execute(
-        "select count(*) from duckdb_columns() where schema_name = 'main' and table_name = ? "
-        "and column_name = ? and database_name = current_database()",
-        [table, column],
-    ).fetchall()[0][0] > 0
+    return (
+        con.execute(
+            "select count(*) from duckdb_columns() where schema_name = 'main' and table_name = ? "
+            "and column_name = ? and database_name = current_database()",
+            [table, column],
+        ).fetchall()[0][0]
+        > 0
+    )
 
 
 def current_release(con: duckdb.DuckDBPyConnection, period: str) -> tuple[int, dict[str, Any]]:
@@ -79,12 +85,17 @@ def current_release(con: duckdb.DuckDBPyConnection, period: str) -> tuple[int, d
         return 0, {}
     number, run_id, started_at, manifest = rows[0]
     data = json.loads(manifest) if isinstance(manifest, str) else dict(manifest or {})
-    return int(number), {"run_id": run_id, "started_at": str(started_at), "headline": data.get("headline", {})}
+    return int(number), {
+        "run_id": run_id,
+        "started_at": str(started_at),
+        "headline": data.get("headline", {}),
+    }
 
 
 def stash_release(con: duckdb.DuckDBPyConnection, period: str) -> None:
     """Keep this period's current published rows aside (temporary tables of the run) before the
-    summarise stage replaces them."""
+    summarise stage replaces them.
+    """
     for table in PUBLISHED_TABLES:
         if _published(con, "published", table.name):
             con.execute(
@@ -96,23 +107,30 @@ def stash_release(con: duckdb.DuckDBPyConnection, period: str) -> None:
             con.execute(f"drop table if exists stash_{table.name}")
 
 
-def settle_release(con: duckdb.DuckDBPyConnection, period: str, reason: str | None,
-                   headline_after: dict[str, Any]) -> Release:
+def settle_release(
+    con: duckdb.DuckDBPyConnection, period: str, reason: str | None, headline_after: dict[str, Any]
+) -> Release:
     """After the summarise stage: decide whether this run is a first release, the same release
     again, or a revision, and number the rows of ``published.*`` accordingly.
 
     Raises :class:`RevisionNeeded` when the period was published, its tables would change and no
-    ``reason`` was given."""
+    ``reason`` was given.
+    """
     previous, previous_run = current_release(con, period)
     con.execute(f"create schema if not exists {HISTORY_SCHEMA}")
     for table in PUBLISHED_TABLES:
         if _published(con, "published", table.name):
-            con.execute(f"alter table published.{table.name} add column if not exists revision integer")
+            con.execute(
+                f"alter table published.{table.name} add column if not exists revision integer"
+            )
             # present (empty) from the first release on, so readers can always query it
-            con.execute(f"create table if not exists {HISTORY_SCHEMA}.{table.name} as "
-                        f"select * from published.{table.name} limit 0")
+            con.execute(
+                f"create table if not exists {HISTORY_SCHEMA}.{table.name} as "
+                f"select * from published.{table.name} limit 0"
+            )
         stash = con.execute(
-            "select count(*) from duckdb_tables() where temporary and table_name = ?", [f"stash_{table.name}"]
+            "select count(*) from duckdb_tables() where temporary and table_name = ?",
+            [f"stash_{table.name}"],
         ).fetchall()[0][0]
         if stash:
             con.execute(f"alter table stash_{table.name} add column if not exists revision integer")
@@ -132,31 +150,62 @@ def settle_release(con: duckdb.DuckDBPyConnection, period: str, reason: str | No
         for table in PUBLISHED_TABLES:
             if not _stash_exists(con, table.name):
                 continue
-            con.execute(f"update stash_{table.name} set revision = coalesce(revision, ?)", [previous])
+            con.execute(
+                f"update stash_{table.name} set revision = coalesce(revision, ?)", [previous]
+            )
             if not _published(con, HISTORY_SCHEMA, table.name):
-                con.execute(f"create table {HISTORY_SCHEMA}.{table.name} as select * from stash_{table.name}")
+                con.execute(
+                    f"create table {HISTORY_SCHEMA}.{table.name} as select * from stash_{table.name}"
+                )
             else:
-                add_missing_columns(con, HISTORY_SCHEMA, table.name, fetch_frame(con, f"select * from stash_{table.name} limit 0"))
-                con.execute(f"insert into {HISTORY_SCHEMA}.{table.name} by name select * from stash_{table.name}")
+                add_missing_columns(
+                    con,
+                    HISTORY_SCHEMA,
+                    table.name,
+                    fetch_frame(con, f"select * from stash_{table.name} limit 0"),
+                )
+                con.execute(
+                    f"insert into {HISTORY_SCHEMA}.{table.name} by name select * from stash_{table.name}"
+                )
     else:
         revision = max(previous, 1)
     for table in PUBLISHED_TABLES:
         if _published(con, "published", table.name):
-            con.execute(f"update published.{table.name} set revision = ? where period = ?", [revision, period])
-    return Release(revision, previous, revised=changed, reason=reason.strip() if changed and reason else None,
-                   previous_run=previous_run if changed else {})
+            con.execute(
+                f"update published.{table.name} set revision = ? where period = ?",
+                [revision, period],
+            )
+    return Release(
+        revision,
+        previous,
+        revised=changed,
+        reason=reason.strip() if changed and reason else None,
+        previous_run=previous_run if changed else {},
+    )
 
 
 def _stash_exists(con: duckdb.DuckDBPyConnection, name: str) -> bool:
-    return con.execute(
-        "select count(*) from duckdb_tables() where temporary and table_name = ?", [f"stash_{name}"]
-    ).fetchall()[0][0] > 0
+    return (
+        con.execute(
+            "select count(*) from duckdb_tables() where temporary and table_name = ?",
+            [f"stash_{name}"],
+        ).fetchall()[0][0]
+        > 0
+    )
 
 
 def _differs_for(con: duckdb.DuckDBPyConnection, name: str, period: str) -> bool:
-    new_rows = _published(con, "published", name) and con.execute(
-        f"select count(*) from published.{name} where period = ?", [period]).fetchall()[0][0] > 0
-    old_rows = _stash_exists(con, name) and con.execute(f"select count(*) from stash_{name}").fetchall()[0][0] > 0
+    new_rows = (
+        _published(con, "published", name)
+        and con.execute(
+            f"select count(*) from published.{name} where period = ?", [period]
+        ).fetchall()[0][0]
+        > 0
+    )
+    old_rows = (
+        _stash_exists(con, name)
+        and con.execute(f"select count(*) from stash_{name}").fetchall()[0][0] > 0
+    )
     if not new_rows or not old_rows:
         return bool(new_rows) != bool(old_rows)
     # by column name: a table an upgrade gave a new column has changed (and cannot be compared
@@ -178,7 +227,9 @@ def _differs_for(con: duckdb.DuckDBPyConnection, name: str, period: str) -> bool
     return n > 0
 
 
-def describe(release: Release, period: str, revised_on: str, headline_after: dict[str, Any]) -> dict[str, Any]:
+def describe(
+    release: Release, period: str, revised_on: str, headline_after: dict[str, Any]
+) -> dict[str, Any]:
     """The manifest's ``revision`` block (read by the report's banner)."""
     out: dict[str, Any] = {"number": release.revision, "period": period}
     if release.revised:
@@ -196,7 +247,8 @@ def describe(release: Release, period: str, revised_on: str, headline_after: dic
 
 def carry_releases(out_dir: Path, period: str, staged: Path, release: Release) -> None:
     """Into the staged exports: the earlier releases' folders, and for a revision the exports now
-    in ``<out>/<period>/`` as ``revisions/<previous>/``."""
+    in ``<out>/<period>/`` as ``revisions/<previous>/``.
+    """
     final = out_dir / period
     kept = final / REVISIONS_FOLDER
     target = staged / REVISIONS_FOLDER
@@ -205,15 +257,19 @@ def carry_releases(out_dir: Path, period: str, staged: Path, release: Release) -
     if release.revised and final.is_dir():
         earlier = target / str(release.previous)
         shutil.rmtree(earlier, ignore_errors=True)
-        shutil.copytree(final, earlier, ignore=lambda d, names: [REVISIONS_FOLDER] if Path(d) == final else [])
+        shutil.copytree(
+            final, earlier, ignore=lambda d, names: [REVISIONS_FOLDER] if Path(d) == final else []
+        )
 
 
 def late_results(con: duckdb.DuckDBPyConnection, period: str) -> dict[str, int]:
-    """Per other published period (earlier ones, and later ones when an earlier period is
-    revised), the results this run received that would change it if it
-    were revised: versions stored by this run (not duplicates, not preliminary) collected and
+    """Count, per other published period, the results this run received that would change it.
+
+    Other periods are the earlier ones, and later ones when an earlier period is revised; a
+    result counts when a revision would take it: versions stored by this run (not duplicates, not preliminary) collected and
     reported by that period's end. (A period is rebuilt as known at its end, so a result reported
-    later can never change it; those are not counted.)"""
+    later can never change it; those are not counted.)
+    """
     exists = con.execute(
         "select count(*) from duckdb_tables() where temporary and table_name = 'landed_files'"
     ).fetchall()[0][0]

@@ -95,7 +95,7 @@ def run_lock(out_dir: Path | str, period: str | None = None) -> Iterator[Path]:
         os.close(fd)
         raise
     info = {"pid": os.getpid(), "host": socket.gethostname(), "period": period,
-            "started_at": dt.datetime.now(dt.timezone.utc).isoformat(timespec="seconds")}  # fmt: skip
+            "started_at": dt.datetime.now(dt.UTC).isoformat(timespec="seconds")}  # fmt: skip
     try:  # who holds it, for the other run's message; best effort (the disk may be full)
         os.ftruncate(fd, 0)
         os.pwrite(fd, json.dumps(info).encode("utf-8"), 0)
@@ -170,7 +170,8 @@ def commit_and_install(out_dir: Path, label: str, run_id: str, commit: Callable[
 
 def install_exports(out_dir: Path, label: str) -> None:
     """Move the staged exports of a committed run into ``<out>/<label>``; safe to repeat after
-    a crash at any step (each step is one rename, and the state says which steps are done)."""
+    a crash at any step (each step is one rename, and the state says which steps are done).
+    """
     final, staged, old = out_dir / label, staged_exports(out_dir, label), out_dir / f".{label}.old"
     if staged.is_dir():
         if final.exists():
@@ -194,10 +195,13 @@ def _committed(con: duckdb.DuckDBPyConnection, run_id: str) -> bool:
 
 def recover_interrupted_run(out_dir: Path, con: duckdb.DuckDBPyConnection) -> list[str]:
     """Finish or undo what a crashed run left in ``out_dir``; call it with the lock held and the
-    warehouse open, before the run writes anything. Returns one line per thing done."""
+    warehouse open, before the run writes anything. Returns one line per thing done.
+    """
     out_dir = Path(out_dir)
     done: list[str] = []
-    entries = sorted(p for p in out_dir.iterdir() if _HIDDEN.match(p.name)) if out_dir.is_dir() else []
+    entries = (
+        sorted(p for p in out_dir.iterdir() if _HIDDEN.match(p.name)) if out_dir.is_dir() else []
+    )
     for journal in (p for p in entries if p.name.endswith(".publishing.json")):
         label = _HIDDEN.match(journal.name).group(1)  # type: ignore[union-attr]
         try:
@@ -206,7 +210,9 @@ def recover_interrupted_run(out_dir: Path, con: duckdb.DuckDBPyConnection) -> li
             run_id = ""
         if run_id and _committed(con, run_id):
             install_exports(out_dir, label)
-            done.append(f"{label}: run {run_id[:8]} stopped after its commit; its exports were put in place")
+            done.append(
+                f"{label}: run {run_id[:8]} stopped after its commit; its exports were put in place"
+            )
         else:
             shutil.rmtree(staged_exports(out_dir, label), ignore_errors=True)
             journal.unlink(missing_ok=True)

@@ -1,6 +1,7 @@
 """The scheduled monthly run: a Prefect deployment of ``monthly_surveillance`` with a cron
 schedule from config/pipeline.yaml (default: the 3rd of each month at 06:00, for the previous
-month), served by ``kidneysurv schedule`` against a running Prefect server."""
+month), served by ``kidneysurv schedule`` against a running Prefect server.
+"""
 
 from __future__ import annotations
 
@@ -23,8 +24,13 @@ def build_deployment(settings: Settings, config_dir: Path, inbox: Path, out: Pat
     return monthly_surveillance.to_deployment(
         name=DEPLOYMENT_NAME,
         schedules=[Cron(s.cron, timezone=s.timezone)],
-        parameters={"period": None, "config_dir": str(config_dir.resolve()),
-                    "inbox": str(inbox.resolve()), "out": str(out.resolve()), "demo": False},  # fmt: skip
+        parameters={
+            "period": None,
+            "config_dir": str(config_dir.resolve()),
+            "inbox": str(inbox.resolve()),
+            "out": str(out.resolve()),
+            "demo": False,
+        },  # fmt: skip
         description="kidneysurv: the previous month's surveillance run (period None = previous month).",
         tags=["kidneysurv"],
     )

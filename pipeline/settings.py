@@ -49,7 +49,8 @@ _DATE_DIRECTIVES = set("dmyYbBjHMSIpfzaAeT%")
 def check_date_format(value: str | None) -> str | None:
     """``value`` if it is a strftime format that reads a whole date (day, month and year), else
     a ValueError saying what is wrong: a typo such as ``%d/%m/%y%`` or ``dd/mm/yyyy`` would
-    otherwise turn every row into ``invalid_date``."""
+    otherwise turn every row into ``invalid_date``.
+    """
     if value is None:
         return value
     import datetime as dt
@@ -66,20 +67,26 @@ def check_date_format(value: str | None) -> str | None:
             i += 1
     unknown = sorted({d for d in directives if d not in _DATE_DIRECTIVES})
     if unknown:
-        raise ValueError(f"{value!r} uses unknown directive(s) {['%' + d for d in unknown]}; "
-                         "write e.g. '%d/%m/%Y' (strftime codes)")
+        raise ValueError(
+            f"{value!r} uses unknown directive(s) {['%' + d for d in unknown]}; "
+            "write e.g. '%d/%m/%Y' (strftime codes)"
+        )
     has_day = "d" in directives or "e" in directives or "j" in directives
     has_month = bool({"m", "b", "B"} & set(directives)) or "j" in directives
     has_year = bool({"Y", "y"} & set(directives))
     if not (has_day and has_month and has_year):
-        raise ValueError(f"{value!r} does not read a whole date (a day, a month and a year); "
-                         "write e.g. '%d/%m/%Y' or '%Y%m%d' (strftime codes)")
+        raise ValueError(
+            f"{value!r} does not read a whole date (a day, a month and a year); "
+            "write e.g. '%d/%m/%Y' or '%Y%m%d' (strftime codes)"
+        )
     try:
         sample = dt.date(2026, 3, 14).strftime(value)
         if dt.datetime.strptime(sample, value).date() != dt.date(2026, 3, 14):
             raise ValueError
     except ValueError:
-        raise ValueError(f"{value!r} does not read back the dates it writes; write e.g. '%d/%m/%Y'") from None
+        raise ValueError(
+            f"{value!r} does not read back the dates it writes; write e.g. '%d/%m/%Y'"
+        ) from None
     return value
 
 
@@ -140,7 +147,9 @@ class SourceConfig(_Strict):
     def _reasons_written(cls, value: dict[str, str]) -> dict[str, str]:
         short = sorted(c for c, why in value.items() if len(why.strip()) < 10)
         if short:
-            raise ValueError(f"each allowed column needs a written reason (10 characters or more): {short}")
+            raise ValueError(
+                f"each allowed column needs a written reason (10 characters or more): {short}"
+            )
         return value
 
     @field_validator("folder")
@@ -190,14 +199,18 @@ class SourceConfig(_Strict):
                     f"missing {missing}"
                 )
         elif self.columns:
-            raise ValueError(f"'columns' is only for layouts 'delimited' and 'parquet', not '{self.layout}'")
+            raise ValueError(
+                f"'columns' is only for layouts 'delimited' and 'parquet', not '{self.layout}'"
+            )
         return self
 
     @property
     def file_glob(self) -> str:
         if self.files:
             return self.files
-        return {"fhir_ndjson": "*/Observation.ndjson", "parquet": "*.parquet"}.get(self.layout, "*.csv")
+        return {"fhir_ndjson": "*/Observation.ndjson", "parquet": "*.parquet"}.get(
+            self.layout, "*.csv"
+        )
 
 
 # --------------------------------------------------------------------------- pipeline.yaml
@@ -256,8 +269,10 @@ class TrajectorySettings(_Strict):
     @classmethod
     def _kdigo_a2(cls, value: float) -> float:
         if value != 30:
-            raise ValueError("the CKD-by-albuminuria rule follows the KDIGO A2 category in the unit "
-                             "reported (30 mg/g, 3 mg/mmol, 30 mg/24 h); this must be 30")
+            raise ValueError(
+                "the CKD-by-albuminuria rule follows the KDIGO A2 category in the unit "
+                "reported (30 mg/g, 3 mg/mmol, 30 mg/24 h); this must be 30"
+            )
         return value
 
     @field_validator("decline_thresholds")
@@ -275,7 +290,9 @@ class SummarySettings(_Strict):
     drift_months: int = Field(default=6, ge=1, le=24)
     drift_threshold: float = Field(default=0.10, gt=0, lt=1)
     drift_min_results: int = Field(default=30, ge=1)
-    age_bands: list[int] = Field(default=[0, 5, 10, 15, 20, 25, 30, 35, 40, 45, 50, 55, 60, 65, 70, 75, 80, 85])
+    age_bands: list[int] = Field(
+        default=[0, 5, 10, 15, 20, 25, 30, 35, 40, 45, 50, 55, 60, 65, 70, 75, 80, 85]
+    )
     #: Broad age groups of the published age-standardised rate (lower bounds, last open), each a
     #: union of age_bands: the standard weights are summed within each group.
     standardisation_age_bands: list[int] = Field(default=[0, 65, 75])
@@ -291,22 +308,30 @@ class SummarySettings(_Strict):
     @classmethod
     def _adult_equation(cls, value: str) -> str:
         if value == "ckid_u25_creatinine":
-            raise ValueError("equation_comparison must be an adult creatinine equation (CKiD U25 needs a height)")
+            raise ValueError(
+                "equation_comparison must be an adult creatinine equation (CKiD U25 needs a height)"
+            )
         return value
 
     @field_validator("age_bands", "standardisation_age_bands", "albuminuria_age_bands")
     @classmethod
     def _increasing(cls, value: list[int]) -> list[int]:
-        if not value or value[0] != 0 or any(b <= a for a, b in zip(value, value[1:])):
+        if (
+            not value
+            or value[0] != 0
+            or any(b <= a for a, b in zip(value, value[1:], strict=False))
+        ):
             raise ValueError("lower bounds must start at 0 and increase, e.g. [0, 5, 10, ...]")
         return value
 
     @model_validator(mode="after")
-    def _broad_groups_are_unions_of_bands(self) -> "SummarySettings":
+    def _broad_groups_are_unions_of_bands(self) -> SummarySettings:
         stray = sorted(set(self.standardisation_age_bands) - set(self.age_bands))
         if stray:
-            raise ValueError(f"standardisation_age_bands {stray} are not lower bounds of age_bands "
-                             "(each broad group must be a union of age bands)")
+            raise ValueError(
+                f"standardisation_age_bands {stray} are not lower bounds of age_bands "
+                "(each broad group must be a union of age bands)"
+            )
         return self
 
 
@@ -361,7 +386,9 @@ class ScheduleSettings(_Strict):
     @classmethod
     def _five_fields(cls, value: str) -> str:
         if len(value.split()) != 5:
-            raise ValueError("a cron expression has 5 fields: minute hour day-of-month month day-of-week")
+            raise ValueError(
+                "a cron expression has 5 fields: minute hour day-of-month month day-of-week"
+            )
         return value
 
     @field_validator("timezone")
@@ -500,7 +527,9 @@ def _read_yaml(path: Path) -> Any:
     except yaml.YAMLError as exc:
         mark = getattr(exc, "problem_mark", None)
         where = f" line {mark.line + 1}" if mark else ""
-        raise ConfigError(f"{path}:{where} not valid YAML: {getattr(exc, 'problem', exc)}") from None
+        raise ConfigError(
+            f"{path}:{where} not valid YAML: {getattr(exc, 'problem', exc)}"
+        ) from None
     except UnicodeDecodeError as exc:
         raise ConfigError(f"{path}: not UTF-8 text ({exc.reason})") from None
 
@@ -519,7 +548,9 @@ def load_source(path: Path) -> SourceConfig:
     """Read and validate one source config file."""
     source = _parse(SourceConfig, path)
     if source.id != path.stem:
-        raise ConfigError(f"{path}: key 'id': is {source.id!r} but the file name says {path.stem!r}")
+        raise ConfigError(
+            f"{path}: key 'id': is {source.id!r} but the file name says {path.stem!r}"
+        )
     return source
 
 
@@ -537,7 +568,9 @@ def _read_region(config_dir: Path) -> tuple[dict[str, str], list[dict[str, Any]]
     for line, row in enumerate(rows, start=2):
         code = row["district_code"].strip()
         if not re.fullmatch(r"[A-Za-z0-9_-]{1,16}", code):
-            raise ConfigError(f"{districts_path}:{line}: district_code {code!r} is not a plain code")
+            raise ConfigError(
+                f"{districts_path}:{line}: district_code {code!r} is not a plain code"
+            )
         districts[code] = row["district_name"].strip()
     with population_path.open(encoding="utf-8", newline="") as fh:
         prow = list(csv.DictReader(fh))
@@ -581,7 +614,7 @@ def load_settings(config_dir: Path | str = "config") -> Settings:
         raise ConfigError(f"{config_dir / 'sources'}: no source configs (*.yaml) found")
     sources = [load_source(p) for p in source_paths]
     known_units = {u for a in analytes.analytes.values() for u in a.units}
-    for src, path in zip(sources, source_paths):
+    for src, path in zip(sources, source_paths, strict=False):
         bad = sorted(v for v in src.unit_aliases.values() if v not in known_units)
         if bad:
             raise ConfigError(

@@ -34,7 +34,8 @@ SHARD_OUTPUTS = ("measures_known", "daily_values_averaged", "kidney_events", "pe
 
 def shard_expression(shards: int) -> str:
     """SQL giving a person's shard: the person key is hex (HMAC-SHA256), so its first 8 hex
-    digits are uniformly spread."""
+    digits are uniformly spread.
+    """
     return f"(('0x' || substr(person_key, 1, 8))::ubigint % {int(shards)})"
 
 
@@ -43,7 +44,9 @@ def export_shard_inputs(con: duckdb.DuckDBPyConnection, work: Path, shards: int)
     shutil.rmtree(work, ignore_errors=True)
     (work / "reference").mkdir(parents=True)
     for table in REFERENCE_TABLES:
-        con.execute(f"copy reference.{table} to {_literal(work / 'reference' / (table + '.parquet'))} (format parquet)")
+        con.execute(
+            f"copy reference.{table} to {_literal(work / 'reference' / (table + '.parquet'))} (format parquet)"
+        )
     folders = []
     for shard in range(shards):
         folder = work / f"shard_{shard:03d}"
@@ -72,14 +75,18 @@ def run_shard(folder: str, config_dir: str, period_label: str) -> str:
         for schema in ("staging", "reference"):
             con.execute(f"create schema {schema}")
         for path in sorted((folder_path.parent / "reference").glob("*.parquet")):
-            con.execute(f"create table reference.{path.stem} as select * from read_parquet({_literal(path)})")
+            con.execute(
+                f"create table reference.{path.stem} as select * from read_parquet({_literal(path)})"
+            )
         con.execute(
             "create table results_known as select * from "
             f"read_parquet({_literal(folder_path / 'results_known.parquet')})"
         )
         build_person_tables(con, settings, period, sharded=True)
         for table in SHARD_OUTPUTS:
-            con.execute(f"copy (select * from {table}) to {_literal(folder_path / (table + '.out.parquet'))} (format parquet)")
+            con.execute(
+                f"copy (select * from {table}) to {_literal(folder_path / (table + '.out.parquet'))} (format parquet)"
+            )
     finally:
         con.close()
     return folder

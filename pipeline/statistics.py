@@ -123,7 +123,9 @@ def direct_standardised_rate(
         v = (a * a * d).sum(axis=-1)
         a_m = a.max(axis=-1)
         lower = np.where(y > 0, gamma.ppf(alpha / 2, y * y / v, scale=v / y), 0.0)
-        upper = gamma.ppf(1 - alpha / 2, (y + a_m) ** 2 / (v + a_m**2), scale=(v + a_m**2) / (y + a_m))
+        upper = gamma.ppf(
+            1 - alpha / 2, (y + a_m) ** 2 / (v + a_m**2), scale=(v + a_m**2) / (y + a_m)
+        )
     no_population = ~(n > 0).any(axis=-1)
     rate, low, high = (np.where(no_population, np.nan, x)[()] for x in (y, lower, upper))
     return rate, low, high
@@ -142,13 +144,22 @@ def collapse_weights(bands: Sequence[int], standard: dict[int, float] | None = N
     standard = dict(WHO_WORLD_STANDARD_2000_2025 if standard is None else standard)
     lows = sorted(standard)
     bands = list(bands)
-    if not bands or bands[0] != lows[0] or any(b <= a for a, b in zip(bands, bands[1:])):
+    if (
+        not bands
+        or bands[0] != lows[0]
+        or any(b <= a for a, b in zip(bands, bands[1:], strict=False))
+    ):
         raise ValueError(f"bands must start at {lows[0]} and increase: {bands}")
     unknown = sorted(set(bands) - set(lows))
     if unknown:
         raise ValueError(f"band bounds {unknown} split a standard age group (bounds {lows})")
     edges = [*bands, float("inf")]
-    out = np.array([sum(standard[g] for g in lows if lo <= g < hi) for lo, hi in zip(edges, edges[1:])])
+    out = np.array(
+        [
+            sum(standard[g] for g in lows if lo <= g < hi)
+            for lo, hi in zip(edges, edges[1:], strict=False)
+        ]
+    )
     return out / out.sum()
 
 
@@ -188,7 +199,9 @@ def standardise_frame(
     w = np.array([weights[s] for s in labels], dtype=float)
     stray = frame.filter(~pl.col(stratum).is_in(labels))
     if stray.height:
-        raise ValueError(f"strata without a standard weight: {sorted(set(stray[stratum].to_list()))}")
+        raise ValueError(
+            f"strata without a standard weight: {sorted(set(stray[stratum].to_list()))}"
+        )
     grid = (
         frame.group_by([*by, stratum])
         .agg(pl.col(events).sum().cast(pl.Float64), pl.col(population).sum().cast(pl.Float64))

@@ -65,61 +65,90 @@ def assign_share_strata(strata: pl.DataFrame, min_tested: int) -> pl.DataFrame:
 
     ``strata``: region-wide rows with ``with_acr_categorised`` (n) and ``with_acr_a2_a3`` (x).
     Returns the fine keys with ``share_stratum`` (a label such as ``65-74/F/G3a`` or
-    ``65-74/F/pooled``), ``share_tested`` (n of that stratum) and ``share_a2_a3`` (x of it)."""
-    fine = strata.group_by(STRATUM_KEYS).agg(pl.col("with_acr_categorised").sum().alias("n"),
-                                             pl.col("with_acr_a2_a3").sum().alias("x"))
+    ``65-74/F/pooled``), ``share_tested`` (n of that stratum) and ``share_a2_a3`` (x of it).
+    """
+    fine = strata.group_by(STRATUM_KEYS).agg(
+        pl.col("with_acr_categorised").sum().alias("n"), pl.col("with_acr_a2_a3").sum().alias("x")
+    )
     fine = fine.sort(STRATUM_KEYS)
     current = fine.with_columns(*(pl.col(k).alias(f"use_{k}") for k in STRATUM_KEYS))
     done = []
     for level in range(len(STRATUM_KEYS) + 1):
         use = [f"use_{k}" for k in STRATUM_KEYS]
-        sums = current.group_by(use).agg(pl.col("n").sum().alias("group_n"), pl.col("x").sum().alias("group_x"))
+        sums = current.group_by(use).agg(
+            pl.col("n").sum().alias("group_n"), pl.col("x").sum().alias("group_x")
+        )
         current = current.join(sums, on=use, how="left")
         last = level == len(STRATUM_KEYS)
         settled = current.filter((pl.col("group_n") >= min_tested) | pl.lit(last))
         done.append(settled)
-        current = current.filter(~((pl.col("group_n") >= min_tested) | pl.lit(last))).drop("group_n", "group_x")
+        current = current.filter(~((pl.col("group_n") >= min_tested) | pl.lit(last))).drop(
+            "group_n", "group_x"
+        )
         if not last:  # pool the next key, from the finest
             key = STRATUM_KEYS[len(STRATUM_KEYS) - 1 - level]
             current = current.with_columns(pl.lit(POOLED).alias(f"use_{key}"))
     out = pl.concat(done)
     return out.select(
         *STRATUM_KEYS,
-        pl.concat_str([pl.col(f"use_{k}") for k in STRATUM_KEYS], separator="/").alias("share_stratum"),
+        pl.concat_str([pl.col(f"use_{k}") for k in STRATUM_KEYS], separator="/").alias(
+            "share_stratum"
+        ),
         pl.col("group_n").alias("share_tested"),
         pl.col("group_x").alias("share_a2_a3"),
     ).sort(STRATUM_KEYS)
 
 
-def estimate_undetected(strata: pl.DataFrame, min_tested: int, confidence: float,
-                        period: str | None = None) -> pl.DataFrame:
+def estimate_undetected(
+    strata: pl.DataFrame, min_tested: int, confidence: float, period: str | None = None
+) -> pl.DataFrame:
     """Per district and 'ALL' (every district, 'unknown' too): the expected number of persons with
     A2 or A3 among the persons with diabetes without an ACR in the window, with its interval.
 
     ``strata``: one period's rows of ``diabetes_acr_strata`` with ``age_group`` labelled. With no
-    rows, the 'ALL' row of ``period`` alone, with zero counts (as district_screening_coverage has)."""
+    rows, the 'ALL' row of ``period`` alone, with zero counts (as district_screening_coverage has).
+    """
     if strata.height == 0 and period is not None:
-        empty = {"period": period, "district_code": "ALL", "age_group": "unknown", "sex": "U",
-                 "g_category": "unknown", "persons_with_diabetes": 0, "with_acr": 0,
-                 "with_acr_categorised": 0, "with_acr_a2_a3": 0}
+        empty = {
+            "period": period,
+            "district_code": "ALL",
+            "age_group": "unknown",
+            "sex": "U",
+            "g_category": "unknown",
+            "persons_with_diabetes": 0,
+            "with_acr": 0,
+            "with_acr_categorised": 0,
+            "with_acr_a2_a3": 0,
+        }
         strata = pl.DataFrame([empty], schema_overrides={k: pl.Int64 for k in list(empty)[5:]})
-        return estimate_undetected(strata, min_tested, confidence).filter(pl.col("district_code") == "ALL")
+        return estimate_undetected(strata, min_tested, confidence).filter(
+            pl.col("district_code") == "ALL"
+        )
     shares = assign_share_strata(strata, min_tested)
     z = float(norm.ppf(0.5 + confidence / 2))
     rows = strata.join(shares, on=list(STRATUM_KEYS), how="left").with_columns(
-        (pl.col("persons_with_diabetes") - pl.col("with_acr")).alias("untested"))
+        (pl.col("persons_with_diabetes") - pl.col("with_acr")).alias("untested")
+    )
     region = rows.with_columns(pl.lit("ALL").alias("district_code"))
     both = pl.concat([rows, region])
     per_stratum = both.group_by("period", "district_code", "share_stratum").agg(
-        pl.col("untested").sum(), pl.col("share_tested").first(), pl.col("share_a2_a3").first(),
-        pl.col("persons_with_diabetes").sum(), pl.col("with_acr").sum(), pl.col("with_acr_a2_a3").sum(),
-        pl.col("share_stratum").str.contains(POOLED, literal=True).first().alias("is_pooled"))
+        pl.col("untested").sum(),
+        pl.col("share_tested").first(),
+        pl.col("share_a2_a3").first(),
+        pl.col("persons_with_diabetes").sum(),
+        pl.col("with_acr").sum(),
+        pl.col("with_acr_a2_a3").sum(),
+        pl.col("share_stratum").str.contains(POOLED, literal=True).first().alias("is_pooled"),
+    )
     p = pl.col("share_a2_a3") / pl.col("share_tested")
     known = pl.col("share_tested") > 0
     per_stratum = per_stratum.with_columns(
         pl.when(known).then(pl.col("untested") * p).alias("expected"),
-        pl.when(known).then(pl.col("untested") ** 2 * p * (1 - p) / pl.col("share_tested")).alias("variance"),
-        (known | (pl.col("untested") == 0)).alias("estimable"))
+        pl.when(known)
+        .then(pl.col("untested") ** 2 * p * (1 - p) / pl.col("share_tested"))
+        .alias("variance"),
+        (known | (pl.col("untested") == 0)).alias("estimable"),
+    )
     out = per_stratum.group_by("period", "district_code").agg(
         pl.col("persons_with_diabetes").sum(),
         pl.col("with_acr").sum(),
@@ -135,17 +164,34 @@ def estimate_undetected(strata: pl.DataFrame, min_tested: int, confidence: float
     out = out.with_columns(
         (pl.col("with_acr_a2_a3") / pl.col("with_acr")).round(4).alias("share_a2_a3_of_tested"),
         estimate.then(pl.col("expected").round(1)).alias("expected_a2_a3_without_acr"),
-        estimate.then((pl.col("expected") - half).clip(lower_bound=0).round(1)).alias("expected_a2_a3_without_acr_low"),
-        estimate.then(pl.min_horizontal(pl.col("expected") + half, pl.col("persons_without_acr")).round(1))
-        .alias("expected_a2_a3_without_acr_high"),
+        estimate.then((pl.col("expected") - half).clip(lower_bound=0).round(1)).alias(
+            "expected_a2_a3_without_acr_low"
+        ),
+        estimate.then(
+            pl.min_horizontal(pl.col("expected") + half, pl.col("persons_without_acr")).round(1)
+        ).alias("expected_a2_a3_without_acr_high"),
         pl.when(pl.col("estimable") & (pl.col("persons_without_acr") > 0))
-        .then((pl.col("expected") / pl.col("persons_without_acr")).round(4)).alias("expected_share_without_acr"),
+        .then((pl.col("expected") / pl.col("persons_without_acr")).round(4))
+        .alias("expected_share_without_acr"),
     )
-    out = out.with_columns(pl.when(pl.col("with_acr") == 0).then(None).otherwise(pl.col("share_a2_a3_of_tested"))
-                           .alias("share_a2_a3_of_tested"))
+    out = out.with_columns(
+        pl.when(pl.col("with_acr") == 0)
+        .then(None)
+        .otherwise(pl.col("share_a2_a3_of_tested"))
+        .alias("share_a2_a3_of_tested")
+    )
     return out.select(
-        "period", "district_code", "persons_with_diabetes", "with_acr", "persons_without_acr", "with_acr_a2_a3",
-        "share_a2_a3_of_tested", "expected_a2_a3_without_acr", "expected_a2_a3_without_acr_low",
-        "expected_a2_a3_without_acr_high", "expected_share_without_acr", "without_acr_pooled_stratum",
+        "period",
+        "district_code",
+        "persons_with_diabetes",
+        "with_acr",
+        "persons_without_acr",
+        "with_acr_a2_a3",
+        "share_a2_a3_of_tested",
+        "expected_a2_a3_without_acr",
+        "expected_a2_a3_without_acr_low",
+        "expected_a2_a3_without_acr_high",
+        "expected_share_without_acr",
+        "without_acr_pooled_stratum",
         pl.lit(ASSUMPTION).alias("estimate_assumption"),
     ).sort(pl.col("district_code") == "ALL", "district_code")

@@ -64,17 +64,27 @@ def _unmapped_sql() -> str:
 
 def begin_judging(con: duckdb.DuckDBPyConnection) -> None:
     """Start this run's ``results_validated`` and ``unmapped_code_values`` (temporary
-    tables), empty."""
-    with_frame(con, empty_landed(), "create or replace temp table results_validated as\n" + _judged_sql())
-    with_frame(con, empty_landed(), "create or replace temp table unmapped_code_values as\n" + _unmapped_sql())
+    tables), empty.
+    """
+    with_frame(
+        con, empty_landed(), "create or replace temp table results_validated as\n" + _judged_sql()
+    )
+    with_frame(
+        con,
+        empty_landed(),
+        "create or replace temp table unmapped_code_values as\n" + _unmapped_sql(),
+    )
 
 
 def judge_file(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> None:
     """Judge one file's landed rows (the ingest stage's sink) into ``results_validated``.
 
     The rules read one row and the reference tables only, so judging file by file gives the
-    same rows as judging the run at once; the raw line is kept on rejected rows only."""
-    with_frame(con, frame, "insert into results_validated\n" + _judged_sql(), batch_rows=JUDGE_BATCH_ROWS)
+    same rows as judging the run at once; the raw line is kept on rejected rows only.
+    """
+    with_frame(
+        con, frame, "insert into results_validated\n" + _judged_sql(), batch_rows=JUDGE_BATCH_ROWS
+    )
     candidates = _unmapped_candidates(con, frame)
     if candidates.height:  # usually none: the unmapped-code query then costs nothing
         with_frame(con, candidates, "insert into unmapped_code_values\n" + _unmapped_sql())
@@ -88,11 +98,14 @@ _FHIR = ["final", "amended", "corrected", "cancelled", "entered-in-error", "prel
 def _unmapped_candidates(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> pl.DataFrame:
     """The rows of ``frame`` that may carry a code no config maps: a superset of what
     ``unmapped_code_values.sql`` counts, found in polars against the (small) reference tables, so
-    that the query runs only over them."""
+    that the query runs only over them.
+    """
     if not frame.height:
         return frame
     loincs = [r[0] for r in con.execute("select loinc from reference.analyte_codes").fetchall()]
-    units = [r[0] for r in con.execute("select distinct unit from reference.unit_factors").fetchall()]
+    units = [
+        r[0] for r in con.execute("select distinct unit from reference.unit_factors").fetchall()
+    ]
     keys = [r[0] for r in con.execute("select alias_key from reference.unit_aliases").fetchall()]
 
     def text(col: str) -> pl.Expr:
@@ -119,13 +132,18 @@ GATED_UNMAPPED_FIELDS = ("sex", "unit")
 
 
 def _has_unmapped_table(con: duckdb.DuckDBPyConnection) -> bool:
-    return bool(con.execute("select count(*) from duckdb_tables() where temporary "
-                            "and table_name = 'unmapped_code_values'").fetchall()[0][0])
+    return bool(
+        con.execute(
+            "select count(*) from duckdb_tables() where temporary "
+            "and table_name = 'unmapped_code_values'"
+        ).fetchall()[0][0]
+    )
 
 
 def unmapped_codes(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, dict]]:
-    """This run's unmapped code values, per source and field: the config key that maps them,
-    the rows affected and the rows per value (most frequent first, at most 20 values)."""
+    """Return this run's unmapped code values, per source and field: the config key that maps them,
+    the rows affected and the rows per value (most frequent first, at most 20 values).
+    """
     out: dict[str, dict[str, dict]] = {}
     if not _has_unmapped_table(con):
         return out
@@ -133,7 +151,9 @@ def unmapped_codes(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, dict]]
         "select source_id, field, config_key, code, sum(rows)::bigint from unmapped_code_values "
         "group by all order by source_id, field, sum(rows) desc, code"
     ).fetchall():
-        entry = out.setdefault(source, {}).setdefault(field_name, {"config_key": key, "rows": 0, "values": {}})
+        entry = out.setdefault(source, {}).setdefault(
+            field_name, {"config_key": key, "rows": 0, "values": {}}
+        )
         entry["rows"] += int(n)
         if len(entry["values"]) < 20:
             entry["values"][code] = int(n)
@@ -142,7 +162,8 @@ def unmapped_codes(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, dict]]
 
 def unmapped_over_limit(con: duckdb.DuckDBPyConnection, limits: dict[str, float]) -> dict[str, str]:
     """Sources whose share of this run's rows with an unmapped sex or unit value exceeds their
-    limit, with the reason (the quality gate holds them back like the rejection rate)."""
+    limit, with the reason (the quality gate holds them back like the rejection rate).
+    """
     held: dict[str, str] = {}
     if not _has_unmapped_table(con):
         return held
@@ -160,9 +181,11 @@ def unmapped_over_limit(con: duckdb.DuckDBPyConnection, limits: dict[str, float]
     for source, n, unmapped in rows:
         limit = limits.get(source, 1.0)
         if n and unmapped / n > limit:
-            held[source] = (f"{int(unmapped)} of {n} rows have a sex or unit value the source config does not map "
-                            f"({unmapped / n:.1%}), above the limit of {limit:.1%}; map them under 'sex_codes' / "
-                            "'unit_aliases' (see 'kidneysurv sources check')")
+            held[source] = (
+                f"{int(unmapped)} of {n} rows have a sex or unit value the source config does not map "
+                f"({unmapped / n:.1%}), above the limit of {limit:.1%}; map them under 'sex_codes' / "
+                "'unit_aliases' (see 'kidneysurv sources check')"
+            )
     return held
 
 
@@ -213,11 +236,15 @@ def validate_landed(
     return valid, rejected, held
 
 
-def hold_back_sources(con: duckdb.DuckDBPyConnection, rejection_limits: dict[str, float],
-                      failed_batches: dict[str, str] | None = None,
-                      unmapped: dict[str, str] | None = None) -> dict[str, str]:
+def hold_back_sources(
+    con: duckdb.DuckDBPyConnection,
+    rejection_limits: dict[str, float],
+    failed_batches: dict[str, str] | None = None,
+    unmapped: dict[str, str] | None = None,
+) -> dict[str, str]:
     """The quality gate: mark the files of sources over their rejection limit, over their
-    limit of unmapped sex or unit values, or whose batch failed its expectation suite."""
+    limit of unmapped sex or unit values, or whose batch failed its expectation suite.
+    """
     rates = con.execute(
         """
         select source_id, count(*) as n, count(*) filter (where reason_code is not null) as rejected
@@ -288,20 +315,31 @@ def settle_scope(con: duckdb.DuckDBPyConnection, full: bool = False) -> Scope:
     total = stored + new
     if total == 0 or full or new >= FULL_SCOPE_SHARE * total:
         con.execute("create or replace temp view versions_in_scope as select * from all_versions")
-        persons = con.execute("select count(distinct person_key) from all_versions").fetchall()[0][0]
+        persons = con.execute("select count(distinct person_key) from all_versions").fetchall()[0][
+            0
+        ]
         return Scope("all", total, persons)
     size = close_over_partitions(
-        con, "select person_key, source_id, specimen_id, analyte from new_versions",
-        {}, "scope_persons", "scope_versions", versions="all_versions",
+        con,
+        "select person_key, source_id, specimen_id, analyte from new_versions",
+        {},
+        "scope_persons",
+        "scope_versions",
+        versions="all_versions",
     )
     con.execute("create or replace temp view versions_in_scope as select * from scope_versions")
     persons = con.execute("select count(*) from scope_persons").fetchall()[0][0]
     return Scope("touched", size, persons)
 
 
-def close_over_partitions(con: duckdb.DuckDBPyConnection, seed: str, params: dict,
-                          persons_table: str, versions_table: str | None = None,
-                          versions: str = "result_versions") -> int:
+def close_over_partitions(
+    con: duckdb.DuckDBPyConnection,
+    seed: str,
+    params: dict,
+    persons_table: str,
+    versions_table: str | None = None,
+    versions: str = "result_versions",
+) -> int:
     """The versions that share a partition of the version rules with the ``seed`` rows (a query
     giving person_key, source_id, specimen_id, analyte), transitively: the same person, or the
     same source + specimen + analyte. Writes their persons to ``persons_table`` (and the
@@ -317,8 +355,13 @@ def close_over_partitions(con: duckdb.DuckDBPyConnection, seed: str, params: dic
     """
     columns = "v.*" if versions_table else "v.person_key, v.source_id, v.specimen_id, v.analyte"
     found = versions_table or "closure_versions"
-    con.execute(f"create or replace temp table {persons_table} as select distinct person_key from ({seed})", params)
-    con.execute(f"create or replace temp table closure_new_persons as select * from {persons_table}")
+    con.execute(
+        f"create or replace temp table {persons_table} as select distinct person_key from ({seed})",
+        params,
+    )
+    con.execute(
+        f"create or replace temp table closure_new_persons as select * from {persons_table}"
+    )
     first = True
     while True:
         # every version of the persons just added ...
@@ -405,7 +448,8 @@ def resolve_versions(con: duckdb.DuckDBPyConnection, full: bool = False) -> tupl
 def record_specimen_conflicts(con: duckdb.DuckDBPyConnection) -> None:
     """Give every version rejected by the version rules (a specimen id under two persons) its
     reason in ``rejected_rows``, for the versions just settled: the ledger counts it there once
-    (as rejected, not as a version), and ``sources check`` and the quality report show why."""
+    (as rejected, not as a version), and ``sources check`` and the quality report show why.
+    """
     con.execute(
         """
         delete from rejected_rows as j
@@ -430,14 +474,14 @@ def record_specimen_conflicts(con: duckdb.DuckDBPyConnection) -> None:
 
 #: The files whose counts a touched scope can change: those of its versions and this run's.
 TOUCHED_FILES = (
-    "and f.file_id in (select file_id from scope_versions "
-    "union select file_id from landed_files)"
+    "and f.file_id in (select file_id from scope_versions union select file_id from landed_files)"
 )
 
 
 def update_ledger_counts(con: duckdb.DuckDBPyConnection, scope: Scope | None = None) -> None:
     """Recount the outcomes of the files this run touched (every ingested file when the scope
-    was all versions), then check that each file balances."""
+    was all versions), then check that each file balances.
+    """
     touched = scope is not None and scope.kind == "touched"
     con.execute(
         """
@@ -480,7 +524,9 @@ def update_ledger_counts(con: duckdb.DuckDBPyConnection, scope: Scope | None = N
     ).fetchall()
     if unbalanced:
         detail = "; ".join(f"{p}: read {r}, accounted {a}" for p, r, a in unbalanced[:5])
-        raise BalanceError(f"row accounting does not balance for {len(unbalanced)} file(s): {detail}")
+        raise BalanceError(
+            f"row accounting does not balance for {len(unbalanced)} file(s): {detail}"
+        )
 
 
 def outcome_counts(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, int]]:
@@ -494,7 +540,7 @@ def outcome_counts(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, int]]:
         """
     ).fetchall()
     keys = ("read", *OUTCOMES, "files_held_back")
-    return {r[0]: {k: int(v or 0) for k, v in zip(keys, r[1:])} for r in rows}
+    return {r[0]: {k: int(v or 0) for k, v in zip(keys, r[1:], strict=False)} for r in rows}
 
 
 def validate_stage(

@@ -24,8 +24,17 @@ from pipeline.settings import Settings
 SQL_DIR = Path(__file__).resolve().parent.parent / "sql"
 WAREHOUSE_FILE = "surveillance.duckdb"
 _NAME = re.compile(r"^[a-z][a-z0-9_]{0,62}$")
-LEDGER_TABLES = ("ingest_files", "result_versions", "rejected_rows", "runs", "link_snapshots", "key_check",
-                 "result_versions_replaced", "rejected_rows_replaced", "reprocess_log")
+LEDGER_TABLES = (
+    "ingest_files",
+    "result_versions",
+    "rejected_rows",
+    "runs",
+    "link_snapshots",
+    "key_check",
+    "result_versions_replaced",
+    "rejected_rows_replaced",
+    "reprocess_log",
+)
 
 
 def sql_path(name: str) -> Path:
@@ -68,13 +77,19 @@ def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
     con.execute("alter table runs add column if not exists revision_reason varchar")
 
 
-def build_table(con: duckdb.DuckDBPyConnection, name: str, target: str | None = None,
-                params: dict[str, Any] | None = None, temporary: bool = False) -> int:
+def build_table(
+    con: duckdb.DuckDBPyConnection,
+    name: str,
+    target: str | None = None,
+    params: dict[str, Any] | None = None,
+    temporary: bool = False,
+) -> int:
     """Run ``sql/*/<name>.sql`` into a table (``target`` defaults to ``name``); return its rows.
 
     ``temporary``: a temporary table of this connection (a run's transient work: it is never
     written to the warehouse file, which inside the run's transaction costs several times more,
-    and it is gone when the connection closes)."""
+    and it is gone when the connection closes).
+    """
     target = target or name
     if not all(_NAME.match(part) for part in target.split(".")) or (temporary and "." in target):
         raise ValueError(f"not a plain table name: {target!r}")
@@ -89,7 +104,8 @@ def sql_over(name: str, inputs: dict[str, str]) -> str:
     file to inline, given as ``"sql:<file>"``). A CTE shadows a table of the same name, so the
     file runs unchanged over, say, one frame instead of a whole table.
 
-    The file must be one query that starts (after its comments) with ``with``."""
+    The file must be one query that starts (after its comments) with ``with``.
+    """
     body = re.sub(r"\A(\s*--[^\n]*\n)*\s*", "", read_sql(name))
     if not body[:5].lower() == "with ":
         raise ValueError(f"sql/*/{name}.sql does not start with a WITH clause")
@@ -179,8 +195,14 @@ def _age_bands(lower_bounds: list[int]) -> pl.DataFrame:
     rows = []
     for i, low in enumerate(lower_bounds):
         high = lower_bounds[i + 1] - 1 if i + 1 < len(lower_bounds) else None
-        rows.append({"age_band": f"{low}-{high}" if high is not None else f"{low}+",
-                     "age_min": low, "age_max": high if high is not None else 200, "band_order": i})
+        rows.append(
+            {
+                "age_band": f"{low}-{high}" if high is not None else f"{low}+",
+                "age_min": low,
+                "age_max": high if high is not None else 200,
+                "band_order": i,
+            }
+        )
     return pl.DataFrame(rows)
 
 
@@ -201,8 +223,9 @@ def relation_kind(con: duckdb.DuckDBPyConnection, name: str) -> str | None:
     return found[0][0] if found else None
 
 
-
-def with_frame(con: duckdb.DuckDBPyConnection, frame: Any, sql: str, batch_rows: int | None = None) -> None:
+def with_frame(
+    con: duckdb.DuckDBPyConnection, frame: Any, sql: str, batch_rows: int | None = None
+) -> None:
     """Run one statement ``sql`` in which ``frame`` (a polars frame or an Arrow table) is the
     table ``_frame``: ``create ... as select * from _frame``, ``insert into t select ... from _frame``.
 
@@ -215,16 +238,22 @@ def with_frame(con: duckdb.DuckDBPyConnection, frame: Any, sql: str, batch_rows:
     slices). DuckDB scans an Arrow table batch by batch, so a query doing real work over one
     batch uses one core: judging 12 files of 170k rows took 4.7–5.1 s in one batch each and
     3.7–4.0 s in batches of 32k. A plain insert into a stored table is slower in small batches
-    (the 10M measure writes went from about 10 to 16 s), so it is not the default."""
+    (the 10M measure writes went from about 10 to 16 s), so it is not the default.
+    """
     table = frame.to_arrow() if isinstance(frame, pl.DataFrame) else frame
     if batch_rows and table.num_rows > batch_rows:
-        table = pa.Table.from_batches(table.to_batches(max_chunksize=batch_rows), schema=table.schema)
+        table = pa.Table.from_batches(
+            table.to_batches(max_chunksize=batch_rows), schema=table.schema
+        )
     con.from_arrow(table).query("_frame", sql)
 
 
-def add_missing_columns(con: duckdb.DuckDBPyConnection, schema: str, name: str, frame: pl.DataFrame) -> None:
+def add_missing_columns(
+    con: duckdb.DuckDBPyConnection, schema: str, name: str, frame: pl.DataFrame
+) -> None:
     """A table written by an earlier version gets the columns of ``frame`` it lacks (empty for
-    its earlier rows); a table that does not exist yet is left alone."""
+    its earlier rows); a table that does not exist yet is left alone.
+    """
     if not (_NAME.match(schema) and _NAME.match(name)):
         raise ValueError(f"not a plain table name: {schema}.{name}")
     have = {c for (c,) in con.execute(
@@ -233,14 +262,15 @@ def add_missing_columns(con: duckdb.DuckDBPyConnection, schema: str, name: str, 
     if not have:
         return
     wanted = con.from_arrow(frame.head(0).to_arrow())
-    for column, dtype in zip(wanted.columns, wanted.types):
+    for column, dtype in zip(wanted.columns, wanted.types, strict=False):
         if column not in have:
             con.execute(f'alter table {schema}.{name} add column "{column}" {dtype}')
 
 
 def drop_relation(con: duckdb.DuckDBPyConnection, name: str) -> None:
     """Drop the table or view ``name`` of schema main, if there is one (an intermediate table is
-    a view in some runs, a table in others; CREATE OR REPLACE does not change the kind)."""
+    a view in some runs, a table in others; CREATE OR REPLACE does not change the kind).
+    """
     if not _NAME.match(name):
         raise ValueError(f"not a plain table name: {name!r}")
     kind = relation_kind(con, name)
@@ -251,7 +281,8 @@ def drop_relation(con: duckdb.DuckDBPyConnection, name: str) -> None:
 def apply_comments(con: duckdb.DuckDBPyConnection) -> None:
     """Write the catalog's descriptions as COMMENTs on every table, view and column it documents."""
     existing = {
-        (s, t): "table" for s, t in con.execute(
+        (s, t): "table"
+        for s, t in con.execute(
             "select schema_name, table_name from duckdb_tables() where database_name = current_database()"
         ).fetchall()
     }
@@ -271,9 +302,13 @@ def apply_comments(con: duckdb.DuckDBPyConnection) -> None:
             raise ValueError(f"catalog.yaml: not a plain table name {qualified!r}")
         text = f"{entry['description'].strip()} Grain: {entry['grain'].strip()}"
         con.execute(f"comment on {existing[(schema, table)]} {target} is {_quote(text)}")
-        columns = {c for (c,) in con.execute(
-            "select column_name from duckdb_columns() where schema_name = ? and table_name = ?",
-            [schema, table]).fetchall()}
+        columns = {
+            c
+            for (c,) in con.execute(
+                "select column_name from duckdb_columns() where schema_name = ? and table_name = ?",
+                [schema, table],
+            ).fetchall()
+        }
         for column, description in (entry.get("columns") or {}).items():
             if column in columns:
                 con.execute(f'comment on column {target}."{column}" is {_quote(str(description))}')
@@ -284,7 +319,9 @@ def _quote(text: str) -> str:
     return "'" + text.replace("'", "''") + "'"
 
 
-def replace_period_frame(con: duckdb.DuckDBPyConnection, name: str, period: str, frame: pl.DataFrame) -> int:
+def replace_period_frame(
+    con: duckdb.DuckDBPyConnection, name: str, period: str, frame: pl.DataFrame
+) -> int:
     """Replace this period's rows of a per-period table by ``frame``, keeping the other periods."""
     if not _NAME.match(name):
         raise ValueError(f"not a plain table name: {name!r}")
@@ -292,7 +329,9 @@ def replace_period_frame(con: duckdb.DuckDBPyConnection, name: str, period: str,
     return swap_period_rows(con, name, period)
 
 
-def replace_period_rows(con: duckdb.DuckDBPyConnection, name: str, period: str, params: dict) -> int:
+def replace_period_rows(
+    con: duckdb.DuckDBPyConnection, name: str, period: str, params: dict
+) -> int:
     """Rebuild this period's rows of a per-period table, keeping the other periods."""
     build_table(con, name, f"{name}_new", params, temporary=True)
     return swap_period_rows(con, name, period)
@@ -313,6 +352,8 @@ def swap_period_rows(con: duckdb.DuckDBPyConnection, name: str, period: str) -> 
     return rows
 
 
-def fetch_frame(con: duckdb.DuckDBPyConnection, query: str, params: list | dict | None = None) -> pl.DataFrame:
+def fetch_frame(
+    con: duckdb.DuckDBPyConnection, query: str, params: list | dict | None = None
+) -> pl.DataFrame:
     """A query's result as a polars frame (through Arrow, no extra copy)."""
     return con.sql(query, params=params).pl()

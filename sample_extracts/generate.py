@@ -76,44 +76,176 @@ DISTRICTS = [
 DISTRICT_NAME = {code: name for code, name, _, _ in DISTRICTS}
 AGE_BANDS = [f"{5 * i}-{5 * i + 4}" for i in range(17)] + ["85+"]
 # share of residents per band (percent, an ageing rural region) and male share per band
-BAND_SHARE = [4.6, 5.0, 5.3, 5.4, 5.5, 5.8, 6.2, 6.3, 6.2,
-              6.4, 7.0, 7.2, 6.8, 6.0, 5.4, 4.2, 2.6, 2.1]
-MALE_SHARE = [0.513, 0.513, 0.512, 0.512, 0.51, 0.505, 0.5, 0.5, 0.5, 0.495,
-              0.49, 0.49, 0.485, 0.48, 0.47, 0.45, 0.41, 0.34]
+BAND_SHARE = [
+    4.6,
+    5.0,
+    5.3,
+    5.4,
+    5.5,
+    5.8,
+    6.2,
+    6.3,
+    6.2,
+    6.4,
+    7.0,
+    7.2,
+    6.8,
+    6.0,
+    5.4,
+    4.2,
+    2.6,
+    2.1,
+]
+MALE_SHARE = [
+    0.513,
+    0.513,
+    0.512,
+    0.512,
+    0.51,
+    0.505,
+    0.5,
+    0.5,
+    0.5,
+    0.495,
+    0.49,
+    0.49,
+    0.485,
+    0.48,
+    0.47,
+    0.45,
+    0.41,
+    0.34,
+]
 # share of a district's testing done by (general, Corvale chain, Fallowmere reference)
 LAB_WEIGHTS = {
-    "WF01": (0.74, 0.20, 0.06), "WF02": (0.62, 0.32, 0.06), "WF03": (0.36, 0.58, 0.06),
-    "WF04": (0.44, 0.50, 0.06), "WF05": (0.70, 0.18, 0.12), "WF06": (0.55, 0.15, 0.30),
-    "WF07": (0.70, 0.18, 0.12), "WF08": (0.44, 0.50, 0.06), "WF09": (0.60, 0.15, 0.25),
-    "WF10": (0.74, 0.20, 0.06), "WF11": (0.70, 0.24, 0.06), "WF12": (0.62, 0.18, 0.20),
+    "WF01": (0.74, 0.20, 0.06),
+    "WF02": (0.62, 0.32, 0.06),
+    "WF03": (0.36, 0.58, 0.06),
+    "WF04": (0.44, 0.50, 0.06),
+    "WF05": (0.70, 0.18, 0.12),
+    "WF06": (0.55, 0.15, 0.30),
+    "WF07": (0.70, 0.18, 0.12),
+    "WF08": (0.44, 0.50, 0.06),
+    "WF09": (0.60, 0.15, 0.25),
+    "WF10": (0.74, 0.20, 0.06),
+    "WF11": (0.70, 0.24, 0.06),
+    "WF12": (0.62, 0.18, 0.20),
 }
 
 N_ADULTS = 5700
 N_CHILDREN = 300
 
-W_HEADER = ["person_token", "birth_year", "sex", "district_code", "specimen_id",
-            "collected_date", "test_code", "value", "unit", "status", "height_cm",
-            "reported_at", "fasting"]
-C_HEADER = ["PatientRef", "YearOfBirth", "Gender", "AreaCode", "SampleNo", "SampleDate",
-            "TestCode", "Result", "Units", "State", "ReportDate"]
+W_HEADER = [
+    "person_token",
+    "birth_year",
+    "sex",
+    "district_code",
+    "specimen_id",
+    "collected_date",
+    "test_code",
+    "value",
+    "unit",
+    "status",
+    "height_cm",
+    "reported_at",
+    "fasting",
+]
+C_HEADER = [
+    "PatientRef",
+    "YearOfBirth",
+    "Gender",
+    "AreaCode",
+    "SampleNo",
+    "SampleDate",
+    "TestCode",
+    "Result",
+    "Units",
+    "State",
+    "ReportDate",
+]
 # semantic field -> column, for the two delimited labs
-W_COLS = dict(zip(["token", "birth_year", "sex", "district", "specimen", "collected",
-                   "code", "value", "unit", "status", "height", "reported", "fasting"],
-                  W_HEADER))
-C_COLS = dict(zip(["token", "birth_year", "sex", "district", "specimen", "collected",
-                   "code", "value", "unit", "status", "reported"], C_HEADER))
+W_COLS = dict(
+    zip(
+        [
+            "token",
+            "birth_year",
+            "sex",
+            "district",
+            "specimen",
+            "collected",
+            "code",
+            "value",
+            "unit",
+            "status",
+            "height",
+            "reported",
+            "fasting",
+        ],
+        W_HEADER,
+        strict=False,
+    )
+)
+C_COLS = dict(
+    zip(
+        [
+            "token",
+            "birth_year",
+            "sex",
+            "district",
+            "specimen",
+            "collected",
+            "code",
+            "value",
+            "unit",
+            "status",
+            "reported",
+        ],
+        C_HEADER,
+        strict=False,
+    )
+)
 
-W_CODES = {"creatinine": "2160-0", "egfr": "98979-8", "acr": "9318-7", "hba1c": "4548-4",
-           "glucose": "2345-7", "cystatin_c": "33863-2", "u_albumin": "14957-5",
-           "u_creatinine": "2161-8"}
-C_CODES = {"creatinine": "CREA", "egfr": "EGFR", "acr": "UACR", "hba1c": "HBA1C",
-           "glucose": "GLUF", "cystatin_c": "CYSC"}
-W_STATUS = {"final": "final", "amended": "amended", "cancelled": "cancelled",
-            "preliminary": "preliminary"}
-C_STATUS = {"final": "F", "amended": "A", "cancelled": "C", "preliminary": "P",
-            "entered-in-error": "E"}
-TEST_ORDER = {"creatinine": 0, "egfr": 1, "cystatin_c": 2, "hba1c": 3, "glucose": 4,
-              "acr": 5, "u_albumin": 6, "u_creatinine": 7}
+W_CODES = {
+    "creatinine": "2160-0",
+    "egfr": "98979-8",
+    "acr": "9318-7",
+    "hba1c": "4548-4",
+    "glucose": "2345-7",
+    "cystatin_c": "33863-2",
+    "u_albumin": "14957-5",
+    "u_creatinine": "2161-8",
+}
+C_CODES = {
+    "creatinine": "CREA",
+    "egfr": "EGFR",
+    "acr": "UACR",
+    "hba1c": "HBA1C",
+    "glucose": "GLUF",
+    "cystatin_c": "CYSC",
+}
+W_STATUS = {
+    "final": "final",
+    "amended": "amended",
+    "cancelled": "cancelled",
+    "preliminary": "preliminary",
+}
+C_STATUS = {
+    "final": "F",
+    "amended": "A",
+    "cancelled": "C",
+    "preliminary": "P",
+    "entered-in-error": "E",
+}
+TEST_ORDER = {
+    "creatinine": 0,
+    "egfr": 1,
+    "cystatin_c": 2,
+    "hba1c": 3,
+    "glucose": 4,
+    "acr": 5,
+    "u_albumin": 6,
+    "u_creatinine": 7,
+}
 LOINC_DISPLAY = {
     "2160-0": "Creatinine [Mass/volume] in Serum or Plasma",
     "14682-9": "Creatinine [Moles/volume] in Serum or Plasma",
@@ -129,13 +261,13 @@ def egfr_ckd_epi_2021(scr: float, age: float, female: bool) -> float:
     """CKD-EPI 2021 creatinine equation, Inker et al., NEJM 2021;385:1737."""
     k, a = (0.7, -0.241) if female else (0.9, -0.302)
     r = scr / k
-    return 142 * min(r, 1) ** a * max(r, 1) ** -1.200 * 0.9938 ** age * (1.012 if female else 1)
+    return 142 * min(r, 1) ** a * max(r, 1) ** -1.200 * 0.9938**age * (1.012 if female else 1)
 
 
 def creatinine_from_egfr_2021(egfr: float, age: float, female: bool) -> float:
     """Invert the CKD-EPI 2021 creatinine equation for serum creatinine in mg/dL."""
     k, a = (0.7, -0.241) if female else (0.9, -0.302)
-    at_kappa = 142 * 0.9938 ** age * (1.012 if female else 1)  # eGFR when Scr equals kappa
+    at_kappa = 142 * 0.9938**age * (1.012 if female else 1)  # eGFR when Scr equals kappa
     r = egfr / at_kappa
     return k * (r ** (1 / a) if r >= 1 else r ** (1 / -1.200))
 
@@ -144,12 +276,12 @@ def egfr_ckd_epi_2009(scr: float, age: float, female: bool) -> float:
     """CKD-EPI 2009 creatinine equation without race term, Levey et al., Ann Intern Med 2009."""
     k, a = (0.7, -0.329) if female else (0.9, -0.411)
     r = scr / k
-    return 141 * min(r, 1) ** a * max(r, 1) ** -1.209 * 0.993 ** age * (1.018 if female else 1)
+    return 141 * min(r, 1) ** a * max(r, 1) ** -1.209 * 0.993**age * (1.018 if female else 1)
 
 
 def cystatin_from_egfr_2012(egfr: float, age: float, female: bool) -> float:
     """Invert the CKD-EPI 2012 cystatin C equation (Inker et al., NEJM 2012) for mg/L."""
-    at_knot = 133 * 0.996 ** age * (0.932 if female else 1)
+    at_knot = 133 * 0.996**age * (0.932 if female else 1)
     r = egfr / at_knot
     return 0.8 * (r ** (1 / -0.499) if r >= 1 else r ** (1 / -1.328))
 
@@ -158,7 +290,7 @@ def cystatin_from_egfr_2012(egfr: float, age: float, female: bool) -> float:
 def weighted_pick(rng: random.Random, items: list, weights: list[float], n: int) -> list:
     """Draw n items without replacement, chance proportional to weight (Efraimidis-Spirakis)."""
     keyed = []
-    for i, (item, w) in enumerate(zip(items, weights)):
+    for i, (item, w) in enumerate(zip(items, weights, strict=False)):
         u = 1.0 - rng.random()
         keyed.append((math.log(u) / w if w > 0 else -math.inf, i, item))
     keyed.sort(key=lambda t: (-t[0], t[1]))
@@ -290,6 +422,7 @@ class Result:
 @dataclass
 class Rec:
     """One row of a delimited extract, or one Observation of the FHIR export."""
+
     lab: str
     person: Person
     analyte: str
@@ -306,7 +439,7 @@ class Rec:
     defects: list[tuple[str, str]] = field(default_factory=list)
     deleted: bool = False
     locked: bool = False  # the original of a planted copy: keep it as it is
-    sibling: "Rec | None" = None  # the lab-reported eGFR row of a creatinine row
+    sibling: Rec | None = None  # the lab-reported eGFR row of a creatinine row
 
     def month(self) -> tuple[int, int]:
         return self.file_month or month_of(self.report)
@@ -386,16 +519,25 @@ def assign_clinical(seed: int, persons: list[Person]) -> None:
         for p in weighted_pick(rng, pool, [weight_fn(p) for p in pool], count):
             p.group = group
 
-    pick_group(round(0.005 * n),
-               lambda p: logistic((p.age_ref - 62) / 8) * (2.5 if p.diabetes else 1),
-               "kidney_failure")
-    pick_group(round(0.03 * n),
-               lambda p: logistic((p.age_ref - 60) / 9) * (2.0 if p.diabetes else 1), "decline")
-    pick_group(round(0.062 * len(adults)),
-               lambda p: logistic((p.age_ref - 70) / 6) * (1.8 if p.diabetes else 1), "stable_low")
+    pick_group(
+        round(0.005 * n),
+        lambda p: logistic((p.age_ref - 62) / 8) * (2.5 if p.diabetes else 1),
+        "kidney_failure",
+    )
+    pick_group(
+        round(0.03 * n),
+        lambda p: logistic((p.age_ref - 60) / 9) * (2.0 if p.diabetes else 1),
+        "decline",
+    )
+    pick_group(
+        round(0.062 * len(adults)),
+        lambda p: logistic((p.age_ref - 70) / 6) * (1.8 if p.diabetes else 1),
+        "stable_low",
+    )
     normal = [p for p in adults if p.group == "normal"]
-    alb_weights = [(4.0 if p.diabetes else 1.0) * (0.3 + logistic((p.age_ref - 60) / 10))
-                   for p in normal]
+    alb_weights = [
+        (4.0 if p.diabetes else 1.0) * (0.3 + logistic((p.age_ref - 60) / 10)) for p in normal
+    ]
     for p in weighted_pick(rng, normal, alb_weights, round(0.042 * len(adults))):
         p.albuminuric = True
     normal = [p for p in adults if p.group == "normal"]
@@ -473,8 +615,9 @@ def encounter_days(rng: random.Random, p: Person) -> list[int]:
     if p.group == "kidney_failure":
         k = rng.randint(7, 10)
         step = PERIOD_DAYS / k
-        return sorted(min(PERIOD_DAYS - 1, int(i * step + rng.random() * step * 0.8))
-                      for i in range(k))
+        return sorted(
+            min(PERIOD_DAYS - 1, int(i * step + rng.random() * step * 0.8)) for i in range(k)
+        )
     if p.group == "decline":
         post_lo = p.t2 + 7
         days = uniform_days(rng.randint(2, 3), 0, max(p.t1, 20))
@@ -558,12 +701,12 @@ def simulate_results(seed: int, persons: list[Person]) -> list[Result]:
         enc_lab = [primary] * len(days)
         if len(p.labs) > 1:
             slots = rng.sample(range(len(days)), len(p.labs) - 1)
-            for lab, s in zip(p.labs[1:], slots):
+            for lab, s in zip(p.labs[1:], slots, strict=False):
                 enc_lab[s] = lab
             for i in range(len(days)):
                 if i not in slots and rng.random() < 0.3:
                     enc_lab[i] = rng.choice(p.labs[1:])
-        encounters = list(zip(days, enc_lab))
+        encounters = list(zip(days, enc_lab, strict=False))
         # same-day repeats (a second specimen, at another lab when the person uses one)
         for day, lab in list(encounters):
             if rng.random() < 0.015:
@@ -610,8 +753,16 @@ def simulate_results(seed: int, persons: list[Person]) -> list[Result]:
             if p.is_child and lab == W_LAB and rng.random() < 0.85:
                 height = child_height(rng, p, age)
             rd = day + report_delay(rng, lab, "creatinine")
-            results.append(Result(spec, "creatinine", cr, rd, height=height,
-                                  fr_umol=(lab == F_LAB and rng.random() < 0.15)))
+            results.append(
+                Result(
+                    spec,
+                    "creatinine",
+                    cr,
+                    rd,
+                    height=height,
+                    fr_umol=(lab == F_LAB and rng.random() < 0.15),
+                )
+            )
             if repeat:
                 continue
             q_cys = 0.15 if p.group != "normal" else 0.04
@@ -687,7 +838,7 @@ def assign_specimen_ids(seed: int, results: list[Result], persons: list[Person])
     # Fallowmere's own patient ids, numbered in order of first contact
     first: dict[int, int] = {}
     for s in by_lab[F_LAB]:
-        first[s.person.idx] = min(first.get(s.person.idx, 10 ** 6), s.day)
+        first[s.person.idx] = min(first.get(s.person.idx, 10**6), s.day)
     n = 100
     for idx in sorted(first, key=lambda i: (first[i], i)):
         n += rng.randint(1, 3)
@@ -732,8 +883,12 @@ def c_value(analyte: str, v: float) -> tuple[str, str]:
 def f_quantity(analyte: str, v: float, umol: bool) -> dict:
     if analyte == "creatinine":
         if umol:
-            return {"code": "14682-9", "value": round(v * 88.4), "comparator": None,
-                    "unit": "umol/L"}
+            return {
+                "code": "14682-9",
+                "value": round(v * 88.4),
+                "comparator": None,
+                "unit": "umol/L",
+            }
         return {"code": "2160-0", "value": round(v, 2), "comparator": None, "unit": "mg/dL"}
     if analyte == "acr":
         if v < 3:
@@ -764,22 +919,45 @@ def build_records(seed: int, results: list[Result]) -> dict[str, list[Rec]]:
         rec = Rec(lab, p, r.analyte, r.value, collected, report, s.sid, seq)
         if lab == W_LAB:
             val, unit = w_value(r.analyte, r.value)
-            rec.f = {"token": p.token, "birth_year": str(p.birth_date.year), "sex": p.sex_reported,
-                     "district": p.district, "specimen": s.sid, "collected": collected.isoformat(),
-                     "code": W_CODES[r.analyte], "value": val, "unit": unit, "status": "final",
-                     "height": "" if r.height is None else f"{r.height:.1f}",
-                     "reported": report.isoformat(),
-                     "fasting": r.fasting if r.analyte == "glucose" else ""}
+            rec.f = {
+                "token": p.token,
+                "birth_year": str(p.birth_date.year),
+                "sex": p.sex_reported,
+                "district": p.district,
+                "specimen": s.sid,
+                "collected": collected.isoformat(),
+                "code": W_CODES[r.analyte],
+                "value": val,
+                "unit": unit,
+                "status": "final",
+                "height": "" if r.height is None else f"{r.height:.1f}",
+                "reported": report.isoformat(),
+                "fasting": r.fasting if r.analyte == "glucose" else "",
+            }
         elif lab == C_LAB:
             val, unit = c_value(r.analyte, r.value)
-            rec.f = {"token": p.token, "birth_year": str(p.birth_date.year), "sex": p.sex_reported,
-                     "district": p.district, "specimen": s.sid, "collected": dmy(collected),
-                     "code": C_CODES[r.analyte], "value": val, "unit": unit, "status": "F",
-                     "reported": dmy(report)}
+            rec.f = {
+                "token": p.token,
+                "birth_year": str(p.birth_date.year),
+                "sex": p.sex_reported,
+                "district": p.district,
+                "specimen": s.sid,
+                "collected": dmy(collected),
+                "code": C_CODES[r.analyte],
+                "value": val,
+                "unit": unit,
+                "status": "F",
+                "reported": dmy(report),
+            }
         else:
             q = f_quantity(r.analyte, r.value, r.fr_umol)
-            rec.obs = {"code_system": LOINC, "code": q.pop("code"),
-                       "effective": collected.isoformat(), "quantity": q, "string": None}
+            rec.obs = {
+                "code_system": LOINC,
+                "code": q.pop("code"),
+                "effective": collected.isoformat(),
+                "quantity": q,
+                "string": None,
+            }
             hh, mm = rng.randint(6, 19), rng.randint(0, 59)
             rec.issued = f"{report.isoformat()}T{hh:02d}:{mm:02d}:00Z"
         recs[lab].append(rec)
@@ -795,8 +973,12 @@ def build_records(seed: int, results: list[Result]) -> dict[str, list[Rec]]:
                 if lab == W_LAB:
                     scr = float(rec.f["value"])
                     g = egfr_ckd_epi_2021(scr, age, p.female)
-                    e.f.update(code=W_CODES["egfr"], value=">90" if g > 90 else f"{round(g)}",
-                               unit="mL/min/{1.73_m2}", height="")
+                    e.f.update(
+                        code=W_CODES["egfr"],
+                        value=">90" if g > 90 else f"{round(g)}",
+                        unit="mL/min/{1.73_m2}",
+                        height="",
+                    )
                 else:  # the chain still reports with the 2009 equation, unrounded at 90
                     scr = int(rec.f["value"]) / 88.4
                     g = egfr_ckd_epi_2009(scr, age, p.female)
@@ -838,10 +1020,21 @@ class Planter:
 
     def copy(self, r: Rec, **changes) -> Rec:
         self.seq += 1
-        c = Rec(r.lab, r.person, r.analyte, r.value, r.collected, r.report, r.spec_sid, self.seq,
-                f=dict(r.f),
-                obs={k: (dict(v) if isinstance(v, dict) else v) for k, v in r.obs.items()},
-                issued=r.issued, file_month=r.file_month, status=r.status)
+        c = Rec(
+            r.lab,
+            r.person,
+            r.analyte,
+            r.value,
+            r.collected,
+            r.report,
+            r.spec_sid,
+            self.seq,
+            f=dict(r.f),
+            obs={k: (dict(v) if isinstance(v, dict) else v) for k, v in r.obs.items()},
+            issued=r.issued,
+            file_month=r.file_month,
+            status=r.status,
+        )
         for k, v in changes.items():
             setattr(c, k, v)
         r.locked = True
@@ -903,8 +1096,18 @@ def plant_events(pl: Planter, scale: float) -> None:
             f = rng.choice([rng.uniform(0.8, 0.93), rng.uniform(1.07, 1.25)])
             v = r.value * f
             old = (r.f.get("value"), r.obs.get("quantity", {}).get("value") if r.obs else None)
-            probe = Rec(r.lab, r.person, r.analyte, v, r.collected, r.report, r.spec_sid, 0,
-                        f=dict(r.f), obs=dict(r.obs))
+            probe = Rec(
+                r.lab,
+                r.person,
+                r.analyte,
+                v,
+                r.collected,
+                r.report,
+                r.spec_sid,
+                0,
+                f=dict(r.f),
+                obs=dict(r.obs),
+            )
             revalue(probe, v)
             new_q = probe.obs.get("quantity", {}).get("value") if probe.obs else None
             new = (probe.f.get("value"), new_q)
@@ -983,8 +1186,11 @@ def plant_csv_defects(pl: Planter, scale: float) -> None:
         r.f["value"] = ""
         pl.drop_sibling(r)
         pl.mark(r, "value_blank")
-    for text, analytes, k in (("see note", ("creatinine", "hba1c", "acr"), 12),
-                              ("haemolysed", ("creatinine",), 20), ("ND", ("acr",), 8)):
+    for text, analytes, k in (
+        ("see note", ("creatinine", "hba1c", "acr"), 12),
+        ("haemolysed", ("creatinine",), 20),
+        ("ND", ("acr",), 8),
+    ):
         for r in pl.pick(n(k), analytes):
             r.f["value"] = text
             pl.drop_sibling(r)
@@ -1091,8 +1297,11 @@ def plant_fhir_defects(pl: Planter, scale: float, patient_overrides: dict) -> No
         r.obs["quantity"].update(value=300, comparator=">=")
         pl.mark(r, "censored_value", ">=300")
     # patient-level defects, one export each
-    kinds = (("birth_year_after_collection", 2), ("birth_year_implausible", 2),
-             ("unknown_district", 2))
+    kinds = (
+        ("birth_year_after_collection", 2),
+        ("birth_year_implausible", 2),
+        ("unknown_district", 2),
+    )
     for kind, k in kinds:
         for r in pl.pick(k):
             key = (r.month(), r.person.fr_id)
@@ -1134,8 +1343,11 @@ def write_delimited(out: Path, lab: str, recs: list[Rec], manifest: list) -> tup
         path = folder / name
         rows.sort(key=sort_key)
         with path.open("w", encoding="utf-8", newline="") as fh:
-            w = csv.writer(fh, delimiter="," if lab == W_LAB else ";",
-                           lineterminator="\n" if lab == W_LAB else "\r\n")
+            w = csv.writer(
+                fh,
+                delimiter="," if lab == W_LAB else ";",
+                lineterminator="\n" if lab == W_LAB else "\r\n",
+            )
             w.writerow(header)
             for line, r in enumerate(rows, start=2):
                 w.writerow([r.f.get(sem, "") for sem in cols])
@@ -1163,11 +1375,16 @@ def fhir_observation(r: Rec, obs_id: str) -> dict:
     coding = {"system": o["code_system"], "code": o["code"]}
     if o["code"] in LOINC_DISPLAY and o["code_system"] == LOINC:
         coding["display"] = LOINC_DISPLAY[o["code"]]
-    obs = {"resourceType": "Observation", "id": obs_id, "status": r.status,
-           "code": {"coding": [coding]},
-           "subject": {"reference": f"Patient/{r.person.fr_id}"},
-           "specimen": {"reference": f"Specimen/{r.spec_sid}"},
-           "effectiveDateTime": o["effective"], "issued": r.issued}
+    obs = {
+        "resourceType": "Observation",
+        "id": obs_id,
+        "status": r.status,
+        "code": {"coding": [coding]},
+        "subject": {"reference": f"Patient/{r.person.fr_id}"},
+        "specimen": {"reference": f"Specimen/{r.spec_sid}"},
+        "effectiveDateTime": o["effective"],
+        "issued": r.issued,
+    }
     q = o["quantity"]
     if q is not None:
         vq = {"value": q["value"]}
@@ -1180,8 +1397,9 @@ def fhir_observation(r: Rec, obs_id: str) -> dict:
     return obs
 
 
-def write_fhir(out: Path, recs: list[Rec], overrides: dict,
-               manifest: list) -> tuple[int, list[Path]]:
+def write_fhir(
+    out: Path, recs: list[Rec], overrides: dict, manifest: list
+) -> tuple[int, list[Path]]:
     folder = out / F_LAB
     # observation ids: one per original result, kept by amendments, cancels and resends
     ids: dict[tuple[str, str], str] = {}
@@ -1209,8 +1427,15 @@ def write_fhir(out: Path, recs: list[Rec], overrides: dict,
                 pat = fhir_patient(patients[pid], kind_over[1] if kind_over else None)
                 fh.write(json.dumps(pat, ensure_ascii=False, separators=(",", ":")) + "\n")
                 if kind_over:
-                    manifest.append((F_LAB, f"{F_LAB}/{month_label(ym)}/Patient.ndjson", line,
-                                     kind_over[0], json.dumps(kind_over[1], ensure_ascii=False)))
+                    manifest.append(
+                        (
+                            F_LAB,
+                            f"{F_LAB}/{month_label(ym)}/Patient.ndjson",
+                            line,
+                            kind_over[0],
+                            json.dumps(kind_over[1], ensure_ascii=False),
+                        )
+                    )
         with (d / "Observation.ndjson").open("w", encoding="utf-8", newline="") as fh:
             for line, r in enumerate(rows, start=1):
                 obs = fhir_observation(r, ids[(r.spec_sid, r.analyte)])
@@ -1254,15 +1479,43 @@ def write_answer_key(out: Path, persons: list[Person], manifest: list) -> None:
     short = {W_LAB: "W", C_LAB: "C", F_LAB: "F"}
     with (key / "persons.csv").open("w", encoding="utf-8", newline="") as fh:
         w = csv.writer(fh, lineterminator="\n")
-        w.writerow(["person_token", "birth_year", "sex", "district_code", "age_on_2025_11_01",
-                    "kidney_course", "ckd_egfr", "albuminuria", "diabetes", "acr_screened",
-                    "aki", "labs", "fallowmere_id", "fallowmere_linkable"])
+        w.writerow(
+            [
+                "person_token",
+                "birth_year",
+                "sex",
+                "district_code",
+                "age_on_2025_11_01",
+                "kidney_course",
+                "ckd_egfr",
+                "albuminuria",
+                "diabetes",
+                "acr_screened",
+                "aki",
+                "labs",
+                "fallowmere_id",
+                "fallowmere_linkable",
+            ]
+        )
         for p in sorted(persons, key=lambda p: p.token):
-            w.writerow([p.token, p.birth_date.year, p.sex_reported, p.district, int(p.age_ref),
-                        p.group, int(true_ckd_egfr(p)), int(p.albuminuric), int(p.diabetes),
-                        int(p.acr_screened), int(p.aki_day is not None),
-                        "".join(short[lab] for lab in LABS if lab in p.labs), p.fr_id,
-                        "" if not p.fr_id else int(p.fr_has_token)])
+            w.writerow(
+                [
+                    p.token,
+                    p.birth_date.year,
+                    p.sex_reported,
+                    p.district,
+                    int(p.age_ref),
+                    p.group,
+                    int(true_ckd_egfr(p)),
+                    int(p.albuminuric),
+                    int(p.diabetes),
+                    int(p.acr_screened),
+                    int(p.aki_day is not None),
+                    "".join(short[lab] for lab in LABS if lab in p.labs),
+                    p.fr_id,
+                    "" if not p.fr_id else int(p.fr_has_token),
+                ]
+            )
     with (key / "defects.csv").open("w", encoding="utf-8", newline="") as fh:
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(["source", "file", "line", "kind", "detail"])
@@ -1297,21 +1550,28 @@ def generate(out: Path, seed: int, regions_out: Path) -> str:
     seen = {lab: {r.person.idx for r in recs[lab] if not r.deleted} for lab in LABS}
     in_any = set().union(*seen.values())
     multi = sum(1 for i in in_any if sum(i in s for s in seen.values()) > 1)
-    return (f"{len(p_w) + len(p_c) + len(p_f)} extract files; rows: {W_LAB} {n_w}, {C_LAB} {n_c}, "
-            f"{F_LAB} {n_f} observations; {len(in_any)} persons ({multi} in more than one lab); "
-            f"{len(manifest)} planted rows listed in answer_key/defects.csv")
+    return (
+        f"{len(p_w) + len(p_c) + len(p_f)} extract files; rows: {W_LAB} {n_w}, {C_LAB} {n_c}, "
+        f"{F_LAB} {n_f} observations; {len(in_any)} persons ({multi} in more than one lab); "
+        f"{len(manifest)} planted rows listed in answer_key/defects.csv"
+    )
 
 
 def main(argv: list[str] | None = None) -> int:
     here = Path(__file__).resolve().parent
     ap = argparse.ArgumentParser(description="Write the invented Westerfold sample lab extracts.")
-    ap.add_argument("--out", type=Path, default=here,
-                    help="output folder (default: this script's folder)")
-    ap.add_argument("--seed", type=int, default=DEFAULT_SEED,
-                    help=f"random seed (default {DEFAULT_SEED})")
-    ap.add_argument("--regions-out", type=Path, default=here.parent / "config" / "regions",
-                    help="folder for districts.csv and population.csv "
-                         "(default: <repo>/config/regions)")
+    ap.add_argument(
+        "--out", type=Path, default=here, help="output folder (default: this script's folder)"
+    )
+    ap.add_argument(
+        "--seed", type=int, default=DEFAULT_SEED, help=f"random seed (default {DEFAULT_SEED})"
+    )
+    ap.add_argument(
+        "--regions-out",
+        type=Path,
+        default=here.parent / "config" / "regions",
+        help="folder for districts.csv and population.csv (default: <repo>/config/regions)",
+    )
     args = ap.parse_args(argv)
     print(generate(args.out, args.seed, args.regions_out))
     return 0

@@ -55,12 +55,23 @@ def test_pipeline_floor_and_incremental_figures(bench_results: tuple[dict, Path]
     for key in ("wall_seconds", "peak_rss_mb", "rows_per_second"):
         assert _positive(pipeline[key]), key
     # every stage of run_month_plain reports a time and a peak RSS
-    for stage in ("scan", "ingest", "validate", "measure", "link", "summarise", "publish", "export"):
+    for stage in (
+        "scan",
+        "ingest",
+        "validate",
+        "measure",
+        "link",
+        "summarise",
+        "publish",
+        "export",
+    ):
         assert stage in pipeline["stages"], stage
         assert pipeline["stages"][stage]["seconds"] >= 0
         assert _positive(pipeline["stages"][stage]["peak_rss_mb"]), stage
     # the whole input was read: rows written by the generator = rows read by the pipeline
-    manifest = json.loads(next((root / "data").glob("rows_*/manifest.json")).read_text(encoding="utf-8"))
+    manifest = json.loads(
+        next((root / "data").glob("rows_*/manifest.json")).read_text(encoding="utf-8")
+    )
     assert sum(manifest["files"].values()) == ROWS
     assert sum(s["read"] for s in pipeline["sources"].values()) == ROWS
     for key in ("wall_seconds", "peak_rss_mb", "rows_per_second", "egfr_rows", "persons_tested"):

@@ -116,7 +116,9 @@ def published_files(out: Path, tables_only: bool = False) -> dict[str, str]:
     for folder in sorted(p for p in out.iterdir() if p.is_dir() and not p.name.startswith(".")):
         for path in sorted(folder.rglob("*")):
             if path.is_file() and (not tables_only or path.suffix in (".csv", ".parquet")):
-                found[path.relative_to(out).as_posix()] = hashlib.sha256(path.read_bytes()).hexdigest()
+                found[path.relative_to(out).as_posix()] = hashlib.sha256(
+                    path.read_bytes()
+                ).hexdigest()
     return found
 
 
@@ -232,12 +234,16 @@ def test_killed_before_the_commit_leaves_everything_as_before(scenario, killed, 
 @pytest.mark.parametrize("point", BEFORE_COMMIT)
 def test_after_a_kill_before_the_commit_the_next_run_is_as_uninterrupted(scenario, killed, point):
     out = killed[point]
-    run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
+    run_month_plain(
+        PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON
+    )
     assert_as_reference(scenario, out)
 
 
 @pytest.mark.parametrize("point", AFTER_COMMIT)
-def test_killed_after_the_commit_the_month_is_committed_and_recovery_publishes_it(scenario, killed, point):
+def test_killed_after_the_commit_the_month_is_committed_and_recovery_publishes_it(
+    scenario, killed, point
+):
     out = killed[point]
     assert warehouse_dump(out, across_runs=True) == scenario.reference_dump
     # the exports still being installed: the previous ones, or none while they are moved aside
@@ -248,7 +254,9 @@ def test_killed_after_the_commit_the_month_is_committed_and_recovery_publishes_i
     with run_lock(out):
         con = duckdb.connect(str(out / WAREHOUSE_FILE))
         try:
-            assert rows(con, "select count(*) from runs where run_id = ?", [journal["run_id"]]) == [(1,)]
+            assert rows(con, "select count(*) from runs where run_id = ?", [journal["run_id"]]) == [
+                (1,)
+            ]
             done = recover_interrupted_run(out, con)
         finally:
             con.close()
@@ -257,7 +265,9 @@ def test_killed_after_the_commit_the_month_is_committed_and_recovery_publishes_i
     # recovery put the killed run's own exports in place (nothing was recomputed)
     manifest = json.loads((out / PERIOD / "run_manifest.json").read_text(encoding="utf-8"))
     assert manifest["run_id"] == journal["run_id"]
-    run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
+    run_month_plain(
+        PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON
+    )
     assert_as_reference(scenario, out)
 
 
@@ -267,10 +277,16 @@ def test_killed_after_the_commit_the_month_is_committed_and_recovery_publishes_i
 def test_same_period_twice_gives_byte_identical_exports(scenario, tmp_path):
     out = tmp_path / "again"
     shutil.copytree(scenario.reference, out)
-    run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
-    assert published_files(out, tables_only=True) == scenario.reference_tables  # sha256 of CSV and Parquet
+    run_month_plain(
+        PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON
+    )
+    assert (
+        published_files(out, tables_only=True) == scenario.reference_tables
+    )  # sha256 of CSV and Parquet
     assert warehouse_dump(out, across_runs=True) == scenario.reference_dump
-    assert len(scenario.reference_tables) == 2 * 2 * len(PUBLISHED_TABLES)  # CSV + Parquet, revision 2 and 1
+    assert len(scenario.reference_tables) == 2 * 2 * len(
+        PUBLISHED_TABLES
+    )  # CSV + Parquet, revision 2 and 1
 
 
 # --------------------------------------------------------------------------- one run at a time
@@ -288,14 +304,25 @@ def test_a_second_concurrent_run_is_refused_and_does_no_harm(scenario, tmp_path)
     try:
         deadline = time.monotonic() + 120
         while not _stopped(first.pid):
-            assert first.poll() is None, "the first run ended before pausing: is maybe_fail('ingest:after') in place?"
+            assert first.poll() is None, (
+                "the first run ended before pausing: is maybe_fail('ingest:after') in place?"
+            )
             assert time.monotonic() < deadline, "the first run did not reach ingest:after"
             time.sleep(0.1)
         # the first run holds the lock, in the middle of its transaction
         with pytest.raises(RunLocked) as refused:
-            run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
+            run_month_plain(
+                PERIOD,
+                str(scenario.config),
+                str(scenario.inbox),
+                str(out),
+                demo=True,
+                revise=REASON,
+            )
         message = str(refused.value)
-        assert str(out) in message and f"pid {first.pid}" in message and "changed nothing" in message
+        assert (
+            str(out) in message and f"pid {first.pid}" in message and "changed nothing" in message
+        )
         cli = subprocess.run(
             [sys.executable, "-c", "import sys; sys.path.insert(0, sys.argv[1]); from pipeline.cli import app; "
              "sys.argv[1:2] = []; app()", str(ROOT), "run", "--period", PERIOD, "--config", str(scenario.config),
@@ -347,11 +374,23 @@ def test_disk_full_while_writing_exports_changes_nothing(scenario, tmp_path, mon
             with ballast.open("wb") as fh:
                 fh.write(b"\0" * max(free - (12 << 10), 0))
         else:
-            monkeypatch.setenv("KIDNEYSURV_FAULT_AT", "export:before" if how == "small_disk" else "export:after")
+            monkeypatch.setenv(
+                "KIDNEYSURV_FAULT_AT", "export:before" if how == "small_disk" else "export:after"
+            )
             monkeypatch.setenv("KIDNEYSURV_FAULT_KIND", "enospc")
         with pytest.raises(Exception) as full:
-            run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
-        assert "No space left on device" in str(full.value) or getattr(full.value, "errno", None) == errno.ENOSPC
+            run_month_plain(
+                PERIOD,
+                str(scenario.config),
+                str(scenario.inbox),
+                str(out),
+                demo=True,
+                revise=REASON,
+            )
+        assert (
+            "No space left on device" in str(full.value)
+            or getattr(full.value, "errno", None) == errno.ENOSPC
+        )
         if mounted:  # the message names the export file being written
             assert str(out / f".{PERIOD}.partial") in str(full.value), str(full.value)
         assert published_files(out) == scenario.before_files
@@ -359,7 +398,9 @@ def test_disk_full_while_writing_exports_changes_nothing(scenario, tmp_path, mon
         if mounted:
             ballast.unlink()
         monkeypatch.delenv("KIDNEYSURV_FAULT_AT", raising=False)
-        run_month_plain(PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON)
+        run_month_plain(
+            PERIOD, str(scenario.config), str(scenario.inbox), str(out), demo=True, revise=REASON
+        )
         assert_as_reference(scenario, out)
     finally:
         if mounted:
@@ -393,7 +434,10 @@ HOSTILE = "S1'); drop table lab_results; --"
 def faulty(tmp_path_factory) -> FaultyRun:
     base = tmp_path_factory.mktemp("faulty")
     config = make_small_config(base / "config")
-    good_fhir = "".join(PATIENT % (i, i) for i in range(3)), "".join(OBSERVATION % (i, i, i) for i in range(3))
+    good_fhir = (
+        "".join(PATIENT % (i, i) for i in range(3)),
+        "".join(OBSERVATION % (i, i, i) for i in range(3)),
+    )
     corvale_row = "WF-c0000001;1970;F;WF02;CV-1;10/01/2026;CREA;88,4;µmol/l;F;11/01/2026\n"
     inbox = write_inbox(base, {
         f"{LAB}/results_{PERIOD}.csv": results_csv(0, 20, "WGH").replace("WGH00001", HOSTILE, 1),
@@ -423,12 +467,21 @@ def faulty(tmp_path_factory) -> FaultyRun:
     out = base / "out"
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(Path, "open", open_)
-        summary = run_month_plain(PERIOD, str(config), str(inbox), str(out), demo=True, revise=REASON)
+        summary = run_month_plain(
+            PERIOD, str(config), str(inbox), str(out), demo=True, revise=REASON
+        )
     denied.chmod(0o600)
     con = duckdb.connect(str(out / WAREHOUSE_FILE), read_only=True)
     try:
-        ledger = {p: (s, m, n) for p, s, m, n in rows(con, "select file_path, status, message, rows_read from ingest_files")}
-        assert rows(con, "select count(*) from lab_results where specimen_id = ?", [HOSTILE]) == [(1,)]
+        ledger = {
+            p: (s, m, n)
+            for p, s, m, n in rows(
+                con, "select file_path, status, message, rows_read from ingest_files"
+            )
+        }
+        assert rows(con, "select count(*) from lab_results where specimen_id = ?", [HOSTILE]) == [
+            (1,)
+        ]
     finally:
         con.close()
     return FaultyRun(inbox, out, summary, ledger)
@@ -445,17 +498,25 @@ def test_a_faulty_file_is_held_back_naming_the_file(faulty, rel, says):
     status, message, _ = faulty.ledger[rel]
     assert status == "held_back"
     assert says in message
-    assert str(faulty.inbox / rel.rsplit("/", 1)[0]) in message  # the file (or its Patient.ndjson) is named
+    assert (
+        str(faulty.inbox / rel.rsplit("/", 1)[0]) in message
+    )  # the file (or its Patient.ndjson) is named
     assert faulty.summary["held_back_files"][rel] == message
     assert "m.holloway" not in message  # the screen never quotes the value it refused
 
 
 def test_the_other_files_and_sources_publish(faulty):
-    for rel in (f"{LAB}/results_{PERIOD}.csv", f"{CORVALE}/export_202601.csv", f"{FHIR_LAB}/2026-01/Observation.ndjson"):
+    for rel in (
+        f"{LAB}/results_{PERIOD}.csv",
+        f"{CORVALE}/export_202601.csv",
+        f"{FHIR_LAB}/2026-01/Observation.ndjson",
+    ):
         status, _, read = faulty.ledger[rel]
         assert status == "ingested" and read > 0, rel
     assert (faulty.out / PERIOD / "district_ckd_prevalence.csv").is_file()
-    assert faulty.summary["exit_code"] == 1  # held-back files: exit code 1 (DEVELOPERS.md, Design notes, CLI contract)
+    assert (
+        faulty.summary["exit_code"] == 1
+    )  # held-back files: exit code 1 (DEVELOPERS.md, Design notes, CLI contract)
 
 
 def test_a_truncated_last_ndjson_record_is_a_rejected_row(faulty):
@@ -485,7 +546,7 @@ def test_a_config_that_tries_to_inject_sql_is_refused(small_config: Path, where:
         expected = "key 'id'"
     else:
         path = small_config / "regions" / "districts.csv"
-        path.write_text(path.read_text(encoding="utf-8") + f"\"{value}\",Evilton\n", encoding="utf-8")
+        path.write_text(path.read_text(encoding="utf-8") + f'"{value}",Evilton\n', encoding="utf-8")
         expected = "is not a plain code"
     with pytest.raises(ConfigError) as refused:
         load_settings(small_config)

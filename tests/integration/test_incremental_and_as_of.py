@@ -48,7 +48,9 @@ def _snapshot(out: Path, period: str) -> dict[str, list[tuple]]:
     con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
     try:
         snap = {
-            table: con.execute(f"select * from {table} where period = ? order by {order}", [period]).fetchall()
+            table: con.execute(
+                f"select * from {table} where period = ? order by {order}", [period]
+            ).fetchall()
             for table, order in PERIOD_TABLES.items()
         }
         snap["lab_results"] = con.execute(

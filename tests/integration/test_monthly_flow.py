@@ -73,7 +73,9 @@ def _table_dump(con: duckdb.DuckDBPyConnection, table: str) -> list[tuple]:
 def demo_run(prefect_harness, tmp_path_factory):
     out = tmp_path_factory.mktemp("demo_out")
     runner = CliRunner()
-    first = runner.invoke(app, ["demo", "--out", str(out)], env={"KIDNEYSURV_PSEUDONYM_KEY": DEMO_KEY})
+    first = runner.invoke(
+        app, ["demo", "--out", str(out)], env={"KIDNEYSURV_PSEUDONYM_KEY": DEMO_KEY}
+    )
     assert first.exit_code == 0, first.output
     con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
     yield out, first.output, con
@@ -142,7 +144,9 @@ def test_every_input_row_accounted_once(demo_run):
 
 def test_no_incoming_token_in_warehouse(demo_run):
     _, _, con = demo_run
-    token = con.execute("select count(*) from rejected_rows where raw_text like '%WF-%'").fetchall()[0][0]
+    token = con.execute(
+        "select count(*) from rejected_rows where raw_text like '%WF-%'"
+    ).fetchall()[0][0]
     assert token == 0
     columns = {c for (c,) in con.execute("select column_name from duckdb_columns()").fetchall()}
     assert "person_token" not in columns
@@ -205,11 +209,15 @@ def test_same_measurement_in_three_layouts_gives_one_canonical_value(prefect_har
             "select source_id, value, unit, outcome, count(distinct person_key) over () "
             "from result_versions where analyte = 'creatinine' order by source_id"
         ).fetchall()
-        accepted = con.execute("select source_id from lab_results where analyte = 'creatinine'").fetchall()
+        accepted = con.execute(
+            "select source_id from lab_results where analyte = 'creatinine'"
+        ).fetchall()
         egfr = con.execute("select distinct round(egfr, 9) from kidney_measures").fetchall()
     finally:
         con.close()
-    assert [r[0] for r in rows] == sorted(s.split("/")[0] for s in THREE_LAYOUTS if "Patient" not in s)
+    assert [r[0] for r in rows] == sorted(
+        s.split("/")[0] for s in THREE_LAYOUTS if "Patient" not in s
+    )
     assert {(round(v, 9), u) for _, v, u, _, _ in rows} == {(1.0, "mg/dL")}
     assert rows[0][4] == 1  # one person: the shared linkage token links the three labs
     # the same result from three sources is counted once (DEVELOPERS.md: reported first, then
@@ -238,13 +246,20 @@ def test_backfill_runs_in_order_skips_published_and_force_reruns(prefect_harness
     assert "already published" not in forced.output
     con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
     try:
-        periods = [p for (p,) in con.execute("select period from runs order by started_at, period").fetchall()]
+        periods = [
+            p
+            for (p,) in con.execute(
+                "select period from runs order by started_at, period"
+            ).fetchall()
+        ]
     finally:
         con.close()
     assert periods == ["2025-11", "2025-12", "2026-01", "2025-11"]
 
 
-def test_deployment_has_its_cron_and_a_triggered_run_publishes(prefect_harness, tmp_path, monkeypatch):
+def test_deployment_has_its_cron_and_a_triggered_run_publishes(
+    prefect_harness, tmp_path, monkeypatch
+):
     """The schedule exists with the configured cron, and triggering the deployment runs the flow
     (without waiting for the 3rd of the month): a Runner picks the run up once."""
     import asyncio
@@ -267,7 +282,9 @@ def test_deployment_has_its_cron_and_a_triggered_run_publishes(prefect_harness, 
     with get_client(sync_client=True) as client:
         stored = client.read_deployment(deployment_id)
     assert [s.schedule.cron for s in stored.schedules] == ["0 6 3 * *"]  # config/pipeline.yaml
-    flow_run = run_deployment(f"{FLOW_NAME}/{DEPLOYMENT_NAME}", parameters={"period": "2026-01"}, timeout=0)
+    flow_run = run_deployment(
+        f"{FLOW_NAME}/{DEPLOYMENT_NAME}", parameters={"period": "2026-01"}, timeout=0
+    )
     runner = Runner(query_seconds=1)
     runner.add_deployment(deployment)
     asyncio.run(runner.start(run_once=True))
@@ -277,11 +294,17 @@ def test_deployment_has_its_cron_and_a_triggered_run_publishes(prefect_harness, 
     manifest = json.loads((out / "2026-01" / "run_manifest.json").read_text())
     assert manifest["demo_key"] is False
     # no demo mark on the exports of a run with a real key
-    header = (out / "2026-01" / "district_ckd_prevalence.csv").read_text(encoding="utf-8").splitlines()[0]
+    header = (
+        (out / "2026-01" / "district_ckd_prevalence.csv")
+        .read_text(encoding="utf-8")
+        .splitlines()[0]
+    )
     assert not header.endswith("key_notice")
     import pyarrow.parquet as pq
 
-    assert b"kidneysurv.pseudonym_key" not in (pq.read_metadata(out / "2026-01" / "district_ckd_prevalence.parquet").metadata or {})
+    assert b"kidneysurv.pseudonym_key" not in (
+        pq.read_metadata(out / "2026-01" / "district_ckd_prevalence.parquet").metadata or {}
+    )
 
 
 def test_the_demo_publishes_no_blank_a_reader_can_narrow(demo_run):
@@ -301,12 +324,18 @@ def test_the_demo_publishes_no_blank_a_reader_can_narrow(demo_run):
     from pipeline.warehouse import fetch_frame
 
     out, _, _ = demo_run
-    con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)  # an earlier test may close its own
+    con = duckdb.connect(
+        str(out / "surveillance.duckdb"), read_only=True
+    )  # an earlier test may close its own
     tables = {}
     for spec in PUBLISHED_TABLES:
         order = list(spec.keys)
-        published = fetch_frame(con, f"select * from published.{spec.name} where period = ?", [PERIOD]).sort(order)
-        internal = fetch_frame(con, f"select * from main.{spec.name} where period = ?", [PERIOD]).sort(order)
+        published = fetch_frame(
+            con, f"select * from published.{spec.name} where period = ?", [PERIOD]
+        ).sort(order)
+        internal = fetch_frame(
+            con, f"select * from main.{spec.name} where period = ?", [PERIOD]
+        ).sort(order)
         assert set(published["suppression"].to_list()) <= {"", MARK}
         for column in spec.counts:
             assert not published[column].drop_nulls().is_between(1, 10).any(), (spec.name, column)

@@ -87,7 +87,9 @@ def chromium() -> str:
     return found
 
 
-def _run(binary: str, profile: Path, *args: str, timeout: float = 60) -> subprocess.CompletedProcess:
+def _run(
+    binary: str, profile: Path, *args: str, timeout: float = 60
+) -> subprocess.CompletedProcess:
     return subprocess.run([binary, *BASE_FLAGS, f"--user-data-dir={profile}", *args],
                           capture_output=True, timeout=timeout, check=False)  # fmt: skip
 
@@ -108,8 +110,10 @@ class DevTools:
         # move the browser's ends above 9, so that putting them on 3 and 4 cannot overwrite them
         to_browser_r, from_browser_w = (_high_fd(to_browser_r), _high_fd(from_browser_w))
         # a small Python shim puts our pipe ends on fds 3 and 4 and becomes the browser
-        shim = ("import os, sys; r, w = int(sys.argv[1]), int(sys.argv[2]); os.dup2(r, 3); os.dup2(w, 4); "
-                "os.close(r); os.close(w); os.execv(sys.argv[3], sys.argv[3:])")
+        shim = (
+            "import os, sys; r, w = int(sys.argv[1]), int(sys.argv[2]); os.dup2(r, 3); os.dup2(w, 4); "
+            "os.close(r); os.close(w); os.execv(sys.argv[3], sys.argv[3:])"
+        )
         self.proc = subprocess.Popen(
             [sys.executable, "-c", shim, str(to_browser_r), str(from_browser_w), binary, *BASE_FLAGS,
              f"--user-data-dir={profile}", "--remote-debugging-pipe", *args, "about:blank"],
@@ -161,7 +165,11 @@ class DevTools:
 
     def open_page(self, url: str) -> None:
         """Attach to the first tab, record its network, load ``url`` and wait for its load event."""
-        target = next(t for t in self.call("Target.getTargets", session=False)["targetInfos"] if t["type"] == "page")
+        target = next(
+            t
+            for t in self.call("Target.getTargets", session=False)["targetInfos"]
+            if t["type"] == "page"
+        )
         self.session = self.call("Target.attachToTarget", {"targetId": target["targetId"], "flatten": True},
                                  session=False)["sessionId"]  # fmt: skip
         self.call("Network.enable")
@@ -170,10 +178,16 @@ class DevTools:
         self.wait_for("Page.loadEventFired")
 
     def requested_urls(self) -> list[str]:
-        return [e["params"]["request"]["url"] for e in self.events if e.get("method") == "Network.requestWillBeSent"]
+        return [
+            e["params"]["request"]["url"]
+            for e in self.events
+            if e.get("method") == "Network.requestWillBeSent"
+        ]
 
     def evaluate(self, expression: str):
-        return self.call("Runtime.evaluate", {"expression": expression, "returnByValue": True})["result"]["value"]
+        return self.call("Runtime.evaluate", {"expression": expression, "returnByValue": True})[
+            "result"
+        ]["value"]
 
     def close(self) -> None:
         try:
@@ -198,8 +212,8 @@ def decode_png(data: bytes, max_rows: int | None = None) -> tuple[int, int, int,
     assert data[:8] == b"\x89PNG\r\n\x1a\n", "not a PNG"
     pos, idat, header = 8, [], None
     while pos < len(data):
-        (length,), kind = struct.unpack(">I", data[pos:pos + 4]), data[pos + 4:pos + 8]
-        body = data[pos + 8:pos + 8 + length]
+        (length,), kind = struct.unpack(">I", data[pos : pos + 4]), data[pos + 4 : pos + 8]
+        body = data[pos + 8 : pos + 8 + length]
         if kind == b"IHDR":
             header = struct.unpack(">IIBBBBB", body)
         elif kind == b"IDAT":
@@ -212,7 +226,10 @@ def decode_png(data: bytes, max_rows: int | None = None) -> tuple[int, int, int,
     stride = width * bpp
     previous, rows = bytearray(stride), []
     for y in range(min(height, max_rows or height)):
-        kind, line = raw[y * (stride + 1)], bytearray(raw[y * (stride + 1) + 1:(y + 1) * (stride + 1)])
+        kind, line = (
+            raw[y * (stride + 1)],
+            bytearray(raw[y * (stride + 1) + 1 : (y + 1) * (stride + 1)]),
+        )
         for x in range(stride):
             left = line[x - bpp] if x >= bpp else 0
             up, corner = previous[x], previous[x - bpp] if x >= bpp else 0
@@ -225,7 +242,9 @@ def decode_png(data: bytes, max_rows: int | None = None) -> tuple[int, int, int,
             elif kind == 4:
                 p = left + up - corner
                 pa, pb, pc = abs(p - left), abs(p - up), abs(p - corner)
-                line[x] = (line[x] + (left if pa <= pb and pa <= pc else up if pb <= pc else corner)) & 0xFF
+                line[x] = (
+                    line[x] + (left if pa <= pb and pa <= pc else up if pb <= pc else corner)
+                ) & 0xFF
         rows.append(bytes(line))
         previous = line
     return width, height, bpp, rows
@@ -240,9 +259,15 @@ def colours(rows: list[bytes], bpp: int) -> dict[tuple[int, int, int], int]:
     return out
 
 
-def near(seen: dict[tuple[int, int, int], int], target: tuple[int, int, int], tolerance: int = 6) -> int:
+def near(
+    seen: dict[tuple[int, int, int], int], target: tuple[int, int, int], tolerance: int = 6
+) -> int:
     """Pixels within ``tolerance`` per channel of ``target`` (room for colour management)."""
-    return sum(n for rgb, n in seen.items() if all(abs(a - b) <= tolerance for a, b in zip(rgb, target)))
+    return sum(
+        n
+        for rgb, n in seen.items()
+        if all(abs(a - b) <= tolerance for a, b in zip(rgb, target, strict=False))
+    )
 
 
 # --------------------------------------------------------------------------- the report
@@ -255,7 +280,9 @@ def report(tmp_path_factory) -> Path:
     config = base / "config"
     shutil.copytree(CONFIG_DIR, config)
     edit_pipeline_yaml(config, "quality_gate", "great_expectations", False)
-    run_month_plain(PERIOD, str(config), str(ROOT / "sample_extracts"), str(base / "out"), demo=True)
+    run_month_plain(
+        PERIOD, str(config), str(ROOT / "sample_extracts"), str(base / "out"), demo=True
+    )
     with duckdb.connect(str(base / "out" / "surveillance.duckdb"), read_only=True) as con:
         return write_report(con, PERIOD, base / "report.html")
 
@@ -277,7 +304,11 @@ def elements(text: str) -> list[tuple[str, dict]]:
 
 
 def chart_ids(dom: str) -> list[str]:
-    return [a.get("id") for tag, a in elements(dom) if tag == "svg" and "chart" in (a.get("class") or "")]
+    return [
+        a.get("id")
+        for tag, a in elements(dom)
+        if tag == "svg" and "chart" in (a.get("class") or "")
+    ]
 
 
 # --------------------------------------------------------------------------- tests
@@ -382,8 +413,12 @@ def test_screenshot_for_review(chromium, report, tmp_path):
     assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 200_000 and height > 3000
 
 
-NEW_TABLES = ("table-undetected", "table-sensitivity", "table-equation-ckd_epi_2009_creatinine",
-              "table-equation-districts")
+NEW_TABLES = (
+    "table-undetected",
+    "table-sensitivity",
+    "table-equation-ckd_epi_2009_creatinine",
+    "table-equation-districts",
+)
 
 
 @pytest.mark.parametrize("media", ["screen", "print"])
@@ -396,18 +431,23 @@ def test_new_sections_render_and_every_table_fits_the_page(chromium, report, tmp
         browser.open_page(report.as_uri())
         browser.call("Emulation.setEmulatedMedia", {"media": media})
         if media == "print":  # an A4 page less its margins is about 680 CSS px wide
-            browser.call("Emulation.setDeviceMetricsOverride", {"width": 680, "height": 1000,
-                                                                "deviceScaleFactor": 1, "mobile": False})
-        state = json.loads(browser.evaluate(
-            "JSON.stringify({"
-            " tables: Object.fromEntries([...document.querySelectorAll('table')].map(t => [t.id,"
-            "   {width: t.getBoundingClientRect().width, right: t.getBoundingClientRect().right,"
-            "    rows: t.rows.length}])),"
-            " page: document.querySelector('main').getBoundingClientRect().right,"
-            " reasons: [...document.querySelectorAll('td.reasons')].map(c => c.getBoundingClientRect().right),"
-            " headings: [...document.querySelectorAll('h2, h3')].map(h => h.textContent),"
-            " maps: [...document.querySelectorAll('svg.map')].map(m => [m.id, m.getBBox().width,"
-            "   m.querySelectorAll('path.district').length, m.querySelectorAll('path.blanked').length])})"))
+            browser.call(
+                "Emulation.setDeviceMetricsOverride",
+                {"width": 680, "height": 1000, "deviceScaleFactor": 1, "mobile": False},
+            )
+        state = json.loads(
+            browser.evaluate(
+                "JSON.stringify({"
+                " tables: Object.fromEntries([...document.querySelectorAll('table')].map(t => [t.id,"
+                "   {width: t.getBoundingClientRect().width, right: t.getBoundingClientRect().right,"
+                "    rows: t.rows.length}])),"
+                " page: document.querySelector('main').getBoundingClientRect().right,"
+                " reasons: [...document.querySelectorAll('td.reasons')].map(c => c.getBoundingClientRect().right),"
+                " headings: [...document.querySelectorAll('h2, h3')].map(h => h.textContent),"
+                " maps: [...document.querySelectorAll('svg.map')].map(m => [m.id, m.getBBox().width,"
+                "   m.querySelectorAll('path.district').length, m.querySelectorAll('path.blanked').length])})"
+            )
+        )
     finally:
         browser.close()
     for table in NEW_TABLES:
@@ -415,8 +455,15 @@ def test_new_sections_render_and_every_table_fits_the_page(chromium, report, tmp
     assert "Expected cases not yet found" in state["headings"]
     assert "If the eGFR equation changed" in state["headings"]
     # three maps of the 12 districts, drawn, with hatched (blanked) districts among them
-    assert [m[0] for m in state["maps"]] == ["map-ckd-standardised", "map-coverage", "map-undetected"]
-    assert all(width > 200 and districts == 12 and blanked >= 1 for _, width, districts, blanked in state["maps"])
+    assert [m[0] for m in state["maps"]] == [
+        "map-ckd-standardised",
+        "map-coverage",
+        "map-undetected",
+    ]
+    assert all(
+        width > 200 and districts == 12 and blanked >= 1
+        for _, width, districts, blanked in state["maps"]
+    )
     for table, box in state["tables"].items():
         assert box["right"] <= state["page"] + 1, (media, table, box, state["page"])
     assert state["reasons"] and max(state["reasons"]) <= state["page"] + 1

@@ -31,7 +31,9 @@ def inbox(tmp_path_factory):
     months = ("2024-11", "2024-12", "2025-01", "2025-02", "2025-03", "2025-04")
     for source in SOURCES:
         for path in (SAMPLES / source).rglob("*"):
-            if path.is_file() and any(m in path.as_posix() or m.replace("-", "") in path.name for m in months):
+            if path.is_file() and any(
+                m in path.as_posix() or m.replace("-", "") in path.name for m in months
+            ):
                 target = root / path.relative_to(SAMPLES)
                 target.parent.mkdir(parents=True, exist_ok=True)
                 shutil.copy2(path, target)
@@ -39,7 +41,9 @@ def inbox(tmp_path_factory):
 
 
 def _run(inbox: Path, out: Path, executor: str) -> tuple[dict[str, list[tuple]], dict[str, str]]:
-    run_month_plain(PERIOD, str(REPO / "config"), str(inbox), str(out), demo=True, executor=executor)
+    run_month_plain(
+        PERIOD, str(REPO / "config"), str(inbox), str(out), demo=True, executor=executor
+    )
     con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
     try:
         tables = {t: con.execute(f"select * from {t} order by all").fetchall() for t in TABLES}

@@ -21,7 +21,7 @@ def _listed_commands(output: str) -> list[str]:
     lines = output.splitlines()
     start = next(i for i, line in enumerate(lines) if line.strip() == "Commands:")
     names = []
-    for line in lines[start + 1:]:
+    for line in lines[start + 1 :]:
         if not line.strip():
             break
         if line.startswith("  ") and not line.startswith("   "):  # an entry, not a wrapped line
@@ -33,7 +33,9 @@ def test_help_lists_the_commands():
     result = runner.invoke(app, ["--help"])
     assert result.exit_code == 0
     # the names themselves, not a word that happens to appear in a description
-    assert {"run", "demo", "backfill", "reprocess", "schedule", "sources"} <= set(_listed_commands(result.output))
+    assert {"run", "demo", "backfill", "reprocess", "schedule", "sources"} <= set(
+        _listed_commands(result.output)
+    )
     sources = runner.invoke(app, ["sources", "--help"])
     assert {"check", "list"} <= set(_listed_commands(sources.output))
 
@@ -113,8 +115,20 @@ def test_bad_period_is_a_usage_error():
 
 def test_run_without_key_refuses_to_start(tmp_path, monkeypatch):
     monkeypatch.delenv("KIDNEYSURV_PSEUDONYM_KEY", raising=False)
-    result = runner.invoke(app, ["run", "--period", "2026-10", "--config", str(REPO / "config"),
-                                 "--inbox", str(REPO / "sample_extracts"), "--out", str(tmp_path)])
+    result = runner.invoke(
+        app,
+        [
+            "run",
+            "--period",
+            "2026-10",
+            "--config",
+            str(REPO / "config"),
+            "--inbox",
+            str(REPO / "sample_extracts"),
+            "--out",
+            str(tmp_path),
+        ],
+    )
     assert result.exit_code == 2
     assert "KIDNEYSURV_PSEUDONYM_KEY" in result.output
     assert not (tmp_path / "surveillance.duckdb").exists()

@@ -8,8 +8,10 @@ from pathlib import Path
 
 from tests.conftest import rows, run_month, write_inbox
 
-HEADER = ("person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status,"
-          "reported_at")
+HEADER = (
+    "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status,"
+    "reported_at"
+)
 LINES = [
     # HbA1c 7.0 % on 2025-06-01 confirmed by a second on 06-15 (ADA: a second abnormal test),
     # reported the next day: diabetes from June
@@ -23,11 +25,19 @@ LINES = [
 
 
 def test_each_month_end_counts_what_was_reported_by_then(tmp_path: Path, small_config: Path):
-    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join([HEADER, *LINES]) + "\n"})
+    inbox = write_inbox(
+        tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join([HEADER, *LINES]) + "\n"}
+    )
     with run_month(small_config, inbox, tmp_path / "out", period="2026-01") as con:
-        got = {m: rest for m, *rest in rows(con, "select as_of_month, persons_with_diabetes, with_egfr, with_acr, "
-                                                 "with_egfr_and_acr from main.region_coverage_trend "
-                                                 "where period = '2026-01' order by as_of_month")}
+        got = {
+            m: rest
+            for m, *rest in rows(
+                con,
+                "select as_of_month, persons_with_diabetes, with_egfr, with_acr, "
+                "with_egfr_and_acr from main.region_coverage_trend "
+                "where period = '2026-01' order by as_of_month",
+            )
+        }
     assert list(got) == [f"2025-{m:02d}" for m in range(2, 13)] + ["2026-01"]
     assert got["2025-05"] == [0, 0, 0, 0]  # no diabetes evidence yet
     assert got["2025-06"] == [1, 0, 0, 0]  # diabetes, nothing else reported

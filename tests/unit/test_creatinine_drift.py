@@ -28,7 +28,9 @@ def make_rows(seed: int) -> list[tuple]:
     for month in MONTHS:
         for source in ("lab_a", "lab_b"):
             for _ in range(rnd.randint(0, 7)):  # some months empty: windows of 0, odd, even counts
-                value = rnd.choice([0.7, 0.8, 0.85, 0.9, 1.0, 1.1, 1.25]) + rnd.choice([0.0, 0.0, 0.013])
+                value = rnd.choice([0.7, 0.8, 0.85, 0.9, 1.0, 1.1, 1.25]) + rnd.choice(
+                    [0.0, 0.0, 0.013]
+                )
                 rows.append((source, month, "F", 50, value))
     return rows
 
@@ -51,7 +53,7 @@ def expected(rows: list[tuple]) -> dict[tuple, tuple]:
         for i, month in enumerate(MONTHS):
             if not any(r[0] == source and r[1] == month for r in rows):
                 continue  # a cell exists only for a month with results
-            window = MONTHS[max(0, i - 6):i]
+            window = MONTHS[max(0, i - 6) : i]
             values = [r[4] for r in rows if r[0] == source and r[1] in window]
             median = round(statistics.median(values), 3) if values else None
             out[(source, month.strftime("%Y-%m"))] = (len(values), median)

@@ -25,9 +25,9 @@ from __future__ import annotations
 
 import datetime as dt
 from collections import Counter
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Callable
 
 import duckdb
 import pytest
@@ -43,7 +43,9 @@ HEADER = "person_token,birth_year,sex,district_code,specimen_id,collected_date,t
 
 #: A good file put beside every whole-file fault: it must still be ingested.
 COMPANION = f"{LAB}/companion_2025-06.csv"
-COMPANION_TEXT = HEADER + "\nWF-def00009,1970,M,WF02,C1,2025-06-02,2160-0,1.1,mg/dL,final,2025-06-03\n"
+COMPANION_TEXT = (
+    HEADER + "\nWF-def00009,1970,M,WF02,C1,2025-06-02,2160-0,1.1,mg/dL,final,2025-06-03\n"
+)
 #: A field over the csv module's default limit of 131072 characters (Python docs, csv.field_size_limit).
 OVERSIZED = (HEADER + "\nWF-def00001,1960,F,WF01,OK1,2025-06-02,2160-0,1.0,mg/dL,final,2025-06-03\n"
              + "WF-def00002,1960,F,WF01,D1,2025-06-02,2160-0,1.0,mg/dL,final,\"" + "x" * 140_000 + "\"\n")  # fmt: skip
@@ -75,14 +77,28 @@ def row_case(name: str, lines: dict[int, str], *, check: Check | None = None, bu
              folder: str = LAB, config: str = "small") -> Case:  # fmt: skip
     """One standard-layout (or delimited) file; line 2 is a clean control row."""
     path = f"{folder}/{name}.csv"
-    return Case(name, (("2025-06", {path: f"{name}.csv"}),), {path: lines}, config=config, check=check, bug=bug)
+    return Case(
+        name,
+        (("2025-06", {path: f"{name}.csv"}),),
+        {path: lines},
+        config=config,
+        check=check,
+        bug=bug,
+    )
 
 
-def fault_case(name: str, words: tuple[str, ...], *, content: bytes | None = None, bug: str | None = None) -> Case:
+def fault_case(
+    name: str, words: tuple[str, ...], *, content: bytes | None = None, bug: str | None = None
+) -> Case:
     """One standard-layout file with a whole-file fault, beside a good companion file."""
     path = f"{LAB}/{name}.csv"
-    files = {path: content if content is not None else f"{name}.csv", COMPANION: COMPANION_TEXT.encode()}
-    return Case(name, (("2025-06", files),), {COMPANION: {2: "accepted"}}, {path: (words, path)}, bug=bug)
+    files = {
+        path: content if content is not None else f"{name}.csv",
+        COMPANION: COMPANION_TEXT.encode(),
+    }
+    return Case(
+        name, (("2025-06", files),), {COMPANION: {2: "accepted"}}, {path: (words, path)}, bug=bug
+    )
 
 
 def fhir_case(name: str, lines: dict[int, str] | None = None, *, fault: tuple[tuple[str, ...], str] | None = None,
@@ -94,7 +110,9 @@ def fhir_case(name: str, lines: dict[int, str] | None = None, *, fault: tuple[tu
         files[f"{FHIR}/2025-06/Patient.ndjson"] = f"{name}/Patient.ndjson"
     if fault is not None:
         files[COMPANION] = COMPANION_TEXT.encode()
-        return Case(name, (("2025-06", files),), {COMPANION: {2: "accepted"}}, {obs: fault}, bug=bug)
+        return Case(
+            name, (("2025-06", files),), {COMPANION: {2: "accepted"}}, {obs: fault}, bug=bug
+        )
     return Case(name, (("2025-06", files),), {obs: lines or {}}, bug=bug)
 
 
@@ -110,7 +128,7 @@ def measure(con, path: str, line: int) -> dict:
     names = [d[0] for d in found.description]
     got = found.fetchall()
     assert len(got) == 1, f"{path}:{line}: {len(got)} kidney_measures rows"
-    return dict(zip(names, got[0]))
+    return dict(zip(names, got[0], strict=False))
 
 
 def result(con, path: str, line: int, table: str = "lab_results") -> dict:
@@ -122,7 +140,7 @@ def result(con, path: str, line: int, table: str = "lab_results") -> dict:
     names = [d[0] for d in found.description]
     got = found.fetchall()
     assert len(got) == 1, f"{path}:{line}: {len(got)} {table} rows"
-    return dict(zip(names, got[0]))
+    return dict(zip(names, got[0], strict=False))
 
 
 def std(name: str) -> str:
@@ -181,7 +199,11 @@ def check_acr_lt3(con):
 def check_acr_ge300_mg_g(con):
     m = measure(con, std("acr_ge300_mg_g"), 3)
     # >= 300 mg/g admits 300 (A2) and above (A3): no single category
-    assert (m["acr_comparator"], m["a_category"], m["acr_reason"]) == (">=", None, "censored_ambiguous")
+    assert (m["acr_comparator"], m["a_category"], m["acr_reason"]) == (
+        ">=",
+        None,
+        "censored_ambiguous",
+    )
 
 
 def check_comparator_with_space(con):
@@ -216,12 +238,20 @@ CASES = [
     # ---- values
     row_case("leap_day_non_leap_year", {2: A, 3: "invalid_date"}),  # 2025-02-29 does not exist
     row_case("acr_ge300_mg_mmol", {2: A, 3: A}, check=check_ge300_mg_mmol),
-    row_case("decimal_comma_thousands_dot", {2: A, 3: A}, folder=CORVALE, config="thousands", check=check_thousands),
+    row_case(
+        "decimal_comma_thousands_dot",
+        {2: A, 3: A},
+        folder=CORVALE,
+        config="thousands",
+        check=check_thousands,
+    ),
     row_case("value_zero", {2: A, 3: "out_of_range"}),  # creatinine 0.1-25 mg/dL (pipeline.yaml)
     row_case("value_negative", {2: A, 3: "out_of_range"}),
     row_case("value_nan", {2: A, 3: "not_numeric"}),
     row_case("value_inf", {2: A, 3: "not_numeric"}),
-    row_case("decimal_comma_in_dot_source", {2: A, 3: "not_numeric"}),  # "1,5" where '.' is the mark
+    row_case(
+        "decimal_comma_in_dot_source", {2: A, 3: "not_numeric"}
+    ),  # "1,5" where '.' is the mark
     row_case("comparator_with_space", {2: A, 3: A}, check=check_comparator_with_space),
     row_case("censored_creatinine", {2: A, 3: A}, check=check_censored_creatinine),
     row_case("acr_lt3_mg_mmol", {2: A, 3: A}, check=check_acr_lt3),
@@ -242,58 +272,116 @@ CASES = [
     row_case("birth_year_blank", {2: A, 3: "invalid_birth_year"}),
     row_case("future_date", {2: A, 3: "future_date"}),
     row_case("date_unparsable_text", {2: A, 3: "invalid_date"}),
-    row_case("date_wrong_format_for_source", {2: A, 3: "invalid_date"}),  # dd/mm/yyyy, source is ISO
-    row_case("collected_with_time", {2: A, 3: A}, check=check_collected_with_time),  # ISO 8601 date-time
+    row_case(
+        "date_wrong_format_for_source", {2: A, 3: "invalid_date"}
+    ),  # dd/mm/yyyy, source is ISO
+    row_case(
+        "collected_with_time", {2: A, 3: A}, check=check_collected_with_time
+    ),  # ISO 8601 date-time
     row_case("unknown_district", {2: A, 3: A}, check=check_unknown_district),
-    Case("unknown_district_summary", (("2025-06", {std("unknown_district"): "unknown_district.csv"}),),
-         {std("unknown_district"): {2: A, 3: A}}, check=check_unknown_district_summary),
+    Case(
+        "unknown_district_summary",
+        (("2025-06", {std("unknown_district"): "unknown_district.csv"}),),
+        {std("unknown_district"): {2: A, 3: A}},
+        check=check_unknown_district_summary,
+    ),
     row_case("unknown_sex", {2: A, 3: A}, check=check_unknown_sex),
-    row_case("repeated_header_row", {2: A, 3: "invalid_report_date", 4: A}),  # "reported_at" is no date
+    row_case(
+        "repeated_header_row", {2: A, 3: "invalid_report_date", 4: A}
+    ),  # "reported_at" is no date
     # ---- fields and lines
     row_case("too_many_fields", {2: A, 3: "wrong_field_count"}),
     row_case("too_few_fields", {2: A, 3: "wrong_field_count"}),
     row_case("truncated_last_line", {2: A, 3: A, 4: "wrong_field_count"}),
     row_case("extra_unknown_column", {2: A, 3: A}),
-    row_case("crlf_line_ends", {2: A, 3: A, 4: A},  # RFC 4180 line ends
-             check=specimens_by_line(std("crlf_line_ends"), {2: "OK1", 3: "D1", 4: "D2"})),
-    row_case("cr_only_line_ends", {2: A, 3: A, 4: A},
-             check=specimens_by_line(std("cr_only_line_ends"), {2: "OK1", 3: "D1", 4: "D2"})),
+    row_case(
+        "crlf_line_ends",
+        {2: A, 3: A, 4: A},  # RFC 4180 line ends
+        check=specimens_by_line(std("crlf_line_ends"), {2: "OK1", 3: "D1", 4: "D2"}),
+    ),
+    row_case(
+        "cr_only_line_ends",
+        {2: A, 3: A, 4: A},
+        check=specimens_by_line(std("cr_only_line_ends"), {2: "OK1", 3: "D1", 4: "D2"}),
+    ),
     row_case("blank_line_between_rows", {2: A, 4: A}),  # a blank line is not a row
-    row_case("quoted_field_with_delimiter", {2: A, 3: A},  # RFC 4180
-             check=specimens_by_line(std("quoted_field_with_delimiter"), {2: "OK1", 3: "D1,a"})),
-    row_case("quoted_newline_in_field", {2: A, 3: A, 5: A},  # RFC 4180; a row is numbered by its first line
-             check=specimens_by_line(std("quoted_newline_in_field"), {2: "OK1", 3: "D1\nsecond line", 5: "D2"})),
+    row_case(
+        "quoted_field_with_delimiter",
+        {2: A, 3: A},  # RFC 4180
+        check=specimens_by_line(std("quoted_field_with_delimiter"), {2: "OK1", 3: "D1,a"}),
+    ),
+    row_case(
+        "quoted_newline_in_field",
+        {2: A, 3: A, 5: A},  # RFC 4180; a row is numbered by its first line
+        check=specimens_by_line(
+            std("quoted_newline_in_field"), {2: "OK1", 3: "D1\nsecond line", 5: "D2"}
+        ),
+    ),
     row_case("bom_header", {2: A, 3: A}),  # the BOM is not part of the first column name
     # ---- versions and copies
-    row_case("amended_then_cancelled", {2: A, 3: "superseded", 4: "superseded", 5: "withdrawn"},
-             check=check_amended_then_cancelled),
+    row_case(
+        "amended_then_cancelled",
+        {2: A, 3: "superseded", 4: "superseded", 5: "withdrawn"},
+        check=check_amended_then_cancelled,
+    ),
     row_case("entered_in_error_after_final", {2: A, 3: "superseded", 4: "withdrawn"}),
     row_case("same_row_twice", {2: A, 3: A, 4: "duplicate"}),
     row_case("preliminary_never_final", {2: A, 3: "pending"}),
-    Case("same_file_two_names",
-         (("2025-06", {std("same_file_two_names"): "same_file_two_names.csv",
-                       f"{LAB}/same_file_two_names_copy.csv": "same_file_two_names.csv"}),),
-         {std("same_file_two_names"): {2: A, 3: A}},
-         duplicate_of={f"{LAB}/same_file_two_names_copy.csv": std("same_file_two_names")}),
-    Case(RESENT,
-         (("2025-06", {f"{LAB}/results_2025-06.csv": f"{RESENT}/results_2025-06.csv"}),
-          ("2025-07", {f"{LAB}/results_2025-07.csv": f"{RESENT}/results_2025-07.csv"})),
-         {f"{LAB}/results_2025-06.csv": {2: A, 3: A}, f"{LAB}/results_2025-07.csv": {2: A, 3: "duplicate"}}),
+    Case(
+        "same_file_two_names",
+        (
+            (
+                "2025-06",
+                {
+                    std("same_file_two_names"): "same_file_two_names.csv",
+                    f"{LAB}/same_file_two_names_copy.csv": "same_file_two_names.csv",
+                },
+            ),
+        ),
+        {std("same_file_two_names"): {2: A, 3: A}},
+        duplicate_of={f"{LAB}/same_file_two_names_copy.csv": std("same_file_two_names")},
+    ),
+    Case(
+        RESENT,
+        (
+            ("2025-06", {f"{LAB}/results_2025-06.csv": f"{RESENT}/results_2025-06.csv"}),
+            ("2025-07", {f"{LAB}/results_2025-07.csv": f"{RESENT}/results_2025-07.csv"}),
+        ),
+        {
+            f"{LAB}/results_2025-06.csv": {2: A, 3: A},
+            f"{LAB}/results_2025-07.csv": {2: A, 3: "duplicate"},
+        },
+    ),
     # ---- whole-file faults
     fault_case("latin1_bytes", ("line 3", "not utf-8")),
     fault_case("utf16_file", ("line 1", "not utf-8")),
     fault_case("wrong_delimiter", ("delimiter ','",)),
-    fault_case("header_typo_collected_dat", ("missing required column", "'collected_date'", "'collected_dat'", "typo")),
+    fault_case(
+        "header_typo_collected_dat",
+        ("missing required column", "'collected_date'", "'collected_dat'", "typo"),
+    ),
     fault_case("missing_required_column", ("missing required column", "'unit'")),
     fault_case("header_only", ("header but no rows",)),
     fault_case("empty_file", ("empty",)),
     fault_case("oversized_field", ("line",), content=OVERSIZED.encode()),
-    Case("same_faulty_file_two_names",
-         (("2025-06", {std("latin1_bytes"): "latin1_bytes.csv", f"{LAB}/latin1_bytes_copy.csv": "latin1_bytes.csv",
-                       COMPANION: COMPANION_TEXT.encode()}),),
-         {COMPANION: {2: A}},
-         {std("latin1_bytes"): (("not utf-8",), std("latin1_bytes")),
-          f"{LAB}/latin1_bytes_copy.csv": (("not utf-8",), f"{LAB}/latin1_bytes_copy.csv")}),
+    Case(
+        "same_faulty_file_two_names",
+        (
+            (
+                "2025-06",
+                {
+                    std("latin1_bytes"): "latin1_bytes.csv",
+                    f"{LAB}/latin1_bytes_copy.csv": "latin1_bytes.csv",
+                    COMPANION: COMPANION_TEXT.encode(),
+                },
+            ),
+        ),
+        {COMPANION: {2: A}},
+        {
+            std("latin1_bytes"): (("not utf-8",), std("latin1_bytes")),
+            f"{LAB}/latin1_bytes_copy.csv": (("not utf-8",), f"{LAB}/latin1_bytes_copy.csv"),
+        },
+    ),
     # ---- FHIR R4 bulk export
     fhir_case("fhir_truncated_last_line", {1: A, 2: A, 3: "malformed_record"}),
     fhir_case("fhir_missing_patient_file", fault=(("Patient.ndjson is missing",), FHIR_OBS)),
@@ -303,7 +391,9 @@ CASES = [
     fhir_case("fhir_status_not_text", {1: A, 2: "malformed_record"}),
     fhir_case("fhir_effective_date_not_text", {1: A, 2: "malformed_record"}),
     fhir_case("fhir_line_separator_in_text", {1: A, 2: A, 3: A}),
-    fhir_case("fhir_patient_line_not_an_object", fault=(("line 2",), f"{FHIR}/2025-06/Patient.ndjson")),
+    fhir_case(
+        "fhir_patient_line_not_an_object", fault=(("line 2",), f"{FHIR}/2025-06/Patient.ndjson")
+    ),
 ]
 
 
@@ -318,7 +408,9 @@ def test_corpus_is_large_and_has_unique_ids():
 
 
 def test_every_fixture_is_used():
-    used = {str(v) for c in CASES for _, files in c.runs for v in files.values() if isinstance(v, str)}
+    used = {
+        str(v) for c in CASES for _, files in c.runs for v in files.values() if isinstance(v, str)
+    }
     used_top = {u.split("/")[0] for u in used}
     on_disk = {p.name for p in DEFECTS.iterdir()}
     assert on_disk == used_top
@@ -333,7 +425,9 @@ def configs(tmp_path_factory) -> dict[str, Path]:
     small = make_small_config(base / "small")
     thousands = make_small_config(base / "thousands")
     source = thousands / "sources" / f"{CORVALE}.yaml"
-    source.write_text(source.read_text(encoding="utf-8") + 'thousands_separator: "."\n', encoding="utf-8")
+    source.write_text(
+        source.read_text(encoding="utf-8") + 'thousands_separator: "."\n', encoding="utf-8"
+    )
     return {"small": small, "thousands": thousands}
 
 
@@ -352,7 +446,10 @@ def outcomes_by_line(con, path: str) -> dict[int, str]:
 def assert_ledger_balances(con) -> dict[str, dict]:
     cols = ["file_path", "status", "message", "rows_read", "rows_accepted", "rows_rejected",
             "rows_superseded", "rows_duplicate", "rows_withdrawn", "rows_pending"]  # fmt: skip
-    ledger = {r[0]: dict(zip(cols, r)) for r in rows(con, f"select {', '.join(cols)} from ingest_files")}
+    ledger = {
+        r[0]: dict(zip(cols, r, strict=False))
+        for r in rows(con, f"select {', '.join(cols)} from ingest_files")
+    }
     for path, f in ledger.items():
         accounted = sum(f[c] for c in cols[4:])
         assert f["rows_read"] == accounted, f"{path}: read {f['rows_read']}, accounted {accounted}"
@@ -363,7 +460,9 @@ def assert_ledger_balances(con) -> dict[str, dict]:
 def test_defect(case: Case, configs: dict[str, Path], tmp_path: Path):
     out = tmp_path / "out"
     for period, files in case.runs:
-        content = {rel: src if isinstance(src, bytes) else fixture(src) for rel, src in files.items()}
+        content = {
+            rel: src if isinstance(src, bytes) else fixture(src) for rel, src in files.items()
+        }
         inbox = write_inbox(tmp_path, content)
         run_month(configs[case.config], inbox, out, period=period).close()
     with duckdb.connect(str(out / "surveillance.duckdb"), read_only=True) as con:
@@ -399,7 +498,13 @@ def test_defect(case: Case, configs: dict[str, Path], tmp_path: Path):
 # --------------------------------------------------------------------------- both readers
 
 #: (case id, inbox path, config) of every delimited file of the corpus
-CSV_FILES = [(c.id, rel, c.config) for c in CASES for _, files in c.runs for rel in files if rel.endswith(".csv")]
+CSV_FILES = [
+    (c.id, rel, c.config)
+    for c in CASES
+    for _, files in c.runs
+    for rel in files
+    if rel.endswith(".csv")
+]
 
 
 def _content(case_id: str, rel: str) -> bytes:
@@ -408,7 +513,11 @@ def _content(case_id: str, rel: str) -> bytes:
     return src if isinstance(src, bytes) else fixture(src)
 
 
-@pytest.mark.parametrize(("case_id", "rel", "config"), CSV_FILES, ids=[f"{c}:{r.split('/')[-1]}" for c, r, _ in CSV_FILES])
+@pytest.mark.parametrize(
+    ("case_id", "rel", "config"),
+    CSV_FILES,
+    ids=[f"{c}:{r.split('/')[-1]}" for c, r, _ in CSV_FILES],
+)
 def test_both_readers_land_the_same_rows(case_id, rel, config, configs, tmp_path):
     """The bulk reader (a file without quotes split in polars) and the csv module give the same
     landed rows, notes and faults for every file of the corpus (DEVELOPERS.md: row accounting

@@ -19,8 +19,14 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.optimize import linprog
 
-from pipeline.disclosure import (PUBLISHED_TABLES, DisclosureError, PublishedTable, disclose_stage, suppress,
-                                 suppress_tables)
+from pipeline.disclosure import (
+    PUBLISHED_TABLES,
+    DisclosureError,
+    PublishedTable,
+    disclose_stage,
+    suppress,
+    suppress_tables,
+)
 from pipeline.periods import Period
 from pipeline.settings import DisclosureSettings
 from tests.conftest import rows, run_month, write_inbox
@@ -39,13 +45,17 @@ def prevalence_frame(cells: list[dict]) -> pl.DataFrame:
     out = []
     for cell in cells:
         row = {**base, **cell}
-        row["ckd_share_of_tested"] = round(row["persons_ckd"] / row["persons_tested"], 4) if row["persons_tested"] else None
+        row["ckd_share_of_tested"] = (
+            round(row["persons_ckd"] / row["persons_tested"], 4) if row["persons_tested"] else None
+        )
         row["ckd_per_1000_residents"] = round(1000 * row["persons_ckd"] / row["population"], 2)
         out.append(row)
     return pl.DataFrame(out)
 
 
-@pytest.mark.parametrize(("count", "blanked"), [(0, False), (1, True), (5, True), (10, True), (11, False), (250, False)])
+@pytest.mark.parametrize(
+    ("count", "blanked"), [(0, False), (1, True), (5, True), (10, True), (11, False), (250, False)]
+)
 def test_counts_1_to_10_are_blanked_0_and_11_kept(count, blanked):
     out = suppress(prevalence_frame([{"persons_ckd_g3_g5": count}]), PREVALENCE, RULES)
     value = out["persons_ckd_g3_g5"].item()
@@ -56,7 +66,11 @@ def test_counts_1_to_10_are_blanked_0_and_11_kept(count, blanked):
 
 
 def test_rate_on_a_suppressed_count_is_blanked():
-    out = suppress(prevalence_frame([{"persons_ckd": 4}, {"persons_tested": 9, "persons_ckd": 0}]), PREVALENCE, RULES)
+    out = suppress(
+        prevalence_frame([{"persons_ckd": 4}, {"persons_tested": 9, "persons_ckd": 0}]),
+        PREVALENCE,
+        RULES,
+    )
     first, second = out.iter_rows(named=True)
     # numerator small: both rates built on it go
     assert first["persons_ckd"] is None
@@ -77,7 +91,9 @@ def test_nothing_small_nothing_blanked():
 
 
 def test_configured_band_is_used():
-    out = suppress(prevalence_frame([{"persons_ckd_g3_g5": 6}]), PREVALENCE, DisclosureSettings(suppress_max=5))
+    out = suppress(
+        prevalence_frame([{"persons_ckd_g3_g5": 6}]), PREVALENCE, DisclosureSettings(suppress_max=5)
+    )
     assert out["persons_ckd_g3_g5"].item() == 6
 
 
@@ -101,8 +117,12 @@ def test_property_no_published_count_in_1_to_10(cells):
         # a count outside 1..10 is published unchanged
         kept = frame[column].filter(~frame[column].is_between(1, 10))
         assert published.to_list() == kept.to_list()
-    small = frame.select(pl.any_horizontal(pl.col(c).is_between(1, 10) for c in COVERAGE.rates["share_with_both"]))
-    assert out.filter(small.to_series())["share_with_both"].null_count() == int(small.to_series().sum())
+    small = frame.select(
+        pl.any_horizontal(pl.col(c).is_between(1, 10) for c in COVERAGE.rates["share_with_both"])
+    )
+    assert out.filter(small.to_series())["share_with_both"].null_count() == int(
+        small.to_series().sum()
+    )
 
 
 def test_suppressed_cell_cannot_be_recovered_from_the_total():
@@ -132,7 +152,12 @@ def sum_groups(frame: pl.DataFrame, table) -> list[tuple[int, list[int]]]:
     index = {k: i for i, k in enumerate(keyed)}
     if table is COVERAGE:
         return [(index[("ALL",)], [i for i, k in enumerate(keyed) if k != ("ALL",)])]
-    groups = [(index[("ALL", "ALL", "ALL")], [i for i, k in enumerate(keyed) if k[0] != "ALL" and k[1] == "ALL"])]
+    groups = [
+        (
+            index[("ALL", "ALL", "ALL")],
+            [i for i, k in enumerate(keyed) if k[0] != "ALL" and k[1] == "ALL"],
+        )
+    ]
     for district in sorted({k[0] for k in keyed} - {"ALL"}):
         cells = [i for i, k in enumerate(keyed) if k[0] == district and k[1] != "ALL"]
         groups.append((index[(district, "ALL", "ALL")], cells))
@@ -196,28 +221,41 @@ def table_frame(table, cells: dict[tuple, tuple[int, ...]]) -> pl.DataFrame:
     """A table as the SQL builds it: the given cells, every total, and the rates."""
     rows = []
     if table is COVERAGE:
-        totals = {("ALL",): tuple(map(sum, zip(*cells.values())))}
+        totals = {("ALL",): tuple(map(sum, zip(*cells.values(), strict=False)))}
     else:
         totals = {}
         for (district, _, _), counts in cells.items():
             key = (district, "ALL", "ALL")
-            totals[key] = tuple(map(sum, zip(totals.get(key, (0,) * len(counts)), counts)))
-        totals[("ALL", "ALL", "ALL")] = tuple(map(sum, zip(*cells.values())))
+            totals[key] = tuple(
+                map(sum, zip(totals.get(key, (0,) * len(counts)), counts, strict=False))
+            )
+        totals[("ALL", "ALL", "ALL")] = tuple(map(sum, zip(*cells.values(), strict=False)))
     for key, counts in {**cells, **totals}.items():
-        row = {"period": "2025-06", **dict(zip(table.keys[1:], key)), **dict(zip(table.counts, counts))}
+        row = {
+            "period": "2025-06",
+            **dict(zip(table.keys[1:], key, strict=False)),
+            **dict(zip(table.counts, counts, strict=False)),
+        }
         if table is COVERAGE:
             row["share_with_both"] = round(counts[3] / counts[0], 4) if counts[0] else None
         else:
             # 100 residents per cell; a total has those of the cells under it
-            population = 100 * sum(1 for k in cells if key[0] in ("ALL", k[0])) if key[1] == "ALL" else 100
+            population = (
+                100 * sum(1 for k in cells if key[0] in ("ALL", k[0])) if key[1] == "ALL" else 100
+            )
             row["population"] = population
             row["ckd_share_of_tested"] = round(counts[1] / counts[0], 4) if counts[0] else None
             row["ckd_per_1000_residents"] = round(1000 * counts[1] / population, 2)
         rows.append(row)
-    return pl.DataFrame(rows, schema_overrides={"share_with_both": pl.Float64, "ckd_share_of_tested": pl.Float64})
+    return pl.DataFrame(
+        rows, schema_overrides={"share_with_both": pl.Float64, "ckd_share_of_tested": pl.Float64}
+    )
 
 
-def prevalence_cells(draw_counts=st.integers(0, 60)):
+COUNT_VALUES = st.integers(0, 60)
+
+
+def prevalence_cells(draw_counts=COUNT_VALUES):
     cell_keys = [(s, b) for s in ("F", "M") for b in BANDS]
     district = st.lists(st.sampled_from(cell_keys), min_size=1, max_size=8, unique=True)
     return st.lists(district, min_size=1, max_size=4).flatmap(lambda districts: st.fixed_dictionaries({
@@ -225,9 +263,11 @@ def prevalence_cells(draw_counts=st.integers(0, 60)):
         for d, keys in enumerate(districts) for s, b in keys}))  # fmt: skip
 
 
-def coverage_cells(draw_counts=st.integers(0, 60)):
+def coverage_cells(draw_counts=COUNT_VALUES):
     four = st.tuples(draw_counts, draw_counts, draw_counts, draw_counts)
-    return st.integers(1, 12).flatmap(lambda n: st.fixed_dictionaries({(f"WF{d + 1:02d}",): four for d in range(n)}))
+    return st.integers(1, 12).flatmap(
+        lambda n: st.fixed_dictionaries({(f"WF{d + 1:02d}",): four for d in range(n)})
+    )
 
 
 def check_published(frame: pl.DataFrame, out: pl.DataFrame, table) -> None:
@@ -251,10 +291,17 @@ def check_published(frame: pl.DataFrame, out: pl.DataFrame, table) -> None:
                 assert after[total] == sum(after[c] for c in cells)
         blanked_any = blanked_any | after.is_null()
     # n_suppressed and the flag say what happened to the row
-    n_blank = out.select(pl.sum_horizontal(pl.col(c).is_null().cast(pl.Int32) for c in table.counts)).to_series()
+    n_blank = out.select(
+        pl.sum_horizontal(pl.col(c).is_null().cast(pl.Int32) for c in table.counts)
+    ).to_series()
     assert out["n_suppressed"].to_list() == n_blank.to_list()
-    small = frame.select(pl.any_horizontal(pl.col(c).is_in(list(SMALL)) for c in table.counts)).to_series()
-    expected_flag = [("primary" if s else "secondary" if b else "") for s, b in zip(small, blanked_any)]
+    small = frame.select(
+        pl.any_horizontal(pl.col(c).is_in(list(SMALL)) for c in table.counts)
+    ).to_series()
+    expected_flag = [
+        ("primary" if s else "secondary" if b else "")
+        for s, b in zip(small, blanked_any, strict=False)
+    ]
     assert out["suppression"].to_list() == expected_flag
     # a rate is blanked exactly when a count it is built on is blanked
     for rate, sources in ((r, s) for r, s in table.rates.items() if r in frame.columns):
@@ -280,7 +327,10 @@ def test_property_coverage_published_safely(cells):
 
 
 @settings(max_examples=20, deadline=None, database=None)
-@given(st.one_of(prevalence_cells(st.integers(0, 14)), prevalence_cells()), st.randoms(use_true_random=False))
+@given(
+    st.one_of(prevalence_cells(st.integers(0, 14)), prevalence_cells()),
+    st.randoms(use_true_random=False),
+)
 def test_property_no_blanked_cell_pinned_by_linear_programming(cells, rnd):
     # small counts (0..14) make ones, twos and elevens common: the cases subtraction misses
     frame = table_frame(PREVALENCE, cells)
@@ -308,7 +358,10 @@ def one_column(table, column_values: dict[tuple, int]) -> pl.DataFrame:
     """A frame where only persons_ckd / with_acr varies; the other counts are large (no blanks)."""
     position = 1 if table is PREVALENCE else 2
     width = len(table.counts)
-    cells = {k: tuple(v if i == position else 100 for i in range(width)) for k, v in column_values.items()}
+    cells = {
+        k: tuple(v if i == position else 100 for i in range(width))
+        for k, v in column_values.items()
+    }
     return table_frame(table, cells)
 
 
@@ -318,11 +371,20 @@ def test_two_ones_are_pinned_by_the_total_so_a_third_cell_goes():
     frame = one_column(PREVALENCE, {("WF01", "F", "0-4"): 1, ("WF01", "F", "20-24"): 1, ("WF01", "M", "0-4"): 30,
                                     ("WF02", "F", "0-4"): 40})  # fmt: skip
     out = suppress(frame, PREVALENCE, RULES)
-    got = dict(zip(out.select(["district_code", "sex", "age_band"]).iter_rows(), out["persons_ckd"]))
+    got = dict(
+        zip(
+            out.select(["district_code", "sex", "age_band"]).iter_rows(),
+            out["persons_ckd"],
+            strict=False,
+        )
+    )
     assert got[("WF01", "F", "0-4")] is None and got[("WF01", "F", "20-24")] is None
     assert got[("WF01", "M", "0-4")] is None  # the third cell
     assert got[("WF01", "ALL", "ALL")] == 32 and got[("ALL", "ALL", "ALL")] == 72
-    assert out.filter(pl.col("age_band") == "0-4", pl.col("sex") == "M")["suppression"].item() == "secondary"
+    assert (
+        out.filter(pl.col("age_band") == "0-4", pl.col("sex") == "M")["suppression"].item()
+        == "secondary"
+    )
 
 
 def test_the_smallest_cell_that_protects_is_chosen():
@@ -352,7 +414,13 @@ def test_a_lone_small_district_blanks_another_district_and_its_cell():
                                     ("WF02", "F", "0-4"): 70, ("WF02", "M", "0-4"): 40,
                                     ("WF03", "F", "0-4"): 20, ("WF03", "M", "0-4"): 30})  # fmt: skip
     out = suppress(frame, PREVALENCE, RULES)
-    got = dict(zip(out.select(["district_code", "sex", "age_band"]).iter_rows(), out["persons_ckd"]))
+    got = dict(
+        zip(
+            out.select(["district_code", "sex", "age_band"]).iter_rows(),
+            out["persons_ckd"],
+            strict=False,
+        )
+    )
     assert got[("WF01", "F", "0-4")] is None and got[("WF01", "ALL", "ALL")] is None
     assert got[("WF01", "M", "0-4")] == 0  # a zero is published as zero
     assert got[("WF03", "ALL", "ALL")] is None and got[("WF02", "ALL", "ALL")] == 110
@@ -370,7 +438,11 @@ def test_coverage_lone_small_district_blanks_the_next_smallest():
 
 
 def test_rate_on_a_secondary_count_is_blanked():
-    out = suppress(one_column(PREVALENCE, {("WF01", "F", "0-4"): 4, ("WF01", "M", "0-4"): 30}), PREVALENCE, RULES)
+    out = suppress(
+        one_column(PREVALENCE, {("WF01", "F", "0-4"): 4, ("WF01", "M", "0-4"): 30}),
+        PREVALENCE,
+        RULES,
+    )
     second = out.row(1, named=True)
     assert second["persons_ckd"] is None and second["suppression"] == "secondary"
     # persons_ckd = rate x population / 1000 would give it back
@@ -378,13 +450,17 @@ def test_rate_on_a_secondary_count_is_blanked():
 
 
 def test_a_table_without_totals_gets_primary_suppression_only():
-    frame = one_column(COVERAGE, {("WF01",): 7, ("WF02",): 25}).filter(pl.col("district_code") != "ALL")
+    frame = one_column(COVERAGE, {("WF01",): 7, ("WF02",): 25}).filter(
+        pl.col("district_code") != "ALL"
+    )
     out = suppress(frame, COVERAGE, RULES)
     assert out["with_acr"].to_list() == [None, 25]
 
 
 def test_a_row_outside_the_hierarchy_is_refused():
-    frame = prevalence_frame([{"sex": "ALL", "age_band": "50-54"}])  # a sex total of one band: unknown
+    frame = prevalence_frame(
+        [{"sex": "ALL", "age_band": "50-54"}]
+    )  # a sex total of one band: unknown
     with pytest.raises(DisclosureError):
         suppress(frame, PREVALENCE, RULES)
 
@@ -394,7 +470,9 @@ def test_a_pin_that_blanking_cannot_remove_blanks_the_column_whole():
     # so 1 or 2) over two blanked cells of at least 1 each is 2 = 1 + 1 whatever else is blanked
     # (hand calculation). No crash: every non-zero count of the column is blanked, and the joint
     # audit (which publishes one mark, not primary/secondary) decides what is published.
-    frame = one_column(PREVALENCE, {("WF01", "F", "0-4"): 1, ("WF01", "M", "0-4"): 1, ("WF02", "F", "0-4"): 50})
+    frame = one_column(
+        PREVALENCE, {("WF01", "F", "0-4"): 1, ("WF01", "M", "0-4"): 1, ("WF02", "F", "0-4"): 50}
+    )
     out = suppress(frame, PREVALENCE, DisclosureSettings(suppress_max=2))
     assert out["persons_ckd"].drop_nulls().to_list() == [0] * out["persons_ckd"].drop_nulls().len()
 
@@ -402,7 +480,9 @@ def test_a_pin_that_blanking_cannot_remove_blanks_the_column_whole():
 def test_counts_below_the_band_are_published_but_never_hide_a_cell():
     # suppress_min 3: 1 and 2 are published; a secondary is always above the band (so the
     # 'secondary' mark means "above 10"), hence 30 goes, not 2.
-    frame = one_column(PREVALENCE, {("WF01", "F", "0-4"): 4, ("WF01", "F", "20-24"): 2, ("WF01", "M", "0-4"): 30})
+    frame = one_column(
+        PREVALENCE, {("WF01", "F", "0-4"): 4, ("WF01", "F", "20-24"): 2, ("WF01", "M", "0-4"): 30}
+    )
     out = suppress(frame, PREVALENCE, DisclosureSettings(suppress_min=3))
     assert out["persons_ckd"].to_list()[:3] == [None, 2, None]
 
@@ -415,8 +495,13 @@ def test_disclose_stage_adds_new_columns_to_an_older_published_table():
     con.register("_empty", one_column(PREVALENCE, {("WF01", "F", "0-4"): 4}).clear().to_arrow())
     con.execute("create table district_ckd_prevalence as select * from _empty")  # an empty period
     for table in PUBLISHED_TABLES[2:]:  # the other published tables: empty too
-        con.register("_none", pl.DataFrame({"period": [], "district_code": []},
-                                            schema={"period": pl.String, "district_code": pl.String}).to_arrow())
+        con.register(
+            "_none",
+            pl.DataFrame(
+                {"period": [], "district_code": []},
+                schema={"period": pl.String, "district_code": pl.String},
+            ).to_arrow(),
+        )
         con.execute(f"create table {table.name} as select * from _none")
     con.execute("create schema published")
     con.execute("create table published.district_screening_coverage as "
@@ -441,7 +526,13 @@ def test_group_rates_are_blanked_when_a_cell_below_is_blanked():
                                     ("WF02", "F", "0-4"): 50, ("WF02", "M", "0-4"): 60})  # fmt: skip
     frame = frame.with_columns(pl.lit(1.5).alias("ckd_standardised_per_1000"))
     out = suppress(frame, table, RULES)
-    got = dict(zip(out.select(["district_code", "sex"]).iter_rows(), out["ckd_standardised_per_1000"]))
+    got = dict(
+        zip(
+            out.select(["district_code", "sex"]).iter_rows(),
+            out["ckd_standardised_per_1000"],
+            strict=False,
+        )
+    )
     assert got[("WF01", "ALL")] is None and got[("ALL", "ALL")] is None  # a blanked cell below
     assert got[("WF02", "ALL")] == 1.5
 
@@ -467,18 +558,32 @@ def test_published_tables_of_a_run_hold_no_small_count(tmp_path: Path, small_con
     header = "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status"
     lines = [f"WF-dis{i:04d},1960,F,WF0{i % 2 + 1},D{i:04d},2025-06-0{i % 9 + 1},2160-0,1.{i % 9},mg/dL,final"
              for i in range(14)]  # fmt: skip
-    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2025-06.csv": "\n".join([header, *lines]) + "\n"})
+    inbox = write_inbox(
+        tmp_path, {"westerfold_general_lab/results_2025-06.csv": "\n".join([header, *lines]) + "\n"}
+    )
     with run_month(small_config, inbox, tmp_path / "out", period="2025-06") as con:
         for table in PUBLISHED_TABLES:
             internal = con.sql(f"select * from main.{table.name}").pl()
             published = con.sql(f"select * from published.{table.name}").pl()
             assert published.height == internal.height
             for column in table.counts:
-                assert not published[column].drop_nulls().is_between(1, 10).any(), (table.name, column)
+                assert not published[column].drop_nulls().is_between(1, 10).any(), (
+                    table.name,
+                    column,
+                )
         # the check means something: the internal table has small counts to hide, and a
         # count above 10 (14 persons tested in all) is published
-        assert rows(con, "select count(*) from main.district_ckd_prevalence where persons_tested between 1 and 10")[0][0] > 0
-        assert rows(con, "select persons_tested from published.district_ckd_prevalence where district_code = 'ALL'") == [(14,)]
+        assert (
+            rows(
+                con,
+                "select count(*) from main.district_ckd_prevalence where persons_tested between 1 and 10",
+            )[0][0]
+            > 0
+        )
+        assert rows(
+            con,
+            "select persons_tested from published.district_ckd_prevalence where district_code = 'ALL'",
+        ) == [(14,)]
 
 
 # --------------------------------------------------------------------------- CKD by category
@@ -517,8 +622,17 @@ def person_frames(persons: dict[str, list[tuple]]) -> tuple[pl.DataFrame, pl.Dat
         for axis, categories in AXES.items():
             for category in categories:
                 x, n = tally.get((d, axis, category), 0), tested[d]
-                rows_.append({"period": "2025-06", "district_code": d, "category_axis": axis, "category": category,
-                              "persons_ckd": x, "persons_tested": n, "ckd_per_100_tested": round(100 * x / n, 2)})
+                rows_.append(
+                    {
+                        "period": "2025-06",
+                        "district_code": d,
+                        "category_axis": axis,
+                        "category": category,
+                        "persons_ckd": x,
+                        "persons_tested": n,
+                        "ckd_per_100_tested": round(100 * x / n, 2),
+                    }
+                )
     return prevalence, pl.DataFrame(rows_)
 
 
@@ -527,7 +641,8 @@ def people(max_size: int = 40):
                        st.sampled_from(G_CATEGORIES), st.sampled_from(A_CATEGORIES))  # fmt: skip
     district = st.lists(person, min_size=1, max_size=max_size)
     return st.lists(district, min_size=1, max_size=3).map(
-        lambda ds: {f"WF{i + 1:02d}": d for i, d in enumerate(ds)})
+        lambda ds: {f"WF{i + 1:02d}": d for i, d in enumerate(ds)}
+    )
 
 
 def jointly_pinned(prevalence: pl.DataFrame, categories: pl.DataFrame) -> list[tuple]:
@@ -560,26 +675,41 @@ def jointly_pinned(prevalence: pl.DataFrame, categories: pl.DataFrame) -> list[t
             add(("prevalence", column, i), value, low, high)
     for r in categories.iter_rows(named=True):
         flag = r["suppression"]
-        low, high = {"primary": (1, 10), "secondary": (11, np.inf), "withheld": (0, np.inf)}.get(flag, (0, np.inf))
-        add(("categories", r["district_code"], r["category_axis"], r["category"]), r["persons_ckd"], low, high)
+        low, high = {"primary": (1, 10), "secondary": (11, np.inf), "withheld": (0, np.inf)}.get(
+            flag, (0, np.inf)
+        )
+        add(
+            ("categories", r["district_code"], r["category_axis"], r["category"]),
+            r["persons_ckd"],
+            low,
+            high,
+        )
     equations: list[list[tuple[tuple, float]]] = []
     for column in ("persons_ckd", "persons_ckd_g3_g5"):
         for total, cells in sum_groups(prevalence, PREVALENCE):
-            equations.append([(("prevalence", column, total), -1.0)]
-                             + [(("prevalence", column, c), 1.0) for c in cells])
+            equations.append(
+                [(("prevalence", column, total), -1.0)]
+                + [(("prevalence", column, c), 1.0) for c in cells]
+            )
     total_row = {k[0]: i for i, k in enumerate(prevalence.select(["district_code", "sex", "age_band"]).iter_rows())
                  if k[1] == "ALL" and k[2] == "ALL"}  # fmt: skip
     districts = sorted(set(categories["district_code"]))
     for d in districts:
         for axis, categories_ in AXES.items():
-            equations.append([(("prevalence", "persons_ckd", total_row[d]), -1.0)]
-                             + [(("categories", d, axis, c), 1.0) for c in categories_])
-        equations.append([(("prevalence", "persons_ckd_g3_g5", total_row[d]), -1.0)]
-                         + [(("categories", d, "gfr", c), 1.0) for c in G3_G5])
+            equations.append(
+                [(("prevalence", "persons_ckd", total_row[d]), -1.0)]
+                + [(("categories", d, axis, c), 1.0) for c in categories_]
+            )
+        equations.append(
+            [(("prevalence", "persons_ckd_g3_g5", total_row[d]), -1.0)]
+            + [(("categories", d, "gfr", c), 1.0) for c in G3_G5]
+        )
     for axis, categories_ in AXES.items():
         for c in categories_:
-            equations.append([(("categories", "ALL", axis, c), -1.0)]
-                             + [(("categories", d, axis, c), 1.0) for d in districts if d != "ALL"])
+            equations.append(
+                [(("categories", "ALL", axis, c), -1.0)]
+                + [(("categories", d, axis, c), 1.0) for d in districts if d != "ALL"]
+            )
     a_eq, b_eq = [], []
     for equation in equations:
         row, rhs = np.zeros(len(names)), 0.0
@@ -615,7 +745,9 @@ def jointly_pinned(prevalence: pl.DataFrame, categories: pl.DataFrame) -> list[t
     return pinned
 
 
-def check_categories(prevalence: pl.DataFrame, categories: pl.DataFrame, out: dict[str, pl.DataFrame]) -> None:
+def check_categories(
+    prevalence: pl.DataFrame, categories: pl.DataFrame, out: dict[str, pl.DataFrame]
+) -> None:
     """Every property the published categories table must have, checked from the outside."""
     prev, cat = out["district_ckd_prevalence"], out["district_ckd_categories"]
     # the categories table changes nothing in the prevalence table
@@ -627,11 +759,17 @@ def check_categories(prevalence: pl.DataFrame, categories: pl.DataFrame, out: di
     assert (after.is_not_null() | flag.is_in(["primary", "secondary", "withheld"])).all()
     assert ((flag == "primary") == (before.is_in(list(SMALL)) & (flag != "withheld"))).all()
     assert (after.is_null() == flag.is_in(["primary", "secondary", "withheld"])).all()
-    assert (before.filter(flag == "secondary") > RULES.suppress_max).all()  # 'secondary' means above 10
-    assert not (after.is_null() & (before == 0) & (flag != "withheld")).any()  # zeros shown unless withheld
+    assert (
+        before.filter(flag == "secondary") > RULES.suppress_max
+    ).all()  # 'secondary' means above 10
+    assert not (
+        after.is_null() & (before == 0) & (flag != "withheld")
+    ).any()  # zeros shown unless withheld
     assert cat["n_suppressed"].to_list() == after.is_null().cast(pl.Int32).to_list()
     # withheld is all or nothing per district and axis, and follows a blank total of the other table
-    shown_total = {r["district_code"]: r for r in prev.filter(pl.col("sex") == "ALL").iter_rows(named=True)}
+    shown_total = {
+        r["district_code"]: r for r in prev.filter(pl.col("sex") == "ALL").iter_rows(named=True)
+    }
     for (district, axis), rows_ in cat.group_by(["district_code", "category_axis"]):
         flags = set(rows_["suppression"])
         assert "withheld" not in flags or flags == {"withheld"}, (district, axis, flags)
@@ -651,7 +789,9 @@ def check_categories(prevalence: pl.DataFrame, categories: pl.DataFrame, out: di
 @given(people())
 def test_property_categories_published_safely(persons):
     prevalence, categories = person_frames(persons)
-    out = suppress_tables({"district_ckd_prevalence": prevalence, "district_ckd_categories": categories}, RULES)
+    out = suppress_tables(
+        {"district_ckd_prevalence": prevalence, "district_ckd_categories": categories}, RULES
+    )
     check_categories(prevalence, categories, out)
 
 
@@ -664,7 +804,9 @@ def test_property_categories_larger_counts_deterministic_and_order_free(persons,
     check_categories(prevalence, categories, out)
     order = list(range(categories.height))
     rnd.shuffle(order)
-    shuffled = suppress(categories[order], CATEGORIES, RULES, {"district_ckd_prevalence": prevalence})
+    shuffled = suppress(
+        categories[order], CATEGORIES, RULES, {"district_ckd_prevalence": prevalence}
+    )
     keys = list(CATEGORIES.keys)
     assert shuffled.sort(keys).equals(out["district_ckd_categories"].sort(keys))
 
@@ -674,12 +816,14 @@ def categories_case(gfr: dict[str, tuple[int, ...]], albuminuria: dict[str, tupl
     (persons_tested = persons_ckd), sex F, age band 50-54 for the GFR category's count."""
     persons = {}
     for d in gfr:
-        g_list = [g for g, n in zip(G_CATEGORIES, gfr[d]) for _ in range(n)]
-        a_list = [a for a, n in zip(A_CATEGORIES, albuminuria[d]) for _ in range(n)]
+        g_list = [g for g, n in zip(G_CATEGORIES, gfr[d], strict=False) for _ in range(n)]
+        a_list = [a for a, n in zip(A_CATEGORIES, albuminuria[d], strict=False) for _ in range(n)]
         assert len(g_list) == len(a_list), d
-        persons[d] = [("F", "50-54", True, g, a) for g, a in zip(g_list, a_list)]
+        persons[d] = [("F", "50-54", True, g, a) for g, a in zip(g_list, a_list, strict=False)]
     prevalence, categories = person_frames(persons)
-    out = suppress_tables({"district_ckd_prevalence": prevalence, "district_ckd_categories": categories}, RULES)
+    out = suppress_tables(
+        {"district_ckd_prevalence": prevalence, "district_ckd_categories": categories}, RULES
+    )
     return out["district_ckd_prevalence"], out["district_ckd_categories"]
 
 
@@ -718,7 +862,9 @@ def test_a_blank_g3_g5_total_withholds_the_gfr_axis_only():
     # G1 + G2 + unknown = 60 - 5 would give it back, so the whole GFR axis is withheld.
     prev, cat = categories_case({"WF01": (25, 30, 5, 0, 0, 0, 0), "WF02": (25, 25, 25, 0, 0, 0, 0)},
                                 {"WF01": (30, 30, 0, 0), "WF02": (40, 35, 0, 0)})  # fmt: skip
-    total = prev.filter((pl.col("district_code") == "WF01") & (pl.col("sex") == "ALL")).row(0, named=True)
+    total = prev.filter((pl.col("district_code") == "WF01") & (pl.col("sex") == "ALL")).row(
+        0, named=True
+    )
     assert total["persons_ckd"] == 60 and total["persons_ckd_g3_g5"] is None
     assert shown(cat, "WF01", "gfr") == [None] * 7
     assert shown(cat, "WF01", "albuminuria") == [30, 30, 0, 0]
@@ -754,7 +900,9 @@ def test_real_sized_categories_table_is_quick():
                for d in range(1, 16)}  # fmt: skip
     prevalence, categories = person_frames(persons)
     started = time.perf_counter()
-    out = suppress_tables({"district_ckd_prevalence": prevalence, "district_ckd_categories": categories}, RULES)
+    out = suppress_tables(
+        {"district_ckd_prevalence": prevalence, "district_ckd_categories": categories}, RULES
+    )
     assert time.perf_counter() - started < 10
     cat = out["district_ckd_categories"]
     assert not cat["persons_ckd"].drop_nulls().is_in(list(SMALL)).any()
@@ -767,8 +915,19 @@ def test_real_sized_categories_table_is_quick():
 # audit: the LP of pinned_by_linear_programming with every broad-group count of every published
 # rate added as a known sum (a reader who backs them out of the rates knows at most that).
 
-STANDARDISED = ("ckd_per_1000_standardised", "ckd_per_1000_standardised_low", "ckd_per_1000_standardised_high")
-BROAD = {"0-4": "0-64", "20-24": "0-64", "50-54": "0-64", "65-69": "65-74", "80-84": "75+", "85+": "75+"}
+STANDARDISED = (
+    "ckd_per_1000_standardised",
+    "ckd_per_1000_standardised_low",
+    "ckd_per_1000_standardised_high",
+)
+BROAD = {
+    "0-4": "0-64",
+    "20-24": "0-64",
+    "50-54": "0-64",
+    "65-69": "65-74",
+    "80-84": "75+",
+    "85+": "75+",
+}
 
 
 def with_standardised(frame: pl.DataFrame) -> pl.DataFrame:
@@ -778,7 +937,9 @@ def with_standardised(frame: pl.DataFrame) -> pl.DataFrame:
     total = pl.col("sex") == "ALL"
     return frame.with_columns(
         *[pl.when(total).then(pl.lit(12.5)).otherwise(None).alias(c) for c in STANDARDISED],
-        pl.when(is_cell).then(pl.col("age_band").replace_strict(BROAD, default=None)).otherwise(None)
+        pl.when(is_cell)
+        .then(pl.col("age_band").replace_strict(BROAD, default=None))
+        .otherwise(None)
         .alias("standardisation_age_group"),
     )
 
@@ -794,8 +955,13 @@ def pinned_with_rates(frame: pl.DataFrame, out: pl.DataFrame) -> list[int]:
     bounds = []
     for row in unknown:
         flag, n_blanked = out["suppression"][row], out["n_suppressed"][row]
-        bounds.append((RULES.suppress_max + 1, None) if flag == "secondary" else
-                      (RULES.suppress_min, RULES.suppress_max) if flag == "primary" and n_blanked == 1 else (1, None))
+        bounds.append(
+            (RULES.suppress_max + 1, None)
+            if flag == "secondary"
+            else (RULES.suppress_min, RULES.suppress_max)
+            if flag == "primary" and n_blanked == 1
+            else (1, None)
+        )
     sums = [(total, cells, None) for total, cells in sum_groups(out, PREVALENCE)]
     keyed = list(out.select(["district_code", "sex", "age_band"]).iter_rows())
     group = frame["standardisation_age_group"].to_list()
@@ -803,7 +969,11 @@ def pinned_with_rates(frame: pl.DataFrame, out: pl.DataFrame) -> list[int]:
     for t, (district, sex, _) in enumerate(keyed):
         if sex == "ALL" and out["ckd_per_1000_standardised"][t] is not None:
             for label in sorted({g for g in group if g is not None}):
-                cells = [i for i, k in enumerate(keyed) if group[i] == label and district in ("ALL", k[0])]
+                cells = [
+                    i
+                    for i, k in enumerate(keyed)
+                    if group[i] == label and district in ("ALL", k[0])
+                ]
                 sums.append((None, cells, sum(truth[i] for i in cells)))
     a_eq, b_eq = [], []
     for total, cells, value in sums:
@@ -853,9 +1023,14 @@ def test_two_blanks_in_two_broad_groups_would_be_solved_from_the_rate():
     # 30 = rate), so a large numerator alone is no protection (hand calculation): not published.
     frame = one_district({"50-54": 4, "65-69": 30, "80-84": 40})
     out = suppress(frame, PREVALENCE, RULES)
-    wf01 = out.filter((pl.col("district_code") == "WF01") & (pl.col("sex") == "ALL")).row(0, named=True)
+    wf01 = out.filter((pl.col("district_code") == "WF01") & (pl.col("sex") == "ALL")).row(
+        0, named=True
+    )
     assert wf01["persons_ckd"] == 74
-    assert wf01["ckd_per_1000_standardised"] is None and wf01["ckd_per_1000_standardised_flag"] == "suppressed"
+    assert (
+        wf01["ckd_per_1000_standardised"] is None
+        and wf01["ckd_per_1000_standardised_flag"] == "suppressed"
+    )
     assert pinned_with_rates(frame, out) == []
 
 
@@ -864,8 +1039,12 @@ def test_two_blanks_in_one_broad_group_leave_the_rate_published():
     # already, so the rate tells nothing new (hand calculation): published.
     frame = one_district({"0-4": 4, "20-24": 30, "80-84": 40})
     out = suppress(frame, PREVALENCE, RULES)
-    wf01 = out.filter((pl.col("district_code") == "WF01") & (pl.col("sex") == "ALL")).row(0, named=True)
-    assert wf01["ckd_per_1000_standardised"] == 12.5 and wf01["ckd_per_1000_standardised_flag"] == ""
+    wf01 = out.filter((pl.col("district_code") == "WF01") & (pl.col("sex") == "ALL")).row(
+        0, named=True
+    )
+    assert (
+        wf01["ckd_per_1000_standardised"] == 12.5 and wf01["ckd_per_1000_standardised_flag"] == ""
+    )
     region = out.filter(pl.col("district_code") == "ALL").row(0, named=True)
     assert region["ckd_per_1000_standardised_flag"] == ""
     assert pinned_with_rates(frame, out) == []
@@ -875,11 +1054,18 @@ def test_a_rate_from_fewer_than_20_persons_is_flagged_not_published():
     # 11 + 8 = 19 persons with CKD in WF01 (common practice: fewer than about 20 events is unreliable)
     frame = one_district({"0-4": 11, "80-84": 8})
     out = suppress(frame, PREVALENCE, RULES)
-    wf01 = out.filter((pl.col("district_code") == "WF01") & (pl.col("sex") == "ALL")).row(0, named=True)
+    wf01 = out.filter((pl.col("district_code") == "WF01") & (pl.col("sex") == "ALL")).row(
+        0, named=True
+    )
     assert wf01["persons_ckd"] == 19
-    assert wf01["ckd_per_1000_standardised_flag"] == "few_events" and wf01["ckd_per_1000_standardised"] is None
+    assert (
+        wf01["ckd_per_1000_standardised_flag"] == "few_events"
+        and wf01["ckd_per_1000_standardised"] is None
+    )
     out = suppress(frame, PREVALENCE, DisclosureSettings(standardised_min_events=15))
-    flag = out.filter((pl.col("district_code") == "WF01") & (pl.col("sex") == "ALL"))["ckd_per_1000_standardised_flag"]
+    flag = out.filter((pl.col("district_code") == "WF01") & (pl.col("sex") == "ALL"))[
+        "ckd_per_1000_standardised_flag"
+    ]
     assert flag.item() in ("", "suppressed")
 
 
@@ -892,7 +1078,10 @@ def _pinned_by_linprog(unknown: list, a_eq: list, b_eq: list, bounds: list) -> l
         c[j] = 1.0
         low = linprog(c, A_eq=a_eq or None, b_eq=b_eq or None, bounds=bounds, method="highs")
         high = linprog(-c, A_eq=a_eq or None, b_eq=b_eq or None, bounds=bounds, method="highs")
-        assert low.status == 0 and high.status in (0, 3), (low.message, high.message)  # 3: unbounded above
+        assert low.status == 0 and high.status in (0, 3), (
+            low.message,
+            high.message,
+        )  # 3: unbounded above
         if high.status == 0 and -high.fun - low.fun < 0.5:
             pinned.append(row)
     return pinned

@@ -47,13 +47,17 @@ def prevalence(cells: dict[tuple[str, str, str], tuple[int, int, int]]) -> pl.Da
             for i, c in enumerate(counts):
                 acc[i] += c
     out = []
-    for (district, sex, band), counts in list(cells.items()) + [(k, tuple(v)) for k, v in totals.items()]:
+    for (district, sex, band), counts in list(cells.items()) + [
+        (k, tuple(v)) for k, v in totals.items()
+    ]:
         out.append({"period": "2025-06", "district_code": district, "sex": sex, "age_band": band,
-                    **dict(zip(COUNTS, counts)), "population": 1000})  # fmt: skip
+                    **dict(zip(COUNTS, counts, strict=False)), "population": 1000})  # fmt: skip
     return pl.DataFrame(out)
 
 
-def reader_intervals(published: pl.DataFrame, internal: pl.DataFrame) -> dict[tuple[int, str], tuple[float, float]]:
+def reader_intervals(
+    published: pl.DataFrame, internal: pl.DataFrame
+) -> dict[tuple[int, str], tuple[float, float]]:
     """[least, greatest] of every blanked count with a non-zero value, from the published table
     alone (module docstring)."""
     keys = published.select("district_code", "sex", "age_band").rows()
@@ -82,7 +86,7 @@ def reader_intervals(published: pl.DataFrame, internal: pl.DataFrame) -> dict[tu
 
     index = {k: r for r, k in enumerate(keys)}
     for column in COUNTS:
-        for r, (district, sex, band) in enumerate(keys):
+        for r, (district, sex, _band) in enumerate(keys):
             if district != "ALL" and sex == "ALL":  # a district: the sum of its cells
                 cells = [i for i, k in enumerate(keys) if k[0] == district and k[1] != "ALL"]
                 if cells:
@@ -109,12 +113,16 @@ def reader_intervals(published: pl.DataFrame, internal: pl.DataFrame) -> dict[tu
     return out
 
 
-def exposed(published: pl.DataFrame, internal: pl.DataFrame, rules: DisclosureSettings = RULES) -> list:
+def exposed(
+    published: pl.DataFrame, internal: pl.DataFrame, rules: DisclosureSettings = RULES
+) -> list:
     """Blanked counts a reader confines to 1-10 or to an interval narrower than the width."""
     bad = []
     for cell, (low, high) in reader_intervals(published, internal).items():
         low_i, high_i = np.ceil(low - 1e-6), np.floor(high + 1e-6)
-        if (low_i >= rules.suppress_min and high_i <= rules.suppress_max) or high_i - low_i < rules.protection_width:
+        if (
+            low_i >= rules.suppress_min and high_i <= rules.suppress_max
+        ) or high_i - low_i < rules.protection_width:
             bad.append((cell, low_i, high_i))
     return bad
 
@@ -154,7 +162,12 @@ def test_primary_and_secondary_are_not_published_but_kept_internally():
     for table in PUBLISHED_TABLES[1:]:  # nothing this period in the other tables
         con.execute(f"create table {table.name} (period varchar)")
     disclose_stage(con, RULES, Period.parse("2025-06"))
-    marks = {r[0] for r in con.execute("select distinct suppression from published.district_ckd_prevalence").fetchall()}
+    marks = {
+        r[0]
+        for r in con.execute(
+            "select distinct suppression from published.district_ckd_prevalence"
+        ).fetchall()
+    }
     assert marks == {"", MARK}  # one mark: a reader cannot tell which blanks are 1-10
     reasons = {r[0] for r in con.execute("select distinct reason from disclosure_cells").fetchall()}
     assert "primary" in reasons
@@ -227,7 +240,9 @@ def test_a_small_region_gets_its_run(tmp_path: Path, small_config: Path):
         for k, day in enumerate((3, 13, 23)):
             lines.append(f"WF-small{i:03d},{1935 + i % 50},{'FM'[i % 2]},WF0{i % 4 + 1},S{i:03d}{k},2025-06-{day:02d},"
                          f"2160-0,{0.8 + (i % 9) * 0.35:.2f},mg/dL,final")  # fmt: skip
-    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2025-06.csv": "\n".join([header, *lines]) + "\n"})
+    inbox = write_inbox(
+        tmp_path, {"westerfold_general_lab/results_2025-06.csv": "\n".join([header, *lines]) + "\n"}
+    )
     with run_month(small_config, inbox, tmp_path / "out", period="2025-06") as con:
         published = con.sql("select * from published.district_ckd_prevalence").pl()
         internal = con.sql("select * from main.district_ckd_prevalence").pl()
@@ -237,7 +252,10 @@ def test_a_small_region_gets_its_run(tmp_path: Path, small_config: Path):
             assert exposed(published, internal) == []
         for table in PUBLISHED_TABLES:
             for column in table.counts:
-                got = rows(con, f"select count(*) from published.{table.name} where {column} between 1 and 10")
+                got = rows(
+                    con,
+                    f"select count(*) from published.{table.name} where {column} between 1 and 10",
+                )
                 assert got == [(0,)], (table.name, column)
         assert rows(con, "select count(*) from main.district_ckd_prevalence")[0][0] > 0
 
@@ -259,7 +277,11 @@ def test_a_rate_that_pins_an_age_group_is_rounded_coarser_or_blanked():
     from pipeline.disclosure_audit import RateBasis, protect_rates, table_from_frames
 
     weights = collapse_weights([0, 65, 75])
-    cells = [("F", "40-44", "0-64", 692, 9), ("F", "70-74", "65-74", 125, 8), ("F", "80-84", "75+", 101, 20)]
+    cells = [
+        ("F", "40-44", "0-64", 692, 9),
+        ("F", "70-74", "65-74", 125, 8),
+        ("F", "80-84", "75+", 101, 20),
+    ]
     frame = pl.DataFrame([
         {"period": "2025-06", "district_code": "WF02", "sex": s, "age_band": b, "persons_tested": 100 + i,
          "persons_ckd": c, "persons_ckd_g3_g5": 0, "population": p, "standardisation_age_group": g,
@@ -273,7 +295,9 @@ def test_a_rate_that_pins_an_age_group_is_rounded_coarser_or_blanked():
     published = frame.with_columns(pl.when(pl.col("persons_ckd") <= 10).then(None).otherwise(pl.col("persons_ckd"))
                                    .alias("persons_ckd"))  # fmt: skip
     table = table_from_frames(PREVALENCE.name, published, frame, PREVALENCE)
-    bounds, notes = protect_rates(table, RateBasis(("0-64", "65-74", "75+"), tuple(weights), 0.95), RULES)
+    bounds, notes = protect_rates(
+        table, RateBasis(("0-64", "65-74", "75+"), tuple(weights), 0.95), RULES
+    )
     flag = table.published["ckd_per_1000_standardised_flag"][3]
     assert flag in ("rounded", "suppressed") and notes
     if flag == "rounded":
@@ -304,14 +328,20 @@ def test_a_table_another_step_publishes_is_audited_with_the_rest():
     con.execute("create schema published")
     for table in PUBLISHED_TABLES:
         con.execute(f"create table {table.name} (period varchar)")
-    con.execute("create table district_new_counts (period varchar, district_code varchar, persons bigint)")
+    con.execute(
+        "create table district_new_counts (period varchar, district_code varchar, persons bigint)"
+    )
     con.execute("insert into district_new_counts values ('2025-06', 'WF01', 5), ('2025-06', 'WF02', 30), "
                 "('2025-06', 'WF03', 0), ('2025-06', 'ALL', 35)")  # fmt: skip
     con.execute("create table published.district_new_counts as select *, 1 as n_suppressed, 'x' as suppression "
                 "from district_new_counts")  # fmt: skip
-    con.execute("update published.district_new_counts set persons = null where district_code = 'WF01'")
+    con.execute(
+        "update published.district_new_counts set persons = null where district_code = 'WF01'"
+    )
     disclose_stage(con, RULES, Period.parse("2025-06"))
-    got = dict(con.execute("select district_code, persons from published.district_new_counts").fetchall())
+    got = dict(
+        con.execute("select district_code, persons from published.district_new_counts").fetchall()
+    )
     assert got["WF01"] is None
     assert got["WF02"] is None or got["ALL"] is None  # 5 can no longer be worked out
     assert got["WF03"] == 0  # a zero is published
@@ -320,7 +350,9 @@ def test_a_table_another_step_publishes_is_audited_with_the_rest():
 # --------------------------------------------------------------------------- both tables together
 
 
-def joint_exposed(prev: pl.DataFrame, cat: pl.DataFrame, prev_in: pl.DataFrame, cat_in: pl.DataFrame) -> list:
+def joint_exposed(
+    prev: pl.DataFrame, cat: pl.DataFrame, prev_in: pl.DataFrame, cat_in: pl.DataFrame
+) -> list:
     """Blanked counts of the prevalence and categories tables, read together, that a reader
     confines to 1-10 or to less than the width: the sums of each table, the categories of each
     axis adding up to the district's persons_ckd (KDIGO 2012 GFR and albuminuria categories), G3a
@@ -338,7 +370,9 @@ def joint_exposed(prev: pl.DataFrame, cat: pl.DataFrame, prev_in: pl.DataFrame, 
     equations, orders = [], []
     for column in COUNTS:
         for total, rows_ in sum_groups(prev, PREVALENCE):
-            equations.append([(("p", column, total), -1.0)] + [(("p", column, r), 1.0) for r in rows_])
+            equations.append(
+                [(("p", column, total), -1.0)] + [(("p", column, r), 1.0) for r in rows_]
+            )
     for i in range(prev.height):
         for small, large in ORDER:
             orders.append([(("p", small, i), 1.0), (("p", large, i), -1.0)])
@@ -347,11 +381,20 @@ def joint_exposed(prev: pl.DataFrame, cat: pl.DataFrame, prev_in: pl.DataFrame, 
     districts = sorted({k[0] for k in cat_keys})
     for d in districts:
         for axis, categories in AXES.items():
-            equations.append([(("p", "persons_ckd", total_row[d]), -1.0)] + [(("c", d, axis, c), 1.0) for c in categories])
-        equations.append([(("p", "persons_ckd_g3_g5", total_row[d]), -1.0)] + [(("c", d, "gfr", c), 1.0) for c in G3_G5])
+            equations.append(
+                [(("p", "persons_ckd", total_row[d]), -1.0)]
+                + [(("c", d, axis, c), 1.0) for c in categories]
+            )
+        equations.append(
+            [(("p", "persons_ckd_g3_g5", total_row[d]), -1.0)]
+            + [(("c", d, "gfr", c), 1.0) for c in G3_G5]
+        )
     for axis, categories in AXES.items():
         for c in categories:
-            equations.append([(("c", "ALL", axis, c), -1.0)] + [(("c", d, axis, c), 1.0) for d in districts if d != "ALL"])
+            equations.append(
+                [(("c", "ALL", axis, c), -1.0)]
+                + [(("c", d, axis, c), 1.0) for d in districts if d != "ALL"]
+            )
 
     def matrix(rows_: list) -> tuple[list, list]:
         a, b = [], []
@@ -383,8 +426,13 @@ def joint_exposed(prev: pl.DataFrame, cat: pl.DataFrame, prev_in: pl.DataFrame, 
         low = linprog(c, bounds=bounds, method="highs", **kwargs)
         high = linprog(-c, bounds=bounds, method="highs", **kwargs)
         assert low.status == 0, low.message
-        lo, hi = np.ceil(low.fun - 1e-6), (np.inf if high.status == 3 else np.floor(-high.fun + 1e-6))
-        if (lo >= RULES.suppress_min and hi <= RULES.suppress_max) or hi - lo < RULES.protection_width:
+        lo, hi = (
+            np.ceil(low.fun - 1e-6),
+            (np.inf if high.status == 3 else np.floor(-high.fun + 1e-6)),
+        )
+        if (
+            lo >= RULES.suppress_min and hi <= RULES.suppress_max
+        ) or hi - lo < RULES.protection_width:
             bad.append((n, lo, hi))
     return bad
 

@@ -17,7 +17,13 @@ from pipeline.equation_impact import COMBINED, daily_comparison, reclassificatio
 
 def ckd_epi_2021(scr: float, age: int, female: bool) -> float:
     k, a = (0.7, -0.241) if female else (0.9, -0.302)
-    return 142 * min(scr / k, 1) ** a * max(scr / k, 1) ** -1.200 * 0.9938**age * (1.012 if female else 1)
+    return (
+        142
+        * min(scr / k, 1) ** a
+        * max(scr / k, 1) ** -1.200
+        * 0.9938**age
+        * (1.012 if female else 1)
+    )
 
 
 def inputs() -> pl.DataFrame:
@@ -38,31 +44,60 @@ def inputs() -> pl.DataFrame:
     out = []
     for district, person, sex, age, scr, equation in rows:
         e = ckd_epi_2021(scr, age, sex == "F")
-        out.append({"district_code": district, "person_key": person, "day": None, "sex": sex, "age_years": age,
-                    "egfr": e, "egfr_equation": equation, "egfr_creatinine": e, "creatinine_mg_dl": scr})
+        out.append(
+            {
+                "district_code": district,
+                "person_key": person,
+                "day": None,
+                "sex": sex,
+                "age_years": age,
+                "egfr": e,
+                "egfr_equation": equation,
+                "egfr_creatinine": e,
+                "creatinine_mg_dl": scr,
+            }
+        )
     return pl.DataFrame(out)
 
 
 def test_hand_computed_egfrs_and_categories():
-    persons = {r["person_key"]: r for r in daily_comparison(inputs(), "ckd_epi_2009_creatinine").to_dicts()}
-    assert round(persons["A"]["egfr_in_force"], 1) == 60.6 and round(persons["A"]["egfr_other"], 1) == 57.0
+    persons = {
+        r["person_key"]: r for r in daily_comparison(inputs(), "ckd_epi_2009_creatinine").to_dicts()
+    }
+    assert (
+        round(persons["A"]["egfr_in_force"], 1) == 60.6
+        and round(persons["A"]["egfr_other"], 1) == 57.0
+    )
     assert (persons["A"]["g_in_force"], persons["A"]["g_comparison"]) == ("G2", "G3a")
-    assert round(persons["B"]["egfr_in_force"], 1) == 104.0 and round(persons["B"]["egfr_other"], 1) == 99.2
-    assert round(persons["C"]["egfr_in_force"], 1) == 53.0 and round(persons["C"]["egfr_other"], 1) == 49.9
+    assert (
+        round(persons["B"]["egfr_in_force"], 1) == 104.0
+        and round(persons["B"]["egfr_other"], 1) == 99.2
+    )
+    assert (
+        round(persons["C"]["egfr_in_force"], 1) == 53.0
+        and round(persons["C"]["egfr_other"], 1) == 49.9
+    )
     assert len(persons) == 3  # C's two results of one day count once
 
 
 def test_matrix_and_summary_by_hand():
     persons = daily_comparison(inputs(), "ckd_epi_2009_creatinine")
-    matrix = reclassification(persons, "2026-10", "ckd_epi_2021_creatinine", ["ckd_epi_2009_creatinine", COMBINED])
-    cells = {(r["district_code"], r["comparison"], r["g_in_force"], r["g_comparison"]): r["persons"]
-             for r in matrix.to_dicts() if r["persons"]}
-    assert cells == {("WF01", "ckd_epi_2009_creatinine", "G2", "G3a"): 1,
-                     ("WF01", "ckd_epi_2009_creatinine", "G1", "G1"): 1,
-                     ("WF02", "ckd_epi_2009_creatinine", "G3a", "G3a"): 1,
-                     ("ALL", "ckd_epi_2009_creatinine", "G2", "G3a"): 1,
-                     ("ALL", "ckd_epi_2009_creatinine", "G1", "G1"): 1,
-                     ("ALL", "ckd_epi_2009_creatinine", "G3a", "G3a"): 1}
+    matrix = reclassification(
+        persons, "2026-10", "ckd_epi_2021_creatinine", ["ckd_epi_2009_creatinine", COMBINED]
+    )
+    cells = {
+        (r["district_code"], r["comparison"], r["g_in_force"], r["g_comparison"]): r["persons"]
+        for r in matrix.to_dicts()
+        if r["persons"]
+    }
+    assert cells == {
+        ("WF01", "ckd_epi_2009_creatinine", "G2", "G3a"): 1,
+        ("WF01", "ckd_epi_2009_creatinine", "G1", "G1"): 1,
+        ("WF02", "ckd_epi_2009_creatinine", "G3a", "G3a"): 1,
+        ("ALL", "ckd_epi_2009_creatinine", "G2", "G3a"): 1,
+        ("ALL", "ckd_epi_2009_creatinine", "G1", "G1"): 1,
+        ("ALL", "ckd_epi_2009_creatinine", "G3a", "G3a"): 1,
+    }
     # every cell of the 6 x 6 grid, per district (WF01, WF02, ALL) and comparison (2)
     assert matrix.height == 3 * 2 * 36
     totals, categories = summary(matrix)
@@ -81,17 +116,28 @@ def test_matrix_and_summary_by_hand():
     # the categories add up to the totals, column by column
     for (district, comparison), row in t.items():
         mine = [r for k, r in s.items() if k[:2] == (district, comparison)]
-        assert sum(r["persons_in_force"] for r in mine) == sum(r["persons_comparison"] for r in mine) \
+        assert (
+            sum(r["persons_in_force"] for r in mine)
+            == sum(r["persons_comparison"] for r in mine)
             == row["persons_compared"]
-        assert sum(r["moved_to_lower_gfr_category"] for r in mine) == row["moved_to_lower_gfr_category"]
+        )
+        assert (
+            sum(r["moved_to_lower_gfr_category"] for r in mine)
+            == row["moved_to_lower_gfr_category"]
+        )
 
 
 def test_cystatin_days_compare_the_combined_equation():
     frame = inputs().with_columns(
-        pl.when(pl.col("person_key") == "B").then(pl.lit(COMBINED)).otherwise(pl.col("egfr_equation"))
+        pl.when(pl.col("person_key") == "B")
+        .then(pl.lit(COMBINED))
+        .otherwise(pl.col("egfr_equation"))
         .alias("egfr_equation"),
-        pl.when(pl.col("person_key") == "B").then(85.0).otherwise(pl.col("egfr")).alias("egfr"))
-    persons = daily_comparison(frame, "ckd_epi_2009_creatinine").filter(pl.col("comparison") == COMBINED)
+        pl.when(pl.col("person_key") == "B").then(85.0).otherwise(pl.col("egfr")).alias("egfr"),
+    )
+    persons = daily_comparison(frame, "ckd_epi_2009_creatinine").filter(
+        pl.col("comparison") == COMBINED
+    )
     assert persons.select("person_key", "g_in_force", "g_comparison").rows() == [("B", "G1", "G2")]
 
 
@@ -102,20 +148,33 @@ def test_confirmed_ckd_under_the_comparison_by_hand(tmp_path, small_config):
     from tests.conftest import rows, run_month, write_inbox
 
     header = "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status"
-    lines = [f"TOKQ1,1955,F,WF01,S{i},{day},2160-0,1.0,mg/dL,final"
-             for i, day in enumerate(["2025-03-01", "2025-04-15", "2025-06-20"])]
-    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join([header, *lines]) + "\n"})
+    lines = [
+        f"TOKQ1,1955,F,WF01,S{i},{day},2160-0,1.0,mg/dL,final"
+        for i, day in enumerate(["2025-03-01", "2025-04-15", "2025-06-20"])
+    ]
+    inbox = write_inbox(
+        tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join([header, *lines]) + "\n"}
+    )
     with run_month(small_config, inbox, tmp_path / "out", period="2026-01") as con:
-        got = rows(con, "select persons_compared, persons_ckd_in_force, persons_ckd_comparison, "
-                        "moved_to_lower_gfr_category from main.district_equation_change "
-                        "where district_code = 'ALL' and comparison = 'ckd_epi_2009_creatinine'")
+        got = rows(
+            con,
+            "select persons_compared, persons_ckd_in_force, persons_ckd_comparison, "
+            "moved_to_lower_gfr_category from main.district_equation_change "
+            "where district_code = 'ALL' and comparison = 'ckd_epi_2009_creatinine'",
+        )
         assert got == [(1, 0, 1, 1)]
-        matrix = rows(con, "select g_in_force, g_comparison from main.equation_reclassification "
-                           "where district_code = 'ALL' and comparison = 'ckd_epi_2009_creatinine' and persons = 1")
+        matrix = rows(
+            con,
+            "select g_in_force, g_comparison from main.equation_reclassification "
+            "where district_code = 'ALL' and comparison = 'ckd_epi_2009_creatinine' and persons = 1",
+        )
         assert matrix == [("G2", "G3a")]
         # the creatinine-cystatin C comparison compares no one here and counts no CKD
-        assert rows(con, "select persons_compared, persons_ckd_comparison from main.district_equation_change "
-                         f"where district_code = 'ALL' and comparison = '{COMBINED}'") == [(0, None)]
+        assert rows(
+            con,
+            "select persons_compared, persons_ckd_comparison from main.district_equation_change "
+            f"where district_code = 'ALL' and comparison = '{COMBINED}'",
+        ) == [(0, None)]
 
 
 def test_the_same_equation_on_both_sides_changes_nothing(tmp_path, small_config):
@@ -126,14 +185,23 @@ def test_the_same_equation_on_both_sides_changes_nothing(tmp_path, small_config)
     edit_pipeline_yaml(small_config, "summaries", "equation_comparison", "ckd_epi_2021_creatinine")
     header = "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status"
     days = ["2025-03-01", "2025-04-15", "2025-06-20"]
-    lines = [f"TOK{p},{1950 + i},{'FM'[i % 2]},WF0{i % 4 + 1},S{p}{j},{day},2160-0,{scr},mg/dL,final"
-             for i, (p, scr) in enumerate([("A", 1.0), ("B", 1.6), ("C", 2.4), ("D", 0.8)])
-             for j, day in enumerate(days)]
-    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join([header, *lines]) + "\n"})
+    lines = [
+        f"TOK{p},{1950 + i},{'FM'[i % 2]},WF0{i % 4 + 1},S{p}{j},{day},2160-0,{scr},mg/dL,final"
+        for i, (p, scr) in enumerate([("A", 1.0), ("B", 1.6), ("C", 2.4), ("D", 0.8)])
+        for j, day in enumerate(days)
+    ]
+    inbox = write_inbox(
+        tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join([header, *lines]) + "\n"}
+    )
     with run_month(small_config, inbox, tmp_path / "out", period="2026-01") as con:
-        got = rows(con, "select persons_compared, moved_to_lower_gfr_category, moved_to_higher_gfr_category, "
-                        "persons_ckd_in_force, persons_ckd_comparison from main.district_equation_change "
-                        "where district_code = 'ALL' and comparison = 'ckd_epi_2021_creatinine'")
-        ckd = rows(con, "select count(*) from person_status where period = '2026-01' and has_confirmed_ckd")[0][0]
+        got = rows(
+            con,
+            "select persons_compared, moved_to_lower_gfr_category, moved_to_higher_gfr_category, "
+            "persons_ckd_in_force, persons_ckd_comparison from main.district_equation_change "
+            "where district_code = 'ALL' and comparison = 'ckd_epi_2021_creatinine'",
+        )
+        ckd = rows(
+            con, "select count(*) from person_status where period = '2026-01' and has_confirmed_ckd"
+        )[0][0]
         assert ckd >= 2  # the check has something to compare (B and C stay below 60 for 111 days)
         assert got == [(4, 0, 0, ckd, ckd)]

@@ -520,7 +520,7 @@ def test_gfr_categories_partition_the_number_line(values):
     # KDIGO 2012 table: every finite non-negative eGFR is in exactly one category, in order.
     values = sorted(values)
     got = column(eq.gfr_category(X), xs(values))
-    for value, category in zip(values, got):
+    for value, category in zip(values, got, strict=False):
         matches = [c for c, lo, hi in KDIGO_G_TABLE if lo <= value < hi]
         assert matches == [category]
     ranks = [G_ORDER.index(c) for c in got]
@@ -596,7 +596,7 @@ def test_albuminuria_categories_partition_the_number_line(values, inclusive):
     for n in names:
         _, a2, a3 = A_FUNCTIONS[n]
         got = result[n].to_list()
-        for value, category in zip(values, got):
+        for value, category in zip(values, got, strict=False):
             in_a2 = a2 <= value <= a3 if inclusive else a2 <= value < a3
             in_a3 = value > a3 if inclusive else value >= a3
             hits = (("A1", value < a2), ("A2", in_a2), ("A3", in_a3))
@@ -653,9 +653,7 @@ SUMIDA_RISES = (
 
 @SETTINGS
 @given(
-    pairs=st.lists(
-        st.tuples(st.floats(1.0, 1e5), st.floats(1.0001, 50.0)), min_size=1, max_size=10
-    )
+    pairs=st.lists(st.tuples(st.floats(1.0, 1e5), st.floats(1.0001, 50.0)), min_size=1, max_size=10)
 )
 def test_acr_from_pcr_sumida_increases_with_pcr(pairs):
     # Property of the recalled equation (from memory): all slopes positive.
@@ -677,7 +675,9 @@ KDIGO_GRID = {
     "G5": ("very high", "very high", "very high"),
 }
 GRID_CELLS = [
-    (g, a, risk) for g, row in KDIGO_GRID.items() for a, risk in zip(("A1", "A2", "A3"), row)
+    (g, a, risk)
+    for g, row in KDIGO_GRID.items()
+    for a, risk in zip(("A1", "A2", "A3"), row, strict=False)
 ]
 
 

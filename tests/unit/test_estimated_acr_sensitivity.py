@@ -41,18 +41,32 @@ LINES = [
 
 
 def test_added_counts_by_hand(tmp_path: Path, small_config: Path):
-    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join([HEADER, *LINES]) + "\n"})
+    inbox = write_inbox(
+        tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join([HEADER, *LINES]) + "\n"}
+    )
     with run_month(small_config, inbox, tmp_path / "out", period="2026-01") as con:
-        got = {r[0]: r[1:] for r in rows(con, "select district_code, persons_tested_added, persons_ckd_added, "
-                                              "with_acr_added, with_egfr_and_acr_added from "
-                                              "main.district_estimated_acr_sensitivity where period = '2026-01'")}
+        got = {
+            r[0]: r[1:]
+            for r in rows(
+                con,
+                "select district_code, persons_tested_added, persons_ckd_added, "
+                "with_acr_added, with_egfr_and_acr_added from "
+                "main.district_estimated_acr_sensitivity where period = '2026-01'",
+            )
+        }
         assert got["WF01"] == (1, 1, 2, 1)
         assert got["WF02"] == (0, 1, 0, 0)
         assert got["ALL"] == (1, 2, 2, 1)
         # the default leaves them out: nobody here has confirmed CKD by default
-        assert rows(con, "select persons_ckd from main.district_ckd_prevalence where district_code = 'ALL' "
-                         "and sex = 'ALL' and age_band = 'ALL'") == [(0,)]
+        assert rows(
+            con,
+            "select persons_ckd from main.district_ckd_prevalence where district_code = 'ALL' "
+            "and sex = 'ALL' and age_band = 'ALL'",
+        ) == [(0,)]
         # every published count here is from 1 to 10: blank
-        published = rows(con, "select persons_ckd_added from published.district_estimated_acr_sensitivity "
-                              "where district_code = 'ALL'")
+        published = rows(
+            con,
+            "select persons_ckd_added from published.district_estimated_acr_sensitivity "
+            "where district_code = 'ALL'",
+        )
         assert published == [(None,)]

@@ -42,14 +42,20 @@ def test_a_damaged_warehouse_exits_4_with_one_line_and_a_log(tmp_path: Path):
     assert str(log) in result.output.replace("\n", "")
     assert "Traceback (most recent call last)" in log.read_text(encoding="utf-8")
     verbose = run(out, "--verbose")
-    assert verbose.exit_code == cli.EXIT_INTERNAL and "Traceback (most recent call last)" in verbose.output
+    assert (
+        verbose.exit_code == cli.EXIT_INTERNAL
+        and "Traceback (most recent call last)" in verbose.output
+    )
 
 
 def test_an_output_path_that_cannot_be_a_folder_exits_4(tmp_path: Path):
     blocker = tmp_path / "file"
     blocker.write_text("x")
     result = run(blocker / "out")  # a folder under a file: NotADirectoryError
-    assert result.exit_code == cli.EXIT_INTERNAL and "internal failure: NotADirectoryError" in result.output
+    assert (
+        result.exit_code == cli.EXIT_INTERNAL
+        and "internal failure: NotADirectoryError" in result.output
+    )
     assert "Traceback" not in result.output
 
 
@@ -57,7 +63,11 @@ def test_an_output_path_that_cannot_be_a_folder_exits_4(tmp_path: Path):
 def small_mount(tmp_path: Path):
     point = tmp_path / "mnt"
     point.mkdir()
-    made = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=256k", "tmpfs", str(point)], capture_output=True, check=False)
+    made = subprocess.run(
+        ["mount", "-t", "tmpfs", "-o", "size=256k", "tmpfs", str(point)],
+        capture_output=True,
+        check=False,
+    )
     if made.returncode != 0:
         pytest.skip("mounting a tmpfs is not permitted here")
     try:
@@ -83,7 +93,11 @@ def test_a_full_disk_is_named_as_such():
 @pytest.mark.slow
 def test_a_full_output_disk_exits_4_not_1(small_mount: Path):
     # the mount filled to the last block: the warehouse cannot be written (a whole run, Prefect too)
-    subprocess.run(["dd", "if=/dev/zero", f"of={small_mount / 'filler'}", "bs=4k"], capture_output=True, check=False)
+    subprocess.run(
+        ["dd", "if=/dev/zero", f"of={small_mount / 'filler'}", "bs=4k"],
+        capture_output=True,
+        check=False,
+    )
     result = run(small_mount / "out")
     assert result.exit_code == cli.EXIT_INTERNAL, result.output
     assert "disk is full" in result.output and "Traceback" not in result.output
@@ -131,7 +145,10 @@ def test_backfill_command_reports_the_finished_month(tmp_path: Path):
     result = runner.invoke(cli.app, ["backfill", "--from", "2025-06", "--to", "2025-06", "--config", str(CONFIG_DIR),
                                      "--out", str(out)])  # fmt: skip
     assert result.exit_code == 0, result.output
-    assert "finished a stopped run: 2025-06" in result.output and "already published, skipped" in result.output
+    assert (
+        "finished a stopped run: 2025-06" in result.output
+        and "already published, skipped" in result.output
+    )
 
 
 # --------------------------------------------------------------------------- a killed run
@@ -146,7 +163,10 @@ def test_a_killed_run_leaves_no_prefect_server_behind(tmp_path: Path):
 
     import psutil
 
-    env = {**os.environ, "KIDNEYSURV_PSEUDONYM_KEY": "a-test-key-made-only-for-this-check-0123456789"}
+    env = {
+        **os.environ,
+        "KIDNEYSURV_PSEUDONYM_KEY": "a-test-key-made-only-for-this-check-0123456789",
+    }
     env.pop("PREFECT_API_URL", None)
     proc = subprocess.Popen([str(Path(sys.executable).parent / "kidneysurv"), "run", "--period", "2025-06", "--config",
                              str(CONFIG_DIR), "--inbox", str(ROOT / "sample_extracts"), "--out", str(tmp_path / "out")],
@@ -159,7 +179,9 @@ def test_a_killed_run_leaves_no_prefect_server_behind(tmp_path: Path):
             server = next((k for k in kids if "uvicorn" in " ".join(k.cmdline())), None)
             time.sleep(0.2)
         assert server is not None, "the run never started Prefect's temporary server"
-        proc.send_signal(signal.SIGKILL)  # no atexit, no finally: what the out-of-memory killer does
+        proc.send_signal(
+            signal.SIGKILL
+        )  # no atexit, no finally: what the out-of-memory killer does
         proc.wait()
         gone, _ = psutil.wait_procs([server], timeout=20)
         assert gone, "Prefect's temporary server outlived the killed run"

@@ -65,10 +65,18 @@ def checked(settings, tmp_path: Path, text: str, name: str = "results_2026-01.cs
     return check_file(settings, SOURCE, path)
 
 
-def read_rows(settings, tmp_path: Path, text: str, source: SourceConfig | None = None) -> dict[int, dict]:
+def read_rows(
+    settings, tmp_path: Path, text: str, source: SourceConfig | None = None
+) -> dict[int, dict]:
     source = source or settings.source(SOURCE)
-    path = write_inbox(tmp_path, {f"{SOURCE}/results_2026-01.csv": text}) / SOURCE / "results_2026-01.csv"
-    item = InboxFile(source.id, path, f"{SOURCE}/results_2026-01.csv", sha256_of(path), 1, file_id=1)
+    path = (
+        write_inbox(tmp_path, {f"{SOURCE}/results_2026-01.csv": text})
+        / SOURCE
+        / "results_2026-01.csv"
+    )
+    item = InboxFile(
+        source.id, path, f"{SOURCE}/results_2026-01.csv", sha256_of(path), 1, file_id=1
+    )
     frame = read_inbox_file(source, item, settings, TODAY)
     return {r["line_no"]: r for r in frame.iter_rows(named=True)}
 
@@ -82,7 +90,7 @@ def messages(report) -> list[str]:
 
 def test_the_token_never_reaches_the_raw_text_wherever_it_sits(settings, tmp_path: Path):
     bad = row(1, person_token=TOKEN, value="abc")  # rejected: not a number
-    quoted_token = 'WF-7c1e,0a99'  # a token that needs quoting (RFC 4180)
+    quoted_token = "WF-7c1e,0a99"  # a token that needs quoting (RFC 4180)
     escaped_token = 'WF-7c"1e0a99'  # a token with a quote, doubled inside quotes
     text = lines([
         ",".join(bad),                                                         # 2: in its place
@@ -97,13 +105,24 @@ def test_the_token_never_reaches_the_raw_text_wherever_it_sits(settings, tmp_pat
     rows = read_rows(settings, tmp_path, text)
     assert sorted(rows) == [2, 3, 4, 5, 6, 7, 8, 9]
     for line, r in rows.items():
-        for token in (TOKEN, quoted_token, escaped_token, escaped_token.replace('"', '""'), "7c1e0a99"):
+        for token in (
+            TOKEN,
+            quoted_token,
+            escaped_token,
+            escaped_token.replace('"', '""'),
+            "7c1e0a99",
+        ):
             assert token not in r["raw_text"], (line, r["raw_text"])
     # fields that cannot be matched to the header: count and lengths only, never the text
-    assert rows[3]["raw_text"] == "[text withheld: 14 fields, lengths 0,11,4,1,4,9,10,6,3,5,5,0,10,0]"
+    assert (
+        rows[3]["raw_text"] == "[text withheld: 14 fields, lengths 0,11,4,1,4,9,10,6,3,5,5,0,10,0]"
+    )
     assert rows[4]["raw_text"].startswith("[text withheld: 12 fields, lengths ")
     assert rows[5]["raw_text"].startswith("[text withheld: 14 fields")
-    assert rows[2]["raw_text"] == "[person],1961,F,WF01,WGH000001,2026-01-10,2160-0,abc,mg/dL,final,,2026-01-11,"
+    assert (
+        rows[2]["raw_text"]
+        == "[person],1961,F,WF01,WGH000001,2026-01-10,2160-0,abc,mg/dL,final,,2026-01-11,"
+    )
     assert rows[6]["raw_text"].startswith("[person],1961,F,WF01,[person],")
     report = checked(settings, tmp_path / "c", text)
     assert not any(t in m for m in messages(report) for t in (TOKEN, "7c1e", "0a99"))
@@ -117,7 +136,9 @@ def test_a_rejected_row_message_quotes_no_identifier(settings, tmp_path: Path):
     report = checked(settings, tmp_path, csv_text(rows))
     n, examples = report.reasons["identifier_in_value"]
     assert n == 2 and [line for line, _ in examples] == [6, 19]
-    assert all("5550" not in m and "HOLLOWAY" not in m and "Maren" not in m for m in messages(report))
+    assert all(
+        "5550" not in m and "HOLLOWAY" not in m and "Maren" not in m for m in messages(report)
+    )
     assert "field 'value' holds what looks like phone numbers" in examples[0][1]
     assert report.outcomes["accepted"] == 28 and report.rows_read == 30
 
@@ -142,7 +163,10 @@ def test_an_identifier_beyond_the_first_thousand_rows_is_found(settings, tmp_pat
     assert report.fault and "e-mail addresses" in report.fault and "line 2719" in report.fault
     rows[2717] = row(2717, value="+99 5550 100200")
     report = checked(settings, tmp_path / "b", csv_text(rows))
-    assert report.reasons["identifier_in_value"] == (1, [(2719, report.reasons["identifier_in_value"][1][0][1])])
+    assert report.reasons["identifier_in_value"] == (
+        1,
+        [(2719, report.reasons["identifier_in_value"][1][0][1])],
+    )
 
 
 def test_a_column_of_repeated_names_is_a_column_of_names(settings, tmp_path: Path):
@@ -165,14 +189,21 @@ def test_header_words_for_identifiers_hold_the_file_back(settings, tmp_path: Pat
     assert report.fault and f"column {column!r}: {pattern}" in report.fault
 
 
-@pytest.mark.parametrize("value", ["(020) 555 0134", "555 013 4567", "HOLLOWAY, Maren", "O'NEILL, Brannock Vey"])
+@pytest.mark.parametrize(
+    "value", ["(020) 555 0134", "555 013 4567", "HOLLOWAY, Maren", "O'NEILL, Brannock Vey"]
+)
 def test_local_phone_forms_and_surname_first_names_are_recognised(value):
     assert identifiers.value_patterns(value) & {"phone", "person_name", "national_id"}
 
 
 def test_an_allowed_column_is_not_quarantined(settings, tmp_path: Path):
-    source = settings.source(SOURCE).model_copy(update={"allowed_identifier_columns": {
-        "specimen_id": "this lab's specimen numbers are written in 3-3-4 groups"}})
+    source = settings.source(SOURCE).model_copy(
+        update={
+            "allowed_identifier_columns": {
+                "specimen_id": "this lab's specimen numbers are written in 3-3-4 groups"
+            }
+        }
+    )
     rows = [row(i) for i in range(30)]
     rows[3] = row(3, specimen_id="123 456 7890")
     got = read_rows(settings, tmp_path, csv_text(rows), source)
@@ -185,7 +216,9 @@ def test_an_identifying_file_name_is_stored_as_its_hash(settings, tmp_path: Path
     [item] = scan_inbox(None, settings, inbox)
     assert item.name_withheld == ["person_name", "phone"]
     assert "Holloway" not in item.rel_path and "0401555123" not in item.rel_path
-    assert item.rel_path.startswith(f"{SOURCE}/name-withheld-2026-01-") and item.rel_path.endswith(".csv")
+    assert item.rel_path.startswith(f"{SOURCE}/name-withheld-2026-01-") and item.rel_path.endswith(
+        ".csv"
+    )
     assert item.path.name == name  # the file itself is read as it is
     held = write_inbox(tmp_path / "h", {f"{SOURCE}/{name}": "not,a,header\n1,2,3\n"})
     [item] = scan_inbox(None, settings, held)
@@ -205,9 +238,13 @@ def test_an_identifying_file_name_is_stored_as_its_hash(settings, tmp_path: Path
 def test_a_last_line_without_a_line_end_is_rejected_as_truncated(settings, tmp_path: Path):
     text = csv_text([row(1), row(2, value="2.7")], end="")  # "2.75" cut to "2.7"
     report = checked(settings, tmp_path, text)
-    assert report.reasons["truncated_line"][0] == 1 and report.reasons["truncated_line"][1][0][0] == 3
+    assert (
+        report.reasons["truncated_line"][0] == 1 and report.reasons["truncated_line"][1][0][0] == 3
+    )
     relaxed = settings.source(SOURCE).model_copy(update={"last_line_end": "optional"})
-    assert all(r["row_fault"] is None for r in read_rows(settings, tmp_path / "r", text, relaxed).values())
+    assert all(
+        r["row_fault"] is None for r in read_rows(settings, tmp_path / "r", text, relaxed).values()
+    )
 
 
 @pytest.mark.parametrize("field, value, reason", [
@@ -218,7 +255,9 @@ def test_a_last_line_without_a_line_end_is_rejected_as_truncated(settings, tmp_p
     ("specimen_id", "WGH\x00001", "control_character"),
     ("value", "1.0\x1b", "control_character"),
 ])  # fmt: skip
-def test_malformed_values_are_rejected_not_read_leniently(settings, tmp_path: Path, field, value, reason):
+def test_malformed_values_are_rejected_not_read_leniently(
+    settings, tmp_path: Path, field, value, reason
+):
     report = checked(settings, tmp_path, csv_text([row(1), row(2, **{field: value})]))
     assert report.reasons[reason][0] == 1, report.reasons
     assert report.outcomes["accepted"] == 1
@@ -239,9 +278,13 @@ def test_a_lower_case_district_code_is_matched(settings, tmp_path: Path):
     assert report.outcomes["accepted"] == 1
 
 
-def test_a_collection_date_after_the_run_is_rejected_whatever_the_report_date(settings, tmp_path: Path):
+def test_a_collection_date_after_the_run_is_rejected_whatever_the_report_date(
+    settings, tmp_path: Path
+):
     later = (TODAY + dt.timedelta(days=400)).isoformat()
-    report = checked(settings, tmp_path, csv_text([row(1), row(2, collected_date=later, reported_at=later)]))
+    report = checked(
+        settings, tmp_path, csv_text([row(1), row(2, collected_date=later, reported_at=later)])
+    )
     assert report.reasons["collected_after_run"][0] == 1
 
 
@@ -264,8 +307,14 @@ def test_an_amended_row_before_its_final_of_the_same_report_date_wins(settings, 
                                "pending": 0}  # fmt: skip
 
 
-def test_a_specimen_under_two_persons_is_a_conflict_and_both_rows_are_kept_out(settings, tmp_path: Path):
-    rows = [row(1), row(2), row(3, specimen_id="WGH000001")]  # person 3 reuses person 1's specimen id
+def test_a_specimen_under_two_persons_is_a_conflict_and_both_rows_are_kept_out(
+    settings, tmp_path: Path
+):
+    rows = [
+        row(1),
+        row(2),
+        row(3, specimen_id="WGH000001"),
+    ]  # person 3 reuses person 1's specimen id
     report = checked(settings, tmp_path, csv_text(rows))
     assert report.outcomes["accepted"] == 1 and report.outcomes["rejected"] == 2
     n, examples = report.reasons["specimen_conflict"]

@@ -83,8 +83,14 @@ def test_values_that_look_like_identifiers_are_flagged():
     data[6][HEADER.index("birth_year")] = "1961-03-14"
     patterns = {(f.column, f.pattern) for f in identifiers.screen_table(header, [(n, r) for n, r in enumerate(data)],
                                                                      ["birth_year"])}  # fmt: skip
-    assert {("note", "email"), ("note", "street_address"), ("contact", "phone"), ("ref2", "national_id"),
-            ("who", "person_name"), ("birth_year", "birth_date")} == patterns
+    assert {
+        ("note", "email"),
+        ("note", "street_address"),
+        ("contact", "phone"),
+        ("ref2", "national_id"),
+        ("who", "person_name"),
+        ("birth_year", "birth_date"),
+    } == patterns
 
 
 def test_full_birth_date_in_a_mapped_birth_column_whatever_its_name():
@@ -108,7 +114,12 @@ def test_a_few_name_like_values_are_flagged_and_their_rows_quarantined():
     # flagged and the rows that hold one are listed for quarantine (not the whole file)
     data = [row(i) + [v] for i, v in enumerate(["Alder Bank", "7", "Alder Bank"] + ["7"] * 7)]
     [found] = identifiers.screen_table([*HEADER, "area"], [(n + 2, r) for n, r in enumerate(data)])
-    assert (found.column, found.pattern, found.whole_column, found.lines) == ("area", "person_name", False, (2, 4))
+    assert (found.column, found.pattern, found.whole_column, found.lines) == (
+        "area",
+        "person_name",
+        False,
+        (2, 4),
+    )
 
 
 def test_a_district_name_of_the_region_is_a_place_not_a_name():
@@ -118,10 +129,14 @@ def test_a_district_name_of_the_region_is_a_place_not_a_name():
 
 
 def test_message_names_file_column_and_pattern_but_never_the_value(tmp_path: Path):
-    lines = [",".join([*HEADER, "email"])] + [",".join(row(i) + [f"p{i}@example.invalid"]) for i in range(3)]
+    lines = [",".join([*HEADER, "email"])] + [
+        ",".join(row(i) + [f"p{i}@example.invalid"]) for i in range(3)
+    ]
     path = write_inbox(tmp_path, {"test_standard_lab/results_2026-01.csv": "\n".join(lines) + "\n"}) / \
         "test_standard_lab" / "results_2026-01.csv"  # fmt: skip
-    item = InboxFile(STANDARD.id, path, "test_standard_lab/results_2026-01.csv", sha256_of(path), 1, file_id=1)
+    item = InboxFile(
+        STANDARD.id, path, "test_standard_lab/results_2026-01.csv", sha256_of(path), 1, file_id=1
+    )
     with pytest.raises(FileFault) as refused:
         read_inbox_file(STANDARD, item, load_settings(CONFIG_DIR), TODAY)
     message = str(refused.value)
@@ -131,7 +146,9 @@ def test_message_names_file_column_and_pattern_but_never_the_value(tmp_path: Pat
 
 
 def test_values_beyond_the_header_are_screened(tmp_path: Path):
-    data = [row(0) + ["p0@example.invalid"]]  # one field too many: kept in the rejected row's raw text
+    data = [
+        row(0) + ["p0@example.invalid"]
+    ]  # one field too many: kept in the rejected row's raw text
     found = identifiers.screen_table(HEADER, [(2, data[0])])
     assert [(f.column, f.pattern) for f in found] == [("(field 14, beyond the header)", "email")]
 
@@ -157,23 +174,37 @@ def test_fhir_patient_identifier_elements_are_flagged(extra, path, pattern):
 
 def test_fhir_patient_with_district_and_birth_date_passes():
     # only the year of birthDate is read, and Patient records are never stored (threat model)
-    assert identifiers.screen_resources("Patient", [(i, _patient(i, birthDate="1961-03-14")) for i in range(5)]) == []
+    assert (
+        identifiers.screen_resources(
+            "Patient", [(i, _patient(i, birthDate="1961-03-14")) for i in range(5)]
+        )
+        == []
+    )
 
 
 def test_fhir_observation_subject_display_is_a_name():
-    obs = {"resourceType": "Observation", "subject": {"reference": "Patient/fr-1", "display": "Maren Holloway"}}
-    assert [(f.column, f.pattern) for f in identifiers.screen_resources("Observation", [(1, obs)])] == [
-        ("Observation.subject.display", "person_name")
-    ]
+    obs = {
+        "resourceType": "Observation",
+        "subject": {"reference": "Patient/fr-1", "display": "Maren Holloway"},
+    }
+    assert [
+        (f.column, f.pattern) for f in identifiers.screen_resources("Observation", [(1, obs)])
+    ] == [("Observation.subject.display", "person_name")]
 
 
 def test_fhir_export_with_patient_names_is_refused(tmp_path: Path):
     folder = tmp_path / "test_fhir_lab" / "2026-01"
     folder.mkdir(parents=True)
-    (folder / "Patient.ndjson").write_text(json.dumps(_patient(1, name=[{"text": "Maren Holloway"}])) + "\n")
+    (folder / "Patient.ndjson").write_text(
+        json.dumps(_patient(1, name=[{"text": "Maren Holloway"}])) + "\n"
+    )
     obs = folder / "Observation.ndjson"
-    obs.write_text('{"resourceType":"Observation","status":"final","subject":{"reference":"Patient/fr-1"}}\n')
-    item = InboxFile(FHIR.id, obs, "test_fhir_lab/2026-01/Observation.ndjson", sha256_of(obs), 1, file_id=1)
+    obs.write_text(
+        '{"resourceType":"Observation","status":"final","subject":{"reference":"Patient/fr-1"}}\n'
+    )
+    item = InboxFile(
+        FHIR.id, obs, "test_fhir_lab/2026-01/Observation.ndjson", sha256_of(obs), 1, file_id=1
+    )
     with pytest.raises(FileFault) as refused:
         read_inbox_file(FHIR, item, load_settings(CONFIG_DIR), TODAY)
     assert str(folder / "Patient.ndjson") in str(refused.value)
@@ -183,12 +214,16 @@ def test_fhir_export_with_patient_names_is_refused(tmp_path: Path):
 # --------------------------------------------------------------------------- allowed with a reason
 
 
-REASON = "national number used as the linkage token; re-keyed by HMAC before storage (reviewed 2026-01)"
+REASON = (
+    "national number used as the linkage token; re-keyed by HMAC before storage (reviewed 2026-01)"
+)
 
 
 def test_allowed_column_needs_a_written_reason():
     with pytest.raises(ValidationError):
-        SourceConfig(id="x_lab", layout="standard", folder="x", allowed_identifier_columns={"email": "ok"})
+        SourceConfig(
+            id="x_lab", layout="standard", folder="x", allowed_identifier_columns={"email": "ok"}
+        )
 
 
 def test_allowed_column_by_name_or_standard_field():
@@ -196,7 +231,9 @@ def test_allowed_column_by_name_or_standard_field():
     for allowed in ({"PatientRef": REASON}, {"person_token": REASON}):
         refused, kept = identifiers.split_allowed(found, allowed, {"PatientRef": "person_token"})
         assert refused == [] and kept[0].allowed_reason == REASON
-    refused, kept = identifiers.split_allowed(found, {"other": REASON}, {"PatientRef": "person_token"})
+    refused, kept = identifiers.split_allowed(
+        found, {"other": REASON}, {"PatientRef": "person_token"}
+    )
     assert refused == found and kept == []
 
 
@@ -206,15 +243,22 @@ def test_allowed_column_is_ingested_and_its_reason_reaches_the_run_manifest(tmp_
     data = yaml.safe_load(path.read_text(encoding="utf-8"))
     data["allowed_identifier_columns"] = {"person_token": REASON}
     path.write_text(yaml.safe_dump(data), encoding="utf-8")
-    lines = [",".join(HEADER)] + [",".join(row(i, person_token=f"904-1{i}-345{i}")) for i in range(6)]
+    lines = [",".join(HEADER)] + [
+        ",".join(row(i, person_token=f"904-1{i}-345{i}")) for i in range(6)
+    ]
     rel = "westerfold_general_lab/results_2026-01.csv"
     inbox = write_inbox(tmp_path, {rel: "\n".join(lines) + "\n"})
     summary = run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "out"), demo=True)
     assert summary["held_back_files"] == {}
-    manifest = json.loads((tmp_path / "out" / "2026-01" / "run_manifest.json").read_text(encoding="utf-8"))
+    manifest = json.loads(
+        (tmp_path / "out" / "2026-01" / "run_manifest.json").read_text(encoding="utf-8")
+    )
     [entry] = [f for f in manifest["input_files"] if f["file_path"] == rel]
     assert entry["status"] == "ingested" and entry["rows_read"] == 6
-    assert "column 'person_token': national-ID-like numbers" in entry["message"] and REASON in entry["message"]
+    assert (
+        "column 'person_token': national-ID-like numbers" in entry["message"]
+        and REASON in entry["message"]
+    )
     text = json.dumps(manifest)
     assert "904-10-3450" not in text  # the value itself is in no output
 

@@ -53,7 +53,9 @@ class _Reference:
 
 def reference_screen(header, rows, births) -> list[identifiers.Finding]:
     findings, flagged = identifiers._name_findings(header)
-    births = set(births) | {h for h in header if re.search(r"birth|born|dob", identifiers.normalise_column(h))}
+    births = set(births) | {
+        h for h in header if re.search(r"birth|born|dob", identifiers.normalise_column(h))
+    }
     columns: dict[int, _Reference] = {}
     for line, fields in rows:
         for i, value in enumerate(fields):
@@ -84,7 +86,9 @@ SHAPES = st.sampled_from([
 VALUE = st.one_of(st.text(st.sampled_from(ALPHABET), max_size=24), SHAPES,
                   st.builds(lambda a, b: a + b, SHAPES, st.text(st.sampled_from(ALPHABET), max_size=4)))  # fmt: skip
 
-FAST = settings(max_examples=300, deadline=None, database=None, suppress_health_check=[HealthCheck.too_slow])
+FAST = settings(
+    max_examples=300, deadline=None, database=None, suppress_health_check=[HealthCheck.too_slow]
+)
 
 
 @FAST
@@ -111,11 +115,16 @@ HEADER = ["person_token", "birth_year", "note", "who"]
 def test_bulk_screen_gives_the_findings_of_the_per_value_screen(rows):
     # the same findings, word for word (messages are stored in the ledger), beyond the header too
     sample = [(n + 2, r) for n, r in enumerate(rows)]
-    assert identifiers.screen_table(HEADER, sample, ["birth_year"]) == reference_screen(HEADER, sample, ["birth_year"])
+    assert identifiers.screen_table(HEADER, sample, ["birth_year"]) == reference_screen(
+        HEADER, sample, ["birth_year"]
+    )
 
 
 def test_many_name_like_values_are_counted_up_to_a_thousand():
-    names = [f"Maren Hol{chr(97 + i % 26)}{chr(97 + i // 26 % 26)}{chr(97 + i // 676)}way" for i in range(1500)]
+    names = [
+        f"Maren Hol{chr(97 + i % 26)}{chr(97 + i // 26 % 26)}{chr(97 + i // 676)}way"
+        for i in range(1500)
+    ]
     sample = [(n + 2, ["WF-1", "1960", "", v]) for n, v in enumerate(names * 2)]
     assert identifiers.screen_table(HEADER, sample) == reference_screen(HEADER, sample, [])
 

@@ -49,7 +49,15 @@ FHIR = SourceConfig.model_validate(
         "fhir": {"linkage_identifier_system": "urn:westerfold:linkage-token"},
     }
 )  # fmt: skip
-TOKENS = ["WF-tok00001", "WF-tok00002", "WF-tok00003", "WF-tok00004", "MRN-77", "Patient/p1", "Patient/p2"]
+TOKENS = [
+    "WF-tok00001",
+    "WF-tok00002",
+    "WF-tok00003",
+    "WF-tok00004",
+    "MRN-77",
+    "Patient/p1",
+    "Patient/p2",
+]
 
 
 @pytest.fixture
@@ -58,10 +66,14 @@ def settings(small_config: Path) -> Settings:
 
 
 def item_for(source: SourceConfig, path: Path, rel: str | None = None) -> InboxFile:
-    return InboxFile(source.id, path, rel or path.name, sha256_of(path), path.stat().st_size, file_id=1)
+    return InboxFile(
+        source.id, path, rel or path.name, sha256_of(path), path.stat().st_size, file_id=1
+    )
 
 
-def read(source: SourceConfig, path: Path, settings: Settings, rel: str | None = None) -> pl.DataFrame:
+def read(
+    source: SourceConfig, path: Path, settings: Settings, rel: str | None = None
+) -> pl.DataFrame:
     return read_inbox_file(source, item_for(source, path, rel), settings, TODAY)
 
 
@@ -80,7 +92,10 @@ def test_standard_layout_line_numbers_and_masked_raw_text(settings: Settings):
     rows = by_line(frame)
     assert sorted(rows) == [2, 4, 5, 7]
     assert rows[2]["raw_text"] == "[person],1960,F,WF01,S0001,2025-03-10,2160-0,1.0,mg/dL,final"
-    assert rows[5]["raw_text"] == '[person],1970,F,WF03,"S0003\ncontinued",2025-03-12,2160-0,0.9,mg/dL,final'
+    assert (
+        rows[5]["raw_text"]
+        == '[person],1970,F,WF03,"S0003\ncontinued",2025-03-12,2160-0,0.9,mg/dL,final'
+    )
     assert rows[5]["specimen_id"] == "S0003\ncontinued"
     assert rows[2]["person_token"] == "WF-tok00001"
     assert rows[2]["linkage_domain"] == SHARED_DOMAIN
@@ -100,8 +115,12 @@ def test_standard_layout_short_row_is_flagged(settings: Settings):
 
 
 def test_report_date_from_file_name_month(settings: Settings, tmp_path: Path):
-    inbox = write_inbox(tmp_path, {"lab/results_2025-03.csv": (INGEST / "standard_basic.csv").read_text()})
-    frame = read(STANDARD, inbox / "lab/results_2025-03.csv", settings, rel="lab/results_2025-03.csv")
+    inbox = write_inbox(
+        tmp_path, {"lab/results_2025-03.csv": (INGEST / "standard_basic.csv").read_text()}
+    )
+    frame = read(
+        STANDARD, inbox / "lab/results_2025-03.csv", settings, rel="lab/results_2025-03.csv"
+    )
     assert set(frame["reported_date"]) == {dt.date(2025, 3, 31)}
     assert set(frame["reported_date_basis"]) == {"file_name"}
 
@@ -129,7 +148,11 @@ def test_semicolon_decimal_comma_day_month_year(settings: Settings):
 
 def test_thousands_separator_comma(settings: Settings, tmp_path: Path):
     source = SEMICOLON.model_copy(update={"thousands_separator": ",", "decimal_mark": "."})
-    text = (INGEST / "semicolon_decimal_comma.csv").read_text(encoding="utf-8").replace("88,4", "1,234.5")
+    text = (
+        (INGEST / "semicolon_decimal_comma.csv")
+        .read_text(encoding="utf-8")
+        .replace("88,4", "1,234.5")
+    )
     inbox = write_inbox(tmp_path, {"x.csv": text})
     assert by_line(read(source, inbox / "x.csv", settings))[2]["value_clean"] == "1234.5"
 
@@ -155,7 +178,9 @@ def test_fhir_patient_identifier_is_the_token(fhir_rows):
     row = fhir_rows[1]
     assert row["person_token"] == "WF-tok00001" and row["linkage_domain"] == SHARED_DOMAIN
     assert row["sex_text"] == "female" and row["birth_year_text"] == "1960"
-    assert row["test_code"] == "2160-0" and row["value_text"] == "1.1" and row["unit_text"] == "mg/dL"
+    assert (
+        row["test_code"] == "2160-0" and row["value_text"] == "1.1" and row["unit_text"] == "mg/dL"
+    )
     assert row["specimen_id"] == "F0001"
     assert row["collected_date"] == dt.date(2025, 3, 10)
     assert row["reported_date"] == dt.date(2025, 3, 11) and row["reported_date_basis"] == "reported"
@@ -183,7 +208,10 @@ def test_fhir_malformed_and_unknown_records_become_rows(fhir_rows):
     assert sorted(fhir_rows) == [1, 2, 3, 4, 6, 7]
     assert fhir_rows[4]["row_fault"].startswith("malformed_record")
     # not readable: which part is what is not certain, so its text is not kept
-    assert fhir_rows[4]["raw_text"] == "[text withheld: a record of 15 characters that is not a readable Observation]"
+    assert (
+        fhir_rows[4]["raw_text"]
+        == "[text withheld: a record of 15 characters that is not a readable Observation]"
+    )
     assert fhir_rows[6]["row_fault"].startswith("malformed_record")  # a Patient, not an Observation
     assert fhir_rows[7]["row_fault"].startswith("unknown_patient")
     assert fhir_rows[7]["status"] == "amended" and fhir_rows[7]["status_text"] == "Amended"
@@ -192,7 +220,9 @@ def test_fhir_malformed_and_unknown_records_become_rows(fhir_rows):
 
 def test_fhir_malformed_record_masks_the_subject(settings: Settings, tmp_path: Path):
     fhir = INGEST / "fhir_export" / "2025-03"
-    truncated = '{"resourceType":"Observation","id":"o9","subject":{"reference":"Patient/p2"},"status":"fin'
+    truncated = (
+        '{"resourceType":"Observation","id":"o9","subject":{"reference":"Patient/p2"},"status":"fin'
+    )
     inbox = write_inbox(tmp_path, {
         "2025-03/Patient.ndjson": (fhir / "Patient.ndjson").read_text(encoding="utf-8"),
         "2025-03/Observation.ndjson": truncated + "\n",
@@ -204,8 +234,12 @@ def test_fhir_malformed_record_masks_the_subject(settings: Settings, tmp_path: P
 def test_crlf_line_endings(settings: Settings, tmp_path: Path):
     text = (INGEST / "standard_basic.csv").read_text(encoding="utf-8").replace("\n", "\r\n")
     inbox = write_inbox(tmp_path, {"crlf.csv": text})
-    assert read(STANDARD, inbox / "crlf.csv", settings).select("line_no", "raw_text").equals(
-        read(STANDARD, INGEST / "standard_basic.csv", settings).select("line_no", "raw_text")
+    assert (
+        read(STANDARD, inbox / "crlf.csv", settings)
+        .select("line_no", "raw_text")
+        .equals(
+            read(STANDARD, INGEST / "standard_basic.csv", settings).select("line_no", "raw_text")
+        )
     )
 
 
@@ -252,7 +286,9 @@ def test_scan_marks_a_copy_under_another_name(settings: Settings, tmp_path: Path
     text = (INGEST / "standard_basic.csv").read_text(encoding="utf-8")
     folder = settings.source("westerfold_general_lab").folder
     inbox = write_inbox(tmp_path, {f"{folder}/a.csv": text, f"{folder}/b.csv": text})
-    items = [i for i in scan_inbox(None, settings, inbox) if i.source_id == "westerfold_general_lab"]
+    items = [
+        i for i in scan_inbox(None, settings, inbox) if i.source_id == "westerfold_general_lab"
+    ]
     assert [(i.rel_path, i.status, i.same_as) for i in items] == [
         (f"{folder}/a.csv", "new", None),
         (f"{folder}/b.csv", "duplicate_file", f"{folder}/a.csv"),
@@ -302,12 +338,16 @@ def test_person_key_same_token_same_key_different_secret_or_domain_differs():
 
 def test_add_person_keys_same_token_across_labs_links(settings: Settings):
     standard = add_person_keys(read(STANDARD, INGEST / "standard_basic.csv", settings), KEY)
-    fhir = add_person_keys(read(FHIR, INGEST / "fhir_export/2025-03/Observation.ndjson", settings), KEY)
+    fhir = add_person_keys(
+        read(FHIR, INGEST / "fhir_export/2025-03/Observation.ndjson", settings), KEY
+    )
     expected = person_key(KEY, SHARED_DOMAIN, "WF-tok00001")
     assert standard.filter(pl.col("line_no") == 2)["person_key"].item() == expected
     assert fhir.filter(pl.col("line_no") == 1)["person_key"].item() == expected
     # the lab-local fallback is keyed in the lab's own domain
-    assert fhir.filter(pl.col("line_no") == 3)["person_key"].item() == person_key(KEY, "test_fhir_lab", "Patient/p2")
+    assert fhir.filter(pl.col("line_no") == 3)["person_key"].item() == person_key(
+        KEY, "test_fhir_lab", "Patient/p2"
+    )
 
 
 def test_blank_token_gives_null_key(settings: Settings, tmp_path: Path):
@@ -320,10 +360,14 @@ def test_extra_columns_are_ignored_and_named_in_the_ledger(tmp_path):
     from tests.conftest import make_small_config, rows, run_month, write_inbox
 
     config = make_small_config(tmp_path / "config")
-    text = ("person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,"
-            "status,ward\nWF-x1,1960,F,WF01,S1,2026-01-10,2160-0,1.0,mg/dL,final,B4\n")
+    text = (
+        "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,"
+        "status,ward\nWF-x1,1960,F,WF01,S1,2026-01-10,2160-0,1.0,mg/dL,final,B4\n"
+    )
     inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": text})
     with run_month(config, inbox, tmp_path / "out") as con:
-        status, message, accepted = rows(con, "select status, message, rows_accepted from ingest_files")[0]
+        status, message, accepted = rows(
+            con, "select status, message, rows_accepted from ingest_files"
+        )[0]
     assert (status, accepted) == ("ingested", 1)
     assert "ignored: ward" in message

@@ -49,7 +49,9 @@ def sample_inbox(tmp_path: Path, names: list[str]) -> Path:
 
 def described(con, frame: pl.DataFrame) -> list[tuple[str, str]]:
     relation = con.from_arrow(frame.to_arrow())
-    return [(name, str(dtype)) for name, dtype in zip(relation.columns, relation.types)]
+    return [
+        (name, str(dtype)) for name, dtype in zip(relation.columns, relation.types, strict=False)
+    ]
 
 
 class Collect:
@@ -62,7 +64,9 @@ class Collect:
         self.frames.append(frame)
 
 
-def test_each_file_is_landed_as_read_and_the_table_keeps_its_schema(small_config: Path, tmp_path: Path):
+def test_each_file_is_landed_as_read_and_the_table_keeps_its_schema(
+    small_config: Path, tmp_path: Path
+):
     settings = load_settings(small_config)
     inbox = sample_inbox(tmp_path, SAMPLE_FILES)
     items = scan_inbox(None, settings, inbox)
@@ -77,7 +81,9 @@ def test_each_file_is_landed_as_read_and_the_table_keeps_its_schema(small_config
         expected = []
         for file_id, item in enumerate(items, start=1):
             item.file_id = file_id
-            frame = read_inbox_file(settings.source(item.source_id), item, settings, TODAY, run_day=TODAY)
+            frame = read_inbox_file(
+                settings.source(item.source_id), item, settings, TODAY, run_day=TODAY
+            )
             expected.append(add_person_keys(frame, KEY))
         assert summary.files_new == len(items) == 4
         assert landed.equals(pl.concat(expected))
@@ -100,7 +106,9 @@ def test_judging_file_by_file_equals_judging_the_run_at_once(small_config: Path,
     files (two CSV layouts and a FHIR export) handed over one by one equal those of the same
     rows judged in one statement."""
     settings = load_settings(small_config)
-    inbox = sample_inbox(tmp_path, [f for f in SAMPLE_FILES if not f.endswith("results_2025-06.csv")])
+    inbox = sample_inbox(
+        tmp_path, [f for f in SAMPLE_FILES if not f.endswith("results_2025-06.csv")]
+    )
     con = warehouse.connect(tmp_path / "w.duckdb")
     try:
         warehouse.load_reference_tables(con, settings)
@@ -124,6 +132,8 @@ def test_judging_file_by_file_equals_judging_the_run_at_once(small_config: Path,
     assert by_file.sort("file_id", "line_no").equals(at_once.sort("file_id", "line_no"))
     # rejected rows keep their raw line; well-formed rows do not carry it
     assert by_file.filter(pl.col("reason_code").is_not_null())["raw_text"].null_count() == 0
-    assert by_file.filter(pl.col("reason_code").is_null())["raw_text"].null_count() == by_file.filter(
-        pl.col("reason_code").is_null()).height
+    assert (
+        by_file.filter(pl.col("reason_code").is_null())["raw_text"].null_count()
+        == by_file.filter(pl.col("reason_code").is_null()).height
+    )
     assert by_file["reason_code"].null_count() < by_file.height

@@ -86,7 +86,9 @@ def test_layout_parquet_maps_columns_like_the_delimited_layout():
 
 def test_parquet_with_the_content_of_a_csv_lands_the_same_rows(config: Path, tmp_path: Path):
     settings = load_settings(config)
-    inbox = write_inbox(tmp_path, {f"{PARQUET}/results_2025-06.parquet": parquet_bytes(sample_table())})
+    inbox = write_inbox(
+        tmp_path, {f"{PARQUET}/results_2025-06.parquet": parquet_bytes(sample_table())}
+    )
     from_csv = read(settings, STANDARD, SAMPLE_CSV, f"{STANDARD}/results_2025-06.csv")
     from_parquet = read(settings, PARQUET, inbox / PARQUET / "results_2025-06.parquet",
                         f"{PARQUET}/results_2025-06.parquet")  # fmt: skip
@@ -101,7 +103,9 @@ def test_parquet_with_the_content_of_a_csv_lands_the_same_rows(config: Path, tmp
 def test_raw_text_is_the_record_as_json_with_the_token_masked(config: Path, tmp_path: Path):
     table = sample_table(3)
     inbox = write_inbox(tmp_path, {f"{PARQUET}/x.parquet": parquet_bytes(table)})
-    frame = read(load_settings(config), PARQUET, inbox / PARQUET / "x.parquet", f"{PARQUET}/x.parquet")
+    frame = read(
+        load_settings(config), PARQUET, inbox / PARQUET / "x.parquet", f"{PARQUET}/x.parquet"
+    )
     first = json.loads(frame["raw_text"][0])
     assert first["person_token"] == "[person]"
     assert list(first) == table.column_names
@@ -121,12 +125,22 @@ def test_typed_columns_are_read_as_text_as_reported(config: Path, tmp_path: Path
         "fasting": pa.array([True, False]),
     })  # fmt: skip
     inbox = write_inbox(tmp_path, {f"{PARQUET}/t.parquet": parquet_bytes(table)})
-    frame = read(load_settings(config), PARQUET, inbox / PARQUET / "t.parquet", f"{PARQUET}/t.parquet")
+    frame = read(
+        load_settings(config), PARQUET, inbox / PARQUET / "t.parquet", f"{PARQUET}/t.parquet"
+    )
     got = frame.select("line_no", "person_token", "birth_year_text", "collected_text", "collected_date",
                        "value_text", "fasting_text").rows()  # fmt: skip
     assert got == [
         (1, "WF-t1", "1960", "2025-06-02", dt.date(2025, 6, 2), "1.02", "true"),
-        (2, None, "1971", "2025-06-03", dt.date(2025, 6, 3), "", "false"),  # a null is an empty field
+        (
+            2,
+            None,
+            "1971",
+            "2025-06-03",
+            dt.date(2025, 6, 3),
+            "",
+            "false",
+        ),  # a null is an empty field
     ]
 
 
@@ -156,7 +170,9 @@ BROKEN = {
 
 
 @pytest.mark.parametrize("case", sorted(BROKEN))
-def test_a_broken_parquet_file_is_held_back_and_the_others_go_on(config: Path, tmp_path: Path, case: str):
+def test_a_broken_parquet_file_is_held_back_and_the_others_go_on(
+    config: Path, tmp_path: Path, case: str
+):
     content, reason = BROKEN[case]
     inbox = write_inbox(tmp_path, {
         f"{PARQUET}/a_{case}.parquet": content,
@@ -166,9 +182,21 @@ def test_a_broken_parquet_file_is_held_back_and_the_others_go_on(config: Path, t
     con = warehouse.connect(tmp_path / "w.duckdb")
     try:
         frames: list[pl.DataFrame] = []
-        summary = land_inbox(con, load_settings(config), inbox, KEY, "2025-06", TODAY,
-                             sink=lambda _con, frame: frames.append(frame))
-        ledger = {p: (s, m, n) for p, s, m, n in rows(con, "select file_path, status, message, rows_read from ingest_files")}
+        summary = land_inbox(
+            con,
+            load_settings(config),
+            inbox,
+            KEY,
+            "2025-06",
+            TODAY,
+            sink=lambda _con, frame: frames.append(frame),
+        )
+        ledger = {
+            p: (s, m, n)
+            for p, s, m, n in rows(
+                con, "select file_path, status, message, rows_read from ingest_files"
+            )
+        }
         landed = dict(pl.concat(frames).group_by("source_id").len().iter_rows())
     finally:
         con.close()
@@ -186,12 +214,17 @@ def test_a_parquet_extract_with_identifier_columns_is_refused(config: Path, tmp_
     inbox = write_inbox(tmp_path, {f"{PARQUET}/n.parquet": parquet_bytes(table)})
     con = warehouse.connect(tmp_path / "w.duckdb")
     try:
-        land_inbox(con, load_settings(config), inbox, KEY, "2025-06", TODAY, sink=lambda _con, _frame: None)
+        land_inbox(
+            con, load_settings(config), inbox, KEY, "2025-06", TODAY, sink=lambda _con, _frame: None
+        )
         [(status, message)] = rows(con, "select status, message from ingest_files")
     finally:
         con.close()
     assert status == "held_back"
-    assert "refused by the identifier screen" in message and "column 'patient_name': person names" in message
+    assert (
+        "refused by the identifier screen" in message
+        and "column 'patient_name': person names" in message
+    )
     assert "Maren" not in message
 
 
@@ -211,7 +244,9 @@ def test_a_parquet_file_runs_through_the_whole_month(config: Path, tmp_path: Pat
             from ingest_files""")}  # fmt: skip
         accepted = dict(rows(con, "select source_id, count(*) from lab_results group by all"))
     status, read_, accounted = ledger[f"{PARQUET}/results_2025-06.parquet"]
-    assert status == "ingested" and read_ == accounted == sample_table().num_rows  # every row accounted for
+    assert (
+        status == "ingested" and read_ == accounted == sample_table().num_rows
+    )  # every row accounted for
     assert ledger[f"{PARQUET}/results_2025-06_broken.parquet"][0] == "held_back"
     assert ledger[f"{STANDARD}/results_2025-06.csv"][:1] == ("ingested",)
     assert accepted[PARQUET] > 0.9 * read_ and accepted[STANDARD] == 1

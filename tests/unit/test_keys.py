@@ -78,7 +78,11 @@ def test_a_key_file_others_may_read_or_change_is_refused(tmp_path, monkeypatch, 
     with pytest.raises(KeyFileUnsafe) as refused:
         resolve_key(demo=False)
     message = str(refused.value)
-    assert str(path) in message and f"{stat.S_IMODE(path.stat().st_mode):04o}" in message and "chmod 600" in message
+    assert (
+        str(path) in message
+        and f"{stat.S_IMODE(path.stat().st_mode):04o}" in message
+        and "chmod 600" in message
+    )
     assert SECRET not in message
     with pytest.raises(KeyMissing):  # the CLI's usage-error path (exit 2) catches it
         resolve_key(demo=True)
@@ -102,7 +106,9 @@ def test_non_demo_run_without_a_key_refuses_to_start(tmp_path):
         resolve_key(demo=False)
     config = make_small_config(tmp_path / "config")
     with pytest.raises(KeyMissing):
-        run_month_plain("2026-01", str(config), str(_inbox(tmp_path)), str(tmp_path / "out"), demo=False)
+        run_month_plain(
+            "2026-01", str(config), str(_inbox(tmp_path)), str(tmp_path / "out"), demo=False
+        )
     assert not (tmp_path / "out" / WAREHOUSE_FILE).exists()
 
 
@@ -122,7 +128,9 @@ def test_the_key_is_never_printed():
 def _inbox(tmp_path: Path) -> Path:
     lines = [f"WF-{p:08x},{1950 + p},{'FM'[p % 2]},WF0{1 + p % 4},WGH{p:05d},2026-01-{1 + p % 27:02d},2160-0,"
              f"{0.7 + p / 50:.2f},mg/dL,final,,2026-01-{1 + p % 27:02d},\n" for p in range(30)]  # fmt: skip
-    return write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": HEADER + "".join(lines)})
+    return write_inbox(
+        tmp_path, {"westerfold_general_lab/results_2026-01.csv": HEADER + "".join(lines)}
+    )
 
 
 @pytest.fixture(scope="module")
@@ -168,7 +176,10 @@ def test_the_key_is_in_no_output_and_no_log(secret_run, capfd):
 
 
 def _modes(out: Path) -> dict[str, int]:
-    return {p.relative_to(out).as_posix() or ".": stat.S_IMODE(p.stat().st_mode) for p in [out, *out.rglob("*")]}
+    return {
+        p.relative_to(out).as_posix() or ".": stat.S_IMODE(p.stat().st_mode)
+        for p in [out, *out.rglob("*")]
+    }
 
 
 def test_warehouse_and_output_folders_are_owner_only(secret_run):
@@ -187,7 +198,9 @@ def test_outputs_made_with_the_demo_key_say_so(tmp_path):
     run_month_plain("2026-01", str(config), str(_inbox(tmp_path)), str(out), demo=True)
     folder = out / "2026-01"
     assert json.loads((folder / "run_summary.json").read_text(encoding="utf-8"))["demo_key"] is True
-    assert json.loads((folder / "run_manifest.json").read_text(encoding="utf-8"))["demo_key"] is True
+    assert (
+        json.loads((folder / "run_manifest.json").read_text(encoding="utf-8"))["demo_key"] is True
+    )
     assert "demo key" in (folder / "report.html").read_text(encoding="utf-8").lower()
     con = duckdb.connect(str(out / WAREHOUSE_FILE), read_only=True)
     try:

@@ -27,7 +27,13 @@ def frame(pairs: list[tuple[str | None, str | None]]) -> pl.DataFrame:
 
 
 def test_keys_are_hmac_sha256_of_domain_and_token_with_or_without_the_cache():
-    rows = [("shared", "WF-a1"), ("shared", "WF-b2"), ("lab_x", "WF-a1"), ("shared", None), ("shared", "WF-a1")]
+    rows = [
+        ("shared", "WF-a1"),
+        ("shared", "WF-b2"),
+        ("lab_x", "WF-a1"),
+        ("shared", None),
+        ("shared", "WF-a1"),
+    ]
     cache = PersonKeyCache(KEY)
     keyed = add_person_keys(frame(rows), KEY, cache)
     assert keyed.equals(add_person_keys(frame(rows), KEY))
@@ -47,8 +53,12 @@ def test_each_token_is_hashed_once_per_run(monkeypatch):
 
     monkeypatch.setattr(pseudonymise, "_hash_pairs", counting)
     cache = PersonKeyCache(KEY)
-    first = add_person_keys(frame([("shared", "WF-a1"), ("shared", "WF-b2"), ("shared", "WF-a1")]), KEY, cache)
-    second = add_person_keys(frame([("shared", "WF-b2"), ("shared", "WF-c3"), ("lab_x", "WF-b2")]), KEY, cache)
+    first = add_person_keys(
+        frame([("shared", "WF-a1"), ("shared", "WF-b2"), ("shared", "WF-a1")]), KEY, cache
+    )
+    second = add_person_keys(
+        frame([("shared", "WF-b2"), ("shared", "WF-c3"), ("lab_x", "WF-b2")]), KEY, cache
+    )
     assert hashed == [2, 2]  # a1, b2; then c3 and (lab_x, b2): b2 in the shared domain was known
     assert len(cache) == 4
     assert first["person_key"][1] == second["person_key"][0]  # the same token, the same key
@@ -63,4 +73,6 @@ def test_the_cache_never_shows_a_token_or_the_key():
 
 def test_a_cache_is_for_one_key():
     with pytest.raises(ValueError, match="another key"):
-        add_person_keys(frame([("shared", "WF-a1")]), PseudonymKey(b"other", False), PersonKeyCache(KEY))
+        add_person_keys(
+            frame([("shared", "WF-a1")]), PseudonymKey(b"other", False), PersonKeyCache(KEY)
+        )

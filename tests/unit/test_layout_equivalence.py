@@ -14,13 +14,20 @@ TRAJECTORY = [("2025-01-10", 0.80), ("2025-02-20", 0.82), ("2025-06-01", 1.60), 
 
 
 def _standard() -> str:
-    lines = ["person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status,reported_at"]
-    lines += [f"WF-std,1965,F,WF01,G{i},{d},2160-0,{v:.2f},mg/dL,final,{d}" for i, (d, v) in enumerate(TRAJECTORY)]
+    lines = [
+        "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status,reported_at"
+    ]
+    lines += [
+        f"WF-std,1965,F,WF01,G{i},{d},2160-0,{v:.2f},mg/dL,final,{d}"
+        for i, (d, v) in enumerate(TRAJECTORY)
+    ]
     return "\n".join(lines) + "\n"
 
 
 def _semicolon() -> str:
-    lines = ["PatientRef;YearOfBirth;Gender;AreaCode;SampleNo;SampleDate;TestCode;Result;Units;State;ReportDate"]
+    lines = [
+        "PatientRef;YearOfBirth;Gender;AreaCode;SampleNo;SampleDate;TestCode;Result;Units;State;ReportDate"
+    ]
     for i, (d, v) in enumerate(TRAJECTORY):
         y, m, dd = d.split("-")
         umol = f"{v * 88.4:.2f}".replace(".", ",")
@@ -63,7 +70,11 @@ def test_events_are_the_same_through_every_layout(tmp_path):
     events = {}
     for source, *event in by_source:
         events.setdefault(source, []).append(tuple(event))
-    assert set(events) == {"westerfold_general_lab", "corvale_lab_chain", "fallowmere_reference_lab"}
+    assert set(events) == {
+        "westerfold_general_lab",
+        "corvale_lab_chain",
+        "fallowmere_reference_lab",
+    }
     standard = events["westerfold_general_lab"]
     assert ("sustained_decline_40", "confirmed") in {(r, s) for r, s, *_ in standard}
     assert events["corvale_lab_chain"] == standard

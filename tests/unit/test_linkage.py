@@ -71,18 +71,30 @@ def insert(con, person: str, egfr: list[tuple[int, float]] = (), acr: list[tuple
     for offset, value in acr:
         con.execute(
             "insert into measures_base values (?, ?, ?, 'acr', null, ?, ?, ?, null, ?, ?, null, ?)",
-            [person, day(offset), day(offset + reported_lag), value, estimated_acr,
-             "A1" if value < 30 else "A2" if value <= 300 else "A3", age,
-             "estimated_from_pcr" if estimated_acr else "measured_acr", value >= 30],
+            [
+                person,
+                day(offset),
+                day(offset + reported_lag),
+                value,
+                estimated_acr,
+                "A1" if value < 30 else "A2" if value <= 300 else "A3",
+                age,
+                "estimated_from_pcr" if estimated_acr else "measured_acr",
+                value >= 30,
+            ],
         )
 
 
 def build(con, period_end: dt.date = PERIOD_END) -> dict[tuple[str, str], dict]:
-    params = {**event_params(load_settings(CONFIG_DIR), Period.parse(PERIOD)), "period_end": period_end}
+    params = {
+        **event_params(load_settings(CONFIG_DIR), Period.parse(PERIOD)),
+        "period_end": period_end,
+    }
     # what results_known / measures_known do upstream: only what is known by the period end
     con.execute(
         "create or replace table measures_known as select * from measures_base "
-        "where collected_date <= ? and reported_date <= ?", [period_end, period_end],
+        "where collected_date <= ? and reported_date <= ?",
+        [period_end, period_end],
     )
     build_table(con, "daily_values_averaged", params=params)
     build_table(con, "kidney_events", params=params)
@@ -266,7 +278,9 @@ def test_rapid_decline_slope_matches_scipy_least_squares(warehouse):
     insert(warehouse, "short", [(0, 70.0), (100, 60.0), (200, 50.0)])  # steep, but under a year
     events = build(warehouse, period_end=day(420))
     expected = linregress([d / 365.25 for d, _ in points], [v for _, v in points]).slope
-    assert events[("fast", "rapid_decline")]["slope_ml_min_per_year"] == pytest.approx(expected, abs=0.01)
+    assert events[("fast", "rapid_decline")]["slope_ml_min_per_year"] == pytest.approx(
+        expected, abs=0.01
+    )
     assert ("slow", "rapid_decline") not in events
     assert ("short", "rapid_decline") not in events
 
@@ -318,7 +332,10 @@ def test_censored_acrs_below_a2_are_not_ckd(warehouse):
         insert_acr(warehouse, "p", offset, acr_mg_g=None, above_a2=False, comparator="<")
     events = build(warehouse)
     assert status(events, "p", "ckd_acr") is None
-    daily = rows(warehouse, "select value, is_at_or_above_a2 from daily_values_averaged where measure = 'acr'")
+    daily = rows(
+        warehouse,
+        "select value, is_at_or_above_a2 from daily_values_averaged where measure = 'acr'",
+    )
     assert daily == [(None, False), (None, False)]  # the bound is not averaged as a value
 
 
@@ -341,7 +358,15 @@ def test_ckd_by_acr_follows_the_category_in_the_unit_reported(warehouse):
 def test_timed_albumin_excretion_counts_for_ckd(warehouse):
     # KDIGO 2012: AER >= 30 mg/24 h is A2 or above
     for offset in (0, 100):
-        insert_acr(warehouse, "p", offset, acr_mg_g=None, above_a2=True, basis="timed_albumin_excretion", aer=45.0)
+        insert_acr(
+            warehouse,
+            "p",
+            offset,
+            acr_mg_g=None,
+            above_a2=True,
+            basis="timed_albumin_excretion",
+            aer=45.0,
+        )
     assert status(build(warehouse), "p", "ckd_acr") == "confirmed"
 
 
@@ -411,7 +436,11 @@ def hba1c(con, person: str, offset: int, value: float = 7.0, analyte: str = "hba
 
 def diabetic_onsets(con, params_override: dict | None = None) -> dict[str, int]:
     events = build_with(con, params_override or {})
-    return {p: e["days_since_diabetes"] for (p, rule), e in events.items() if rule == "new_onset_albuminuria"}
+    return {
+        p: e["days_since_diabetes"]
+        for (p, rule), e in events.items()
+        if rule == "new_onset_albuminuria"
+    }
 
 
 def build_with(con, override: dict) -> dict:
@@ -428,23 +457,40 @@ def test_diabetes_needs_a_second_abnormal_result(warehouse):
     hba1c(warehouse, "two_days", 10)
     hba1c(warehouse, "two_days", 40)  # confirmed on day 40
     hba1c(warehouse, "two_tests", 10)
-    hba1c(warehouse, "two_tests", 10, 130.0, "glucose", "mg/dL", fasting=True)  # same day, two tests
+    hba1c(
+        warehouse, "two_tests", 10, 130.0, "glucose", "mg/dL", fasting=True
+    )  # same day, two tests
     hba1c(warehouse, "censored", 10, 6.0, comparator="<")  # "<6.0 %" is below 6.5 %: never abnormal
     hba1c(warehouse, "censored", 40, 7.0)
     for d in (10, 40):
         hba1c(warehouse, "above_low_bound", d, 6.0, comparator=">")  # ">6.0 %": maybe below 6.5 %
         hba1c(warehouse, "above_high_bound", d, 14.0, comparator=">")  # ">14 %": certainly >= 6.5 %
-    for person in ("one", "two_days", "two_tests", "censored", "above_low_bound", "above_high_bound"):
+    for person in (
+        "one",
+        "two_days",
+        "two_tests",
+        "censored",
+        "above_low_bound",
+        "above_high_bound",
+    ):
         insert_acr(warehouse, person, 100, acr_mg_g=50.0, above_a2=True)
     assert diabetic_onsets(warehouse) == {"two_days": 60, "two_tests": 90, "above_high_bound": 60}
     # diabetes_rule: single (one abnormal result)
     got = diabetic_onsets(warehouse, {"diabetes_min_results": 1})
-    assert got == {"one": 90, "two_days": 90, "two_tests": 90, "censored": 60, "above_high_bound": 90}
+    assert got == {
+        "one": 90,
+        "two_days": 90,
+        "two_tests": 90,
+        "censored": 60,
+        "above_high_bound": 90,
+    }
 
 
 def test_diabetes_rule_setting_reaches_the_sql(settings):
     # ADA Standards of Care: a second abnormal result confirms (the default); single = one
     assert event_params(settings, Period.parse(PERIOD))["diabetes_min_results"] == 2
     measures = settings.pipeline.measures.model_copy(update={"diabetes_rule": "single"})
-    single = settings.model_copy(update={"pipeline": settings.pipeline.model_copy(update={"measures": measures})})
+    single = settings.model_copy(
+        update={"pipeline": settings.pipeline.model_copy(update={"measures": measures})}
+    )
     assert event_params(single, Period.parse(PERIOD))["diabetes_min_results"] == 1

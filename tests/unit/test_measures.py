@@ -66,7 +66,12 @@ def test_adult_creatinine_uses_ckd_epi_2021():
     ],
 )
 def test_equation_by_age_sex_and_censoring(age, height, sex, comparator, equation, reason):
-    row = one(measures(result(1, "creatinine", 0.5, age=age, height=height, sex=sex, comparator=comparator)), 1)
+    row = one(
+        measures(
+            result(1, "creatinine", 0.5, age=age, height=height, sex=sex, comparator=comparator)
+        ),
+        1,
+    )
     assert row["egfr_equation"] == equation
     assert row["egfr_reason"] == reason
     assert (row["egfr"] is None) == (equation is None)
@@ -100,7 +105,9 @@ def test_same_day_cystatin_gives_the_combined_equation_and_counts_the_day_once()
 
 
 def test_cystatin_on_another_day_is_not_combined():
-    frame = measures(result(1, "creatinine", 0.7), result(2, "cystatin_c", 0.8, day=DAY + dt.timedelta(days=1)))
+    frame = measures(
+        result(1, "creatinine", 0.7), result(2, "cystatin_c", 0.8, day=DAY + dt.timedelta(days=1))
+    )
     assert one(frame, 1)["egfr_equation"] == "ckd_epi_2021_creatinine"
     assert one(frame, 2)["egfr_equation"] == "ckd_epi_2012_cystatin"
 
@@ -155,7 +162,9 @@ def test_acr_computed_from_albumin_and_creatinine_on_the_same_specimen():
     assert row["a_category"] == "A2"
 
 
-@pytest.mark.parametrize(("aer", "category"), [(29.0, "A1"), (30.0, "A2"), (300.0, "A2"), (301.0, "A3")])
+@pytest.mark.parametrize(
+    ("aer", "category"), [(29.0, "A1"), (30.0, "A2"), (300.0, "A2"), (301.0, "A3")]
+)
 def test_timed_albumin_excretion_uses_its_own_thresholds(aer, category):
     # KDIGO 2012: AER < 30 / 30-300 / > 300 mg/24 h
     row = one(measures(result(1, "urine_albumin_24h", aer)), 1)
@@ -196,7 +205,9 @@ def test_dipstick_readings_are_accepted_and_unknown_ones_rejected(tmp_path: Path
         "WF-m1,1960,F,WF01,D2,2026-01-06,5804-0,++,,final,2026-01-07",
         "WF-m1,1960,F,WF01,D3,2026-01-07,5804-0,lots,,final,2026-01-08",
     ]
-    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join(lines) + "\n"})
+    inbox = write_inbox(
+        tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join(lines) + "\n"}
+    )
     with run_month(config, inbox, tmp_path / "out") as con:
         assert rows(con, "select reason_code from rejected_rows") == [("unknown_reading",)]
         got = rows(con, "select a_category, is_acr_estimated from kidney_measures order by line_no")
@@ -208,7 +219,9 @@ def test_a_negative_dipstick_does_not_count_as_an_acr_screen(tmp_path: Path):
     by a urine dipstick, so screening coverage counts a measured ACR only (KDIGO 2012)."""
     config = make_small_config(tmp_path / "config")
     lines = [HEADER]
-    for n in range(12):  # 12 people with diabetes (HbA1c 7.0 % twice, ADA >= 6.5 %): above suppression
+    for n in range(
+        12
+    ):  # 12 people with diabetes (HbA1c 7.0 % twice, ADA >= 6.5 %): above suppression
         token = f"WF-d{n:02d}"
         lines += [
             f"{token},1960,F,WF01,H{n},2026-01-05,4548-4,7.0,%,final,2026-01-06",
@@ -217,8 +230,12 @@ def test_a_negative_dipstick_does_not_count_as_an_acr_screen(tmp_path: Path):
             f"{token},1960,F,WF01,D{n},2026-01-05,5804-0,negative,,final,2026-01-06",
         ]
     # ADA Standards of Care: one abnormal HbA1c is not confirmed diabetes (diabetes_rule confirmed)
-    lines += [f"WF-s{n},1960,F,WF01,S{n},2026-01-05,4548-4,7.0,%,final,2026-01-06" for n in range(3)]
-    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join(lines) + "\n"})
+    lines += [
+        f"WF-s{n},1960,F,WF01,S{n},2026-01-05,4548-4,7.0,%,final,2026-01-06" for n in range(3)
+    ]
+    inbox = write_inbox(
+        tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join(lines) + "\n"}
+    )
     with run_month(config, inbox, tmp_path / "out") as con:
         got = rows(con, "select persons_with_diabetes, with_egfr, with_acr from "
                         "district_screening_coverage where district_code = 'ALL'")  # fmt: skip
@@ -263,11 +280,22 @@ def test_acr_in_mg_mmol_is_categorised_on_the_mg_mmol_thresholds(mg_mmol, catego
         (20.0, "mg/g", ">", None, None, "censored_spans_a2_threshold"),  # A1, A2 or A3
     ],
 )
-def test_censored_acr_counts_only_as_far_as_certain(bound, unit, comparator, category, above_a2, reason):
+def test_censored_acr_counts_only_as_far_as_certain(
+    bound, unit, comparator, category, above_a2, reason
+):
     # KDIGO 2012 thresholds; a censored value ("<X") is only known to lie on one side of X
     factor = 8.84 if unit == "mg/mmol" else 1.0
-    row = one(measures_reported(reported(result(1, "acr", bound * factor, comparator=comparator), bound, unit)), 1)
-    assert (row["a_category"], row["is_at_or_above_a2"], row["acr_reason"]) == (category, above_a2, reason)
+    row = one(
+        measures_reported(
+            reported(result(1, "acr", bound * factor, comparator=comparator), bound, unit)
+        ),
+        1,
+    )
+    assert (row["a_category"], row["is_at_or_above_a2"], row["acr_reason"]) == (
+        category,
+        above_a2,
+        reason,
+    )
     assert row["acr_mg_g"] is None  # a bound is not a measurement
 
 
@@ -275,7 +303,11 @@ def test_censored_timed_excretion_and_its_a2_status():
     # KDIGO 2012: AER A2 from 30 mg/24 h
     below = one(measures(result(1, "urine_albumin_24h", 20.0, comparator="<")), 1)
     above = one(measures(result(2, "urine_albumin_24h", 45.0)), 2)
-    assert (below["a_category"], below["is_at_or_above_a2"], below["aer_mg_24h"]) == ("A1", False, None)
+    assert (below["a_category"], below["is_at_or_above_a2"], below["aer_mg_24h"]) == (
+        "A1",
+        False,
+        None,
+    )
     assert (above["a_category"], above["is_at_or_above_a2"]) == ("A2", True)
 
 
@@ -293,7 +325,9 @@ def test_age_at_collection_is_estimated_from_mid_year(birth_year, collected, equ
     # EKFC from 2 years, CKD-EPI 2021 from 18 (Pottel et al. 2021; Inker et al. 2021); age from
     # the birth year at mid-year (common practice for birth-year-only data)
     row = {**result(1, "creatinine", 0.8, day=collected), "birth_year": birth_year}
-    frame = measure_frame(pl.DataFrame([row], schema={**LAB_COLUMNS, "birth_year": pl.Int64}), SETTINGS)
+    frame = measure_frame(
+        pl.DataFrame([row], schema={**LAB_COLUMNS, "birth_year": pl.Int64}), SETTINGS
+    )
     got = one(frame, 1)
     assert (got["egfr_equation"], got["egfr_reason"]) == (equation, reason)
 
@@ -315,7 +349,9 @@ def test_dipsticks_pass_the_gate_and_reach_kidney_measures_estimated(tmp_path: P
     lines.append("WF-q9,1960,F,WF01,C9,2026-01-05,2160-0,1.0,mg/dL,final,2026-01-06")
     # born 2008: 17 at 5 Jan 2026 with the birth at mid-year, so the children's equation
     lines.append("WF-q8,2008,M,WF01,C8,2026-01-05,2160-0,0.9,mg/dL,final,2026-01-06")
-    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join(lines) + "\n"})
+    inbox = write_inbox(
+        tmp_path, {"westerfold_general_lab/results_2026-01.csv": "\n".join(lines) + "\n"}
+    )
     with run_month(config, inbox, tmp_path / "out") as con:
         assert rows(con, "select count(*) from lab_results") == [(7,)]  # nothing held back
         got = rows(con, "select acr_basis, is_acr_estimated, a_category, acr_reason, acr_mg_g "

@@ -11,8 +11,6 @@ path loses nothing. The values are invented."""
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import duckdb
 import pytest
 
@@ -82,10 +80,14 @@ def month_by_month(tmp_path_factory):
     config = make_small_config(base / "config")
     inbox = write_inbox(base, {k: v for k, v in FILES.items() if "2025-06" in k})
     with run_month(config, inbox, base / "out", period="2025-06") as con:
-        june_events = rows(con, "select person_key, rule_id, event_status from kidney_events order by all")
+        june_events = rows(
+            con, "select person_key, rule_id, event_status from kidney_events order by all"
+        )
     write_inbox(base, FILES)
     with run_month(config, inbox, base / "out", period="2025-07") as con:
-        link = rows(con, "select period, persons, persons_recomputed from link_snapshots order by period")
+        link = rows(
+            con, "select period, persons, persons_recomputed from link_snapshots order by period"
+        )
         yield config, base, snapshot(con, "2025-07"), june_events, link
 
 
@@ -154,7 +156,10 @@ def test_person_ranges_cover_every_key_once():
 
     from pipeline.measures import person_range
 
-    keys = [hashlib.sha256(str(i).encode()).hexdigest()[:32] for i in range(2000)] + ["0" * 32, "f" * 32]
+    keys = [hashlib.sha256(str(i).encode()).hexdigest()[:32] for i in range(2000)] + [
+        "0" * 32,
+        "f" * 32,
+    ]
     for chunks in (1, 3, 14, 100):
         ranges = [person_range(c, chunks) for c in range(chunks)]
         for key in keys:
@@ -200,7 +205,9 @@ def test_measures_reading_other_results_are_recomputed_in_the_month(tmp_path):
     from tests.conftest import make_small_config
 
     config = make_small_config(tmp_path / "config")
-    inbox = write_inbox(tmp_path / "monthly", {k: v for k, v in NEIGHBOURS.items() if "2025-06" in k})
+    inbox = write_inbox(
+        tmp_path / "monthly", {k: v for k, v in NEIGHBOURS.items() if "2025-06" in k}
+    )
     with run_month(config, inbox, tmp_path / "monthly" / "out", period="2025-06") as con:
         june = snapshot(con, "2025-06")["kidney_measures"]
     write_inbox(tmp_path / "monthly", NEIGHBOURS)

@@ -43,7 +43,9 @@ REAL_KEY = "Wf-region-key-3kQ9xZ-invented-for-tests"
 OTHER_KEY = "Wf-another-key-8pLm2R-invented-for-tests"
 
 
-def creatinine_rows(month: str, n: int = 30, first: int = 0, sex: str = "FM", offset: int = 0) -> str:
+def creatinine_rows(
+    month: str, n: int = 30, first: int = 0, sex: str = "FM", offset: int = 0
+) -> str:
     """``n`` serum creatinine results (LOINC 2160-0, mg/dL) collected in ``month``, one person each."""
     return "".join(
         f"WF-{p:08x},{1950 + p % 40},{sex[p % len(sex)]},WF0{1 + p % 4},S{month}{p + offset:05d},"
@@ -60,7 +62,10 @@ def no_key_in_env(monkeypatch):
 
 def lab_results(out: Path) -> list[tuple]:
     with duckdb.connect(str(out / WAREHOUSE_FILE), read_only=True) as con:
-        return rows(con, "select reported_date, reported_date_basis, count(*) from lab_results group by all order by all")
+        return rows(
+            con,
+            "select reported_date, reported_date_basis, count(*) from lab_results group by all order by all",
+        )
 
 
 # --------------------------------------------------------------------------- 1. dating
@@ -81,14 +86,21 @@ def test_an_undated_extract_is_known_at_the_end_of_the_run_period(tmp_path):
 def test_rows_reported_after_the_period_end_are_named_with_counts(tmp_path):
     """Rows reported after the period end wait for their month, and the run says so per source."""
     config = make_small_config(tmp_path / "config")
-    late = "".join(line.rstrip("\n") + ",2026-02-03\n" for line in creatinine_rows("2026-01", 10).splitlines(True))
+    late = "".join(
+        line.rstrip("\n") + ",2026-02-03\n"
+        for line in creatinine_rows("2026-01", 10).splitlines(True)
+    )
     on_time = "".join(line.rstrip("\n") + ",2026-01-29\n" for line in creatinine_rows("2026-01", 20, first=10)
                       .splitlines(True))  # fmt: skip
-    inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": HEADER.rstrip("\n") + ",reported_at\n" + on_time + late})
+    inbox = write_inbox(
+        tmp_path,
+        {f"{LAB}/results_2026-01.csv": HEADER.rstrip("\n") + ",reported_at\n" + on_time + late},
+    )
     summary = run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "out"), demo=True)
     assert summary["persons"] == 20
     assert summary["rows_outside_period"] == {
-        LAB: {"accepted": 30, "after_period_end": 10, "reported_after": 10, "collected_after": 0}}
+        LAB: {"accepted": 30, "after_period_end": 10, "reported_after": 10, "collected_after": 0}
+    }
     (note,) = summary["rows_outside_period_notes"]
     assert note.startswith(f"{LAB}: 10 of 30 accepted rows") and "backfill" in note
     manifest = json.loads((tmp_path / "out" / "2026-01" / "run_manifest.json").read_text())
@@ -101,8 +113,11 @@ def test_a_first_history_load_gives_each_past_month_its_data(tmp_path):
     """A history sent as one undated file, loaded by running the months in order from the first
     (what 'kidneysurv backfill' does): each month counts the results collected by its end."""
     config = make_small_config(tmp_path / "config")
-    history = creatinine_rows("2026-01", 20) + creatinine_rows("2026-02", 20, first=20) + \
-        creatinine_rows("2026-03", 20, first=40)
+    history = (
+        creatinine_rows("2026-01", 20)
+        + creatinine_rows("2026-02", 20, first=20)
+        + creatinine_rows("2026-03", 20, first=40)
+    )
     inbox = write_inbox(tmp_path, {f"{LAB}/history.csv": HEADER + history})
     out = tmp_path / "out"
     first = run_month_plain("2026-01", str(config), str(inbox), str(out), demo=True)
@@ -111,8 +126,11 @@ def test_a_first_history_load_gives_each_past_month_its_data(tmp_path):
     assert [first["persons"], second["persons"], third["persons"]] == [20, 40, 60]
     # the first run says that most of what it loaded counts from later months on
     assert first["rows_outside_period"][LAB]["collected_after"] == 40
-    assert lab_results(out) == [(dt.date(2026, 1, 31), "run_period", 20), (dt.date(2026, 2, 28), "collected_month", 20),
-                                (dt.date(2026, 3, 31), "collected_month", 20)]
+    assert lab_results(out) == [
+        (dt.date(2026, 1, 31), "run_period", 20),
+        (dt.date(2026, 2, 28), "collected_month", 20),
+        (dt.date(2026, 3, 31), "collected_month", 20),
+    ]
 
 
 # --------------------------------------------------------------------------- 2. unmapped codes
@@ -124,9 +142,13 @@ def test_unmapped_sex_codes_are_counted_and_hold_the_source_back(tmp_path):
     rows and the key that maps it, and the share above the limit holds the source back."""
     config = make_small_config(tmp_path / "config")
     edit_pipeline_yaml(config, "quality_gate", "max_unmapped_share", 0.01)  # config/pipeline.yaml's
-    inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 40, sex="WM")})
+    inbox = write_inbox(
+        tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 40, sex="WM")}
+    )
     summary = run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "out"), demo=True)
-    assert summary["unmapped_codes"] == {LAB: {"sex": {"config_key": "sex_codes", "rows": 20, "values": {"W": 20}}}}
+    assert summary["unmapped_codes"] == {
+        LAB: {"sex": {"config_key": "sex_codes", "rows": 20, "values": {"W": 20}}}
+    }
     assert LAB in summary["held_back_sources"] and "sex_codes" in summary["held_back_sources"][LAB]
     assert summary["exit_code"] == 1
     assert summary["sources"][LAB]["held_back"] == 40 and summary["sources"][LAB]["accepted"] == 0
@@ -136,12 +158,15 @@ def test_mapping_the_sex_code_gives_every_result_its_egfr(tmp_path):
     config = make_small_config(tmp_path / "config")
     path = config / "sources" / f"{LAB}.yaml"
     path.write_text(path.read_text() + "sex_codes: {W: F}\n")
-    inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 40, sex="WM")})
+    inbox = write_inbox(
+        tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 40, sex="WM")}
+    )
     summary = run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "out"), demo=True)
     assert summary["unmapped_codes"] == {} and summary["held_back_sources"] == {}
     with duckdb.connect(str(tmp_path / "out" / WAREHOUSE_FILE), read_only=True) as con:
-        assert rows(con, "select sex, count(*), count(egfr) from kidney_measures group by sex order by sex") == \
-            [("F", 20, 20), ("M", 20, 20)]
+        assert rows(
+            con, "select sex, count(*), count(egfr) from kidney_measures group by sex order by sex"
+        ) == [("F", 20, 20), ("M", 20, 20)]
 
 
 def test_unmapped_unit_and_status_below_the_limit_are_named_but_publish(tmp_path):
@@ -169,7 +194,9 @@ def test_a_run_with_another_key_refuses_to_start(tmp_path, monkeypatch):
     """One month keyed with another key would split every person from their history (persons
     5,971 -> 6,239, exit 0, before). Now the warehouse keeps a check value of its key."""
     config = make_small_config(tmp_path / "config")
-    inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 10)})
+    inbox = write_inbox(
+        tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 10)}
+    )
     out = tmp_path / "out"
     monkeypatch.setenv(KEY_ENV, REAL_KEY)
     run_month_plain("2026-01", str(config), str(inbox), str(out))
@@ -183,14 +210,20 @@ def test_a_run_with_another_key_refuses_to_start(tmp_path, monkeypatch):
     result = CliRunner().invoke(app, ["run", "--period", "2026-02", "--config", str(config),
                                       "--inbox", str(inbox), "--out", str(out)])  # fmt: skip
     assert result.exit_code == 2, result.output
-    assert "backfill" in result.output and OTHER_KEY not in result.output and REAL_KEY not in result.output
+    assert (
+        "backfill" in result.output
+        and OTHER_KEY not in result.output
+        and REAL_KEY not in result.output
+    )
     monkeypatch.setenv(KEY_ENV, REAL_KEY)  # the right key still works
     assert run_month_plain("2026-02", str(config), str(inbox), str(out))["period"] == "2026-02"
 
 
 def test_the_demo_key_and_a_real_key_never_mix(tmp_path, monkeypatch):
     config = make_small_config(tmp_path / "config")
-    inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 10)})
+    inbox = write_inbox(
+        tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 10)}
+    )
     run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "demo_out"), demo=True)
     monkeypatch.setenv(KEY_ENV, REAL_KEY)
     with pytest.raises(KeyMismatch, match="DEMO key"):
@@ -201,14 +234,25 @@ def test_the_demo_key_and_a_real_key_never_mix(tmp_path, monkeypatch):
         run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "real_out"), demo=True)
 
 
-@pytest.mark.parametrize("weak", ["short-key-19-chars!", "a" * 40, "abababababababababababababab", " " * 30,
-                                  " " + REAL_KEY, REAL_KEY + "\t"])
+@pytest.mark.parametrize(
+    "weak",
+    [
+        "short-key-19-chars!",
+        "a" * 40,
+        "abababababababababababababab",
+        " " * 30,
+        " " + REAL_KEY,
+        REAL_KEY + "\t",
+    ],
+)
 def test_weak_keys_are_refused_with_how_to_make_one(monkeypatch, weak):
     monkeypatch.setenv(KEY_ENV, weak)
     with pytest.raises(KeyWeak) as refused:
         resolve_key(demo=False)
     message = str(refused.value)
-    assert "secrets.token_urlsafe(32)" in message and (weak.strip() == "" or weak.strip() not in message)
+    assert "secrets.token_urlsafe(32)" in message and (
+        weak.strip() == "" or weak.strip() not in message
+    )
 
 
 def test_good_keys_and_the_demo_key_pass(monkeypatch):
@@ -251,7 +295,9 @@ def test_a_missing_source_holds_the_period_when_configured(tmp_path):
     for other in ("corvale_lab_chain", "fallowmere_reference_lab"):
         path = config / "sources" / f"{other}.yaml"
         path.write_text(path.read_text() + "cadence: none\n")
-    inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 10)})
+    inbox = write_inbox(
+        tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 10)}
+    )
     out = str(tmp_path / "out")
     assert run_month_plain("2026-01", str(config), str(inbox), out, demo=True)["exit_code"] == 0
     second = run_month_plain("2026-02", str(config), str(inbox), out, demo=True)
@@ -265,12 +311,23 @@ def test_the_per_source_table_is_the_periods_own(tmp_path):
     """A month that loaded no file shows no rows for the period (before: the warehouse's totals,
     identical from month to month), with the warehouse's totals apart."""
     config = make_small_config(tmp_path / "config")
-    inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 10)})
+    inbox = write_inbox(
+        tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + creatinine_rows("2026-01", 10)}
+    )
     out = str(tmp_path / "out")
     first = run_month_plain("2026-01", str(config), str(inbox), out, demo=True)
     second = run_month_plain("2026-02", str(config), str(inbox), out, demo=True)
-    assert first["sources"][LAB] == {"files": 1, "read": 10, "accepted": 10, "rejected": 0, "superseded": 0,
-                                     "duplicate": 0, "withdrawn": 0, "pending": 0, "held_back": 0}
+    assert first["sources"][LAB] == {
+        "files": 1,
+        "read": 10,
+        "accepted": 10,
+        "rejected": 0,
+        "superseded": 0,
+        "duplicate": 0,
+        "withdrawn": 0,
+        "pending": 0,
+        "held_back": 0,
+    }
     assert second["sources"] == {}
     assert second["warehouse_sources"][LAB]["read"] == 10
 
@@ -280,13 +337,26 @@ def test_a_held_back_file_balances_as_held_back_rows(tmp_path):
     counted as held back, so read = the sum of the outcomes for every file."""
     config = make_small_config(tmp_path / "config", max_rejection_rate=0.05)
     body = creatinine_rows("2026-01", 20)
-    bad = "".join(line.replace(",mg/dL,", ",,") for line in creatinine_rows("2026-01", 5, first=20).splitlines(True))
+    bad = "".join(
+        line.replace(",mg/dL,", ",,")
+        for line in creatinine_rows("2026-01", 5, first=20).splitlines(True)
+    )
     inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": HEADER + body + bad})
     summary = run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "out"), demo=True)
     counts = summary["sources"][LAB]
     assert counts["read"] == 25 and counts["held_back"] == 25
-    assert counts["read"] == sum(counts[k] for k in ("accepted", "rejected", "superseded", "duplicate",
-                                                     "withdrawn", "pending", "held_back"))
+    assert counts["read"] == sum(
+        counts[k]
+        for k in (
+            "accepted",
+            "rejected",
+            "superseded",
+            "duplicate",
+            "withdrawn",
+            "pending",
+            "held_back",
+        )
+    )
 
 
 # --------------------------------------------------------------------------- config
@@ -295,10 +365,14 @@ def test_a_held_back_file_balances_as_held_back_rows(tmp_path):
 def test_an_invalid_date_format_is_refused_at_config_load(tmp_path):
     config = make_small_config(tmp_path / "config")
     path = config / "sources" / "corvale_lab_chain.yaml"
-    path.write_text(path.read_text().replace('date_format: "%d/%m/%Y"', 'date_format: "dd/mm/yyyy"'))
+    path.write_text(
+        path.read_text().replace('date_format: "%d/%m/%Y"', 'date_format: "dd/mm/yyyy"')
+    )
     with pytest.raises(ConfigError, match="date_format.*does not read a whole date"):
         load_settings(config)
-    path.write_text(path.read_text().replace('date_format: "dd/mm/yyyy"', 'date_format: "%d/%m/%Y%"'))
+    path.write_text(
+        path.read_text().replace('date_format: "dd/mm/yyyy"', 'date_format: "%d/%m/%Y%"')
+    )
     with pytest.raises(ConfigError, match="lone '%'"):
         load_settings(config)
 
@@ -311,7 +385,9 @@ def check(tmp_path: Path, name: str, body: str, *extra: str):
     path.write_text(HEADER + body, encoding="utf-8")
     config = make_small_config(tmp_path / "config")
     edit_pipeline_yaml(config, "quality_gate", "max_unmapped_share", 0.01)  # config/pipeline.yaml's
-    return path, CliRunner().invoke(app, ["sources", "check", LAB, str(path), "--config", str(config), *extra])
+    return path, CliRunner().invoke(
+        app, ["sources", "check", LAB, str(path), "--config", str(config), *extra]
+    )
 
 
 def test_sources_check_names_unmapped_codes_and_exits_non_zero(tmp_path):
@@ -323,13 +399,20 @@ def test_sources_check_names_unmapped_codes_and_exits_non_zero(tmp_path):
 
 
 def test_sources_check_shows_the_date_format_and_the_rows_outside_the_period(tmp_path):
-    body = creatinine_rows("2026-01", 30) + creatinine_rows("2026-02", 1, first=30) + \
-        creatinine_rows("2026-01", 1, first=31).replace("2026-01-05", "05/01/2026")
+    body = (
+        creatinine_rows("2026-01", 30)
+        + creatinine_rows("2026-02", 1, first=30)
+        + creatinine_rows("2026-01", 1, first=31).replace("2026-01-05", "05/01/2026")
+    )
     path, result = check(tmp_path, "results.csv", body, "--period", "2026-01")
-    assert result.exit_code == 0, result.output  # 1 of 32 rejected: under the limit, nothing unmapped
+    assert result.exit_code == 0, (
+        result.output
+    )  # 1 of 32 rejected: under the limit, nothing unmapped
     assert "no date_format in config/sources/westerfold_general_lab.yaml: ISO 8601" in result.output
     assert f"{path}:33:" in result.output
-    assert "outside 2026-01: 1 accepted rows collected or reported after 2026-01-31" in result.output
+    assert (
+        "outside 2026-01: 1 accepted rows collected or reported after 2026-01-31" in result.output
+    )
     assert "(lines 32)" in result.output
 
 
@@ -343,11 +426,15 @@ def test_fasting_flags_are_mapped_by_fasting_codes_or_named(tmp_path):
     """A fasting flag 'J' is named until fasting_codes maps it; the usual Y/N spellings need none."""
     config = make_small_config(tmp_path / "config")
     header = HEADER.rstrip("\n") + ",fasting\n"
-    body = "".join(line.rstrip("\n") + f",{'JNY'[i % 3]}\n"
-                   for i, line in enumerate(creatinine_rows("2026-01", 9).splitlines(True)))
+    body = "".join(
+        line.rstrip("\n") + f",{'JNY'[i % 3]}\n"
+        for i, line in enumerate(creatinine_rows("2026-01", 9).splitlines(True))
+    )
     inbox = write_inbox(tmp_path, {f"{LAB}/results_2026-01.csv": header + body})
     summary = run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "out"), demo=True)
-    assert summary["unmapped_codes"] == {LAB: {"fasting": {"config_key": "fasting_codes", "rows": 3, "values": {"J": 3}}}}
+    assert summary["unmapped_codes"] == {
+        LAB: {"fasting": {"config_key": "fasting_codes", "rows": 3, "values": {"J": 3}}}
+    }
     path = config / "sources" / f"{LAB}.yaml"
     path.write_text(path.read_text() + "fasting_codes: {J: Y}\n")
     again = run_month_plain("2026-01", str(config), str(inbox), str(tmp_path / "out2"), demo=True)

@@ -261,7 +261,10 @@ def test_a_broken_table_schema_fails_every_batch(settings):
     assert [f.split(":", 1)[0] for f in checks["clean_lab"].failed] == schema
     assert "birth_year VARCHAR" in checks["clean_lab"].failed[1]
     # the other checks still ran on the summary
-    assert [f.split(":", 1)[0] for f in checks["low_lab"].failed] == [*schema, f"{PAIR}(value_min, range_min)"]
+    assert [f.split(":", 1)[0] for f in checks["low_lab"].failed] == [
+        *schema,
+        f"{PAIR}(value_min, range_min)",
+    ]
 
 
 # --------------------------------------------------------------------------- Data Docs
@@ -356,7 +359,9 @@ def gx_config(tmp_path):
     return config
 
 
-def test_a_defect_that_slips_past_the_row_rules_holds_its_source_back(gx_config, tmp_path, monkeypatch):
+def test_a_defect_that_slips_past_the_row_rules_holds_its_source_back(
+    gx_config, tmp_path, monkeypatch
+):
     """A real month run with the real suites: one value far above its plausible range reaches
     the batch (as if a range rule had slipped); the gate fails that source's batch, its files
     are held back and none of its rows stored, the other source publishes, the run exits 1, and
@@ -378,16 +383,22 @@ def test_a_defect_that_slips_past_the_row_rules_holds_its_source_back(gx_config,
     inbox = write_inbox(tmp_path, INBOX)
     out = tmp_path / "out"
     with run_month(gx_config, inbox, out) as con:
-        files = dict(rows(con, "select source_id, status || ': ' || coalesce(message, '') from ingest_files"))
+        files = dict(
+            rows(con, "select source_id, status || ': ' || coalesce(message, '') from ingest_files")
+        )
         stored = rows(con, "select distinct source_id from lab_results")
         exit_code = rows(con, "select exit_code from runs")[0][0]
-        s2 = rows(con, "select file_id from ingest_files where source_id = 'westerfold_general_lab'")[0][0]
+        s2 = rows(
+            con, "select file_id from ingest_files where source_id = 'westerfold_general_lab'"
+        )[0][0]
     assert files["westerfold_general_lab"].startswith("held_back: ")
     assert f"expectation suite: {PAIR}(range_max, value_max)" in files["westerfold_general_lab"]
     assert files["corvale_lab_chain"].startswith("ingested")
     assert stored == [("corvale_lab_chain",)]
     assert exit_code == 1
-    checks = json.loads((out / "2026-01" / "run_manifest.json").read_text())["quality_gate"]["batch_checks"]
+    checks = json.loads((out / "2026-01" / "run_manifest.json").read_text())["quality_gate"][
+        "batch_checks"
+    ]
     assert checks["corvale_lab_chain"]["success"] is True
     failed = checks["westerfold_general_lab"]
     assert failed["success"] is False and failed["unexpected_row_ids"] == [f"{s2}:3"]
@@ -406,7 +417,9 @@ def test_a_clean_month_run_passes_the_gate_and_writes_no_data_docs(gx_config, tm
     out = tmp_path / "out"
     with run_month(gx_config, write_inbox(tmp_path, INBOX), out) as con:
         assert rows(con, "select exit_code from runs")[0][0] == 0
-    checks = json.loads((out / "2026-01" / "run_manifest.json").read_text())["quality_gate"]["batch_checks"]
+    checks = json.loads((out / "2026-01" / "run_manifest.json").read_text())["quality_gate"][
+        "batch_checks"
+    ]
     assert sorted(checks) == ["corvale_lab_chain", "westerfold_general_lab"]
     assert all(c["success"] for c in checks.values())
     assert not (out / "2026-01" / "quality").exists()  # quality_pages: on_failure

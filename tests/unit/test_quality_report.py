@@ -35,7 +35,9 @@ def test_a_failed_batch_is_held_back_and_the_others_publish(tmp_path, monkeypatc
     (its files marked, none of its rows stored), another source publishes, exit code 1."""
     import pipeline.flows as flows
 
-    monkeypatch.setattr(flows, "_expectations", lambda ctx, con: {"westerfold_general_lab": "suite failed"})
+    monkeypatch.setattr(
+        flows, "_expectations", lambda ctx, con: {"westerfold_general_lab": "suite failed"}
+    )
     config = make_small_config(tmp_path / "config")
     semi = "PatientRef;YearOfBirth;Gender;AreaCode;SampleNo;SampleDate;TestCode;Result;Units;State;ReportDate\n"
     inbox = write_inbox(tmp_path, {
@@ -62,9 +64,13 @@ def test_a_calibration_shift_at_one_lab_is_flagged(tmp_path):
     for month in range(1, 9):
         value = 1.00 if month == 8 else 0.80
         for n in range(30):  # 30 women of 50 a month: the minimum for a comparison
-            lines.append(f"WF-c{month}{n:02d},1976,F,WF01,S{month}{n:02d},2025-{month:02d}-10,2160-0,"
-                         f"{value + (n % 5) * 0.01:.2f},mg/dL,final,2025-{month:02d}-11")
-    inbox = write_inbox(tmp_path, {"westerfold_general_lab/results_2025-08.csv": STD + "\n".join(lines) + "\n"})
+            lines.append(
+                f"WF-c{month}{n:02d},1976,F,WF01,S{month}{n:02d},2025-{month:02d}-10,2160-0,"
+                f"{value + (n % 5) * 0.01:.2f},mg/dL,final,2025-{month:02d}-11"
+            )
+    inbox = write_inbox(
+        tmp_path, {"westerfold_general_lab/results_2025-08.csv": STD + "\n".join(lines) + "\n"}
+    )
     with run_month(config, inbox, tmp_path / "out", period="2025-08") as con:
         flagged = rows(con, "select month, round(relative_change, 3) from source_creatinine_drift "
                             "where is_drift_flagged order by month")  # fmt: skip

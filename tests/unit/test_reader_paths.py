@@ -92,7 +92,9 @@ def test_a_quoted_file_goes_through_the_csv_module(small_settings, tmp_path):
     source = small_settings.source("westerfold_general_lab")
     header = ",".join(STANDARD_FIELDS[:11])
     path = tmp_path / "q.csv"
-    path.write_text(header + '\nWF-a,1960,F,WF01,"S,1",2025-06-02,2160-0,1.0,mg/dL,final,\n', encoding="utf-8")
+    path.write_text(
+        header + '\nWF-a,1960,F,WF01,"S,1",2025-06-02,2160-0,1.0,mg/dL,final,\n', encoding="utf-8"
+    )
     assert not compare_paths(source, path)
     assert read_with(source, path, "auto")[1]["specimen_id"].to_list() == ["S,1"]  # RFC 4180
 
@@ -101,7 +103,9 @@ def test_a_line_over_the_field_limit_is_left_to_the_csv_module(small_settings, t
     source = small_settings.source("westerfold_general_lab")
     header = ",".join(STANDARD_FIELDS[:11])
     path = tmp_path / "long.csv"
-    path.write_text(header + "\nWF-a,1960,F,WF01,S1,2025-06-02,2160-0,1.0,mg/dL,final," + "x" * 140_000 + "\n")
+    path.write_text(
+        header + "\nWF-a,1960,F,WF01,S1,2025-06-02,2160-0,1.0,mg/dL,final," + "x" * 140_000 + "\n"
+    )
     assert not compare_paths(source, path)
     kind, message, _ = read_with(source, path, "auto")
     assert kind == "fault" and "line 2" in message and "field larger than field limit" in message
@@ -113,9 +117,13 @@ LINE_ENDS = st.sampled_from(["\n", "\r\n", "\r"])
 #: anything but the quote and line breaks: delimiters, white space of every kind, NUL, U+2028
 FIELD_CHARS = st.sampled_from(list("abcWF-0123456789 .,;|\t@/µ") + ["\x00", "\x0b", "\x0c", "\x1c", "\x1f", "\x85",
                                                                     "\u2028", "\u3000", "\xa0"])  # fmt: skip
-plain = st.sampled_from(["WF-p1", " WF-p1 ", "\x1fWF-p1", "1", "F", "WF01", "1.0", "mg/dL", "final", ""])
+plain = st.sampled_from(
+    ["WF-p1", " WF-p1 ", "\x1fWF-p1", "1", "F", "WF01", "1.0", "mg/dL", "final", ""]
+)
 #: values the identifier screen flags (a full date is one in the birth-year column): now and then
-flagged = st.sampled_from(["2025-06-02", "a.b@example.invalid", "Maren Holloway", "+99 5550 100200"])
+flagged = st.sampled_from(
+    ["2025-06-02", "a.b@example.invalid", "Maren Holloway", "+99 5550 100200"]
+)
 field = st.one_of(st.text(FIELD_CHARS, max_size=8), plain)
 BLANK = st.sampled_from(["", " ", "\t", "\x1c", "\u3000 ", "\x0c"])
 
@@ -132,7 +140,9 @@ def unquoted_file(draw, delimiter: str, header: list[str]) -> str:
         width = draw(st.sampled_from([len(header)] * 6 + [1, 2, len(header) + 1]))
         lines.append(delimiter.join(draw(st.lists(values, min_size=width, max_size=width))))
     ends = [draw(LINE_ENDS) for _ in lines]
-    return "".join(line + end for line, end in zip(lines, ends))[: None if draw(st.booleans()) else -1]
+    return "".join(line + end for line, end in zip(lines, ends, strict=False))[
+        : None if draw(st.booleans()) else -1
+    ]
 
 
 PROPERTY = settings(max_examples=120, deadline=None, database=None,
@@ -148,8 +158,12 @@ def _write(tmp_path: Path, text: str) -> Path:
 
 @PROPERTY
 @given(data=st.data(), delimiter=st.sampled_from([",", ";", "\t", "|"]))
-def test_standard_layout_without_quotes_reads_the_same_both_ways(small_settings, tmp_path, data, delimiter):
-    source = small_settings.source("westerfold_general_lab").model_copy(update={"delimiter": delimiter})
+def test_standard_layout_without_quotes_reads_the_same_both_ways(
+    small_settings, tmp_path, data, delimiter
+):
+    source = small_settings.source("westerfold_general_lab").model_copy(
+        update={"delimiter": delimiter}
+    )
     header = list(STANDARD_FIELDS[:11]) + data.draw(st.sampled_from([[], ["ward"], ["e_mail"]]))
     path = _write(tmp_path, data.draw(unquoted_file(delimiter, header)))
     assert compare_paths(source, path)
@@ -173,7 +187,9 @@ def test_any_text_after_a_header_reads_the_same_whichever_reader(small_settings,
     compare_paths(source, path)
 
 
-def test_bulk_rows_keep_line_numbers_and_mask_every_occurrence_of_the_token(small_settings, tmp_path):
+def test_bulk_rows_keep_line_numbers_and_mask_every_occurrence_of_the_token(
+    small_settings, tmp_path
+):
     source = small_settings.source("westerfold_general_lab")
     header = ",".join(STANDARD_FIELDS[:11])
     text = (header + "\r\n\r\n" + "WF-p1,1960,F,WF01,WF-p1x,2025-06-02,2160-0,1.0,mg/dL,final,\r"
@@ -182,7 +198,9 @@ def test_bulk_rows_keep_line_numbers_and_mask_every_occurrence_of_the_token(smal
     assert kind == "rows"
     rows = {r["line_no"]: r for r in frame.iter_rows(named=True)}
     assert sorted(rows) == [3, 5]  # line 2 and line 4 are blank: not rows, still counted
-    assert rows[3]["raw_text"] == "[person],1960,F,WF01,[person]x,2025-06-02,2160-0,1.0,mg/dL,final,"
+    assert (
+        rows[3]["raw_text"] == "[person],1960,F,WF01,[person]x,2025-06-02,2160-0,1.0,mg/dL,final,"
+    )
     assert rows[5]["row_fault"] == "wrong_field_count:8 fields, the header has 11"
     assert rows[5]["unit_text"] == "" and rows[5]["specimen_id"] == "S2"
     assert frame.schema == read_with(source, _write(tmp_path, text), "csv")[1].schema

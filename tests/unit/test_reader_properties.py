@@ -67,7 +67,9 @@ def workdir(tmp_path_factory) -> Path:
 _counter = itertools.count()
 
 
-def read_bytes_as(settings_: Settings, workdir: Path, data: bytes, delimiter: str = ",", source_id: str = LAB):
+def read_bytes_as(
+    settings_: Settings, workdir: Path, data: bytes, delimiter: str = ",", source_id: str = LAB
+):
     """Write ``data`` to a fresh file and read it with the source (its delimiter replaced)."""
     source = settings_.source(source_id)
     if delimiter != source.delimiter:
@@ -75,7 +77,14 @@ def read_bytes_as(settings_: Settings, workdir: Path, data: bytes, delimiter: st
     path = workdir / f"f{next(_counter)}" / "results_2025-06.csv"
     path.parent.mkdir()
     path.write_bytes(data)
-    item = InboxFile(source.id, path, f"{source.folder}/results_2025-06.csv", sha256_of(path), len(data), file_id=1)
+    item = InboxFile(
+        source.id,
+        path,
+        f"{source.folder}/results_2025-06.csv",
+        sha256_of(path),
+        len(data),
+        file_id=1,
+    )
     try:
         return read_inbox_file(source, item, settings_, TODAY)
     except FileFault as fault:
@@ -90,7 +99,9 @@ LINE_ENDS = st.sampled_from(["\n", "\r\n", "\r"])
 short_text = st.text(max_size=12)
 #: text without line breaks (so that one record is one line) but with quotes, delimiters and
 #: any other character, NUL and U+2028 included
-field_text = st.text(st.characters(exclude_characters="\r\n", exclude_categories=("Cs",)), max_size=MAX_FIELD // 10)
+field_text = st.text(
+    st.characters(exclude_characters="\r\n", exclude_categories=("Cs",)), max_size=MAX_FIELD // 10
+)
 
 
 @st.composite
@@ -98,7 +109,9 @@ def ragged_csv(draw) -> bytes:
     """A header (valid or not) and rows with random field counts, quotes and line ends."""
     delim = draw(DELIMITERS)
     eol = draw(LINE_ENDS)
-    header = draw(st.one_of(st.just(FIELDS), st.lists(st.sampled_from(FIELDS + ["x", ""]), max_size=14)))
+    header = draw(
+        st.one_of(st.just(FIELDS), st.lists(st.sampled_from(FIELDS + ["x", ""]), max_size=14))
+    )
     lines = [delim.join(header)]
     for _ in range(draw(st.integers(0, 8))):
         fields = draw(st.lists(st.one_of(short_text, st.sampled_from(['"', '""', '"a,b"', '"x\ny"', ",", ";"])),
@@ -106,7 +119,9 @@ def ragged_csv(draw) -> bytes:
         lines.append(delim.join(fields))
     text = eol.join(lines) + draw(st.sampled_from(["", eol]))
     prefix = draw(st.sampled_from([b"", b"\xef\xbb\xbf", b"\xff"]))
-    return prefix + text.encode(draw(st.sampled_from(["utf-8", "utf-8", "latin-1", "utf-16"])), errors="replace")
+    return prefix + text.encode(
+        draw(st.sampled_from(["utf-8", "utf-8", "latin-1", "utf-16"])), errors="replace"
+    )
 
 
 # --------------------------------------------------------------------------- (a) readers
@@ -141,7 +156,9 @@ def test_ragged_rows_give_rows_or_a_file_fault(small_settings, workdir, data, de
         # line without its line end is reported as possibly cut short, whatever its width)
         assert frame["raw_text"].null_count() == 0
         faults = frame.filter(frame["row_fault"].is_not_null())["row_fault"]
-        assert (faults.str.starts_with("wrong_field_count") | faults.str.starts_with("truncated_line")).all()
+        assert (
+            faults.str.starts_with("wrong_field_count") | faults.str.starts_with("truncated_line")
+        ).all()
 
 
 @FAST
@@ -155,8 +172,12 @@ def test_ragged_rows_of_a_mapped_source_give_rows_or_a_file_fault(small_settings
 
 VALUES = st.sampled_from(["1.0", "0.9", "<0.2", "1,5", "", "ND", "NaN", "inf", "-inf", "1e400", "0", "-1",
                           ">=300", "≤3", " 1.0 ", "1.", ".5", "+2", "85", "88.4", "< 0.2", "<", "see note"])  # fmt: skip
-UNITS = st.sampled_from(["mg/dL", "mg/dl", "umol/L", "µmol/l", "mg/g", "mg/mmol", "mmol/L", "mg/L", "", "%", "xyz"])
-CODES = st.sampled_from(["2160-0", "14682-9", "9318-7", "4548-4", "2345-7", "1558-6", "62238-1", "9999-9", ""])
+UNITS = st.sampled_from(
+    ["mg/dL", "mg/dl", "umol/L", "µmol/l", "mg/g", "mg/mmol", "mmol/L", "mg/L", "", "%", "xyz"]
+)
+CODES = st.sampled_from(
+    ["2160-0", "14682-9", "9318-7", "4548-4", "2345-7", "1558-6", "62238-1", "9999-9", ""]
+)
 STATUSES = st.sampled_from(["final", "amended", "corrected", "cancelled", "entered-in-error", "preliminary",
                             "FINAL", "done", ""])  # fmt: skip
 DATES = st.one_of(
@@ -249,7 +270,10 @@ def test_every_row_is_accounted_for_once(config, workdir, generated):
         rejected = [r[0] for r in rows(con, "select line_no from rejected_rows")]
         # a specimen id under two persons: the version stays in result_versions with outcome
         # 'rejected' and its reason is in rejected_rows, where the ledger counts it once
-        versions = [r[0] for r in rows(con, "select line_no from result_versions where outcome <> 'rejected'")]
+        versions = [
+            r[0]
+            for r in rows(con, "select line_no from result_versions where outcome <> 'rejected'")
+        ]
         assert not set(rejected) & set(versions)
         assert sorted(rejected + versions) == expected_lines
         outcomes = dict(rows(con, "select outcome, count(*) from result_versions group by all"))
@@ -273,16 +297,24 @@ OBSERVATION_KEYS = ["subject", "status", "code", "specimen", "effectiveDateTime"
                     "valueQuantity", "valueString"]  # fmt: skip
 
 
-@settings(max_examples=60, deadline=None, database=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(
+    max_examples=60, deadline=None, database=None, suppress_health_check=[HealthCheck.too_slow]
+)
 @given(fields=st.dictionaries(st.sampled_from(OBSERVATION_KEYS), JSON_VALUES, min_size=1))
-def test_fhir_observation_with_any_json_types_is_a_row_or_a_file_fault(small_settings, workdir, fields):
+def test_fhir_observation_with_any_json_types_is_a_row_or_a_file_fault(
+    small_settings, workdir, fields
+):
     folder = workdir / f"fhir{next(_counter)}" / "2025-06"
     folder.mkdir(parents=True)
-    (folder / "Patient.ndjson").write_text('{"resourceType":"Patient","id":"p1","gender":"female","birthDate":"1960"}\n')
+    (folder / "Patient.ndjson").write_text(
+        '{"resourceType":"Patient","id":"p1","gender":"female","birthDate":"1960"}\n'
+    )
     path = folder / "Observation.ndjson"
     path.write_text(json.dumps({"resourceType": "Observation", **fields}) + "\n", encoding="utf-8")
     source = small_settings.source(FHIR)
-    item = InboxFile(source.id, path, f"{FHIR}/2025-06/Observation.ndjson", sha256_of(path), 1, file_id=1)
+    item = InboxFile(
+        source.id, path, f"{FHIR}/2025-06/Observation.ndjson", sha256_of(path), 1, file_id=1
+    )
     try:
         frame = read_inbox_file(source, item, small_settings, TODAY)
     except FileFault:
@@ -293,7 +325,9 @@ def test_fhir_observation_with_any_json_types_is_a_row_or_a_file_fault(small_set
 # --------------------------------------------------------------------------- (d) both readers
 
 
-def _both_readers_agree(settings_: Settings, workdir: Path, data: bytes, delimiter: str, source_id: str = LAB):
+def _both_readers_agree(
+    settings_: Settings, workdir: Path, data: bytes, delimiter: str, source_id: str = LAB
+):
     source = settings_.source(source_id)
     if delimiter != source.delimiter:
         source = source.model_copy(update={"delimiter": delimiter})
@@ -304,13 +338,19 @@ def _both_readers_agree(settings_: Settings, workdir: Path, data: bytes, delimit
 
 @FAST
 @given(data=ragged_csv(), delimiter=DELIMITERS)
-def test_ragged_files_land_the_same_rows_through_either_reader(small_settings, workdir, data, delimiter):
+def test_ragged_files_land_the_same_rows_through_either_reader(
+    small_settings, workdir, data, delimiter
+):
     # a file without quotes is split in bulk, any other goes through the csv module: same rows
-    _both_readers_agree(small_settings, workdir, data.replace(b'"', b"") if delimiter == "," else data, delimiter)
+    _both_readers_agree(
+        small_settings, workdir, data.replace(b'"', b"") if delimiter == "," else data, delimiter
+    )
 
 
 @FAST
 @given(generated=generated_file())
-def test_generated_files_land_the_same_rows_through_either_reader(small_settings, workdir, generated):
+def test_generated_files_land_the_same_rows_through_either_reader(
+    small_settings, workdir, generated
+):
     text, _ = generated
     _both_readers_agree(small_settings, workdir, text.encode("utf-8"), ",")

@@ -18,7 +18,10 @@ def _outcomes(tmp_path: Path, standard: str, semicolon: str) -> list[tuple]:
         "corvale_lab_chain/export_202601.csv": SEMI + semicolon,
     })  # fmt: skip
     with run_month(config, inbox, tmp_path / "out") as con:
-        return rows(con, "select source_id, line_no, outcome from result_versions order by source_id, line_no")
+        return rows(
+            con,
+            "select source_id, line_no, outcome from result_versions order by source_id, line_no",
+        )
 
 
 def test_same_value_from_two_sources_is_one_result(tmp_path):

@@ -13,13 +13,21 @@ from pipeline.region_map import read_district_shapes
 from pipeline.settings import ConfigError, load_settings
 from tests.conftest import CONFIG_DIR
 
-SQUARE = {"type": "Polygon", "coordinates": [[[-29, -39], [-28, -39], [-28, -38], [-29, -38], [-29, -39]]]}
+SQUARE = {
+    "type": "Polygon",
+    "coordinates": [[[-29, -39], [-28, -39], [-28, -38], [-29, -38], [-29, -39]]],
+}
 
 
 def write(folder: Path, codes: list[str]) -> Path:
     (folder / "regions").mkdir(parents=True, exist_ok=True)
-    doc = {"type": "FeatureCollection", "features": [
-        {"type": "Feature", "properties": {"district_code": c}, "geometry": SQUARE} for c in codes]}
+    doc = {
+        "type": "FeatureCollection",
+        "features": [
+            {"type": "Feature", "properties": {"district_code": c}, "geometry": SQUARE}
+            for c in codes
+        ],
+    }
     (folder / "regions" / "districts.geojson").write_text(json.dumps(doc), encoding="utf-8")
     return folder
 

@@ -23,13 +23,34 @@ import duckdb
 import pytest
 
 from pipeline.flows import run_month_plain
-from pipeline.report import READABLE_TABLES, _nice_ticks, _select, build_report_html, headline_text, write_report
+from pipeline.report import (
+    READABLE_TABLES,
+    _nice_ticks,
+    _select,
+    build_report_html,
+    headline_text,
+    write_report,
+)
 from tests.conftest import CONFIG_DIR, ROOT, edit_pipeline_yaml, rows
 
 PERIODS = ("2026-09", "2026-10")
 PERIOD = PERIODS[-1]
 #: HTML elements without an end tag (WHATWG HTML, "void elements").
-VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source", "track", "wbr"}
+VOID = {
+    "area",
+    "base",
+    "br",
+    "col",
+    "embed",
+    "hr",
+    "img",
+    "input",
+    "link",
+    "meta",
+    "source",
+    "track",
+    "wbr",
+}
 COUNTS = {
     "table-prevalence": ("district_ckd_prevalence", ("persons_tested", "persons_ckd", "persons_ckd_g3_g5")),
     "table-coverage": ("district_screening_coverage",
@@ -47,7 +68,9 @@ def warehouse(tmp_path_factory) -> Path:
     shutil.copytree(CONFIG_DIR, config)
     edit_pipeline_yaml(config, "quality_gate", "great_expectations", False)
     for period in PERIODS:
-        run_month_plain(period, str(config), str(ROOT / "sample_extracts"), str(base / "out"), demo=True)
+        run_month_plain(
+            period, str(config), str(ROOT / "sample_extracts"), str(base / "out"), demo=True
+        )
     return base / "out" / "surveillance.duckdb"
 
 
@@ -71,7 +94,9 @@ def restricted_copy(warehouse: Path, tables=READABLE_TABLES) -> duckdb.DuckDBPyC
     for table in tables:
         schema, _, name = table.rpartition(".")
         mem.execute(f"create schema if not exists {schema or 'main'}")
-        mem.execute(f"create table {schema or 'main'}.{name} as select * from src.{schema or 'main'}.{name}")
+        mem.execute(
+            f"create table {schema or 'main'}.{name} as select * from src.{schema or 'main'}.{name}"
+        )
     mem.execute("detach src")
     return mem
 
@@ -84,7 +109,9 @@ class StrictParser(HTMLParser):
         self.stack: list[str] = []
         self.errors: list[str] = []
         self.elements: list[tuple[str, dict[str, str | None]]] = []
-        self.cells: dict[str, list[tuple[str, str, str]]] = {}  # table id -> (district, column, text)
+        self.cells: dict[
+            str, list[tuple[str, str, str]]
+        ] = {}  # table id -> (district, column, text)
         self._table = self._district = self._column = None
         self._text: list[str] = []
 
@@ -111,7 +138,9 @@ class StrictParser(HTMLParser):
             return
         self.stack.pop()
         if tag == "td" and self._column:
-            self.cells.setdefault(self._table, []).append((self._district, self._column, "".join(self._text)))
+            self.cells.setdefault(self._table, []).append(
+                (self._district, self._column, "".join(self._text))
+            )
             self._column = None
         if tag == "table":
             self._table = None
@@ -136,9 +165,12 @@ def card_text(report: str, key: str) -> str:
 
 def published_total(con, table: str) -> dict:
     where = "and sex = 'ALL' and age_band = 'ALL'" if table == "district_ckd_prevalence" else ""
-    cur = con.execute(f"select * from published.{table} where period = ? and district_code = 'ALL' {where}", [PERIOD])
+    cur = con.execute(
+        f"select * from published.{table} where period = ? and district_code = 'ALL' {where}",
+        [PERIOD],
+    )
     names = [d[0] for d in cur.description]
-    return dict(zip(names, cur.fetchone()))
+    return dict(zip(names, cur.fetchone(), strict=False))
 
 
 # --------------------------------------------------------------------------- structure
@@ -155,7 +187,12 @@ def test_html_parses_with_every_element_closed(report):
 def test_every_chart_is_inline_svg_with_title_and_desc(report):
     charts = re.findall(r'<svg class="chart" id="([^"]+)"[^>]*>(.*?)</svg>', report, re.S)
     ids = [c[0] for c in charts]
-    assert ids == ["chart-ckd-share", "chart-coverage-trend", "chart-rejected-share", "chart-egfr-agreement"]
+    assert ids == [
+        "chart-ckd-share",
+        "chart-coverage-trend",
+        "chart-rejected-share",
+        "chart-egfr-agreement",
+    ]
     for chart_id, body in charts:
         assert f'<title id="{chart_id}-title">' in body and f'<desc id="{chart_id}-desc">' in body
         assert 'class="axis-label"' in body, chart_id
@@ -167,21 +204,43 @@ def test_trend_has_one_point_per_month_end_as_known_then(con, report):
     months = [m for (m,) in rows(con, "select as_of_month from published.region_coverage_trend where period = ? "
                                       "order by 1", [PERIOD])]  # fmt: skip
     assert len(months) == 12 and months[-1] == PERIOD and months[0] == "2025-11"
-    trend = re.search(r'<svg class="chart" id="chart-coverage-trend".*?</svg>', report, re.S).group(0)
+    trend = re.search(r'<svg class="chart" id="chart-coverage-trend".*?</svg>', report, re.S).group(
+        0
+    )
     points = re.findall(r"<title>(\d{4}-\d{2}): ", trend)
-    assert points == [m for m in months if rows(con, "select share_with_both from published.region_coverage_trend "
-                                                     "where period = ? and as_of_month = ?", [PERIOD, m])[0][0]
-                      is not None]
+    assert points == [
+        m
+        for m in months
+        if rows(
+            con,
+            "select share_with_both from published.region_coverage_trend "
+            "where period = ? and as_of_month = ?",
+            [PERIOD, m],
+        )[0][0]
+        is not None
+    ]
     assert len(points) > 2 and "<polyline" in trend
-    last = rows(con, "select persons_with_diabetes, with_egfr, with_acr, with_egfr_and_acr from "
-                     "main.region_coverage_trend where period = ? and as_of_month = ?", [PERIOD, PERIOD])
-    coverage = rows(con, "select persons_with_diabetes, with_egfr, with_acr, with_egfr_and_acr from "
-                         "main.district_screening_coverage where period = ? and district_code = 'ALL'", [PERIOD])
+    last = rows(
+        con,
+        "select persons_with_diabetes, with_egfr, with_acr, with_egfr_and_acr from "
+        "main.region_coverage_trend where period = ? and as_of_month = ?",
+        [PERIOD, PERIOD],
+    )
+    coverage = rows(
+        con,
+        "select persons_with_diabetes, with_egfr, with_acr, with_egfr_and_acr from "
+        "main.district_screening_coverage where period = ? and district_code = 'ALL'",
+        [PERIOD],
+    )
     assert last == coverage
     # earlier month ends know fewer results: the counts do not fall as the months go on (the
     # samples grow month by month; a check that the as-of filter is applied at all)
-    first = rows(con, "select persons_with_diabetes from main.region_coverage_trend where period = ? "
-                      "order by as_of_month limit 1", [PERIOD])[0][0]
+    first = rows(
+        con,
+        "select persons_with_diabetes from main.region_coverage_trend where period = ? "
+        "order by as_of_month limit 1",
+        [PERIOD],
+    )[0][0]
     assert first < last[0][0]
 
 
@@ -230,17 +289,22 @@ def test_district_tables_show_the_published_cells(con, report):
         if table == "district_undetected_albuminuria":
             # its persons with diabetes and untested persons are coverage's counts (published
             # there only); an untested count of 1 to 10 is not shown either (common practice)
-            query = ("select u.district_code, c.persons_with_diabetes, "
-                     "case when c.persons_with_diabetes - c.with_acr between 1 and 10 then null "
-                     "else c.persons_with_diabetes - c.with_acr end "
-                     "from published.district_undetected_albuminuria u left join "
-                     "published.district_screening_coverage c using (period, district_code) where u.period = ?")
+            query = (
+                "select u.district_code, c.persons_with_diabetes, "
+                "case when c.persons_with_diabetes - c.with_acr between 1 and 10 then null "
+                "else c.persons_with_diabetes - c.with_acr end "
+                "from published.district_undetected_albuminuria u left join "
+                "published.district_screening_coverage c using (period, district_code) where u.period = ?"
+            )
         published = {r[0]: r[1:] for r in rows(con, query, [PERIOD])}
         shown = {(d, c): t for d, c, t in cells[table_id]}
         assert {d for d, _ in shown} == set(published)
         for district, values in published.items():
-            for column, value in zip(counts, values):
-                assert shown[(district, column)] == ("s" if value is None else f"{value:,}"), (district, column)
+            for column, value in zip(counts, values, strict=False):
+                assert shown[(district, column)] == ("s" if value is None else f"{value:,}"), (
+                    district,
+                    column,
+                )
 
 
 def test_expected_cases_not_yet_found_show_the_published_estimate(con, report):
@@ -248,10 +312,14 @@ def test_expected_cases_not_yet_found_show_the_published_estimate(con, report):
     counts it is built on are blanked; the assumption is stated under the table."""
     cells = {(d, c): t for d, c, t in parse(report).cells["table-undetected"]}
     # with_acr is coverage's (published there only)
-    published = rows(con, "select u.district_code, u.expected_a2_a3_without_acr, u.expected_a2_a3_without_acr_low, "
-                     "u.expected_a2_a3_without_acr_high, c.with_acr from published.district_undetected_albuminuria u "
-                     "left join published.district_screening_coverage c using (period, district_code) "
-                     "where u.period = ?", [PERIOD])
+    published = rows(
+        con,
+        "select u.district_code, u.expected_a2_a3_without_acr, u.expected_a2_a3_without_acr_low, "
+        "u.expected_a2_a3_without_acr_high, c.with_acr from published.district_undetected_albuminuria u "
+        "left join published.district_screening_coverage c using (period, district_code) "
+        "where u.period = ?",
+        [PERIOD],
+    )
     assert published
     for district, value, low, high, with_acr in published:
         text = cells[(district, "expected_a2_a3_without_acr")]
@@ -271,25 +339,40 @@ def test_no_suppressed_small_count_appears_in_any_table_cell(con, report):
     checked = 0
     for table_id, (table, counts) in COUNTS.items():
         where = "and sex = 'ALL' and age_band = 'ALL'" if table == "district_ckd_prevalence" else ""
-        internal = {r[0]: r[1:] for r in rows(
-            con, f"select district_code, {', '.join(counts)} from main.{table} where period = ? {where}", [PERIOD])}
+        internal = {
+            r[0]: r[1:]
+            for r in rows(
+                con,
+                f"select district_code, {', '.join(counts)} from main.{table} where period = ? {where}",
+                [PERIOD],
+            )
+        }
         shown = {(d, c): t for d, c, t in cells[table_id]}
         for district, values in internal.items():
-            for column, value in zip(counts, values):
+            for column, value in zip(counts, values, strict=False):
                 if value is not None and 1 <= value <= 10:
                     assert shown[(district, column)] == "s", (table, district, column)
                     checked += 1
         for (_, column), text in shown.items():
             if column in counts and text.replace(",", "").isdigit():
                 assert not 1 <= int(text.replace(",", "")) <= 10, (table_id, column, text)
-    assert checked > 0, "the samples have small district counts: the check must have something to check"
+    assert checked > 0, (
+        "the samples have small district counts: the check must have something to check"
+    )
 
 
 def test_suppressed_districts_have_no_bar_and_no_rate(con, report):
-    suppressed = [name for (name,) in rows(con, """
+    suppressed = [
+        name
+        for (name,) in rows(
+            con,
+            """
         select d.district_name from published.district_ckd_prevalence p
         join reference.districts d using (district_code)
-        where p.period = ? and p.sex = 'ALL' and p.age_band = 'ALL' and p.ckd_share_of_tested is null""", [PERIOD])]
+        where p.period = ? and p.sex = 'ALL' and p.age_band = 'ALL' and p.ckd_share_of_tested is null""",
+            [PERIOD],
+        )
+    ]
     chart = re.search(r'<svg class="chart" id="chart-ckd-share".*?</svg>', report, re.S).group(0)
     desc = re.search(r"<desc[^>]*>(.*?)</desc>", chart, re.S).group(1)
     assert suppressed, "the samples have a district whose share is suppressed"
@@ -314,7 +397,9 @@ def test_a_suppressed_headline_shows_no_number(warehouse):
 
 
 def test_no_external_reference(report):
-    refs = re.findall(r"""(?:src|href)\s*=\s*["']?([^"'\s>]+)|url\(\s*["']?([^"')]+)""", report, re.I)
+    refs = re.findall(
+        r"""(?:src|href)\s*=\s*["']?([^"'\s>]+)|url\(\s*["']?([^"')]+)""", report, re.I
+    )
     for ref in (a or b for a, b in refs):
         assert not re.match(r"(?i)(https?:)?//", ref), ref
     for tag, attrs in parse(report).elements:
@@ -354,7 +439,9 @@ def test_interval_columns_are_optional(warehouse):
                         ("district_screening_coverage", "share_with_both")):  # fmt: skip
         mem.execute(f"alter table published.{table} add column {rate}_low double")
         mem.execute(f"alter table published.{table} add column {rate}_high double")
-        mem.execute(f"update published.{table} set {rate}_low = {rate} * 0.9, {rate}_high = least({rate} * 1.1, 1)")
+        mem.execute(
+            f"update published.{table} set {rate}_low = {rate} * 0.9, {rate}_high = least({rate} * 1.1, 1)"
+        )
     with_ci = build_report_html(mem, PERIOD)
     chart = re.search(r'<svg class="chart" id="chart-ckd-share".*?</svg>', with_ci, re.S).group(0)
     assert "(interval " in chart and 'class="ci"' in with_ci
@@ -387,8 +474,11 @@ def test_equations_in_force_come_from_the_manifest(warehouse):
     mem = restricted_copy(warehouse)
     html = build_report_html(mem, PERIOD)
     assert "CKD-EPI 2021 creatinine, without race" in html  # config/pipeline.yaml: adult equation
-    mem.execute("update runs set manifest = json_merge_patch(manifest, "
-                "'{\"equations\": {\"adult\": \"ckd_epi_2009_creatinine\"}}') where period = ?", [PERIOD])
+    mem.execute(
+        "update runs set manifest = json_merge_patch(manifest, "
+        '\'{"equations": {"adult": "ckd_epi_2009_creatinine"}}\') where period = ?',
+        [PERIOD],
+    )
     assert "CKD-EPI 2009 creatinine" in build_report_html(mem, PERIOD)
 
 
@@ -447,7 +537,10 @@ def test_standardised_rates_shown_as_published(con, report):
     for district, rate, flag in published:
         text = cells[(district, "ckd_per_1000_standardised")]
         if flag in ("", "rounded"):
-            assert text.startswith(f"{rate:,.1f}" if flag == "" else f"{rate:,.0f}"[:1]), (district, text)
+            assert text.startswith(f"{rate:,.1f}" if flag == "" else f"{rate:,.0f}"[:1]), (
+                district,
+                text,
+            )
             shown_rates += 1
         elif flag == "few_events":
             assert text == "r"
@@ -464,16 +557,27 @@ def test_equation_change_shows_the_published_cells(con, report):
     sum of the published G3a..G5 counts (KDIGO 2012: G3a-G5 is an eGFR below 60), or 's' when
     any of them is blank."""
     cells = {(d, c): t for d, c, t in parse(report).cells["table-equation-districts"]}
-    totals = rows(con, "select district_code, persons_compared, moved_to_lower_gfr_category from "
-                  "published.district_equation_change where period = ? and comparison = 'ckd_epi_2009_creatinine'",
-                  [PERIOD])
+    totals = rows(
+        con,
+        "select district_code, persons_compared, moved_to_lower_gfr_category from "
+        "published.district_equation_change where period = ? and comparison = 'ckd_epi_2009_creatinine'",
+        [PERIOD],
+    )
     assert totals
     for district, compared, lower in totals:
-        assert cells[(district, "persons_compared")] == ("s" if compared is None else f"{compared:,}")
-        assert cells[(district, "moved_to_lower_gfr_category")] == ("s" if lower is None else f"{lower:,}")
-        below = rows(con, "select persons_in_force from published.district_equation_change_categories where "
-                     "period = ? and comparison = 'ckd_epi_2009_creatinine' and district_code = ? and "
-                     "g_category in ('G3a', 'G3b', 'G4', 'G5')", [PERIOD, district])
+        assert cells[(district, "persons_compared")] == (
+            "s" if compared is None else f"{compared:,}"
+        )
+        assert cells[(district, "moved_to_lower_gfr_category")] == (
+            "s" if lower is None else f"{lower:,}"
+        )
+        below = rows(
+            con,
+            "select persons_in_force from published.district_equation_change_categories where "
+            "period = ? and comparison = 'ckd_epi_2009_creatinine' and district_code = ? and "
+            "g_category in ('G3a', 'G3b', 'G4', 'G5')",
+            [PERIOD, district],
+        )
         values = [v for (v,) in below]
         expected = "s" if any(v is None for v in values) else f"{sum(values):,}"
         assert cells[(district, "below_60_persons_in_force")] == expected, district
@@ -483,8 +587,12 @@ def test_equation_change_shows_the_published_cells(con, report):
 def test_sensitivity_shows_the_default_beside_estimates_counted(con, report):
     cells = {(d, c): t for d, c, t in parse(report).cells["table-sensitivity"]}
     tested = published_total(con, "district_ckd_prevalence")["persons_tested"]
-    added = rows(con, "select persons_tested_added from published.district_estimated_acr_sensitivity "
-                      "where period = ? and district_code = 'ALL'", [PERIOD])[0][0]
+    added = rows(
+        con,
+        "select persons_tested_added from published.district_estimated_acr_sensitivity "
+        "where period = ? and district_code = 'ALL'",
+        [PERIOD],
+    )[0][0]
     assert cells[("persons_tested", "persons_tested_default")] == f"{tested:,}"
     shown = cells[("persons_tested", "persons_tested_with_estimates")]
     assert shown == ("s" if added is None else f"{tested + added:,}")
@@ -496,9 +604,16 @@ def test_maps_colour_the_published_values_and_hatch_the_blanks(con, report):
     lowest in the first colour, the highest in the last)."""
     svg = re.search(r'<svg class="map" id="map-coverage".*?</svg>', report, re.S).group(0)
     fills = dict(re.findall(r'data-district="([^"]+)" d="[^"]*" fill="([^"]+)"', svg))
-    published = {d: v for d, v in rows(con, "select district_code, share_with_both from "
-                                            "published.district_screening_coverage where period = ? and "
-                                            "district_code like 'WF%'", [PERIOD])}
+    published = {
+        d: v
+        for d, v in rows(
+            con,
+            "select district_code, share_with_both from "
+            "published.district_screening_coverage where period = ? and "
+            "district_code like 'WF%'",
+            [PERIOD],
+        )
+    }
     assert set(fills) == set(published)
     blank = [d for d, v in published.items() if v is None]
     assert blank, "the samples have a district whose coverage is suppressed"
@@ -513,10 +628,18 @@ def test_a_count_blanked_in_coverage_shows_as_suppressed_beside_it(warehouse):
     """persons_with_diabetes and with_acr of the expected-cases table are coverage's, blank where
     coverage blanks them even when this table's own counts are all published: 's', never '–'."""
     mem = restricted_copy(warehouse)
-    mem.execute("update published.district_screening_coverage set with_acr = null "
-                "where period = ? and district_code = 'WF01'", [PERIOD])
-    mem.execute("update published.district_undetected_albuminuria set expected_a2_a3_without_acr = null, "
-                "suppression = '' where period = ? and district_code = 'WF01'", [PERIOD])
-    cells = {(d, c): t for d, c, t in parse(build_report_html(mem, PERIOD)).cells["table-undetected"]}
+    mem.execute(
+        "update published.district_screening_coverage set with_acr = null "
+        "where period = ? and district_code = 'WF01'",
+        [PERIOD],
+    )
+    mem.execute(
+        "update published.district_undetected_albuminuria set expected_a2_a3_without_acr = null, "
+        "suppression = '' where period = ? and district_code = 'WF01'",
+        [PERIOD],
+    )
+    cells = {
+        (d, c): t for d, c, t in parse(build_report_html(mem, PERIOD)).cells["table-undetected"]
+    }
     assert cells[("WF01", "expected_a2_a3_without_acr")] == "s"
     assert cells[("WF01", "share_a2_a3_of_tested")] == "s"

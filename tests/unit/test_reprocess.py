@@ -33,12 +33,17 @@ def extract(month: str, persons: int, offset: int = 0) -> str:
         sex = "W" if i % 3 else "M"
         for j, day in enumerate(("03", "20")):
             value = f"{80 + (i * 7) % 90},{j}"
-            lines.append(f"WF-rp{i:04d};{1940 + i % 50};{sex};WF01;RP{month}{i:03d}{j};"
-                         f"{day}/{month[5:]}/{month[:4]};CREA;{value};µmol/l;F;{day}/{month[5:]}/{month[:4]}")
+            lines.append(
+                f"WF-rp{i:04d};{1940 + i % 50};{sex};WF01;RP{month}{i:03d}{j};"
+                f"{day}/{month[5:]}/{month[:4]};CREA;{value};µmol/l;F;{day}/{month[5:]}/{month[:4]}"
+            )
     return "\n".join(lines) + "\n"
 
 
-FILES = {f"{LAB}/export_202505.csv": extract("2025-05", 30), f"{LAB}/export_202506.csv": extract("2025-06", 30, 10)}
+FILES = {
+    f"{LAB}/export_202505.csv": extract("2025-05", 30),
+    f"{LAB}/export_202506.csv": extract("2025-06", 30, 10),
+}
 
 
 def fix_sex_codes(config: Path) -> None:
@@ -56,12 +61,22 @@ def tables(out: Path, period: str) -> dict[str, list[tuple]]:
             "result_versions": rows(con, "select * from result_versions order by file_id, line_no"),
             "rejected_rows": rows(con, "select * from rejected_rows order by file_id, line_no"),
             "kidney_measures": rows(con, "select * from kidney_measures order by all"),
-            "kidney_events": rows(con, "select * from kidney_events where period = ? order by all", [period]),
-            "person_status": rows(con, "select * from person_status where period = ? order by all", [period]),
-            "ingest_files": rows(con, "select * exclude (ingested_at) from ingest_files order by file_id"),
+            "kidney_events": rows(
+                con, "select * from kidney_events where period = ? order by all", [period]
+            ),
+            "person_status": rows(
+                con, "select * from person_status where period = ? order by all", [period]
+            ),
+            "ingest_files": rows(
+                con, "select * exclude (ingested_at) from ingest_files order by file_id"
+            ),
         }
-        for (name,) in rows(con, "select table_name from duckdb_tables() where schema_name = 'published' order by 1"):
-            got[f"published.{name}"] = rows(con, f"select * exclude (revision) from published.{name} order by all")
+        for (name,) in rows(
+            con, "select table_name from duckdb_tables() where schema_name = 'published' order by 1"
+        ):
+            got[f"published.{name}"] = rows(
+                con, f"select * exclude (revision) from published.{name} order by all"
+            )
         return got
     finally:
         con.close()
@@ -108,7 +123,10 @@ def test_fixed_and_reprocessed_equals_a_clean_run_under_the_fixed_config(wrongly
     assert applied.applied
     assert count(out, "select count(*) from lab_results where sex = 'U'") == 0
     # nothing deleted: the rows made under the wrong config are kept as superseded versions
-    assert count(out, "select count(*) from result_versions_replaced where outcome = 'superseded'") == 120
+    assert (
+        count(out, "select count(*) from result_versions_replaced where outcome = 'superseded'")
+        == 120
+    )
     assert count(out, "select count(*) from result_versions_replaced where sex = 'U'") == unmapped
     assert count(out, "select count(distinct config_sha256) from ingest_files") == 1
     # applying it again is a no-op: every file is already made under the current config
@@ -127,7 +145,9 @@ def test_fixed_and_reprocessed_equals_a_clean_run_under_the_fixed_config(wrongly
         assert got[name] == want[name], name
     # the periods it reaches are then published again, as revisions
     for period in applied.periods:
-        run_month_plain(period, str(fixed), str(inbox), str(out), demo=True, revise="sex code W mapped to F")
+        run_month_plain(
+            period, str(fixed), str(inbox), str(out), demo=True, revise="sex code W mapped to F"
+        )
     for period in ("2025-06", "2025-07"):
         got, want = tables(out, period), tables(clean, period)
         assert got.keys() == want.keys()
@@ -137,7 +157,9 @@ def test_fixed_and_reprocessed_equals_a_clean_run_under_the_fixed_config(wrongly
 
 def test_a_run_after_a_config_change_says_so_and_holds_the_new_files_back(wrongly_mapped):
     _, fixed, inbox, out = wrongly_mapped
-    write_inbox(inbox.parent, {f"{LAB}/export_202507.csv": extract("2025-07", 5, 50)}, name=inbox.name)
+    write_inbox(
+        inbox.parent, {f"{LAB}/export_202507.csv": extract("2025-07", 5, 50)}, name=inbox.name
+    )
     summary = run_month_plain("2025-07", str(fixed), str(inbox), str(out), demo=True)
     assert LAB in summary["config_drift"]
     assert "kidneysurv reprocess corvale_lab_chain" in summary["config_drift"][LAB]
@@ -153,7 +175,9 @@ def test_a_missing_or_changed_file_is_refused_by_name(wrongly_mapped):
     moved = inbox / LAB / "export_202506.csv"
     content = moved.read_bytes()
     moved.unlink()
-    with pytest.raises(ReprocessRefused, match="export_202506.csv: ingested earlier but no longer in the inbox"):
+    with pytest.raises(
+        ReprocessRefused, match="export_202506.csv: ingested earlier but no longer in the inbox"
+    ):
         reprocess_source(fixed, inbox, out, LAB, apply=True, demo=True)
     moved.write_bytes(content.replace(b"WF-rp0010", b"WF-rp9999"))
     with pytest.raises(ReprocessRefused, match="export_202506.csv: its content differs"):
@@ -194,7 +218,9 @@ def test_one_earlier_file_passes_the_expectation_suites(wrongly_mapped):
     _, fixed, inbox, out = wrongly_mapped
     edit_pipeline_yaml(fixed, "quality_gate", "great_expectations", True)
     edit_pipeline_yaml(fixed, "quality_gate", "quality_pages", "never")
-    done = reprocess_source(fixed, inbox, out, LAB, file=f"{LAB}/export_202505.csv", apply=True, demo=True)
+    done = reprocess_source(
+        fixed, inbox, out, LAB, file=f"{LAB}/export_202505.csv", apply=True, demo=True
+    )
     assert done.applied and done.files == [f"{LAB}/export_202505.csv"]
     assert done.outcomes["accepted"] == (60, 60)
 
@@ -216,7 +242,9 @@ def test_rows_without_a_report_date_keep_the_one_they_were_first_given(tmp_path)
     data = yaml.safe_load(path.read_text(encoding="utf-8"))
     data["sex_codes"] = {"W": "F"}
     path.write_text(yaml.safe_dump(data, sort_keys=False), encoding="utf-8")
-    assert reprocess_source(config, inbox, out, "westerfold_general_lab", apply=True, demo=True).applied
+    assert reprocess_source(
+        config, inbox, out, "westerfold_general_lab", apply=True, demo=True
+    ).applied
     assert count(out, "select count(*) from lab_results where sex = 'F'") == 15
     after = count(out, "select count(distinct reported_date::varchar) || ' ' || max(reported_date)::varchar "
                        "from result_versions")  # fmt: skip

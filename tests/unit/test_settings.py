@@ -14,7 +14,9 @@ from tests.conftest import CONFIG_DIR, SMALL_DISTRICTS
 
 def write_source(config_dir: Path, name: str, data: dict | str) -> Path:
     path = config_dir / "sources" / f"{name}.yaml"
-    text = data if isinstance(data, str) else yaml.safe_dump(data, sort_keys=False, allow_unicode=True)
+    text = (
+        data if isinstance(data, str) else yaml.safe_dump(data, sort_keys=False, allow_unicode=True)
+    )
     path.write_text(text, encoding="utf-8")
     return path
 
@@ -55,10 +57,14 @@ def test_shipped_config_loads():
     settings = load_settings(CONFIG_DIR)
     assert settings.sources
     assert settings.districts
-    assert {s.id for s in settings.sources} == {p.stem for p in (CONFIG_DIR / "sources").glob("*.yaml")}
+    assert {s.id for s in settings.sources} == {
+        p.stem for p in (CONFIG_DIR / "sources").glob("*.yaml")
+    }
 
 
-@pytest.mark.parametrize("path", sorted((CONFIG_DIR / "sources").glob("*.yaml")), ids=lambda p: p.stem)
+@pytest.mark.parametrize(
+    "path", sorted((CONFIG_DIR / "sources").glob("*.yaml")), ids=lambda p: p.stem
+)
 def test_every_shipped_source_config_loads(path: Path):
     # picked up by glob: a new source config is tested with no new test code (DEVELOPERS.md, Conventions)
     source = load_source(path)
@@ -124,7 +130,9 @@ def test_missing_region_file(small_config: Path):
 
 
 def test_invalid_yaml(small_config: Path):
-    path = write_source(small_config, "test_standard_lab", "id: test_standard_lab\nlayout: [standard\n")
+    path = write_source(
+        small_config, "test_standard_lab", "id: test_standard_lab\nlayout: [standard\n"
+    )
     message = config_error(small_config)
     assert str(path) in message and "not valid YAML" in message
 
@@ -172,7 +180,9 @@ def test_status_mapped_to_non_fhir_status(small_config: Path):
 
 
 def test_test_code_mapped_to_unlisted_loinc(small_config: Path):
-    write_source(small_config, "test_semicolon_lab", {**DELIMITED, "test_codes": {"CREA": "0000-0"}})
+    write_source(
+        small_config, "test_semicolon_lab", {**DELIMITED, "test_codes": {"CREA": "0000-0"}}
+    )
     message = config_error(small_config)
     assert "test_codes" in message and "0000-0" in message
 

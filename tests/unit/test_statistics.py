@@ -107,7 +107,9 @@ def test_fay_feuer_hand_calculation_three_strata():
     # A gamma(k, theta) quantile is theta * chi2(2k) / 2 (scipy chi2, an independent route).
     rate, low, high = direct_standardised_rate([5, 20, 10], [1000, 2000, 500], [0.5, 0.3, 0.2])
     assert rate == pytest.approx(0.0095, rel=1e-12)
-    assert low == pytest.approx(3.30e-6 / 0.0095 * chi2.ppf(0.025, 2 * 9.025e-5 / 3.30e-6) / 2, rel=1e-9)
+    assert low == pytest.approx(
+        3.30e-6 / 0.0095 * chi2.ppf(0.025, 2 * 9.025e-5 / 3.30e-6) / 2, rel=1e-9
+    )
     assert high == pytest.approx(3.55e-4 * chi2.ppf(0.975, 2 * 1e-4 / 3.55e-6) / 2, rel=1e-9)
     # the gamma interval is asymmetric, wider above the estimate (right skew)
     assert high - rate > rate - low > 0
@@ -138,7 +140,7 @@ def test_scaling_the_weights_changes_nothing(data, factor):
     d, n, w = data
     one = direct_standardised_rate(d, n, w)
     scaled = direct_standardised_rate(d, n, [x * factor for x in w])
-    for a, b in zip(one, scaled):
+    for a, b in zip(one, scaled, strict=False):
         assert b == pytest.approx(a, rel=1e-9, abs=1e-300)
     rate, low, high = one
     assert low <= rate <= high  # the interval holds the estimate
@@ -169,7 +171,9 @@ def test_groups_on_leading_axes_and_empty_groups():
     n = [[1000, 2000, 500], [10, 20, 30], [0, 0, 0]]
     rate, low, high = direct_standardised_rate(d, n, [0.5, 0.3, 0.2])
     for i in range(2):
-        assert (rate[i], low[i], high[i]) == pytest.approx(direct_standardised_rate(d[i], n[i], [0.5, 0.3, 0.2]))
+        assert (rate[i], low[i], high[i]) == pytest.approx(
+            direct_standardised_rate(d[i], n[i], [0.5, 0.3, 0.2])
+        )
     assert np.isnan(rate[2]) and np.isnan(low[2]) and np.isnan(high[2])  # no population: no rate
     with pytest.raises(ValueError):
         direct_standardised_rate([1, 0], [0, 10], [1, 1])  # events where nobody lives
@@ -190,21 +194,25 @@ def test_a_m_runs_over_strata_without_events():
 
 
 def test_standardise_frame_matches_the_function():
-    weights = dict(zip(["0-39", "40-64", "65+"], [0.5, 0.3, 0.2]))
+    weights = dict(zip(["0-39", "40-64", "65+"], [0.5, 0.3, 0.2], strict=False))
     frame = pl.DataFrame({
         "district_code": ["WF01", "WF01", "WF01", "WF02", "WF02"],
         "age_band": ["0-39", "40-64", "65+", "0-39", "65+"],
         "persons_ckd": [5, 20, 10, 1, 2],
         "population": [1000, 2000, 500, 300, 100],
     })  # fmt: skip
-    out = standardise_frame(frame, ["district_code"], "age_band", "persons_ckd", "population", weights, per=1000)
+    out = standardise_frame(
+        frame, ["district_code"], "age_band", "persons_ckd", "population", weights, per=1000
+    )
     assert out["district_code"].to_list() == ["WF01", "WF02"]
     first = direct_standardised_rate([5, 20, 10], [1000, 2000, 500], [0.5, 0.3, 0.2])
     second = direct_standardised_rate([1, 0, 2], [300, 0, 100], [0.5, 0.3, 0.2])  # 40-64 absent: 0
     assert out.row(0)[1:] == pytest.approx([1000 * float(x) for x in first])
     assert out.row(1)[1:] == pytest.approx([1000 * float(x) for x in second])
     with pytest.raises(ValueError):
-        standardise_frame(frame, ["district_code"], "age_band", "persons_ckd", "population", {"0-39": 1.0})
+        standardise_frame(
+            frame, ["district_code"], "age_band", "persons_ckd", "population", {"0-39": 1.0}
+        )
 
 
 # --------------------------------------------------------------------------- WHO standard

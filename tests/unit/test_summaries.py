@@ -25,7 +25,9 @@ BANDS = [f"{low}-{low + 4}" for low in range(0, 85, 5)] + ["85+"]  # config/pipe
 
 
 def settings(broad: list[int]) -> SimpleNamespace:
-    return SimpleNamespace(pipeline=SimpleNamespace(summaries=SummarySettings(standardisation_age_bands=broad)))
+    return SimpleNamespace(
+        pipeline=SimpleNamespace(summaries=SummarySettings(standardisation_age_bands=broad))
+    )
 
 
 def prevalence(cells: dict[tuple[str, str, str], tuple[int, int | None]]) -> pl.DataFrame:
@@ -36,13 +38,17 @@ def prevalence(cells: dict[tuple[str, str, str], tuple[int, int | None]]) -> pl.
     totals = [frame.group_by("district_code").agg(pl.col("persons_ckd").sum(), pl.col("population").sum()),
               frame.select(pl.lit("ALL").alias("district_code"), pl.col("persons_ckd").sum(),
                            pl.col("population").sum())]  # fmt: skip
-    totals = [t.with_columns(pl.lit("ALL").alias("sex"), pl.lit("ALL").alias("age_band")) for t in totals]
+    totals = [
+        t.with_columns(pl.lit("ALL").alias("sex"), pl.lit("ALL").alias("age_band")) for t in totals
+    ]
     out = pl.concat([frame, *[t.select(frame.columns) for t in totals]])
     return out.with_columns(pl.lit("2025-06").alias("period"))
 
 
 def total_row(frame: pl.DataFrame, district: str) -> dict:
-    return frame.filter((pl.col("district_code") == district) & (pl.col("sex") == "ALL")).row(0, named=True)
+    return frame.filter((pl.col("district_code") == district) & (pl.col("sex") == "ALL")).row(
+        0, named=True
+    )
 
 
 def test_broad_group_weights_are_sums_of_the_who_weights():
@@ -51,7 +57,9 @@ def test_broad_group_weights_are_sums_of_the_who_weights():
     young = 8.86 + 8.69 + 8.60 + 8.47 + 8.22 + 7.93 + 7.61 + 7.15 + 6.59 + 6.04 + 5.37 + 4.55 + 3.72
     middle = 2.96 + 2.21
     old = 1.52 + 0.91 + 0.44 + 0.15 + 0.04 + 0.005
-    assert collapse_weights([0, 65, 75]) == pytest.approx([young / 100.035, middle / 100.035, old / 100.035], rel=1e-12)
+    assert collapse_weights([0, 65, 75]) == pytest.approx(
+        [young / 100.035, middle / 100.035, old / 100.035], rel=1e-12
+    )
     assert age_labels([0, 65, 75]) == ["0-64", "65-74", "75+"]
 
 
@@ -62,7 +70,9 @@ def test_the_rate_is_the_direct_method_on_the_broad_groups():
     out = add_standardised_rates(prevalence(cells), settings([0, 65, 75]))
     w = collapse_weights([0, 65, 75])
     # by hand: per group, cases / residents (sexes pooled), times the weight, summed, per 1,000
-    by_hand = 1000 * (w[0] * (3 + 7) / (400 + 350) + w[1] * (12 + 9) / (200 + 150) + w[2] * (15 + 11) / (60 + 40))
+    by_hand = 1000 * (
+        w[0] * (3 + 7) / (400 + 350) + w[1] * (12 + 9) / (200 + 150) + w[2] * (15 + 11) / (60 + 40)
+    )
     wf01 = total_row(out, "WF01")
     assert wf01["ckd_per_1000_standardised"] == pytest.approx(round(by_hand, 2), abs=1e-9)
     rate, low, high = direct_standardised_rate([10, 21, 26], [750, 350, 100], w)
@@ -71,13 +81,15 @@ def test_the_rate_is_the_direct_method_on_the_broad_groups():
     assert 1000 * float(rate) == pytest.approx(by_hand, rel=1e-12)
     # the region: every district's cells, the populations summed
     region = direct_standardised_rate([15, 41, 35], [1250, 650, 180], w)[0]
-    assert total_row(out, "ALL")["ckd_per_1000_standardised"] == pytest.approx(round(1000 * float(region), 2))
+    assert total_row(out, "ALL")["ckd_per_1000_standardised"] == pytest.approx(
+        round(1000 * float(region), 2)
+    )
 
 
 def test_each_cell_carries_its_broad_group_and_totals_none():
     cells = {("WF01", "F", b): (1, 100) for b in BANDS}
     out = add_standardised_rates(prevalence(cells), settings([0, 65, 75]))
-    groups = dict(zip(out["age_band"], out["standardisation_age_group"]))
+    groups = dict(zip(out["age_band"], out["standardisation_age_group"], strict=False))
     assert groups["0-4"] == groups["60-64"] == "0-64"
     assert groups["65-69"] == groups["70-74"] == "65-74"
     assert groups["75-79"] == groups["85+"] == "75+"
@@ -93,15 +105,21 @@ def test_the_region_rate_counts_persons_of_unknown_district():
     assert total_row(out, "unknown")["ckd_per_1000_standardised"] is None
     w = collapse_weights([0, 65, 75])
     expected = direct_standardised_rate([0, 10, 0], [0, 200, 0], w)[0]
-    assert total_row(out, "ALL")["ckd_per_1000_standardised"] == pytest.approx(round(1000 * float(expected), 2))
+    assert total_row(out, "ALL")["ckd_per_1000_standardised"] == pytest.approx(
+        round(1000 * float(expected), 2)
+    )
     assert total_row(out, "WF01")["ckd_per_1000_standardised"] is not None
 
 
 def test_per_100_tested_limits_are_100_times_wilson():
     frame = pl.DataFrame({"persons_ckd": [0, 3, 81, 40], "persons_tested": [10, 12, 263, 40]})
-    out = add_intervals(frame.with_columns(ckd_per_100_tested=pl.lit(0.0)), "district_ckd_categories", 0.95)
+    out = add_intervals(
+        frame.with_columns(ckd_per_100_tested=pl.lit(0.0)), "district_ckd_categories", 0.95
+    )
     for row in out.iter_rows(named=True):
-        low, high = proportion_confint(row["persons_ckd"], row["persons_tested"], alpha=0.05, method="wilson")
+        low, high = proportion_confint(
+            row["persons_ckd"], row["persons_tested"], alpha=0.05, method="wilson"
+        )
         assert row["ckd_per_100_tested_low"] == pytest.approx(round(100 * low, 2), abs=1e-9)
         assert row["ckd_per_100_tested_high"] == pytest.approx(round(100 * high, 2), abs=1e-9)
     # Newcombe 1998, method 3: 81/263 -> 0.2553-0.3662, i.e. 25.53-36.62 per 100

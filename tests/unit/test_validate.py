@@ -16,7 +16,10 @@ from tests.conftest import make_small_config, rows, run_month, write_inbox
 
 LAB = "westerfold_general_lab"  # the shipped standard-layout source (three-key config)
 HEADER = "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status,reported_at"
-CREA, ACR = "2160-0", "9318-7"  # LOINC: creatinine serum/plasma mass/volume; albumin/creatinine urine
+CREA, ACR = (
+    "2160-0",
+    "9318-7",
+)  # LOINC: creatinine serum/plasma mass/volume; albumin/creatinine urine
 
 
 def row(spec: str, value: str, *, unit: str = "mg/dL", code: str = CREA, status: str = "final",
@@ -51,7 +54,10 @@ RULE_ROWS = {
     # a birth year no calendar date can hold (found by the reader property test): rejected, and
     # the mid-year age estimate never builds a date from it (which aborted the run's transaction)
     "born_absurd": (row("R13b", "1.0", born="-175532933"), "invalid_birth_year"),
-    "short_row": ("WF-val0001,1960,F,WF01,R14,2025-06-02,2160-0,1.0,mg/dL,final", "wrong_field_count"),
+    "short_row": (
+        "WF-val0001,1960,F,WF01,R14,2025-06-02,2160-0,1.0,mg/dL,final",
+        "wrong_field_count",
+    ),
     "bad_status": (row("R15", "1.0", status="done"), "unknown_status"),
     "no_token": (row("R16", "1.0", token=""), "missing_person"),
 }
@@ -75,7 +81,11 @@ VERSION_ROWS = [
     ("twice_first", row("V05", "0.9"), "accepted"),
     ("twice_second", row("V05", "0.9"), "duplicate"),
     ("nospec_old", row("", "2.0", token="WF-val0002", reported="2025-06-03"), "superseded"),
-    ("nospec_new", row("", "2.1", token="WF-val0002", status="corrected", reported="2025-06-07"), "accepted"),
+    (
+        "nospec_new",
+        row("", "2.1", token="WF-val0002", status="corrected", reported="2025-06-07"),
+        "accepted",
+    ),
 ]
 
 
@@ -100,7 +110,9 @@ def rules_run(tmp_path_factory):
 
 
 def file_id(con, name: str) -> int:
-    return rows(con, "select file_id from ingest_files where file_path = ?", [f"{LAB}/{name}"])[0][0]
+    return rows(con, "select file_id from ingest_files where file_path = ?", [f"{LAB}/{name}"])[0][
+        0
+    ]
 
 
 @pytest.mark.parametrize("case", list(RULE_ROWS))
@@ -121,7 +133,9 @@ def test_reason_code(rules_run, case):
 def test_rejected_rows_are_not_results(rules_run):
     fid = file_id(rules_run, "results_2025-06.csv")
     [(n_rejected,)] = rows(rules_run, "select count(*) from rejected_rows where file_id = ?", [fid])
-    [(n_versions,)] = rows(rules_run, "select count(*) from result_versions where file_id = ?", [fid])
+    [(n_versions,)] = rows(
+        rules_run, "select count(*) from result_versions where file_id = ?", [fid]
+    )
     assert n_rejected == len(RULE_ROWS)
     assert n_versions == len(ACCEPTED_ROWS)
 
@@ -166,8 +180,17 @@ def test_version_outcome(rules_run, case):
 
 def test_only_accepted_versions_in_lab_results(rules_run):
     fid = file_id(rules_run, "versions_2025-06.csv")
-    got = rows(rules_run, "select specimen_id, status, value from lab_results where file_id = ? order by line_no", [fid])
-    assert got == [("V01", "amended", 1.1), ("V03", "final", 1.4), ("V05", "final", 0.9), (None, "corrected", 2.1)]
+    got = rows(
+        rules_run,
+        "select specimen_id, status, value from lab_results where file_id = ? order by line_no",
+        [fid],
+    )
+    assert got == [
+        ("V01", "amended", 1.1),
+        ("V03", "final", 1.4),
+        ("V05", "final", 0.9),
+        (None, "corrected", 2.1),
+    ]
 
 
 def test_same_file_under_two_names_is_duplicate_file(rules_run):
@@ -236,7 +259,9 @@ def test_amendment_in_later_month_supersedes_earlier_file(tmp_path: Path, small_
     write_inbox(tmp_path, {f"{LAB}/results_2025-07.csv": csv_text(
         [row("M01", "1.6", status="amended", reported="2025-07-03")])})  # fmt: skip
     with run_month(small_config, inbox, tmp_path / "out", period="2025-07") as con:
-        assert rows(con, "select value, status from lab_results where specimen_id = 'M01'") == [(1.6, "amended")]
+        assert rows(con, "select value, status from lab_results where specimen_id = 'M01'") == [
+            (1.6, "amended")
+        ]
         # the earlier file's ledger counts are brought up to date and still balance
         assert rows(con, "select rows_read, rows_accepted, rows_superseded from ingest_files order by file_id") == [
             (1, 0, 1), (1, 1, 0)
@@ -284,7 +309,9 @@ def test_rerunning_with_a_copied_file_changes_no_table(tmp_path: Path, small_con
 
 
 def test_duplicate_file_counts_the_rows_of_its_original(tmp_path: Path, small_config: Path):
-    text = csv_text([row("Q01", "1.0"), row("\"Q02\ncontinued\"", "1.1")])  # a quoted field over two lines
+    text = csv_text(
+        [row("Q01", "1.0"), row('"Q02\ncontinued"', "1.1")]
+    )  # a quoted field over two lines
     inbox = write_inbox(tmp_path, {f"{LAB}/a_2025-06.csv": text, f"{LAB}/b_2025-06.csv": text})
     with run_month(small_config, inbox, tmp_path / "out", period="2025-06") as con:
         got = rows(con, "select status, rows_read from ingest_files order by file_id")
@@ -300,7 +327,9 @@ def test_quality_gate_holds_back_a_bad_source_only(tmp_path: Path):
         "id: test_second_lab\nlayout: standard\nfolder: test_second_lab\n", encoding="utf-8"
     )
     good = [row(f"G{i:02d}", "1.0", token=f"WF-good{i:03d}") for i in range(10)]
-    bad = [row(f"B{i:02d}", "1.0" if i % 2 else "see note", token=f"WF-bad{i:03d}") for i in range(10)]
+    bad = [
+        row(f"B{i:02d}", "1.0" if i % 2 else "see note", token=f"WF-bad{i:03d}") for i in range(10)
+    ]
     inbox = write_inbox(tmp_path, {
         f"{LAB}/results_2025-06.csv": csv_text(bad),
         "test_second_lab/results_2025-06.csv": csv_text(good),
@@ -310,18 +339,26 @@ def test_quality_gate_holds_back_a_bad_source_only(tmp_path: Path):
         assert files == {LAB: "held_back", "test_second_lab": "ingested"}
         [(message,)] = rows(con, "select message from ingest_files where source_id = ?", [LAB])
         assert "5 of 10 rows rejected" in message
-        assert rows(con, "select source_id, count(*) from lab_results group by all") == [("test_second_lab", 10)]
+        assert rows(con, "select source_id, count(*) from lab_results group by all") == [
+            ("test_second_lab", 10)
+        ]
         assert rows(con, "select count(*) from rejected_rows where source_id = ?", [LAB]) == [(0,)]
-        assert rows(con, "select count(*) from result_versions where source_id = ?", [LAB]) == [(0,)]
+        assert rows(con, "select count(*) from result_versions where source_id = ?", [LAB]) == [
+            (0,)
+        ]
 
 
 def test_quality_gate_per_source_limit_overrides_default(tmp_path: Path):
     config = make_small_config(tmp_path / "config", max_rejection_rate=0.05)
     path = config / "sources" / f"{LAB}.yaml"
-    path.write_text(path.read_text(encoding="utf-8") + "max_rejection_rate: 0.6\n", encoding="utf-8")
-    bad = [row(f"B{i:02d}", "1.0" if i % 2 else "see note", token=f"WF-bad{i:03d}") for i in range(10)]
+    path.write_text(
+        path.read_text(encoding="utf-8") + "max_rejection_rate: 0.6\n", encoding="utf-8"
+    )
+    bad = [
+        row(f"B{i:02d}", "1.0" if i % 2 else "see note", token=f"WF-bad{i:03d}") for i in range(10)
+    ]
     inbox = write_inbox(tmp_path, {f"{LAB}/results_2025-06.csv": csv_text(bad)})
     with run_month(config, inbox, tmp_path / "out", period="2025-06") as con:
-        assert rows(con, "select status, rows_accepted, rows_rejected from ingest_files") == [("ingested", 5, 5)]
-
-
+        assert rows(con, "select status, rows_accepted, rows_rejected from ingest_files") == [
+            ("ingested", 5, 5)
+        ]

@@ -61,7 +61,9 @@ def expected_outcomes(rows: list[dict]) -> dict[tuple[int, int], str]:
     persons: dict[tuple, set] = {}
     for r in rows:
         if r["specimen_id"] is not None:
-            persons.setdefault((r["source_id"], r["specimen_id"], r["analyte"]), set()).add(r["person_key"])
+            persons.setdefault((r["source_id"], r["specimen_id"], r["analyte"]), set()).add(
+                r["person_key"]
+            )
     conflict = {k for k, p in persons.items() if len(p) > 1}
     for r in rows:
         if (r["source_id"], r["specimen_id"], r["analyte"]) in conflict:
@@ -104,10 +106,18 @@ def expected_outcomes(rows: list[dict]) -> dict[tuple[int, int], str]:
     same: dict[tuple, list[dict]] = {}
     for r in accepted:
         if r["value"] is not None:
-            key = (r["person_key"], r["analyte"], r["collected_date"], r["comparator"], round(r["value"], 4))
+            key = (
+                r["person_key"],
+                r["analyte"],
+                r["collected_date"],
+                r["comparator"],
+                round(r["value"], 4),
+            )
             same.setdefault(key, []).append(r)
     for group in same.values():
-        kept = min(group, key=lambda r: (r["reported_date"], r["source_id"], r["file_id"], r["line_no"]))
+        kept = min(
+            group, key=lambda r: (r["reported_date"], r["source_id"], r["file_id"], r["line_no"])
+        )
         for r in group:
             if r["source_id"] != kept["source_id"]:
                 outcome[pos(r)] = "duplicate"
@@ -190,5 +200,10 @@ def test_amended_wins_over_final_of_the_same_report_date_and_a_shared_specimen_i
     order = ("file_id", "line_no", "source_id", "person_key", "specimen_id", "analyte", "collected_date",
              "status", "value_text", "reported_unit", "value", "comparator", "reported_date")  # fmt: skip
     rows = [{c: {**base, **r}[c] for c in order} for r in rows]
-    assert resolved(rows, sql) == {(1, 2): "accepted", (1, 3): "superseded", (1, 4): "rejected", (2, 2): "rejected"}
+    assert resolved(rows, sql) == {
+        (1, 2): "accepted",
+        (1, 3): "superseded",
+        (1, 4): "rejected",
+        (2, 2): "rejected",
+    }
     assert expected_outcomes(rows) == resolved(rows, sql)

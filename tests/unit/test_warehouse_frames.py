@@ -34,7 +34,9 @@ def test_with_frame_inserts_and_releases_the_frame_inside_a_transaction():
 def test_with_frame_takes_a_polars_frame_and_by_name_inserts():
     con = duckdb.connect()
     con.execute("create table t (a integer, b varchar)")
-    with_frame(con, pl.DataFrame({"b": ["x"], "a": [1]}), "insert into t by name select * from _frame")
+    with_frame(
+        con, pl.DataFrame({"b": ["x"], "a": [1]}), "insert into t by name select * from _frame"
+    )
     assert con.execute("select a, b from t").fetchall() == [(1, "x")]
 
 
