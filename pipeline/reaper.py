@@ -21,6 +21,8 @@ GRACE_SECONDS = 5.0
 
 
 _WATCHERS: dict[int, subprocess.Popen] = {}
+#: The environment variable that marks the processes a watched run started.
+MARK = "KIDNEYSURV_WATCHED_RUN"
 
 
 def watch(pid: int | None = None) -> subprocess.Popen:
@@ -28,6 +30,10 @@ def watch(pid: int | None = None) -> subprocess.Popen:
     pid = pid or os.getpid()
     if pid in _WATCHERS and _WATCHERS[pid].poll() is None:
         return _WATCHERS[pid]
+    # every process the run starts from now on inherits this mark, so the watcher also finds one
+    # started between two of its looks (Prefect's server can start and the run be killed within
+    # half a second)
+    os.environ[MARK] = f"{pid}"
     _WATCHERS[pid] = subprocess.Popen(
         [sys.executable, "-m", "pipeline.reaper", str(pid)],
         stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
@@ -85,10 +91,30 @@ def main(pid: int) -> None:
     except psutil.Error:
         return
     known: dict[int, float] = {}
-    while parent.is_running() and parent.status() != psutil.STATUS_ZOMBIE:
-        known.update(_descendants(parent, me))
-        time.sleep(POLL_SECONDS)
+    try:
+        while parent.is_running() and parent.status() != psutil.STATUS_ZOMBIE:
+            known.update(_descendants(parent, me))
+            time.sleep(POLL_SECONDS)
+    except psutil.Error:  # gone between two looks
+        pass
+    known.update(_marked(str(pid), me))
     reap(known)
+
+
+def _marked(mark: str, me: int) -> dict[int, float]:
+    """Processes carrying the run's mark in their environment (pid -> start time)."""
+    import psutil
+
+    found = {}
+    for proc in psutil.process_iter():
+        if proc.pid == me:
+            continue
+        try:
+            if proc.environ().get(MARK) == mark:
+                found[proc.pid] = proc.create_time()
+        except psutil.Error:
+            pass
+    return found
 
 
 if __name__ == "__main__":  # pragma: no cover - run by watch()

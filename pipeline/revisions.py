@@ -137,7 +137,11 @@ def settle_release(
     changed = previous > 0 and any(_differs_for(con, t.name, period) for t in PUBLISHED_TABLES)
     if changed and not (reason and reason.strip()):
         before = previous_run.get("headline", {})
-        lines = [f"  {k}: {before.get(k)} -> {headline_after.get(k)}"
+
+        def shown(value: object) -> str:  # a blank headline is a suppressed (or absent) count
+            return "blank" if value is None else str(value)
+
+        lines = [f"  {k}: {shown(before.get(k))} -> {shown(headline_after.get(k))}"
                  for k in sorted(set(before) | set(headline_after)) if before.get(k) != headline_after.get(k)]  # fmt: skip
         raise RevisionNeeded(
             f"period {period} is already published (revision {previous}, run of {previous_run.get('started_at')}) "
