@@ -103,7 +103,9 @@ def build_manifest(run_id: str, started_at: dt.datetime, settings: Settings, per
     return {
         "run_id": run_id,
         "period": period,
-        "started_at": started_at.isoformat(timespec="seconds"),
+        # to the microsecond: two runs of a period within one second (a rerun, a revision) must
+        # still order, as the report and the revision check read the latest run of a period
+        "started_at": started_at.isoformat(timespec="microseconds"),
         "status": "published_with_sources_held_back" if held else "published",
         "exit_code": EXIT_HELD_BACK if held else EXIT_OK,
         "package_version": package_version(),
