@@ -75,7 +75,9 @@ def test_sql_over_puts_inputs_in_front_of_a_sql_file():
 
     text = sql_over("results_validated", {"landed_rows": "select * from _frame",
                                               "landed_rows_typed": "sql:landed_rows_typed"})  # fmt: skip
-    assert text.startswith("with landed_rows as (\nselect * from _frame\n),\nlanded_rows_typed as (")
+    assert text.startswith(
+        "with landed_rows as (\nselect * from _frame\n),\nlanded_rows_typed as ("
+    )
     assert "from landed_rows_typed as s" in text
     with pytest.raises(ValueError, match="not a plain relation name"):
         sql_over("results_validated", {"x; drop": "select 1"})
