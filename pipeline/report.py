@@ -1,6 +1,6 @@
 """Report: the month's static HTML report, and its headline numbers as plain text.
 
-One self-contained file: CSS inline, charts drawn here as inline SVG, no script, no font, image
+One self-contained file: CSS inline, charts drawn with matplotlib as inline SVG, no script, no font, image
 or style sheet fetched from anywhere (a Content-Security-Policy meta tells the browser so too).
 
 What it reads is fixed in :data:`READABLE_TABLES`: the publishable tables (schema ``published``,
@@ -15,10 +15,13 @@ The output depends only on the warehouse (no wall-clock time), so the same run g
 from __future__ import annotations
 
 import html
+import io
 import json
 import math
 import os
-from collections.abc import Callable, Sequence
+import re
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -447,100 +450,77 @@ def _headlines(data: _Data) -> list[_Headline]:
     ]  # fmt: skip
 
 
-# --------------------------------------------------------------------------- SVG charts
+# --------------------------------------------------------------------------- charts (matplotlib, SVG)
 
 
 def _e(text: Any) -> str:
     return html.escape(str(text), quote=True)
 
 
-def _nice_ticks(low: float, high: float, count: int = 5) -> list[float]:
-    """Round tick values covering [low, high] (steps of 1, 2, 2.5 or 5 times a power of ten)."""
-    if not math.isfinite(low) or not math.isfinite(high):
-        low, high = 0.0, 1.0
-    if high - low < 1e-9:
-        high = low + (abs(low) or 1.0)
-    raw = (high - low) / count
-    magnitude = 10 ** math.floor(math.log10(raw))
-    step = magnitude * 10
-    for m in (1, 2, 2.5, 5, 10):
-        if (high - low) / (m * magnitude) <= count:
-            step = m * magnitude
-            break
-    start = math.floor(low / step + 1e-9) * step
-    stop = math.ceil(high / step - 1e-9) * step
-    n = int(round((stop - start) / step))
-    return [round(start + i * step, 10) for i in range(n + 1)]
+#: Fixed settings so that the same data give the same SVG bytes (no date, no random ids, the
+#: text kept as text in a font shipped with matplotlib).
+_MPL_RC = {
+    "svg.hashsalt": "kidneysurv-report",
+    "svg.fonttype": "none",
+    "font.family": "DejaVu Sans",
+    "font.size": 9,
+    "axes.edgecolor": "#59636e",
+    "axes.labelcolor": "#1f2328",
+    "xtick.color": "#59636e",
+    "ytick.color": "#59636e",
+    "text.color": "#1f2328",
+    "path.simplify": False,
+}
 
 
-def _tick_label(value: float, ticks: list[float], suffix: str = "") -> str:
-    step = ticks[1] - ticks[0] if len(ticks) > 1 else 1.0
-    digits = next((d for d in range(3) if abs(round(step, d) - step) < 1e-9), 3)
-    text = f"{value:,.{digits}f}"
-    return ("−" + text[1:] if text.startswith("-") else text) + suffix
+@contextmanager
+def _mpl() -> Iterator[Any]:
+    """matplotlib, imported here (the CLI does not pay for it at start), headless and fixed."""
+    import matplotlib
+
+    matplotlib.use("Agg")
+    from matplotlib.figure import Figure
+
+    with matplotlib.rc_context(_MPL_RC):
+        yield Figure
 
 
-class _Svg:
-    """A small SVG builder: a titled, described chart that stands alone."""
-
-    def __init__(self, chart_id: str, width: int, height: int, title: str, desc: str):
-        self.id, self.width, self.height = chart_id, width, height
-        self.parts: list[str] = [
-            f'<title id="{chart_id}-title">{_e(title)}</title>',
-            f'<desc id="{chart_id}-desc">{_e(desc)}</desc>',
-            f'<text class="chart-title" x="0" y="18">{_e(title)}</text>',
-        ]
-
-    def add(self, markup: str) -> None:
-        self.parts.append(markup)
-
-    def text(self, x: float, y: float, text: str, anchor: str = "start", cls: str = "",
-             extra: str = "") -> None:  # fmt: skip
-        klass = f' class="{cls}"' if cls else ""
-        self.add(
-            f'<text x="{x:.1f}" y="{y:.1f}" text-anchor="{anchor}"{klass}{extra}>{_e(text)}</text>'
-        )
-
-    def line(self, x1: float, y1: float, x2: float, y2: float, stroke: str = INK, width: float = 1,
-             dash: str = "") -> None:  # fmt: skip
-        d = f' stroke-dasharray="{dash}"' if dash else ""
-        self.add(f'<line x1="{x1:.1f}" y1="{y1:.1f}" x2="{x2:.1f}" y2="{y2:.1f}" stroke="{stroke}" '
-                 f'stroke-width="{width}"{d}/>')  # fmt: skip
-
-    def legend(self, names: Sequence[str], x: float, y: float, swatch: bool = False,
-               styles: Sequence[tuple[str, int]] | None = None) -> None:  # fmt: skip
-        """Colour keys; ``swatch`` draws squares (bars) instead of the series' point markers;
-        ``styles``: (colour, marker shape) per name, else by position.
-        """
-        for i, name in enumerate(names):
-            colour, shape = styles[i] if styles else (PALETTE[i % len(PALETTE)], i)
-            self.add(
-                f'<rect x="{x:.1f}" y="{y - 9:.1f}" width="11" height="11" fill="{colour}"/>'
-                if swatch
-                else _marker(shape, x + 6, y - 4, colour, 5)
-            )
-            self.text(x + 16, y, name, cls="legend")
-            x += 26 + 7 * len(name)
-
-    def render(self) -> str:
-        return (f'<svg class="chart" id="{self.id}" viewBox="0 0 {self.width} {self.height}" '
-                f'width="{self.width}" height="{self.height}" role="img" '
-                f'aria-labelledby="{self.id}-title {self.id}-desc">' + "".join(self.parts) + "</svg>")  # fmt: skip
+def _svg_of(fig: Any, chart_id: str, klass: str, title: str, desc: str) -> str:
+    """The figure as an inline <svg> element: ids prefixed with ``chart_id`` (several charts share
+    one page), the size in CSS pixels, role="img" with the title and description for assistive
+    technology. Deterministic: no date or creator in the metadata, fixed hash salt.
+    """
+    buf = io.StringIO()
+    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None})
+    svg = buf.getvalue()
+    svg = svg[svg.index("<svg") :]
+    # inline in HTML: no namespace declarations (the HTML parser supplies them), no RDF metadata
+    svg = re.sub(r"\s*<metadata>.*?</metadata>", "", svg, count=1, flags=re.S)
+    # its page-wide "*{stroke-linejoin: round; ...}" sheet: in the page's own CSS, scoped to charts
+    svg = re.sub(r"\s*<style[^>]*>.*?</style>", "", svg, count=1, flags=re.S)
+    svg = re.sub(r' xmlns(:xlink)?="[^"]*"', "", svg)
+    svg = svg.replace("xlink:href=", "href=")
+    svg = re.sub(r' id="([^"]+)"', lambda m: f' id="{chart_id}-{m.group(1)}"', svg)
+    svg = re.sub(r"url\(#([^)]+)\)", lambda m: f"url(#{chart_id}-{m.group(1)})", svg)
+    svg = re.sub(r'href="#([^"]+)"', lambda m: f'href="#{chart_id}-{m.group(1)}"', svg)
+    head_end = svg.index(">") + 1
+    head = re.sub(r'(width|height)="([0-9.]+)pt"', r'\1="\2"', svg[:head_end])
+    head = head.replace(
+        "<svg ",
+        f'<svg class="{klass}" id="{chart_id}" role="img" '
+        f'aria-labelledby="{chart_id}-title {chart_id}-desc" ',
+        1,
+    )
+    return (
+        head
+        + f'<title id="{chart_id}-title">{_e(title)}</title>'
+        + f'<desc id="{chart_id}-desc">{_e(desc)}</desc>'
+        + svg[head_end:].strip()
+    )
 
 
-def _marker(index: int, x: float, y: float, colour: str, r: float, tip: str = "") -> str:
-    """A point marker whose shape differs by series (colour is not the only cue)."""
-    title = f"<title>{_e(tip)}</title>" if tip else ""
-    shape = index % 4
-    if shape == 0:
-        return f'<circle cx="{x:.1f}" cy="{y:.1f}" r="{r}" fill="{colour}">{title}</circle>'
-    if shape == 1:
-        return f'<rect x="{x - r:.1f}" y="{y - r:.1f}" width="{2 * r}" height="{2 * r}" fill="{colour}">{title}</rect>'
-    if shape == 2:
-        pts = f"{x:.1f},{y - r * 1.2:.1f} {x + r * 1.1:.1f},{y + r * 0.9:.1f} {x - r * 1.1:.1f},{y + r * 0.9:.1f}"
-        return f'<polygon points="{pts}" fill="{colour}">{title}</polygon>'
-    pts = f"{x:.1f},{y - r * 1.3:.1f} {x + r * 1.3:.1f},{y:.1f} {x:.1f},{y + r * 1.3:.1f} {x - r * 1.3:.1f},{y:.1f}"
-    return f'<polygon points="{pts}" fill="{colour}">{title}</polygon>'
+#: Marker shape per series (colour is not the only cue); odd shapes are drawn dashed.
+MARKERS = ("o", "s", "^", "D")
 
 
 @dataclass
@@ -560,15 +540,13 @@ class _Reference:
 def _bar_chart(chart_id: str, title: str, desc: str, categories: list[str], series: list[tuple[str, list[_Bar]]],
                axis_label: str, suffix: str, fmt: Callable[[float], str],
                references: Sequence[_Reference] = ()) -> str:  # fmt: skip
-    """Horizontal bars, one band per category, one bar per series; error bars when given."""
-    left, right, top, bottom = 176, 80, 40 + (18 if len(series) > 1 else 0), 50
-    bar_h, gap = 16, 10
-    band = bar_h * len(series) + gap
-    plot_w = 720 - left - right
-    height = top + band * max(1, len(categories)) + bottom
-    svg = _Svg(chart_id, 720, height, title, desc)
-    if len(series) > 1:
-        svg.legend([name for name, _ in series], left, 44, swatch=True)
+    """Horizontal bars, one band per category, one bar per series; error bars when given. Each
+    drawn bar has the id ``<chart_id>-bar-<category>-<series>`` (a blanked value has a note, no bar).
+    """
+    band = 0.8 / max(1, len(series))
+    height_in = (
+        70 + (18 if len(series) > 1 else 0) + 26 * len(series) * max(1, len(categories))
+    ) / 72 + 0.6
     highs = [
         b.high if b.high is not None else b.value
         for _, bars in series
@@ -576,50 +554,52 @@ def _bar_chart(chart_id: str, title: str, desc: str, categories: list[str], seri
         if b.value is not None
     ]
     highs += [r.value for r in references]
-    ticks = _nice_ticks(0.0, max(highs, default=1.0) or 1.0)
-    top_tick = ticks[-1]
+    top = (max(highs, default=1.0) or 1.0) * 1.18
+    with _mpl() as Figure:
+        from matplotlib.patches import Patch
 
-    def x_of(v: float) -> float:
-        return left + plot_w * max(0.0, min(v, top_tick)) / top_tick
-
-    plot_bottom = top + band * max(1, len(categories))
-    for t in ticks:
-        svg.line(x_of(t), top - 4, x_of(t), plot_bottom, GRID)
-        svg.text(x_of(t), plot_bottom + 16, _tick_label(t, ticks), "middle", "tick")
-    svg.line(left, plot_bottom, left + plot_w, plot_bottom, MUTED)
-    svg.text(left + plot_w / 2, plot_bottom + 38, axis_label, "middle", "axis-label")
-    for k, ref in enumerate(references):
-        x = x_of(ref.value)
-        svg.line(x, top - 6, x, plot_bottom, INK, 1.2, "5 3")
-        svg.text(
-            x, top - 10 - 12 * k, ref.label, "middle" if x < left + plot_w - 60 else "end", "ref"
-        )
-    for i, name in enumerate(categories):
-        y0 = top + i * band + gap / 2
-        svg.text(left - 8, y0 + band / 2 - gap / 2 + 4, name, "end", "category")
-        for j, (series_name, bars) in enumerate(series):
-            bar, y = bars[i], y0 + j * bar_h
+        fig = Figure(figsize=(10, height_in))
+        ax = fig.add_axes((0.25, 0.9 * 50 / (height_in * 72), 0.68, 1 - (110 / (height_in * 72))))
+        ax.set_title(title, loc="left", fontsize=11, fontweight="bold", pad=22 if references else 8)
+        for j, (_, bars) in enumerate(series):
             colour = PALETTE[j % len(PALETTE)]
-            if bar.value is None:
-                svg.text(left + 6, y + bar_h - 4, bar.note, cls="note")
-                continue
-            label = (
-                f"{name}{', ' + series_name if len(series) > 1 else ''}: {fmt(bar.value)}{suffix}"
+            for i, bar in enumerate(bars):
+                y = i - 0.4 + band * (j + 0.5)
+                if bar.value is None:
+                    ax.text(top * 0.01, y, bar.note, va="center", fontstyle="italic", color=MUTED)
+                    continue
+                (rect,) = ax.barh([y], [bar.value], height=band * 0.85, color=colour)
+                rect.set_gid(f"bar-{i}-{j}")
+                end = bar.value
+                if bar.low is not None and bar.high is not None:
+                    eb = ax.errorbar([bar.value], [y], xerr=[[bar.value - bar.low], [bar.high - bar.value]],
+                                fmt="none", ecolor=INK, elinewidth=1.2, capsize=3)  # fmt: skip
+                    for part in eb.lines[2]:
+                        part.set_gid(f"interval-{i}-{j}")
+                    end = max(end, bar.high)
+                ax.text(end + top * 0.01, y, f"{fmt(bar.value)}{suffix}", va="center")
+        for k, ref in enumerate(references):
+            ax.axvline(ref.value, color=INK, linewidth=1.2, linestyle=(0, (5, 3)))
+            ax.text(ref.value, 1.01 + 0.05 * k, ref.label, transform=ax.get_xaxis_transform(),
+                    ha="center", va="bottom", fontsize=8)  # fmt: skip
+        ax.set_yticks(range(len(categories)), categories)
+        ax.set_ylim(len(categories) - 0.5, -0.5)
+        ax.set_xlim(0, top)
+        ax.set_xlabel(axis_label, gid="x-axis-label")
+        ax.grid(axis="x", color=GRID, linewidth=0.8)
+        ax.set_axisbelow(True)
+        for side in ("top", "right"):
+            ax.spines[side].set_visible(False)
+        ax.tick_params(axis="y", length=0)
+        if len(series) > 1:  # keys drawn whether or not a series has a bar
+            keys = [
+                Patch(facecolor=PALETTE[j % len(PALETTE)], label=name)
+                for j, (name, _) in enumerate(series)
+            ]
+            fig.legend(
+                handles=keys, loc="upper right", ncols=len(series), frameon=False, fontsize=8
             )
-            tip = label + (f" (interval {fmt(bar.low)}–{fmt(bar.high)}{suffix})"
-                           if bar.low is not None and bar.high is not None else "")  # fmt: skip
-            width = max(0.5, x_of(bar.value) - left)
-            svg.add(f'<rect class="bar" x="{left}" y="{y + 2:.1f}" width="{width:.1f}" height="{bar_h - 4}" '
-                    f'fill="{colour}"><title>{_e(tip)}</title></rect>')  # fmt: skip
-            end = x_of(bar.value)
-            if bar.low is not None and bar.high is not None:
-                lo, hi, mid = x_of(bar.low), x_of(bar.high), y + bar_h / 2
-                svg.line(lo, mid, hi, mid, INK, 1.2)
-                svg.line(lo, mid - 4, lo, mid + 4, INK, 1.2)
-                svg.line(hi, mid - 4, hi, mid + 4, INK, 1.2)
-                end = max(end, hi)
-            svg.text(end + 5, y + bar_h - 4, f"{fmt(bar.value)}{suffix}", cls="value")
-    return svg.render()
+        return _svg_of(fig, chart_id, "chart", title, desc)
 
 
 def _line_chart(chart_id: str, title: str, desc: str, x_labels: list[str],
@@ -631,91 +611,53 @@ def _line_chart(chart_id: str, title: str, desc: str, x_labels: list[str],
     band where an interval is given. ``styles``: (colour, marker shape) per series (default: by
     position).
     """
-    left, right, top, bottom = 70, 24, 40 + (18 if len(series) > 1 else 0), 56
-    width = 720
-    plot_w, plot_h = width - left - right, height - top - bottom
-    svg = _Svg(chart_id, width, height, title, desc)
-    if len(series) > 1:
-        svg.legend([name for name, _, _ in series], left, 44, styles=styles)
-    values = [v for _, vs, _ in series for v in vs if v is not None]
-    values += [b for _, _, iv in series for pair in (iv or []) if pair for b in pair]
-    if y_range is not None:
-        low, high = y_range
-    else:
-        low, high = min(values + [0.0] if zero_line else values or [0.0]), max(values or [1.0])
-        pad = (high - low) * 0.1 or 1.0
-        low, high = low - (pad if low < 0 else 0), high + pad
-    ticks = _nice_ticks(low, high)
-    y_lo, y_hi = ticks[0], ticks[-1]
     n = len(x_labels)
-
-    def x_of(i: int) -> float:
-        return left + plot_w / 2 if n == 1 else left + plot_w * i / (n - 1)
-
-    def y_of(v: float) -> float:
-        return top + plot_h * (1 - (v - y_lo) / (y_hi - y_lo))
-
-    for t in ticks:
-        svg.line(left, y_of(t), left + plot_w, y_of(t), GRID)
-        svg.text(left - 6, y_of(t) + 4, _tick_label(t, ticks), "end", "tick")
-    if zero_line and y_lo < 0 < y_hi:
-        svg.line(left, y_of(0), left + plot_w, y_of(0), MUTED, 1.2)
-    svg.line(left, top + plot_h, left + plot_w, top + plot_h, MUTED)
-    svg.line(left, top, left, top + plot_h, MUTED)
-    every = max(1, math.ceil(n / 8))
-    for i, label in enumerate(x_labels):
-        if (n - 1 - i) % every == 0:  # counted from the last month, which is always labelled
-            svg.line(x_of(i), top + plot_h, x_of(i), top + plot_h + 4, MUTED)
-            svg.text(x_of(i), top + plot_h + 17, label, "middle", "tick")
-    svg.text(left + plot_w / 2, height - 10, x_axis_label, "middle", "axis-label")
-    svg.text(14, top + plot_h / 2, axis_label, "middle", "axis-label",
-             f' transform="rotate(-90 14 {top + plot_h / 2:.1f})"')  # fmt: skip
-    for j, (name, vs, intervals) in enumerate(series):
-        colour, shape = styles[j] if styles else (PALETTE[j % len(PALETTE)], j)
-        if intervals:
-            for segment in _segments([i for i, pair in enumerate(intervals) if pair]):
-                if len(segment) == 1:
-                    i = segment[0]
-                    lo, hi = intervals[i]  # type: ignore[misc]
-                    svg.line(x_of(i), y_of(lo), x_of(i), y_of(hi), colour, 1.5)
-                    continue
-                upper = [f"{x_of(i):.1f},{y_of(intervals[i][1]):.1f}" for i in segment]  # type: ignore[index]
-                lower = [f"{x_of(i):.1f},{y_of(intervals[i][0]):.1f}" for i in reversed(segment)]  # type: ignore[index]
-                svg.add(f'<polygon class="band" points="{" ".join(upper + lower)}" fill="{colour}" '
-                        f'fill-opacity="0.18" stroke="none"/>')  # fmt: skip
-        for segment in _segments([i for i, v in enumerate(vs) if v is not None]):
-            if len(segment) > 1:
-                pts = " ".join(f"{x_of(i):.1f},{y_of(vs[i]):.1f}" for i in segment)  # type: ignore[arg-type]
-                dash = ' stroke-dasharray="6 3"' if shape % 2 else ""
-                svg.add(f'<polyline class="series" points="{pts}" fill="none" stroke="{colour}" '
-                        f'stroke-width="2"{dash}/>')  # fmt: skip
-        for i, v in enumerate(vs):
-            if v is not None:
-                prefix = f"{name}, " if len(series) > 1 else ""
-                svg.add(
-                    _marker(
-                        shape,
-                        x_of(i),
-                        y_of(v),
-                        colour,
-                        4,
-                        f"{prefix}{x_labels[i]}: {fmt(v)}{suffix}",
+    xs = list(range(n))
+    with _mpl() as Figure:
+        fig = Figure(figsize=(10, height / 72))
+        ax = fig.add_axes((0.1, 0.2, 0.86, 0.66 if len(series) > 1 else 0.7))
+        ax.set_title(
+            title, loc="left", fontsize=11, fontweight="bold", pad=22 if len(series) > 1 else 8
+        )
+        for j, (name, vs, intervals) in enumerate(series):
+            colour, shape = styles[j] if styles else (PALETTE[j % len(PALETTE)], j)
+            if intervals:
+                lows = [math.nan if p is None else p[0] for p in intervals]
+                highs = [math.nan if p is None else p[1] for p in intervals]
+                ax.fill_between(xs, lows, highs, color=colour, alpha=0.18, linewidth=0)
+                for i, pair in enumerate(intervals):
+                    alone = (
+                        pair
+                        and (i == 0 or not intervals[i - 1])
+                        and (i == n - 1 or not intervals[i + 1])
                     )
+                    if alone:
+                        ax.vlines([i], [pair[0]], [pair[1]], color=colour, linewidth=1.5)
+            ys = [math.nan if v is None else v for v in vs]
+            ax.plot(xs, ys, color=colour, linewidth=2, linestyle="--" if shape % 2 else "-",
+                    marker=MARKERS[shape % len(MARKERS)], markersize=5, label=name, gid=f"series-{j}")  # fmt: skip
+            if n == 1 and vs and vs[0] is not None:
+                ax.annotate(
+                    f"{fmt(vs[0])}{suffix}", (0, vs[0]), xytext=(8, 6), textcoords="offset points"
                 )
-        if n == 1 and vs and vs[0] is not None:
-            svg.text(x_of(0) + 10, y_of(vs[0]) - 8, f"{fmt(vs[0])}{suffix}", cls="value")
-    return svg.render()
-
-
-def _segments(indices: list[int]) -> list[list[int]]:
-    """Runs of consecutive indices."""
-    out: list[list[int]] = []
-    for i in indices:
-        if out and out[-1][-1] == i - 1:
-            out[-1].append(i)
-        else:
-            out.append([i])
-    return out
+        if y_range is not None:
+            ax.set_ylim(*y_range)
+        if zero_line:
+            ax.axhline(0, color=MUTED, linewidth=1.2)
+        every = max(1, math.ceil(n / 8))
+        shown = [i for i in xs if (n - 1 - i) % every == 0]  # counted from the last month
+        ax.set_xticks(shown, [x_labels[i] for i in shown])
+        ax.set_xlim(-0.5, n - 0.5)
+        ax.set_xlabel(x_axis_label, gid="x-axis-label")
+        ax.set_ylabel(axis_label, gid="y-axis-label")
+        ax.yaxis.set_major_formatter(lambda v, _pos: ("−" if v < 0 else "") + f"{abs(v):g}")
+        ax.grid(axis="y", color=GRID, linewidth=0.8)
+        ax.set_axisbelow(True)
+        for side in ("top", "right"):
+            ax.spines[side].set_visible(False)
+        if len(series) > 1:
+            fig.legend(loc="upper right", ncols=min(len(series), 6), frameon=False, fontsize=8)
+        return _svg_of(fig, chart_id, "chart", title, desc)
 
 
 # --------------------------------------------------------------------------- sections
@@ -1354,20 +1296,11 @@ td.nowrap { white-space: nowrap; }
 .table-notes { font-size: .8rem; color: var(--muted); margin: 2px 0 14px; }
 figure { margin: 18px 0; }
 figcaption { font-size: .82rem; color: var(--muted); max-width: 720px; }
-svg.chart { display: block; width: 100%; max-width: 720px; height: auto; font-family: inherit; }
-svg .chart-title { font-size: 14px; font-weight: 700; fill: var(--ink); }
+svg.chart { display: block; width: 100%; max-width: 720px; height: auto; }
+svg.chart *, svg.map * { stroke-linejoin: round; stroke-linecap: butt; }
 .maps { display: flex; flex-wrap: wrap; gap: 8px; }
 .maps figure { margin: 8px 0; }
-svg.map { display: block; max-width: 100%; height: auto; font-family: inherit; }
-svg.map .chart-title { font-size: 11.5px; }
-svg.map .legend { font-size: 10.5px; fill: var(--ink); }
-svg.map .map-label { font-size: 9.5px; fill: var(--ink); paint-order: stroke; stroke: #fff; stroke-width: 2.5px; }
-svg .tick, svg .legend, svg .value, svg .category { font-size: 11.5px; fill: var(--ink); }
-svg .value { paint-order: stroke; stroke: #fff; stroke-width: 3px; stroke-linejoin: round; }
-svg .tick { fill: var(--muted); }
-svg .axis-label { font-size: 12px; fill: var(--ink); }
-svg .note { font-size: 11px; font-style: italic; fill: var(--muted); }
-svg .ref { font-size: 11px; fill: var(--ink); }
+svg.map { display: block; max-width: 100%; height: auto; }
 dl dt { font-weight: 600; margin-top: 8px; }
 dl dd { margin: 2px 0 0 18px; }
 .cautions { border: 1px solid var(--rule); border-left: 5px solid var(--accent); background: var(--band);

@@ -431,17 +431,22 @@ def _district_map(
     shapes: dict[str, dict],
     data: Any,
 ) -> str:
+    """One district map drawn with matplotlib: each district a patch with the id
+    ``<map_id>-district-<code>`` (``<map_id>-blanked-<code>`` when blanked: hatched and labelled
+    "s" or "r", never a number), equal steps of the viridis colours between the lowest and highest
+    value shown.
+    """
     import math
+
+    from matplotlib.patches import Patch, PathPatch
+    from matplotlib.path import Path as MplPath
 
     points = [p for g in shapes.values() for poly in _polygons(g) for ring in poly for p in ring]
     lat0 = sum(p[1] for p in points) / len(points)
     k = math.cos(math.radians(lat0))
-    xs, ys = [p[0] * k for p in points], [-p[1] for p in points]
-    width, plot_h, top = 320, 230, 28
-    scale = min((width - 20) / (max(xs) - min(xs) or 1), plot_h / (max(ys) - min(ys) or 1))
 
     def xy(p: list[float]) -> tuple[float, float]:
-        return 10 + (p[0] * k - min(xs)) * scale, top + (-p[1] - min(ys)) * scale
+        return p[0] * k, p[1]
 
     shown = [v for v, _ in values.values() if v is not None]
     low, high = (min(shown), max(shown)) if shown else (0.0, 1.0)
@@ -450,78 +455,66 @@ def _district_map(
     def colour(v: float) -> str:
         return MAP_COLOURS[min(len(MAP_COLOURS) - 1, int((v - low) / step))]
 
-    legend_h = 16 * (len(MAP_COLOURS) + 2) + 8
-    height = top + plot_h + 12 + legend_h
     words = []
-    parts = [
-        (
-            f'<svg class="map" id="{map_id}" viewBox="0 0 {width} {height}" width="{width}" '
-            f'height="{height}" role="img" aria-labelledby="{map_id}-title {map_id}-desc">'
-        ),
-        f'<title id="{map_id}-title">{r._e(title)}</title>',
-        "{desc}",
-        (
-            f'<defs><pattern id="{map_id}-hatch" patternUnits="userSpaceOnUse" width="6" height="6" '
-            'patternTransform="rotate(45)"><rect width="6" height="6" fill="#ffffff"/>'
-            f'<line x1="0" y1="0" x2="0" y2="6" stroke="{r.MUTED}" stroke-width="2"/></pattern></defs>'
-        ),
-        f'<text class="chart-title" x="0" y="16">{r._e(title)}</text>',
-    ]
-    labels = []
-    for code in sorted(shapes):
-        value, why = values.get(code, (None, "no data"))
-        name = data.district_name(code)
-        fill = (
-            colour(value)
-            if value is not None
-            else (f"url(#{map_id}-hatch)" if why != "no data" else NO_DATA)
+    with r._mpl() as Figure:
+        fig = Figure(figsize=(320 / 72, 420 / 72))
+        ax = fig.add_axes((0.03, 0.36, 0.94, 0.56))
+        ax.set_title(title, loc="left", fontsize=9, fontweight="bold")
+        for code in sorted(shapes):
+            value, why = values.get(code, (None, "no data"))
+            name = data.district_name(code)
+            vertices: list[tuple[float, float]] = []
+            codes: list[int] = []
+            for poly in _polygons(shapes[code]):
+                for ring in poly:
+                    vertices += [xy(p) for p in ring]
+                    codes += (
+                        [MplPath.MOVETO] + [MplPath.LINETO] * (len(ring) - 2) + [MplPath.CLOSEPOLY]
+                    )
+            blanked = value is None and why != "no data"
+            patch = PathPatch(
+                MplPath(vertices, codes),
+                facecolor=colour(value)
+                if value is not None
+                else ("#ffffff" if blanked else NO_DATA),
+                edgecolor="#ffffff",
+                linewidth=1.2,
+                hatch="///" if blanked else None,
+                hatchcolor=r.MUTED,
+            )
+            patch.set_gid(f"{'blanked' if value is None else 'district'}-{code}")
+            ax.add_patch(patch)
+            text = f"{r._dec(value, 1)} {unit}" if value is not None else why
+            words.append(f"{name} {text}")
+            ring = _polygons(shapes[code])[0][0][:-1]
+            cx = sum(xy(p)[0] for p in ring) / len(ring)
+            cy = sum(xy(p)[1] for p in ring) / len(ring)
+            mark = {"suppressed": "s", "too few cases": "r"}.get(why, "–")
+            label = code if value is not None else f"{code} {mark}"
+            dark = value is not None and colour(value) in MAP_COLOURS[2:]
+            ax.text(cx, cy, label, ha="center", va="center", fontsize=8,
+                    color="#ffffff" if dark else r.INK,
+                    bbox=None if value is not None else {"facecolor": "#ffffff", "edgecolor": "none", "pad": 1})  # fmt: skip
+        ax.set_aspect("equal")
+        ax.autoscale_view()
+        ax.set_axis_off()
+        bins = (
+            [(low + i * step, low + (i + 1) * step) for i in range(len(MAP_COLOURS))]
+            if shown
+            else []
         )
-        d = " ".join(
-            "M " + " L ".join(f"{x:.1f} {y:.1f}" for x, y in map(xy, ring)) + " Z"
-            for poly in _polygons(shapes[code])
-            for ring in poly
+        handles = [
+            Patch(facecolor=c, label=f"{r._dec(a, 1)} to {r._dec(b, 1)} {unit}")
+            for (a, b), c in zip(bins, MAP_COLOURS, strict=False)
+        ]
+        handles.append(Patch(facecolor="#ffffff", edgecolor=r.MUTED, hatch="///",
+                             label="blanked: s suppressed, r too few cases"))  # fmt: skip
+        handles.append(Patch(facecolor=NO_DATA, label="no data"))
+        fig.legend(
+            handles=handles, loc="lower left", bbox_to_anchor=(0.02, 0.0), frameon=False, fontsize=8
         )
-        text = f"{r._dec(value, 1)} {unit}" if value is not None else why
-        words.append(f"{name} {text}")
-        klass = "district blanked" if value is None else "district"
-        parts.append(
-            f'<path class="{klass}" data-district="{r._e(code)}" d="{d}" fill="{fill}" stroke="#ffffff" '
-            f'stroke-width="1.2"><title>{r._e(name)}: {r._e(text)}</title></path>'
-        )
-        ring = _polygons(shapes[code])[0][0][:-1]
-        cx = sum(xy(p)[0] for p in ring) / len(ring)
-        cy = sum(xy(p)[1] for p in ring) / len(ring)
-        mark = {"suppressed": "s", "too few cases": "r"}.get(why, "–")
-        label = code if value is not None else f"{code} {mark}"
-        labels.append(
-            f'<text class="map-label" x="{cx:.1f}" y="{cy + 4:.1f}" text-anchor="middle">{r._e(label)}</text>'
-        )
-    parts += labels
-    y = top + plot_h + 20
-    bins = (
-        [(low + i * step, low + (i + 1) * step) for i in range(len(MAP_COLOURS))] if shown else []
-    )
-    for (a, b), c in zip(bins, MAP_COLOURS, strict=False):
-        parts.append(
-            f'<rect x="10" y="{y - 10}" width="14" height="11" fill="{c}"/>'
-            f'<text class="legend" x="30" y="{y}">{r._dec(a, 1)} to {r._dec(b, 1)} {r._e(unit)}</text>'
-        )
-        y += 16
-    parts.append(
-        f'<rect x="10" y="{y - 10}" width="14" height="11" fill="url(#{map_id}-hatch)" stroke="{r.MUTED}" '
-        'stroke-width="0.5"/><text class="legend" x="30" y="'
-        + f'{y}">blanked: s suppressed, r too few '
-        "cases</text>"
-    )
-    y += 16
-    parts.append(
-        f'<rect x="10" y="{y - 10}" width="14" height="11" fill="{NO_DATA}"/>'
-        f'<text class="legend" x="30" y="{y}">no data</text>'
-    )
-    desc = f'<desc id="{map_id}-desc">Map of the districts: {r._e(title)}. {r._e("; ".join(words))}.</desc>'
-    parts[2] = desc
-    parts.append("</svg>")
-    return "".join(parts)
+        desc = f"Map of the districts: {title}. {'; '.join(words)}."
+        return r._svg_of(fig, map_id, "map", title, desc)
 
 
 def maps_section(shapes: dict[str, dict], data: Any) -> str:

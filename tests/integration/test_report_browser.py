@@ -320,16 +320,16 @@ def test_charts_are_in_the_rendered_dom(chromium, report, tmp_path):
     assert done.returncode == 0, done.stderr.decode(errors="replace")[-2000:]
     assert chart_ids(dom) == list(CHARTS)
     found = elements(dom)
-    lines = [a for tag, a in found if tag == "polyline"]
+    # matplotlib draws the charts; the report gives each line and bar an id (gid) to find it by
+    lines = [a for tag, a in found if tag == "g" and "-series-" in (a.get("id") or "")]
     assert len(lines) >= 1
     # one bar per district whose confirmed-CKD share is published (a blanked share has a note,
     # not a bar): the count the published table gives, not a fixed number
-    bars, chart = 0, None
-    for tag, a in found:
-        if tag == "svg":
-            chart = a.get("id")
-        elif tag == "rect" and a.get("class") == "bar" and chart == "chart-ckd-share":
-            bars += 1
+    bars = sum(
+        1
+        for tag, a in found
+        if tag == "g" and (a.get("id") or "").startswith("chart-ckd-share-bar-")
+    )
     with duckdb.connect(str(report.parent / "out" / "surveillance.duckdb"), read_only=True) as con:
         [(published,)] = con.execute(
             "select count(*) from published.district_ckd_prevalence where period = ? and sex = 'ALL' "
@@ -445,7 +445,8 @@ def test_new_sections_render_and_every_table_fits_the_page(chromium, report, tmp
                 " reasons: [...document.querySelectorAll('td.reasons')].map(c => c.getBoundingClientRect().right),"
                 " headings: [...document.querySelectorAll('h2, h3')].map(h => h.textContent),"
                 " maps: [...document.querySelectorAll('svg.map')].map(m => [m.id, m.getBBox().width,"
-                "   m.querySelectorAll('path.district').length, m.querySelectorAll('path.blanked').length])})"
+                "   m.querySelectorAll(`g[id^='${m.id}-district-'], g[id^='${m.id}-blanked-']`).length,"
+                "   m.querySelectorAll(`g[id^='${m.id}-blanked-']`).length])})"
             )
         )
     finally:
