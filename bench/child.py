@@ -1,7 +1,7 @@
 """One measured thing, in its own process (started by bench/run.py; not meant to be run by hand).
 
 Modes:
-  pipeline  ``pipeline.flows.run_month_plain`` (or, with --flow, the Prefect flow
+  pipeline  ``pipeline.run.flows.run_month_plain`` (or, with --flow, the Prefect flow
             ``monthly_surveillance`` with its temporary server) on one period;
   floor     bench/floor.sql in one DuckDB connection (with --kept, then bench/floor_kept.sql
             into a DuckDB file, timed apart).
@@ -59,20 +59,24 @@ def _self_maxrss_mb() -> float:
 #: that holds it, by a wrapper adding up its wall time; calls nest (a build_table inside a
 #: replace_period_rows counts in both), so the figures show where the time goes, not a partition.
 TRACED = {
-    "pipeline.ingest": ("scan_inbox", "sha256_of", "read_delimited", "_rows_in_bulk", "_rows_by_csv",
+    "pipeline.stages.ingest": ("scan_inbox", "sha256_of", "read_delimited", "_rows_in_bulk", "_rows_by_csv",
                         "read_parquet", "_to_landed", "add_dates", "_insert_landed"),
-    "pipeline.pseudonymise": ("add_person_keys",),
-    "pipeline.identifiers": ("screen_table", "screen_values"),
-    "pipeline.warehouse": ("build_table", "replace_period_rows", "fetch_frame", "load_reference_tables",
-                           "apply_comments"),
-    "pipeline.validate": ("validate_landed", "hold_back_sources", "settle_scope", "close_over_partitions",
+    "pipeline.core.pseudonymise": ("add_person_keys",),
+    "pipeline.core.identifiers": ("screen_table", "screen_values"),
+    "pipeline.warehouse.sql": ("build_table", "replace_period_rows"),
+    "pipeline.warehouse.connection": ("fetch_frame",),
+    "pipeline.warehouse.reference": ("load_reference_tables",),
+    "pipeline.warehouse.catalog": ("apply_comments",),
+    "pipeline.warehouse.versions": ("close_over_partitions",),
+    "pipeline.stages.validate": ("validate_landed", "hold_back_sources", "settle_scope",
                           "resolve_versions", "update_ledger_counts"),
-    "pipeline.quality": ("check_batches", "_batch_frame", "build_docs"),
-    "pipeline.measures": ("measure_frame", "measure_stage"),
-    "pipeline.linkage": ("build_known_at_period_end", "changed_persons", "carry_over_events"),
-    "pipeline.disclosure": ("disclose_stage",),
-    "pipeline.publish": ("commit_month", "write_exports"),
-    "pipeline.manifest": ("build_manifest", "record_run", "input_files"),
+    "pipeline.stages.quality_gate": ("check_batches", "_batch_frame", "build_docs"),
+    "pipeline.core.measure_rules": ("measure_frame",),
+    "pipeline.stages.measure": ("measure_stage",),
+    "pipeline.stages.link.persons": ("build_known_at_period_end", "changed_persons", "carry_over_events"),
+    "pipeline.stages.disclose.suppression": ("disclose_stage",),
+    "pipeline.stages.publish": ("commit_month", "write_exports"),
+    "pipeline.run.manifest": ("build_manifest", "record_run", "input_files"),
 }  # fmt: skip
 #: Functions whose first argument after the connection names the SQL file: timed per name.
 _BY_NAME = {"build_table", "replace_period_rows"}
@@ -120,7 +124,7 @@ def run_pipeline(args: argparse.Namespace) -> dict:
     started = time.perf_counter()
     if str(REPO) not in sys.path:
         sys.path.insert(0, str(REPO))
-    from pipeline import flows  # imports Prefect (settings only; no server in plain mode)
+    from pipeline.run import flows  # imports Prefect (settings only; no server in plain mode)
 
     import_seconds = time.perf_counter() - started
     trace = install_trace() if args.trace else None
@@ -194,7 +198,7 @@ def run_floor(args: argparse.Namespace) -> dict:
     import_seconds = time.perf_counter() - started
     Path(args.out).mkdir(parents=True, exist_ok=True)
     con = duckdb.connect()
-    # the same memory limit as the pipeline's warehouse connection (pipeline/warehouse.py)
+    # the same memory limit as the pipeline's warehouse connection (pipeline/warehouse/connection.py)
     con.execute(f"set memory_limit = '{args.memory_limit}'")
     con.execute("set variable input_glob = ?", [args.input_glob])
     con.execute("set variable out_dir = ?", [args.out])

@@ -60,11 +60,11 @@ def main() -> None:
 
     import duckdb
 
-    from pipeline.linkage import event_params
-    from pipeline.periods import Period
-    from pipeline.settings import load_settings
-    from pipeline.validate import NO_LIMIT
-    from pipeline.warehouse import read_sql
+    from pipeline.core.periods import Period
+    from pipeline.core.rule_params import event_params
+    from pipeline.core.settings import load_settings
+    from pipeline.stages.validate import NO_LIMIT
+    from pipeline.warehouse.sql_files import read_sql
 
     settings = load_settings(args.config)
     period = Period.parse(args.period)

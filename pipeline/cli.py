@@ -19,10 +19,11 @@ from rich.console import Console
 from rich.markup import escape
 from rich.table import Table
 
-from pipeline.periods import Period
-from pipeline.pseudonymise import KeyMissing, resolve_key
-from pipeline.runlock import EXIT_LOCKED, RunLocked, run_lock
-from pipeline.settings import ConfigError, load_settings
+from pipeline.core.errors import ConfigError
+from pipeline.core.periods import Period
+from pipeline.core.pseudonymise import KeyMissing, resolve_key
+from pipeline.core.settings import load_settings
+from pipeline.run.runlock import EXIT_LOCKED, RunLocked, run_lock
 
 app = typer.Typer(
     help="Population kidney surveillance from monthly lab extracts: eGFR, albuminuria, sustained "
@@ -100,7 +101,7 @@ def check_warehouse_opens(out: Path) -> None:
     """
     import duckdb
 
-    from pipeline.warehouse import WAREHOUSE_FILE
+    from pipeline.warehouse.connection import WAREHOUSE_FILE
 
     path = out / WAREHOUSE_FILE
     if not path.exists():
@@ -240,7 +241,7 @@ def _print_summary(summary: dict, out: Path) -> None:
 
 def _print_period_checks(summary: dict) -> None:
     """What the run says about its own period: missing sources, rows it cannot see, codes the
-    source configs do not map (pipeline/period_checks.py, pipeline/validate.py).
+    source configs do not map (pipeline/run/period_checks.py, pipeline/stages/validate.py).
     """
     hold = summary.get("missing_sources_policy") == "hold"
     for source, message in (summary.get("missing_sources") or {}).items():
@@ -264,8 +265,8 @@ def _check_key_before_start(out: Path, demo: bool) -> None:
     """
     import duckdb
 
-    from pipeline.pseudonymise import verify_warehouse_key
-    from pipeline.warehouse import WAREHOUSE_FILE
+    from pipeline.core.pseudonymise import verify_warehouse_key
+    from pipeline.warehouse.connection import WAREHOUSE_FILE
 
     key = resolve_key(demo=demo)
     path = out / WAREHOUSE_FILE
@@ -296,7 +297,7 @@ def _run(
     executor: str | None = None,
     revise: str | None = None,
 ) -> int:
-    from pipeline.revisions import RevisionNeeded
+    from pipeline.run.revisions import RevisionNeeded
 
     try:
         Period.parse(period)
@@ -314,10 +315,10 @@ def _run(
     try:
         with run_lock(out, period):  # before Prefect starts: a second run stops at once
             check_warehouse_opens(out)
-            from pipeline import prefect_env
+            from pipeline.run import prefect_env
 
             prefect_env.configure(verbose=verbose)
-            from pipeline import flows
+            from pipeline.run import flows
 
             flows.set_reporter(_stage_line)
             if not verbose:  # a failure is told in one line (report_failure), not by Prefect's log
@@ -328,7 +329,7 @@ def _run(
             if not os.environ.get(
                 "PREFECT_API_URL"
             ):  # Prefect's temporary server: ended if this run is killed
-                from pipeline import reaper
+                from pipeline.run import reaper
 
                 reaper.watch()
             console.print(
@@ -454,7 +455,7 @@ def backfill(
     ] = False,
 ) -> None:
     """Run a range of months in order, skipping those already published (unless --force)."""
-    from pipeline.backfill import months_to_run
+    from pipeline.run.backfill import months_to_run
 
     try:
         first, last = Period.parse(from_period), Period.parse(to_period)
@@ -463,7 +464,7 @@ def backfill(
         _fail(str(exc))
     if last < first:
         _fail(f"--to {last} is before --from {first}")
-    from pipeline.backfill import finish_interrupted
+    from pipeline.run.backfill import finish_interrupted
 
     try:  # a month that committed but whose exports were never put in place is finished first
         for line in finish_interrupted(out):
@@ -516,7 +517,7 @@ def reprocess(
     (old rows kept as superseded versions). A dry run unless --apply; publish the periods it
     changes with 'run --period P --revise REASON'.
     """
-    from pipeline.reprocess import ReprocessRefused, reprocess_source
+    from pipeline.run.reprocess import ReprocessRefused, reprocess_source
 
     try:
         if from_month:
@@ -582,7 +583,7 @@ def schedule(
     """
     import os
 
-    from pipeline.schedule import serve
+    from pipeline.run.schedule import serve
 
     try:
         settings = load_settings(config)
@@ -594,7 +595,7 @@ def schedule(
             "set PREFECT_API_URL to a running Prefect server (start one with 'prefect server "
             "start'; it prints the URL); a temporary server never fires schedules"
         )
-    from pipeline import prefect_env
+    from pipeline.run import prefect_env
 
     prefect_env.configure()
     s = settings.pipeline.schedule
@@ -625,7 +626,7 @@ def sources_check(
     Reads the file into a throw-away in-memory database: the warehouse is not touched. Exits 1
     when a run would hold the file back or leave rows unmapped.
     """
-    from pipeline.checks import check_file
+    from pipeline.run.source_checks import check_file
 
     try:
         settings = load_settings(config)

@@ -94,7 +94,7 @@ def run_month(
     Close the connection (``with run_month(...) as con:``) before running into the same ``out``
     again: DuckDB refuses a read-write connection to a file open read-only in the same process.
     """
-    from pipeline.flows import run_month_plain
+    from pipeline.run.flows import run_month_plain
 
     run_month_plain(period, str(config_dir), str(inbox), str(out), demo=True)
     return duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)

@@ -1,6 +1,6 @@
 -- result_versions_resolved: one row per version in scope (the view versions_in_scope: every
 -- row of result_versions, or in a monthly run only those that its new rows can change; see
--- pipeline/validate.py, settle_scope) reported by $as_of, with its outcome as known on that day. The validate stage runs it with no limit ($as_of far in the
+-- pipeline/stages/validate.py, settle_scope) reported by $as_of, with its outcome as known on that day. The validate stage runs it with no limit ($as_of far in the
 -- future: today's outcomes, stored in result_versions.outcome); the link stage runs it with the
 -- period end, so a past period is rebuilt as it was known then (an amendment or cancellation
 -- reported later does not reach back).

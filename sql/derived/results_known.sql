@@ -3,7 +3,7 @@
 -- by then, and not the same result already received from another source. The as-of twin of
 -- lab_results; every person-level table of a period reads this, not lab_results.
 -- When no version in result_versions is reported after the period end (the usual monthly run),
--- the outcomes as known then are the stored ones, and pipeline/linkage.py takes the accepted
+-- the outcomes as known then are the stored ones, and pipeline/stages/link/persons.py takes the accepted
 -- rows of result_versions collected by the period end directly (the same rows, without
 -- settling the versions a second time).
 select v.*

@@ -14,7 +14,7 @@ with converted as (
         a.allowed_units,
         o.other_units,
         -- age at collection in completed years, the birth taken at mid-year (1 July) when only
-        -- the year is known: off by at most about half a year (pipeline/measures.py, MID_YEAR)
+        -- the year is known: off by at most about half a year (pipeline/stages/measure.py, MID_YEAR)
         -- (a birth year more than 200 years back keeps the crude difference, which the age rule
         -- rejects, so that make_date never sees a year it cannot represent)
         case

@@ -1,6 +1,6 @@
 -- unmapped_code_values: one row per source, file, field and code value of this run's landed rows
 -- that the source's config does not map, with the config key that would map it and the rows
--- affected. Built one file at a time, as each is landed (pipeline/validate.py, judge_file).
+-- affected. Built one file at a time, as each is landed (pipeline/stages/validate.py, judge_file).
 -- Without it a sex written 'W' silently becomes unknown (no eGFR), and a unit, status, test code
 -- or fasting flag the config does not know is only a rejection reason, never named as a gap in
 -- the mapping. A blank value is missing, not unmapped; rows with a whole-row fault are left out.

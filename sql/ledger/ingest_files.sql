@@ -1,6 +1,6 @@
 -- ingest_files: one row per input file version (the ledger). Counts are brought up to date by
 -- every run, because a later file can supersede or withdraw the rows of an earlier one.
--- config_sha256: the source's config the file's rows were made under (pipeline/reprocess.py).
+-- config_sha256: the source's config the file's rows were made under (pipeline/run/reprocess.py).
 create table if not exists ingest_files (
     file_id          bigint primary key,
     source_id        varchar not null,

@@ -1,6 +1,6 @@
 -- runs: one row per published run (the run manifest; the same JSON is in
 -- out/<period>/run_manifest.json). A run that fails leaves no row: its transaction is undone.
--- revision: the release of the period this run published (1 the first; pipeline/revisions.py).
+-- revision: the release of the period this run published (1 the first; pipeline/run/revisions.py).
 create table if not exists runs (
     run_id          varchar primary key,
     period          varchar not null,

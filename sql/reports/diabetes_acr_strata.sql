@@ -3,7 +3,7 @@
 -- district, age group ($albuminuria_age_bands: lower bounds, the last open), sex and KDIGO GFR
 -- category of the latest eGFR ('unknown': none): how many had a urine ACR in the window and,
 -- among those, how many had a latest measured ACR in the window of A2 or A3. The input of the
--- expected undetected albuminuria (district_undetected_albuminuria, pipeline/undetected.py).
+-- expected undetected albuminuria (district_undetected_albuminuria, pipeline/core/undetected.py).
 with window_acr as (
     select distinct person_key
     from daily_values_averaged

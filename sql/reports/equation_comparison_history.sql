@@ -1,7 +1,7 @@
 -- equation_comparison_history (transient, person-level: a temporary table, never kept): every
 -- eGFR known at the period end with what recomputing it under another creatinine equation needs
 -- (the creatinine in mg/dL, age at test, sex, the equation used). Input of the confirmed-CKD
--- count under the comparison equation (pipeline/equation_impact.py).
+-- count under the comparison equation (pipeline/core/equation_impact.py).
 with known_egfr as (
     select m.person_key, m.collected_date, m.analyte, m.sex, m.age_years, m.egfr, m.egfr_equation,
            m.source_id, m.file_id, m.line_no

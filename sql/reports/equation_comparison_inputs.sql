@@ -3,7 +3,7 @@
 -- period end, the creatinine results of their latest such day, with the eGFR under the equation
 -- in force (creatinine alone, and the creatinine-cystatin C one where it was used that day) and
 -- what the comparison equation needs (creatinine in mg/dL, age at test, sex). Input of
--- district_equation_change (pipeline/equation_impact.py).
+-- district_equation_change (pipeline/core/equation_impact.py).
 with window_creatinine as (
     select m.person_key, m.collected_date as day, m.sex, m.age_years, m.egfr, m.egfr_equation,
            m.egfr_creatinine, r.value as creatinine_mg_dl, r.birth_year

@@ -1,6 +1,6 @@
 """Fault tolerance of the monthly run, tested by making the faults happen.
 
-- Atomic months: the run is killed with SIGKILL (``pipeline.faults``: ``KIDNEYSURV_FAULT_AT``)
+- Atomic months: the run is killed with SIGKILL (``pipeline.core.faults``: ``KIDNEYSURV_FAULT_AT``)
   at several points. Killed before its commit, it leaves the warehouse and the published exports
   exactly as they were (every table compared row by row, every exported file by sha256); killed
   after it, the next run finishes the publication. Either way the next run gives the tables and
@@ -39,12 +39,14 @@ import duckdb
 import pytest
 import yaml
 
-from pipeline.disclosure import PUBLISHED_TABLES
-from pipeline.flows import run_month_plain
-from pipeline.pseudonymise import DEMO_KEY
-from pipeline.runlock import RunLocked, recover_interrupted_run, run_lock
-from pipeline.settings import IDENTIFIER_PATTERN, ConfigError, load_settings
-from pipeline.warehouse import WAREHOUSE_FILE, build_table, replace_period_frame
+from pipeline.core.errors import ConfigError
+from pipeline.core.pseudonymise import DEMO_KEY
+from pipeline.core.settings import IDENTIFIER_PATTERN, load_settings
+from pipeline.run.flows import run_month_plain
+from pipeline.run.runlock import RunLocked, recover_interrupted_run, run_lock
+from pipeline.warehouse.catalog import PUBLISHED_TABLES
+from pipeline.warehouse.connection import WAREHOUSE_FILE
+from pipeline.warehouse.sql import build_table, replace_period_frame
 from tests.conftest import make_small_config, rows, write_inbox
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -55,7 +57,7 @@ LAB = "westerfold_general_lab"
 HEADER = ("person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,"
           "status,height_cm,reported_at,fasting\n")  # fmt: skip
 #: The run under test, in a child process: ``python -c CHILD root period config inbox out``.
-CHILD = ("import sys; sys.path.insert(0, sys.argv[1]); from pipeline.flows import run_month_plain; "
+CHILD = ("import sys; sys.path.insert(0, sys.argv[1]); from pipeline.run.flows import run_month_plain; "
          "run_month_plain(sys.argv[2], sys.argv[3], sys.argv[4], sys.argv[5], demo=True, "
          "revise='a late January file')")  # fmt: skip
 #: Killed here, the run has not committed: everything must be as before it.
@@ -179,7 +181,7 @@ def assert_as_reference(s: Scenario, out: Path) -> None:
 KILLER = """
 import json, os, sys
 sys.path.insert(0, sys.argv[1])
-from pipeline.flows import run_month_plain
+from pipeline.run.flows import run_month_plain
 period, config, inbox, jobs = sys.argv[2], sys.argv[3], sys.argv[4], json.loads(sys.argv[5])
 started = {}
 for point, out in jobs.items():

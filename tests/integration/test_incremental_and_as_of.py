@@ -11,8 +11,8 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from pipeline.flows import run_month_plain
-from pipeline.periods import Period, months_between
+from pipeline.core.periods import Period, months_between
+from pipeline.run.flows import run_month_plain
 
 REPO = Path(__file__).resolve().parents[2]
 SAMPLES = REPO / "sample_extracts"

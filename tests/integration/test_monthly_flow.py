@@ -17,7 +17,7 @@ import pytest
 from typer.testing import CliRunner
 
 from pipeline.cli import app
-from pipeline.pseudonymise import DEMO_KEY
+from pipeline.core.pseudonymise import DEMO_KEY
 
 REPO = Path(__file__).resolve().parents[2]
 SAMPLES = REPO / "sample_extracts"
@@ -29,7 +29,7 @@ pytestmark = pytest.mark.slow
 
 @pytest.fixture(scope="session")
 def prefect_harness():
-    from pipeline import prefect_env
+    from pipeline.run import prefect_env
 
     prefect_env.configure()
     from prefect.testing.utilities import prefect_test_harness
@@ -96,8 +96,8 @@ def test_demo_exports_say_they_were_made_with_the_demo_key(demo_run):
     """A CSV or Parquet file copied out of the folder still says it holds invented data."""
     import pyarrow.parquet as pq
 
-    from pipeline.disclosure import PUBLISHED_TABLES
-    from pipeline.publish import DEMO_COLUMN, DEMO_NOTICE
+    from pipeline.stages.publish import DEMO_COLUMN, DEMO_NOTICE
+    from pipeline.warehouse.catalog import PUBLISHED_TABLES
 
     out, _, _ = demo_run
     for table in PUBLISHED_TABLES:
@@ -193,7 +193,7 @@ THREE_LAYOUTS = {
 
 def test_same_measurement_in_three_layouts_gives_one_canonical_value(prefect_harness, tmp_path):
     """88.4 µmol/L = 1.00 mg/dL (1 mg/dL = 88.4 µmol/L; DEVELOPERS.md, Methods and sources, confirmed)."""
-    from pipeline.flows import monthly_surveillance
+    from pipeline.run.flows import monthly_surveillance
 
     inbox = tmp_path / "inbox"
     for rel, text in THREE_LAYOUTS.items():
@@ -268,8 +268,8 @@ def test_deployment_has_its_cron_and_a_triggered_run_publishes(
     from prefect.deployments import run_deployment
     from prefect.runner import Runner
 
-    from pipeline.schedule import DEPLOYMENT_NAME, FLOW_NAME, build_deployment
-    from pipeline.settings import load_settings
+    from pipeline.core.settings import load_settings
+    from pipeline.run.schedule import DEPLOYMENT_NAME, FLOW_NAME, build_deployment
 
     monkeypatch.setenv("KIDNEYSURV_PSEUDONYM_KEY", "a-test-key-that-is-not-the-demo-key")
     inbox = tmp_path / "inbox"
@@ -312,16 +312,16 @@ def test_the_demo_publishes_no_blank_a_reader_can_narrow(demo_run):
     the standardised rates' splits are checked in the run): no blank confined to 1-10 or to less
     than the protection width, by each blank's least and greatest value (linear programming,
     the usual audit of suppressed tables, common practice), and one mark for every blank."""
-    from pipeline.disclosure import PUBLISHED_TABLES
-    from pipeline.disclosure_audit import (
+    from pipeline.core.settings import DisclosureSettings
+    from pipeline.stages.disclose.audit import (
         MARK,
         _relations,
         build_system,
         failing_cells,
         table_from_frames,
     )
-    from pipeline.settings import DisclosureSettings
-    from pipeline.warehouse import fetch_frame
+    from pipeline.warehouse.catalog import PUBLISHED_TABLES
+    from pipeline.warehouse.connection import fetch_frame
 
     out, _, _ = demo_run
     con = duckdb.connect(

@@ -33,8 +33,8 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from pipeline.flows import run_month_plain
-from pipeline.report import write_report
+from pipeline.report.page import write_report
+from pipeline.run.flows import run_month_plain
 from tests.conftest import CONFIG_DIR, ROOT, edit_pipeline_yaml
 
 pytestmark = pytest.mark.slow
@@ -48,7 +48,7 @@ BASE_FLAGS = ("--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "
               "--disable-dev-shm-usage", "--hide-scrollbars")  # fmt: skip
 #: No name resolves and every connection goes to a closed port (9, discard): nothing leaves.
 NO_NETWORK = ("--host-resolver-rules=MAP * ~NOTFOUND", "--proxy-server=127.0.0.1:9")
-#: Okabe-Ito blue of the bars and the vermillion of the demo banner border (pipeline/report.py).
+#: Okabe-Ito blue of the bars and the vermillion of the demo banner border (pipeline/report/page.py).
 BAR_BLUE, BANNER_RED = (0x00, 0x72, 0xB2), (0xD5, 0x5E, 0x00)
 
 

@@ -11,7 +11,7 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from pipeline.flows import run_month_plain
+from pipeline.run.flows import run_month_plain
 
 REPO = Path(__file__).resolve().parents[2]
 SAMPLES = REPO / "sample_extracts"

@@ -6,7 +6,7 @@ from __future__ import annotations
 
 import pytest
 
-from pipeline.warehouse import load_catalog
+from pipeline.warehouse.catalog import load_catalog
 from tests.conftest import FIXTURES, make_small_config, rows, run_month, write_inbox
 
 STANDARD = """person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status,reported_at

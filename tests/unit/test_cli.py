@@ -9,7 +9,7 @@ import pytest
 from typer.testing import CliRunner
 
 from pipeline.cli import app
-from pipeline.settings import load_settings
+from pipeline.core.settings import load_settings
 
 REPO = Path(__file__).resolve().parents[2]
 SETTINGS = load_settings(REPO / "config")
@@ -152,7 +152,9 @@ def test_sources_check_names_an_unreadable_file(tmp_path, monkeypatch):
     def denied(*args, **kwargs):
         raise PermissionError(13, "Permission denied")
 
-    monkeypatch.setattr("pipeline.checks.sha256_of", denied)  # root can read a mode-0 file
+    monkeypatch.setattr(
+        "pipeline.run.source_checks.sha256_of", denied
+    )  # root can read a mode-0 file
     result = runner.invoke(app, ["sources", "check", "westerfold_general_lab", str(path),
                                  "--config", str(REPO / "config")])  # fmt: skip
     assert result.exit_code == 1

@@ -16,7 +16,7 @@ import statistics
 import duckdb
 import pytest
 
-from pipeline.warehouse import build_table
+from pipeline.warehouse.sql import build_table
 
 MONTHS = [dt.date(2025, m, 15) for m in range(1, 13)]
 PARAMS = {"period": "2025-12", "drift_months": 6, "drift_threshold": 0.05, "drift_min_results": 3}

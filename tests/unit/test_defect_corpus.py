@@ -522,7 +522,7 @@ def test_both_readers_land_the_same_rows(case_id, rel, config, configs, tmp_path
     """The bulk reader (a file without quotes split in polars) and the csv module give the same
     landed rows, notes and faults for every file of the corpus (DEVELOPERS.md: row accounting
     does not depend on which reader ran)."""
-    from pipeline.settings import load_settings
+    from pipeline.core.settings import load_settings
     from tests.unit.test_reader_paths import compare_paths
 
     settings = load_settings(configs[config])

@@ -1,4 +1,4 @@
-"""Tests for pipeline.disclosure: small counts (1-10, common practice in official statistics)
+"""Tests for pipeline.stages.disclose.suppression: small counts (1-10, common practice in official statistics)
 and the rates built on them are blanked before anything is published, and so are the counts that
 would give a blanked one away through a published total (complementary suppression, common
 practice in statistical disclosure control). The recovery checks are written here independently
@@ -19,16 +19,16 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.optimize import linprog
 
-from pipeline.disclosure import (
-    PUBLISHED_TABLES,
+from pipeline.core.periods import Period
+from pipeline.core.settings import DisclosureSettings
+from pipeline.stages.disclose.suppression import (
     DisclosureError,
     PublishedTable,
     disclose_stage,
     suppress,
     suppress_tables,
 )
-from pipeline.periods import Period
-from pipeline.settings import DisclosureSettings
+from pipeline.warehouse.catalog import PUBLISHED_TABLES
 from tests.conftest import rows, run_month, write_inbox
 
 # No example database: the run must not write into the working tree.

@@ -1,4 +1,4 @@
-"""Tests for pipeline.disclosure_audit: everything a period publishes, read together, must not
+"""Tests for pipeline.stages.disclose.audit: everything a period publishes, read together, must not
 confine a blanked count to 1-10 nor to an interval narrower than the protection width.
 
 The reader here is written independently of the module: the sums and orders a reader of the
@@ -21,11 +21,12 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.optimize import linprog
 
-from pipeline.disclosure import PUBLISHED_TABLES, audit_frames, disclose_stage, suppress_tables
-from pipeline.disclosure_audit import MARK, AuditTable, _changes, rate_splits
-from pipeline.periods import Period
-from pipeline.settings import DisclosureSettings
-from pipeline.statistics import collapse_weights
+from pipeline.core.periods import Period
+from pipeline.core.settings import DisclosureSettings
+from pipeline.core.statistics import collapse_weights
+from pipeline.stages.disclose.audit import MARK, AuditTable, _changes, rate_splits
+from pipeline.stages.disclose.suppression import audit_frames, disclose_stage, suppress_tables
+from pipeline.warehouse.catalog import PUBLISHED_TABLES
 from tests.conftest import rows, run_month, write_inbox
 from tests.unit.test_disclosure import AXES, G3_G5, people, person_frames, sum_groups
 
@@ -274,7 +275,7 @@ def test_the_protection_width_is_honoured(width):
 def test_a_rate_that_pins_an_age_group_is_rounded_coarser_or_blanked():
     # The issue's district again, as rows: at two decimals the rate, its interval and the total
     # give 9 / 8 / 20 back (rate_splits above), so the rate must not go out as it is.
-    from pipeline.disclosure_audit import RateBasis, protect_rates, table_from_frames
+    from pipeline.stages.disclose.audit import RateBasis, protect_rates, table_from_frames
 
     weights = collapse_weights([0, 65, 75])
     cells = [

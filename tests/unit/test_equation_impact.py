@@ -1,4 +1,4 @@
-"""Tests for pipeline.equation_impact: each adult's latest creatinine eGFR under the equation in
+"""Tests for pipeline.core.equation_impact: each adult's latest creatinine eGFR under the equation in
 force (CKD-EPI 2021, Inker et al., NEJM 2021;385:1737) against CKD-EPI 2009 (Levey et al., Ann
 Intern Med 2009;150:604, race term not used), categorised by KDIGO 2012 GFR category. The eGFRs
 below are worked out by hand from the published formulas (shared/REFERENCES.md, confirmed):
@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import polars as pl
 
-from pipeline.equation_impact import COMBINED, daily_comparison, reclassification, summary
+from pipeline.core.equation_impact import COMBINED, daily_comparison, reclassification, summary
 
 
 def ckd_epi_2021(scr: float, age: int, female: bool) -> float:

@@ -1,4 +1,4 @@
-"""Tests for pipeline.equations against published equations, guideline tables and facts of the
+"""Tests for pipeline.core.equations against published equations, guideline tables and facts of the
 trade. Each check names its source; "hand calculation" means the published formula evaluated
 with a calculator (Python's math module), independently of the code under test; "from memory"
 marks a coefficient or value recalled rather than read in the paper."""
@@ -13,7 +13,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from pipeline import equations as eq
+from pipeline.core import equations as eq
 
 # No example database: the run must not write into the working tree.
 SETTINGS = settings(max_examples=200, deadline=None, database=None)

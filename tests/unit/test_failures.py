@@ -125,8 +125,8 @@ def _committed_but_not_installed(out: Path) -> None:
 
 
 def test_backfill_finishes_a_month_committed_but_not_installed(tmp_path: Path):
-    from pipeline.backfill import finish_interrupted, months_to_run
-    from pipeline.periods import Period
+    from pipeline.core.periods import Period
+    from pipeline.run.backfill import finish_interrupted, months_to_run
 
     out = tmp_path / "out"
     _committed_but_not_installed(out)

@@ -21,10 +21,10 @@ from pathlib import Path
 
 import pytest
 
-from pipeline import identifiers
-from pipeline.checks import check_file
-from pipeline.ingest import FileFault, InboxFile, read_inbox_file, scan_inbox, sha256_of
-from pipeline.settings import STANDARD_FIELDS, SourceConfig, load_settings
+from pipeline.core import identifiers
+from pipeline.core.settings import STANDARD_FIELDS, SourceConfig, load_settings
+from pipeline.run.source_checks import check_file
+from pipeline.stages.ingest import FileFault, InboxFile, read_inbox_file, scan_inbox, sha256_of
 from tests.conftest import CONFIG_DIR, write_inbox
 
 TODAY = dt.date.today()

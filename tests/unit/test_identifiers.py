@@ -1,4 +1,4 @@
-"""Tests for pipeline.identifiers and its use in pipeline.ingest: a file whose columns or values
+"""Tests for pipeline.core.identifiers and its use in pipeline.stages.ingest: a file whose columns or values
 look like direct identifiers is refused before anything is stored, unless its source config
 allows the column with a written reason (then recorded in the ledger and the run manifest).
 
@@ -19,10 +19,10 @@ import pytest
 import yaml
 from pydantic import ValidationError
 
-from pipeline import identifiers
-from pipeline.flows import run_month_plain
-from pipeline.ingest import FileFault, InboxFile, read_inbox_file, scan_inbox, sha256_of
-from pipeline.settings import STANDARD_FIELDS, SourceConfig, load_settings
+from pipeline.core import identifiers
+from pipeline.core.settings import STANDARD_FIELDS, SourceConfig, load_settings
+from pipeline.run.flows import run_month_plain
+from pipeline.stages.ingest import FileFault, InboxFile, read_inbox_file, scan_inbox, sha256_of
 from tests.conftest import CONFIG_DIR, ROOT, make_small_config, write_inbox
 
 TODAY = dt.date(2026, 2, 2)

@@ -1,5 +1,5 @@
 """The identifier screen judges its sample in bulk (polars regexes over printable-ASCII values,
-:func:`pipeline.identifiers.value_patterns` for any other value): the findings must be those of
+:func:`pipeline.core.identifiers.value_patterns` for any other value): the findings must be those of
 judging every value one by one with ``value_patterns`` (and ``_full_date`` in birth columns),
 which is how the screen worked before, written here again as the reference.
 
@@ -21,8 +21,8 @@ import polars as pl
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline import identifiers
-from pipeline.identifiers import _column_findings, _full_date, value_patterns
+from pipeline.core import identifiers
+from pipeline.core.identifiers import _column_findings, _full_date, value_patterns
 
 
 @dataclass

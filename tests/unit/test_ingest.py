@@ -1,4 +1,4 @@
-"""Tests for pipeline.ingest and pipeline.pseudonymise: the three layouts read into landed rows
+"""Tests for pipeline.stages.ingest and pipeline.core.pseudonymise: the three layouts read into landed rows
 with line numbers and masked raw text, whole-file faults, and the HMAC person keys.
 
 Inputs are the small named files under tests/fixtures/ingest/ (invented Westerfold data)."""
@@ -13,16 +13,16 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline.ingest import (
-    LANDED_COLUMNS,
-    FileFault,
-    InboxFile,
-    read_inbox_file,
-    scan_inbox,
-    sha256_of,
+from pipeline.core.landed import LANDED_COLUMNS
+from pipeline.core.pseudonymise import (
+    DEMO_KEY,
+    SHARED_DOMAIN,
+    PseudonymKey,
+    add_person_keys,
+    person_key,
 )
-from pipeline.pseudonymise import DEMO_KEY, SHARED_DOMAIN, PseudonymKey, add_person_keys, person_key
-from pipeline.settings import Settings, SourceConfig, load_settings
+from pipeline.core.settings import Settings, SourceConfig, load_settings
+from pipeline.stages.ingest import FileFault, InboxFile, read_inbox_file, scan_inbox, sha256_of
 from tests.conftest import FIXTURES, write_inbox
 
 INGEST = FIXTURES / "ingest"

@@ -13,10 +13,13 @@ from pathlib import Path
 
 import polars as pl
 
-from pipeline import validate, warehouse
-from pipeline.ingest import empty_landed, land_inbox, read_inbox_file, scan_inbox
-from pipeline.pseudonymise import DEMO_KEY, PseudonymKey, add_person_keys
-from pipeline.settings import load_settings
+from pipeline.core.landed import empty_landed
+from pipeline.core.pseudonymise import DEMO_KEY, PseudonymKey, add_person_keys
+from pipeline.core.settings import load_settings
+from pipeline.stages import validate
+from pipeline.stages.ingest import land_inbox, read_inbox_file, scan_inbox
+from pipeline.warehouse import connection as warehouse
+from pipeline.warehouse import reference
 from tests.conftest import ROOT, rows, write_inbox
 
 TODAY = dt.date(2025, 7, 1)
@@ -111,7 +114,7 @@ def test_judging_file_by_file_equals_judging_the_run_at_once(small_config: Path,
     )
     con = warehouse.connect(tmp_path / "w.duckdb")
     try:
-        warehouse.load_reference_tables(con, settings)
+        reference.load_reference_tables(con, settings)
         validate.begin_judging(con)
         sink = Collect()
 

@@ -23,10 +23,10 @@ import pyarrow.parquet as pq
 import pytest
 from pydantic import ValidationError
 
-from pipeline import warehouse
-from pipeline.ingest import InboxFile, land_inbox, read_inbox_file, sha256_of
-from pipeline.pseudonymise import DEMO_KEY, PseudonymKey
-from pipeline.settings import STANDARD_FIELDS, SourceConfig, load_settings
+from pipeline.core.pseudonymise import DEMO_KEY, PseudonymKey
+from pipeline.core.settings import STANDARD_FIELDS, SourceConfig, load_settings
+from pipeline.stages.ingest import InboxFile, land_inbox, read_inbox_file, sha256_of
+from pipeline.warehouse import connection as warehouse
 from tests.conftest import ROOT, make_small_config, rows, run_month, write_inbox
 
 TODAY = dt.date(2025, 7, 1)

@@ -1,4 +1,4 @@
-"""Tests for the pseudonymisation key (pipeline.pseudonymise) and the privacy of a run's outputs.
+"""Tests for the pseudonymisation key (pipeline.core.pseudonymise) and the privacy of a run's outputs.
 
 - The key comes from KIDNEYSURV_PSEUDONYM_KEY or from an owner-only key file named by
   KIDNEYSURV_PSEUDONYM_KEY_FILE; a key file that group or others may read is refused (the
@@ -24,8 +24,7 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from pipeline.flows import run_month_plain
-from pipeline.pseudonymise import (
+from pipeline.core.pseudonymise import (
     DEMO_KEY,
     KEY_ENV,
     KEY_FILE_ENV,
@@ -34,7 +33,8 @@ from pipeline.pseudonymise import (
     person_key,
     resolve_key,
 )
-from pipeline.warehouse import WAREHOUSE_FILE
+from pipeline.run.flows import run_month_plain
+from pipeline.warehouse.connection import WAREHOUSE_FILE
 from tests.conftest import make_small_config, rows, write_inbox
 
 SECRET = "westerfold-region-key-7Qm2-test-only"

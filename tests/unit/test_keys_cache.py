@@ -1,5 +1,5 @@
 """The run's person-key cache: every (linkage domain, token) is hashed once per run, the keys are
-those of :func:`pipeline.pseudonymise.person_key` (HMAC-SHA256, RFC 2104, checked against
+those of :func:`pipeline.core.pseudonymise.person_key` (HMAC-SHA256, RFC 2104, checked against
 Python's ``hmac`` module in test_ingest.py), and no token is ever shown by the cache.
 
 Outside reference: Python's ``hmac`` module (``hmac.new(...).hexdigest()``), and its docs for
@@ -14,8 +14,8 @@ import hmac
 import polars as pl
 import pytest
 
-from pipeline import pseudonymise
-from pipeline.pseudonymise import PersonKeyCache, PseudonymKey, add_person_keys
+from pipeline.core import pseudonymise
+from pipeline.core.pseudonymise import PersonKeyCache, PseudonymKey, add_person_keys
 
 KEY = PseudonymKey(secret=b"westerfold-test-secret", is_demo=False)
 

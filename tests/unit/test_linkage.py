@@ -13,10 +13,13 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.linkage import event_params, trajectory_rules, write_trajectory_rules
-from pipeline.periods import Period
-from pipeline.settings import load_settings
-from pipeline.warehouse import build_table, connect, load_reference_tables
+from pipeline.core.periods import Period
+from pipeline.core.rule_params import event_params, trajectory_rules
+from pipeline.core.settings import load_settings
+from pipeline.stages.link.persons import write_trajectory_rules
+from pipeline.warehouse.connection import connect
+from pipeline.warehouse.reference import load_reference_tables
+from pipeline.warehouse.sql import build_table
 from tests.conftest import CONFIG_DIR, rows
 
 DAY0 = dt.date(2025, 1, 1)
@@ -317,7 +320,7 @@ def test_new_onset_albuminuria_after_diabetes(warehouse):
 
 def insert_acr(con, person: str, offset: int, *, acr_mg_g: float | None, above_a2: bool | None,
                comparator: str | None = None, basis: str = "measured_acr", aer: float | None = None) -> None:  # fmt: skip
-    """One albuminuria measure as pipeline/measures.py leaves it (its A2 status in the unit
+    """One albuminuria measure as pipeline/stages/measure.py leaves it (its A2 status in the unit
     reported already taken; tests/unit/test_measures.py checks that against KDIGO 2012)."""
     con.execute(
         "insert into measures_base values (?, ?, ?, 'acr', null, ?, false, null, ?, 50, ?, ?, ?)",

@@ -6,8 +6,8 @@ from __future__ import annotations
 import hashlib
 import json
 
-from pipeline.manifest import config_sha256
-from pipeline.settings import load_settings
+from pipeline.core.settings import load_settings
+from pipeline.run.manifest import config_sha256
 from tests.conftest import edit_pipeline_yaml, make_small_config, rows, run_month, write_inbox
 
 STD = "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status,reported_at\n"

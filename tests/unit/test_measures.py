@@ -1,4 +1,4 @@
-"""Tests for pipeline.measures: which equation applies, cystatin C and the combined equation,
+"""Tests for pipeline.stages.measure: which equation applies, cystatin C and the combined equation,
 albuminuria on one scale (measured, computed, timed, estimated), categories of censored values,
 and the dipstick facts of the trade, each check with its outside source beside it."""
 
@@ -10,8 +10,8 @@ from pathlib import Path
 import polars as pl
 import pytest
 
-from pipeline.measures import measure_frame
-from pipeline.settings import load_settings
+from pipeline.core.measure_rules import measure_frame
+from pipeline.core.settings import load_settings
 from tests.conftest import CONFIG_DIR, make_small_config, rows, run_month, write_inbox
 
 SETTINGS = load_settings(CONFIG_DIR)

@@ -1,6 +1,6 @@
 """A month that touches few persons settles, measures and links only those, and still gives the
-tables of one run over all the data (pipeline.validate.settle_scope, pipeline.measures,
-pipeline.linkage.carry_over_events).
+tables of one run over all the data (pipeline.stages.validate.settle_scope, pipeline.stages.measure,
+pipeline.stages.link.persons.carry_over_events).
 
 The facts checked are the project's own version rules (DEVELOPERS.md, "Statuses and
 duplicates": the latest report of a source + person + specimen + analyte wins; a specimen id
@@ -127,10 +127,10 @@ def test_a_pending_decline_is_confirmed_by_the_next_month(month_by_month):
 
 
 def test_measures_in_person_chunks_equal_one_pass(tmp_path, monkeypatch):
-    # a full rebuild measures person-key ranges one at a time (pipeline.measures.person_range);
+    # a full rebuild measures person-key ranges one at a time (pipeline.stages.measure.person_range);
     # with chunks of 10 results, these 42 persons span a dozen chunks and nothing may differ
-    from pipeline import measures
-    from pipeline.warehouse import connect
+    from pipeline.stages import measure as measures
+    from pipeline.warehouse.connection import connect
     from tests.conftest import make_small_config
 
     config = make_small_config(tmp_path / "config")
@@ -140,7 +140,7 @@ def test_measures_in_person_chunks_equal_one_pass(tmp_path, monkeypatch):
     monkeypatch.setattr(measures, "CHUNK_RESULTS", 10)
     con = connect(tmp_path / "out" / "surveillance.duckdb")
     try:
-        from pipeline.settings import load_settings
+        from pipeline.core.settings import load_settings
 
         con.execute("begin")
         summary = measures.measure_stage(con, load_settings(config))
@@ -154,7 +154,7 @@ def test_measures_in_person_chunks_equal_one_pass(tmp_path, monkeypatch):
 def test_person_ranges_cover_every_key_once():
     import hashlib
 
-    from pipeline.measures import person_range
+    from pipeline.stages.measure import person_range
 
     keys = [hashlib.sha256(str(i).encode()).hexdigest()[:32] for i in range(2000)] + [
         "0" * 32,
@@ -169,7 +169,7 @@ def test_person_ranges_cover_every_key_once():
 # A measure row reads results besides its own: a same-day cystatin C (the combined equation), the
 # lab's reported eGFR of the same specimen, a urine creatinine of the same specimen (computed
 # ACR). The monthly path recomputes only the rows sharing a day or a specimen with a changed
-# version (pipeline.measures.update_touched); each case below adds the other half in the second
+# version (pipeline.stages.measure.update_touched); each case below adds the other half in the second
 # month, so a June measure row must change, appear or go in July. Codes are LOINC (common practice).
 CYS, UALB, UCREA, EGFR_LAB = "33863-2", "14957-5", "2161-8", "98979-8"
 

@@ -23,8 +23,8 @@ import pytest
 from typer.testing import CliRunner
 
 from pipeline.cli import app
-from pipeline.flows import run_month_plain
-from pipeline.pseudonymise import (
+from pipeline.core.errors import ConfigError
+from pipeline.core.pseudonymise import (
     DEMO_KEY,
     KEY_ENV,
     KEY_FILE_ENV,
@@ -33,8 +33,9 @@ from pipeline.pseudonymise import (
     key_check_value,
     resolve_key,
 )
-from pipeline.settings import ConfigError, load_settings
-from pipeline.warehouse import WAREHOUSE_FILE
+from pipeline.core.settings import load_settings
+from pipeline.run.flows import run_month_plain
+from pipeline.warehouse.connection import WAREHOUSE_FILE
 from tests.conftest import edit_pipeline_yaml, make_small_config, rows, write_inbox
 
 LAB = "westerfold_general_lab"

@@ -1,4 +1,4 @@
-"""Tests for the Great Expectations quality gate per source batch (pipeline.quality).
+"""Tests for the Great Expectations quality gate per source batch (pipeline.stages.quality_gate).
 
 One in-memory warehouse holds a hand-made ``results_validated`` with one source per
 case: a clean batch, and batches that each break one expectation once. All of them are checked
@@ -24,8 +24,9 @@ from typing import Any
 
 import pytest
 
-from pipeline.settings import load_settings
-from pipeline.warehouse import connect, load_reference_tables
+from pipeline.core.settings import load_settings
+from pipeline.warehouse.connection import connect
+from pipeline.warehouse.reference import load_reference_tables
 from tests.conftest import make_small_config
 
 pytestmark = pytest.mark.skipif(
@@ -145,7 +146,7 @@ def settings(tmp_path_factory):
 @pytest.fixture(scope="module")
 def gate(settings, tmp_path_factory):
     """One check of every case, with Data Docs."""
-    from pipeline.quality import check_batches
+    from pipeline.stages.quality_gate import check_batches
 
     con = build_warehouse(settings, CASES, ROWS_READ)
     # missing_lab: a later file of this run whose 3 rows all went missing
@@ -167,7 +168,7 @@ def test_every_source_is_checked(gate):
 
 
 def test_clean_batch_passes(gate):
-    from pipeline.quality import KEY_COLUMNS
+    from pipeline.stages.quality_gate import KEY_COLUMNS
 
     check = gate[0]["clean_lab"]
     assert check.success, check.failed
@@ -230,7 +231,7 @@ def insert_generated_batch(con, source: str, file_id: int, rows: int) -> None:
 def test_the_summary_does_not_grow_with_the_rows_and_still_names_every_bad_row(settings):
     """20,000 rows make 2 summary rows; 25 values above the plausible range among them are all
     counted, and the first 20 are named in file and line order."""
-    from pipeline.quality import MAX_UNEXPECTED_IDS, check_batches
+    from pipeline.stages.quality_gate import MAX_UNEXPECTED_IDS, check_batches
 
     con = build_warehouse(settings, {}, {})
     insert_generated_batch(con, "big_lab", 1, 20_000)
@@ -248,7 +249,7 @@ def test_the_summary_does_not_grow_with_the_rows_and_still_names_every_bad_row(s
 
 
 def test_a_broken_table_schema_fails_every_batch(settings):
-    from pipeline.quality import check_batches
+    from pipeline.stages.quality_gate import check_batches
 
     cases = {s: CASES[s] for s in ("clean_lab", "low_lab")}
     con = build_warehouse(settings, cases, ROWS_READ)
@@ -319,7 +320,7 @@ def test_data_docs_local_assets_exist(gate):
 
 
 def test_data_docs_only_on_failure_unless_always(settings, tmp_path):
-    from pipeline.quality import check_batches
+    from pipeline.stages.quality_gate import check_batches
 
     con = build_warehouse(settings, {"clean_lab": CASES["clean_lab"]}, ROWS_READ)
     docs = tmp_path / "quality"
@@ -369,7 +370,7 @@ def test_a_defect_that_slips_past_the_row_rules_holds_its_source_back(
     network."""
     import json
 
-    import pipeline.flows as flows
+    import pipeline.run.flows as flows
     from tests.conftest import rows, run_month, write_inbox
 
     real = flows._expectations

@@ -33,7 +33,7 @@ def test_source_quality_and_reasons_balance(tmp_path):
 def test_a_failed_batch_is_held_back_and_the_others_publish(tmp_path, monkeypatch):
     """The gate's wiring: a source whose batch fails its expectation suite is held back
     (its files marked, none of its rows stored), another source publishes, exit code 1."""
-    import pipeline.flows as flows
+    import pipeline.run.flows as flows
 
     monkeypatch.setattr(
         flows, "_expectations", lambda ctx, con: {"westerfold_general_lab": "suite failed"}

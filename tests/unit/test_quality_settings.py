@@ -1,13 +1,14 @@
 """The quality gate's settings (quality_gate in config/pipeline.yaml): when Data Docs are built.
 
-No Great Expectations needed: only pipeline.settings is exercised.
+No Great Expectations needed: only pipeline.core.settings is exercised.
 """
 
 from __future__ import annotations
 
 import pytest
 
-from pipeline.settings import ConfigError, load_settings
+from pipeline.core.errors import ConfigError
+from pipeline.core.settings import load_settings
 from tests.conftest import edit_pipeline_yaml
 
 

@@ -26,9 +26,9 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline import ingest
-from pipeline.ingest import FileFault, InboxFile, read_delimited
-from pipeline.settings import STANDARD_FIELDS, Settings, SourceConfig, load_settings
+from pipeline.core.settings import STANDARD_FIELDS, Settings, SourceConfig, load_settings
+from pipeline.stages import ingest
+from pipeline.stages.ingest import FileFault, InboxFile, read_delimited
 from tests.conftest import ROOT, make_small_config
 
 SAMPLES = ROOT / "sample_extracts"

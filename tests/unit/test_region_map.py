@@ -1,4 +1,4 @@
-"""Tests for pipeline.region_map: district boundaries from a GeoJSON file (RFC 7946), with a
+"""Tests for pipeline.core.regions: district boundaries from a GeoJSON file (RFC 7946), with a
 clear message when a district has no shape or a shape no district."""
 
 from __future__ import annotations
@@ -9,8 +9,9 @@ from pathlib import Path
 
 import pytest
 
-from pipeline.region_map import read_district_shapes
-from pipeline.settings import ConfigError, load_settings
+from pipeline.core.errors import ConfigError
+from pipeline.core.regions import read_district_shapes
+from pipeline.core.settings import load_settings
 from tests.conftest import CONFIG_DIR
 
 SQUARE = {

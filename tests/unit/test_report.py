@@ -1,4 +1,4 @@
-"""Tests for pipeline.report: the monthly HTML report on a warehouse built from the shipped
+"""Tests for pipeline.report.page: the monthly HTML report on a warehouse built from the shipped
 sample extracts (two months, so the trend has two points).
 
 What is checked and against what:
@@ -22,14 +22,14 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from pipeline.flows import run_month_plain
-from pipeline.report import (
+from pipeline.report.page import (
     READABLE_TABLES,
     _select,
     build_report_html,
     headline_text,
     write_report,
 )
+from pipeline.run.flows import run_month_plain
 from tests.conftest import CONFIG_DIR, ROOT, edit_pipeline_yaml, rows
 
 PERIODS = ("2026-09", "2026-10")
@@ -557,7 +557,7 @@ def test_standardised_rates_shown_as_published(con, report):
         elif flag == "suppressed":
             assert text == "s"
     # Read with the other published figures, most district rates of the samples would narrow a
-    # blanked count (pipeline/disclosure_audit.py): the region's rate is published.
+    # blanked count (pipeline/stages/disclose/audit.py): the region's rate is published.
     assert shown_rates >= 1, "the samples publish the region's standardised rate"
     assert dict((d, f) for d, _, f in published)["ALL"] == ""
 

@@ -1,9 +1,9 @@
-"""Tests for pipeline.report_indicators helpers: a lab keeps its colour when labs are added."""
+"""Tests for pipeline.report.indicators helpers: a lab keeps its colour when labs are added."""
 
 from __future__ import annotations
 
-from pipeline.report import PALETTE
-from pipeline.report_indicators import source_style
+from pipeline.report.indicators import source_style
+from pipeline.report.page import PALETTE
 
 LABS = ["corvale_lab_chain", "fallowmere_reference_lab", "westerfold_general_lab"]
 

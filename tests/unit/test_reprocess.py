@@ -1,4 +1,4 @@
-"""Reprocessing a source under a corrected config (pipeline/reprocess.py) and the config-drift
+"""Reprocessing a source under a corrected config (pipeline/run/reprocess.py) and the config-drift
 check of every run.
 
 The reference for "correct" is a clean run of the same files under the corrected config: a
@@ -18,8 +18,8 @@ import duckdb
 import pytest
 import yaml
 
-from pipeline.flows import run_month_plain
-from pipeline.reprocess import ReprocessRefused, reprocess_source
+from pipeline.run.flows import run_month_plain
+from pipeline.run.reprocess import ReprocessRefused, reprocess_source
 from tests.conftest import ROOT, make_small_config, rows, write_inbox
 
 LAB = "corvale_lab_chain"
@@ -191,7 +191,7 @@ def test_a_missing_or_changed_file_is_refused_by_name(wrongly_mapped):
 KILLED = """
 import sys
 sys.path.insert(0, sys.argv[1])
-from pipeline.reprocess import reprocess_source
+from pipeline.run.reprocess import reprocess_source
 reprocess_source(sys.argv[2], sys.argv[3], sys.argv[4], "corvale_lab_chain", apply=True, demo=True)
 """
 

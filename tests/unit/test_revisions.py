@@ -1,5 +1,5 @@
 """Publishing a period again: the same figures are the same release; changed figures are a
-revision only with a reason, and the earlier release stays readable (pipeline/revisions.py).
+revision only with a reason, and the earlier release stays readable (pipeline/run/revisions.py).
 
 The rule checked is the project's own (README, "Revisions"); the persons and values are invented
 (the fictional region Westerfold). Creatinine is LOINC 2160-0 in mg/dL (LOINC, common practice)."""
@@ -13,8 +13,8 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from pipeline.flows import run_month_plain
-from pipeline.revisions import RevisionNeeded
+from pipeline.run.flows import run_month_plain
+from pipeline.run.revisions import RevisionNeeded
 from tests.conftest import rows, write_inbox
 
 LAB = "westerfold_general_lab"

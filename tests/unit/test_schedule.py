@@ -6,8 +6,9 @@ import datetime as dt
 
 import pytest
 
-from pipeline.periods import Period
-from pipeline.settings import ConfigError, load_settings
+from pipeline.core.errors import ConfigError
+from pipeline.core.periods import Period
+from pipeline.core.settings import load_settings
 from tests.conftest import edit_pipeline_yaml, make_small_config
 
 

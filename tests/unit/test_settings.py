@@ -1,4 +1,4 @@
-"""Tests for pipeline.settings: the shipped config loads; every kind of mistake in a file gives one
+"""Tests for pipeline.core.settings: the shipped config loads; every kind of mistake in a file gives one
 ConfigError naming the file and the key, never a Python traceback."""
 
 from __future__ import annotations
@@ -8,7 +8,8 @@ from pathlib import Path
 import pytest
 import yaml
 
-from pipeline.settings import ConfigError, load_settings, load_source
+from pipeline.core.errors import ConfigError
+from pipeline.core.settings import load_settings, load_source
 from tests.conftest import CONFIG_DIR, SMALL_DISTRICTS
 
 

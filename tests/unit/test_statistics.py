@@ -1,4 +1,4 @@
-"""Tests for pipeline.statistics against published methods, their worked examples and reference
+"""Tests for pipeline.core.statistics against published methods, their worked examples and reference
 libraries. Each check names its source: statsmodels (``proportion_confint``), scipy (chi-square
 quantiles, an independent route to the gamma quantiles), the papers, or "hand calculation" (the
 published formula worked through step by step, independently of the code under test)."""
@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 from scipy.stats import chi2
 from statsmodels.stats.proportion import proportion_confint
 
-from pipeline.statistics import (
+from pipeline.core.statistics import (
     WHO_WORLD_STANDARD_2000_2025,
     collapse_weights,
     direct_standardised_rate,

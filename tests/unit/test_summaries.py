@@ -1,10 +1,10 @@
-"""Tests for pipeline.summaries: the standardised rates on broad age groups and the intervals
+"""Tests for pipeline.stages.summarise: the standardised rates on broad age groups and the intervals
 added after the SQL.
 
 Outside references: the WHO World Standard Population 2000-2025 (Ahmad et al., WHO GPE Discussion
 Paper 31, 2001: five-year weights in per cent, summing to 100.035); the direct method (a weighted
 sum of age-specific rates, weights summing to 1: Ahmad et al. 2001) written out by hand here; the
-Fay-Feuer limits through pipeline.statistics, itself checked against Fay and Feuer (1997) in
+Fay-Feuer limits through pipeline.core.statistics, itself checked against Fay and Feuer (1997) in
 test_statistics.py; Wilson intervals against statsmodels' ``proportion_confint``.
 """
 
@@ -17,9 +17,9 @@ import pytest
 from pydantic import ValidationError
 from statsmodels.stats.proportion import proportion_confint
 
-from pipeline.settings import SummarySettings
-from pipeline.statistics import collapse_weights, direct_standardised_rate
-from pipeline.summaries import add_intervals, add_standardised_rates, age_labels
+from pipeline.core.settings import SummarySettings
+from pipeline.core.statistics import age_labels, collapse_weights, direct_standardised_rate
+from pipeline.stages.summarise import add_intervals, add_standardised_rates
 
 BANDS = [f"{low}-{low + 4}" for low in range(0, 85, 5)] + ["85+"]  # config/pipeline.yaml age_bands
 

@@ -1,4 +1,4 @@
-"""Tests for pipeline.undetected: expected undetected albuminuria by indirect standardisation
+"""Tests for pipeline.core.undetected: expected undetected albuminuria by indirect standardisation
 (Breslow and Day, Statistical Methods in Cancer Research vol. II, IARC 1987, ch. 2, from memory),
 its interval from the variance of a weighted sum of independent binomial proportions,
 Var(sum w_s p_s) = sum w_s^2 p_s (1 - p_s) / n_s (common practice), and its disclosure control.
@@ -13,9 +13,9 @@ from statistics import NormalDist
 import polars as pl
 import pytest
 
-from pipeline.disclosure import follow_final_blanks, suppress_tables
-from pipeline.settings import DisclosureSettings
-from pipeline.undetected import ASSUMPTION, assign_share_strata, estimate_undetected
+from pipeline.core.settings import DisclosureSettings
+from pipeline.core.undetected import ASSUMPTION, assign_share_strata, estimate_undetected
+from pipeline.stages.disclose.suppression import follow_final_blanks, suppress_tables
 
 Z = NormalDist().inv_cdf(0.975)  # 1.959964
 

@@ -1,4 +1,4 @@
-"""Tests for the validate stage (pipeline.validate and its SQL), through run_month_plain on tiny
+"""Tests for the validate stage (pipeline.stages.validate and its SQL), through run_month_plain on tiny
 invented inboxes: one reason code per broken rule, comparators, versions and duplicates, the
 per-file balance, re-running a month, and the quality gate.
 

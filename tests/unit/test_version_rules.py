@@ -19,7 +19,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from pipeline.warehouse import read_sql
+from pipeline.warehouse.sql_files import read_sql
 
 ACCEPTED = ("final", "amended", "corrected")
 WITHDRAWN = ("cancelled", "entered-in-error")

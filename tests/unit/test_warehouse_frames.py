@@ -16,7 +16,7 @@ import polars as pl
 import pyarrow as pa
 import pytest
 
-from pipeline.warehouse import with_frame
+from pipeline.warehouse.connection import with_frame
 
 
 def test_with_frame_inserts_and_releases_the_frame_inside_a_transaction():
@@ -71,7 +71,7 @@ def test_batches_keep_the_rows_in_order_and_release_the_frame():
 
 def test_sql_over_puts_inputs_in_front_of_a_sql_file():
     """The staging SQL run over a frame by name: a CTE shadows the table it names."""
-    from pipeline.warehouse import sql_over
+    from pipeline.warehouse.sql import sql_over
 
     text = sql_over("results_validated", {"landed_rows": "select * from _frame",
                                               "landed_rows_typed": "sql:landed_rows_typed"})  # fmt: skip

@@ -1,0 +1,290 @@
+"""Link: person trajectories across labs and months, events and person status at the period end.
+
+The rules are in ``sql/analysis/kidney_events.sql`` and ``sql/analysis/person_status.sql``; their
+numbers come from config/pipeline.yaml ("trajectories") through ``reference.trajectory_rules``
+and bound parameters.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass
+from pathlib import Path
+
+import duckdb
+
+from pipeline.core.measure_rules import MEASURED_ANALYTES, measure_frame
+from pipeline.core.periods import Period
+from pipeline.core.rule_params import event_params, trajectory_rules
+from pipeline.core.settings import Settings
+from pipeline.warehouse.connection import drop_relation, fetch_frame, with_frame
+from pipeline.warehouse.sql import (
+    build_table,
+    replace_period_rows,
+    swap_period_rows,
+)
+from pipeline.warehouse.sql_files import sql_path
+
+
+def write_trajectory_rules(con: duckdb.DuckDBPyConnection, settings: Settings) -> None:
+    with_frame(
+        con,
+        trajectory_rules(settings),
+        "create or replace table reference.trajectory_rules as select * from _frame",
+    )
+
+
+def build_known_at_period_end(con: duckdb.DuckDBPyConnection, period: Period) -> bool:
+    """The results as known at the period end (``results_known``): versions reported later
+    do not count, so a past period is rebuilt as it was known then.
+
+    Returns True when nothing in the warehouse is reported after the period end (the usual
+    monthly run): the outcomes as known then are the stored ones, and the accepted rows are
+    taken as they are, without settling the versions a second time.
+    """
+    later = con.execute(
+        "select count(*) from result_versions where reported_date > ?", [period.end]
+    ).fetchall()[0][0]
+    drop_relation(con, "results_known")
+    if later == 0:
+        # the same rows as sql/derived/results_known.sql gives in this case, as a view
+        # (no copy); the date is a datetime.date, written as an ISO literal
+        con.execute(
+            "create view results_known as select * from result_versions "
+            f"where outcome = 'accepted' and collected_date <= date '{period.end.isoformat()}'"
+        )
+        return True
+    con.execute("create or replace temp view versions_in_scope as select * from result_versions")
+    build_table(
+        con, "result_versions_resolved", "versions_as_of", {"as_of": period.end}, temporary=True
+    )
+    con.execute("drop view versions_in_scope")
+    build_table(con, "results_known", params={"period_end": period.end})
+    con.execute("drop table versions_as_of")
+    return False
+
+
+def build_person_tables(
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    period: Period,
+    sharded: bool = False,
+    as_stored: bool = False,
+    snapshot: Snapshot | None = None,
+) -> int:
+    """From ``results_known``: the measures known at the period end, daily values, events
+    and person status; returns the persons whose events were computed.
+
+    ``as_stored``: the results known at the period end are those of ``lab_results``, so their
+    measures are ``kidney_measures`` as they are (not computed a second time). ``snapshot``: an
+    earlier period whose person-level rows can be carried over for every person whose results
+    did not change since (:func:`carry_over`). ``sharded``: a shard's own throw-away database
+    (plain tables, no other periods to keep).
+    """
+    params = event_params(settings, period)
+    drop_relation(con, "measures_known")
+    if as_stored:
+        con.execute(
+            "create view measures_known as select * from kidney_measures "
+            f"where collected_date <= date '{period.end.isoformat()}'"
+        )
+    else:
+        results = fetch_frame(
+            con,
+            "select * from results_known where list_contains($analytes, analyte)",
+            {"analytes": list(MEASURED_ANALYTES)},
+        )
+        known = measure_frame(results, settings)
+        del results
+        with_frame(con, known, "create table measures_known as select * from _frame")
+    if snapshot is not None:
+        return carry_over(con, settings, period, snapshot)
+    build_table(con, "daily_values_averaged", params=params)
+    if sharded:
+        build_table(con, "kidney_events", params=params)
+        build_table(con, "person_status", params=params)
+        return -1
+    replace_period_rows(con, "kidney_events", period.label, params)
+    replace_period_rows(con, "person_status", period.label, params)
+    return -1
+
+
+@dataclass
+class Snapshot:
+    period: str
+    period_end: object
+    max_file_id: int
+
+
+def logic_fingerprint(settings: Settings) -> str:
+    """What the person-level tables depend on besides the data: settings, rules, code and SQL."""
+    digest = hashlib.sha256()
+    for part in (settings.pipeline.measures, settings.pipeline.trajectories, settings.analytes):
+        digest.update(part.model_dump_json().encode())
+    for path in LOGIC_FILES:
+        digest.update(path.read_bytes())
+    return digest.hexdigest()
+
+
+_PACKAGE = Path(__file__).resolve().parents[2]
+
+#: Code and SQL whose change makes every person's events be recomputed.
+LOGIC_FILES = tuple(
+    [_PACKAGE / n for n in ("core/measure_rules.py", "core/equations.py", "core/rule_params.py",
+                            "stages/link/persons.py")]
+    + [sql_path(n) for n in ("results_known", "daily_values_averaged", "kidney_events",
+                             "result_versions_resolved")]
+)  # fmt: skip
+
+
+def usable_snapshot(
+    con: duckdb.DuckDBPyConnection, period: Period, fingerprint: str
+) -> Snapshot | None:
+    """The latest built period, when it ends before this one and was built by the same logic."""
+    rows = con.execute(
+        "select period, period_end, max_file_id, fingerprint from link_snapshots "
+        "order by period_end desc limit 1"
+    ).fetchall()
+    if not rows:
+        return None
+    label, end, max_file_id, built_with = rows[0]
+    if end >= period.end or built_with != fingerprint:
+        return None
+    return Snapshot(label, end, max_file_id)
+
+
+def changed_persons(con: duckdb.DuckDBPyConnection, period: Period, snapshot: Snapshot) -> int:
+    """``link_persons``: the persons whose results as known at this period end may differ
+    from those known when the snapshot was built: a version ingested since, or reported between
+    the two period ends, and (as in the validate stage's scope) every person sharing a version
+    partition with one of those. Every other person's events are the snapshot's.
+    """
+    from pipeline.warehouse.versions import close_over_partitions
+
+    params = {
+        "max_file_id": snapshot.max_file_id,
+        "snap_end": snapshot.period_end,
+        "period_end": period.end,
+    }
+    if _same_seed_as_validate(con, params):
+        # the usual month: the versions ingested since the snapshot are this run's, and no
+        # earlier one is reported between the two period ends, so the seed is the validate
+        # stage's and so is its closure
+        con.execute("create or replace temp table link_persons as select * from scope_persons")
+    else:
+        seed = (
+            "select person_key, source_id, specimen_id, analyte from result_versions "
+            "where file_id > $max_file_id or (reported_date > $snap_end and reported_date <= $period_end)"
+        )
+        close_over_partitions(con, seed, params, "link_persons")
+    return con.execute("select count(*) from link_persons").fetchall()[0][0]
+
+
+def _same_seed_as_validate(con: duckdb.DuckDBPyConnection, params: dict) -> bool:
+    """Whether this run's validate stage settled a touched scope whose seed (this run's new
+    versions) is exactly the snapshot's seed.
+    """
+    touched = con.execute(
+        "select count(*) from duckdb_tables() where temporary and table_name = 'scope_persons'"
+    ).fetchall()[0][0]
+    if not touched:
+        return False
+    other = con.execute(
+        """
+        select count(*) from result_versions
+        where (file_id > $max_file_id and file_id not in (select file_id from landed_files))
+           or (file_id <= $max_file_id and reported_date > $snap_end and reported_date <= $period_end)
+        """,
+        {
+            "max_file_id": params["max_file_id"],
+            "snap_end": params["snap_end"],
+            "period_end": params["period_end"],
+        },
+    ).fetchall()[0][0]
+    return other == 0
+
+
+def carry_over(
+    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period, snapshot: Snapshot
+) -> int:
+    """Build this period's person-level rows from the snapshot's, for every person whose results did
+    not change since it was built; the changed persons' rows computed from their own results in
+    a scratch database with the same SQL (daily values, events, person status). Returns the
+    changed persons.
+
+    Why this equals a full rebuild: daily values and events depend on a person's values only;
+    of person status only the age and age band depend on the period end, and they are
+    recomputed here as in ``sql/analysis/person_status.sql``.
+    """
+    n = changed_persons(con, period, snapshot)
+    params = event_params(settings, period)
+    scratch = duckdb.connect(":memory:")
+    try:
+        for schema in ("staging", "reference"):
+            scratch.execute(f"create schema {schema}")
+        tables = [f"reference.{t}" for (t,) in con.execute(
+            "select table_name from duckdb_tables() where schema_name = 'reference' order by table_name"
+        ).fetchall()]  # fmt: skip
+        for table in tables:
+            _copy_into(scratch, table, con.sql(f"select * from {table}").to_arrow_table())
+        for table in ("results_known", "measures_known"):
+            rows = con.sql(
+                f"select * from {table} semi join link_persons using (person_key)"
+            ).to_arrow_table()
+            _copy_into(scratch, table, rows)
+        build_table(scratch, "daily_values_averaged", params=params)
+        build_table(scratch, "kidney_events", params=params)
+        build_table(scratch, "person_status", params=params)
+        fresh = {t: scratch.sql(f"select * from {t}").to_arrow_table()
+                 for t in ("daily_values_averaged", "kidney_events", "person_status")}  # fmt: skip
+    finally:
+        scratch.close()
+    con.execute(
+        "delete from daily_values_averaged where person_key in (select person_key from link_persons)"
+    )
+    _insert_arrow(con, "daily_values_averaged", fresh["daily_values_averaged"])
+    con.execute(
+        "create or replace temp table kidney_events_new as "
+        "select * replace ($period as period) from kidney_events "
+        "where period = $snapshot and person_key not in (select person_key from link_persons)",
+        {"period": period.label, "snapshot": snapshot.period},
+    )
+    _insert_arrow(con, "kidney_events_new", fresh["kidney_events"])
+    swap_period_rows(con, "kidney_events", period.label)
+    con.execute(
+        """
+        create or replace temp table person_status_new as
+        select p.* replace ($period as period, year($period_end) - p.birth_year as age_years,
+                            b.age_band as age_band)
+        from person_status as p
+        left join reference.age_bands as b
+            on year($period_end) - p.birth_year between b.age_min and b.age_max
+        where p.period = $snapshot and p.person_key not in (select person_key from link_persons)
+        """,
+        {"period": period.label, "period_end": period.end, "snapshot": snapshot.period},
+    )
+    _insert_arrow(con, "person_status_new", fresh["person_status"])
+    swap_period_rows(con, "person_status", period.label)
+    return n
+
+
+def _insert_arrow(con: duckdb.DuckDBPyConnection, table: str, rows: object) -> None:
+    with_frame(con, rows, f"insert into {table} by name select * from _frame")
+
+
+def _copy_into(con: duckdb.DuckDBPyConnection, table: str, rows: object) -> None:
+    with_frame(con, rows, f"create table {table} as select * from _frame")
+
+
+def record_snapshot(
+    con: duckdb.DuckDBPyConnection, period: Period, fingerprint: str, recomputed: int
+) -> None:
+    persons = con.execute(
+        "select count(*) from person_status where period = ?", [period.label]
+    ).fetchall()[0][0]
+    con.execute("delete from link_snapshots where period = ?", [period.label])
+    con.execute(
+        "insert into link_snapshots select ?, ?, (select coalesce(max(file_id), 0) from ingest_files), "
+        "?, ?, ?",
+        [period.label, period.end, fingerprint, persons, persons if recomputed < 0 else recomputed],
+    )

@@ -1,0 +1,90 @@
+"""Link stage: the person-level tables of the period (in process or in shards), with the
+incremental carry-over of unchanged persons.
+"""
+
+from __future__ import annotations
+
+import shutil
+from dataclasses import dataclass
+from pathlib import Path
+
+import duckdb
+
+from pipeline.core.periods import Period
+from pipeline.core.settings import Settings
+from pipeline.stages.link.persons import (
+    build_known_at_period_end,
+    build_person_tables,
+    logic_fingerprint,
+    record_snapshot,
+    usable_snapshot,
+    write_trajectory_rules,
+)
+from pipeline.warehouse.connection import drop_relation, with_frame
+from pipeline.warehouse.sql import (
+    replace_period_frame,
+)
+
+#: Row order of the person-level tables (as their SQL orders them), for putting shards together.
+PERSON_TABLE_ORDER = {
+    "measures_known": ["person_key", "collected_date", "analyte", "file_id", "line_no"],
+    "daily_values_averaged": ["person_key", "measure", "day"],
+    "kidney_events": ["person_key", "rule_id"],
+    "person_status": ["person_key"],
+}
+
+
+def build_person_tables_sharded(
+    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period, work: Path
+) -> int:
+    """The same tables through person-hash shards (executor ``shards`` or ``dask``)."""
+    from pipeline.stages.link.shards import export_shard_inputs, load_shard_outputs, run_shards
+
+    folders = export_shard_inputs(con, work, settings.pipeline.execution.shards)
+    done = run_shards(folders, settings, period)
+    for table, order in PERSON_TABLE_ORDER.items():
+        frame = load_shard_outputs(done, table).sort(order, nulls_last=False, maintain_order=True)
+        if table in ("kidney_events", "person_status"):
+            replace_period_frame(con, table, period.label, frame)
+        else:
+            drop_relation(con, table)
+            with_frame(con, frame, f"create table {table} as select * from _frame")
+    shutil.rmtree(work, ignore_errors=True)
+    return len(done)
+
+
+def link_stage(
+    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period, work: Path | None = None
+) -> LinkSummary:
+    """The link stage; with executor ``shards`` or ``dask`` the person-level tables are built
+    per person-hash shard in ``work`` (pipeline/stages/link/shards.py).
+    """
+    write_trajectory_rules(con, settings)
+    as_stored = build_known_at_period_end(con, period)
+    fingerprint = logic_fingerprint(settings)
+    if settings.pipeline.execution.executor == "local" or work is None:
+        snapshot = usable_snapshot(con, period, fingerprint) if as_stored else None
+        recomputed = build_person_tables(
+            con, settings, period, as_stored=as_stored, snapshot=snapshot
+        )
+    else:
+        build_person_tables_sharded(con, settings, period, work)
+        recomputed = -1
+    record_snapshot(con, period, fingerprint, recomputed)
+    persons = con.execute(
+        "select count(*) from person_status where period = ?", [period.label]
+    ).fetchall()[0][0]
+    confirmed, pending = con.execute(
+        "select count(*) filter (where event_status = 'confirmed'), "
+        "count(*) filter (where event_status = 'pending') from kidney_events where period = ?",
+        [period.label],
+    ).fetchall()[0]
+    return LinkSummary(persons, confirmed, pending, persons if recomputed < 0 else recomputed)
+
+
+@dataclass
+class LinkSummary:
+    persons: int
+    events_confirmed: int
+    events_pending: int
+    persons_recomputed: int = 0

@@ -1,0 +1,505 @@
+"""Validate: row-level rules, versions and duplicates, and the per-file balance.
+
+Each file's landed rows go through ``sql/landing/landed_rows_typed.sql`` and
+``sql/derived/results_validated.sql`` as the ingest stage hands them over
+(:func:`judge_file`), so a run's rows are read and written once. Then, over the whole run, the
+quality gate holds back the sources over their rejection limit or failing their expectation
+suite; a row breaking a rule goes to ``rejected_rows`` with its reason code, a message and its
+raw line; every other row goes to ``result_versions`` in canonical units. Then the outcome of
+every version (accepted, superseded, duplicate, withdrawn, pending) is settled over the whole
+history, ``lab_results`` is rebuilt from the accepted ones and the ledger's counts are brought
+up to date. A file whose counts do not balance stops the run.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Callable
+from dataclasses import dataclass, field
+
+import duckdb
+import polars as pl
+
+from pipeline.core.landed import empty_landed
+from pipeline.core.settings import Settings
+from pipeline.warehouse.connection import with_frame
+from pipeline.warehouse.sql import build_table, build_view, sql_over
+from pipeline.warehouse.versions import close_over_partitions
+
+#: The as-of date of "everything received so far".
+NO_LIMIT = dt.date(9999, 12, 31)
+
+OUTCOMES = ("accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending")
+
+
+class BalanceError(Exception):
+    """Rows read differ from the sum of their outcomes for some file."""
+
+
+@dataclass
+class ValidateSummary:
+    rows_valid: int = 0
+    rows_rejected: int = 0
+    lab_results: int = 0
+    by_source: dict[str, dict[str, int]] = field(default_factory=dict)
+    held_back: dict[str, str] = field(default_factory=dict)  # source -> reason
+    scope: Scope | None = None
+    #: source -> field -> {config_key, rows, values}: code values the source config does not map
+    unmapped: dict[str, dict[str, dict]] = field(default_factory=dict)
+
+
+def _judged_sql() -> str:
+    """results_validated over one landed frame (``_frame``), its staging inlined."""
+    return sql_over("results_validated", {
+        "landed_rows": "select * from _frame",
+        "landed_rows_typed": "sql:landed_rows_typed",
+    })  # fmt: skip
+
+
+def _unmapped_sql() -> str:
+    """unmapped_code_values over one landed frame (``_frame``), its staging inlined."""
+    return sql_over("unmapped_code_values", {
+        "landed_rows": "select * from _frame",
+        "landed_rows_typed": "sql:landed_rows_typed",
+    })  # fmt: skip
+
+
+def begin_judging(con: duckdb.DuckDBPyConnection) -> None:
+    """Start this run's ``results_validated`` and ``unmapped_code_values`` (temporary
+    tables), empty.
+    """
+    with_frame(
+        con, empty_landed(), "create or replace temp table results_validated as\n" + _judged_sql()
+    )
+    with_frame(
+        con,
+        empty_landed(),
+        "create or replace temp table unmapped_code_values as\n" + _unmapped_sql(),
+    )
+
+
+def judge_file(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> None:
+    """Judge one file's landed rows (the ingest stage's sink) into ``results_validated``.
+
+    The rules read one row and the reference tables only, so judging file by file gives the
+    same rows as judging the run at once; the raw line is kept on rejected rows only.
+    """
+    with_frame(
+        con, frame, "insert into results_validated\n" + _judged_sql(), batch_rows=JUDGE_BATCH_ROWS
+    )
+    candidates = _unmapped_candidates(con, frame)
+    if candidates.height:  # usually none: the unmapped-code query then costs nothing
+        with_frame(con, candidates, "insert into unmapped_code_values\n" + _unmapped_sql())
+
+
+_KNOWN_SEX = ["F", "FEMALE", "M", "MALE", "U", "UNKNOWN", "OTHER"]
+_KNOWN_FASTING = ["Y", "YES", "TRUE", "1", "N", "NO", "FALSE", "0"]
+_FHIR = ["final", "amended", "corrected", "cancelled", "entered-in-error", "preliminary"]
+
+
+def _unmapped_candidates(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> pl.DataFrame:
+    """The rows of ``frame`` that may carry a code no config maps: a superset of what
+    ``unmapped_code_values.sql`` counts, found in polars against the (small) reference tables, so
+    that the query runs only over them.
+    """
+    if not frame.height:
+        return frame
+    loincs = [r[0] for r in con.execute("select loinc from reference.analyte_codes").fetchall()]
+    units = [
+        r[0] for r in con.execute("select distinct unit from reference.unit_factors").fetchall()
+    ]
+    keys = [r[0] for r in con.execute("select alias_key from reference.unit_aliases").fetchall()]
+
+    def text(col: str) -> pl.Expr:
+        return pl.col(col).str.strip_chars()
+
+    def given(col: str) -> pl.Expr:
+        return text(col).fill_null("") != ""
+
+    unit_key = text("unit_text").str.to_lowercase().str.replace_all("µ", "u", literal=True) \
+        .str.replace_all("μ", "u", literal=True)  # fmt: skip
+    mask = (
+        (given("sex_text") & ~text("sex_text").str.to_uppercase().is_in(_KNOWN_SEX))
+        | (given("fasting_text") & ~text("fasting_text").str.to_uppercase().is_in(_KNOWN_FASTING))
+        | (given("status_text") & ~pl.col("status").fill_null("").is_in(_FHIR))
+        | (given("test_code_text") & ~pl.col("test_code").fill_null("").is_in(loincs))
+        | (given("unit_text") & ~text("unit_text").is_in(units) & ~unit_key.is_in(keys))
+    )
+    return frame.filter(mask.fill_null(True))
+
+
+#: Fields whose unmapped values change an indicator without rejecting the row (an unknown sex
+#: gives no eGFR) or reject it wholesale (an unknown unit): their share is gated.
+GATED_UNMAPPED_FIELDS = ("sex", "unit")
+
+
+def _has_unmapped_table(con: duckdb.DuckDBPyConnection) -> bool:
+    return bool(
+        con.execute(
+            "select count(*) from duckdb_tables() where temporary "
+            "and table_name = 'unmapped_code_values'"
+        ).fetchall()[0][0]
+    )
+
+
+def unmapped_codes(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, dict]]:
+    """Return this run's unmapped code values, per source and field: the config key that maps them,
+    the rows affected and the rows per value (most frequent first, at most 20 values).
+    """
+    out: dict[str, dict[str, dict]] = {}
+    if not _has_unmapped_table(con):
+        return out
+    for source, field_name, key, code, n in con.execute(
+        "select source_id, field, config_key, code, sum(rows)::bigint from unmapped_code_values "
+        "group by all order by source_id, field, sum(rows) desc, code"
+    ).fetchall():
+        entry = out.setdefault(source, {}).setdefault(
+            field_name, {"config_key": key, "rows": 0, "values": {}}
+        )
+        entry["rows"] += int(n)
+        if len(entry["values"]) < 20:
+            entry["values"][code] = int(n)
+    return out
+
+
+def unmapped_over_limit(con: duckdb.DuckDBPyConnection, limits: dict[str, float]) -> dict[str, str]:
+    """Sources whose share of this run's rows with an unmapped sex or unit value exceeds their
+    limit, with the reason (the quality gate holds them back like the rejection rate).
+    """
+    held: dict[str, str] = {}
+    if not _has_unmapped_table(con):
+        return held
+    rows = con.execute(
+        """
+        select r.source_id, r.n, coalesce(u.unmapped, 0) as unmapped
+        from (select source_id, count(*) as n from results_validated group by source_id) as r
+        left join (select source_id, sum(rows) as unmapped from unmapped_code_values
+                   where field in (select unnest($fields::varchar[])) group by source_id) as u
+            on u.source_id = r.source_id
+        order by r.source_id
+        """,
+        {"fields": list(GATED_UNMAPPED_FIELDS)},
+    ).fetchall()
+    for source, n, unmapped in rows:
+        limit = limits.get(source, 1.0)
+        if n and unmapped / n > limit:
+            held[source] = (
+                f"{int(unmapped)} of {n} rows have a sex or unit value the source config does not map "
+                f"({unmapped / n:.1%}), above the limit of {limit:.1%}; map them under 'sex_codes' / "
+                "'unit_aliases' (see 'kidneysurv sources check')"
+            )
+    return held
+
+
+#: Rows per Arrow batch when judging a file: the judging query then runs on every core.
+JUDGE_BATCH_ROWS = 32_768
+
+
+def validate_landed(
+    con: duckdb.DuckDBPyConnection,
+    rejection_limits: dict[str, float],
+    batch_gate: Callable[[duckdb.DuckDBPyConnection], dict[str, str]] | None = None,
+    unmapped_limits: dict[str, float] | None = None,
+) -> tuple[int, int, dict[str, str]]:
+    """Settle this run's judged rows (``results_validated``, filled by :func:`judge_file`):
+    append them to rejected_rows, or keep them as this run's versions (the temporary view
+    ``new_versions``, stored by :func:`resolve_versions`).
+
+    A source whose share of rejected rows in this run exceeds its limit is held back: its files
+    are marked ``held_back`` with the reason and none of their rows is stored, so the next run
+    tries them again. ``batch_gate`` (the Great Expectations suites) returns the sources whose
+    batch failed, with the reason; they are held back the same way.
+    """
+    failed_batches = batch_gate(con) if batch_gate is not None else {}
+    unmapped = unmapped_over_limit(con, unmapped_limits) if unmapped_limits else {}
+    held = hold_back_sources(con, rejection_limits, failed_batches, unmapped)
+    rejected = con.execute(
+        """
+        insert into rejected_rows
+        select v.source_id, v.file_id, f.file_path, v.line_no, v.raw_text, v.reason_code, v.message
+        from results_validated as v
+        join ingest_files as f on f.file_id = v.file_id
+        where v.reason_code is not null and v.file_id not in (select file_id from ingest_files where status = 'held_back')
+        """
+    ).fetchall()[0][0]
+    # this run's versions are the validated rows that remain: the others are rejected (stored
+    # just above) or belong to a held-back file. They wait, as a view, until their outcomes are
+    # settled (resolve_versions): inserted once with their outcome, not inserted and then updated
+    con.execute(
+        "delete from results_validated where reason_code is not null "
+        "or file_id in (select file_id from ingest_files where status = 'held_back')"
+    )
+    con.execute(
+        "create or replace temp view new_versions as "
+        "select * exclude (reason_code, message, raw_text), cast(null as varchar) as outcome "
+        "from results_validated"
+    )
+    valid = con.execute("select count(*) from new_versions").fetchall()[0][0]
+    return valid, rejected, held
+
+
+def hold_back_sources(
+    con: duckdb.DuckDBPyConnection,
+    rejection_limits: dict[str, float],
+    failed_batches: dict[str, str] | None = None,
+    unmapped: dict[str, str] | None = None,
+) -> dict[str, str]:
+    """The quality gate: mark the files of sources over their rejection limit, over their
+    limit of unmapped sex or unit values, or whose batch failed its expectation suite.
+    """
+    rates = con.execute(
+        """
+        select source_id, count(*) as n, count(*) filter (where reason_code is not null) as rejected
+        from results_validated group by source_id order by source_id
+        """
+    ).fetchall()
+    held: dict[str, str] = {}
+    for source_id, n, rejected in rates:
+        limit = rejection_limits.get(source_id, 1.0)
+        reasons = []
+        if n and rejected / n > limit:
+            reasons.append(
+                f"{rejected} of {n} rows rejected ({rejected / n:.1%}), above the limit of "
+                f"{limit:.1%}; see rejected reasons with 'kidneysurv sources check'"
+            )
+        if unmapped and source_id in unmapped:
+            reasons.append(unmapped[source_id])
+        if failed_batches and source_id in failed_batches:
+            reasons.append(f"batch failed its expectation suite: {failed_batches[source_id]}")
+        if reasons:
+            held[source_id] = "held back this month: " + "; ".join(reasons)
+            con.execute(
+                "update ingest_files set status = 'held_back', message = ? "
+                "where source_id = ? and file_id in (select file_id from landed_files)",
+                [held[source_id], source_id],
+            )
+            # a copy of a held-back file, recorded as its duplicate, is held back with it
+            con.execute(
+                "update ingest_files set status = 'held_back', message = ? "
+                "where source_id = ? and status = 'duplicate_file' and sha256 in "
+                "(select sha256 from ingest_files where source_id = ? and status = 'held_back')",
+                [held[source_id], source_id, source_id],
+            )
+    return held
+
+
+#: Below this share of new versions a run settles only the touched versions (see settle_scope).
+FULL_SCOPE_SHARE = 0.3
+
+
+@dataclass
+class Scope:
+    """The versions a run settles: all of them, or those that new rows can change."""
+
+    kind: str  # "all" | "touched"
+    versions: int
+    persons: int
+
+
+def settle_scope(con: duckdb.DuckDBPyConnection, full: bool = False) -> Scope:
+    """Point the view ``versions_in_scope`` at the versions whose outcome this run must settle.
+
+    New rows (this run's ``new_versions``) can change only the outcome of versions that share a
+    partition with them in ``result_versions_resolved.sql``: the same person (copies, and
+    versions without a specimen id, and the same result from two sources are all within one
+    person) or the same source + specimen + analyte (versions with a specimen id, which a
+    faulty extract may give under two persons). The scope is the closure of both relations,
+    taken until it stops growing, so settling it gives exactly what settling every version
+    would. When most versions are new (a first run, a backfill) the whole table is the scope,
+    and so it is when ``full`` (a reprocess, whose replaced rows no longer seed the closure).
+    """
+    con.execute(
+        "create or replace temp view all_versions as "
+        "select * from result_versions union all by name select * from new_versions"
+    )
+    stored = con.execute("select count(*) from result_versions").fetchall()[0][0]
+    new = con.execute("select count(*) from new_versions").fetchall()[0][0]
+    total = stored + new
+    if total == 0 or full or new >= FULL_SCOPE_SHARE * total:
+        con.execute("create or replace temp view versions_in_scope as select * from all_versions")
+        persons = con.execute("select count(distinct person_key) from all_versions").fetchall()[0][
+            0
+        ]
+        return Scope("all", total, persons)
+    size = close_over_partitions(
+        con,
+        "select person_key, source_id, specimen_id, analyte from new_versions",
+        {},
+        "scope_persons",
+        "scope_versions",
+        versions="all_versions",
+    )
+    con.execute("create or replace temp view versions_in_scope as select * from scope_versions")
+    persons = con.execute("select count(*) from scope_persons").fetchall()[0][0]
+    return Scope("touched", size, persons)
+
+
+def resolve_versions(con: duckdb.DuckDBPyConnection, full: bool = False) -> tuple[int, Scope]:
+    """Settle the outcome of the versions in scope and bring lab_results up to date.
+
+    Returns the rows of lab_results (a view: the accepted versions) and the scope; in a touched
+    scope ``scope_persons`` names the persons whose results may have changed, for the measure
+    stage.
+    """
+    scope = settle_scope(con, full)
+    build_table(con, "result_versions_resolved", params={"as_of": NO_LIMIT}, temporary=True)
+    if scope.kind == "touched":
+        # the results whose accepted set this run can change: its own versions and the stored
+        # ones whose outcome changes; the measure stage recomputes only around them
+        con.execute(
+            """
+            create or replace temp table changed_versions as
+            select person_key, source_id, specimen_id, collected_date from new_versions
+            union
+            select v.person_key, v.source_id, v.specimen_id, v.collected_date
+            from result_versions as v
+            join result_versions_resolved as r on r.file_id = v.file_id and r.line_no = v.line_no
+            where v.outcome is distinct from r.outcome
+            """
+        )
+    # stored versions whose outcome changed (an amendment supersedes them, ...), then this
+    # run's versions, stored once with their outcome
+    con.execute(
+        """
+        update result_versions as v set outcome = r.outcome
+        from result_versions_resolved as r
+        where r.file_id = v.file_id and r.line_no = v.line_no
+          and v.outcome is distinct from r.outcome
+        """
+    )
+    con.execute(
+        """
+        insert into result_versions
+        select n.* replace (r.outcome as outcome)
+        from new_versions as n
+        join result_versions_resolved as r on r.file_id = n.file_id and r.line_no = n.line_no
+        """
+    )
+    record_specimen_conflicts(con)
+    con.execute("drop view all_versions")
+    con.execute("drop view new_versions")
+    con.execute("drop view versions_in_scope")
+    build_view(con, "lab_results")
+    n = con.execute("select count(*) from lab_results").fetchall()[0][0]
+    return n, scope
+
+
+def record_specimen_conflicts(con: duckdb.DuckDBPyConnection) -> None:
+    """Give every version rejected by the version rules (a specimen id under two persons) its
+    reason in ``rejected_rows``, for the versions just settled: the ledger counts it there once
+    (as rejected, not as a version), and ``sources check`` and the quality report show why.
+    """
+    con.execute(
+        """
+        delete from rejected_rows as j
+        where j.reason_code = 'specimen_conflict'
+          and exists (select 1 from result_versions_resolved as r
+                      where r.file_id = j.file_id and r.line_no = j.line_no)
+        """
+    )
+    con.execute(
+        """
+        insert into rejected_rows
+        select v.source_id, v.file_id, f.file_path, v.line_no, null, 'specimen_conflict',
+               'specimen ' || v.specimen_id || ' (' || v.analyte || ') is reported under more than one '
+               || 'person: every row of it is kept out until the lab corrects it'
+        from result_versions as v
+        join result_versions_resolved as r on r.file_id = v.file_id and r.line_no = v.line_no
+        join ingest_files as f on f.file_id = v.file_id
+        where r.outcome = 'rejected'
+        """
+    )
+
+
+#: The files whose counts a touched scope can change: those of its versions and this run's.
+TOUCHED_FILES = (
+    "and f.file_id in (select file_id from scope_versions union select file_id from landed_files)"
+)
+
+
+def update_ledger_counts(con: duckdb.DuckDBPyConnection, scope: Scope | None = None) -> None:
+    """Recount the outcomes of the files this run touched (every ingested file when the scope
+    was all versions), then check that each file balances.
+    """
+    touched = scope is not None and scope.kind == "touched"
+    con.execute(
+        """
+        update ingest_files set
+            rows_accepted = c.accepted,
+            rows_superseded = c.superseded,
+            rows_duplicate = c.duplicate,
+            rows_withdrawn = c.withdrawn,
+            rows_pending = c.pending,
+            rows_rejected = c.rejected
+        from (
+            select f.file_id,
+                   count(v.line_no) filter (where v.outcome = 'accepted') as accepted,
+                   count(v.line_no) filter (where v.outcome = 'superseded') as superseded,
+                   count(v.line_no) filter (where v.outcome = 'duplicate') as duplicate,
+                   count(v.line_no) filter (where v.outcome = 'withdrawn') as withdrawn,
+                   count(v.line_no) filter (where v.outcome = 'pending') as pending,
+                   coalesce(any_value(r.rejected), 0) as rejected
+            from ingest_files as f
+            left join result_versions as v on v.file_id = f.file_id
+            left join (select file_id, count(*) as rejected from rejected_rows group by file_id) as r
+                on r.file_id = f.file_id
+            where f.status = 'ingested' {only_touched}
+            group by f.file_id
+        ) as c
+        where ingest_files.file_id = c.file_id
+        """.format(only_touched=TOUCHED_FILES if touched else "")
+    )
+    unbalanced = con.execute(
+        """
+        select file_path, rows_read,
+               rows_accepted + rows_rejected + rows_superseded + rows_duplicate
+               + rows_withdrawn + rows_pending as accounted
+        from ingest_files
+        where status in ('ingested', 'duplicate_file')
+          and rows_read <> rows_accepted + rows_rejected + rows_superseded + rows_duplicate
+                           + rows_withdrawn + rows_pending
+        order by file_id
+        """
+    ).fetchall()
+    if unbalanced:
+        detail = "; ".join(f"{p}: read {r}, accounted {a}" for p, r, a in unbalanced[:5])
+        raise BalanceError(
+            f"row accounting does not balance for {len(unbalanced)} file(s): {detail}"
+        )
+
+
+def outcome_counts(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, int]]:
+    """Rows read and their outcomes per source, from the ledger."""
+    rows = con.execute(
+        """
+        select source_id, sum(rows_read), sum(rows_accepted), sum(rows_rejected),
+               sum(rows_superseded), sum(rows_duplicate), sum(rows_withdrawn), sum(rows_pending),
+               count(*) filter (where status = 'held_back')
+        from ingest_files group by source_id order by source_id
+        """
+    ).fetchall()
+    keys = ("read", *OUTCOMES, "files_held_back")
+    return {r[0]: {k: int(v or 0) for k, v in zip(keys, r[1:], strict=False)} for r in rows}
+
+
+def validate_stage(
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    batch_gate: Callable[[duckdb.DuckDBPyConnection], dict[str, str]] | None = None,
+) -> ValidateSummary:
+    """The whole validate stage: rules, quality gate, versions, lab_results, ledger balance."""
+    default = settings.pipeline.quality_gate.max_rejection_rate
+    limits = {
+        s.id: s.max_rejection_rate if s.max_rejection_rate is not None else default
+        for s in settings.sources
+    }
+    gate = settings.pipeline.quality_gate
+    unmapped_limits = {
+        s.id: s.max_unmapped_share if s.max_unmapped_share is not None else gate.max_unmapped_share
+        for s in settings.sources
+    }
+    unmapped = unmapped_codes(con)  # before the gate: a held-back source's gaps are named too
+    valid, rejected, held = validate_landed(con, limits, batch_gate, unmapped_limits)
+    n_results, scope = resolve_versions(con)
+    update_ledger_counts(con, scope)
+    return ValidateSummary(valid, rejected, n_results, outcome_counts(con), held, scope, unmapped)
