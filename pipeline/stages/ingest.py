@@ -363,8 +363,11 @@ def _rows_in_bulk(text: str, delimiter: str, n_fields: int,
 
     token_idx = index["person_token"]
     token = field(token_idx).str.strip_chars(PY_WHITESPACE)
+    # as _rejoin: the token field is the mask, and the token masked in every other field, field
+    # by field (masking the joined text would mask the token again inside an earlier mask)
     masked = pl.concat_str(
-        [pl.when(token != "").then(pl.lit(_MASK)).otherwise(field(i)) if i == token_idx else field(i)
+        [pl.when(token != "").then(pl.lit(_MASK)).otherwise(field(i)) if i == token_idx
+         else pl.when(token != "").then(field(i).str.split(token).list.join(_MASK)).otherwise(field(i))
          for i in range(n_fields)], separator=delimiter)  # fmt: skip
     withheld = pl.format(
         "[text withheld: {} fields, lengths {}]", n,
@@ -374,7 +377,6 @@ def _rows_in_bulk(text: str, delimiter: str, n_fields: int,
         # as withheld_text and _rejoin: a row whose fields do not match the header keeps no
         # text; any other keeps its fields with the token's every occurrence masked
         pl.when(n != n_fields).then(withheld)
-        .when(token != "").then(masked.str.split(token).list.join(_MASK))
         .otherwise(masked).alias("raw_text"),
         pl.when(n != n_fields)
         .then(pl.format("wrong_field_count:{} fields, the header has {}", n, pl.lit(n_fields)))

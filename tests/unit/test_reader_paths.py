@@ -205,3 +205,18 @@ def test_bulk_rows_keep_line_numbers_and_mask_every_occurrence_of_the_token(
     assert rows[5]["unit_text"] == "" and rows[5]["specimen_id"] == "S2"
     assert frame.schema == read_with(source, _write(tmp_path, text), "csv")[1].schema
     assert frame["line_no"].dtype == pl.Int64
+
+
+@pytest.mark.parametrize("token", ["[", "person", "]", "n]", "p"])
+def test_a_token_inside_the_mask_is_masked_once(small_settings, tmp_path, token):
+    """A token that is part of the mask text itself ("[person]") is masked once, in its field
+    and wherever it occurs in the other fields, by both readers alike (a regression: the bulk
+    reader masked the joined text again and wrote "[person]person]" for the token "[")."""
+    source = small_settings.source("westerfold_general_lab")
+    header = ",".join(STANDARD_FIELDS[:11])
+    line = f"{token},1950,F,WF01,S{token}1,2025-06-02,2160-0,1.0,mg/dL,final,2025-06-04"
+    path = _write(tmp_path, header + "\n" + line + "\n")
+    bulk, by_csv = read_with(source, path, "bulk"), read_with(source, path, "csv")
+    assert_same(by_csv, bulk)
+    expected = "[person],1950,F,WF01,S[person]1,2025-06-02,2160-0,1.0,mg/dL,final,2025-06-04"
+    assert bulk[1]["raw_text"].to_list() == [expected]
