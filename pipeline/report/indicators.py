@@ -10,24 +10,27 @@ from __future__ import annotations
 from typing import Any
 
 from pipeline.core.undetected import ASSUMPTION
-from pipeline.report import page as r
-
-UNDETECTED = "published.district_undetected_albuminuria"
-
-
-def collect_undetected(con, period: str) -> list[dict[str, Any]]:
-    if not r._exists(con, UNDETECTED):
-        return []
-    # the counts of persons with diabetes and with an ACR are coverage's, published there only
-    # (pipeline/stages/disclose/suppression.py): shown beside the estimates as coverage publishes them
-    query = (
-        "select u.*, c.persons_with_diabetes, c.with_acr, "
-        "c.persons_with_diabetes - c.with_acr as persons_without_acr "
-        "from {t} as u left join published.district_screening_coverage as c "
-        "on c.period = u.period and c.district_code = u.district_code where u.period = ?"
-    )
-    return r._district_order(r._select(con, UNDETECTED, query, [period]))
-
+from pipeline.report.charts import _mpl, _svg_of
+from pipeline.report.data import TOTAL, _is_blanked, _rate_blanked
+from pipeline.report.html import (
+    EQUATION_NAMES,
+    INK,
+    MUTED,
+    PALETTE,
+    _age_groups,
+    _Cell,
+    _count_cell,
+    _dec,
+    _district_label,
+    _e,
+    _has_interval,
+    _int,
+    _missing,
+    _rate_cell,
+    _share_number,
+    _suppression_notes,
+    _table,
+)
 
 #: Counts shown as district_screening_coverage publishes them: never empty unless blanked there
 #: (this table's own ``suppression`` column does not mark them).
@@ -38,11 +41,11 @@ def _copied_blank(row: dict[str, Any]) -> bool:
     return any(row.get(c) is None for c in COPIED)
 
 
-def _expected_cell(row: dict[str, Any], data: Any, ci: bool) -> r._Cell:
+def _expected_cell(row: dict[str, Any], data: Any, ci: bool) -> _Cell:
     table = "district_undetected_albuminuria"
     if _copied_blank(row):
-        return r._Cell("s", "expected_a2_a3_without_acr", "s")
-    cell = r._rate_cell(table, row, "expected_a2_a3_without_acr", data, lambda v: r._dec(v, 1), ci)
+        return _Cell("s", "expected_a2_a3_without_acr", "s")
+    cell = _rate_cell(table, row, "expected_a2_a3_without_acr", data, lambda v: _dec(v, 1), ci)
     if cell.kind == "na" and row.get("persons_without_acr") not in (None, 0):
         cell.text = "not estimable"
     return cell
@@ -53,9 +56,9 @@ def undetected_section(rows: list[dict[str, Any]], data: Any) -> str:
     expected number of them with A2 or A3.
     """
     if not rows:
-        return r._missing("expected undetected albuminuria")
+        return _missing("expected undetected albuminuria")
     table = "district_undetected_albuminuria"
-    ci = r._has_interval(set(rows[0]), "expected_a2_a3_without_acr")
+    ci = _has_interval(set(rows[0]), "expected_a2_a3_without_acr")
     head = [
         "District",
         "With diabetes",
@@ -66,37 +69,37 @@ def undetected_section(rows: list[dict[str, Any]], data: Any) -> str:
     body = []
     for row in rows:
         diabetes = (
-            r._Cell("s", "persons_with_diabetes", "s")
+            _Cell("s", "persons_with_diabetes", "s")
             if row.get("persons_with_diabetes") is None
-            else r._count_cell(row, "persons_with_diabetes")
+            else _count_cell(row, "persons_with_diabetes")
         )
         untested = row.get("persons_without_acr")
         # the difference of two of coverage's counts: shown only where both are and it is not a
         # count from 1 to suppress_max itself
         if _copied_blank(row) or (untested is not None and 1 <= untested <= data.suppress_max):
-            untested_cell = r._Cell("s", "persons_without_acr", "s")
+            untested_cell = _Cell("s", "persons_without_acr", "s")
         else:
-            untested_cell = r._count_cell(row, "persons_without_acr")
+            untested_cell = _count_cell(row, "persons_without_acr")
         cells = [
             diabetes,
             untested_cell,
             (
-                r._Cell("s", "share_a2_a3_of_tested", "s")
+                _Cell("s", "share_a2_a3_of_tested", "s")
                 if row.get("with_acr") is None
-                else r._rate_cell(table, row, "share_a2_a3_of_tested", data, r._share_number, False)
+                else _rate_cell(table, row, "share_a2_a3_of_tested", data, _share_number, False)
             ),
             _expected_cell(row, data, ci),
         ]
-        body.append((row["district_code"], r._district_label(data, row["district_code"]), cells))
+        body.append((row["district_code"], _district_label(data, row["district_code"]), cells))
     window = int(data.threshold("summaries", "window_months", 12))
     minimum = int(data.threshold("summaries", "albuminuria_min_tested", 10))
-    groups = r._age_groups(data.threshold("summaries", "albuminuria_age_bands", [0, 45, 65, 75]))
+    groups = _age_groups(data.threshold("summaries", "albuminuria_age_bands", [0, 45, 65, 75]))
     caption = (
         f"Expected cases not yet found: moderately or severely increased albuminuria (A2/A3) among "
-        f"persons with diabetes without a urine ACR in the {window} months, {r._e(data.period_words)}"
+        f"persons with diabetes without a urine ACR in the {window} months, {_e(data.period_words)}"
     )
-    notes = r._suppression_notes(data, ci) + [
-        "<b>Estimate, not a count.</b> " + r._e(ASSUMPTION),
+    notes = _suppression_notes(data, ci) + [
+        "<b>Estimate, not a count.</b> " + _e(ASSUMPTION),
         f"Strata: age groups {groups}, sex and GFR category of the latest eGFR; a stratum with fewer than "
         f"{minimum} tested persons takes its share from the pooled sparse strata of its age group and sex, "
         "then its age group, then the region."
@@ -111,7 +114,7 @@ def undetected_section(rows: list[dict[str, Any]], data: Any) -> str:
             "up. A dipstick or protein ratio does not count as an ACR."
         ),
     ]
-    return r._table("table-undetected", caption, head, body, notes)
+    return _table("table-undetected", caption, head, body, notes)
 
 
 def undetected_definition() -> tuple[str, str]:
@@ -120,12 +123,10 @@ def undetected_definition() -> tuple[str, str]:
         "Among persons with lab-evidenced diabetes and no urine ACR in the window, the expected number "
         "with A2 or A3: the region's share of A2/A3 among the tested, per stratum of age group, sex and "
         "GFR category, applied to each district's untested persons and summed (indirect "
-        "standardisation; Breslow and Day 1987). " + r._e(ASSUMPTION),
+        "standardisation; Breslow and Day 1987). " + _e(ASSUMPTION),
     )
 
 
-EQUATION_TOTALS = "published.district_equation_change"
-EQUATION_CATEGORIES = "published.district_equation_change_categories"
 BELOW_60 = ("G3a", "G3b", "G4", "G5")
 G_LABELS = (
     ("G1", "G1 ≥90"),
@@ -137,40 +138,30 @@ G_LABELS = (
 )
 
 
-def collect_equation_change(con, period: str) -> dict[str, list[dict[str, Any]]]:
-    if not (r._exists(con, EQUATION_TOTALS) and r._exists(con, EQUATION_CATEGORIES)):
-        return {"totals": [], "categories": []}
-    totals = r._select(
-        con, EQUATION_TOTALS, "select * from {t} where period = ? order by comparison", [period]
-    )
-    categories = r._select(con, EQUATION_CATEGORIES, "select * from {t} where period = ?", [period])
-    return {"totals": r._district_order(totals), "categories": categories}
-
-
-def _below_60(rows: list[dict[str, Any]], column: str) -> r._Cell:
+def _below_60(rows: list[dict[str, Any]], column: str) -> _Cell:
     """G3a + G3b + G4 + G5 from the published cells; 's' if any of them is blank."""
     cells = {row["g_category"]: row for row in rows}
     if any(
-        g not in cells or r._is_blanked(cells[g], column) or cells[g].get(column) is None
+        g not in cells or _is_blanked(cells[g], column) or cells[g].get(column) is None
         for g in BELOW_60
     ):
-        return r._Cell("s", f"below_60_{column}", "s")
-    return r._Cell(r._int(sum(int(cells[g][column]) for g in BELOW_60)), f"below_60_{column}")
+        return _Cell("s", f"below_60_{column}", "s")
+    return _Cell(_int(sum(int(cells[g][column]) for g in BELOW_60)), f"below_60_{column}")
 
 
 def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) -> str:
     totals, categories = change.get("totals") or [], change.get("categories") or []
     if not totals:
-        return r._missing("equation-change impact")
-    names = r.EQUATION_NAMES
+        return _missing("equation-change impact")
+    names = EQUATION_NAMES
     in_force = totals[0].get("in_force_equation")
     comparisons = sorted(
         {t["comparison"] for t in totals}, key=lambda c: c == "ckd_epi_2021_creatinine_cystatin"
     )
     window = int(data.threshold("summaries", "window_months", 12))
     lead = (
-        f"<p>Each adult's latest creatinine eGFR in the {window} months to {r._e(data.end_words)}, under the "
-        f"equation in force ({r._e(names.get(in_force, in_force))}) and under another. A switch of equation "
+        f"<p>Each adult's latest creatinine eGFR in the {window} months to {_e(data.end_words)}, under the "
+        f"equation in force ({_e(names.get(in_force, in_force))}) and under another. A switch of equation "
         "moves these counts by itself, with no change in anyone's kidneys. Confirmed CKD under the other "
         "creatinine equation: every adult creatinine eGFR recomputed and the CKD rules run again.</p>"
     )
@@ -178,7 +169,7 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
     for comparison in comparisons:
         label = names.get(comparison, comparison)
         region = [
-            c for c in categories if c["district_code"] == r.TOTAL and c["comparison"] == comparison
+            c for c in categories if c["district_code"] == TOTAL and c["comparison"] == comparison
         ]
         by_g = {c["g_category"]: c for c in region}
         rows = []
@@ -189,12 +180,12 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
             rows.append(
                 (
                     g,
-                    r._e(text),
+                    _e(text),
                     [
-                        r._count_cell(row, "persons_in_force"),
-                        r._count_cell(row, "persons_comparison"),
-                        r._count_cell(row, "moved_to_lower_gfr_category"),
-                        r._count_cell(row, "moved_to_higher_gfr_category"),
+                        _count_cell(row, "persons_in_force"),
+                        _count_cell(row, "persons_comparison"),
+                        _count_cell(row, "moved_to_lower_gfr_category"),
+                        _count_cell(row, "moved_to_higher_gfr_category"),
                     ],
                 )
             )
@@ -205,8 +196,8 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
                 [
                     _below_60(region, "persons_in_force"),
                     _below_60(region, "persons_comparison"),
-                    r._Cell("", "moved_to_lower_gfr_category", "na"),
-                    r._Cell("", "moved_to_higher_gfr_category", "na"),
+                    _Cell("", "moved_to_lower_gfr_category", "na"),
+                    _Cell("", "moved_to_higher_gfr_category", "na"),
                 ],
             )
         )
@@ -224,10 +215,10 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
             else "adults"
         )
         caption = (
-            f"All districts: {r._e(label)} against the equation in force, {what}, "
-            f"{r._e(data.period_words)}"
+            f"All districts: {_e(label)} against the equation in force, {what}, "
+            f"{_e(data.period_words)}"
         )
-        out.append(r._table(f"table-equation-{r._e(comparison)}", caption, head, rows, []))
+        out.append(_table(f"table-equation-{_e(comparison)}", caption, head, rows, []))
     main = comparisons[0]
     rows = []
     for t in (t for t in totals if t["comparison"] == main):
@@ -239,15 +230,15 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
         rows.append(
             (
                 t["district_code"],
-                r._district_label(data, t["district_code"]),
+                _district_label(data, t["district_code"]),
                 [
-                    r._count_cell(t, "persons_compared"),
+                    _count_cell(t, "persons_compared"),
                     _below_60(mine, "persons_in_force"),
                     _below_60(mine, "persons_comparison"),
-                    r._count_cell(t, "moved_to_lower_gfr_category"),
-                    r._count_cell(t, "moved_to_higher_gfr_category"),
-                    r._count_cell(t, "persons_ckd_in_force"),
-                    r._count_cell(t, "persons_ckd_comparison"),
+                    _count_cell(t, "moved_to_lower_gfr_category"),
+                    _count_cell(t, "moved_to_higher_gfr_category"),
+                    _count_cell(t, "persons_ckd_in_force"),
+                    _count_cell(t, "persons_ckd_comparison"),
                 ],
             )
         )
@@ -261,14 +252,14 @@ def equation_change_section(change: dict[str, list[dict[str, Any]]], data: Any) 
         "Confirmed CKD, in force",
         "Confirmed CKD, other equation",
     ]
-    caption = f"By district: {r._e(names.get(main, main))} against the equation in force, {r._e(data.period_words)}"
-    notes = r._suppression_notes(data, False) + [
+    caption = f"By district: {_e(names.get(main, main))} against the equation in force, {_e(data.period_words)}"
+    notes = _suppression_notes(data, False) + [
         (
             "Below 60 is the sum of the published G3a–G5 counts; shown as <b>s</b> when any of them is suppressed. "
             "A lower category is a higher G number (lower eGFR)."
         )
     ]
-    out.append(r._table("table-equation-districts", caption, head, rows, notes))
+    out.append(_table("table-equation-districts", caption, head, rows, notes))
     return "".join(out)
 
 
@@ -281,7 +272,7 @@ def source_style(source_id: str, present: list[str]) -> tuple[str, int]:
     """
     import hashlib
 
-    size = len(r.PALETTE)
+    size = len(PALETTE)
 
     def natural(sid: str) -> int:
         return int.from_bytes(hashlib.sha256(sid.encode("utf-8")).digest()[:8], "big") % size
@@ -293,28 +284,17 @@ def source_style(source_id: str, present: list[str]) -> tuple[str, int]:
             index = (index + 1) % size
         taken.add(index)
         if sid == source_id:
-            return r.PALETTE[index], index % 4
+            return PALETTE[index], index % 4
     raise AssertionError("unreachable")
-
-
-SENSITIVITY = "published.district_estimated_acr_sensitivity"
-
-
-def collect_sensitivity(con, period: str) -> list[dict[str, Any]]:
-    if not r._exists(con, SENSITIVITY):
-        return []
-    return r._district_order(
-        r._select(con, SENSITIVITY, "select * from {t} where period = ?", [period])
-    )
 
 
 def sensitivity_section(rows: list[dict[str, Any]], data: Any) -> str:
     """All districts: the default counts beside the counts with estimated albuminuria counted."""
-    region = next((row for row in rows if row["district_code"] == r.TOTAL), None)
-    prev = next((row for row in data.prevalence if row["district_code"] == r.TOTAL), None)
-    cov = next((row for row in data.coverage if row["district_code"] == r.TOTAL), None)
+    region = next((row for row in rows if row["district_code"] == TOTAL), None)
+    prev = next((row for row in data.prevalence if row["district_code"] == TOTAL), None)
+    cov = next((row for row in data.coverage if row["district_code"] == TOTAL), None)
     if region is None or prev is None or cov is None:
-        return r._missing("sensitivity to estimated albuminuria")
+        return _missing("sensitivity to estimated albuminuria")
     lines = (
         ("Persons tested", prev, "persons_tested", "persons_tested_added"),
         ("Persons with confirmed CKD", prev, "persons_ckd", "persons_ckd_added"),
@@ -328,25 +308,21 @@ def sensitivity_section(rows: list[dict[str, Any]], data: Any) -> str:
     )
     body = []
     for label, base, column, added in lines:
-        default, plus = r._count_cell(base, column), r._count_cell(region, added)
+        default, plus = _count_cell(base, column), _count_cell(region, added)
         if default.kind == "num" and plus.kind == "num":
-            total = r._Cell(
-                r._int(int(base[column]) + int(region[added])), f"{column}_with_estimates"
-            )
+            total = _Cell(_int(int(base[column]) + int(region[added])), f"{column}_with_estimates")
         else:
-            total = r._Cell("s", f"{column}_with_estimates", "s")
+            total = _Cell("s", f"{column}_with_estimates", "s")
         default.column, plus.column = f"{column}_default", added
-        body.append((column, r._e(label), [default, plus, total]))
+        body.append((column, _e(label), [default, plus, total]))
     head = [
         "All districts",
         "Default (estimates left out)",
         "Added by estimates",
         "Estimates counted",
     ]
-    caption = (
-        f"Counting ACR estimated from a protein ratio or a dipstick, {r._e(data.period_words)}"
-    )
-    notes = r._suppression_notes(data, False) + [
+    caption = f"Counting ACR estimated from a protein ratio or a dipstick, {_e(data.period_words)}"
+    notes = _suppression_notes(data, False) + [
         (
             "The default counts only measured ACR: a dipstick misses moderately increased albuminuria (A2), and an "
             "ACR estimated from a protein ratio is uncertain (Sumida et al. 2020). Counted here, a dipstick of "
@@ -354,27 +330,15 @@ def sensitivity_section(rows: list[dict[str, Any]], data: Any) -> str:
             "value. Estimates counted = default + added, shown only where both are published."
         )
     ]
-    return r._table("table-sensitivity", caption, head, body, notes)
+    return _table("table-sensitivity", caption, head, body, notes)
 
 
 # --------------------------------------------------------------------------- maps
 
-SHAPES = "reference.district_shapes"
 #: Five steps of viridis (Garnier et al., matplotlib's default colour map, designed to be read
 #: by people with colour-vision deficiency and in grey scale; common practice for choropleths).
 MAP_COLOURS = ("#fde725", "#5ec962", "#21918c", "#3b528b", "#440154")
 NO_DATA = "#d8dee4"
-
-
-def collect_shapes(con) -> dict[str, dict]:
-    import json
-
-    if not r._exists(con, SHAPES):
-        return {}
-    rows = r._select(
-        con, SHAPES, "select district_code, geometry_geojson from {t} order by district_code"
-    )
-    return {row["district_code"]: json.loads(row["geometry_geojson"]) for row in rows}
 
 
 def _polygons(geometry: dict) -> list[list[list[list[float]]]]:
@@ -392,14 +356,14 @@ def _map_values(data: Any) -> list[tuple[str, str, str, dict[str, tuple[float | 
         code = row["district_code"]
         if row.get("ckd_per_1000_standardised_flag") == "few_events":
             std[code] = (None, "too few cases")
-        elif r._rate_blanked("district_ckd_prevalence", row, "ckd_per_1000_standardised", data):
+        elif _rate_blanked("district_ckd_prevalence", row, "ckd_per_1000_standardised", data):
             std[code] = (None, "suppressed")
         else:
             v = row.get("ckd_per_1000_standardised")
             std[code] = (None, "no data") if v is None else (float(v), "")
     cov: dict[str, tuple[float | None, str]] = {}
     for row in data.coverage:
-        if r._rate_blanked("district_screening_coverage", row, "share_with_both", data):
+        if _rate_blanked("district_screening_coverage", row, "share_with_both", data):
             cov[row["district_code"]] = (None, "suppressed")
         else:
             v = row.get("share_with_both")
@@ -407,7 +371,7 @@ def _map_values(data: Any) -> list[tuple[str, str, str, dict[str, tuple[float | 
     und: dict[str, tuple[float | None, str]] = {}
     for row in data.undetected:
         table = "district_undetected_albuminuria"
-        if r._rate_blanked(table, row, "expected_a2_a3_without_acr", data) or _copied_blank(row):
+        if _rate_blanked(table, row, "expected_a2_a3_without_acr", data) or _copied_blank(row):
             und[row["district_code"]] = (None, "suppressed")
             continue
         v, n = row.get("expected_a2_a3_without_acr"), row.get("persons_with_diabetes")
@@ -456,7 +420,7 @@ def _district_map(
         return MAP_COLOURS[min(len(MAP_COLOURS) - 1, int((v - low) / step))]
 
     words = []
-    with r._mpl() as Figure:
+    with _mpl() as Figure:
         fig = Figure(figsize=(320 / 72, 420 / 72))
         ax = fig.add_axes((0.03, 0.36, 0.94, 0.56))
         ax.set_title(title, loc="left", fontsize=9, fontweight="bold")
@@ -480,11 +444,11 @@ def _district_map(
                 edgecolor="#ffffff",
                 linewidth=1.2,
                 hatch="///" if blanked else None,
-                hatchcolor=r.MUTED,
+                hatchcolor=MUTED,
             )
             patch.set_gid(f"{'blanked' if value is None else 'district'}-{code}")
             ax.add_patch(patch)
-            text = f"{r._dec(value, 1)} {unit}" if value is not None else why
+            text = f"{_dec(value, 1)} {unit}" if value is not None else why
             words.append(f"{name} {text}")
             ring = _polygons(shapes[code])[0][0][:-1]
             cx = sum(xy(p)[0] for p in ring) / len(ring)
@@ -493,7 +457,7 @@ def _district_map(
             label = code if value is not None else f"{code} {mark}"
             dark = value is not None and colour(value) in MAP_COLOURS[2:]
             ax.text(cx, cy, label, ha="center", va="center", fontsize=8,
-                    color="#ffffff" if dark else r.INK,
+                    color="#ffffff" if dark else INK,
                     bbox=None if value is not None else {"facecolor": "#ffffff", "edgecolor": "none", "pad": 1})  # fmt: skip
         ax.set_aspect("equal")
         ax.autoscale_view()
@@ -504,17 +468,17 @@ def _district_map(
             else []
         )
         handles = [
-            Patch(facecolor=c, label=f"{r._dec(a, 1)} to {r._dec(b, 1)} {unit}")
+            Patch(facecolor=c, label=f"{_dec(a, 1)} to {_dec(b, 1)} {unit}")
             for (a, b), c in zip(bins, MAP_COLOURS, strict=False)
         ]
-        handles.append(Patch(facecolor="#ffffff", edgecolor=r.MUTED, hatch="///",
+        handles.append(Patch(facecolor="#ffffff", edgecolor=MUTED, hatch="///",
                              label="blanked: s suppressed, r too few cases"))  # fmt: skip
         handles.append(Patch(facecolor=NO_DATA, label="no data"))
         fig.legend(
             handles=handles, loc="lower left", bbox_to_anchor=(0.02, 0.0), frameon=False, fontsize=8
         )
         desc = f"Map of the districts: {title}. {'; '.join(words)}."
-        return r._svg_of(fig, map_id, "map", title, desc)
+        return _svg_of(fig, map_id, "map", title, desc)
 
 
 def maps_section(shapes: dict[str, dict], data: Any) -> str:

@@ -14,15 +14,8 @@ The output depends only on the warehouse (no wall-clock time), so the same run g
 
 from __future__ import annotations
 
-import html
-import io
-import json
-import math
 import os
-import re
-from collections.abc import Callable, Iterator, Sequence
-from contextlib import contextmanager
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -32,83 +25,41 @@ from pipeline.core.periods import Period
 from pipeline.report import (
     indicators as report_indicators,  # new sections; it uses this module's helpers
 )
-from pipeline.warehouse.catalog import PUBLISHED_TABLES
-
-__all__ = ["READABLE_TABLES", "build_report_html", "headline_text", "write_report"]
-
-PREVALENCE = "published.district_ckd_prevalence"
-COVERAGE = "published.district_screening_coverage"
-INCIDENCE = "published.district_decline_incidence"
-CATEGORIES = "published.district_ckd_categories"
-TREND = "published.region_coverage_trend"
-#: The only tables the report reads: publishable, quality per lab, reference and the manifest.
-READABLE_TABLES = (
-    PREVALENCE,
-    COVERAGE,
-    INCIDENCE,
-    CATEGORIES,
-    "published.district_undetected_albuminuria",
-    "published.district_equation_change",
-    "published.district_equation_change_categories",
-    "published.region_coverage_trend",
-    "published.district_estimated_acr_sensitivity",
-    "reference.district_shapes",
-    "source_quality",
-    "source_rejection_reasons",
-    "lab_egfr_agreement",
-    "reference.districts",
-    "runs",
+from pipeline.report.charts import _Bar, _bar_chart, _line_chart, _Reference
+from pipeline.report.data import (
+    READABLE_TABLES,
+    TOTAL,
+    UNKNOWN_DISTRICT,
+    _collect,
+    _Data,
+    _district_order,
+    _is_blanked,
+    _rate_blanked,
+)
+from pipeline.report.html import (
+    CATEGORY_AXES,
+    EQUATION_NAMES,
+    EQUATION_ROLES,
+    _age_groups,
+    _Cell,
+    _confidence,
+    _count_cell,
+    _dec,
+    _district_label,
+    _e,
+    _has_interval,
+    _int,
+    _missing,
+    _num,
+    _pct,
+    _rate_cell,
+    _rate_number,
+    _share_number,
+    _suppression_notes,
+    _table,
 )
 
-TOTAL = "ALL"
-UNKNOWN_DISTRICT = "unknown"
-#: Okabe and Ito's colour-blind-safe palette (Okabe and Ito, "Color Universal Design", 2008;
-#: common practice in scientific graphics): blue, orange, bluish green, vermillion, purple.
-PALETTE = ("#0072B2", "#E69F00", "#009E73", "#D55E00", "#CC79A7", "#56B4E9")
-INK, MUTED, GRID = "#1f2328", "#59636e", "#d8dee4"
-MONTHS = ("January", "February", "March", "April", "May", "June", "July", "August", "September",
-          "October", "November", "December")  # fmt: skip
-#: How the equation ids of config/pipeline.yaml read in the report, with their source.
-EQUATION_NAMES = {
-    "ckd_epi_2021_creatinine": "CKD-EPI 2021 creatinine, without race (Inker et al., NEJM 2021)",
-    "ckd_epi_2009_creatinine": "CKD-EPI 2009 creatinine, race term not used (Levey et al., Ann Intern Med 2009)",
-    "ekfc_creatinine": "EKFC creatinine (Pottel et al., Ann Intern Med 2021)",
-    "ckid_u25_creatinine": "CKiD U25 creatinine (Pierce et al., Kidney Int 2021)",
-    "ckd_epi_2012_cystatin": "CKD-EPI 2012 cystatin C (Inker et al., NEJM 2012)",
-    "ckd_epi_2021_creatinine_cystatin": "CKD-EPI 2021 creatinine–cystatin C (Inker et al., NEJM 2021)",
-}
-EQUATION_ROLES = {
-    "adult": "Adults (from age {adult_min_age})",
-    "child": "Children and adolescents (ages {min_age}–{child_max_age})",
-    "child_with_height": "Children when a height is reported{height_note}",
-    "cystatin": "Cystatin C (from age {adult_min_age})",
-    "creatinine_with_cystatin": "Creatinine and cystatin C collected on the same day",
-}
-
-_RATES = {t.name: t.rates for t in PUBLISHED_TABLES}
-_PUBLIC = {c for t in PUBLISHED_TABLES for c in t.public}  # never suppressed (resident population)
-_GROUP_RATES = {t.name: t.group_rates for t in PUBLISHED_TABLES}
-#: Standardised rates and the column that says whether each is published (pipeline/stages/disclose/suppression.py).
-_STANDARDISED = {t.name: t.standardised for t in PUBLISHED_TABLES if t.standardised is not None}
-#: The categories of district_ckd_categories, in the order shown, with their KDIGO 2012 ranges.
-CATEGORY_AXES = {
-    "gfr": (
-        "GFR category of the latest eGFR (KDIGO 2012)",
-        (
-            ("G1", "G1 ≥90"),
-            ("G2", "G2 60–89"),
-            ("G3a", "G3a 45–59"),
-            ("G3b", "G3b 30–44"),
-            ("G4", "G4 15–29"),
-            ("G5", "G5 <15"),
-            ("unknown", "No eGFR"),
-        ),
-    ),
-    "albuminuria": (
-        "albuminuria category of the latest measured ACR (KDIGO 2012)",
-        (("A1", "A1 <30 mg/g"), ("A2", "A2 30–300"), ("A3", "A3 >300"), ("unknown", "No ACR")),
-    ),
-}
+__all__ = ["READABLE_TABLES", "build_report_html", "headline_text", "write_report"]
 
 
 # --------------------------------------------------------------------------- public API
@@ -147,247 +98,7 @@ def build_report_html(con: duckdb.DuckDBPyConnection, period: str) -> str:
 # --------------------------------------------------------------------------- reading
 
 
-def _select(con: duckdb.DuckDBPyConnection, table: str, query: str,
-            params: Sequence[Any] = ()) -> list[dict[str, Any]]:  # fmt: skip
-    """Rows of ``query`` (which reads ``{t}`` = ``table``) as dicts; only READABLE_TABLES."""
-    if table not in READABLE_TABLES:
-        raise ValueError(f"the report does not read {table!r}")
-    if not _exists(con, table):
-        return []
-    cur = con.execute(query.format(t=table), list(params))
-    names = [d[0] for d in cur.description]
-    return [dict(zip(names, row, strict=False)) for row in cur.fetchall()]
-
-
-def _exists(con: duckdb.DuckDBPyConnection, table: str) -> bool:
-    schema, _, name = table.rpartition(".")
-    found = con.execute(
-        "select count(*) from duckdb_tables() where schema_name = ? and table_name = ? "
-        "and database_name = current_database()",
-        [schema or "main", name],
-    ).fetchall()
-    return bool(found[0][0])
-
-
-def _columns(con: duckdb.DuckDBPyConnection, table: str) -> set[str]:
-    schema, _, name = table.rpartition(".")
-    rows = con.execute(
-        "select column_name from duckdb_columns() where schema_name = ? and table_name = ? "
-        "and database_name = current_database()",
-        [schema or "main", name],
-    ).fetchall()
-    return {r[0] for r in rows}
-
-
-@dataclass
-class _Data:
-    period: Period
-    districts: dict[str, str]
-    run: dict[str, Any] | None
-    manifest: dict[str, Any]
-    prevalence: list[dict[str, Any]]
-    prevalence_columns: set[str]
-    suppressed_below: dict[str, int]  # district -> blanked counts in its rows (ALL: the table)
-    coverage: list[dict[str, Any]]
-    coverage_columns: set[str]
-    coverage_trend: list[dict[str, Any]]
-    quality: list[dict[str, Any]]
-    reasons: list[dict[str, Any]]
-    agreement: list[dict[str, Any]]
-    incidence: list[dict[str, Any]] = field(default_factory=list)
-    categories: list[dict[str, Any]] = field(default_factory=list)
-    undetected: list[dict[str, Any]] = field(default_factory=list)  # pipeline/report/indicators.py
-    equation_change: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
-    sensitivity: list[dict[str, Any]] = field(default_factory=list)
-    shapes: dict[str, dict] = field(
-        default_factory=dict
-    )  # district boundaries (GeoJSON geometries)
-
-    @property
-    def demo_key(self) -> bool | None:
-        return None if self.run is None else bool(self.run["demo_key"])
-
-    @property
-    def key_notice(self) -> str:
-        if self.demo_key is None:
-            return "No published run is recorded for this period: the key and settings cannot be shown."
-        return "Made with the public demo key: invented data, not for real use."
-
-    @property
-    def period_words(self) -> str:
-        return f"{MONTHS[self.period.month - 1]} {self.period.year}"
-
-    @property
-    def end_words(self) -> str:
-        end = self.period.end
-        return f"{end.day} {MONTHS[end.month - 1]} {end.year}"
-
-    def threshold(self, section: str, key: str, default: Any) -> Any:
-        value = self.manifest.get("thresholds", {}).get(section, {}).get(key)
-        return default if value is None else value
-
-    @property
-    def suppress_max(self) -> int:
-        return int(self.threshold("disclosure", "suppress_max", 10))
-
-    @property
-    def suppress_min(self) -> int:
-        return int(self.threshold("disclosure", "suppress_min", 1))
-
-    @property
-    def confidence(self) -> float:
-        return float(self.threshold("summaries", "confidence", 0.95))
-
-    def district_name(self, code: str) -> str:
-        if code == TOTAL:
-            return "All districts"
-        if code == UNKNOWN_DISTRICT:
-            return "District not known"
-        return self.districts.get(code, code)
-
-
-def _collect(con: duckdb.DuckDBPyConnection, period: Period) -> _Data:
-    p = period.label
-    districts = {r["district_code"]: r["district_name"] for r in
-                 _select(con, "reference.districts", "select * from {t} order by district_code")}  # fmt: skip
-    runs = _select(con, "runs", "select run_id, period, started_at, status, package_version, git_commit, "
-                   "config_sha256, demo_key, manifest from {t} where period = ? "
-                   "order by started_at desc, run_id desc limit 1", [p])  # fmt: skip
-    run = runs[0] if runs else None
-    manifest = {}
-    if run is not None:
-        raw = run["manifest"]
-        manifest = json.loads(raw) if isinstance(raw, str) else dict(raw or {})
-    prevalence = _select(con, PREVALENCE, "select * from {t} where period = ? and sex = 'ALL' "
-                         "and age_band = 'ALL'", [p])  # fmt: skip
-    below = {
-        r["district_code"]: int(r["n"] or 0)
-        for r in _select(
-            con,
-            PREVALENCE,
-            "select district_code, sum(n_suppressed) as n from {t} where period = ? group by 1",
-            [p],
-        )
-    }
-    below[TOTAL] = sum(below.values())
-    coverage = _select(con, COVERAGE, "select * from {t} where period = ?", [p])
-    if _exists(
-        con, TREND
-    ):  # as it stood at each of the 12 month ends (sql/reports/region_coverage_trend.sql)
-        trend = _select(con, TREND, "select * exclude (period), as_of_month as period from {t} where period = ? "
-                        "order by as_of_month", [p])  # fmt: skip
-    else:
-        trend = _select(con, COVERAGE, "select * from {t} where district_code = 'ALL' and period <= ? "
-                        "order by period", [p])  # fmt: skip
-    quality = _select(con, "source_quality", "select * from {t} where period = ? "
-                      "order by source_id, extract_month", [p])  # fmt: skip
-    reasons = _select(con, "source_rejection_reasons",
-                      "select source_id, reason_code, sum(rows)::bigint as rows from {t} where period = ? "
-                      "group by all order by source_id, rows desc, reason_code", [p])  # fmt: skip
-    agreement = _select(con, "lab_egfr_agreement", "select * from {t} where period = ? "
-                        "order by source_id, month", [p])  # fmt: skip
-    incidence = (_select(con, INCIDENCE, "select * from {t} where period = ?", [p])
-                 if _exists(con, INCIDENCE) else [])  # fmt: skip
-    categories = _select(con, CATEGORIES, "select * from {t} where period = ?", [p])
-    return _Data(
-        period=period, districts=districts, run=run, manifest=manifest,
-        prevalence=_district_order(prevalence), prevalence_columns=_columns(con, PREVALENCE),
-        suppressed_below=below, coverage=_district_order(coverage), coverage_columns=_columns(con, COVERAGE),
-        coverage_trend=trend, quality=quality, reasons=reasons, agreement=agreement,
-        incidence=_district_order(incidence), categories=categories,
-        undetected=report_indicators.collect_undetected(con, p),
-        equation_change=report_indicators.collect_equation_change(con, p),
-        sensitivity=report_indicators.collect_sensitivity(con, p),
-        shapes=report_indicators.collect_shapes(con),
-    )  # fmt: skip
-
-
-def _district_order(rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
-    """Districts by code, then the unknown district, then the total."""
-    rank = {UNKNOWN_DISTRICT: 1, TOTAL: 2}
-    return sorted(rows, key=lambda r: (rank.get(r["district_code"], 0), str(r["district_code"])))
-
-
 # --------------------------------------------------------------------------- cells and formats
-
-
-def _int(value: Any) -> str:
-    return f"{int(value):,}"
-
-
-def _pct(share: float, digits: int = 1) -> str:
-    return f"{share * 100:.{digits}f}\u00a0%"
-
-
-def _dec(value: float, digits: int = 1) -> str:
-    return f"{float(value):,.{digits}f}"
-
-
-def _is_blanked(row: dict[str, Any], column: str) -> bool:
-    """A count of a published row is blanked when it is empty in a row that suppressed counts
-    (a public count, the resident population, is never blanked: empty means there is none).
-    """
-    return column not in _PUBLIC and row.get(column) is None and bool(row.get("suppression"))
-
-
-def _rate_blanked(table: str, row: dict[str, Any], rate: str, data: _Data) -> bool:
-    """A rate is shown only when none of the counts it is built on is blanked (even if a value is
-    there: the report does not rely on the disclosure step having blanked it).
-    """
-    sources = _RATES.get(table, {}).get(rate)
-    if sources is not None:
-        return any(_is_blanked(row, s) for s in sources)
-    if rate in _GROUP_RATES.get(table, {}):
-        return row.get(rate) is None and data.suppressed_below.get(row["district_code"], 0) > 0
-    spec = _STANDARDISED.get(table)
-    if spec is not None and rate in spec.rates:
-        if spec.flag in row:  # published with its flag: shown exactly when the flag is ''
-            return row.get(spec.flag) not in ("", None) or (
-                row.get(spec.flag) is None and row.get(rate) is not None
-            )
-        return row.get(rate) is None and data.suppressed_below.get(row["district_code"], 0) > 0
-    return row.get(rate) is None and bool(row.get("suppression"))
-
-
-@dataclass
-class _Cell:
-    text: str
-    column: str
-    kind: str = "num"  # num, s (suppressed), na (not available), text
-
-
-def _count_cell(row: dict[str, Any], column: str) -> _Cell:
-    if _is_blanked(row, column):
-        return _Cell("s", column, "s")
-    if row.get(column) is None:
-        return _Cell("–", column, "na")
-    return _Cell(_int(row[column]), column)
-
-
-def _rate_cell(table: str, row: dict[str, Any], rate: str, data: _Data,
-               fmt: Callable[[float], str], with_interval: bool) -> _Cell:  # fmt: skip
-    if _rate_blanked(table, row, rate, data):
-        return _Cell("s", rate, "s")
-    value = row.get(rate)
-    if value is None:
-        return _Cell("–", rate, "na")
-    text = fmt(value)
-    low, high = row.get(f"{rate}_low"), row.get(f"{rate}_high")
-    if with_interval and low is not None and high is not None:
-        text += f' <span class="ci">({fmt(low)}–{fmt(high)})</span>'
-    return _Cell(text, rate)
-
-
-def _share_number(value: float) -> str:
-    return f"{value * 100:.1f}"
-
-
-def _rate_number(value: float) -> str:
-    return _dec(value, 1)
-
-
-def _has_interval(columns: set[str], rate: str) -> bool:
-    return f"{rate}_low" in columns and f"{rate}_high" in columns
 
 
 # --------------------------------------------------------------------------- headline
@@ -455,254 +166,7 @@ def _headlines(data: _Data) -> list[_Headline]:
 # --------------------------------------------------------------------------- charts (matplotlib, SVG)
 
 
-def _e(text: Any) -> str:
-    return html.escape(str(text), quote=True)
-
-
-#: Fixed settings so that the same data give the same SVG bytes (no date, no random ids, the
-#: text kept as text in a font shipped with matplotlib).
-_MPL_RC = {
-    "svg.hashsalt": "kidneysurv-report",
-    "svg.fonttype": "none",
-    "font.family": "DejaVu Sans",
-    "font.size": 9,
-    "axes.edgecolor": "#59636e",
-    "axes.labelcolor": "#1f2328",
-    "xtick.color": "#59636e",
-    "ytick.color": "#59636e",
-    "text.color": "#1f2328",
-    "path.simplify": False,
-}
-
-
-@contextmanager
-def _mpl() -> Iterator[Any]:
-    """matplotlib, imported here (the CLI does not pay for it at start), headless and fixed."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    from matplotlib.figure import Figure
-
-    with matplotlib.rc_context(_MPL_RC):
-        yield Figure
-
-
-def _svg_of(fig: Any, chart_id: str, klass: str, title: str, desc: str) -> str:
-    """The figure as an inline <svg> element: ids prefixed with ``chart_id`` (several charts share
-    one page), the size in CSS pixels, role="img" with the title and description for assistive
-    technology. Deterministic: no date or creator in the metadata, fixed hash salt.
-    """
-    buf = io.StringIO()
-    fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None})
-    svg = buf.getvalue()
-    svg = svg[svg.index("<svg") :]
-    # inline in HTML: no namespace declarations (the HTML parser supplies them), no RDF metadata
-    svg = re.sub(r"\s*<metadata>.*?</metadata>", "", svg, count=1, flags=re.S)
-    # its page-wide "*{stroke-linejoin: round; ...}" sheet: in the page's own CSS, scoped to charts
-    svg = re.sub(r"\s*<style[^>]*>.*?</style>", "", svg, count=1, flags=re.S)
-    svg = re.sub(r' xmlns(:xlink)?="[^"]*"', "", svg)
-    svg = svg.replace("xlink:href=", "href=")
-    svg = re.sub(r' id="([^"]+)"', lambda m: f' id="{chart_id}-{m.group(1)}"', svg)
-    svg = re.sub(r"url\(#([^)]+)\)", lambda m: f"url(#{chart_id}-{m.group(1)})", svg)
-    svg = re.sub(r'href="#([^"]+)"', lambda m: f'href="#{chart_id}-{m.group(1)}"', svg)
-    head_end = svg.index(">") + 1
-    head = re.sub(r'(width|height)="([0-9.]+)pt"', r'\1="\2"', svg[:head_end])
-    head = head.replace(
-        "<svg ",
-        f'<svg class="{klass}" id="{chart_id}" role="img" '
-        f'aria-labelledby="{chart_id}-title {chart_id}-desc" ',
-        1,
-    )
-    return (
-        head
-        + f'<title id="{chart_id}-title">{_e(title)}</title>'
-        + f'<desc id="{chart_id}-desc">{_e(desc)}</desc>'
-        + svg[head_end:].strip()
-    )
-
-
-#: Marker shape per series (colour is not the only cue); odd shapes are drawn dashed.
-MARKERS = ("o", "s", "^", "D")
-
-
-@dataclass
-class _Bar:
-    value: float | None
-    low: float | None = None
-    high: float | None = None
-    note: str = "suppressed"  # shown instead of a bar when value is None
-
-
-@dataclass
-class _Reference:
-    value: float
-    label: str
-
-
-def _bar_chart(chart_id: str, title: str, desc: str, categories: list[str], series: list[tuple[str, list[_Bar]]],
-               axis_label: str, suffix: str, fmt: Callable[[float], str],
-               references: Sequence[_Reference] = ()) -> str:  # fmt: skip
-    """Horizontal bars, one band per category, one bar per series; error bars when given. Each
-    drawn bar has the id ``<chart_id>-bar-<category>-<series>`` (a blanked value has a note, no bar).
-    """
-    band = 0.8 / max(1, len(series))
-    height_in = (
-        70 + (18 if len(series) > 1 else 0) + 26 * len(series) * max(1, len(categories))
-    ) / 72 + 0.6
-    highs = [
-        b.high if b.high is not None else b.value
-        for _, bars in series
-        for b in bars
-        if b.value is not None
-    ]
-    highs += [r.value for r in references]
-    top = (max(highs, default=1.0) or 1.0) * 1.18
-    with _mpl() as Figure:
-        from matplotlib.patches import Patch
-
-        fig = Figure(figsize=(10, height_in))
-        ax = fig.add_axes((0.25, 0.9 * 50 / (height_in * 72), 0.68, 1 - (110 / (height_in * 72))))
-        ax.set_title(title, loc="left", fontsize=11, fontweight="bold", pad=22 if references else 8)
-        for j, (_, bars) in enumerate(series):
-            colour = PALETTE[j % len(PALETTE)]
-            for i, bar in enumerate(bars):
-                y = i - 0.4 + band * (j + 0.5)
-                if bar.value is None:
-                    ax.text(top * 0.01, y, bar.note, va="center", fontstyle="italic", color=MUTED)
-                    continue
-                (rect,) = ax.barh([y], [bar.value], height=band * 0.85, color=colour)
-                rect.set_gid(f"bar-{i}-{j}")
-                end = bar.value
-                if bar.low is not None and bar.high is not None:
-                    eb = ax.errorbar([bar.value], [y], xerr=[[bar.value - bar.low], [bar.high - bar.value]],
-                                fmt="none", ecolor=INK, elinewidth=1.2, capsize=3)  # fmt: skip
-                    for part in eb.lines[2]:
-                        part.set_gid(f"interval-{i}-{j}")
-                    end = max(end, bar.high)
-                ax.text(end + top * 0.01, y, f"{fmt(bar.value)}{suffix}", va="center")
-        for k, ref in enumerate(references):
-            ax.axvline(ref.value, color=INK, linewidth=1.2, linestyle=(0, (5, 3)))
-            ax.text(ref.value, 1.01 + 0.05 * k, ref.label, transform=ax.get_xaxis_transform(),
-                    ha="center", va="bottom", fontsize=8)  # fmt: skip
-        ax.set_yticks(range(len(categories)), categories)
-        ax.set_ylim(len(categories) - 0.5, -0.5)
-        ax.set_xlim(0, top)
-        ax.set_xlabel(axis_label, gid="x-axis-label")
-        ax.grid(axis="x", color=GRID, linewidth=0.8)
-        ax.set_axisbelow(True)
-        for side in ("top", "right"):
-            ax.spines[side].set_visible(False)
-        ax.tick_params(axis="y", length=0)
-        if len(series) > 1:  # keys drawn whether or not a series has a bar
-            keys = [
-                Patch(facecolor=PALETTE[j % len(PALETTE)], label=name)
-                for j, (name, _) in enumerate(series)
-            ]
-            fig.legend(
-                handles=keys, loc="upper right", ncols=len(series), frameon=False, fontsize=8
-            )
-        return _svg_of(fig, chart_id, "chart", title, desc)
-
-
-def _line_chart(chart_id: str, title: str, desc: str, x_labels: list[str],
-                series: list[tuple[str, list[float | None], list[tuple[float, float] | None] | None]],
-                axis_label: str, x_axis_label: str, suffix: str, fmt: Callable[[float], str],
-                y_range: tuple[float, float] | None = None, zero_line: bool = False,
-                height: int = 280, styles: Sequence[tuple[str, int]] | None = None) -> str:  # fmt: skip
-    """Lines over categories on the x axis (months), a gap where a value is missing; a shaded
-    band where an interval is given. ``styles``: (colour, marker shape) per series (default: by
-    position).
-    """
-    n = len(x_labels)
-    xs = list(range(n))
-    with _mpl() as Figure:
-        fig = Figure(figsize=(10, height / 72))
-        ax = fig.add_axes((0.1, 0.2, 0.86, 0.66 if len(series) > 1 else 0.7))
-        ax.set_title(
-            title, loc="left", fontsize=11, fontweight="bold", pad=22 if len(series) > 1 else 8
-        )
-        for j, (name, vs, intervals) in enumerate(series):
-            colour, shape = styles[j] if styles else (PALETTE[j % len(PALETTE)], j)
-            if intervals:
-                lows = [math.nan if p is None else p[0] for p in intervals]
-                highs = [math.nan if p is None else p[1] for p in intervals]
-                ax.fill_between(xs, lows, highs, color=colour, alpha=0.18, linewidth=0)
-                for i, pair in enumerate(intervals):
-                    alone = (
-                        pair
-                        and (i == 0 or not intervals[i - 1])
-                        and (i == n - 1 or not intervals[i + 1])
-                    )
-                    if alone:
-                        ax.vlines([i], [pair[0]], [pair[1]], color=colour, linewidth=1.5)
-            ys = [math.nan if v is None else v for v in vs]
-            ax.plot(xs, ys, color=colour, linewidth=2, linestyle="--" if shape % 2 else "-",
-                    marker=MARKERS[shape % len(MARKERS)], markersize=5, label=name, gid=f"series-{j}")  # fmt: skip
-            if n == 1 and vs and vs[0] is not None:
-                ax.annotate(
-                    f"{fmt(vs[0])}{suffix}", (0, vs[0]), xytext=(8, 6), textcoords="offset points"
-                )
-        if y_range is not None:
-            ax.set_ylim(*y_range)
-        if zero_line:
-            ax.axhline(0, color=MUTED, linewidth=1.2)
-        every = max(1, math.ceil(n / 8))
-        shown = [i for i in xs if (n - 1 - i) % every == 0]  # counted from the last month
-        ax.set_xticks(shown, [x_labels[i] for i in shown])
-        ax.set_xlim(-0.5, n - 0.5)
-        ax.set_xlabel(x_axis_label, gid="x-axis-label")
-        ax.set_ylabel(axis_label, gid="y-axis-label")
-        ax.yaxis.set_major_formatter(lambda v, _pos: ("−" if v < 0 else "") + f"{abs(v):g}")
-        ax.grid(axis="y", color=GRID, linewidth=0.8)
-        ax.set_axisbelow(True)
-        for side in ("top", "right"):
-            ax.spines[side].set_visible(False)
-        if len(series) > 1:
-            fig.legend(loc="upper right", ncols=min(len(series), 6), frameon=False, fontsize=8)
-        return _svg_of(fig, chart_id, "chart", title, desc)
-
-
 # --------------------------------------------------------------------------- sections
-
-
-def _table(table_id: str, caption: str, head: list[str], rows: list[tuple[str, str, list[_Cell]]],
-           notes: list[str]) -> str:  # fmt: skip
-    """A table with a text first column; rows are (district code, label, cells); the last row in
-    a tfoot when its code is the total.
-    """
-    out = [
-        f'<div class="table-wrap"><table id="{table_id}"><caption>{caption}</caption><thead><tr>'
-    ]
-    out += [f'<th scope="col"{" class=num" if i else ""}>{h}</th>' for i, h in enumerate(head)]
-    out.append("</tr></thead><tbody>")
-    for code, label, cells in rows:
-        if code == TOTAL:
-            out.append("</tbody><tfoot>")
-        out.append(f'<tr data-district="{_e(code)}"><th scope="row">{label}</th>')
-        for c in cells:
-            out.append(f'<td class="{c.kind}" data-col="{_e(c.column)}">{c.text}</td>')
-        out.append("</tr>")
-    out.append("</tfoot>" if rows and rows[-1][0] == TOTAL else "</tbody>")
-    out.append("</table></div>")
-    if notes:
-        out.append('<p class="table-notes">' + "<br>".join(notes) + "</p>")
-    return "".join(out)
-
-
-def _district_label(data: _Data, code: str) -> str:
-    name = _e(data.district_name(code))
-    if code in (TOTAL, UNKNOWN_DISTRICT) or code not in data.districts:
-        return name
-    return f'{name} <span class="code">{_e(code)}</span>'
-
-
-def _suppression_notes(data: _Data, intervals: bool) -> list[str]:
-    notes = [f"<b>s</b> suppressed: a count from {data.suppress_min} to {data.suppress_max}, a count "
-             "blanked so that such a count cannot be worked out from the totals, or a rate built on one.",
-             "<b>–</b> not available (no denominator, e.g. no resident population)."]  # fmt: skip
-    if intervals:
-        notes.append(f"In brackets: {_confidence(data)} confidence interval.")
-    return notes
 
 
 def _prevalence_section(data: _Data) -> str:
@@ -748,11 +212,6 @@ def _prevalence_section(data: _Data) -> str:
     return (
         _table("table-prevalence", caption, head, rows, notes) if rows else _missing("prevalence")
     )
-
-
-def _age_groups(bounds: Sequence[int]) -> str:
-    b = [int(x) for x in bounds]
-    return ", ".join([f"{lo}–{hi - 1}" for lo, hi in zip(b, b[1:], strict=False)] + [f"{b[-1]}+"])
 
 
 def _categories_section(data: _Data) -> str:
@@ -848,10 +307,6 @@ def _incidence_section(data: _Data) -> str:
     ]
     return (_table("table-incidence", caption, head, rows, notes)
             if rows else _missing("sustained-decline incidence"))  # fmt: skip
-
-
-def _missing(what: str) -> str:
-    return f'<p class="notice">No published {what} table for this period.</p>'
 
 
 def _share_chart(data: _Data) -> str:
@@ -1132,15 +587,6 @@ def _methods_section(data: _Data) -> str:
     return "".join(out)
 
 
-def _confidence(data: _Data) -> str:
-    return f"{data.confidence * 100:g}\u00a0%"
-
-
-def _num(value: Any) -> str:
-    v = float(value)
-    return f"{v:g}"
-
-
 CAUTIONS = (
     "These are surveillance indicators for populations, <strong>not a diagnosis of any individual</strong>. "
     "A lab value is not a clinical assessment.",
@@ -1252,79 +698,7 @@ def _period_checks_section(data: _Data) -> str:
 
 # --------------------------------------------------------------------------- page
 
-CSS = """
-:root { --ink: #1f2328; --muted: #59636e; --rule: #d8dee4; --band: #f6f8fa; --accent: #0072B2;
-        --warn: #D55E00; }
-* { box-sizing: border-box; }
-html { font-family: system-ui, -apple-system, "Segoe UI", Roboto, "Noto Sans", "Liberation Sans",
-       "DejaVu Sans", Arial, sans-serif; color: var(--ink); background: #fff; line-height: 1.45; }
-body { margin: 0; }
-main { max-width: 980px; margin: 0 auto; padding: 24px 28px 40px; }
-header h1 { font-size: 1.7rem; margin: 0 0 4px; }
-header .sub { color: var(--muted); margin: 0 0 4px; }
-h2 { font-size: 1.25rem; margin: 34px 0 10px; padding-bottom: 4px; border-bottom: 2px solid var(--accent); }
-h3 { font-size: 1.02rem; margin: 20px 0 8px; }
-.banner { border: 3px solid var(--warn); background: #fdf0e8; color: #7a2e00; font-weight: 700;
-          padding: 10px 14px; margin: 14px 0; border-radius: 4px; font-size: 1.05rem; }
-.lead-caution { font-size: .92rem; margin: 8px 0 0; }
-a { color: var(--accent); }
-.notice { border-left: 4px solid var(--warn); padding: 6px 10px; background: #fdf6f2; }
-.headline { display: grid; grid-template-columns: repeat(auto-fit, minmax(200px, 1fr)); gap: 12px;
-            margin: 12px 0 4px; }
-.card { border: 1px solid var(--rule); border-top: 4px solid var(--accent); border-radius: 4px;
-        padding: 10px 12px; background: #fff; }
-.card .value { font-size: 1.7rem; font-weight: 700; font-variant-numeric: tabular-nums; }
-.card .value.suppressed { font-size: 1.1rem; color: var(--muted); }
-.card .label { font-size: .9rem; }
-.card .detail { font-size: .85rem; color: var(--muted); margin-top: 4px; }
-table { border-collapse: collapse; width: 100%; margin: 8px 0 4px; font-size: .9rem; }
-caption { text-align: left; font-weight: 600; padding: 4px 0 6px; }
-th, td { padding: 5px 8px; border-bottom: 1px solid var(--rule); vertical-align: top; }
-thead th { border-bottom: 2px solid var(--ink); text-align: left; font-weight: 600; }
-tbody tr:nth-child(even) { background: var(--band); }
-th.num { text-align: right; }
-td.num, td.s, td.na { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
-.table-wrap { overflow-x: auto; }
-td.s, td.na { color: var(--muted); }
-tfoot th, tfoot td { font-weight: 700; border-top: 2px solid var(--ink); }
-th[scope=row] { text-align: left; font-weight: 500; white-space: nowrap; }
-td.reasons { font-size: .8rem; white-space: normal; overflow-wrap: break-word; }
-#table-quality th, #table-quality td { padding: 5px 5px; }
-#table-quality thead th { white-space: normal; }
-td.nowrap { white-space: nowrap; }
-.code { color: var(--muted); font-size: .8em; }
-.ci { color: var(--muted); font-size: .85em; }
-.rate { color: var(--muted); font-size: .8em; margin-left: 2px; }
-.table-notes { font-size: .8rem; color: var(--muted); margin: 2px 0 14px; }
-figure { margin: 18px 0; }
-figcaption { font-size: .82rem; color: var(--muted); max-width: 720px; }
-svg.chart { display: block; width: 100%; max-width: 720px; height: auto; }
-svg.chart *, svg.map * { stroke-linejoin: round; stroke-linecap: butt; }
-.maps { display: flex; flex-wrap: wrap; gap: 8px; }
-.maps figure { margin: 8px 0; }
-svg.map { display: block; max-width: 100%; height: auto; }
-dl dt { font-weight: 600; margin-top: 8px; }
-dl dd { margin: 2px 0 0 18px; }
-.cautions { border: 1px solid var(--rule); border-left: 5px solid var(--accent); background: var(--band);
-            padding: 2px 18px 10px; margin-top: 30px; }
-.cautions h2 { border: none; }
-ul.sources li { margin-bottom: 4px; }
-footer { margin-top: 30px; font-size: .78rem; color: var(--muted); border-top: 1px solid var(--rule); }
-@media print {
-  main { max-width: none; padding: 0; }
-  .banner, .card, .cautions { -webkit-print-color-adjust: exact; print-color-adjust: exact; }
-  figure, table, .card, .cautions { break-inside: avoid; }
-  h2, h3 { break-after: avoid; }
-  tbody tr:nth-child(even) { background: none; }
-  .table-wrap { overflow: visible; }
-  table { font-size: .72rem; }
-  th, td { padding: 3px 4px; }
-  td.num, td.s, td.na, td.nowrap, th[scope=row] { white-space: normal; }
-  td.reasons, th[scope=row], thead th { overflow-wrap: anywhere; }
-  .ci { display: block; }
-}
-@page { margin: 16mm 14mm; }
-"""
+CSS = (Path(__file__).with_name("style.css")).read_text(encoding="utf-8")
 
 #: Nothing may be fetched: no script, no font, no image except inline data, styles inline only.
 CSP = "default-src 'none'; style-src 'unsafe-inline'; img-src data:"

@@ -31,7 +31,7 @@ def _documented() -> set[str]:
     body = block.split("\nsql/", 1)[0]  # the pipeline/ part of the tree
     found, stack = set(), []
     for line in body.splitlines()[1:]:
-        m = re.match(r"^( +)(\w+(?:\.py|/))", line)
+        m = re.match(r"^( +)(\w+(?:\.py|\.css|/))", line)
         if not m:
             continue
         depth = len(m.group(1)) // 2 - 1
@@ -57,7 +57,7 @@ def _present() -> set[str]:
             continue
         if path.is_dir():
             names.add(rel.as_posix() + "/")
-        elif path.suffix == ".py" and path.name != "__init__.py":
+        elif path.suffix in (".py", ".css") and path.name != "__init__.py":
             names.add(rel.as_posix())
     return names
 

@@ -22,13 +22,8 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from pipeline.report.page import (
-    READABLE_TABLES,
-    _select,
-    build_report_html,
-    headline_text,
-    write_report,
-)
+from pipeline.report.data import READABLE_TABLES, _select
+from pipeline.report.page import build_report_html, headline_text, write_report
 from pipeline.run.flows import run_month_plain
 from tests.conftest import CONFIG_DIR, ROOT, edit_pipeline_yaml, rows
 

@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
+from pipeline.report.html import PALETTE
 from pipeline.report.indicators import source_style
-from pipeline.report.page import PALETTE
 
 LABS = ["corvale_lab_chain", "fallowmere_reference_lab", "westerfold_general_lab"]
 
