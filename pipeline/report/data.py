@@ -13,6 +13,7 @@ import duckdb
 
 from pipeline.core.periods import Period
 from pipeline.warehouse.catalog import PUBLISHED_TABLES
+from pipeline.warehouse.sql_files import checked_name
 
 PREVALENCE = "published.district_ckd_prevalence"
 
@@ -79,7 +80,7 @@ def _select(con: duckdb.DuckDBPyConnection, table: str, query: str,
         raise ValueError(f"the report does not read {table!r}")
     if not _exists(con, table):
         return []
-    cur = con.execute(query.format(t=table), list(params))
+    cur = con.execute(query.format(t=checked_name(table)), list(params))
     names = [d[0] for d in cur.description]
     return [dict(zip(names, row, strict=False)) for row in cur.fetchall()]
 

@@ -18,6 +18,7 @@ import duckdb
 from pipeline.core.periods import Period
 from pipeline.warehouse.catalog import PUBLISHED_TABLES, apply_comments
 from pipeline.warehouse.connection import WAREHOUSE_FILE, connect
+from pipeline.warehouse.sql_files import checked_name
 
 
 def open_warehouse(out_dir: Path, memory_limit: str = "2GB") -> duckdb.DuckDBPyConnection:
@@ -40,7 +41,7 @@ def commit_month(con: duckdb.DuckDBPyConnection) -> None:
         "scope_versions",
         "link_persons",
     ):  # transient: not kept
-        con.execute(f"drop table if exists staging.{table}")
+        con.execute(f"drop table if exists staging.{checked_name(table)}")
     con.execute("commit")
 
 
@@ -80,9 +81,9 @@ def write_exports(
     work.mkdir(parents=True, mode=0o700)
     for table in PUBLISHED_TABLES:
         order = ", ".join(table.keys)
-        query = f"select * from published.{table.name} where period = $period order by {order}"
+        query = f"select * from published.{checked_name(table.name)} where period = $period order by {order}"
         marked = (
-            query.replace("select *", f"select *, $notice as {DEMO_COLUMN}", 1)
+            query.replace("select *", f"select *, $notice as {checked_name(DEMO_COLUMN)}", 1)
             if demo_key
             else query
         )
@@ -90,8 +91,8 @@ def write_exports(
             ", kv_metadata {'kidneysurv.pseudonym_key': 'demo'}" if demo_key else ""
         )
         con.execute(
-            f"copy ({query}) to {_literal(work / (table.name + '.parquet'))} ({parquet})",
-            {"period": period.label},
+            f"copy ({query}) to $path ({parquet})",
+            {"period": period.label, "path": str(work / (table.name + ".parquet"))},
         )
         params = (
             {"period": period.label, "notice": DEMO_NOTICE}
@@ -99,8 +100,8 @@ def write_exports(
             else {"period": period.label}
         )
         con.execute(
-            f"copy ({marked}) to {_literal(work / (table.name + '.csv'))} (format csv, header true)",
-            params,
+            f"copy ({marked}) to $path (format csv, header true)",
+            {**params, "path": str(work / (table.name + ".csv"))},
         )
     for name, data in documents.items():
         write_json(work / name, data)
@@ -108,8 +109,3 @@ def write_exports(
     if docs.is_dir():
         docs.rename(work / "quality")
     return work  # moved into out/<period>/ after the commit (runlock.commit_and_install)
-
-
-def _literal(path: Path) -> str:
-    """A file path as a SQL string literal (COPY takes no bound parameter for its target)."""
-    return "'" + str(path).replace("'", "''") + "'"

@@ -67,6 +67,7 @@ from typing import Any
 import duckdb
 
 from pipeline.core.settings import FHIR_STATUSES, Settings
+from pipeline.warehouse.sql_files import checked_name
 
 log = logging.getLogger(__name__)
 
@@ -578,14 +579,14 @@ def _failing_rows(
     con: duckdb.DuckDBPyConnection, predicate: str, source_id: str
 ) -> tuple[int, list[str]]:
     """How many of the source's well-formed rows break a check, and the first row ids."""
-    base = (f"from {_TABLE} as v left join reference.ranges as r on r.analyte = v.analyte "
+    base = (f"from {checked_name(_TABLE)} as v left join reference.ranges as r on r.analyte = v.analyte "
             f"where v.source_id = $source and v.reason_code is null and ({predicate})")  # fmt: skip
     params = {"source": source_id}
     count = con.execute(f"select count(*) {base}", params).fetchall()[0][0]
     ids = con.execute(
         f"select v.file_id::varchar || ':' || v.line_no::varchar {base} "
-        f"order by v.file_id, v.line_no limit {MAX_UNEXPECTED_IDS}",
-        params,
+        f"order by v.file_id, v.line_no limit $limit",
+        {**params, "limit": MAX_UNEXPECTED_IDS},
     ).fetchall()
     return int(count), [i for (i,) in ids]
 

@@ -24,6 +24,7 @@ from pipeline.core.landed import empty_landed
 from pipeline.core.settings import Settings
 from pipeline.warehouse.connection import with_frame
 from pipeline.warehouse.sql import build_table, build_view, sql_over
+from pipeline.warehouse.sql_files import read_sql
 from pipeline.warehouse.versions import close_over_partitions
 
 #: The as-of date of "everything received so far".
@@ -412,9 +413,6 @@ def record_specimen_conflicts(con: duckdb.DuckDBPyConnection) -> None:
 
 
 #: The files whose counts a touched scope can change: those of its versions and this run's.
-TOUCHED_FILES = (
-    "and f.file_id in (select file_id from scope_versions union select file_id from landed_files)"
-)
 
 
 def update_ledger_counts(con: duckdb.DuckDBPyConnection, scope: Scope | None = None) -> None:
@@ -423,44 +421,16 @@ def update_ledger_counts(con: duckdb.DuckDBPyConnection, scope: Scope | None = N
     """
     touched = scope is not None and scope.kind == "touched"
     con.execute(
-        """
-        update ingest_files set
-            rows_accepted = c.accepted,
-            rows_superseded = c.superseded,
-            rows_duplicate = c.duplicate,
-            rows_withdrawn = c.withdrawn,
-            rows_pending = c.pending,
-            rows_rejected = c.rejected
-        from (
-            select f.file_id,
-                   count(v.line_no) filter (where v.outcome = 'accepted') as accepted,
-                   count(v.line_no) filter (where v.outcome = 'superseded') as superseded,
-                   count(v.line_no) filter (where v.outcome = 'duplicate') as duplicate,
-                   count(v.line_no) filter (where v.outcome = 'withdrawn') as withdrawn,
-                   count(v.line_no) filter (where v.outcome = 'pending') as pending,
-                   coalesce(any_value(r.rejected), 0) as rejected
-            from ingest_files as f
-            left join result_versions as v on v.file_id = f.file_id
-            left join (select file_id, count(*) as rejected from rejected_rows group by file_id) as r
-                on r.file_id = f.file_id
-            where f.status = 'ingested' {only_touched}
-            group by f.file_id
-        ) as c
-        where ingest_files.file_id = c.file_id
-        """.format(only_touched=TOUCHED_FILES if touched else "")
+        "create or replace temp table recount_files as select file_id from ingest_files "
+        + (
+            "where file_id in (select file_id from scope_versions union select file_id from landed_files)"
+            if touched
+            else "where status = 'ingested'"
+        )
     )
-    unbalanced = con.execute(
-        """
-        select file_path, rows_read,
-               rows_accepted + rows_rejected + rows_superseded + rows_duplicate
-               + rows_withdrawn + rows_pending as accounted
-        from ingest_files
-        where status in ('ingested', 'duplicate_file')
-          and rows_read <> rows_accepted + rows_rejected + rows_superseded + rows_duplicate
-                           + rows_withdrawn + rows_pending
-        order by file_id
-        """
-    ).fetchall()
+    con.execute(read_sql("ledger_recount"))
+    con.execute("drop table recount_files")
+    unbalanced = con.execute(read_sql("ledger_unbalanced")).fetchall()
     if unbalanced:
         detail = "; ".join(f"{p}: read {r}, accounted {a}" for p, r, a in unbalanced[:5])
         raise BalanceError(

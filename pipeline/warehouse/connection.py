@@ -16,7 +16,7 @@ import duckdb
 import polars as pl
 import pyarrow as pa
 
-from pipeline.warehouse.sql_files import _NAME, read_sql
+from pipeline.warehouse.sql_files import _NAME, checked_name, read_sql
 
 WAREHOUSE_FILE = "surveillance.duckdb"
 LEDGER_TABLES = (
@@ -37,7 +37,7 @@ def connect(path: Path | str, memory_limit: str = "2GB") -> duckdb.DuckDBPyConne
     path = Path(path)
     con = duckdb.connect(str(path))
     temp_dir = path.parent / ".duckdb_tmp" if str(path) != ":memory:" else None
-    con.execute(f"set memory_limit = '{memory_limit}'")
+    con.execute("set memory_limit = ?", [memory_limit])
     if temp_dir is not None:
         temp_dir.mkdir(parents=True, exist_ok=True)
         con.execute("set temp_directory = ?", [str(temp_dir)])
@@ -48,7 +48,7 @@ def connect(path: Path | str, memory_limit: str = "2GB") -> duckdb.DuckDBPyConne
 
 def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
     for schema in ("staging", "reference", "published"):
-        con.execute(f"create schema if not exists {schema}")
+        con.execute(f"create schema if not exists {checked_name(schema)}")
     for table in LEDGER_TABLES:
         con.execute(read_sql(table))
     # columns added after a table was first written (warehouses made by an earlier version)
@@ -111,7 +111,9 @@ def add_missing_columns(
     wanted = con.from_arrow(frame.head(0).to_arrow())
     for column, dtype in zip(wanted.columns, wanted.types, strict=False):
         if column not in have:
-            con.execute(f'alter table {schema}.{name} add column "{column}" {dtype}')
+            con.execute(
+                f'alter table {checked_name(schema)}.{checked_name(name)} add column "{checked_name(column)}" {dtype}'
+            )
 
 
 def drop_relation(con: duckdb.DuckDBPyConnection, name: str) -> None:
@@ -122,7 +124,7 @@ def drop_relation(con: duckdb.DuckDBPyConnection, name: str) -> None:
         raise ValueError(f"not a plain table name: {name!r}")
     kind = relation_kind(con, name)
     if kind:
-        con.execute(f"drop {kind} {name}")
+        con.execute(f"drop {checked_name(kind)} {checked_name(name)}")
 
 
 def fetch_frame(

@@ -14,6 +14,7 @@ from pipeline.core.equations import KDIGO_GFR_LOWER_BOUNDS, KDIGO_RISK
 from pipeline.core.regions import read_district_shapes
 from pipeline.core.settings import Settings
 from pipeline.warehouse.connection import with_frame
+from pipeline.warehouse.sql_files import checked_name
 
 
 def write_district_shapes(
@@ -83,7 +84,11 @@ def load_reference_tables(con: duckdb.DuckDBPyConnection, settings: Settings) ->
         ),
     }  # fmt: skip
     for name, frame in frames.items():
-        with_frame(con, frame, f"create or replace table reference.{name} as select * from _frame")
+        with_frame(
+            con,
+            frame,
+            f"create or replace table reference.{checked_name(name)} as select * from _frame",
+        )
 
 
 def _gfr_categories() -> pl.DataFrame:

@@ -23,3 +23,13 @@ def sql_path(name: str) -> Path:
 
 def read_sql(name: str) -> str:
     return sql_path(name).read_text(encoding="utf-8")
+
+
+def checked_name(name: str) -> str:
+    """``name`` unchanged when it is a plain relation or column name (``schema.table`` allowed):
+    the one way a name enters SQL text by formatting (DEVELOPERS.md, "SQL text and values").
+    Values never do: they are bound parameters.
+    """
+    if not all(_NAME.match(part) for part in name.split(".")) or name.count(".") > 1:
+        raise ValueError(f"not a plain relation name: {name!r}")
+    return name

@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import duckdb
 
+from pipeline.warehouse.sql_files import checked_name
+
 
 def close_over_partitions(
     con: duckdb.DuckDBPyConnection,
@@ -29,18 +31,18 @@ def close_over_partitions(
     columns = "v.*" if versions_table else "v.person_key, v.source_id, v.specimen_id, v.analyte"
     found = versions_table or "closure_versions"
     con.execute(
-        f"create or replace temp table {persons_table} as select distinct person_key from ({seed})",
+        f"create or replace temp table {checked_name(persons_table)} as select distinct person_key from ({seed})",
         params,
     )
     con.execute(
-        f"create or replace temp table closure_new_persons as select * from {persons_table}"
+        f"create or replace temp table closure_new_persons as select * from {checked_name(persons_table)}"
     )
     first = True
     while True:
         # every version of the persons just added ...
         con.execute(
-            f"{f'create or replace temp table {found} as' if first else f'insert into {found}'} "
-            f"select {columns} from {versions} as v "
+            f"{f'create or replace temp table {checked_name(found)} as' if first else f'insert into {checked_name(found)}'} "
+            f"select {columns} from {checked_name(versions)} as v "
             "semi join closure_new_persons as n on n.person_key = v.person_key"
         )
         first = False
@@ -50,19 +52,21 @@ def close_over_partitions(
             create or replace temp table closure_new_persons as
             with specimens as (
                 select distinct f.source_id, f.specimen_id, f.analyte
-                from {found} as f semi join closure_new_persons as n on n.person_key = f.person_key
+                from {checked_name(found)} as f semi join closure_new_persons as n on n.person_key = f.person_key
                 where f.specimen_id is not null
             )
-            select distinct v.person_key from {versions} as v
+            select distinct v.person_key from {checked_name(versions)} as v
             where (v.source_id, v.specimen_id, v.analyte) in (select * from specimens)
-              and v.person_key not in (select person_key from {persons_table})
+              and v.person_key not in (select person_key from {checked_name(persons_table)})
             """
         )
         if con.execute("select count(*) from closure_new_persons").fetchall()[0][0] == 0:
             break
-        con.execute(f"insert into {persons_table} select person_key from closure_new_persons")
+        con.execute(
+            f"insert into {checked_name(persons_table)} select person_key from closure_new_persons"
+        )
     con.execute("drop table closure_new_persons")
-    size = con.execute(f"select count(*) from {found}").fetchall()[0][0]
+    size = con.execute(f"select count(*) from {checked_name(found)}").fetchall()[0][0]
     if not versions_table:
         con.execute("drop table closure_versions")
     return size

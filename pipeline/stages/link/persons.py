@@ -23,7 +23,7 @@ from pipeline.warehouse.sql import (
     replace_period_rows,
     swap_period_rows,
 )
-from pipeline.warehouse.sql_files import sql_path
+from pipeline.warehouse.sql_files import checked_name, sql_path
 
 
 def write_trajectory_rules(con: duckdb.DuckDBPyConnection, settings: Settings) -> None:
@@ -31,6 +31,18 @@ def write_trajectory_rules(con: duckdb.DuckDBPyConnection, settings: Settings) -
         con,
         trajectory_rules(settings),
         "create or replace table reference.trajectory_rules as select * from _frame",
+    )
+
+
+def write_known_as_of(con: duckdb.DuckDBPyConnection, period: Period) -> None:
+    """``reference.known_as_of``: the period whose end the views ``results_known`` and
+    ``measures_known`` read (a view holds no bound parameters; the date goes in here as one).
+    """
+    con.execute("create schema if not exists reference")
+    con.execute(
+        "create or replace table reference.known_as_of as select ?::varchar as period, "
+        "?::date as period_end",
+        [period.label, period.end],
     )
 
 
@@ -47,11 +59,12 @@ def build_known_at_period_end(con: duckdb.DuckDBPyConnection, period: Period) ->
     ).fetchall()[0][0]
     drop_relation(con, "results_known")
     if later == 0:
-        # the same rows as sql/derived/results_known.sql gives in this case, as a view
-        # (no copy); the date is a datetime.date, written as an ISO literal
+        # the same rows as sql/derived/results_known.sql gives in this case, as a view (no
+        # copy); a view holds no parameters, so it reads the date from reference.known_as_of
+        write_known_as_of(con, period)
         con.execute(
-            "create view results_known as select * from result_versions "
-            f"where outcome = 'accepted' and collected_date <= date '{period.end.isoformat()}'"
+            "create view results_known as select * from result_versions where outcome = 'accepted' "
+            "and collected_date <= (select period_end from reference.known_as_of)"
         )
         return True
     con.execute("create or replace temp view versions_in_scope as select * from result_versions")
@@ -84,9 +97,10 @@ def build_person_tables(
     params = event_params(settings, period)
     drop_relation(con, "measures_known")
     if as_stored:
+        write_known_as_of(con, period)
         con.execute(
             "create view measures_known as select * from kidney_measures "
-            f"where collected_date <= date '{period.end.isoformat()}'"
+            "where collected_date <= (select period_end from reference.known_as_of)"
         )
     else:
         results = fetch_frame(
@@ -221,21 +235,23 @@ def carry_over(
     scratch = duckdb.connect(":memory:")
     try:
         for schema in ("staging", "reference"):
-            scratch.execute(f"create schema {schema}")
+            scratch.execute(f"create schema {checked_name(schema)}")
         tables = [f"reference.{t}" for (t,) in con.execute(
             "select table_name from duckdb_tables() where schema_name = 'reference' order by table_name"
         ).fetchall()]  # fmt: skip
         for table in tables:
-            _copy_into(scratch, table, con.sql(f"select * from {table}").to_arrow_table())
+            _copy_into(
+                scratch, table, con.sql(f"select * from {checked_name(table)}").to_arrow_table()
+            )
         for table in ("results_known", "measures_known"):
             rows = con.sql(
-                f"select * from {table} semi join link_persons using (person_key)"
+                f"select * from {checked_name(table)} semi join link_persons using (person_key)"
             ).to_arrow_table()
             _copy_into(scratch, table, rows)
         build_table(scratch, "daily_values_averaged", params=params)
         build_table(scratch, "kidney_events", params=params)
         build_table(scratch, "person_status", params=params)
-        fresh = {t: scratch.sql(f"select * from {t}").to_arrow_table()
+        fresh = {t: scratch.sql(f"select * from {checked_name(t)}").to_arrow_table()
                  for t in ("daily_values_averaged", "kidney_events", "person_status")}  # fmt: skip
     finally:
         scratch.close()
@@ -269,11 +285,11 @@ def carry_over(
 
 
 def _insert_arrow(con: duckdb.DuckDBPyConnection, table: str, rows: object) -> None:
-    with_frame(con, rows, f"insert into {table} by name select * from _frame")
+    with_frame(con, rows, f"insert into {checked_name(table)} by name select * from _frame")
 
 
 def _copy_into(con: duckdb.DuckDBPyConnection, table: str, rows: object) -> None:
-    with_frame(con, rows, f"create table {table} as select * from _frame")
+    with_frame(con, rows, f"create table {checked_name(table)} as select * from _frame")
 
 
 def record_snapshot(

@@ -24,6 +24,7 @@ import polars as pl
 
 from pipeline.core.periods import Period
 from pipeline.core.settings import Settings, load_settings
+from pipeline.warehouse.sql_files import checked_name
 
 #: Tables a shard reads from the main warehouse (besides its own results).
 REFERENCE_TABLES = ("gfr_categories", "gfr_categories_ordered", "kdigo_risk", "age_bands",
@@ -32,11 +33,11 @@ REFERENCE_TABLES = ("gfr_categories", "gfr_categories_ordered", "kdigo_risk", "a
 SHARD_OUTPUTS = ("measures_known", "daily_values_averaged", "kidney_events", "person_status")
 
 
-def shard_expression(shards: int) -> str:
-    """SQL giving a person's shard: the person key is hex (HMAC-SHA256), so its first 8 hex
+def shard_expression() -> str:
+    """SQL giving a person's shard (of ``$shards``, a bound parameter): the person key is hex (HMAC-SHA256), so its first 8 hex
     digits are uniformly spread.
     """
-    return f"(('0x' || substr(person_key, 1, 8))::ubigint % {int(shards)})"
+    return "(('0x' || substr(person_key, 1, 8))::ubigint % $shards)"
 
 
 def export_shard_inputs(con: duckdb.DuckDBPyConnection, work: Path, shards: int) -> list[Path]:
@@ -45,15 +46,17 @@ def export_shard_inputs(con: duckdb.DuckDBPyConnection, work: Path, shards: int)
     (work / "reference").mkdir(parents=True)
     for table in REFERENCE_TABLES:
         con.execute(
-            f"copy reference.{table} to {_literal(work / 'reference' / (table + '.parquet'))} (format parquet)"
+            f"copy reference.{checked_name(table)} to $path (format parquet)",
+            {"path": str(work / "reference" / (table + ".parquet"))},
         )
     folders = []
     for shard in range(shards):
         folder = work / f"shard_{shard:03d}"
         folder.mkdir()
         con.execute(
-            f"copy (select * from results_known where {shard_expression(shards)} = {shard}) "
-            f"to {_literal(folder / 'results_known.parquet')} (format parquet)"
+            f"copy (select * from results_known where {shard_expression()} = $shard) "
+            "to $path (format parquet)",
+            {"shards": shards, "shard": shard, "path": str(folder / "results_known.parquet")},
         )
         folders.append(folder)
     return folders
@@ -73,19 +76,21 @@ def run_shard(folder: str, config_dir: str, period_label: str) -> str:
     con = duckdb.connect(":memory:")
     try:
         for schema in ("staging", "reference"):
-            con.execute(f"create schema {schema}")
+            con.execute(f"create schema {checked_name(schema)}")
         for path in sorted((folder_path.parent / "reference").glob("*.parquet")):
             con.execute(
-                f"create table reference.{path.stem} as select * from read_parquet({_literal(path)})"
+                f"create table reference.{checked_name(path.stem)} as select * from read_parquet(?)",
+                [str(path)],
             )
         con.execute(
-            "create table results_known as select * from "
-            f"read_parquet({_literal(folder_path / 'results_known.parquet')})"
+            "create table results_known as select * from read_parquet(?)",
+            [str(folder_path / "results_known.parquet")],
         )
         build_person_tables(con, settings, period, sharded=True)
         for table in SHARD_OUTPUTS:
             con.execute(
-                f"copy (select * from {table}) to {_literal(folder_path / (table + '.out.parquet'))} (format parquet)"
+                f"copy (select * from {checked_name(table)}) to ? (format parquet)",
+                [str(folder_path / (table + ".out.parquet"))],
             )
     finally:
         con.close()
@@ -117,7 +122,3 @@ def load_shard_outputs(folders: list[str], table: str) -> pl.DataFrame:
     """One output table of every shard, put back together."""
     frames = [pl.read_parquet(Path(f) / f"{table}.out.parquet") for f in folders]
     return pl.concat(frames, how="vertical_relaxed")
-
-
-def _literal(path: Path) -> str:
-    return "'" + str(path).replace("'", "''") + "'"

@@ -24,6 +24,7 @@ from pipeline.warehouse.connection import drop_relation, with_frame
 from pipeline.warehouse.sql import (
     replace_period_frame,
 )
+from pipeline.warehouse.sql_files import checked_name
 
 #: Row order of the person-level tables (as their SQL orders them), for putting shards together.
 PERSON_TABLE_ORDER = {
@@ -48,7 +49,7 @@ def build_person_tables_sharded(
             replace_period_frame(con, table, period.label, frame)
         else:
             drop_relation(con, table)
-            with_frame(con, frame, f"create table {table} as select * from _frame")
+            with_frame(con, frame, f"create table {checked_name(table)} as select * from _frame")
     shutil.rmtree(work, ignore_errors=True)
     return len(done)
 
