@@ -11,6 +11,7 @@ import csv
 import hashlib
 import json
 import re
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any, Literal
 
@@ -503,20 +504,101 @@ class Settings(BaseModel):
         raise ConfigError(f"unknown source {source_id!r}; configured sources: {known}")
 
 
+#: What a config value must be, in our words, per kind of validation failure (the kinds are the
+#: validation library's error ``type``s; its own wording never reaches a message).
+_MUST_BE = {
+    "int_type": "must be a whole number",
+    "int_parsing": "must be a whole number",
+    "int_from_float": "must be a whole number",
+    "float_type": "must be a number",
+    "float_parsing": "must be a number",
+    "finite_number": "must be a finite number",
+    "bool_type": "must be true or false",
+    "bool_parsing": "must be true or false",
+    "string_type": "must be text",
+    "list_type": "must be a list",
+    "tuple_type": "must be a list",
+    "set_type": "must be a list",
+    "dict_type": "must be a mapping of keys to values",
+    "model_type": "must be a mapping of keys to values",
+    "model_attributes_type": "must be a mapping of keys to values",
+    "date_type": "must be a date (YYYY-MM-DD)",
+    "date_parsing": "must be a date (YYYY-MM-DD)",
+    "date_from_datetime_parsing": "must be a date (YYYY-MM-DD)",
+}
+#: Bounds: the error kind, the key of its limit, and how the limit reads.
+_BOUNDS = {
+    "greater_than": ("gt", "must be greater than {}"),
+    "greater_than_equal": ("ge", "must be at least {}"),
+    "less_than": ("lt", "must be less than {}"),
+    "less_than_equal": ("le", "must be at most {}"),
+    "multiple_of": ("multiple_of", "must be a multiple of {}"),
+    "string_too_short": ("min_length", "must be at least {} characters long"),
+    "string_too_long": ("max_length", "must be at most {} characters long"),
+    "too_short": ("min_length", "must have at least {} entries"),
+    "too_long": ("max_length", "must have at most {} entries"),
+}
+#: Parts of an error's location that name a branch of a type (``int``, ``list[str]``,
+#: ``function-after[...]``), not a key of the file.
+_TYPE_TAG = re.compile(r"^(?:[a-z]+(?:-[a-z]+)*\[.*\]|str|int|float|bool|none|list|dict)$")
+
+
+def _shown(value: Any) -> str:
+    """A config value as a reader of the YAML file would recognise it."""
+    if value is None:
+        return "an empty value"
+    if isinstance(value, bool):
+        return "true" if value else "false"
+    if isinstance(value, dict):
+        return "a mapping"
+    if isinstance(value, list | tuple):
+        return "a list"
+    return repr(value)
+
+
+def _reason(item: Mapping[str, Any]) -> str:
+    """One validation failure as a sentence of our own (never the library's message)."""
+    kind, ctx = item.get("type", ""), item.get("ctx") or {}
+    got = f", got {_shown(item['input'])}" if "input" in item else ""
+    if kind == "missing":
+        return "required key is missing"
+    if kind == "extra_forbidden":
+        return "unknown key (check its spelling against DEVELOPERS.md)"
+    if kind in ("value_error", "assertion_error"):
+        # our own validators' words: the message of the exception they raised
+        error = ctx.get("error")
+        text = str(error) if error is not None else ""
+        return text or f"has a value that is not accepted here{got}"
+    if kind in _MUST_BE:
+        return _MUST_BE[kind] + got
+    if kind in ("literal_error", "enum"):
+        return f"must be {ctx.get('expected', 'one of the listed values')}{got}"
+    if kind in _BOUNDS:
+        limit, words = _BOUNDS[kind]
+        value = ctx.get(limit, "the limit")
+        return words.format(f"{value:g}" if isinstance(value, float) else value) + got
+    if kind == "string_pattern_mismatch":
+        return f"does not have the expected form (pattern {ctx.get('pattern', '?')}){got}"
+    return f"has a value that is not accepted here{got}"
+
+
+def _key(loc: Sequence[Any]) -> str:
+    """An error's location as the key path of the file: ``summaries.age_bands[2]``."""
+    key = ""
+    for part in loc:
+        if isinstance(part, int):
+            key += f"[{part}]"
+        elif not _TYPE_TAG.match(str(part)):
+            key += ("." if key else "") + str(part)
+    return key or "(top level)"
+
+
 def _describe_errors(path: Path, error: ValidationError) -> str:
-    lines = []
-    for item in error.errors():
-        key = ".".join(str(p) for p in item["loc"]) or "(top level)"
-        kind = item["type"]
-        if kind == "extra_forbidden":
-            reason = "unknown key (check its spelling against DEVELOPERS.md)"
-        elif kind == "missing":
-            reason = "required key is missing"
-        else:
-            reason = item["msg"]
-            if "input" in item and not isinstance(item["input"], dict | list):
-                reason += f" (got {item['input']!r})"
-        lines.append(f"{path}: key '{key}': {reason}")
+    lines: list[str] = []
+    for item in error.errors(include_url=False):
+        line = f"{path}: key '{_key(item['loc'])}': {_reason(item)}"
+        if line not in lines:
+            lines.append(line)
     return "\n".join(lines)
 
 

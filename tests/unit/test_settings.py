@@ -3,6 +3,7 @@ ConfigError naming the file and the key, never a Python traceback."""
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import pytest
@@ -222,3 +223,153 @@ def test_clinical_rule_settings_are_checked(small_config: Path):
     edit_pipeline_yaml(small_config, "trajectories", "ckd_acr_at_or_above_mg_g", 25)
     message = config_error(small_config)
     assert "ckd_acr_at_or_above_mg_g" in message and "A2" in message
+
+
+# --------------------------------------------------------------------------- our own words
+# A config error is read by whoever edits the YAML file: it names the file and the key and says
+# what the value must be in plain words. The validation library's own wording (its messages,
+# error codes and help links) never reaches the message.
+
+LIBRARY_WORDING = (
+    "Field required",
+    "Input should be",
+    "Extra inputs are not permitted",
+    "value_error",
+    "Value error",
+    "type=",
+    "errors.pydantic.dev",
+    "For further information",
+    "validation error for",
+    "valid integer",
+    "valid number",
+    "valid boolean",
+    "valid string",
+    "valid list",
+    "valid dictionary",
+    "String should",
+    "pydantic",
+)
+
+
+def our_words(message: str) -> str:
+    words = re.sub(
+        r"\S*/", "", message
+    ).lower()  # folders left out (a test's tmp folder is named after it)
+    for phrase in LIBRARY_WORDING:
+        assert phrase.lower() not in words, (phrase, message)
+    return message
+
+
+PIPELINE_CASES = [
+    # (section, key, value, what the message says), one per kind of mistake
+    ("disclosure", "suppress_max", "ten", "must be a whole number, got 'ten'"),
+    ("disclosure", "suppress_max", 2.5, "must be a whole number, got 2.5"),
+    ("quality_gate", "max_rejection_rate", "five percent", "must be a number, got 'five percent'"),
+    ("measures", "diabetes_rule", "twice", "must be 'confirmed' or 'single', got 'twice'"),
+    ("trajectories", "decline_min_span_days", 0, "must be greater than 0, got 0"),
+    ("measures", "min_age_years", -1, "must be at least 0, got -1"),
+    ("trajectories", "progression_decline", 1.5, "must be less than 1, got 1.5"),
+    ("summaries", "window_months", 61, "must be at most 60, got 61"),
+    ("measures", "use_height_for_children", "maybe", "must be true or false, got 'maybe'"),
+    ("trajectories", "decline_thresholds", 0.3, "must be a list, got 0.3"),
+    ("trajectories", "decline_thresholds", [0.3, "forty"], "must be a number, got 'forty'"),
+    ("measures", "diabetes_rule", None, "got an empty value"),
+    ("demo", "period", "October", "does not have the expected form"),
+]
+
+
+@pytest.mark.parametrize(
+    ("section", "key", "value", "says"),
+    PIPELINE_CASES,
+    ids=[f"{c[1]}={c[2]!r}" for c in PIPELINE_CASES],
+)
+def test_pipeline_value_errors_in_our_words(small_config: Path, section, key, value, says):
+    from tests.conftest import edit_pipeline_yaml
+
+    edit_pipeline_yaml(small_config, section, key, value)
+    message = our_words(config_error(small_config))
+    path = small_config / "pipeline.yaml"
+    where = f"{section}.{key}" + ("[1]" if isinstance(value, list) else "")
+    assert message.startswith(f"{path}: key '{where}': "), message
+    assert says in message
+
+
+def test_our_own_validator_keeps_its_message(small_config: Path):
+    from tests.conftest import edit_pipeline_yaml
+
+    # KDIGO 2012: the CKD-by-albuminuria rule follows the A2 category (30 mg/g)
+    edit_pipeline_yaml(small_config, "trajectories", "ckd_acr_at_or_above_mg_g", 25)
+    message = our_words(config_error(small_config))
+    assert message.startswith(
+        f"{small_config / 'pipeline.yaml'}: key 'trajectories.ckd_acr_at_or_above_mg_g': "
+    )
+    assert "A2" in message
+
+
+SOURCE_CASES = [
+    ("missing", {k: v for k, v in STANDARD.items() if k != "layout"}, "layout", "required key is missing"),
+    ("unknown", {**STANDARD, "delimeter": ";"}, "delimeter", "unknown key"),
+    ("text", {**STANDARD, "date_format": 5}, "date_format", "must be text, got 5"),
+    ("mapping", {**STANDARD, "test_codes": ["2160-0"]}, "test_codes", "must be a mapping of keys to values, got a list"),
+    ("choice", {**STANDARD, "layout": "xml"}, "layout", "must be 'standard', 'delimited', 'fhir_ndjson' or 'parquet', got 'xml'"),
+]  # fmt: skip
+
+
+@pytest.mark.parametrize(
+    ("name", "data", "key", "says"), SOURCE_CASES, ids=[c[0] for c in SOURCE_CASES]
+)
+def test_source_errors_in_our_words(small_config: Path, name, data, key, says):
+    path = write_source(small_config, "test_standard_lab", data)
+    message = our_words(config_error(small_config))
+    assert message.startswith(f"{path}: key '{key}': "), message
+    assert says in message
+
+
+def test_a_kind_we_do_not_translate_gets_a_neutral_sentence():
+    """Any other kind of failure: a plain sentence with the value, not the library's message."""
+    from decimal import Decimal
+
+    from pydantic import BaseModel, ValidationError
+
+    from pipeline.core.settings import _describe_errors
+
+    class Other(BaseModel):
+        amount: Decimal  # a kind no config key has (decimal_parsing)
+
+    with pytest.raises(ValidationError) as info:
+        Other.model_validate({"amount": "lots"})
+    assert info.value.errors()[0]["type"] == "decimal_parsing"
+    message = our_words(_describe_errors(Path("config/other.yaml"), info.value))
+    assert (
+        message
+        == "config/other.yaml: key 'amount': has a value that is not accepted here, got 'lots'"
+    )
+
+
+def test_yaml_syntax_error_names_file_and_line(small_config: Path):
+    text = "id: test_standard_lab\nlayout: standard\nfolder: a: b\n"  # line 3: a second colon
+    path = write_source(small_config, "test_standard_lab", text)
+    message = our_words(config_error(small_config))
+    assert message.startswith(f"{path}: line 3 not valid YAML"), message
+
+
+@pytest.mark.parametrize("command", ["run", "sources check"])
+def test_cli_prints_our_message_and_exits_2(small_config: Path, tmp_path: Path, command):
+    from typer.testing import CliRunner
+
+    from pipeline.cli import app
+    from tests.conftest import edit_pipeline_yaml
+
+    edit_pipeline_yaml(small_config, "disclosure", "suppress_max", "ten")
+    extract = tmp_path / "results_2026-10.csv"
+    extract.write_text("person_token\n", encoding="utf-8")
+    args = {
+        "run": ["run", "--period", "2026-10"],
+        "sources check": ["sources", "check", "westerfold_general_lab", str(extract)],
+    }[command]
+    result = CliRunner().invoke(app, [*args, "--config", str(small_config)])
+    assert result.exit_code == 2, result.output
+    output = our_words(result.output)
+    assert "pipeline.yaml" in output and "disclosure.suppress_max" in output
+    assert "must be a whole number, got 'ten'" in output
+    assert "Traceback" not in output
