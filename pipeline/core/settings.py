@@ -565,10 +565,14 @@ def _reason(item: Mapping[str, Any]) -> str:
     if kind == "extra_forbidden":
         return "unknown key (check its spelling against DEVELOPERS.md)"
     if kind in ("value_error", "assertion_error"):
-        # our own validators' words: the message of the exception they raised
+        # our own validators' words: the message of the exception they raised, and the value as
+        # these messages have always shown it
         error = ctx.get("error")
         text = str(error) if error is not None else ""
-        return text or f"has a value that is not accepted here{got}"
+        if not text:
+            return f"has a value that is not accepted here{got}"
+        value = item.get("input")
+        return text + ("" if isinstance(value, dict | list) else f" (got {value!r})")
     if kind in _MUST_BE:
         return _MUST_BE[kind] + got
     if kind in ("literal_error", "enum"):
