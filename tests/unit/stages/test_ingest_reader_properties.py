@@ -30,7 +30,7 @@ from hypothesis import strategies as st
 from pipeline.core.settings import Settings, load_settings
 from pipeline.stages.ingest import FileFault, InboxFile, read_inbox_file, sha256_of
 from tests.conftest import make_small_config, rows, run_month, write_inbox
-from tests.unit.test_reader_paths import compare_paths
+from tests.unit.stages.test_ingest_reader_paths import compare_paths
 
 LAB = "westerfold_general_lab"
 FHIR = "fallowmere_reference_lab"

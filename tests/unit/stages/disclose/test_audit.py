@@ -28,7 +28,13 @@ from pipeline.stages.disclose.audit import MARK, AuditTable, _changes, rate_spli
 from pipeline.stages.disclose.suppression import audit_frames, disclose_stage, suppress_tables
 from pipeline.warehouse.catalog import PUBLISHED_TABLES
 from tests.conftest import rows, run_month, write_inbox
-from tests.unit.test_disclosure import AXES, G3_G5, people, person_frames, sum_groups
+from tests.unit.stages.disclose.test_suppression import (
+    AXES,
+    G3_G5,
+    people,
+    person_frames,
+    sum_groups,
+)
 
 RULES = DisclosureSettings()  # 1..10, protection width 10 (config/pipeline.yaml)
 TABLES = {t.name: t for t in PUBLISHED_TABLES}
