@@ -25,10 +25,20 @@ if str(ROOT) not in sys.path:  # the project is importable from the repo root
 
 #: Hypothesis profiles (select one with HYPOTHESIS_PROFILE; the default is "dev"). Both turn the
 #: deadline off: a two-core machine shared with other work makes one example's time meaningless.
-#: Tests that name their own ``max_examples`` keep it; "ci" caps the others at 50 examples.
+#: Tests that name their own ``max_examples`` keep it (the slowest name theirs through
+#: :func:`examples`); "ci" caps the others at 50 examples.
 hypothesis_settings.register_profile("dev", deadline=None)
-hypothesis_settings.register_profile("ci", max_examples=50, deadline=None, derandomize=True)
-hypothesis_settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "dev"))
+hypothesis_settings.register_profile("ci", max_examples=50, deadline=None)
+PROFILE = os.environ.get("HYPOTHESIS_PROFILE", "dev")
+hypothesis_settings.load_profile(PROFILE)
+
+
+def examples(full: int, ci: int) -> int:
+    """The example count of one of the slowest properties: ``full`` under the dev profile,
+    ``ci`` under the ci profile (``make test``, CI: the suite's time, with new examples each run
+    since nothing is derandomised)."""
+    return ci if PROFILE == "ci" else full
+
 
 #: A call that runs a whole month (or months): such a test is ``slow`` wherever it lives.
 _WHOLE_MONTH = re.compile(r"\b(?:run_month|run_month_plain|monthly_flow|backfill_flow)\(")
@@ -133,6 +143,29 @@ def make_small_config(target: Path, max_rejection_rate: float = 1.0) -> Path:
 def small_config(tmp_path: Path) -> Path:
     """A copy of config/ with a four-district region and the quality gate off (rate 1.0)."""
     return make_small_config(tmp_path / "config")
+
+
+#: The months of the shipped samples that the shared sample warehouse holds.
+SAMPLE_PERIODS = ("2026-09", "2026-10")
+
+
+@pytest.fixture(scope="session")
+def sample_warehouse(tmp_path_factory) -> Path:
+    """The shipped samples run for two months (SAMPLE_PERIODS) into one warehouse, once per
+    session, with the shipped config (Great Expectations off: its suites are tested elsewhere
+    and cost seconds). Read-only for every test that uses it: open it ``read_only=True``, or
+    copy what a test changes."""
+    from pipeline.run.flows import run_month_plain
+
+    base = tmp_path_factory.mktemp("samples")
+    config = base / "config"
+    shutil.copytree(CONFIG_DIR, config)
+    edit_pipeline_yaml(config, "quality_gate", "great_expectations", False)
+    for period in SAMPLE_PERIODS:
+        run_month_plain(
+            period, str(config), str(ROOT / "sample_extracts"), str(base / "out"), demo=True
+        )
+    return base / "out" / "surveillance.duckdb"
 
 
 def write_inbox(tmp_path: Path, files: dict[str, str | bytes], name: str = "inbox") -> Path:

@@ -16,7 +16,6 @@ from __future__ import annotations
 
 import os
 import re
-import shutil
 import subprocess
 import sys
 from html.parser import HTMLParser
@@ -32,8 +31,7 @@ from pipeline.report.page import (
     headline_text,
     write_report,
 )
-from pipeline.run.flows import run_month_plain
-from tests.conftest import CONFIG_DIR, ROOT, edit_pipeline_yaml, rows
+from tests.conftest import ROOT, SAMPLE_PERIODS, rows
 
 PERIODS = ("2026-09", "2026-10")
 PERIOD = PERIODS[-1]
@@ -62,18 +60,11 @@ COUNTS = {
 
 
 @pytest.fixture(scope="module")
-def warehouse(tmp_path_factory) -> Path:
-    """The shipped samples run for two months into one warehouse (Great Expectations off: its
-    suites are tested elsewhere and cost seconds)."""
-    base = tmp_path_factory.mktemp("report")
-    config = base / "config"
-    shutil.copytree(CONFIG_DIR, config)
-    edit_pipeline_yaml(config, "quality_gate", "great_expectations", False)
-    for period in PERIODS:
-        run_month_plain(
-            period, str(config), str(ROOT / "sample_extracts"), str(base / "out"), demo=True
-        )
-    return base / "out" / "surveillance.duckdb"
+def warehouse(sample_warehouse) -> Path:
+    """The shipped samples run for two months into one warehouse, shared by the session
+    (tests/conftest.py, ``sample_warehouse``: PERIODS, Great Expectations off); read-only."""
+    assert PERIODS == SAMPLE_PERIODS
+    return sample_warehouse
 
 
 @pytest.fixture(scope="module")

@@ -29,7 +29,7 @@ from pipeline.stages.disclose.suppression import (
     suppress_tables,
 )
 from pipeline.warehouse.catalog import PUBLISHED_TABLES
-from tests.conftest import rows, run_month, write_inbox
+from tests.conftest import examples, rows, run_month, write_inbox
 
 # No example database: the run must not write into the working tree.
 SETTINGS = settings(max_examples=200, deadline=None, database=None)
@@ -785,7 +785,7 @@ def check_categories(
     assert jointly_pinned(prev, cat) == []
 
 
-@settings(max_examples=25, deadline=None, database=None)
+@settings(max_examples=examples(25, 10), deadline=None, database=None)
 @given(people())
 def test_property_categories_published_safely(persons):
     prevalence, categories = person_frames(persons)
