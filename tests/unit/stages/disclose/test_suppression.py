@@ -989,7 +989,7 @@ def pinned_with_rates(frame: pl.DataFrame, out: pl.DataFrame) -> list[int]:
     return _pinned_by_linprog(unknown, a_eq, b_eq, bounds)
 
 
-@settings(max_examples=40, deadline=None, database=None)
+@settings(max_examples=examples(40, 15), deadline=None, database=None)
 @given(st.one_of(prevalence_cells(st.integers(0, 14)), prevalence_cells()))
 def test_property_published_standardised_rates_give_no_blank_away(cells):
     frame = with_standardised(table_frame(PREVALENCE, cells))
