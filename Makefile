@@ -33,7 +33,7 @@ lint: setup
 test: setup
 	$(BIN)/python -m pytest -q
 
-# without the tests marked slow (whole months, flows, killed processes): about a minute
+# without the tests marked slow (whole months, flows, killed processes): under two minutes
 test-fast: setup
 	$(BIN)/python -m pytest -q -m "not slow"
 
