@@ -9,6 +9,9 @@ export PREFECT_HOME := $(CURDIR)/.prefect
 export PREFECT_SERVER_EPHEMERAL_STARTUP_TIMEOUT_SECONDS := 180
 export PREFECT_SERVER_ANALYTICS_ENABLED := false
 export PREFECT_LOGGING_LEVEL := WARNING
+# Hypothesis profile of make test / test-fast (tests/conftest.py): "ci" runs the slowest property
+# tests with fewer examples; plain pytest uses "dev" (their full counts)
+export HYPOTHESIS_PROFILE ?= ci
 
 .PHONY: setup demo lint test test-fast bench samples clean
 
@@ -30,6 +33,7 @@ lint: setup
 test: setup
 	$(BIN)/python -m pytest -q
 
+# without the tests marked slow (whole months, flows, killed processes): under two minutes
 test-fast: setup
 	$(BIN)/python -m pytest -q -m "not slow"
 

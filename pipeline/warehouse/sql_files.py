@@ -8,7 +8,8 @@ from pathlib import Path
 SQL_DIR = Path(__file__).resolve().parents[2] / "sql"
 
 
-_NAME = re.compile(r"^[a-z][a-z0-9_]{0,62}$")
+#: A plain lower-case identifier; ``\Z``, not ``$``: ``$`` also matches before a final newline.
+_NAME = re.compile(r"^[a-z][a-z0-9_]{0,62}\Z")
 
 
 def sql_path(name: str) -> Path:

@@ -34,8 +34,6 @@ import duckdb
 import pytest
 
 from pipeline.report.page import write_report
-from pipeline.run.flows import run_month_plain
-from tests.conftest import CONFIG_DIR, ROOT, edit_pipeline_yaml
 
 pytestmark = pytest.mark.slow
 
@@ -274,16 +272,12 @@ def near(
 
 
 @pytest.fixture(scope="module")
-def report(tmp_path_factory) -> Path:
-    """The report of the shipped samples' latest month (Great Expectations off: not under test)."""
+def report(sample_warehouse, tmp_path_factory) -> Path:
+    """The report of the shipped samples' latest month, from the session's sample warehouse
+    (tests/conftest.py; Great Expectations off: not under test)."""
     base = tmp_path_factory.mktemp("browser")
-    config = base / "config"
-    shutil.copytree(CONFIG_DIR, config)
-    edit_pipeline_yaml(config, "quality_gate", "great_expectations", False)
-    run_month_plain(
-        PERIOD, str(config), str(ROOT / "sample_extracts"), str(base / "out"), demo=True
-    )
-    with duckdb.connect(str(base / "out" / "surveillance.duckdb"), read_only=True) as con:
+    (base / "out").symlink_to(sample_warehouse.parent)  # report.parent / "out": the warehouse
+    with duckdb.connect(str(sample_warehouse), read_only=True) as con:
         return write_report(con, PERIOD, base / "report.html")
 
 

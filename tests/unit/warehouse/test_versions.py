@@ -20,6 +20,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipeline.warehouse.sql_files import read_sql
+from tests.conftest import examples
 
 ACCEPTED = ("final", "amended", "corrected")
 WITHDRAWN = ("cancelled", "entered-in-error")
@@ -148,7 +149,9 @@ def test_all_collide_variant_does_replace_the_hashes():
     assert SQL.count("hash(") == 3 and ALL_COLLIDE.count("0::ubigint * hash(") == 3
 
 
-@settings(max_examples=100, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+@settings(
+    max_examples=examples(100, 40), deadline=None, suppress_health_check=[HealthCheck.too_slow]
+)
 @given(st.lists(version, min_size=1, max_size=14))
 def test_outcomes_follow_the_rules(draws):
     rows = as_rows(draws)

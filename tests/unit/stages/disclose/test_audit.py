@@ -27,15 +27,21 @@ from pipeline.core.statistics import collapse_weights
 from pipeline.stages.disclose.audit import MARK, AuditTable, _changes, rate_splits
 from pipeline.stages.disclose.suppression import audit_frames, disclose_stage, suppress_tables
 from pipeline.warehouse.catalog import PUBLISHED_TABLES
-from tests.conftest import rows, run_month, write_inbox
-from tests.unit.test_disclosure import AXES, G3_G5, people, person_frames, sum_groups
+from tests.conftest import examples, rows, run_month, write_inbox
+from tests.unit.stages.disclose.test_suppression import (
+    AXES,
+    G3_G5,
+    people,
+    person_frames,
+    sum_groups,
+)
 
 RULES = DisclosureSettings()  # 1..10, protection width 10 (config/pipeline.yaml)
 TABLES = {t.name: t for t in PUBLISHED_TABLES}
 PREVALENCE = TABLES["district_ckd_prevalence"]
 COUNTS = ("persons_tested", "persons_ckd", "persons_ckd_g3_g5")
 ORDER = (("persons_ckd_g3_g5", "persons_ckd"), ("persons_ckd", "persons_tested"))
-PROPERTY = settings(max_examples=25, deadline=None, database=None)
+PROPERTY = settings(max_examples=examples(25, 10), deadline=None, database=None)
 
 
 def prevalence(cells: dict[tuple[str, str, str], tuple[int, int, int]]) -> pl.DataFrame:
@@ -438,7 +444,7 @@ def joint_exposed(
     return bad
 
 
-@settings(max_examples=15, deadline=None, database=None)
+@settings(max_examples=examples(15, 6), deadline=None, database=None)
 @given(people())
 def test_prevalence_and_categories_read_together_give_no_blank_away(persons):
     prevalence_in, categories_in = person_frames(persons)

@@ -29,7 +29,7 @@ from pipeline.stages.disclose.suppression import (
     suppress_tables,
 )
 from pipeline.warehouse.catalog import PUBLISHED_TABLES
-from tests.conftest import rows, run_month, write_inbox
+from tests.conftest import examples, rows, run_month, write_inbox
 
 # No example database: the run must not write into the working tree.
 SETTINGS = settings(max_examples=200, deadline=None, database=None)
@@ -785,7 +785,7 @@ def check_categories(
     assert jointly_pinned(prev, cat) == []
 
 
-@settings(max_examples=25, deadline=None, database=None)
+@settings(max_examples=examples(25, 10), deadline=None, database=None)
 @given(people())
 def test_property_categories_published_safely(persons):
     prevalence, categories = person_frames(persons)
@@ -989,7 +989,7 @@ def pinned_with_rates(frame: pl.DataFrame, out: pl.DataFrame) -> list[int]:
     return _pinned_by_linprog(unknown, a_eq, b_eq, bounds)
 
 
-@settings(max_examples=40, deadline=None, database=None)
+@settings(max_examples=examples(40, 15), deadline=None, database=None)
 @given(st.one_of(prevalence_cells(st.integers(0, 14)), prevalence_cells()))
 def test_property_published_standardised_rates_give_no_blank_away(cells):
     frame = with_standardised(table_frame(PREVALENCE, cells))

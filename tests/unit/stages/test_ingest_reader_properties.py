@@ -29,8 +29,8 @@ from hypothesis import strategies as st
 
 from pipeline.core.settings import Settings, load_settings
 from pipeline.stages.ingest import FileFault, InboxFile, read_inbox_file, sha256_of
-from tests.conftest import make_small_config, rows, run_month, write_inbox
-from tests.unit.test_reader_paths import compare_paths
+from tests.conftest import examples, make_small_config, rows, run_month, write_inbox
+from tests.unit.stages.test_ingest_reader_paths import compare_paths
 
 LAB = "westerfold_general_lab"
 FHIR = "fallowmere_reference_lab"
@@ -50,7 +50,7 @@ pytestmark = pytest.mark.filterwarnings("ignore:Do not use the `random` module i
 
 FAST = settings(max_examples=150, deadline=None, database=None,
                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])  # fmt: skip
-SLOW = settings(max_examples=25, deadline=None, database=None,
+SLOW = settings(max_examples=examples(25, 10), deadline=None, database=None,
                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])  # fmt: skip
 
 
@@ -355,7 +355,7 @@ def test_ragged_files_land_the_same_rows_through_either_reader(
     )
 
 
-@FAST
+@settings(FAST, max_examples=examples(150, 50))
 @given(generated=generated_file())
 def test_generated_files_land_the_same_rows_through_either_reader(
     small_settings, workdir, generated

@@ -186,10 +186,24 @@ def test_dipstick_gives_an_estimated_category_only(reading, category):
     assert row["is_acr_estimated"] is True and row["acr_mg_g"] is None
 
 
-def test_protein_ratio_gives_a_flagged_estimate():
-    row = one(measures(result(1, "pcr", 500.0)), 1)
+@pytest.mark.parametrize(
+    ("pcr", "acr", "category"),
+    [
+        # Sumida et al., Ann Intern Med 2020;173:426, crude PCR-to-ACR equation (from memory):
+        # ln ACR = 5.3920 + 0.3072 ln(min(PCR/50, 1)) + 1.5793 ln(max(min(PCR/500, 1), 0.1))
+        #          + 1.1266 ln(max(PCR/500, 1)), PCR and ACR in mg/g; worked by hand (the same
+        #          values as test_acr_from_pcr_sumida_hand_calculations_from_memory). Categories:
+        # KDIGO 2012 (Kidney Int Suppl 2013;3:1): ACR < 30 A1, 30-300 A2, > 300 mg/g A3.
+        (150.0, 32.8045, "A2"),  # PCR at the KDIGO A1/A2 protein boundary
+        (500.0, 219.6422, "A2"),  # the upper knot: exp(5.3920)
+        (1000.0, 479.5747, "A3"),
+    ],
+)
+def test_protein_ratio_gives_a_flagged_estimate(pcr, acr, category):
+    row = one(measures(result(1, "pcr", pcr)), 1)
     assert row["acr_basis"] == "estimated_from_pcr" and row["is_acr_estimated"] is True
-    assert row["acr_mg_g"] is not None
+    assert row["acr_mg_g"] == pytest.approx(acr, abs=1e-3)
+    assert row["a_category"] == category
 
 
 # --------------------------------------------------------------------------- through the pipeline

@@ -37,6 +37,13 @@ def settings(tmp_path_factory):
 @pytest.fixture
 def warehouse(settings):
     con = connect(":memory:")
+    prepare(con, settings)
+    yield con
+    con.close()
+
+
+def prepare(con, settings) -> None:
+    """The reference tables, the trajectory rules and empty measures_base / results_known."""
     load_reference_tables(con, settings)
     write_trajectory_rules(con, settings)
     con.execute(
@@ -55,8 +62,6 @@ def warehouse(settings):
         "analyte varchar, comparator varchar, reported_unit varchar, reported_value double, "
         "is_fasting boolean)"
     )
-    yield con
-    con.close()
 
 
 def day(offset: int) -> dt.date:
@@ -258,13 +263,60 @@ def test_rules_follow_the_settings(settings):
     assert by_id["ckd_egfr"]["min_span_days"] == 90
 
 
+def linked_tables(con, settings) -> dict[str, list[tuple]]:
+    """Person-level tables built from a few trajectories of every kind of event, row by row."""
+    prepare(con, settings)
+    insert(con, "decline", BASE + [(100, 60.0), (128, 60.0)])
+    insert(con, "failure", [(0, 14.0), (30, 14.0)])
+    insert(con, "progression", [(0, 62.0), (200, 46.0)])
+    insert(con, "slope", [(0, 70.0), (120, 66.0), (250, 61.5), (360, 58.0)])
+    insert(con, "albuminuria", [(0, 80.0)], acr=[(0, 45.0), (120, 50.0)])
+    insert(con, "pending", [(0, 100.0), (300, 55.0)], age=17)
+    # person_status takes demographics and glycaemia from results_known: one row per person
+    # (two HbA1c of 7.0 % for one of them: diabetes by ADA Standards of Care, 6.5 % or more)
+    con.execute(
+        "create or replace table results_known as select person_key, ?::date as collected_date, "
+        "?::date as reported_date, analyte, null::varchar as comparator, reported_unit, "
+        "reported_value, false as is_fasting, sex, 1970::bigint as birth_year, district_code, "
+        "'lab' as source_id, 1::bigint as file_id, line_no::bigint as line_no from (values "
+        "('decline', 'creatinine', 'mg/dL', 1.0, 'F', 'WF01', 1), "
+        "('failure', 'creatinine', 'mg/dL', 4.0, 'M', 'WF02', 2), "
+        "('progression', 'creatinine', 'mg/dL', 1.3, 'F', 'WF03', 3), "
+        "('slope', 'creatinine', 'mg/dL', 1.2, 'M', 'WF04', 4), "
+        "('albuminuria', 'hba1c', '%', 7.0, 'F', 'WF01', 5), "
+        "('albuminuria', 'hba1c', '%', 7.0, 'F', 'WF01', 6), "
+        "('pending', 'creatinine', 'mg/dL', 1.0, 'M', 'WF02', 7)) "
+        "as t(person_key, analyte, reported_unit, reported_value, sex, district_code, line_no)",
+        [day(0), day(1)],
+    )
+    events = build(con)
+    assert {rule for _, rule in events} >= {"sustained_decline_40", "kidney_failure", "progression",
+                                            "ckd_acr"}  # fmt: skip
+    params = {**event_params(settings, Period.parse(PERIOD)), "period_end": PERIOD_END}
+    # person_status orders results by their source line as well
+    con.execute(
+        "create or replace table measures_known as select *, 'lab' as source_id, "
+        "1::bigint as file_id, row_number() over (order by person_key, collected_date, analyte) "
+        "as line_no from measures_known"
+    )
+    build_table(con, "person_status", params=params)
+    return {
+        table: sorted(con.table(table).fetchall(), key=repr)
+        for table in ("kidney_events", "person_status")
+    }
+
+
 def test_file_warehouse_works_too(settings, tmp_path: Path):
-    con = connect(tmp_path / "w.duckdb")
+    # The same person-level tables, row for row, whether the warehouse is a file or in memory
+    # (DuckDB documents both as the same database engine; a file adds only storage).
+    memory, on_disk = connect(":memory:"), connect(tmp_path / "w.duckdb")
     try:
-        load_reference_tables(con, settings)
-        assert rows(con, "select count(*) from reference.districts") == [(4,)]
+        expected, got = linked_tables(memory, settings), linked_tables(on_disk, settings)
     finally:
-        con.close()
+        memory.close()
+        on_disk.close()
+    assert len(expected["person_status"]) == 6 and len(expected["kidney_events"]) >= 4
+    assert got == expected
 
 
 # --------------------------------------------------------------------------- KDIGO slope and progression
