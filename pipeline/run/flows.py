@@ -41,7 +41,8 @@ from pipeline.run.revisions import (  # noqa: E402
 )
 from pipeline.run.runlock import commit_and_install, recover_interrupted_run, run_lock  # noqa: E402
 from pipeline.stages.disclose.suppression import disclose_stage  # noqa: E402
-from pipeline.stages.ingest import InboxFile, land_inbox, scan_inbox  # noqa: E402
+from pipeline.stages.ingest.inbox import InboxFile, scan_inbox  # noqa: E402
+from pipeline.stages.ingest.landing import land_inbox  # noqa: E402
 from pipeline.stages.link.stage import link_stage  # noqa: E402
 from pipeline.stages.measure import measure_stage  # noqa: E402
 from pipeline.stages.publish import (  # noqa: E402

@@ -46,13 +46,9 @@ from pipeline.core.pseudonymise import (
 )
 from pipeline.core.settings import Settings, load_settings, source_config_sha256
 from pipeline.run.runlock import recover_interrupted_run, run_lock
-from pipeline.stages.ingest import (
-    FileFault,
-    InboxFile,
-    read_inbox_file,
-    sha256_of,
-    undated_report_date,
-)
+from pipeline.stages.ingest.dates import undated_report_date
+from pipeline.stages.ingest.inbox import FileFault, InboxFile, sha256_of
+from pipeline.stages.ingest.landing import read_inbox_file
 from pipeline.stages.measure import measure_stage
 from pipeline.stages.publish import commit_month, open_warehouse
 from pipeline.stages.validate import (

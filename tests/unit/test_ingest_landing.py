@@ -17,7 +17,8 @@ from pipeline.core.landed import empty_landed
 from pipeline.core.pseudonymise import DEMO_KEY, PseudonymKey, add_person_keys
 from pipeline.core.settings import load_settings
 from pipeline.stages import validate
-from pipeline.stages.ingest import land_inbox, read_inbox_file, scan_inbox
+from pipeline.stages.ingest.inbox import scan_inbox
+from pipeline.stages.ingest.landing import land_inbox, read_inbox_file
 from pipeline.warehouse import connection as warehouse
 from pipeline.warehouse import reference
 from tests.conftest import ROOT, rows, write_inbox

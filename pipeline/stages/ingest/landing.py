@@ -1,0 +1,154 @@
+"""Landing: each new file read by its layout's reader, its rows keyed and handed to the run's
+sink, and recorded in the ``ingest_files`` ledger; what the stage leaves for the next ones.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import duckdb
+import polars as pl
+
+from pipeline.core import identifiers
+from pipeline.core.landed import _LANDED_SCHEMA, LANDED_COLUMNS
+from pipeline.core.pseudonymise import PersonKeyCache, PseudonymKey, add_person_keys
+from pipeline.core.settings import Settings, SourceConfig, source_config_sha256
+from pipeline.stages.ingest.dates import add_dates, undated_report_date
+from pipeline.stages.ingest.delimited import read_delimited
+from pipeline.stages.ingest.fhir import read_fhir_export
+from pipeline.stages.ingest.inbox import FileFault, InboxFile, extract_month, scan_inbox
+from pipeline.stages.ingest.parquet import read_parquet
+from pipeline.stages.ingest.rows import district_places, reject_control_characters
+
+
+@dataclass
+class IngestSummary:
+    files_new: int = 0
+    files_skipped: int = 0
+    files_held_back: int = 0
+    rows_landed: int = 0
+    held_back: list[tuple[str, str]] = field(default_factory=list)  # (path, message)
+    #: (path, column, pattern, reason) of every flagged column a source config allows
+    allowed_identifiers: list[tuple[str, str, str, str]] = field(default_factory=list)
+
+
+def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, undated_on: dt.date,
+                    run_day: dt.date | None = None) -> pl.DataFrame:  # fmt: skip
+    """Landed rows of one file, dates parsed, the person token still present; ``undated_on`` is
+    the report date of rows without one in a file without a month in its name, ``run_day`` the
+    day of the run (a collection date after it is rejected; today if not given).
+    """
+    if source.layout == "fhir_ndjson":
+        frame = read_fhir_export(source, item, settings)
+    elif source.layout == "parquet":
+        frame = read_parquet(source, item, district_places(settings))
+    else:
+        frame = read_delimited(source, item, places=district_places(settings))
+    return add_dates(
+        reject_control_characters(frame.select(LANDED_COLUMNS)), source, item, undated_on, run_day
+    )
+
+
+def land_inbox(
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    inbox: Path,
+    key: PseudonymKey,
+    run_period: str,
+    ingested_on: dt.date,
+    items: list[InboxFile] | None = None,
+    *,
+    sink: Callable[[duckdb.DuckDBPyConnection, pl.DataFrame], None],
+) -> IngestSummary:
+    """Read every new file, hand its keyed rows to ``sink`` and record it in ``ingest_files``.
+
+    Person tokens are re-keyed before the rows reach DuckDB, each distinct token once per run.
+    Each file's rows go to ``sink`` (``pipeline.stages.validate.judge_file`` in a run) as soon as it is
+    read, so only one file is held in memory; the temporary table ``landed_files`` names the
+    files of this run that gave rows. ``items`` replaces the inbox scan (``sources check``
+    reads one given file).
+    """
+    summary = IngestSummary()
+    undated_on = undated_report_date(run_period, ingested_on)
+    if items is None:
+        items = scan_inbox(con, settings, inbox)
+    next_id = con.execute("select coalesce(max(file_id), 0) + 1 from ingest_files").fetchall()[0][0]
+    con.execute("create or replace temp table landed_files (file_id bigint)")
+    keys = PersonKeyCache(key)
+    for item in items:
+        if item.status == "already_ingested":
+            summary.files_skipped += 1
+            continue
+        item.allowed_identifiers.clear()
+        source = settings.source(item.source_id)
+        item.file_id = next_id
+        next_id += 1
+        # a file held back earlier is tried again: its old ledger row (no rows stored) goes
+        con.execute(
+            "delete from ingest_files where source_id = ? and file_path = ? and sha256 = ? "
+            "and status = 'held_back'",
+            [item.source_id, item.rel_path, item.sha256],
+        )
+        version = con.execute(
+            "select count(distinct sha256) + 1 from ingest_files where source_id = ? and file_path = ?",
+            [item.source_id, item.rel_path],
+        ).fetchall()[0][0]
+        status, message, rows_read = "ingested", None, 0
+        original = con.execute(
+            "select rows_read from ingest_files where source_id = ? and sha256 = ? "
+            "and status = 'ingested' order by file_id limit 1",
+            [item.source_id, item.sha256],
+        ).fetchall() if item.status == "duplicate_file" else []  # fmt: skip
+        if item.status in ("unreadable", "held_back"):  # held_back: the source's config changed
+            status, message = "held_back", item.fault
+            summary.files_held_back += 1
+            summary.held_back.append((item.rel_path, item.fault or ""))
+        elif original:
+            status = "duplicate_file"
+            message = (
+                f"same content as {item.same_as}, already ingested; every row counted as duplicate"
+            )
+            rows_read = original[0][0]
+            summary.files_skipped += 1
+        else:  # new, or a copy of a file that was not ingested (held back): read it
+            try:
+                frame = read_inbox_file(source, item, settings, undated_on, ingested_on)
+            except FileFault as fault:
+                status, message = "held_back", item.safe(str(fault))
+                summary.files_held_back += 1
+                summary.held_back.append((item.rel_path, message))
+            else:
+                rows_read = frame.height
+                keyed = add_person_keys(frame, key, keys)
+                del frame
+                if keyed.schema != _LANDED_SCHEMA:
+                    raise AssertionError(
+                        f"landed columns {dict(keyed.schema)} differ from {dict(_LANDED_SCHEMA)}"
+                    )
+                sink(con, keyed)
+                del keyed
+                if rows_read:
+                    con.execute("insert into landed_files values (?)", [item.file_id])
+                summary.files_new += 1
+                summary.rows_landed += rows_read
+                if item.notes:
+                    message = "; ".join(item.notes)
+                if item.allowed_identifiers:
+                    note = identifiers.allowance_note(item.allowed_identifiers)
+                    message = f"{message}; {note}" if message else note
+                    summary.allowed_identifiers.extend(
+                        (item.rel_path, f.column, f.pattern, f.allowed_reason or "")
+                        for f in item.allowed_identifiers
+                    )
+        con.execute(
+            "insert into ingest_files (file_id, source_id, file_path, version, sha256, size_bytes, "
+            "status, message, rows_read, rows_duplicate, run_period, extract_month, ingested_at, config_sha256) "
+            "values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, current_timestamp, ?)",
+            [item.file_id, item.source_id, item.rel_path, version, item.sha256, item.size_bytes,
+             status, message, rows_read, rows_read if status == "duplicate_file" else 0, run_period,
+             extract_month(item.rel_path, run_period), source_config_sha256(settings, item.source_id)],
+        )  # fmt: skip
+    return summary
