@@ -15,6 +15,7 @@ import duckdb
 
 from pipeline.core import identifiers
 from pipeline.core.settings import Settings
+from pipeline.warehouse.sql_files import read_sql
 
 
 class FileFault(Exception):
@@ -94,8 +95,7 @@ def scan_inbox(
     recorded: set[tuple[str, str, str]] = set()  # (source, sha, path) already in the ledger
     if con is not None:
         for source_id, sha, path, status in con.execute(
-            "select source_id, sha256, file_path, status from ingest_files "
-            "where status in ('ingested', 'duplicate_file') order by file_id"
+            read_sql("ingest_files_recorded")
         ).fetchall():
             recorded.add((source_id, sha, path))
             if status == "ingested":

@@ -22,10 +22,48 @@ from pipeline.stages.ingest.fhir import read_fhir_export
 from pipeline.stages.ingest.inbox import FileFault, InboxFile, extract_month, scan_inbox
 from pipeline.stages.ingest.parquet import read_parquet
 from pipeline.stages.ingest.rows import district_places, reject_control_characters
+from pipeline.warehouse.sql_files import _NAME, read_sql
+
+#: The temporary table (``file_id bigint``) of this run's files that gave rows; the stage's
+#: result (:class:`Landed`) names it for the stages that read it.
+LANDED_FILES = "landed_files"
+
+
+@dataclass(frozen=True)
+class Landed:
+    """What the ingest stage leaves for the next ones: ``files``, the temporary table of this
+    run's files that gave rows (their ids), and the counts the run reports.
+    """
+
+    files: str
+    files_new: int = 0
+    files_skipped: int = 0
+    files_held_back: int = 0
+    rows_landed: int = 0
+    held_back: tuple[tuple[str, str], ...] = ()  # (path, message)
+    #: (path, column, pattern, reason) of every flagged column a source config allows
+    allowed_identifiers: tuple[tuple[str, str, str, str], ...] = ()
+
+
+def begin_landed_files(con: duckdb.DuckDBPyConnection) -> str:
+    """Create the run's (empty) table of landed files; its name. A reprocess, which lands stored
+    files again, fills it the same way (:func:`record_landed_file`).
+    """
+    con.execute(f"create or replace temp table {LANDED_FILES} (file_id bigint)")
+    return LANDED_FILES
+
+
+def record_landed_file(con: duckdb.DuckDBPyConnection, files: str, file_id: int) -> None:
+    """Add a file that gave rows to the table ``files`` (:func:`begin_landed_files`)."""
+    if not _NAME.match(files):
+        raise ValueError(f"not a plain table name: {files!r}")
+    con.execute(f"insert into {files} values (?)", [file_id])
 
 
 @dataclass
 class IngestSummary:
+    """The counts of :func:`land_inbox` while it runs (its result is :class:`Landed`)."""
+
     files_new: int = 0
     files_skipped: int = 0
     files_held_back: int = 0
@@ -62,13 +100,13 @@ def land_inbox(
     items: list[InboxFile] | None = None,
     *,
     sink: Callable[[duckdb.DuckDBPyConnection, pl.DataFrame], None],
-) -> IngestSummary:
+) -> Landed:
     """Read every new file, hand its keyed rows to ``sink`` and record it in ``ingest_files``.
 
     Person tokens are re-keyed before the rows reach DuckDB, each distinct token once per run.
     Each file's rows go to ``sink`` (``pipeline.stages.validate.judge_file`` in a run) as soon as it is
-    read, so only one file is held in memory; the temporary table ``landed_files`` names the
-    files of this run that gave rows. ``items`` replaces the inbox scan (``sources check``
+    read, so only one file is held in memory. The result names the temporary table of this
+    run's files that gave rows (``Landed.files``) and carries the counts. ``items`` replaces the inbox scan (``sources check``
     reads one given file).
     """
     summary = IngestSummary()
@@ -76,7 +114,7 @@ def land_inbox(
     if items is None:
         items = scan_inbox(con, settings, inbox)
     next_id = con.execute("select coalesce(max(file_id), 0) + 1 from ingest_files").fetchall()[0][0]
-    con.execute("create or replace temp table landed_files (file_id bigint)")
+    files = begin_landed_files(con)
     keys = PersonKeyCache(key)
     for item in items:
         if item.status == "already_ingested":
@@ -131,7 +169,7 @@ def land_inbox(
                 sink(con, keyed)
                 del keyed
                 if rows_read:
-                    con.execute("insert into landed_files values (?)", [item.file_id])
+                    record_landed_file(con, files, item.file_id)
                 summary.files_new += 1
                 summary.rows_landed += rows_read
                 if item.notes:
@@ -144,11 +182,20 @@ def land_inbox(
                         for f in item.allowed_identifiers
                     )
         con.execute(
-            "insert into ingest_files (file_id, source_id, file_path, version, sha256, size_bytes, "
-            "status, message, rows_read, rows_duplicate, run_period, extract_month, ingested_at, config_sha256) "
-            "values (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, current_timestamp, ?)",
-            [item.file_id, item.source_id, item.rel_path, version, item.sha256, item.size_bytes,
-             status, message, rows_read, rows_read if status == "duplicate_file" else 0, run_period,
-             extract_month(item.rel_path, run_period), source_config_sha256(settings, item.source_id)],
+            "insert into ingest_files by name " + read_sql("ingest_file_entry"),
+            {"file_id": item.file_id, "source_id": item.source_id, "file_path": item.rel_path,
+             "version": version, "sha256": item.sha256, "size_bytes": item.size_bytes,
+             "status": status, "message": message, "rows_read": rows_read,
+             "rows_duplicate": rows_read if status == "duplicate_file" else 0,
+             "run_period": run_period, "extract_month": extract_month(item.rel_path, run_period),
+             "config_sha256": source_config_sha256(settings, item.source_id)},
         )  # fmt: skip
-    return summary
+    return Landed(
+        files,
+        summary.files_new,
+        summary.files_skipped,
+        summary.files_held_back,
+        summary.rows_landed,
+        tuple(summary.held_back),
+        tuple(summary.allowed_identifiers),
+    )
