@@ -59,8 +59,11 @@ def _self_maxrss_mb() -> float:
 #: that holds it, by a wrapper adding up its wall time; calls nest (a build_table inside a
 #: replace_period_rows counts in both), so the figures show where the time goes, not a partition.
 TRACED = {
-    "pipeline.stages.ingest": ("scan_inbox", "sha256_of", "read_delimited", "_rows_in_bulk", "_rows_by_csv",
-                        "read_parquet", "_to_landed", "add_dates", "_insert_landed"),
+    "pipeline.stages.ingest.inbox": ("scan_inbox", "sha256_of"),
+    "pipeline.stages.ingest.delimited": ("read_delimited", "_rows_in_bulk", "_rows_by_csv"),
+    "pipeline.stages.ingest.parquet": ("read_parquet",),
+    "pipeline.stages.ingest.rows": ("_to_landed",),
+    "pipeline.stages.ingest.dates": ("add_dates",),
     "pipeline.core.pseudonymise": ("add_person_keys",),
     "pipeline.core.identifiers": ("screen_table", "screen_values"),
     "pipeline.warehouse.sql": ("build_table", "replace_period_rows"),

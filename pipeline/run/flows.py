@@ -41,7 +41,8 @@ from pipeline.run.revisions import (  # noqa: E402
 )
 from pipeline.run.runlock import commit_and_install, recover_interrupted_run, run_lock  # noqa: E402
 from pipeline.stages.disclose.suppression import disclose_stage  # noqa: E402
-from pipeline.stages.ingest import InboxFile, land_inbox, scan_inbox  # noqa: E402
+from pipeline.stages.ingest.inbox import InboxFile, scan_inbox  # noqa: E402
+from pipeline.stages.ingest.landing import Landed, land_inbox  # noqa: E402
 from pipeline.stages.link.stage import link_stage  # noqa: E402
 from pipeline.stages.measure import measure_stage  # noqa: E402
 from pipeline.stages.publish import (  # noqa: E402
@@ -72,6 +73,7 @@ class RunContext:
     batch_checks: dict[str, dict[str, Any]] = field(default_factory=dict)
     touched_only: bool = False  # the validate stage settled only the versions new rows touch
     inbox_items: list[InboxFile] | None = None  # the scan stage's listing, read by the ingest stage
+    landed: Landed | None = None  # what the ingest stage leaves (the table of this run's files)
     revise: str | None = None  # the reason given for a revision of an already published period
     release: Release | None = None  # what the summarise stage published (pipeline/run/revisions.py)
     config_drift: dict[str, str] = field(
@@ -136,9 +138,10 @@ def ingest_task(run_id: str) -> dict[str, Any]:
             items=ctx.inbox_items,
             sink=judge_file,
         )
+        ctx.landed = s
         return {"new files": s.files_new, "skipped": s.files_skipped, "held back": s.files_held_back,
-                "rows": s.rows_landed, "held_back_files": s.held_back,
-                "allowed_identifiers": s.allowed_identifiers}  # fmt: skip
+                "rows": s.rows_landed, "held_back_files": list(s.held_back),
+                "allowed_identifiers": list(s.allowed_identifiers)}  # fmt: skip
 
     return _stage(run_id, "ingest", work)
 
@@ -374,7 +377,9 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
     summarised = call(summarise_task, run_id)
     if ctx.refused:  # nothing is published: the caller rolls the transaction back
         return {"period": ctx.period.label, "revision_refused": ctx.refused}
-    checks = period_checks(ctx.con, ctx.settings, ctx.inbox, ctx.period)
+    if ctx.landed is None:
+        raise RuntimeError("the period checks run after the ingest stage")
+    checks = period_checks(ctx.con, ctx.settings, ctx.inbox, ctx.period, ctx.landed.files)
     missing_policy = ctx.settings.pipeline.completeness.missing_source
     summary = {
         "period": ctx.period.label,
@@ -397,7 +402,7 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
         "headline": headline(ctx),
         "batch_checks": ctx.batch_checks,
         "config_drift": ctx.config_drift,
-        "late_results": late_results(ctx.con, ctx.period.label),
+        "late_results": late_results(ctx.con, ctx.period.label, ctx.landed.files),
     }
     ctx.manifest = build_manifest(ctx.run_id, ctx.started_at, ctx.settings, ctx.period.label,
                                   ctx.key.is_demo, ctx.stages, summary,

@@ -25,6 +25,7 @@ import duckdb
 
 from pipeline.core.periods import Period
 from pipeline.core.settings import Settings
+from pipeline.warehouse.sql_files import _NAME
 
 #: The columns of the period's per-source table, in the order they are shown.
 PERIOD_COLUMNS = ("files", "read", "accepted", "rejected", "superseded", "duplicate", "withdrawn",
@@ -32,14 +33,17 @@ PERIOD_COLUMNS = ("files", "read", "accepted", "rejected", "superseded", "duplic
 
 
 def rows_outside_period(
-    con: duckdb.DuckDBPyConnection, period: Period
+    con: duckdb.DuckDBPyConnection, period: Period, files: str
 ) -> dict[str, dict[str, int]]:
-    """Per source, the accepted rows of this run's files (temporary table ``landed_files``) and
+    """Per source, the accepted rows of this run's files (``files``: the ingest stage's table of
+    them, ``Landed.files``) and
     how many of them were collected or reported after the period end (invisible to the period);
     only sources with such rows.
     """
+    if not _NAME.match(files):
+        raise ValueError(f"not a plain table name: {files!r}")
     rows = con.execute(
-        """
+        f"""
         select v.source_id,
                count(*) as accepted,
                count(*) filter (where v.collected_date > $period_end
@@ -47,7 +51,7 @@ def rows_outside_period(
                count(*) filter (where v.reported_date > $period_end) as reported_after,
                count(*) filter (where v.collected_date > $period_end) as collected_after
         from result_versions as v
-        where v.outcome = 'accepted' and v.file_id in (select file_id from landed_files)
+        where v.outcome = 'accepted' and v.file_id in (select file_id from {files})
         group by v.source_id
         having count(*) filter (where v.collected_date > $period_end
                                    or v.reported_date > $period_end) > 0
@@ -145,9 +149,11 @@ def period_counts(con: duckdb.DuckDBPyConnection, period: Period) -> dict[str, d
 
 
 def period_checks(con: duckdb.DuckDBPyConnection, settings: Settings, inbox: Path,
-                  period: Period) -> dict[str, Any]:  # fmt: skip
-    """Everything above, as plain data for the run summary, the manifest and the report."""
-    outside = rows_outside_period(con, period)
+                  period: Period, files: str) -> dict[str, Any]:  # fmt: skip
+    """Everything above, as plain data for the run summary, the manifest and the report;
+    ``files``: the ingest stage's table of this run's files (``Landed.files``).
+    """
+    outside = rows_outside_period(con, period, files)
     return {
         "period_sources": period_counts(con, period),
         "rows_outside_period": outside,

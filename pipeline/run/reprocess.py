@@ -46,13 +46,9 @@ from pipeline.core.pseudonymise import (
 )
 from pipeline.core.settings import Settings, load_settings, source_config_sha256
 from pipeline.run.runlock import recover_interrupted_run, run_lock
-from pipeline.stages.ingest import (
-    FileFault,
-    InboxFile,
-    read_inbox_file,
-    sha256_of,
-    undated_report_date,
-)
+from pipeline.stages.ingest.dates import undated_report_date
+from pipeline.stages.ingest.inbox import FileFault, InboxFile, sha256_of
+from pipeline.stages.ingest.landing import begin_landed_files, read_inbox_file, record_landed_file
 from pipeline.stages.measure import measure_stage
 from pipeline.stages.publish import commit_month, open_warehouse
 from pipeline.stages.validate import (
@@ -299,7 +295,7 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
     # the same path as a monthly run: reference tables, row rules file by file, gate, versions
     load_reference_tables(con, settings)
     begin_judging(con)
-    con.execute("create or replace temp table landed_files (file_id bigint)")
+    files = begin_landed_files(con)  # the ingest stage's table of this run's files
     cache = PersonKeyCache(key)
     for file_id, rel, sha, size, ingested_at, _, run_period in todo:
         item = InboxFile(source.id, inbox / rel, rel, sha, size, file_id=file_id)
@@ -316,7 +312,7 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
         del frame
         judge_file(con, keyed)
         del keyed
-        con.execute("insert into landed_files values (?)", [file_id])
+        record_landed_file(con, files, file_id)
     default = settings.pipeline.quality_gate.max_rejection_rate
     limit = source.max_rejection_rate if source.max_rejection_rate is not None else default
     gate = settings.pipeline.quality_gate

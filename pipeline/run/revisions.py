@@ -31,7 +31,7 @@ import duckdb
 
 from pipeline.warehouse.catalog import PUBLISHED_TABLES
 from pipeline.warehouse.connection import add_missing_columns, fetch_frame
-from pipeline.warehouse.sql_files import checked_name
+from pipeline.warehouse.sql_files import _NAME, checked_name
 
 HISTORY_SCHEMA = "published_history"
 REVISIONS_FOLDER = "revisions"
@@ -272,7 +272,7 @@ def carry_releases(out_dir: Path, period: str, staged: Path, release: Release) -
         )
 
 
-def late_results(con: duckdb.DuckDBPyConnection, period: str) -> dict[str, int]:
+def late_results(con: duckdb.DuckDBPyConnection, period: str, files: str | None) -> dict[str, int]:
     """Count, per other published period, the results this run received that would change it.
 
     Other periods are the earlier ones, and later ones when an earlier period is revised; a
@@ -280,13 +280,12 @@ def late_results(con: duckdb.DuckDBPyConnection, period: str) -> dict[str, int]:
     reported by that period's end. (A period is rebuilt as known at its end, so a result reported
     later can never change it; those are not counted.)
     """
-    exists = con.execute(
-        "select count(*) from duckdb_tables() where temporary and table_name = 'landed_files'"
-    ).fetchall()[0][0]
-    if not exists:
+    if files is None:  # no ingest in this run
         return {}
+    if not _NAME.match(files):
+        raise ValueError(f"not a plain table name: {files!r}")
     rows = con.execute(
-        """
+        f"""
         with earlier as (
             select distinct period, last_day(strptime(period || '-01', '%Y-%m-%d'))::date as period_end
             from runs where period <> $p
@@ -294,7 +293,7 @@ def late_results(con: duckdb.DuckDBPyConnection, period: str) -> dict[str, int]:
         select e.period, count(*) as results
         from earlier as e
         join result_versions as v
-          on v.file_id in (select file_id from landed_files)
+          on v.file_id in (select file_id from {files})
          and v.collected_date <= e.period_end and v.reported_date <= e.period_end
         where v.outcome <> 'duplicate' and v.status <> 'preliminary'
         group by e.period order by e.period

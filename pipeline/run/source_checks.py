@@ -9,7 +9,8 @@ from pathlib import Path
 from pipeline.core.periods import Period
 from pipeline.core.pseudonymise import DEMO_KEY, PseudonymKey
 from pipeline.core.settings import Settings
-from pipeline.stages.ingest import InboxFile, extract_month, land_inbox, sha256_of
+from pipeline.stages.ingest.inbox import InboxFile, extract_month, sha256_of
+from pipeline.stages.ingest.landing import land_inbox
 from pipeline.stages.validate import (
     begin_judging,
     judge_file,

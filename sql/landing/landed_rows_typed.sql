@@ -1,5 +1,5 @@
 -- landed_rows_typed: one row per landed input row, renamed, cast and tagged.
--- Reads landed_rows (one file's rows as pipeline/stages/ingest.py reads them: the validate stage
+-- Reads landed_rows (one file's rows as pipeline/stages/ingest/ reads them: the validate stage
 -- runs this over each file as it is landed) and the reference tables; judges nothing (that
 -- is results_validated).
 with parsed as (

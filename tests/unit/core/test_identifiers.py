@@ -22,7 +22,8 @@ from pydantic import ValidationError
 from pipeline.core import identifiers
 from pipeline.core.settings import STANDARD_FIELDS, SourceConfig, load_settings
 from pipeline.run.flows import run_month_plain
-from pipeline.stages.ingest import FileFault, InboxFile, read_inbox_file, scan_inbox, sha256_of
+from pipeline.stages.ingest.inbox import FileFault, InboxFile, scan_inbox, sha256_of
+from pipeline.stages.ingest.landing import read_inbox_file
 from tests.conftest import CONFIG_DIR, ROOT, make_small_config, write_inbox
 
 TODAY = dt.date(2026, 2, 2)

@@ -22,7 +22,8 @@ from pipeline.core.pseudonymise import (
     person_key,
 )
 from pipeline.core.settings import Settings, SourceConfig, load_settings
-from pipeline.stages.ingest import FileFault, InboxFile, read_inbox_file, scan_inbox, sha256_of
+from pipeline.stages.ingest.inbox import FileFault, InboxFile, scan_inbox, sha256_of
+from pipeline.stages.ingest.landing import read_inbox_file
 from tests.conftest import FIXTURES, write_inbox
 
 INGEST = FIXTURES / "ingest"

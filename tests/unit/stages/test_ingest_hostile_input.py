@@ -24,7 +24,8 @@ import pytest
 from pipeline.core import identifiers
 from pipeline.core.settings import STANDARD_FIELDS, SourceConfig, load_settings
 from pipeline.run.source_checks import check_file
-from pipeline.stages.ingest import FileFault, InboxFile, read_inbox_file, scan_inbox, sha256_of
+from pipeline.stages.ingest.inbox import FileFault, InboxFile, scan_inbox, sha256_of
+from pipeline.stages.ingest.landing import read_inbox_file
 from tests.conftest import CONFIG_DIR, write_inbox
 
 TODAY = dt.date.today()

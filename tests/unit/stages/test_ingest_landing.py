@@ -1,23 +1,27 @@
 """``land_inbox`` hands each file's keyed rows to its sink as soon as the file is read: every
 frame has the same columns and types (those the staging SQL reads, whether a run lands files
 or none), and the frames are each file's rows in inbox order, keyed as ``add_person_keys``
-keys them. ``landed_files`` names the files that gave rows.
+keys them. The stage's result (a frozen ``Landed``) names the table of the files that gave rows
+(``landed_files``, the name other SQL reads) and the counts.
 
 Outside reference: DuckDB's own description of the table (``describe``) for the column types.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 from pathlib import Path
 
 import polars as pl
+import pytest
 
 from pipeline.core.landed import empty_landed
 from pipeline.core.pseudonymise import DEMO_KEY, PseudonymKey, add_person_keys
 from pipeline.core.settings import load_settings
 from pipeline.stages import validate
-from pipeline.stages.ingest import land_inbox, read_inbox_file, scan_inbox
+from pipeline.stages.ingest.inbox import scan_inbox
+from pipeline.stages.ingest.landing import land_inbox, read_inbox_file
 from pipeline.warehouse import connection as warehouse
 from pipeline.warehouse import reference
 from tests.conftest import ROOT, rows, write_inbox
@@ -92,13 +96,21 @@ def test_each_file_is_landed_as_read_and_the_table_keeps_its_schema(
         assert landed.equals(pl.concat(expected))
         assert landed["person_key"].null_count() < landed.height
         # a second run finds nothing new: the table is there, empty, with the same columns
-        assert rows(con, "select file_id from landed_files order by 1") == [(1,), (2,), (3,), (4,)]
+        assert summary.files == "landed_files"
+        with pytest.raises(dataclasses.FrozenInstanceError):
+            summary.files = "other"  # type: ignore[misc]
+        assert rows(con, f"select file_id from {summary.files} order by 1") == [
+            (1,),
+            (2,),
+            (3,),
+            (4,),
+        ]
         # a second run finds nothing new: nothing is handed over, and no file is named
         again_sink = Collect()
         again = land_inbox(con, settings, inbox, KEY, "2025-06", TODAY, sink=again_sink)
         assert again.files_skipped == 4
         assert again_sink.frames == []
-        assert rows(con, "select count(*) from landed_files") == [(0,)]
+        assert rows(con, f"select count(*) from {again.files}") == [(0,)]
     finally:
         con.close()
 

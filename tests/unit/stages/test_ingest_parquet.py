@@ -25,7 +25,8 @@ from pydantic import ValidationError
 
 from pipeline.core.pseudonymise import DEMO_KEY, PseudonymKey
 from pipeline.core.settings import STANDARD_FIELDS, SourceConfig, load_settings
-from pipeline.stages.ingest import InboxFile, land_inbox, read_inbox_file, sha256_of
+from pipeline.stages.ingest.inbox import InboxFile, sha256_of
+from pipeline.stages.ingest.landing import land_inbox, read_inbox_file
 from pipeline.warehouse import connection as warehouse
 from tests.conftest import ROOT, make_small_config, rows, run_month, write_inbox
 

@@ -27,8 +27,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipeline.core.settings import STANDARD_FIELDS, Settings, SourceConfig, load_settings
-from pipeline.stages import ingest
-from pipeline.stages.ingest import FileFault, InboxFile, read_delimited
+from pipeline.stages.ingest.delimited import read_delimited
+from pipeline.stages.ingest.inbox import FileFault, InboxFile
+from pipeline.stages.ingest.rows import PY_WHITESPACE
 from tests.conftest import ROOT, make_small_config
 
 SAMPLES = ROOT / "sample_extracts"
@@ -76,8 +77,8 @@ def small_settings(tmp_path_factory) -> Settings:
 def test_the_whitespace_stripped_is_what_str_strip_strips():
     # Python docs: str.strip() with no argument removes the characters for which isspace() holds
     python = {chr(c) for c in range(sys.maxunicode + 1) if chr(c).isspace()}
-    assert set(ingest.PY_WHITESPACE) == python
-    assert len(ingest.PY_WHITESPACE) == len(python)
+    assert set(PY_WHITESPACE) == python
+    assert len(PY_WHITESPACE) == len(python)
 
 
 @pytest.mark.parametrize("folder", ["westerfold_general_lab", "corvale_lab_chain"])

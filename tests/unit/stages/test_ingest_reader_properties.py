@@ -1,7 +1,7 @@
 """Property tests (Hypothesis) of the readers and of the row accounting.
 
 (a) Whatever bytes a standard-layout file holds, reading it gives landed rows or a
-    :class:`pipeline.stages.ingest.FileFault`, never another exception (DEVELOPERS.md: a whole-file
+    :class:`pipeline.stages.ingest.inbox.FileFault`, never another exception (DEVELOPERS.md: a whole-file
     fault holds the file back, the other files go on).
 (b) For a file with a valid header and arbitrary row contents, a whole month accounts for every
     data row exactly once: rows read = non-blank data lines = the sum of the outcomes, and no
@@ -28,7 +28,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipeline.core.settings import Settings, load_settings
-from pipeline.stages.ingest import FileFault, InboxFile, read_inbox_file, sha256_of
+from pipeline.stages.ingest.inbox import FileFault, InboxFile, sha256_of
+from pipeline.stages.ingest.landing import read_inbox_file
 from tests.conftest import examples, make_small_config, rows, run_month, write_inbox
 from tests.unit.stages.test_ingest_reader_paths import compare_paths
 

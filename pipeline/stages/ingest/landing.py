@@ -1,0 +1,201 @@
+"""Landing: each new file read by its layout's reader, its rows keyed and handed to the run's
+sink, and recorded in the ``ingest_files`` ledger; what the stage leaves for the next ones.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import duckdb
+import polars as pl
+
+from pipeline.core import identifiers
+from pipeline.core.landed import _LANDED_SCHEMA, LANDED_COLUMNS
+from pipeline.core.pseudonymise import PersonKeyCache, PseudonymKey, add_person_keys
+from pipeline.core.settings import Settings, SourceConfig, source_config_sha256
+from pipeline.stages.ingest.dates import add_dates, undated_report_date
+from pipeline.stages.ingest.delimited import read_delimited
+from pipeline.stages.ingest.fhir import read_fhir_export
+from pipeline.stages.ingest.inbox import FileFault, InboxFile, extract_month, scan_inbox
+from pipeline.stages.ingest.parquet import read_parquet
+from pipeline.stages.ingest.rows import district_places, reject_control_characters
+from pipeline.warehouse.sql_files import _NAME, read_sql
+
+#: The temporary table (``file_id bigint``) of this run's files that gave rows; the stage's
+#: result (:class:`Landed`) names it for the stages that read it.
+LANDED_FILES = "landed_files"
+
+
+@dataclass(frozen=True)
+class Landed:
+    """What the ingest stage leaves for the next ones: ``files``, the temporary table of this
+    run's files that gave rows (their ids), and the counts the run reports.
+    """
+
+    files: str
+    files_new: int = 0
+    files_skipped: int = 0
+    files_held_back: int = 0
+    rows_landed: int = 0
+    held_back: tuple[tuple[str, str], ...] = ()  # (path, message)
+    #: (path, column, pattern, reason) of every flagged column a source config allows
+    allowed_identifiers: tuple[tuple[str, str, str, str], ...] = ()
+
+
+def begin_landed_files(con: duckdb.DuckDBPyConnection) -> str:
+    """Create the run's (empty) table of landed files; its name. A reprocess, which lands stored
+    files again, fills it the same way (:func:`record_landed_file`).
+    """
+    con.execute(f"create or replace temp table {LANDED_FILES} (file_id bigint)")
+    return LANDED_FILES
+
+
+def record_landed_file(con: duckdb.DuckDBPyConnection, files: str, file_id: int) -> None:
+    """Add a file that gave rows to the table ``files`` (:func:`begin_landed_files`)."""
+    if not _NAME.match(files):
+        raise ValueError(f"not a plain table name: {files!r}")
+    con.execute(f"insert into {files} values (?)", [file_id])
+
+
+@dataclass
+class IngestSummary:
+    """The counts of :func:`land_inbox` while it runs (its result is :class:`Landed`)."""
+
+    files_new: int = 0
+    files_skipped: int = 0
+    files_held_back: int = 0
+    rows_landed: int = 0
+    held_back: list[tuple[str, str]] = field(default_factory=list)  # (path, message)
+    #: (path, column, pattern, reason) of every flagged column a source config allows
+    allowed_identifiers: list[tuple[str, str, str, str]] = field(default_factory=list)
+
+
+def read_inbox_file(source: SourceConfig, item: InboxFile, settings: Settings, undated_on: dt.date,
+                    run_day: dt.date | None = None) -> pl.DataFrame:  # fmt: skip
+    """Landed rows of one file, dates parsed, the person token still present; ``undated_on`` is
+    the report date of rows without one in a file without a month in its name, ``run_day`` the
+    day of the run (a collection date after it is rejected; today if not given).
+    """
+    if source.layout == "fhir_ndjson":
+        frame = read_fhir_export(source, item, settings)
+    elif source.layout == "parquet":
+        frame = read_parquet(source, item, district_places(settings))
+    else:
+        frame = read_delimited(source, item, places=district_places(settings))
+    return add_dates(
+        reject_control_characters(frame.select(LANDED_COLUMNS)), source, item, undated_on, run_day
+    )
+
+
+def land_inbox(
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    inbox: Path,
+    key: PseudonymKey,
+    run_period: str,
+    ingested_on: dt.date,
+    items: list[InboxFile] | None = None,
+    *,
+    sink: Callable[[duckdb.DuckDBPyConnection, pl.DataFrame], None],
+) -> Landed:
+    """Read every new file, hand its keyed rows to ``sink`` and record it in ``ingest_files``.
+
+    Person tokens are re-keyed before the rows reach DuckDB, each distinct token once per run.
+    Each file's rows go to ``sink`` (``pipeline.stages.validate.judge_file`` in a run) as soon as it is
+    read, so only one file is held in memory. The result names the temporary table of this
+    run's files that gave rows (``Landed.files``) and carries the counts. ``items`` replaces the inbox scan (``sources check``
+    reads one given file).
+    """
+    summary = IngestSummary()
+    undated_on = undated_report_date(run_period, ingested_on)
+    if items is None:
+        items = scan_inbox(con, settings, inbox)
+    next_id = con.execute("select coalesce(max(file_id), 0) + 1 from ingest_files").fetchall()[0][0]
+    files = begin_landed_files(con)
+    keys = PersonKeyCache(key)
+    for item in items:
+        if item.status == "already_ingested":
+            summary.files_skipped += 1
+            continue
+        item.allowed_identifiers.clear()
+        source = settings.source(item.source_id)
+        item.file_id = next_id
+        next_id += 1
+        # a file held back earlier is tried again: its old ledger row (no rows stored) goes
+        con.execute(
+            "delete from ingest_files where source_id = ? and file_path = ? and sha256 = ? "
+            "and status = 'held_back'",
+            [item.source_id, item.rel_path, item.sha256],
+        )
+        version = con.execute(
+            "select count(distinct sha256) + 1 from ingest_files where source_id = ? and file_path = ?",
+            [item.source_id, item.rel_path],
+        ).fetchall()[0][0]
+        status, message, rows_read = "ingested", None, 0
+        original = con.execute(
+            "select rows_read from ingest_files where source_id = ? and sha256 = ? "
+            "and status = 'ingested' order by file_id limit 1",
+            [item.source_id, item.sha256],
+        ).fetchall() if item.status == "duplicate_file" else []  # fmt: skip
+        if item.status in ("unreadable", "held_back"):  # held_back: the source's config changed
+            status, message = "held_back", item.fault
+            summary.files_held_back += 1
+            summary.held_back.append((item.rel_path, item.fault or ""))
+        elif original:
+            status = "duplicate_file"
+            message = (
+                f"same content as {item.same_as}, already ingested; every row counted as duplicate"
+            )
+            rows_read = original[0][0]
+            summary.files_skipped += 1
+        else:  # new, or a copy of a file that was not ingested (held back): read it
+            try:
+                frame = read_inbox_file(source, item, settings, undated_on, ingested_on)
+            except FileFault as fault:
+                status, message = "held_back", item.safe(str(fault))
+                summary.files_held_back += 1
+                summary.held_back.append((item.rel_path, message))
+            else:
+                rows_read = frame.height
+                keyed = add_person_keys(frame, key, keys)
+                del frame
+                if keyed.schema != _LANDED_SCHEMA:
+                    raise AssertionError(
+                        f"landed columns {dict(keyed.schema)} differ from {dict(_LANDED_SCHEMA)}"
+                    )
+                sink(con, keyed)
+                del keyed
+                if rows_read:
+                    record_landed_file(con, files, item.file_id)
+                summary.files_new += 1
+                summary.rows_landed += rows_read
+                if item.notes:
+                    message = "; ".join(item.notes)
+                if item.allowed_identifiers:
+                    note = identifiers.allowance_note(item.allowed_identifiers)
+                    message = f"{message}; {note}" if message else note
+                    summary.allowed_identifiers.extend(
+                        (item.rel_path, f.column, f.pattern, f.allowed_reason or "")
+                        for f in item.allowed_identifiers
+                    )
+        con.execute(
+            "insert into ingest_files by name " + read_sql("ingest_file_entry"),
+            {"file_id": item.file_id, "source_id": item.source_id, "file_path": item.rel_path,
+             "version": version, "sha256": item.sha256, "size_bytes": item.size_bytes,
+             "status": status, "message": message, "rows_read": rows_read,
+             "rows_duplicate": rows_read if status == "duplicate_file" else 0,
+             "run_period": run_period, "extract_month": extract_month(item.rel_path, run_period),
+             "config_sha256": source_config_sha256(settings, item.source_id)},
+        )  # fmt: skip
+    return Landed(
+        files,
+        summary.files_new,
+        summary.files_skipped,
+        summary.files_held_back,
+        summary.rows_landed,
+        tuple(summary.held_back),
+        tuple(summary.allowed_identifiers),
+    )
