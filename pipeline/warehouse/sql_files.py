@@ -23,3 +23,12 @@ def sql_path(name: str) -> Path:
 
 def read_sql(name: str) -> str:
     return sql_path(name).read_text(encoding="utf-8")
+
+
+def checked_name(name: str) -> str:
+    """``name``, when it is a plain relation name (the allow-list pattern ``_NAME``), for
+    formatting into SQL text where a relation handed over by another stage must vary.
+    """
+    if not _NAME.match(name):
+        raise ValueError(f"not a plain relation name: {name!r}")
+    return name
