@@ -79,7 +79,14 @@ WITHDRAWN_STATUSES = ("cancelled", "entered-in-error")
 #: Sex codes after staging (DEVELOPERS.md, Design notes: F, M, U; FHIR female/male mapped, anything else U).
 SEX_CODES = ("F", "M", "U")
 #: Columns that must never be null on a well-formed row.
-KEY_COLUMNS = ("person_key", "collected_date", "analyte", "source_id", "file_id", "line_no")
+KEY_COLUMNS = (
+    "person_key",
+    "collected_date",
+    "analyte",
+    "source_id",
+    "file_id",
+    "line_no",
+)  # (sql/checks/batch_cells.sql counts the nulls of each)
 #: When the Data Docs are built (setting ``quality_gate.quality_pages``).
 QUALITY_PAGES_CHOICES = ("on_failure", "always", "never")
 
@@ -351,43 +358,14 @@ def _schema_frame(con: duckdb.DuckDBPyConnection, table: str) -> Any:
 
 
 def _cells_frame(con: duckdb.DuckDBPyConnection, present: dict[str, str], table: str) -> Any:
-    """One row per source x analyte x unit x status x sex of the well-formed rows (one scan).
-
-    NaN counts as no value (``nullif``: DuckDB sorts NaN above every number, so it would
-    otherwise hide in the greatest value); the status is a key of the cell, so withdrawn cells
-    are told apart after the aggregation, where the plausible range is joined on too.
+    """One row per source x analyte x unit x status x sex of the well-formed rows, in one scan
+    (``sql/checks/batch_cells.sql``, over the standard columns in their types).
     """
-    c = {name: _col(present, name) for name in STANDARD_COLUMNS}
-    number = f"nullif({c['value']}, 'nan'::double)"
-    withdrawn = "coalesce(g.status, '') in (select unnest($withdrawn::varchar[]))"
-    nulls = "".join(
-        f",\n                   count(*) - count({c[k]}) as null_{k}" for k in KEY_COLUMNS
-    )
-    null_columns = "".join(f", g.null_{k}" for k in KEY_COLUMNS)
-    return _frame(con, f"""
-        with g as (
-            select {c['source_id']} as source_id, {c['analyte']} as analyte, {c['unit']} as unit,
-                   {c['status']} as status, {c['sex']} as sex, count(*) as rows,
-                   min({number}) as least, max({number}) as greatest, count({number}) as numbers{nulls}
-            from {table} as v
-            where v.reason_code is null
-            group by 1, 2, 3, 4, 5
-        )
-        select g.source_id,
-               coalesce(g.analyte, '(none)') || ' [' || coalesce(g.unit, '(none)') || ']' as analyte_unit,
-               g.analyte, g.unit, g.status, g.sex, g.rows,
-               case when {withdrawn} then null else g.least end as value_min,
-               case when {withdrawn} then null else g.greatest end as value_max,
-               case when {withdrawn} then null else r.min_value end as range_min,
-               case when {withdrawn} then null else r.max_value end as range_max,
-               -- an ordinal result (a dipstick reading) carries a reading, not a number
-               case when {withdrawn} or a.result_type = 'ordinal' then 0
-                    else g.rows - g.numbers end as missing_value{null_columns}
-        from g
-        left join reference.ranges as r on r.analyte = g.analyte
-        left join reference.analytes as a on a.analyte = g.analyte
-        order by 1, 2, 3, 4, 5, 6
-    """, {"withdrawn": list(WITHDRAWN_STATUSES)})  # fmt: skip
+    needed = ("source_id", "analyte", "unit", "status", "sex", "value", *KEY_COLUMNS)
+    columns = ", ".join(f"{_col(present, n)} as {n}" for n in dict.fromkeys(needed))
+    rows = f"select {columns} from {checked_name(table)} as v where v.reason_code is null"
+    query = sql_over("batch_cells", {"batch_rows": rows})
+    return _frame(con, query, {"withdrawn": list(WITHDRAWN_STATUSES)})
 
 
 def _totals_frame(con: duckdb.DuckDBPyConnection, batch: Batch) -> Any:
