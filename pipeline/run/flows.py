@@ -42,7 +42,8 @@ from pipeline.run.revisions import (  # noqa: E402
 from pipeline.run.runlock import commit_and_install, recover_interrupted_run, run_lock  # noqa: E402
 from pipeline.stages.disclose.suppression import disclose_stage  # noqa: E402
 from pipeline.stages.ingest.inbox import InboxFile, scan_inbox  # noqa: E402
-from pipeline.stages.ingest.landing import Landed, land_inbox  # noqa: E402
+from pipeline.stages.ingest.landing import LANDED_FILES, Landed, land_inbox  # noqa: E402
+from pipeline.stages.link.persons import ValidatedScope  # noqa: E402
 from pipeline.stages.link.stage import link_stage  # noqa: E402
 from pipeline.stages.measure import measure_stage  # noqa: E402
 from pipeline.stages.publish import (  # noqa: E402
@@ -53,7 +54,12 @@ from pipeline.stages.publish import (  # noqa: E402
     write_json,
 )
 from pipeline.stages.summarise import summarise_stage  # noqa: E402
-from pipeline.stages.validate import begin_judging, judge_file, validate_stage  # noqa: E402
+from pipeline.stages.validate import (  # noqa: E402
+    Judged,
+    begin_judging,
+    judge_file,
+    validate_stage,
+)
 from pipeline.warehouse.reference import load_reference_tables, write_district_shapes  # noqa: E402
 
 
@@ -71,7 +77,10 @@ class RunContext:
     stages: dict[str, dict[str, Any]] = field(default_factory=dict)
     manifest: dict[str, Any] = field(default_factory=dict)
     batch_checks: dict[str, dict[str, Any]] = field(default_factory=dict)
+    judged: Judged | None = None  # what the ingest stage judged, handed to the validate stage
     touched_only: bool = False  # the validate stage settled only the versions new rows touch
+    changed_versions: str | None = None  # the results it changed then, for the measure stage
+    validated: ValidatedScope | None = None  # what the validate stage hands the link stage
     inbox_items: list[InboxFile] | None = None  # the scan stage's listing, read by the ingest stage
     landed: Landed | None = None  # what the ingest stage leaves (the table of this run's files)
     revise: str | None = None  # the reason given for a revision of an already published period
@@ -127,7 +136,8 @@ def ingest_task(run_id: str) -> dict[str, Any]:
         write_district_shapes(
             ctx.con, ctx.settings.config_dir, ctx.settings.districts
         )  # the report's maps
-        begin_judging(ctx.con)  # each file is judged by the validate stage's rules as it lands
+        # each file is judged by the validate stage's rules as it lands
+        judged = ctx.judged = begin_judging(ctx.con, files=LANDED_FILES)
         s = land_inbox(
             ctx.con,
             ctx.settings,
@@ -136,7 +146,7 @@ def ingest_task(run_id: str) -> dict[str, Any]:
             ctx.period.label,
             dt.date.today(),
             items=ctx.inbox_items,
-            sink=judge_file,
+            sink=lambda con, frame: judge_file(con, frame, judged),
         )
         ctx.landed = s
         return {"new files": s.files_new, "skipped": s.files_skipped, "held back": s.files_held_back,
@@ -149,8 +159,20 @@ def ingest_task(run_id: str) -> dict[str, Any]:
 @task(name="validate")
 def validate_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        s = validate_stage(ctx.con, ctx.settings, batch_gate=lambda con: _expectations(ctx, con))
+        if ctx.judged is None:
+            raise RuntimeError("the validate stage runs after the ingest stage has judged its rows")
+        s = validate_stage(
+            ctx.con,
+            ctx.settings,
+            ctx.judged,
+            batch_gate=lambda con, judged: _expectations(ctx, con, judged),
+        )
         ctx.touched_only = s.scope is not None and s.scope.kind == "touched"
+        ctx.changed_versions = s.changed_versions
+        ctx.validated = ValidatedScope(
+            s.scope.person_table if s.scope is not None else None,
+            ctx.judged.files if ctx.judged is not None else None,
+        )
         return {"valid": s.rows_valid, "rejected": s.rows_rejected, "lab_results": s.lab_results,
                 "versions settled": f"{s.scope.versions} ({s.scope.kind})",
                 "batches checked": len(ctx.batch_checks),
@@ -160,17 +182,26 @@ def validate_task(run_id: str) -> dict[str, Any]:
     return _stage(run_id, "validate", work)
 
 
-def _expectations(ctx: RunContext, con: duckdb.DuckDBPyConnection) -> dict[str, str]:
+def _expectations(
+    ctx: RunContext, con: duckdb.DuckDBPyConnection, judged: Judged
+) -> dict[str, str]:
     """Run the Great Expectations suites on this run's batches; the failed sources and why."""
     gate = ctx.settings.pipeline.quality_gate
     if not gate.great_expectations:
         return {}
-    from pipeline.stages.quality_gate import (
-        check_batches,  # GX itself is imported inside (it takes seconds)
+    from pipeline.stages.quality_gate import (  # GX itself is imported inside (it takes seconds)
+        Batch,
+        check_batches,
     )
 
     docs = quality_docs_dir(ctx.out, ctx.period) if gate.quality_pages != "never" else None
-    checks = check_batches(con, ctx.settings, docs, quality_pages=gate.quality_pages)
+    checks = check_batches(
+        con,
+        ctx.settings,
+        docs,
+        quality_pages=gate.quality_pages,
+        batch=Batch(judged.rows, judged.files),
+    )
     ctx.batch_checks = {
         s: {"success": c.success, "evaluated": c.evaluated, "failed": c.failed,
             "unexpected_row_ids": c.unexpected_row_ids, "seconds": round(c.seconds, 3)}
@@ -182,7 +213,12 @@ def _expectations(ctx: RunContext, con: duckdb.DuckDBPyConnection) -> dict[str, 
 @task(name="measure")
 def measure_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        s = measure_stage(ctx.con, ctx.settings, touched_only=ctx.touched_only)
+        s = measure_stage(
+            ctx.con,
+            ctx.settings,
+            touched_only=ctx.touched_only,
+            changed=ctx.changed_versions or "changed_versions",
+        )
         return {"creatinine/cystatin": s.egfr_rows, "eGFR": s.egfr_computed,
                 "albuminuria": s.acr_rows, "A category": s.acr_categorised}  # fmt: skip
 
@@ -192,7 +228,13 @@ def measure_task(run_id: str) -> dict[str, Any]:
 @task(name="link")
 def link_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        s = link_stage(ctx.con, ctx.settings, ctx.period, work=ctx.out / ".work" / ctx.period.label)
+        s = link_stage(
+            ctx.con,
+            ctx.settings,
+            ctx.period,
+            work=ctx.out / ".work" / ctx.period.label,
+            validated=ctx.validated,
+        )
         return {
             "persons": s.persons,
             "events confirmed": s.events_confirmed,

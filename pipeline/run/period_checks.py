@@ -25,7 +25,7 @@ import duckdb
 
 from pipeline.core.periods import Period
 from pipeline.core.settings import Settings
-from pipeline.warehouse.sql_files import _NAME
+from pipeline.warehouse.sql_files import checked_name
 
 #: The columns of the period's per-source table, in the order they are shown.
 PERIOD_COLUMNS = ("files", "read", "accepted", "rejected", "superseded", "duplicate", "withdrawn",
@@ -40,8 +40,7 @@ def rows_outside_period(
     how many of them were collected or reported after the period end (invisible to the period);
     only sources with such rows.
     """
-    if not _NAME.match(files):
-        raise ValueError(f"not a plain table name: {files!r}")
+    files = checked_name(files)
     rows = con.execute(
         f"""
         select v.source_id,

@@ -52,6 +52,7 @@ from pipeline.stages.ingest.landing import begin_landed_files, read_inbox_file, 
 from pipeline.stages.measure import measure_stage
 from pipeline.stages.publish import commit_month, open_warehouse
 from pipeline.stages.validate import (
+    Judged,
     begin_judging,
     judge_file,
     resolve_versions,
@@ -294,8 +295,8 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
     maybe_fail("reprocess:replaced")
     # the same path as a monthly run: reference tables, row rules file by file, gate, versions
     load_reference_tables(con, settings)
-    begin_judging(con)
     files = begin_landed_files(con)  # the ingest stage's table of this run's files
+    judged = begin_judging(con, files=files)
     cache = PersonKeyCache(key)
     for file_id, rel, sha, size, ingested_at, _, run_period in todo:
         item = InboxFile(source.id, inbox / rel, rel, sha, size, file_id=file_id)
@@ -310,7 +311,7 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
                                    "reprocessed") from None  # fmt: skip
         keyed = add_person_keys(frame, key, cache)
         del frame
-        judge_file(con, keyed)
+        judge_file(con, keyed, judged)
         del keyed
         record_landed_file(con, files, file_id)
     default = settings.pipeline.quality_gate.max_rejection_rate
@@ -321,14 +322,15 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
         if source.max_unmapped_share is not None
         else gate.max_unmapped_share
     )
-    _, _, held = validate_landed(
-        con, {source.id: limit}, _batch_gate(settings), {source.id: unmapped}
+    settled = validate_landed(
+        con, judged, {source.id: limit}, _batch_gate(settings), {source.id: unmapped}
     )
+    held = settled.held
     if held:
         raise ReprocessRefused(f"source {source.id}: under the current config the quality gate would hold it "
                                f"back ({held.get(source.id, '')}); nothing was reprocessed")  # fmt: skip
-    _, scope = resolve_versions(con, full=True)
-    update_ledger_counts(con, scope)
+    resolved = resolve_versions(con, settled, full=True)
+    update_ledger_counts(con, resolved.scope, judged.files)
     con.execute("update ingest_files set config_sha256 = ? where file_id in (select file_id from reprocess_files)",
                 [current])  # fmt: skip
     measure_stage(con, settings, touched_only=False)
@@ -369,12 +371,15 @@ def _batch_gate(settings: Settings) -> Any:
     if not gate.great_expectations:
         return None
 
-    def check(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
-        from pipeline.stages.quality_gate import (
-            check_batches,  # GX is imported only when the gate runs
+    def check(con: duckdb.DuckDBPyConnection, judged: Judged) -> dict[str, str]:
+        from pipeline.stages.quality_gate import (  # GX is imported only when the gate runs
+            Batch,
+            check_batches,
         )
 
-        checks = check_batches(con, settings, None, quality_pages="never")
+        checks = check_batches(
+            con, settings, None, quality_pages="never", batch=Batch(judged.rows, judged.files)
+        )
         return {s: "; ".join(c.failed[:3]) for s, c in checks.items() if not c.success}
 
     return check

@@ -31,7 +31,7 @@ import duckdb
 
 from pipeline.warehouse.catalog import PUBLISHED_TABLES
 from pipeline.warehouse.connection import add_missing_columns, fetch_frame
-from pipeline.warehouse.sql_files import _NAME, checked_name
+from pipeline.warehouse.sql_files import checked_name
 
 HISTORY_SCHEMA = "published_history"
 REVISIONS_FOLDER = "revisions"
@@ -282,8 +282,7 @@ def late_results(con: duckdb.DuckDBPyConnection, period: str, files: str | None)
     """
     if files is None:  # no ingest in this run
         return {}
-    if not _NAME.match(files):
-        raise ValueError(f"not a plain table name: {files!r}")
+    files = checked_name(files)
     rows = con.execute(
         f"""
         with earlier as (

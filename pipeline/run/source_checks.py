@@ -10,7 +10,7 @@ from pipeline.core.periods import Period
 from pipeline.core.pseudonymise import DEMO_KEY, PseudonymKey
 from pipeline.core.settings import Settings
 from pipeline.stages.ingest.inbox import InboxFile, extract_month, sha256_of
-from pipeline.stages.ingest.landing import land_inbox
+from pipeline.stages.ingest.landing import LANDED_FILES, land_inbox
 from pipeline.stages.validate import (
     begin_judging,
     judge_file,
@@ -58,7 +58,7 @@ def check_file(
         item = InboxFile(source_id, path, path.name, sha256_of(path), path.stat().st_size)
         # person keys are never shown here, so a throw-away key is enough
         key = PseudonymKey(secret=DEMO_KEY.encode(), is_demo=True)
-        begin_judging(con)
+        judged = begin_judging(con, files=LANDED_FILES)
         summary = land_inbox(
             con,
             settings,
@@ -67,7 +67,7 @@ def check_file(
             period or "check",
             dt.date.today(),
             items=[item],
-            sink=judge_file,
+            sink=lambda con_, frame: judge_file(con_, frame, judged),
         )
         report = CheckReport(period=period)
         if summary.held_back:
@@ -75,16 +75,18 @@ def check_file(
             return report
         source = settings.source(source_id)
         gate = settings.pipeline.quality_gate
-        report.unmapped = unmapped_codes(con).get(source_id, {})
+        report.unmapped = unmapped_codes(con, judged).get(source_id, {})
         unmapped_limit = (
             source.max_unmapped_share
             if source.max_unmapped_share is not None
             else gate.max_unmapped_share
         )
-        report.would_hold.extend(unmapped_over_limit(con, {source_id: unmapped_limit}).values())
-        validate_landed(con, {})
-        _, scope = resolve_versions(con)
-        update_ledger_counts(con, scope)
+        report.would_hold.extend(
+            unmapped_over_limit(con, {source_id: unmapped_limit}, judged).values()
+        )
+        settled = validate_landed(con, judged, {})
+        resolved = resolve_versions(con, settled)
+        update_ledger_counts(con, resolved.scope, judged.files)
         row = con.execute(
             "select rows_read, rows_accepted, rows_rejected, rows_superseded, rows_duplicate, "
             "rows_withdrawn, rows_pending from ingest_files"

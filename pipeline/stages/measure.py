@@ -45,13 +45,17 @@ def person_range(chunk: int, chunks: int) -> tuple[str, str]:
 
 
 def measure_stage(
-    con: duckdb.DuckDBPyConnection, settings: Settings, touched_only: bool = False
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    touched_only: bool = False,
+    changed: str = "changed_versions",
 ) -> MeasureSummary:
     """Bring ``kidney_measures`` up to date with ``lab_results``.
 
     Measures depend on one person's results only, so they are computed per chunk of persons,
-    and when ``touched_only`` (the validate stage settled a touched scope, whose persons are in
-    ``scope_persons``) only those persons' measures are computed again (:func:`update_touched`).
+    and when ``touched_only`` (the validate stage settled a touched scope and named the results
+    it changed: ``changed``, its result's ``changed_versions``) only the measures around those
+    results are computed again (:func:`update_touched`).
     """
     analytes = list(MEASURED_ANALYTES)
     stored = [c for (c,) in con.execute(
@@ -63,7 +67,7 @@ def measure_stage(
         # computed again, never mixed with rows made under the old rules
         touched_only = False
     if touched_only:
-        update_touched(con, settings, analytes)
+        update_touched(con, settings, analytes, changed)
         return _summary(con)
     con.execute("drop table if exists kidney_measures")
     total = con.execute(
@@ -90,7 +94,12 @@ def measure_stage(
     return _summary(con)
 
 
-def update_touched(con: duckdb.DuckDBPyConnection, settings: Settings, analytes: list[str]) -> None:
+def update_touched(
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    analytes: list[str],
+    changed: str = "changed_versions",
+) -> None:
     """Compute again the measures this run's versions can change, and store only the rows that
     changed.
 
@@ -99,7 +108,7 @@ def update_touched(con: duckdb.DuckDBPyConnection, settings: Settings, analytes:
     without specimen id) or of the same person, source and specimen (the lab's reported eGFR; a
     urine creatinine with a specimen id) (:func:`measure_frame`). So only the rows sharing a day
     or a specimen with a version that this run added, or whose outcome it changed
-    (``changed_versions``, from the validate stage), are computed again, from every result that
+    (``changed``, named by the validate stage), are computed again, from every result that
     shares a day or a specimen with one of those rows. (Before, every row of every touched
     person was computed again: a 10M-result month's measure stage took 5.7 s, now 2.5 s.)
 
@@ -112,6 +121,7 @@ def update_touched(con: duckdb.DuckDBPyConnection, settings: Settings, analytes:
     every column, nulls equal (an EXCEPT ALL of the two sets gave the same and took 6.3 s
     instead of 0.8 s).
     """
+    changed = checked_name(changed)
 
     def near_changed(rows: str) -> str:
         """Rows sharing a person and day, or a source, person and specimen, with ``rows``."""
@@ -124,8 +134,9 @@ def update_touched(con: duckdb.DuckDBPyConnection, settings: Settings, analytes:
     con.execute(
         "create or replace temp table measure_rows as "
         "select file_id, line_no, person_key, collected_date, source_id, specimen_id from lab_results "
-        "where list_contains($analytes, analyte) and person_key in (select person_key from changed_versions) "
-        f"and {near_changed('changed_versions')}",
+        "where list_contains($analytes, analyte) "
+        f"and person_key in (select person_key from {changed}) "
+        f"and {near_changed(changed)}",
         {"analytes": analytes},
     )
     results = fetch_frame(
@@ -147,8 +158,8 @@ def update_touched(con: duckdb.DuckDBPyConnection, settings: Settings, analytes:
         f"s.{checked_name(c)} is distinct from t.{checked_name(c)}" for c in MEASURE_COLUMNS
     )
     stored = (
-        "select * from kidney_measures where person_key in (select person_key from changed_versions) "
-        f"and {near_changed('changed_versions')}"
+        f"select * from kidney_measures where person_key in (select person_key from {changed}) "
+        f"and {near_changed(changed)}"
     )
     con.execute(
         f"""
@@ -161,14 +172,14 @@ def update_touched(con: duckdb.DuckDBPyConnection, settings: Settings, analytes:
         """
     )
     con.execute(
-        "delete from kidney_measures where person_key in (select person_key from changed_versions) "
+        f"delete from kidney_measures where person_key in (select person_key from {changed}) "
         "and (file_id, line_no) in (select file_id, line_no from measures_changed)"
     )
     con.execute(
         "insert into kidney_measures select t.* from measures_touched as t "
         "semi join measures_changed as c on c.file_id = t.file_id and c.line_no = t.line_no"
     )
-    for table in ("measure_rows", "measures_touched", "measures_changed", "changed_versions"):
+    for table in ("measure_rows", "measures_touched", "measures_changed", changed):
         con.execute(f"drop table {checked_name(table)}")
 
 

@@ -67,6 +67,7 @@ from typing import Any
 import duckdb
 
 from pipeline.core.settings import FHIR_STATUSES, Settings
+from pipeline.warehouse.sql import sql_over
 from pipeline.warehouse.sql_files import checked_name
 
 log = logging.getLogger(__name__)
@@ -78,7 +79,14 @@ WITHDRAWN_STATUSES = ("cancelled", "entered-in-error")
 #: Sex codes after staging (DEVELOPERS.md, Design notes: F, M, U; FHIR female/male mapped, anything else U).
 SEX_CODES = ("F", "M", "U")
 #: Columns that must never be null on a well-formed row.
-KEY_COLUMNS = ("person_key", "collected_date", "analyte", "source_id", "file_id", "line_no")
+KEY_COLUMNS = (
+    "person_key",
+    "collected_date",
+    "analyte",
+    "source_id",
+    "file_id",
+    "line_no",
+)  # (sql/checks/batch_cells.sql counts the nulls of each)
 #: When the Data Docs are built (setting ``quality_gate.quality_pages``).
 QUALITY_PAGES_CHOICES = ("on_failure", "always", "never")
 
@@ -115,7 +123,6 @@ FRAMES: dict[str, tuple[str, ...]] = {
     "batch_cells": ("source_id", "analyte_unit", "status", "sex"),
     "batch_totals": ("source_id",),
 }
-_TABLE = "results_validated"  # a temporary table of the run's connection
 _WITHDRAWN = "coalesce(v.status, '') in ('cancelled', 'entered-in-error')"
 _NUMBER = "v.value is not null and not isnan(v.value)"
 
@@ -176,6 +183,17 @@ EXTERNAL_ASSET = re.compile(
 )
 
 
+@dataclass(frozen=True)
+class Batch:
+    """What the gate checks, as the validate stage hands it over: the run's judged rows (a
+    temporary table of the run's connection) and the relation of the ids of the files the run
+    landed (None: every file from the batch's first on).
+    """
+
+    rows: str = "results_validated"
+    files: str | None = None
+
+
 @dataclass
 class BatchCheck:
     """The quality gate's verdict on one source's batch of this run.
@@ -203,7 +221,7 @@ class BatchCheck:
 class _Check:
     """One expectation, the frame it runs on, and the rows of a batch that break it.
 
-    ``rows`` is a SQL predicate over ``results_validated as v`` (left-joined to
+    ``rows`` is a SQL predicate over the batch's rows ``v`` (left-joined to
     ``reference.ranges as r``) that holds exactly on the well-formed rows behind a failing
     summary row; None for a check that is not about rows (columns, row-count balance).
     """
@@ -220,10 +238,11 @@ def check_batches(
     docs_dir: Path | None,
     *,
     quality_pages: str | None = None,
+    batch: Batch = Batch(),
 ) -> dict[str, BatchCheck]:
     """Validate the summary of every source's batch of this run; build Data Docs if asked.
 
-    Returns one :class:`BatchCheck` per source with rows in ``results_validated``.
+    Returns one :class:`BatchCheck` per source with rows in ``batch.rows``.
     ``docs_dir`` (restricted output: see the module docstring) receives the Data Docs; None
     skips them. ``quality_pages`` (default: the setting ``quality_gate.quality_pages``): on_failure
     builds them only when some batch failed (a clean run leaves no report there), always on
@@ -235,18 +254,19 @@ def check_batches(
         raise ValueError(
             f"quality_pages must be one of {', '.join(QUALITY_PAGES_CHOICES)}, not {mode!r}"
         )
-    present = _present_columns(con)
+    table = checked_name(batch.rows)
+    present = _present_columns(con, table)
     frames = {
-        "standardised_columns": _schema_frame(con),
-        "batch_cells": _cells_frame(con, present),
-        "batch_totals": _totals_frame(con),
+        "standardised_columns": _schema_frame(con, table),
+        "batch_cells": _cells_frame(con, present, table),
+        "batch_totals": _totals_frame(con, batch),
     }
     totals = {r["source_id"]: r for r in frames["batch_totals"].to_dict("records")
               if isinstance(r["source_id"], str)}  # fmt: skip
     if not totals:
         return {}
     spec = _SuiteSpec.from_reference(con)
-    checks = _checks(spec)
+    checks = _checks(spec, table)
     context = _ephemeral_context(docs_dir)
     datasource = context.data_sources.add_pandas(_DATASOURCE)
     outcomes: dict[str, Any] = {}
@@ -274,7 +294,7 @@ def check_batches(
             continue
         for source_id, cells in _failing_sources(item, check, sources).items():
             began = time.perf_counter()
-            reason, ids = _reason(con, check, item, cells, totals[source_id], present)
+            reason, ids = _reason(con, check, item, cells, totals[source_id], present, table)
             own_seconds[source_id] += time.perf_counter() - began
             failures[source_id][check.name] = reason
             row_ids[source_id] += [i for i in dict.fromkeys(ids) if i not in row_ids[source_id]]
@@ -304,11 +324,11 @@ def check_batches(
 # --------------------------------------------------------------------------- the summaries
 
 
-def _present_columns(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
+def _present_columns(con: duckdb.DuckDBPyConnection, table: str) -> dict[str, str]:
     """Columns of the table and their DuckDB types."""
     return dict(con.execute(
         "select column_name, data_type from duckdb_columns() "
-        "where database_name = 'temp' and schema_name = 'main' and table_name = 'results_validated'"
+        "where database_name = 'temp' and schema_name = 'main' and table_name = ?", [table]
     ).fetchall())  # fmt: skip
 
 
@@ -322,99 +342,46 @@ def _col(present: dict[str, str], name: str) -> str:
     return f"v.{name}" if present[name] == want else f"try_cast(v.{name} as {want})"
 
 
-def _frame(con: duckdb.DuckDBPyConnection, query: str) -> Any:
+def _frame(con: duckdb.DuckDBPyConnection, query: str, params: dict[str, Any] | None = None) -> Any:
     """A small query result as a pandas frame (through polars' Arrow path)."""
-    return con.sql(query).pl().to_pandas()
+    return con.sql(query, params=params or None).pl().to_pandas()
 
 
-def _schema_frame(con: duckdb.DuckDBPyConnection) -> Any:
-    names = ", ".join(f"'{c}'" for c in STANDARD_COLUMNS)
-    return _frame(con, f"""
+def _schema_frame(con: duckdb.DuckDBPyConnection, table: str) -> Any:
+    return _frame(con, """
         select column_name, data_type, column_name || ' ' || data_type as column_type
         from duckdb_columns()
-        where database_name = 'temp' and schema_name = 'main' and table_name = 'results_validated'
-          and column_name in ({names})
+        where database_name = 'temp' and schema_name = 'main' and table_name = $table
+          and column_name in (select unnest($names::varchar[]))
         order by column_index
-    """)  # fmt: skip
+    """, {"table": table, "names": list(STANDARD_COLUMNS)})  # fmt: skip
 
 
-def _cells_frame(con: duckdb.DuckDBPyConnection, present: dict[str, str]) -> Any:
-    """One row per source x analyte x unit x status x sex of the well-formed rows (one scan).
-
-    NaN counts as no value (``nullif``: DuckDB sorts NaN above every number, so it would
-    otherwise hide in the greatest value); the status is a key of the cell, so withdrawn cells
-    are told apart after the aggregation, where the plausible range is joined on too.
+def _cells_frame(con: duckdb.DuckDBPyConnection, present: dict[str, str], table: str) -> Any:
+    """One row per source x analyte x unit x status x sex of the well-formed rows, in one scan
+    (``sql/checks/batch_cells.sql``, over the standard columns in their types).
     """
-    c = {name: _col(present, name) for name in STANDARD_COLUMNS}
-    number = f"nullif({c['value']}, 'nan'::double)"
-    withdrawn = f"coalesce(g.status, '') in ({', '.join(repr(s) for s in WITHDRAWN_STATUSES)})"
-    nulls = "".join(
-        f",\n                   count(*) - count({c[k]}) as null_{k}" for k in KEY_COLUMNS
-    )
-    null_columns = "".join(f", g.null_{k}" for k in KEY_COLUMNS)
-    return _frame(con, f"""
-        with g as (
-            select {c['source_id']} as source_id, {c['analyte']} as analyte, {c['unit']} as unit,
-                   {c['status']} as status, {c['sex']} as sex, count(*) as rows,
-                   min({number}) as least, max({number}) as greatest, count({number}) as numbers{nulls}
-            from {_TABLE} as v
-            where v.reason_code is null
-            group by 1, 2, 3, 4, 5
-        )
-        select g.source_id,
-               coalesce(g.analyte, '(none)') || ' [' || coalesce(g.unit, '(none)') || ']' as analyte_unit,
-               g.analyte, g.unit, g.status, g.sex, g.rows,
-               case when {withdrawn} then null else g.least end as value_min,
-               case when {withdrawn} then null else g.greatest end as value_max,
-               case when {withdrawn} then null else r.min_value end as range_min,
-               case when {withdrawn} then null else r.max_value end as range_max,
-               -- an ordinal result (a dipstick reading) carries a reading, not a number
-               case when {withdrawn} or a.result_type = 'ordinal' then 0
-                    else g.rows - g.numbers end as missing_value{null_columns}
-        from g
-        left join reference.ranges as r on r.analyte = g.analyte
-        left join reference.analytes as a on a.analyte = g.analyte
-        order by 1, 2, 3, 4, 5, 6
-    """)  # fmt: skip
+    needed = ("source_id", "analyte", "unit", "status", "sex", "value", *KEY_COLUMNS)
+    columns = ", ".join(f"{_col(present, n)} as {n}" for n in dict.fromkeys(needed))
+    rows = f"select {columns} from {checked_name(table)} as v where v.reason_code is null"
+    query = sql_over("batch_cells", {"batch_rows": rows})
+    return _frame(con, query, {"withdrawn": list(WITHDRAWN_STATUSES)})
 
 
-def _totals_frame(con: duckdb.DuckDBPyConnection) -> Any:
-    """One row per source with rows in the run: batch, rejected, duplicated ids, rows read."""
+def _totals_frame(con: duckdb.DuckDBPyConnection, batch: Batch) -> Any:
+    """One row per source with rows in the run: batch, rejected, duplicated ids, rows read
+    (``sql/checks/batch_totals.sql``).
+    """
+    table = checked_name(batch.rows)
     # this run's files: those it landed (a reprocess lands earlier files again), else every file
     # from the batch's first on
-    landed = con.execute(
-        "select count(*) from duckdb_tables() where temporary and table_name = 'landed_files'"
-    ).fetchall()[0][0]
-    these_files = ("file_id in (select file_id from landed_files)" if landed
-                   else f"file_id >= (select min(file_id) from {_TABLE})")  # fmt: skip
-    return _frame(con, f"""
-        with batch as (
-            select source_id,
-                   count(*) filter (where reason_code is null) as rows,
-                   count(*) filter (where reason_code is not null) as rejected
-            from {_TABLE} group by source_id
-        ),
-        copies as (
-            select source_id, sum(n) as duplicate_row_ids
-            from (select source_id, file_id, line_no, count(*) as n
-                  from {_TABLE} where reason_code is null
-                  group by source_id, file_id, line_no having count(*) > 1)
-            group by source_id
-        ),
-        files as (
-            select source_id, sum(rows_read) as rows_read
-            from ingest_files
-            where status <> 'duplicate_file' and {these_files}
-            group by source_id
-        )
-        select b.source_id, b.rows, b.rejected, b.rows + b.rejected as rows_landed,
-               coalesce(f.rows_read, 0)::bigint as rows_read,
-               coalesce(c.duplicate_row_ids, 0)::bigint as duplicate_row_ids
-        from batch as b
-        left join files as f on f.source_id = b.source_id
-        left join copies as c on c.source_id = b.source_id
-        order by b.source_id
-    """)  # fmt: skip
+    files = (
+        f"select file_id from {checked_name(batch.files)}"
+        if batch.files
+        else f"select file_id from ingest_files where file_id >= (select min(file_id) from {table})"
+    )
+    query = sql_over("batch_totals", {"batch_rows": f"select * from {table}", "batch_files": files})
+    return _frame(con, query)
 
 
 # --------------------------------------------------------------------------- the suites
@@ -438,7 +405,7 @@ class _SuiteSpec:
         return cls(dict(units), {a: (float(lo), float(hi)) for a, lo, hi in ranges})
 
 
-def _checks(spec: _SuiteSpec) -> list[_Check]:
+def _checks(spec: _SuiteSpec, table: str) -> list[_Check]:
     """Every expectation of the three suites, each with the rows that break it."""
     import great_expectations as gx
 
@@ -447,8 +414,6 @@ def _checks(spec: _SuiteSpec) -> list[_Check]:
                        for a, (lo, hi) in sorted(spec.ranges.items()))  # fmt: skip
     range_note = ("range_min and range_max are the plausible range of the cell's analyte in its "
                   f"canonical unit (reference.ranges), null on withdrawn results: {ranges}")  # fmt: skip
-    statuses = ", ".join(f"'{s}'" for s in FHIR_STATUSES)
-    sexes = ", ".join(f"'{s}'" for s in SEX_CODES)
     checks = [
         _Check("expect_column_distinct_values_to_equal_set(column_name)", "standardised_columns",
                e.ExpectColumnDistinctValuesToEqualSet(
@@ -472,10 +437,10 @@ def _checks(spec: _SuiteSpec) -> list[_Check]:
                "where a.analyte = v.analyte and a.canonical_unit is not distinct from v.unit)"),
         _Check("expect_column_values_to_be_in_set(status)", "batch_cells",
                e.ExpectColumnValuesToBeInSet(column="status", value_set=list(FHIR_STATUSES)),
-               f"v.status not in ({statuses})"),
+               "v.status not in (select unnest($statuses::varchar[]))"),
         _Check("expect_column_values_to_be_in_set(sex)", "batch_cells",
                e.ExpectColumnValuesToBeInSet(column="sex", value_set=list(SEX_CODES)),
-               f"v.sex not in ({sexes})"),
+               "v.sex not in (select unnest($sexes::varchar[]))"),
         # a null value is allowed only on a withdrawn result
         _Check("expect_column_values_to_be_between(missing_value, 0, 0)", "batch_cells",
                e.ExpectColumnValuesToBeBetween(
@@ -507,7 +472,7 @@ def _checks(spec: _SuiteSpec) -> list[_Check]:
                e.ExpectColumnValuesToBeBetween(
                    column="duplicate_row_ids", min_value=0, max_value=0,
                    notes="rows whose row id (file_id:line_no) occurs more than once in the batch"),
-               f"(v.file_id, v.line_no) in (select (file_id, line_no) from {_TABLE} "
+               f"(v.file_id, v.line_no) in (select (file_id, line_no) from {table} "
                "where source_id = $source and reason_code is null "
                "group by file_id, line_no having count(*) > 1)"),
         _Check(ROW_COUNT_CHECK, "batch_totals",
@@ -554,7 +519,7 @@ def _failing_sources(
 
 
 def _reason(con: duckdb.DuckDBPyConnection, check: _Check, item: Any, cells: list[dict[str, Any]],
-            totals: dict[str, Any], present: dict[str, str]) -> tuple[str, list[str]]:  # fmt: skip
+            totals: dict[str, Any], present: dict[str, str], table: str) -> tuple[str, list[str]]:  # fmt: skip
     """Why the check failed for one source, and the first failing row ids."""
     info = item.exception_info or {}
     if info.get("raised_exception"):
@@ -568,7 +533,7 @@ def _reason(con: duckdb.DuckDBPyConnection, check: _Check, item: Any, cells: lis
         if unexpected:
             return f"unexpected {_short(unexpected)}", []
         return f"observed {_short(outcome.get('observed_value'))}", []
-    count, ids = _failing_rows(con, check.rows, totals["source_id"])
+    count, ids = _failing_rows(con, check.rows, totals["source_id"], table)
     where = "; ".join(_describe(c) for c in cells[:3]) + (
         f"; {len(cells) - 3} more" if len(cells) > 3 else ""
     )
@@ -576,16 +541,17 @@ def _reason(con: duckdb.DuckDBPyConnection, check: _Check, item: Any, cells: lis
 
 
 def _failing_rows(
-    con: duckdb.DuckDBPyConnection, predicate: str, source_id: str
+    con: duckdb.DuckDBPyConnection, predicate: str, source_id: str, table: str
 ) -> tuple[int, list[str]]:
     """How many of the source's well-formed rows break a check, and the first row ids."""
-    base = (f"from {checked_name(_TABLE)} as v left join reference.ranges as r on r.analyte = v.analyte "
+    base = (f"from {checked_name(table)} as v left join reference.ranges as r on r.analyte = v.analyte "
             f"where v.source_id = $source and v.reason_code is null and ({predicate})")  # fmt: skip
-    params = {"source": source_id}
+    values = {"source": source_id, "statuses": list(FHIR_STATUSES), "sexes": list(SEX_CODES)}
+    params = {k: v for k, v in values.items() if re.search(rf"\${k}\b", base)}
     count = con.execute(f"select count(*) {base}", params).fetchall()[0][0]
     ids = con.execute(
         f"select v.file_id::varchar || ':' || v.line_no::varchar {base} "
-        f"order by v.file_id, v.line_no limit $limit",
+        "order by v.file_id, v.line_no limit $limit",
         {**params, "limit": MAX_UNEXPECTED_IDS},
     ).fetchall()
     return int(count), [i for (i,) in ids]

@@ -24,7 +24,7 @@ from pipeline.core.landed import empty_landed
 from pipeline.core.settings import Settings
 from pipeline.warehouse.connection import with_frame
 from pipeline.warehouse.sql import build_table, build_view, sql_over
-from pipeline.warehouse.sql_files import read_sql
+from pipeline.warehouse.sql_files import checked_name, read_sql
 from pipeline.warehouse.versions import close_over_partitions
 
 #: The as-of date of "everything received so far".
@@ -37,7 +37,49 @@ class BalanceError(Exception):
     """Rows read differ from the sum of their outcomes for some file."""
 
 
-@dataclass
+# --------------------------------------------------------------------------- the hand-offs
+# Each step below takes what the step before it left, by name, from its result: no step reads
+# another's temporary relation by a name of its own or probes whether it exists.
+
+
+@dataclass(frozen=True)
+class Judged:
+    """What :func:`begin_judging` starts and :func:`judge_file` fills, for the quality gate and
+    :func:`validate_landed`: this run's judged rows, its unmapped code values and the ids of the
+    files it landed (filled by the ingest stage; None when no such relation is kept).
+    """
+
+    rows: str = "results_validated"
+    unmapped: str = "unmapped_code_values"
+    files: str | None = "landed_files"
+
+
+@dataclass(frozen=True)
+class Settled:
+    """What :func:`validate_landed` leaves for :func:`resolve_versions`: this run's versions
+    (``versions``, a temporary view over ``judged.rows``) and the counts it passes on.
+    """
+
+    judged: Judged
+    versions: str
+    valid: int
+    rejected: int
+    held: dict[str, str]
+
+
+@dataclass(frozen=True)
+class Resolved:
+    """What :func:`resolve_versions` leaves: the rows of lab_results, the scope it settled and,
+    in a touched scope, ``changed`` (the temporary table of the results whose accepted set the
+    run can change, for the measure stage, which drops it). None in a scope of every version.
+    """
+
+    lab_results: int
+    scope: Scope
+    changed: str | None = None
+
+
+@dataclass(frozen=True)
 class ValidateSummary:
     rows_valid: int = 0
     rows_rejected: int = 0
@@ -47,6 +89,9 @@ class ValidateSummary:
     scope: Scope | None = None
     #: source -> field -> {config_key, rows, values}: code values the source config does not map
     unmapped: dict[str, dict[str, dict]] = field(default_factory=dict)
+    #: the temporary table of the results this run's versions changed (a touched scope), for the
+    #: measure stage; None when every version was settled (every measure is computed again)
+    changed_versions: str | None = None
 
 
 def _judged_sql() -> str:
@@ -65,32 +110,45 @@ def _unmapped_sql() -> str:
     })  # fmt: skip
 
 
-def begin_judging(con: duckdb.DuckDBPyConnection) -> None:
+def begin_judging(con: duckdb.DuckDBPyConnection, files: str | None = "landed_files") -> Judged:
     """Start this run's ``results_validated`` and ``unmapped_code_values`` (temporary
-    tables), empty.
+    tables), empty; ``files``: the relation of this run's file ids that the ingest stage fills.
     """
+    judged = Judged(files=files)
     with_frame(
-        con, empty_landed(), "create or replace temp table results_validated as\n" + _judged_sql()
+        con,
+        empty_landed(),
+        f"create or replace temp table {checked_name(judged.rows)} as\n" + _judged_sql(),
     )
     with_frame(
         con,
         empty_landed(),
-        "create or replace temp table unmapped_code_values as\n" + _unmapped_sql(),
+        f"create or replace temp table {checked_name(judged.unmapped)} as\n" + _unmapped_sql(),
     )
+    return judged
 
 
-def judge_file(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) -> None:
-    """Judge one file's landed rows (the ingest stage's sink) into ``results_validated``.
+def judge_file(
+    con: duckdb.DuckDBPyConnection, frame: pl.DataFrame, judged: Judged = Judged()
+) -> None:
+    """Judge one file's landed rows (the ingest stage's sink) into ``judged.rows``.
 
     The rules read one row and the reference tables only, so judging file by file gives the
     same rows as judging the run at once; the raw line is kept on rejected rows only.
     """
     with_frame(
-        con, frame, "insert into results_validated\n" + _judged_sql(), batch_rows=JUDGE_BATCH_ROWS
+        con,
+        frame,
+        f"insert into {checked_name(judged.rows)}\n" + _judged_sql(),
+        batch_rows=JUDGE_BATCH_ROWS,
     )
     candidates = _unmapped_candidates(con, frame)
     if candidates.height:  # usually none: the unmapped-code query then costs nothing
-        with_frame(con, candidates, "insert into unmapped_code_values\n" + _unmapped_sql())
+        with_frame(
+            con,
+            candidates,
+            f"insert into {checked_name(judged.unmapped)}\n" + _unmapped_sql(),
+        )
 
 
 _KNOWN_SEX = ["F", "FEMALE", "M", "MALE", "U", "UNKNOWN", "OTHER"]
@@ -134,24 +192,19 @@ def _unmapped_candidates(con: duckdb.DuckDBPyConnection, frame: pl.DataFrame) ->
 GATED_UNMAPPED_FIELDS = ("sex", "unit")
 
 
-def _has_unmapped_table(con: duckdb.DuckDBPyConnection) -> bool:
-    return bool(
-        con.execute(
-            "select count(*) from duckdb_tables() where temporary "
-            "and table_name = 'unmapped_code_values'"
-        ).fetchall()[0][0]
-    )
-
-
-def unmapped_codes(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, dict]]:
+def unmapped_codes(
+    con: duckdb.DuckDBPyConnection, judged: Judged | None
+) -> dict[str, dict[str, dict]]:
     """Return this run's unmapped code values, per source and field: the config key that maps them,
-    the rows affected and the rows per value (most frequent first, at most 20 values).
+    the rows affected and the rows per value (most frequent first, at most 20 values). None
+    (nothing was judged): none.
     """
     out: dict[str, dict[str, dict]] = {}
-    if not _has_unmapped_table(con):
+    if judged is None:
         return out
     for source, field_name, key, code, n in con.execute(
-        "select source_id, field, config_key, code, sum(rows)::bigint from unmapped_code_values "
+        "select source_id, field, config_key, code, sum(rows)::bigint "
+        f"from {checked_name(judged.unmapped)} "
         "group by all order by source_id, field, sum(rows) desc, code"
     ).fetchall():
         entry = out.setdefault(source, {}).setdefault(
@@ -163,24 +216,23 @@ def unmapped_codes(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, dict]]
     return out
 
 
-def unmapped_over_limit(con: duckdb.DuckDBPyConnection, limits: dict[str, float]) -> dict[str, str]:
+def unmapped_over_limit(
+    con: duckdb.DuckDBPyConnection, limits: dict[str, float], judged: Judged | None
+) -> dict[str, str]:
     """Sources whose share of this run's rows with an unmapped sex or unit value exceeds their
     limit, with the reason (the quality gate holds them back like the rejection rate).
     """
     held: dict[str, str] = {}
-    if not _has_unmapped_table(con):
+    if judged is None:
         return held
-    rows = con.execute(
-        """
-        select r.source_id, r.n, coalesce(u.unmapped, 0) as unmapped
-        from (select source_id, count(*) as n from results_validated group by source_id) as r
-        left join (select source_id, sum(rows) as unmapped from unmapped_code_values
-                   where field in (select unnest($fields::varchar[])) group by source_id) as u
-            on u.source_id = r.source_id
-        order by r.source_id
-        """,
-        {"fields": list(GATED_UNMAPPED_FIELDS)},
-    ).fetchall()
+    query = sql_over(
+        "unmapped_share",
+        {
+            "judged_rows": f"select * from {checked_name(judged.rows)}",
+            "judged_unmapped": f"select * from {checked_name(judged.unmapped)}",
+        },
+    )
+    rows = con.execute(query, {"fields": list(GATED_UNMAPPED_FIELDS)}).fetchall()
     for source, n, unmapped in rows:
         limit = limits.get(source, 1.0)
         if n and unmapped / n > limit:
@@ -196,29 +248,36 @@ def unmapped_over_limit(con: duckdb.DuckDBPyConnection, limits: dict[str, float]
 JUDGE_BATCH_ROWS = 32_768
 
 
+#: The quality gate's Great Expectations suites over a run's judged rows: the sources whose
+#: batch failed, with the reason.
+BatchGate = Callable[[duckdb.DuckDBPyConnection, Judged], dict[str, str]]
+
+
 def validate_landed(
     con: duckdb.DuckDBPyConnection,
+    judged: Judged,
     rejection_limits: dict[str, float],
-    batch_gate: Callable[[duckdb.DuckDBPyConnection], dict[str, str]] | None = None,
+    batch_gate: BatchGate | None = None,
     unmapped_limits: dict[str, float] | None = None,
-) -> tuple[int, int, dict[str, str]]:
-    """Settle this run's judged rows (``results_validated``, filled by :func:`judge_file`):
+) -> Settled:
+    """Settle this run's judged rows (``judged.rows``, filled by :func:`judge_file`):
     append them to rejected_rows, or keep them as this run's versions (the temporary view
-    ``new_versions``, stored by :func:`resolve_versions`).
+    ``new_versions``, named in the result and stored by :func:`resolve_versions`).
 
     A source whose share of rejected rows in this run exceeds its limit is held back: its files
     are marked ``held_back`` with the reason and none of their rows is stored, so the next run
     tries them again. ``batch_gate`` (the Great Expectations suites) returns the sources whose
     batch failed, with the reason; they are held back the same way.
     """
-    failed_batches = batch_gate(con) if batch_gate is not None else {}
-    unmapped = unmapped_over_limit(con, unmapped_limits) if unmapped_limits else {}
-    held = hold_back_sources(con, rejection_limits, failed_batches, unmapped)
+    failed_batches = batch_gate(con, judged) if batch_gate is not None else {}
+    unmapped = unmapped_over_limit(con, unmapped_limits, judged) if unmapped_limits else {}
+    held = hold_back_sources(con, judged, rejection_limits, failed_batches, unmapped)
+    rows = checked_name(judged.rows)
     rejected = con.execute(
-        """
+        f"""
         insert into rejected_rows
         select v.source_id, v.file_id, f.file_path, v.line_no, v.raw_text, v.reason_code, v.message
-        from results_validated as v
+        from {rows} as v
         join ingest_files as f on f.file_id = v.file_id
         where v.reason_code is not null and v.file_id not in (select file_id from ingest_files where status = 'held_back')
         """
@@ -227,20 +286,21 @@ def validate_landed(
     # just above) or belong to a held-back file. They wait, as a view, until their outcomes are
     # settled (resolve_versions): inserted once with their outcome, not inserted and then updated
     con.execute(
-        "delete from results_validated where reason_code is not null "
+        f"delete from {rows} where reason_code is not null "
         "or file_id in (select file_id from ingest_files where status = 'held_back')"
     )
     con.execute(
         "create or replace temp view new_versions as "
         "select * exclude (reason_code, message, raw_text), cast(null as varchar) as outcome "
-        "from results_validated"
+        f"from {rows}"
     )
     valid = con.execute("select count(*) from new_versions").fetchall()[0][0]
-    return valid, rejected, held
+    return Settled(judged, "new_versions", valid, rejected, held)
 
 
 def hold_back_sources(
     con: duckdb.DuckDBPyConnection,
+    judged: Judged,
     rejection_limits: dict[str, float],
     failed_batches: dict[str, str] | None = None,
     unmapped: dict[str, str] | None = None,
@@ -249,11 +309,15 @@ def hold_back_sources(
     limit of unmapped sex or unit values, or whose batch failed its expectation suite.
     """
     rates = con.execute(
-        """
-        select source_id, count(*) as n, count(*) filter (where reason_code is not null) as rejected
-        from results_validated group by source_id order by source_id
-        """
+        "select source_id, count(*) as n, count(*) filter (where reason_code is not null) "
+        f"as rejected from {checked_name(judged.rows)} group by source_id order by source_id"
     ).fetchall()
+    # the files of this run that a held-back source's rows came from
+    these_files = (
+        f"file_id in (select file_id from {checked_name(judged.files)})"
+        if judged.files
+        else f"file_id in (select file_id from {checked_name(judged.rows)})"
+    )
     held: dict[str, str] = {}
     for source_id, n, rejected in rates:
         limit = rejection_limits.get(source_id, 1.0)
@@ -271,7 +335,7 @@ def hold_back_sources(
             held[source_id] = "held back this month: " + "; ".join(reasons)
             con.execute(
                 "update ingest_files set status = 'held_back', message = ? "
-                "where source_id = ? and file_id in (select file_id from landed_files)",
+                f"where source_id = ? and {these_files}",
                 [held[source_id], source_id],
             )
             # a copy of a held-back file, recorded as its duplicate, is held back with it
@@ -288,19 +352,26 @@ def hold_back_sources(
 FULL_SCOPE_SHARE = 0.3
 
 
-@dataclass
+@dataclass(frozen=True)
 class Scope:
-    """The versions a run settles: all of them, or those that new rows can change."""
+    """The versions a run settles: all of them, or those that new rows can change.
+
+    In a touched scope ``person_table`` and ``version_table`` name the temporary tables of its
+    persons and versions (kept for the rest of the run: the link stage starts from its persons
+    when its seed is the same); None in a scope of every version.
+    """
 
     kind: str  # "all" | "touched"
     versions: int
     persons: int
+    person_table: str | None = None
+    version_table: str | None = None
 
 
-def settle_scope(con: duckdb.DuckDBPyConnection, full: bool = False) -> Scope:
+def settle_scope(con: duckdb.DuckDBPyConnection, settled: Settled, full: bool = False) -> Scope:
     """Point the view ``versions_in_scope`` at the versions whose outcome this run must settle.
 
-    New rows (this run's ``new_versions``) can change only the outcome of versions that share a
+    New rows (this run's versions, ``settled.versions``) can change only the outcome of versions that share a
     partition with them in ``result_versions_resolved.sql``: the same person (copies, and
     versions without a specimen id, and the same result from two sources are all within one
     person) or the same source + specimen + analyte (versions with a specimen id, which a
@@ -309,12 +380,13 @@ def settle_scope(con: duckdb.DuckDBPyConnection, full: bool = False) -> Scope:
     would. When most versions are new (a first run, a backfill) the whole table is the scope,
     and so it is when ``full`` (a reprocess, whose replaced rows no longer seed the closure).
     """
+    new_versions = checked_name(settled.versions)
     con.execute(
         "create or replace temp view all_versions as "
-        "select * from result_versions union all by name select * from new_versions"
+        f"select * from result_versions union all by name select * from {new_versions}"
     )
     stored = con.execute("select count(*) from result_versions").fetchall()[0][0]
-    new = con.execute("select count(*) from new_versions").fetchall()[0][0]
+    new = con.execute(f"select count(*) from {new_versions}").fetchall()[0][0]
     total = stored + new
     if total == 0 or full or new >= FULL_SCOPE_SHARE * total:
         con.execute("create or replace temp view versions_in_scope as select * from all_versions")
@@ -324,7 +396,7 @@ def settle_scope(con: duckdb.DuckDBPyConnection, full: bool = False) -> Scope:
         return Scope("all", total, persons)
     size = close_over_partitions(
         con,
-        "select person_key, source_id, specimen_id, analyte from new_versions",
+        f"select person_key, source_id, specimen_id, analyte from {new_versions}",
         {},
         "scope_persons",
         "scope_versions",
@@ -332,32 +404,28 @@ def settle_scope(con: duckdb.DuckDBPyConnection, full: bool = False) -> Scope:
     )
     con.execute("create or replace temp view versions_in_scope as select * from scope_versions")
     persons = con.execute("select count(*) from scope_persons").fetchall()[0][0]
-    return Scope("touched", size, persons)
+    return Scope("touched", size, persons, "scope_persons", "scope_versions")
 
 
-def resolve_versions(con: duckdb.DuckDBPyConnection, full: bool = False) -> tuple[int, Scope]:
+def resolve_versions(
+    con: duckdb.DuckDBPyConnection, settled: Settled, full: bool = False
+) -> Resolved:
     """Settle the outcome of the versions in scope and bring lab_results up to date.
 
     Returns the rows of lab_results (a view: the accepted versions) and the scope; in a touched
-    scope ``scope_persons`` names the persons whose results may have changed, for the measure
+    scope ``changed`` names the results whose accepted set may have changed, for the measure
     stage.
     """
-    scope = settle_scope(con, full)
+    new_versions = checked_name(settled.versions)
+    scope = settle_scope(con, settled, full)
     build_table(con, "result_versions_resolved", params={"as_of": NO_LIMIT}, temporary=True)
+    changed = None
     if scope.kind == "touched":
         # the results whose accepted set this run can change: its own versions and the stored
         # ones whose outcome changes; the measure stage recomputes only around them
-        con.execute(
-            """
-            create or replace temp table changed_versions as
-            select person_key, source_id, specimen_id, collected_date from new_versions
-            union
-            select v.person_key, v.source_id, v.specimen_id, v.collected_date
-            from result_versions as v
-            join result_versions_resolved as r on r.file_id = v.file_id and r.line_no = v.line_no
-            where v.outcome is distinct from r.outcome
-            """
-        )
+        changed = "changed_versions"
+        query = sql_over("changed_versions", {"new_versions": f"select * from {new_versions}"})
+        con.execute(f"create or replace temp table {changed} as\n{query}")
     # stored versions whose outcome changed (an amendment supersedes them, ...), then this
     # run's versions, stored once with their outcome
     con.execute(
@@ -369,20 +437,20 @@ def resolve_versions(con: duckdb.DuckDBPyConnection, full: bool = False) -> tupl
         """
     )
     con.execute(
-        """
+        f"""
         insert into result_versions
         select n.* replace (r.outcome as outcome)
-        from new_versions as n
+        from {new_versions} as n
         join result_versions_resolved as r on r.file_id = n.file_id and r.line_no = n.line_no
         """
     )
     record_specimen_conflicts(con)
     con.execute("drop view all_versions")
-    con.execute("drop view new_versions")
+    con.execute(f"drop view {new_versions}")
     con.execute("drop view versions_in_scope")
     build_view(con, "lab_results")
     n = con.execute("select count(*) from lab_results").fetchall()[0][0]
-    return n, scope
+    return Resolved(n, scope, changed)
 
 
 def record_specimen_conflicts(con: duckdb.DuckDBPyConnection) -> None:
@@ -412,24 +480,36 @@ def record_specimen_conflicts(con: duckdb.DuckDBPyConnection) -> None:
     )
 
 
-#: The files whose counts a touched scope can change: those of its versions and this run's.
-
-
-def update_ledger_counts(con: duckdb.DuckDBPyConnection, scope: Scope | None = None) -> None:
+def update_ledger_counts(
+    con: duckdb.DuckDBPyConnection, scope: Scope | None = None, files: str | None = None
+) -> None:
     """Recount the outcomes of the files this run touched (every ingested file when the scope
-    was all versions), then check that each file balances.
+    was all versions): the files of the scope's versions and this run's (``files``, the
+    relation of their ids); then check that each file balances
+    (``sql/checks/ledger_recount.sql``, ``sql/checks/ledger_unbalanced.sql``).
     """
-    touched = scope is not None and scope.kind == "touched"
+    touched = scope is not None and scope.kind == "touched" and scope.version_table is not None
+    parts = []
+    if touched:
+        parts.append(f"select file_id from {checked_name(scope.version_table)}")
+    if touched and files:
+        parts.append(f"select file_id from {checked_name(files)}")
+    touched_files = " union ".join(parts) or "select null::bigint as file_id where false"
+    recount = sql_over("ledger_recount", {"touched_files": touched_files})
     con.execute(
-        "create or replace temp table recount_files as select file_id from ingest_files "
-        + (
-            "where file_id in (select file_id from scope_versions union select file_id from landed_files)"
-            if touched
-            else "where status = 'ingested'"
-        )
+        f"""
+        update ingest_files set
+            rows_accepted = c.accepted,
+            rows_superseded = c.superseded,
+            rows_duplicate = c.duplicate,
+            rows_withdrawn = c.withdrawn,
+            rows_pending = c.pending,
+            rows_rejected = c.rejected
+        from ({recount}) as c
+        where ingest_files.file_id = c.file_id
+        """,
+        {"all_files": not touched},
     )
-    con.execute(read_sql("ledger_recount"))
-    con.execute("drop table recount_files")
     unbalanced = con.execute(read_sql("ledger_unbalanced")).fetchall()
     if unbalanced:
         detail = "; ".join(f"{p}: read {r}, accounted {a}" for p, r, a in unbalanced[:5])
@@ -455,9 +535,12 @@ def outcome_counts(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, int]]:
 def validate_stage(
     con: duckdb.DuckDBPyConnection,
     settings: Settings,
-    batch_gate: Callable[[duckdb.DuckDBPyConnection], dict[str, str]] | None = None,
+    judged: Judged,
+    batch_gate: BatchGate | None = None,
 ) -> ValidateSummary:
-    """The whole validate stage: rules, quality gate, versions, lab_results, ledger balance."""
+    """The whole validate stage over what :func:`begin_judging` started and the ingest stage
+    filled (``judged``): rules, quality gate, versions, lab_results, ledger balance.
+    """
     default = settings.pipeline.quality_gate.max_rejection_rate
     limits = {
         s.id: s.max_rejection_rate if s.max_rejection_rate is not None else default
@@ -468,8 +551,18 @@ def validate_stage(
         s.id: s.max_unmapped_share if s.max_unmapped_share is not None else gate.max_unmapped_share
         for s in settings.sources
     }
-    unmapped = unmapped_codes(con)  # before the gate: a held-back source's gaps are named too
-    valid, rejected, held = validate_landed(con, limits, batch_gate, unmapped_limits)
-    n_results, scope = resolve_versions(con)
-    update_ledger_counts(con, scope)
-    return ValidateSummary(valid, rejected, n_results, outcome_counts(con), held, scope, unmapped)
+    # before the gate: a held-back source's gaps are named too
+    unmapped = unmapped_codes(con, judged)
+    settled = validate_landed(con, judged, limits, batch_gate, unmapped_limits)
+    resolved = resolve_versions(con, settled)
+    update_ledger_counts(con, resolved.scope, judged.files)
+    return ValidateSummary(
+        settled.valid,
+        settled.rejected,
+        resolved.lab_results,
+        outcome_counts(con),
+        settled.held,
+        resolved.scope,
+        unmapped,
+        resolved.changed,
+    )

@@ -1,14 +1,8 @@
--- Recount the outcomes of each file in temp table recount_files from the rows they left:
--- result_versions (accepted, superseded, duplicate, withdrawn, pending) and rejected_rows.
--- Every ingested file must then balance (ledger_unbalanced.sql): rows read = the sum of outcomes.
-update ingest_files set
-    rows_accepted = c.accepted,
-    rows_superseded = c.superseded,
-    rows_duplicate = c.duplicate,
-    rows_withdrawn = c.withdrawn,
-    rows_pending = c.pending,
-    rows_rejected = c.rejected
-from (
+-- The outcome counts of the ingested files a run touched, recounted from the versions it stored
+-- and the rows it rejected: every ingested file when $all_files, else those in touched_files
+-- (the files of the versions the run settled and the files it landed; given by the caller).
+-- The validate stage writes them into ingest_files (pipeline/stages/validate.py).
+with counted as (
     select f.file_id,
            count(v.line_no) filter (where v.outcome = 'accepted') as accepted,
            count(v.line_no) filter (where v.outcome = 'superseded') as superseded,
@@ -21,7 +15,7 @@ from (
     left join (select file_id, count(*) as rejected from rejected_rows group by file_id) as r
         on r.file_id = f.file_id
     where f.status = 'ingested'
-      and f.file_id in (select file_id from recount_files)
+      and ($all_files or f.file_id in (select file_id from touched_files))
     group by f.file_id
-) as c
-where ingest_files.file_id = c.file_id
+)
+select * from counted

@@ -22,7 +22,7 @@ from pipeline.stages.ingest.fhir import read_fhir_export
 from pipeline.stages.ingest.inbox import FileFault, InboxFile, extract_month, scan_inbox
 from pipeline.stages.ingest.parquet import read_parquet
 from pipeline.stages.ingest.rows import district_places, reject_control_characters
-from pipeline.warehouse.sql_files import _NAME, read_sql
+from pipeline.warehouse.sql_files import checked_name, read_sql
 
 #: The temporary table (``file_id bigint``) of this run's files that gave rows; the stage's
 #: result (:class:`Landed`) names it for the stages that read it.
@@ -55,8 +55,7 @@ def begin_landed_files(con: duckdb.DuckDBPyConnection) -> str:
 
 def record_landed_file(con: duckdb.DuckDBPyConnection, files: str, file_id: int) -> None:
     """Add a file that gave rows to the table ``files`` (:func:`begin_landed_files`)."""
-    if not _NAME.match(files):
-        raise ValueError(f"not a plain table name: {files!r}")
+    files = checked_name(files)
     con.execute(f"insert into {files} values (?)", [file_id])
 
 

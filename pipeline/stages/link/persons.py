@@ -21,9 +21,11 @@ from pipeline.warehouse.connection import drop_relation, fetch_frame, with_frame
 from pipeline.warehouse.sql import (
     build_table,
     replace_period_rows,
+    sql_over,
     swap_period_rows,
 )
-from pipeline.warehouse.sql_files import checked_name, sql_path
+from pipeline.warehouse.sql_files import checked_name, read_sql, sql_path
+from pipeline.warehouse.versions import close_over_partitions
 
 
 def write_trajectory_rules(con: duckdb.DuckDBPyConnection, settings: Settings) -> None:
@@ -84,6 +86,7 @@ def build_person_tables(
     sharded: bool = False,
     as_stored: bool = False,
     snapshot: Snapshot | None = None,
+    validated: ValidatedScope | None = None,
 ) -> int:
     """From ``results_known``: the measures known at the period end, daily values, events
     and person status; returns the persons whose events were computed.
@@ -91,7 +94,8 @@ def build_person_tables(
     ``as_stored``: the results known at the period end are those of ``lab_results``, so their
     measures are ``kidney_measures`` as they are (not computed a second time). ``snapshot``: an
     earlier period whose person-level rows can be carried over for every person whose results
-    did not change since (:func:`carry_over`). ``sharded``: a shard's own throw-away database
+    did not change since (:func:`carry_over`; ``validated``: what the validate stage handed
+    over, see :class:`ValidatedScope`). ``sharded``: a shard's own throw-away database
     (plain tables, no other periods to keep).
     """
     params = event_params(settings, period)
@@ -112,7 +116,7 @@ def build_person_tables(
         del results
         with_frame(con, known, "create table measures_known as select * from _frame")
     if snapshot is not None:
-        return carry_over(con, settings, period, snapshot)
+        return carry_over(con, settings, period, snapshot, validated)
     build_table(con, "daily_values_averaged", params=params)
     if sharded:
         build_table(con, "kidney_events", params=params)
@@ -123,11 +127,23 @@ def build_person_tables(
     return -1
 
 
-@dataclass
+@dataclass(frozen=True)
 class Snapshot:
     period: str
     period_end: object
     max_file_id: int
+
+
+@dataclass(frozen=True)
+class ValidatedScope:
+    """What this run's validate stage hands the link stage: the temporary table of the persons
+    of the touched scope it settled (None when it settled every version) and the relation of the
+    ids of the files this run landed. With both, the usual month starts its changed persons
+    from the validate stage's closure instead of taking it again.
+    """
+
+    persons: str | None = None
+    run_files: str | None = None
 
 
 def logic_fingerprint(settings: Settings) -> str:
@@ -147,7 +163,8 @@ LOGIC_FILES = tuple(
     [_PACKAGE / n for n in ("core/measure_rules.py", "core/equations.py", "core/rule_params.py",
                             "stages/link/persons.py")]
     + [sql_path(n) for n in ("results_known", "daily_values_averaged", "kidney_events",
-                             "result_versions_resolved")]
+                             "result_versions_resolved", "kidney_events_carried",
+                             "person_status_carried", "link_seed_versions")]
 )  # fmt: skip
 
 
@@ -167,59 +184,57 @@ def usable_snapshot(
     return Snapshot(label, end, max_file_id)
 
 
-def changed_persons(con: duckdb.DuckDBPyConnection, period: Period, snapshot: Snapshot) -> int:
+def changed_persons(
+    con: duckdb.DuckDBPyConnection,
+    period: Period,
+    snapshot: Snapshot,
+    validated: ValidatedScope | None = None,
+) -> int:
     """``link_persons``: the persons whose results as known at this period end may differ
     from those known when the snapshot was built: a version ingested since, or reported between
     the two period ends, and (as in the validate stage's scope) every person sharing a version
     partition with one of those. Every other person's events are the snapshot's.
     """
-    from pipeline.warehouse.versions import close_over_partitions
-
     params = {
         "max_file_id": snapshot.max_file_id,
         "snap_end": snapshot.period_end,
         "period_end": period.end,
     }
-    if _same_seed_as_validate(con, params):
+    if validated is not None and _same_seed_as_validate(con, params, validated):
         # the usual month: the versions ingested since the snapshot are this run's, and no
         # earlier one is reported between the two period ends, so the seed is the validate
         # stage's and so is its closure
-        con.execute("create or replace temp table link_persons as select * from scope_persons")
-    else:
-        seed = (
-            "select person_key, source_id, specimen_id, analyte from result_versions "
-            "where file_id > $max_file_id or (reported_date > $snap_end and reported_date <= $period_end)"
+        con.execute(
+            "create or replace temp table link_persons as "
+            f"select * from {checked_name(validated.persons or '')}"
         )
-        close_over_partitions(con, seed, params, "link_persons")
+    else:
+        close_over_partitions(con, read_sql("link_seed_versions"), params, "link_persons")
     return con.execute("select count(*) from link_persons").fetchall()[0][0]
 
 
-def _same_seed_as_validate(con: duckdb.DuckDBPyConnection, params: dict) -> bool:
+def _same_seed_as_validate(
+    con: duckdb.DuckDBPyConnection, params: dict, validated: ValidatedScope
+) -> bool:
     """Whether this run's validate stage settled a touched scope whose seed (this run's new
-    versions) is exactly the snapshot's seed.
+    versions) is exactly the snapshot's seed (``sql/derived/link_seed_others.sql``).
     """
-    touched = con.execute(
-        "select count(*) from duckdb_tables() where temporary and table_name = 'scope_persons'"
-    ).fetchall()[0][0]
-    if not touched:
+    if not validated.persons or not validated.run_files:
         return False
-    other = con.execute(
-        """
-        select count(*) from result_versions
-        where (file_id > $max_file_id and file_id not in (select file_id from landed_files))
-           or (file_id <= $max_file_id and reported_date > $snap_end and reported_date <= $period_end)
-        """,
-        {
-            "max_file_id": params["max_file_id"],
-            "snap_end": params["snap_end"],
-            "period_end": params["period_end"],
-        },
-    ).fetchall()[0][0]
+    query = sql_over(
+        "link_seed_others",
+        {"this_run_files": f"select file_id from {checked_name(validated.run_files)}"},
+    )
+    other = con.execute(query, params).fetchall()[0][0]
     return other == 0
 
 
 def carry_over(
-    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period, snapshot: Snapshot
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    period: Period,
+    snapshot: Snapshot,
+    validated: ValidatedScope | None = None,
 ) -> int:
     """Build this period's person-level rows from the snapshot's, for every person whose results did
     not change since it was built; the changed persons' rows computed from their own results in
@@ -230,14 +245,16 @@ def carry_over(
     of person status only the age and age band depend on the period end, and they are
     recomputed here as in ``sql/analysis/person_status.sql``.
     """
-    n = changed_persons(con, period, snapshot)
+    n = changed_persons(con, period, snapshot, validated)
     params = event_params(settings, period)
     scratch = duckdb.connect(":memory:")
     try:
         for schema in ("staging", "reference"):
             scratch.execute(f"create schema {checked_name(schema)}")
+        # every reference table (a listing of the schema the reference loader writes)
         tables = [f"reference.{t}" for (t,) in con.execute(
-            "select table_name from duckdb_tables() where schema_name = 'reference' order by table_name"
+            "select table_name from information_schema.tables where table_schema = 'reference' "
+            "and table_type = 'BASE TABLE' order by table_name"
         ).fetchall()]  # fmt: skip
         for table in tables:
             _copy_into(
@@ -259,28 +276,14 @@ def carry_over(
         "delete from daily_values_averaged where person_key in (select person_key from link_persons)"
     )
     _insert_arrow(con, "daily_values_averaged", fresh["daily_values_averaged"])
-    con.execute(
-        "create or replace temp table kidney_events_new as "
-        "select * replace ($period as period) from kidney_events "
-        "where period = $snapshot and person_key not in (select person_key from link_persons)",
-        {"period": period.label, "snapshot": snapshot.period},
-    )
+    carried = {"period": period.label, "period_end": period.end, "snapshot": snapshot.period}
+    build_table(con, "kidney_events_carried", "kidney_events_new", carried, temporary=True)
     _insert_arrow(con, "kidney_events_new", fresh["kidney_events"])
     swap_period_rows(con, "kidney_events", period.label)
-    con.execute(
-        """
-        create or replace temp table person_status_new as
-        select p.* replace ($period as period, year($period_end) - p.birth_year as age_years,
-                            b.age_band as age_band)
-        from person_status as p
-        left join reference.age_bands as b
-            on year($period_end) - p.birth_year between b.age_min and b.age_max
-        where p.period = $snapshot and p.person_key not in (select person_key from link_persons)
-        """,
-        {"period": period.label, "period_end": period.end, "snapshot": snapshot.period},
-    )
+    build_table(con, "person_status_carried", "person_status_new", carried, temporary=True)
     _insert_arrow(con, "person_status_new", fresh["person_status"])
     swap_period_rows(con, "person_status", period.label)
+    con.execute("drop table link_persons")  # this stage's own: not handed on
     return n
 
 

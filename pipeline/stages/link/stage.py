@@ -13,6 +13,7 @@ import duckdb
 from pipeline.core.periods import Period
 from pipeline.core.settings import Settings
 from pipeline.stages.link.persons import (
+    ValidatedScope,
     build_known_at_period_end,
     build_person_tables,
     logic_fingerprint,
@@ -55,10 +56,15 @@ def build_person_tables_sharded(
 
 
 def link_stage(
-    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period, work: Path | None = None
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    period: Period,
+    work: Path | None = None,
+    validated: ValidatedScope | None = None,
 ) -> LinkSummary:
     """The link stage; with executor ``shards`` or ``dask`` the person-level tables are built
-    per person-hash shard in ``work`` (pipeline/stages/link/shards.py).
+    per person-hash shard in ``work`` (pipeline/stages/link/shards.py). ``validated``: what this
+    run's validate stage handed over (the persons of its touched scope, this run's files).
     """
     write_trajectory_rules(con, settings)
     as_stored = build_known_at_period_end(con, period)
@@ -66,7 +72,7 @@ def link_stage(
     if settings.pipeline.execution.executor == "local" or work is None:
         snapshot = usable_snapshot(con, period, fingerprint) if as_stored else None
         recomputed = build_person_tables(
-            con, settings, period, as_stored=as_stored, snapshot=snapshot
+            con, settings, period, as_stored=as_stored, snapshot=snapshot, validated=validated
         )
     else:
         build_person_tables_sharded(con, settings, period, work)
@@ -83,7 +89,7 @@ def link_stage(
     return LinkSummary(persons, confirmed, pending, persons if recomputed < 0 else recomputed)
 
 
-@dataclass
+@dataclass(frozen=True)
 class LinkSummary:
     persons: int
     events_confirmed: int

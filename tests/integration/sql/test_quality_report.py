@@ -36,7 +36,7 @@ def test_a_failed_batch_is_held_back_and_the_others_publish(tmp_path, monkeypatc
     import pipeline.run.flows as flows
 
     monkeypatch.setattr(
-        flows, "_expectations", lambda ctx, con: {"westerfold_general_lab": "suite failed"}
+        flows, "_expectations", lambda ctx, con, judged: {"westerfold_general_lab": "suite failed"}
     )
     config = make_small_config(tmp_path / "config")
     semi = "PatientRef;YearOfBirth;Gender;AreaCode;SampleNo;SampleDate;TestCode;Result;Units;State;ReportDate\n"

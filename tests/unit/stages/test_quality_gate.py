@@ -375,10 +375,10 @@ def test_a_defect_that_slips_past_the_row_rules_holds_its_source_back(
 
     real = flows._expectations
 
-    def slipped(ctx, con):
-        con.execute("update results_validated set value = 400 "
+    def slipped(ctx, con, judged):
+        con.execute(f"update {judged.rows} set value = 400 "
                     "where source_id = 'westerfold_general_lab' and specimen_id = 'S2'")  # fmt: skip
-        return real(ctx, con)
+        return real(ctx, con, judged)
 
     monkeypatch.setattr(flows, "_expectations", slipped)
     inbox = write_inbox(tmp_path, INBOX)
