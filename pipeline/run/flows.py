@@ -54,6 +54,7 @@ from pipeline.stages.publish import (  # noqa: E402
 from pipeline.stages.summarise import summarise_stage  # noqa: E402
 from pipeline.stages.validate import begin_judging, judge_file, validate_stage  # noqa: E402
 from pipeline.warehouse.reference import load_reference_tables, write_district_shapes  # noqa: E402
+from pipeline.warehouse.sql_files import read_sql  # noqa: E402
 
 
 @dataclass
@@ -242,7 +243,7 @@ def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
             ctx.period,
             {"run_summary.json": summary, "run_manifest.json": ctx.manifest},
             demo_key=ctx.key.is_demo,
-        )
+        ).folder
         if ctx.release is not None:
             carry_releases(ctx.out, ctx.period.label, folder, ctx.release)
         write_report(ctx.con, ctx.period.label, folder / "report.html")
@@ -255,16 +256,9 @@ def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
 
 def headline(ctx: RunContext) -> dict[str, Any]:
     """All-district headline numbers from the published (suppressed) tables."""
-    prevalence = ctx.con.execute(
-        "select persons_tested, persons_ckd, ckd_share_of_tested from published.district_ckd_prevalence "
-        "where period = ? and district_code = 'ALL' and sex = 'ALL' and age_band = 'ALL'",
-        [ctx.period.label],
-    ).fetchall()
-    coverage = ctx.con.execute(
-        "select persons_with_diabetes, with_egfr_and_acr, share_with_both "
-        "from published.district_screening_coverage where period = ? and district_code = 'ALL'",
-        [ctx.period.label],
-    ).fetchall()
+    params = {"period": ctx.period.label}
+    prevalence = ctx.con.execute(read_sql("headline_prevalence"), params).fetchall()
+    coverage = ctx.con.execute(read_sql("headline_coverage"), params).fetchall()
     out: dict[str, Any] = {}
     if prevalence:
         out.update(

@@ -31,6 +31,7 @@ import duckdb
 
 from pipeline.warehouse.catalog import PUBLISHED_TABLES
 from pipeline.warehouse.connection import add_missing_columns, fetch_frame
+from pipeline.warehouse.sql_files import checked_name, read_sql
 
 HISTORY_SCHEMA = "published_history"
 REVISIONS_FOLDER = "revisions"
@@ -99,12 +100,12 @@ def stash_release(con: duckdb.DuckDBPyConnection, period: str) -> None:
     for table in PUBLISHED_TABLES:
         if _published(con, "published", table.name):
             con.execute(
-                f"create or replace temp table stash_{table.name} as "
-                f"select * from published.{table.name} where period = ?",
+                f"create or replace temp table stash_{checked_name(table.name)} as "
+                f"select * from published.{checked_name(table.name)} where period = ?",
                 [period],
             )
         else:
-            con.execute(f"drop table if exists stash_{table.name}")
+            con.execute(f"drop table if exists stash_{checked_name(table.name)}")
 
 
 def settle_release(
@@ -117,23 +118,25 @@ def settle_release(
     ``reason`` was given.
     """
     previous, previous_run = current_release(con, period)
-    con.execute(f"create schema if not exists {HISTORY_SCHEMA}")
+    con.execute(f"create schema if not exists {checked_name(HISTORY_SCHEMA)}")
     for table in PUBLISHED_TABLES:
         if _published(con, "published", table.name):
             con.execute(
-                f"alter table published.{table.name} add column if not exists revision integer"
+                f"alter table published.{checked_name(table.name)} add column if not exists revision integer"
             )
             # present (empty) from the first release on, so readers can always query it
             con.execute(
-                f"create table if not exists {HISTORY_SCHEMA}.{table.name} as "
-                f"select * from published.{table.name} limit 0"
+                f"create table if not exists {checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)} as "
+                f"select * from published.{checked_name(table.name)} limit 0"
             )
         stash = con.execute(
             "select count(*) from duckdb_tables() where temporary and table_name = ?",
-            [f"stash_{table.name}"],
+            [f"stash_{checked_name(table.name)}"],
         ).fetchall()[0][0]
         if stash:
-            con.execute(f"alter table stash_{table.name} add column if not exists revision integer")
+            con.execute(
+                f"alter table stash_{checked_name(table.name)} add column if not exists revision integer"
+            )
     changed = previous > 0 and any(_differs_for(con, t.name, period) for t in PUBLISHED_TABLES)
     if changed and not (reason and reason.strip()):
         before = previous_run.get("headline", {})
@@ -155,28 +158,29 @@ def settle_release(
             if not _stash_exists(con, table.name):
                 continue
             con.execute(
-                f"update stash_{table.name} set revision = coalesce(revision, ?)", [previous]
+                f"update stash_{checked_name(table.name)} set revision = coalesce(revision, ?)",
+                [previous],
             )
             if not _published(con, HISTORY_SCHEMA, table.name):
                 con.execute(
-                    f"create table {HISTORY_SCHEMA}.{table.name} as select * from stash_{table.name}"
+                    f"create table {checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)} as select * from stash_{checked_name(table.name)}"
                 )
             else:
                 add_missing_columns(
                     con,
                     HISTORY_SCHEMA,
                     table.name,
-                    fetch_frame(con, f"select * from stash_{table.name} limit 0"),
+                    fetch_frame(con, f"select * from stash_{checked_name(table.name)} limit 0"),
                 )
                 con.execute(
-                    f"insert into {HISTORY_SCHEMA}.{table.name} by name select * from stash_{table.name}"
+                    f"insert into {checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)} by name select * from stash_{checked_name(table.name)}"
                 )
     else:
         revision = max(previous, 1)
     for table in PUBLISHED_TABLES:
         if _published(con, "published", table.name):
             con.execute(
-                f"update published.{table.name} set revision = ? where period = ?",
+                f"update published.{checked_name(table.name)} set revision = ? where period = ?",
                 [revision, period],
             )
     return Release(
@@ -192,7 +196,7 @@ def _stash_exists(con: duckdb.DuckDBPyConnection, name: str) -> bool:
     return (
         con.execute(
             "select count(*) from duckdb_tables() where temporary and table_name = ?",
-            [f"stash_{name}"],
+            [f"stash_{checked_name(name)}"],
         ).fetchall()[0][0]
         > 0
     )
@@ -202,13 +206,13 @@ def _differs_for(con: duckdb.DuckDBPyConnection, name: str, period: str) -> bool
     new_rows = (
         _published(con, "published", name)
         and con.execute(
-            f"select count(*) from published.{name} where period = ?", [period]
+            f"select count(*) from published.{checked_name(name)} where period = ?", [period]
         ).fetchall()[0][0]
         > 0
     )
     old_rows = (
         _stash_exists(con, name)
-        and con.execute(f"select count(*) from stash_{name}").fetchall()[0][0] > 0
+        and con.execute(f"select count(*) from stash_{checked_name(name)}").fetchall()[0][0] > 0
     )
     if not new_rows or not old_rows:
         return bool(new_rows) != bool(old_rows)
@@ -220,12 +224,12 @@ def _differs_for(con: duckdb.DuckDBPyConnection, name: str, period: str) -> bool
     old_cols = [c for (c,) in con.execute(
         "select column_name from duckdb_columns() where database_name = 'temp' and table_name = ? "
         "order by column_index",
-        [f"stash_{name}"]).fetchall()]  # fmt: skip
+        [f"stash_{checked_name(name)}"]).fetchall()]  # fmt: skip
     if set(new_cols) != set(old_cols):
         return True
-    cols = ", ".join(f'"{c}"' for c in new_cols if c != "revision")
-    new = f"(select {cols} from published.{name} where period = $p)"
-    old = f"(select {cols} from stash_{name})"
+    cols = ", ".join(f'"{checked_name(c)}"' for c in new_cols if c != "revision")
+    new = f"(select {cols} from published.{checked_name(name)} where period = $p)"
+    old = f"(select {cols} from stash_{checked_name(name)})"
     n = con.execute(f"select count(*) from ({new} except all {old} union all ({old} except all {new}))",
                     {"p": period}).fetchall()[0][0]  # fmt: skip
     return n > 0
@@ -280,19 +284,7 @@ def late_results(con: duckdb.DuckDBPyConnection, period: str) -> dict[str, int]:
     if not exists:
         return {}
     rows = con.execute(
-        """
-        with earlier as (
-            select distinct period, last_day(strptime(period || '-01', '%Y-%m-%d'))::date as period_end
-            from runs where period <> $p
-        )
-        select e.period, count(*) as results
-        from earlier as e
-        join result_versions as v
-          on v.file_id in (select file_id from landed_files)
-         and v.collected_date <= e.period_end and v.reported_date <= e.period_end
-        where v.outcome <> 'duplicate' and v.status <> 'preliminary'
-        group by e.period order by e.period
-        """,
+        read_sql("late_results"),
         {"p": period},
     ).fetchall()
     return {p: int(n) for p, n in rows}

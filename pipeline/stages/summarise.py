@@ -30,6 +30,7 @@ from pipeline.warehouse.connection import (
     with_frame,
 )
 from pipeline.warehouse.sql import build_table, replace_period_frame, replace_period_rows, sql_over
+from pipeline.warehouse.sql_files import checked_name
 
 #: Internal summary tables, in the order they are built (each is sql/reports/<name>.sql).
 SUMMARY_TABLES = (
@@ -251,11 +252,11 @@ def summarise_stage(
         if name not in WILSON_RATES:
             counts[name] = replace_period_rows(con, name, period.label, params)
             continue
-        build_table(con, name, f"staging.{name}_sql", params)
+        build_table(con, name, f"staging.{checked_name(name)}_sql", params)
         frame = add_intervals(
-            fetch_frame(con, f"select * from staging.{name}_sql"), name, confidence
+            fetch_frame(con, f"select * from staging.{checked_name(name)}_sql"), name, confidence
         )
-        con.execute(f"drop table staging.{name}_sql")
+        con.execute(f"drop table staging.{checked_name(name)}_sql")
         if name == "district_ckd_prevalence":
             frame = add_standardised_rates(frame, settings)
         add_missing_columns(con, "main", name, frame)

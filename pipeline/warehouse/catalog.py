@@ -10,7 +10,7 @@ from typing import Any
 import duckdb
 import yaml
 
-from pipeline.warehouse.sql_files import _NAME, SQL_DIR
+from pipeline.warehouse.sql_files import _NAME, SQL_DIR, checked_name
 
 
 def load_catalog() -> dict[str, Any]:
@@ -37,11 +37,12 @@ def apply_comments(con: duckdb.DuckDBPyConnection) -> None:
         schema = schema or "main"
         if (schema, table) not in existing:
             continue
-        target = f"{schema}.{table}"
+        target = f"{checked_name(schema)}.{checked_name(table)}"
         if not all(_NAME.match(p) for p in (schema, table)):
             raise ValueError(f"catalog.yaml: not a plain table name {qualified!r}")
         text = f"{entry['description'].strip()} Grain: {entry['grain'].strip()}"
-        con.execute(f"comment on {existing[(schema, table)]} {target} is {_quote(text)}")
+        kind = "view" if existing[(schema, table)] == "view" else "table"
+        con.execute(f"comment on {kind} {target} is {_quote(text)}")
         columns = {
             c
             for (c,) in con.execute(
@@ -51,7 +52,10 @@ def apply_comments(con: duckdb.DuckDBPyConnection) -> None:
         }
         for column, description in (entry.get("columns") or {}).items():
             if column in columns:
-                con.execute(f'comment on column {target}."{column}" is {_quote(str(description))}')
+                con.execute(
+                    f'comment on column {target}."{checked_name(column)}" '
+                    f"is {_quote(str(description))}"
+                )
 
 
 def _quote(text: str) -> str:

@@ -9,6 +9,7 @@ against a plain-identifier pattern.
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 from typing import Any
 
@@ -16,7 +17,7 @@ import duckdb
 import polars as pl
 import pyarrow as pa
 
-from pipeline.warehouse.sql_files import _NAME, read_sql
+from pipeline.warehouse.sql_files import _NAME, checked_name, read_sql
 
 WAREHOUSE_FILE = "surveillance.duckdb"
 LEDGER_TABLES = (
@@ -32,11 +33,18 @@ LEDGER_TABLES = (
 )
 
 
+#: A memory size for DuckDB's memory_limit: a number and a unit.
+_MEMORY = re.compile(r"^[0-9]+(\.[0-9]+)?\s?[KMGT]i?B$", re.IGNORECASE)
+
+
 def connect(path: Path | str, memory_limit: str = "2GB") -> duckdb.DuckDBPyConnection:
     """Open (or create) a warehouse file with the ledger tables in place."""
     path = Path(path)
     con = duckdb.connect(str(path))
     temp_dir = path.parent / ".duckdb_tmp" if str(path) != ":memory:" else None
+    if not _MEMORY.match(memory_limit):
+        raise ValueError(f"not a memory size: {memory_limit!r} (e.g. 2GB, 512MiB)")
+    # SET takes no bound parameter: the size is checked against _MEMORY first
     con.execute(f"set memory_limit = '{memory_limit}'")
     if temp_dir is not None:
         temp_dir.mkdir(parents=True, exist_ok=True)
@@ -48,7 +56,7 @@ def connect(path: Path | str, memory_limit: str = "2GB") -> duckdb.DuckDBPyConne
 
 def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
     for schema in ("staging", "reference", "published"):
-        con.execute(f"create schema if not exists {schema}")
+        con.execute(f"create schema if not exists {checked_name(schema)}")
     for table in LEDGER_TABLES:
         con.execute(read_sql(table))
     # columns added after a table was first written (warehouses made by an earlier version)
@@ -111,7 +119,10 @@ def add_missing_columns(
     wanted = con.from_arrow(frame.head(0).to_arrow())
     for column, dtype in zip(wanted.columns, wanted.types, strict=False):
         if column not in have:
-            con.execute(f'alter table {schema}.{name} add column "{column}" {dtype}')
+            con.execute(
+                f"alter table {checked_name(schema)}.{checked_name(name)} "
+                f'add column "{checked_name(column)}" {dtype}'
+            )
 
 
 def drop_relation(con: duckdb.DuckDBPyConnection, name: str) -> None:
@@ -122,7 +133,7 @@ def drop_relation(con: duckdb.DuckDBPyConnection, name: str) -> None:
         raise ValueError(f"not a plain table name: {name!r}")
     kind = relation_kind(con, name)
     if kind:
-        con.execute(f"drop {kind} {name}")
+        con.execute(f"drop {'view' if kind == 'view' else 'table'} {checked_name(name)}")
 
 
 def fetch_frame(

@@ -11,7 +11,7 @@ import duckdb
 import polars as pl
 
 from pipeline.warehouse.connection import drop_relation, with_frame
-from pipeline.warehouse.sql_files import _NAME, read_sql
+from pipeline.warehouse.sql_files import _NAME, checked_name, read_sql
 
 
 def build_table(
@@ -31,8 +31,11 @@ def build_table(
     if not all(_NAME.match(part) for part in target.split(".")) or (temporary and "." in target):
         raise ValueError(f"not a plain table name: {target!r}")
     sql, used = _sql_with_params(name, params)
-    con.execute(f"create or replace {'temp ' if temporary else ''}table {target} as\n{sql}", used)
-    return con.execute(f"select count(*) from {target}").fetchall()[0][0]
+    kind = "temp table" if temporary else "table"
+    con.execute(f"create or replace {kind} {checked_name(target, qualified=True)} as\n{sql}", used)
+    return con.execute(f"select count(*) from {checked_name(target, qualified=True)}").fetchall()[
+        0
+    ][0]
 
 
 def sql_over(name: str, inputs: dict[str, str]) -> str:
@@ -59,7 +62,7 @@ def build_view(con: duckdb.DuckDBPyConnection, name: str) -> None:
     """Define ``sql/*/<name>.sql`` as a view (replacing a table or view of that name)."""
     sql, used = _sql_with_params(name, None)
     drop_relation(con, name)
-    con.execute(f"create view {name} as\n{sql}")
+    con.execute(f"create view {checked_name(name)} as\n{sql}")
 
 
 def _sql_with_params(name: str, params: dict[str, Any] | None) -> tuple[str, dict[str, Any]]:
@@ -75,7 +78,9 @@ def replace_period_frame(
     """Replace this period's rows of a per-period table by ``frame``, keeping the other periods."""
     if not _NAME.match(name):
         raise ValueError(f"not a plain table name: {name!r}")
-    with_frame(con, frame, f"create or replace temp table {name}_new as select * from _frame")
+    with_frame(
+        con, frame, f"create or replace temp table {checked_name(name)}_new as select * from _frame"
+    )
     return swap_period_rows(con, name, period)
 
 
@@ -93,10 +98,10 @@ def swap_period_rows(con: duckdb.DuckDBPyConnection, name: str, period: str) -> 
         "select count(*) from duckdb_tables() where schema_name = 'main' and table_name = ?", [name]
     ).fetchall()[0][0]
     if not exists:
-        con.execute(f"create table {name} as select * from {name}_new")
+        con.execute(f"create table {checked_name(name)} as select * from {checked_name(name)}_new")
     else:
-        con.execute(f"delete from {name} where period = ?", [period])
-        con.execute(f"insert into {name} select * from {name}_new")
-    rows = con.execute(f"select count(*) from {name}_new").fetchall()[0][0]
-    con.execute(f"drop table {name}_new")
+        con.execute(f"delete from {checked_name(name)} where period = ?", [period])
+        con.execute(f"insert into {checked_name(name)} select * from {checked_name(name)}_new")
+    rows = con.execute(f"select count(*) from {checked_name(name)}_new").fetchall()[0][0]
+    con.execute(f"drop table {checked_name(name)}_new")
     return rows

@@ -11,6 +11,17 @@ SQL_DIR = Path(__file__).resolve().parents[2] / "sql"
 _NAME = re.compile(r"^[a-z][a-z0-9_]{0,62}$")
 
 
+def checked_name(name: str, qualified: bool = False) -> str:
+    """``name`` itself, once it is a plain identifier (``_NAME``; with ``qualified``, also
+    ``schema.table``); the only way a schema, table or column name is put into SQL text
+    (DEVELOPERS.md, "SQL text and values").
+    """
+    parts = name.split(".", 1) if qualified and isinstance(name, str) else [name]
+    if not all(isinstance(p, str) and _NAME.match(p) for p in parts):
+        raise ValueError(f"not a plain name: {name!r}")
+    return name
+
+
 def sql_path(name: str) -> Path:
     """The file of a table in sql/ (any layer)."""
     if not _NAME.match(name):

@@ -121,6 +121,7 @@ from pipeline.warehouse.catalog import (
     TotalsFrom,
 )
 from pipeline.warehouse.connection import add_missing_columns, fetch_frame, with_frame
+from pipeline.warehouse.sql_files import checked_name
 
 PRIMARY = "primary"
 SECONDARY = "secondary"
@@ -965,10 +966,15 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
     done: dict[str, _Disclosed] = {}
     audited = {}
     for table in PUBLISHED_TABLES:
-        frame = fetch_frame(con, f"select * from {table.name} where period = ?", [period.label])
+        frame = fetch_frame(
+            con, f"select * from {checked_name(table.name)} where period = ?", [period.label]
+        )
         if frame.height == 0:  # nothing this period: drop what an earlier run published for it
             if _exists(con, table.name):
-                con.execute(f"delete from published.{table.name} where period = ?", [period.label])
+                con.execute(
+                    f"delete from published.{checked_name(table.name)} where period = ?",
+                    [period.label],
+                )
             counts[table.name] = 0
             continue
         disclosed = _disclose(frame, table, rules, done)
@@ -981,7 +987,7 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
         if name in declared or name in audited:
             continue
         published = fetch_frame(
-            con, f"select * from published.{name} where period = ?", [period.label]
+            con, f"select * from published.{checked_name(name)} where period = ?", [period.label]
         )
         if published.height == 0:
             continue
@@ -1000,16 +1006,26 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
     for name in audited:
         if _exists(con, name):
             previous[name] = fetch_frame(
-                con, f"select * from published.{name} where period = ?", [last]
+                con, f"select * from published.{checked_name(name)} where period = ?", [last]
             )
     result = audit(audited, rules, basis, previous)
     for name, published in follow_final_blanks(result.frames).items():
         if not _exists(con, name):
-            with_frame(con, published, f"create table published.{name} as select * from _frame")
+            with_frame(
+                con,
+                published,
+                f"create table published.{checked_name(name)} as select * from _frame",
+            )
         else:
             add_missing_columns(con, "published", name, published)
-            con.execute(f"delete from published.{name} where period = ?", [period.label])
-            with_frame(con, published, f"insert into published.{name} by name select * from _frame")
+            con.execute(
+                f"delete from published.{checked_name(name)} where period = ?", [period.label]
+            )
+            with_frame(
+                con,
+                published,
+                f"insert into published.{checked_name(name)} by name select * from _frame",
+            )
         counts[name] = published.height
     _record_cells(con, period, audited, result.withheld)
     if audit_out is not None:
@@ -1071,7 +1087,9 @@ def _internal_rows(
         return published
     keys = [c for c, t in published.schema.items() if t == pl.String and c != "suppression"]
     period = published["period"][0]
-    internal = fetch_frame(con, f"select * from main.{name} where period = ?", [period])
+    internal = fetch_frame(
+        con, f"select * from main.{checked_name(name)} where period = ?", [period]
+    )
     wanted = [c for c, t in published.schema.items() if t.is_integer() and c != "n_suppressed"]
     if not set(keys) <= set(internal.columns) or not set(wanted) <= set(internal.columns):
         return published
