@@ -204,13 +204,14 @@ def link_task(run_id: str) -> dict[str, Any]:
 @task(name="summarise")
 def summarise_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        stash_release(ctx.con, ctx.period.label)  # the release now published, to compare with
-        counts = summarise_stage(ctx.con, ctx.settings, ctx.period)
-        audit: dict[str, Any] = {}
-        published = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period,
-                                   ctx.settings.pipeline.summaries, audit)  # fmt: skip
+        stash = stash_release(ctx.con, ctx.period.label)  # the release now published
+        summarised = summarise_stage(ctx.con, ctx.settings, ctx.period)
+        counts = summarised.tables
+        disclosed = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period,
+                                   ctx.settings.pipeline.summaries, summarised.tables)  # fmt: skip
         try:
-            ctx.release = settle_release(ctx.con, ctx.period.label, ctx.revise, headline(ctx))
+            ctx.release = settle_release(ctx.con, ctx.period.label, ctx.revise, headline(ctx),
+                                         stash, disclosed.present)  # fmt: skip
         except RevisionNeeded as exc:  # not a failure of the task: the run stops, unpublished
             ctx.refused = str(exc)
             return {
@@ -218,9 +219,9 @@ def summarise_task(run_id: str) -> dict[str, Any]:
                 "revision": "refused (already published; --revise needed)",
             }
         return {"tables": len(counts), "rows": sum(counts.values()),
-                "published rows": sum(published.values()), "blanked by the joint audit": audit.get("added", 0),
+                "published rows": sum(disclosed.counts.values()), "blanked by the joint audit": disclosed.added,
                 "by_table": counts, "revision": ctx.release.revision,
-                "withheld_tables": audit.get("withheld", {})}  # fmt: skip
+                "withheld_tables": dict(disclosed.withheld)}  # fmt: skip
 
     return _stage(run_id, "summarise", work)
 
@@ -391,7 +392,8 @@ def run_stages(run_id: str, plain: bool = False) -> dict[str, Any]:
         "headline": headline(ctx),
         "batch_checks": ctx.batch_checks,
         "config_drift": ctx.config_drift,
-        "late_results": late_results(ctx.con, ctx.period.label),
+        # this run's files: the temporary table the ingest stage leaves (pipeline/stages/ingest.py)
+        "late_results": late_results(ctx.con, ctx.period.label, "landed_files"),
     }
     ctx.manifest = build_manifest(ctx.run_id, ctx.started_at, ctx.settings, ctx.period.label,
                                   ctx.key.is_demo, ctx.stages, summary,

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import duckdb
 import polars as pl
 
@@ -234,9 +236,19 @@ def build_equation_change(
     return counts
 
 
+@dataclass(frozen=True)
+class Summarised:
+    """What :func:`summarise_stage` leaves: the internal tables (schema main) holding the period's
+    rows, each with its row count for the period. The disclose stage reads these and no others.
+    """
+
+    period: str
+    tables: dict[str, int]
+
+
 def summarise_stage(
     con: duckdb.DuckDBPyConnection, settings: Settings, period: Period
-) -> dict[str, int]:
+) -> Summarised:
     params = {
         "period": period.label,
         "period_end": period.end,
@@ -265,4 +277,4 @@ def summarise_stage(
     counts.update(build_equation_change(con, settings, period))
     for name in RETIRED_TABLES:
         drop_relation(con, name)
-    return counts
+    return Summarised(period.label, counts)

@@ -1,7 +1,8 @@
 """No value is formatted into SQL text (DEVELOPERS.md, Conventions, "SQL text and values").
 
 The test reads every module of ``pipeline/`` with :mod:`ast` and finds the calls that run SQL
-(``.execute``, ``.executemany``, ``.sql``, ``.query`` and the warehouse helpers that take SQL text)
+(``.execute``, ``.executemany``, ``.sql``, ``.query``, the warehouse helpers that take SQL text,
+and the input queries given to ``sql_over``)
 whose SQL is an f-string or a ``.format(...)`` call, directly or through a local variable of the
 same function. Every expression put into that text must be
 
@@ -215,6 +216,12 @@ class _Scanner:
                 scope = self._scope(node)
                 for arg in node.args:
                     self.sql_text(arg, scope, frozenset())
+            if isinstance(node, ast.Call) and _name(node.func) == "sql_over":
+                # the queries put in front of a file of sql/ (inputs: relation -> query)
+                for arg in node.args[1:2]:
+                    if isinstance(arg, ast.Dict):
+                        for value in arg.values:
+                            self.sql_text(value, self._scope(node), frozenset())
         return self.findings
 
 
@@ -257,6 +264,7 @@ def test_the_lists_hold_only_what_is_still_there():
         ),
         ('o = ", ".join(k for k in ks)\ncon.execute(f"select 1 order by {o}")', {"k"}),
         ("con.sql(f\"select * from ({sql_over('a', {})})\")", set()),
+        ('q = sql_over("a", {"b": f"select * from {t}"})', {"t"}),
     ],
 )
 def test_the_scanner_finds_values_and_passes_checked_names(source, expected):
