@@ -64,6 +64,7 @@ from pipeline.stages.validate import (
 )
 from pipeline.warehouse.connection import add_missing_columns, fetch_frame
 from pipeline.warehouse.reference import load_reference_tables
+from pipeline.warehouse.sql_files import checked_name
 
 ALL_OUTCOMES = ("accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending")
 
@@ -152,7 +153,7 @@ def _select_files(con: duckdb.DuckDBPyConnection, source_id: str, from_month: st
 def _outcomes(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
     row = con.execute(
         "select "
-        + ", ".join(f"coalesce(sum(rows_{o}), 0)" for o in ALL_OUTCOMES)
+        + ", ".join(f"coalesce(sum(rows_{checked_name(o)}), 0)" for o in ALL_OUTCOMES)
         + " from ingest_files where file_id in (select file_id from reprocess_files)"
     ).fetchall()[0]
     return dict(zip(ALL_OUTCOMES, (int(v) for v in row), strict=False))
@@ -161,7 +162,7 @@ def _outcomes(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
 def _per_file(con: duckdb.DuckDBPyConnection) -> dict[int, dict[str, int]]:
     rows = con.execute(
         "select file_id, "
-        + ", ".join(f"rows_{o}" for o in ALL_OUTCOMES)
+        + ", ".join(f"rows_{checked_name(o)}" for o in ALL_OUTCOMES)
         + " from ingest_files where file_id in (select file_id from reprocess_files)"
     ).fetchall()
     return {r[0]: dict(zip(ALL_OUTCOMES, r[1:], strict=False)) for r in rows}
@@ -176,7 +177,7 @@ def _reasons(con: duckdb.DuckDBPyConnection) -> dict[str, int]:
 def _by_source(con: duckdb.DuckDBPyConnection) -> dict[str, dict[str, int]]:
     rows = con.execute(
         "select source_id, "
-        + ", ".join(f"sum(rows_{o})" for o in ALL_OUTCOMES)
+        + ", ".join(f"sum(rows_{checked_name(o)})" for o in ALL_OUTCOMES)
         + " from ingest_files where status in ('ingested', 'duplicate_file') group by 1 order by 1"
     ).fetchall()
     return {r[0]: dict(zip(ALL_OUTCOMES, (int(v or 0) for v in r[1:]), strict=False)) for r in rows}

@@ -32,7 +32,7 @@ from pipeline.warehouse.connection import (
     with_frame,
 )
 from pipeline.warehouse.sql import build_table, replace_period_frame, replace_period_rows, sql_over
-from pipeline.warehouse.sql_files import checked_name
+from pipeline.warehouse.sql_files import checked_name, read_sql
 
 #: Internal summary tables, in the order they are built (each is sql/reports/<name>.sql).
 SUMMARY_TABLES = (
@@ -184,12 +184,7 @@ def build_equation_change(
     daily = pl.concat(
         [
             daily_egfr_under(history, m.adult_equation, comparison, m.adult_min_age_years),
-            fetch_frame(
-                con,
-                "select person_key, measure, day, value, n_results::bigint as n_results, "
-                "equation_family, is_at_or_above_a2 from daily_values_averaged "
-                "where measure = 'acr'",
-            ),
+            fetch_frame(con, read_sql("equation_acr_days")),
         ],
         how="vertical_relaxed",
     )
@@ -202,14 +197,8 @@ def build_equation_change(
         "kidney_events", {"daily_values_averaged": "select * from equation_daily_values"}
     )
     used = {k: v for k, v in rules.items() if f"${k}" in query}
-    other = {
-        k
-        for (k,) in con.execute(
-            f"select distinct person_key from ({query}) where event_type = 'ckd' "
-            "and event_status = 'confirmed'",
-            used,
-        ).fetchall()
-    }
+    confirmed = sql_over("equation_confirmed_ckd", {"comparison_events": query})
+    other = {k for (k,) in con.execute(confirmed, used).fetchall()}
     con.execute("drop table equation_daily_values")
     in_force = {
         k

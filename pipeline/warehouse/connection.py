@@ -9,7 +9,6 @@ against a plain-identifier pattern.
 
 from __future__ import annotations
 
-import re
 from pathlib import Path
 from typing import Any
 
@@ -33,19 +32,12 @@ LEDGER_TABLES = (
 )
 
 
-#: A memory size for DuckDB's memory_limit: a number and a unit.
-_MEMORY = re.compile(r"^[0-9]+(\.[0-9]+)?\s?[KMGT]i?B$", re.IGNORECASE)
-
-
 def connect(path: Path | str, memory_limit: str = "2GB") -> duckdb.DuckDBPyConnection:
     """Open (or create) a warehouse file with the ledger tables in place."""
     path = Path(path)
     con = duckdb.connect(str(path))
     temp_dir = path.parent / ".duckdb_tmp" if str(path) != ":memory:" else None
-    if not _MEMORY.match(memory_limit):
-        raise ValueError(f"not a memory size: {memory_limit!r} (e.g. 2GB, 512MiB)")
-    # SET takes no bound parameter: the size is checked against _MEMORY first
-    con.execute(f"set memory_limit = '{memory_limit}'")
+    con.execute("set memory_limit = ?", [memory_limit])
     if temp_dir is not None:
         temp_dir.mkdir(parents=True, exist_ok=True)
         con.execute("set temp_directory = ?", [str(temp_dir)])
