@@ -143,13 +143,12 @@ def settle_release(
     con.execute(f"create schema if not exists {checked_name(HISTORY_SCHEMA)}")
     for table in PUBLISHED_TABLES:
         if table.name in present:
-            con.execute(
-                f"alter table published.{checked_name(table.name)} add column if not exists revision integer"
-            )
+            published = f"published.{checked_name(table.name)}"
+            con.execute(f"alter table {published} add column if not exists revision integer")
             # present (empty) from the first release on, so readers can always query it
             con.execute(
-                f"create table if not exists {checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)} as "
-                f"select * from published.{checked_name(table.name)} limit 0"
+                f"create table if not exists {checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)} "
+                f"as select * from {published} limit 0"
             )
         if table.name in stash.tables:
             con.execute(
@@ -179,24 +178,19 @@ def settle_release(
         for table in PUBLISHED_TABLES:
             if table.name not in stash.tables:
                 continue
-            con.execute(
-                f"update stash_{checked_name(table.name)} set revision = coalesce(revision, ?)",
-                [previous],
-            )
+            kept = checked_name(stash.tables[table.name])
+            history = f"{checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)}"
+            con.execute(f"update {kept} set revision = coalesce(revision, ?)", [previous])
             if not _published(con, HISTORY_SCHEMA, table.name):
-                con.execute(
-                    f"create table {checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)} as select * from stash_{checked_name(table.name)}"
-                )
+                con.execute(f"create table {history} as select * from {kept}")
             else:
                 add_missing_columns(
                     con,
                     HISTORY_SCHEMA,
                     table.name,
-                    fetch_frame(con, f"select * from stash_{checked_name(table.name)} limit 0"),
+                    fetch_frame(con, f"select * from {kept} limit 0"),
                 )
-                con.execute(
-                    f"insert into {checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)} by name select * from stash_{checked_name(table.name)}"
-                )
+                con.execute(f"insert into {history} by name select * from {kept}")
     else:
         revision = max(previous, 1)
     for table in PUBLISHED_TABLES:
