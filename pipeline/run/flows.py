@@ -61,6 +61,7 @@ from pipeline.stages.validate import (  # noqa: E402
     validate_stage,
 )
 from pipeline.warehouse.reference import load_reference_tables, write_district_shapes  # noqa: E402
+from pipeline.warehouse.sql_files import read_sql  # noqa: E402
 
 
 @dataclass
@@ -248,13 +249,14 @@ def link_task(run_id: str) -> dict[str, Any]:
 @task(name="summarise")
 def summarise_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
-        stash_release(ctx.con, ctx.period.label)  # the release now published, to compare with
-        counts = summarise_stage(ctx.con, ctx.settings, ctx.period)
-        audit: dict[str, Any] = {}
-        published = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period,
-                                   ctx.settings.pipeline.summaries, audit)  # fmt: skip
+        stash = stash_release(ctx.con, ctx.period.label)  # the release now published
+        summarised = summarise_stage(ctx.con, ctx.settings, ctx.period)
+        counts = summarised.tables
+        disclosed = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period,
+                                   ctx.settings.pipeline.summaries, summarised.tables)  # fmt: skip
         try:
-            ctx.release = settle_release(ctx.con, ctx.period.label, ctx.revise, headline(ctx))
+            ctx.release = settle_release(ctx.con, ctx.period.label, ctx.revise, headline(ctx),
+                                         stash, disclosed.present)  # fmt: skip
         except RevisionNeeded as exc:  # not a failure of the task: the run stops, unpublished
             ctx.refused = str(exc)
             return {
@@ -262,9 +264,9 @@ def summarise_task(run_id: str) -> dict[str, Any]:
                 "revision": "refused (already published; --revise needed)",
             }
         return {"tables": len(counts), "rows": sum(counts.values()),
-                "published rows": sum(published.values()), "blanked by the joint audit": audit.get("added", 0),
+                "published rows": sum(disclosed.counts.values()), "blanked by the joint audit": disclosed.added,
                 "by_table": counts, "revision": ctx.release.revision,
-                "withheld_tables": audit.get("withheld", {})}  # fmt: skip
+                "withheld_tables": dict(disclosed.withheld)}  # fmt: skip
 
     return _stage(run_id, "summarise", work)
 
@@ -287,7 +289,7 @@ def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
             ctx.period,
             {"run_summary.json": summary, "run_manifest.json": ctx.manifest},
             demo_key=ctx.key.is_demo,
-        )
+        ).folder
         if ctx.release is not None:
             carry_releases(ctx.out, ctx.period.label, folder, ctx.release)
         write_report(ctx.con, ctx.period.label, folder / "report.html")
@@ -300,16 +302,9 @@ def export_task(run_id: str, summary: dict[str, Any]) -> dict[str, Any]:
 
 def headline(ctx: RunContext) -> dict[str, Any]:
     """All-district headline numbers from the published (suppressed) tables."""
-    prevalence = ctx.con.execute(
-        "select persons_tested, persons_ckd, ckd_share_of_tested from published.district_ckd_prevalence "
-        "where period = ? and district_code = 'ALL' and sex = 'ALL' and age_band = 'ALL'",
-        [ctx.period.label],
-    ).fetchall()
-    coverage = ctx.con.execute(
-        "select persons_with_diabetes, with_egfr_and_acr, share_with_both "
-        "from published.district_screening_coverage where period = ? and district_code = 'ALL'",
-        [ctx.period.label],
-    ).fetchall()
+    params = {"period": ctx.period.label}
+    prevalence = ctx.con.execute(read_sql("headline_prevalence"), params).fetchall()
+    coverage = ctx.con.execute(read_sql("headline_coverage"), params).fetchall()
     out: dict[str, Any] = {}
     if prevalence:
         out.update(

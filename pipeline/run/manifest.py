@@ -17,6 +17,7 @@ from typing import Any
 import duckdb
 
 from pipeline.core.settings import Settings
+from pipeline.warehouse.sql_files import read_sql
 
 EXIT_OK, EXIT_HELD_BACK = 0, 1
 
@@ -60,14 +61,7 @@ def input_files(con: duckdb.DuckDBPyConnection, run_period: str) -> list[dict[st
     """Every file version in the ledger with its hash and outcome counts; ``this_run`` marks
     the ones this run ingested or held back.
     """
-    rows = con.execute(
-        """
-        select source_id, file_path, version, sha256, status, message, rows_read, rows_accepted,
-               rows_rejected, rows_superseded, rows_duplicate, rows_withdrawn, rows_pending,
-               run_period
-        from ingest_files order by file_id
-        """
-    ).fetchall()
+    rows = con.execute(read_sql("manifest_input_files")).fetchall()
     keys = ("source_id", "file_path", "version", "sha256", "status", "message", "rows_read",
             "rows_accepted", "rows_rejected", "rows_superseded", "rows_duplicate", "rows_withdrawn",
             "rows_pending")  # fmt: skip

@@ -25,7 +25,8 @@ import duckdb
 
 from pipeline.core.periods import Period
 from pipeline.core.settings import Settings
-from pipeline.warehouse.sql_files import checked_name
+from pipeline.warehouse.sql import sql_over
+from pipeline.warehouse.sql_files import checked_name, read_sql
 
 #: The columns of the period's per-source table, in the order they are shown.
 PERIOD_COLUMNS = ("files", "read", "accepted", "rejected", "superseded", "duplicate", "withdrawn",
@@ -42,20 +43,7 @@ def rows_outside_period(
     """
     files = checked_name(files)
     rows = con.execute(
-        f"""
-        select v.source_id,
-               count(*) as accepted,
-               count(*) filter (where v.collected_date > $period_end
-                                   or v.reported_date > $period_end) as after_period_end,
-               count(*) filter (where v.reported_date > $period_end) as reported_after,
-               count(*) filter (where v.collected_date > $period_end) as collected_after
-        from result_versions as v
-        where v.outcome = 'accepted' and v.file_id in (select file_id from {files})
-        group by v.source_id
-        having count(*) filter (where v.collected_date > $period_end
-                                   or v.reported_date > $period_end) > 0
-        order by v.source_id
-        """,
+        sql_over("period_rows_after_end", {"landed_files": f"select file_id from {files}"}),
         {"period_end": period.end},
     ).fetchall()
     keys = ("accepted", "after_period_end", "reported_after", "collected_after")
@@ -124,22 +112,7 @@ def period_counts(con: duckdb.DuckDBPyConnection, period: Period) -> dict[str, d
     accepted + rejected + superseded + duplicate + withdrawn + pending + held back.
     """
     rows = con.execute(
-        """
-        select source_id,
-               count(*) as files,
-               sum(rows_read) as read,
-               sum(rows_accepted) filter (where status <> 'held_back') as accepted,
-               sum(rows_rejected) filter (where status <> 'held_back') as rejected,
-               sum(rows_superseded) filter (where status <> 'held_back') as superseded,
-               sum(rows_duplicate) filter (where status <> 'held_back') as duplicate,
-               sum(rows_withdrawn) filter (where status <> 'held_back') as withdrawn,
-               sum(rows_pending) filter (where status <> 'held_back') as pending,
-               sum(rows_read) filter (where status = 'held_back') as held_back
-        from ingest_files
-        where run_period = $period
-        group by source_id
-        order by source_id
-        """,
+        read_sql("period_file_rows"),
         {"period": period.label},
     ).fetchall()
     return {

@@ -61,7 +61,7 @@ from pipeline.stages.validate import (
 )
 from pipeline.warehouse.connection import add_missing_columns, fetch_frame
 from pipeline.warehouse.reference import load_reference_tables
-from pipeline.warehouse.sql_files import checked_name
+from pipeline.warehouse.sql_files import checked_name, read_sql
 
 ALL_OUTCOMES = ("accepted", "rejected", "superseded", "duplicate", "withdrawn", "pending")
 
@@ -351,11 +351,7 @@ def _replace(con: duckdb.DuckDBPyConnection, settings: Settings, source: Any, ke
     after = _by_source(con)
     result.other_sources = {s: _pairs(sources_before.get(s, {}), after.get(s, {})) for s in sorted(set(after) | set(sources_before))
                             if s != source.id and sources_before.get(s) != after.get(s)}  # fmt: skip
-    result.periods = [p for (p,) in con.execute(
-        "select distinct period from runs where period >= (select strftime(min(collected_date), '%Y-%m') from "
-        "(select collected_date from result_versions where file_id in (select file_id from reprocess_files) "
-        "union all select collected_date from result_versions_replaced where reprocess_id = $id)) order by 1",
-        {"id": reprocess_id}).fetchall()]  # fmt: skip
+    result.periods = [p for (p,) in con.execute(read_sql("reprocess_periods"), {"id": reprocess_id}).fetchall()]  # fmt: skip
     files_after = _per_file(con)
     now = dt.datetime.now(dt.UTC).replace(tzinfo=None)
     for file_id, rel, sha, _, _, before_hash, _ in todo:

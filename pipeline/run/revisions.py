@@ -31,6 +31,7 @@ import duckdb
 
 from pipeline.warehouse.catalog import PUBLISHED_TABLES
 from pipeline.warehouse.connection import add_missing_columns, fetch_frame
+from pipeline.warehouse.sql import sql_over
 from pipeline.warehouse.sql_files import checked_name
 
 HISTORY_SCHEMA = "published_history"
@@ -95,26 +96,47 @@ def current_release(con: duckdb.DuckDBPyConnection, period: str) -> tuple[int, d
     }
 
 
-def stash_release(con: duckdb.DuckDBPyConnection, period: str) -> None:
+@dataclass(frozen=True)
+class Stash:
+    """What :func:`stash_release` left: per published table that held rows of the period before
+    this run, the temporary table (of the run's connection) holding those rows.
+    """
+
+    period: str
+    tables: dict[str, str]  # published table -> its stash
+
+
+def stash_release(con: duckdb.DuckDBPyConnection, period: str) -> Stash:
     """Keep this period's current published rows aside (temporary tables of the run) before the
     summarise stage replaces them.
     """
+    stashed = {}
     for table in PUBLISHED_TABLES:
+        stash = f"stash_{checked_name(table.name)}"
         if _published(con, "published", table.name):
             con.execute(
-                f"create or replace temp table stash_{checked_name(table.name)} as "
+                f"create or replace temp table {checked_name(stash)} as "
                 f"select * from published.{checked_name(table.name)} where period = ?",
                 [period],
             )
+            stashed[table.name] = stash
         else:
-            con.execute(f"drop table if exists stash_{checked_name(table.name)}")
+            con.execute(f"drop table if exists {checked_name(stash)}")
+    return Stash(period, stashed)
 
 
 def settle_release(
-    con: duckdb.DuckDBPyConnection, period: str, reason: str | None, headline_after: dict[str, Any]
+    con: duckdb.DuckDBPyConnection,
+    period: str,
+    reason: str | None,
+    headline_after: dict[str, Any],
+    stash: Stash,
+    present: tuple[str, ...],
 ) -> Release:
-    """After the summarise stage: decide whether this run is a first release, the same release
-    again, or a revision, and number the rows of ``published.*`` accordingly.
+    """After the summarise and disclose stages: decide whether this run is a first release, the
+    same release again, or a revision, and number the rows of ``published.*`` accordingly.
+    ``stash``: what :func:`stash_release` kept; ``present``: the published tables the disclose
+    stage left (``DisclosureResult.present``).
 
     Raises :class:`RevisionNeeded` when the period was published, its tables would change and no
     ``reason`` was given.
@@ -122,24 +144,23 @@ def settle_release(
     previous, previous_run = current_release(con, period)
     con.execute(f"create schema if not exists {checked_name(HISTORY_SCHEMA)}")
     for table in PUBLISHED_TABLES:
-        if _published(con, "published", table.name):
-            con.execute(
-                f"alter table published.{checked_name(table.name)} add column if not exists revision integer"
-            )
+        if table.name in present:
+            published = f"published.{checked_name(table.name)}"
+            con.execute(f"alter table {published} add column if not exists revision integer")
             # present (empty) from the first release on, so readers can always query it
             con.execute(
-                f"create table if not exists {checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)} as "
-                f"select * from published.{checked_name(table.name)} limit 0"
+                f"create table if not exists {checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)} "
+                f"as select * from {published} limit 0"
             )
-        stash = con.execute(
-            "select count(*) from duckdb_tables() where temporary and table_name = ?",
-            [f"stash_{checked_name(table.name)}"],
-        ).fetchall()[0][0]
-        if stash:
+        if table.name in stash.tables:
             con.execute(
-                f"alter table stash_{checked_name(table.name)} add column if not exists revision integer"
+                f"alter table {checked_name(stash.tables[table.name])} "
+                "add column if not exists revision integer"
             )
-    changed = previous > 0 and any(_differs_for(con, t.name, period) for t in PUBLISHED_TABLES)
+    changed = previous > 0 and any(
+        _differs_for(con, t.name, period, t.name in present, stash.tables.get(t.name))
+        for t in PUBLISHED_TABLES
+    )
     if changed and not (reason and reason.strip()):
         before = previous_run.get("headline", {})
 
@@ -157,30 +178,25 @@ def settle_release(
     if changed:
         revision = previous + 1
         for table in PUBLISHED_TABLES:
-            if not _stash_exists(con, table.name):
+            if table.name not in stash.tables:
                 continue
-            con.execute(
-                f"update stash_{checked_name(table.name)} set revision = coalesce(revision, ?)",
-                [previous],
-            )
+            kept = checked_name(stash.tables[table.name])
+            history = f"{checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)}"
+            con.execute(f"update {kept} set revision = coalesce(revision, ?)", [previous])
             if not _published(con, HISTORY_SCHEMA, table.name):
-                con.execute(
-                    f"create table {checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)} as select * from stash_{checked_name(table.name)}"
-                )
+                con.execute(f"create table {history} as select * from {kept}")
             else:
                 add_missing_columns(
                     con,
                     HISTORY_SCHEMA,
                     table.name,
-                    fetch_frame(con, f"select * from stash_{checked_name(table.name)} limit 0"),
+                    fetch_frame(con, f"select * from {kept} limit 0"),
                 )
-                con.execute(
-                    f"insert into {checked_name(HISTORY_SCHEMA)}.{checked_name(table.name)} by name select * from stash_{checked_name(table.name)}"
-                )
+                con.execute(f"insert into {history} by name select * from {kept}")
     else:
         revision = max(previous, 1)
     for table in PUBLISHED_TABLES:
-        if _published(con, "published", table.name):
+        if table.name in present:
             con.execute(
                 f"update published.{checked_name(table.name)} set revision = ? where period = ?",
                 [revision, period],
@@ -194,27 +210,22 @@ def settle_release(
     )
 
 
-def _stash_exists(con: duckdb.DuckDBPyConnection, name: str) -> bool:
-    return (
-        con.execute(
-            "select count(*) from duckdb_tables() where temporary and table_name = ?",
-            [f"stash_{name}"],
-        ).fetchall()[0][0]
-        > 0
-    )
-
-
-def _differs_for(con: duckdb.DuckDBPyConnection, name: str, period: str) -> bool:
+def _differs_for(
+    con: duckdb.DuckDBPyConnection, name: str, period: str, present: bool, stash: str | None
+) -> bool:
+    """Whether the period's rows of ``published.<name>`` differ from the release before (its
+    ``stash``; None: it had none). ``present``: the disclose stage left the table.
+    """
     new_rows = (
-        _published(con, "published", name)
+        present
         and con.execute(
             f"select count(*) from published.{checked_name(name)} where period = ?", [period]
         ).fetchall()[0][0]
         > 0
     )
     old_rows = (
-        _stash_exists(con, name)
-        and con.execute(f"select count(*) from stash_{checked_name(name)}").fetchall()[0][0] > 0
+        stash is not None
+        and con.execute(f"select count(*) from {checked_name(stash)}").fetchall()[0][0] > 0
     )
     if not new_rows or not old_rows:
         return bool(new_rows) != bool(old_rows)
@@ -226,15 +237,18 @@ def _differs_for(con: duckdb.DuckDBPyConnection, name: str, period: str) -> bool
     old_cols = [c for (c,) in con.execute(
         "select column_name from duckdb_columns() where database_name = 'temp' and table_name = ? "
         "order by column_index",
-        [f"stash_{name}"]).fetchall()]  # fmt: skip
+        [stash]).fetchall()]  # fmt: skip
     if set(new_cols) != set(old_cols):
         return True
-    cols = ", ".join(f'"{c}"' for c in new_cols if c != "revision")
-    new = f"(select {cols} from published.{checked_name(name)} where period = $p)"
-    old = f"(select {cols} from {checked_name('stash_' + name)})"
-    n = con.execute(f"select count(*) from ({new} except all {old} union all ({old} except all {new}))",
-                    {"p": period}).fetchall()[0][0]  # fmt: skip
-    return n > 0
+    cols = ", ".join(f'"{checked_name(c)}"' for c in new_cols if c != "revision")
+    query = sql_over(
+        "revision_difference",
+        {
+            "new_rows": f"select {cols} from published.{checked_name(name)} where period = $p",
+            "old_rows": f"select {cols} from {checked_name(stash)}",
+        },
+    )
+    return con.execute(query, {"p": period}).fetchall()[0][0] > 0
 
 
 def describe(
@@ -272,31 +286,21 @@ def carry_releases(out_dir: Path, period: str, staged: Path, release: Release) -
         )
 
 
-def late_results(con: duckdb.DuckDBPyConnection, period: str, files: str | None) -> dict[str, int]:
+def late_results(
+    con: duckdb.DuckDBPyConnection, period: str, landed_files: str | None
+) -> dict[str, int]:
     """Count, per other published period, the results this run received that would change it.
 
     Other periods are the earlier ones, and later ones when an earlier period is revised; a
     result counts when a revision would take it: versions stored by this run (not duplicates, not preliminary) collected and
     reported by that period's end. (A period is rebuilt as known at its end, so a result reported
-    later can never change it; those are not counted.)
+    later can never change it; those are not counted.) ``landed_files``: the relation naming this
+    run's files (one column ``file_id``), as the ingest stage left it; None: no files.
     """
-    if files is None:  # no ingest in this run
+    if landed_files is None:
         return {}
-    files = checked_name(files)
-    rows = con.execute(
-        f"""
-        with earlier as (
-            select distinct period, last_day(strptime(period || '-01', '%Y-%m-%d'))::date as period_end
-            from runs where period <> $p
-        )
-        select e.period, count(*) as results
-        from earlier as e
-        join result_versions as v
-          on v.file_id in (select file_id from {files})
-         and v.collected_date <= e.period_end and v.reported_date <= e.period_end
-        where v.outcome <> 'duplicate' and v.status <> 'preliminary'
-        group by e.period order by e.period
-        """,
-        {"p": period},
-    ).fetchall()
+    query = sql_over(
+        "late_results", {"landed_files": f"select file_id from {checked_name(landed_files)}"}
+    )
+    rows = con.execute(query, {"p": period}).fetchall()
     return {p: int(n) for p, n in rows}

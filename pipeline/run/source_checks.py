@@ -22,6 +22,7 @@ from pipeline.stages.validate import (
 )
 from pipeline.warehouse.connection import connect
 from pipeline.warehouse.reference import load_reference_tables
+from pipeline.warehouse.sql_files import read_sql
 
 
 @dataclass
@@ -109,17 +110,10 @@ def check_file(
         if period is not None:
             end = Period.parse(period).end
             n, lines = con.execute(
-                "select count(*), coalesce(list(line_no order by line_no)[1:10], []) from result_versions "
-                "where outcome = 'accepted' and (collected_date > $end or reported_date > $end)",
-                {"end": end},
+                read_sql("source_check_outside_period"), {"end": end}
             ).fetchall()[0]
             report.outside_period = (int(n), [int(x) for x in lines])
-        for reason, n, lines in con.execute(
-            """
-            select reason_code, count(*), list([line_no::varchar, message] order by line_no)[1:10]
-            from rejected_rows group by reason_code order by count(*) desc, reason_code
-            """
-        ).fetchall():
+        for reason, n, lines in con.execute(read_sql("source_check_reasons")).fetchall():
             report.reasons[reason] = (n, [(int(a), b) for a, b in lines])
         return report
     finally:

@@ -11,6 +11,7 @@ from __future__ import annotations
 import json
 import os
 import shutil
+from dataclasses import dataclass
 from pathlib import Path
 
 import duckdb
@@ -19,6 +20,17 @@ from pipeline.core.periods import Period
 from pipeline.warehouse.catalog import PUBLISHED_TABLES, apply_comments
 from pipeline.warehouse.connection import WAREHOUSE_FILE, connect
 from pipeline.warehouse.sql_files import checked_name
+
+#: The run's transient tables of staging, dropped before the commit (not kept).
+TRANSIENT_TABLES = (
+    "landed_rows",
+    "landed_rows_typed",
+    "results_validated",
+    "result_versions_resolved",
+    "scope_persons",
+    "scope_versions",
+    "link_persons",
+)
 
 
 def open_warehouse(out_dir: Path, memory_limit: str = "2GB") -> duckdb.DuckDBPyConnection:
@@ -30,19 +42,19 @@ def open_warehouse(out_dir: Path, memory_limit: str = "2GB") -> duckdb.DuckDBPyC
     return con
 
 
-def commit_month(con: duckdb.DuckDBPyConnection) -> None:
+@dataclass(frozen=True)
+class Committed:
+    """What :func:`commit_month` did: the transient tables it dropped before the commit."""
+
+    dropped: tuple[str, ...]
+
+
+def commit_month(con: duckdb.DuckDBPyConnection) -> Committed:
     apply_comments(con)
-    for table in (
-        "landed_rows",
-        "landed_rows_typed",
-        "results_validated",
-        "result_versions_resolved",
-        "scope_persons",
-        "scope_versions",
-        "link_persons",
-    ):  # transient: not kept
+    for table in TRANSIENT_TABLES:  # transient: not kept
         con.execute(f"drop table if exists staging.{checked_name(table)}")
     con.execute("commit")
+    return Committed(TRANSIENT_TABLES)
 
 
 def write_json(path: Path, data: object) -> None:
@@ -63,13 +75,22 @@ DEMO_NOTICE = "made with the public demo key: invented data, not for real use"
 DEMO_COLUMN = "key_notice"
 
 
+@dataclass(frozen=True)
+class Exports:
+    """What :func:`write_exports` staged: the folder and the files per published table."""
+
+    folder: Path
+    tables: tuple[str, ...]
+    documents: tuple[str, ...]
+
+
 def write_exports(
     con: duckdb.DuckDBPyConnection,
     out_dir: Path,
     period: Period,
     documents: dict[str, object],
     demo_key: bool = False,
-) -> Path:
+) -> Exports:
     """Parquet and CSV of every published table for the period, plus the run's JSON documents,
     staged in ``<out>/.<period>.partial/``; ``runlock.commit_and_install`` moves them into
     ``<out>/<period>/`` after the commit. With the demo key every CSV row ends with the column
@@ -79,17 +100,18 @@ def write_exports(
     work = out_dir / f".{period.label}.partial"
     shutil.rmtree(work, ignore_errors=True)
     work.mkdir(parents=True, mode=0o700)
+    parquet = (
+        "format parquet, kv_metadata {'kidneysurv.pseudonym_key': 'demo'}"
+        if demo_key
+        else "format parquet"
+    )
+    notice = f", $notice as {checked_name(DEMO_COLUMN)}" if demo_key else ""
     for table in PUBLISHED_TABLES:
-        order = ", ".join(table.keys)
-        query = f"select * from published.{checked_name(table.name)} where period = $period order by {order}"
-        marked = (
-            query.replace("select *", f"select *, $notice as {checked_name(DEMO_COLUMN)}", 1)
-            if demo_key
-            else query
-        )
-        parquet = "format parquet" + (
-            ", kv_metadata {'kidneysurv.pseudonym_key': 'demo'}" if demo_key else ""
-        )
+        source = f"published.{checked_name(table.name)}"
+        order = ", ".join(checked_name(k) for k in table.keys)
+        query = f"select * from {source} where period = $period order by {order}"
+        marked = f"select *{notice} from {source} where period = $period order by {order}"
+        # the target of COPY is a bound parameter too ($path)
         con.execute(
             f"copy ({query}) to $path ({parquet})",
             {"period": period.label, "path": str(work / (table.name + ".parquet"))},
@@ -108,4 +130,5 @@ def write_exports(
     docs = quality_docs_dir(out_dir, period)
     if docs.is_dir():
         docs.rename(work / "quality")
-    return work  # moved into out/<period>/ after the commit (runlock.commit_and_install)
+    # moved into out/<period>/ after the commit (runlock.commit_and_install)
+    return Exports(work, tuple(t.name for t in PUBLISHED_TABLES), tuple(sorted(documents)))

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from dataclasses import dataclass
+
 import duckdb
 import polars as pl
 
@@ -30,7 +32,7 @@ from pipeline.warehouse.connection import (
     with_frame,
 )
 from pipeline.warehouse.sql import build_table, replace_period_frame, replace_period_rows, sql_over
-from pipeline.warehouse.sql_files import checked_name
+from pipeline.warehouse.sql_files import checked_name, read_sql
 
 #: Internal summary tables, in the order they are built (each is sql/reports/<name>.sql).
 SUMMARY_TABLES = (
@@ -182,12 +184,7 @@ def build_equation_change(
     daily = pl.concat(
         [
             daily_egfr_under(history, m.adult_equation, comparison, m.adult_min_age_years),
-            fetch_frame(
-                con,
-                "select person_key, measure, day, value, n_results::bigint as n_results, "
-                "equation_family, is_at_or_above_a2 from daily_values_averaged "
-                "where measure = 'acr'",
-            ),
+            fetch_frame(con, read_sql("equation_acr_days")),
         ],
         how="vertical_relaxed",
     )
@@ -200,14 +197,8 @@ def build_equation_change(
         "kidney_events", {"daily_values_averaged": "select * from equation_daily_values"}
     )
     used = {k: v for k, v in rules.items() if f"${k}" in query}
-    other = {
-        k
-        for (k,) in con.execute(
-            f"select distinct person_key from ({query}) where event_type = 'ckd' "
-            "and event_status = 'confirmed'",
-            used,
-        ).fetchall()
-    }
+    confirmed = sql_over("equation_confirmed_ckd", {"comparison_events": query})
+    other = {k for (k,) in con.execute(confirmed, used).fetchall()}
     con.execute("drop table equation_daily_values")
     in_force = {
         k
@@ -234,9 +225,19 @@ def build_equation_change(
     return counts
 
 
+@dataclass(frozen=True)
+class Summarised:
+    """What :func:`summarise_stage` leaves: the internal tables (schema main) holding the period's
+    rows, each with its row count for the period. The disclose stage reads these and no others.
+    """
+
+    period: str
+    tables: dict[str, int]
+
+
 def summarise_stage(
     con: duckdb.DuckDBPyConnection, settings: Settings, period: Period
-) -> dict[str, int]:
+) -> Summarised:
     params = {
         "period": period.label,
         "period_end": period.end,
@@ -252,7 +253,7 @@ def summarise_stage(
         if name not in WILSON_RATES:
             counts[name] = replace_period_rows(con, name, period.label, params)
             continue
-        build_table(con, name, f"staging.{name}_sql", params)
+        build_table(con, name, f"staging.{checked_name(name)}_sql", params)
         frame = add_intervals(
             fetch_frame(con, f"select * from staging.{checked_name(name)}_sql"), name, confidence
         )
@@ -265,4 +266,4 @@ def summarise_stage(
     counts.update(build_equation_change(con, settings, period))
     for name in RETIRED_TABLES:
         drop_relation(con, name)
-    return counts
+    return Summarised(period.label, counts)

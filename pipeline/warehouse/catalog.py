@@ -41,9 +41,8 @@ def apply_comments(con: duckdb.DuckDBPyConnection) -> None:
         if not all(_NAME.match(p) for p in (schema, table)):
             raise ValueError(f"catalog.yaml: not a plain table name {qualified!r}")
         text = f"{entry['description'].strip()} Grain: {entry['grain'].strip()}"
-        con.execute(
-            f"comment on {existing[(schema, table)]} {checked_name(target)} is {_quote(text)}"
-        )
+        kind = "view" if existing[(schema, table)] == "view" else "table"
+        con.execute(f"comment on {kind} {target} is {_quote(text)}")
         columns = {
             c
             for (c,) in con.execute(
@@ -54,7 +53,8 @@ def apply_comments(con: duckdb.DuckDBPyConnection) -> None:
         for column, description in (entry.get("columns") or {}).items():
             if column in columns:
                 con.execute(
-                    f'comment on column {checked_name(target)}."{checked_name(column)}" is {_quote(str(description))}'
+                    f'comment on column {target}."{checked_name(column)}" '
+                    f"is {_quote(str(description))}"
                 )
 
 

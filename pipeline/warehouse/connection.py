@@ -112,7 +112,8 @@ def add_missing_columns(
     for column, dtype in zip(wanted.columns, wanted.types, strict=False):
         if column not in have:
             con.execute(
-                f'alter table {checked_name(schema)}.{checked_name(name)} add column "{checked_name(column)}" {dtype}'
+                f"alter table {checked_name(schema)}.{checked_name(name)} "
+                f'add column "{checked_name(column)}" {dtype}'
             )
 
 
@@ -124,7 +125,7 @@ def drop_relation(con: duckdb.DuckDBPyConnection, name: str) -> None:
         raise ValueError(f"not a plain table name: {name!r}")
     kind = relation_kind(con, name)
     if kind:
-        con.execute(f"drop {checked_name(kind)} {checked_name(name)}")
+        con.execute(f"drop {'view' if kind == 'view' else 'table'} {checked_name(name)}")
 
 
 def fetch_frame(

@@ -31,11 +31,11 @@ def build_table(
     if not all(_NAME.match(part) for part in target.split(".")) or (temporary and "." in target):
         raise ValueError(f"not a plain table name: {target!r}")
     sql, used = _sql_with_params(name, params)
-    con.execute(
-        f"create or replace {'temp ' if temporary else ''}table {checked_name(target)} as\n{sql}",
-        used,
-    )
-    return con.execute(f"select count(*) from {checked_name(target)}").fetchall()[0][0]
+    kind = "temp table" if temporary else "table"
+    con.execute(f"create or replace {kind} {checked_name(target, qualified=True)} as\n{sql}", used)
+    return con.execute(f"select count(*) from {checked_name(target, qualified=True)}").fetchall()[
+        0
+    ][0]
 
 
 def sql_over(name: str, inputs: dict[str, str]) -> str:

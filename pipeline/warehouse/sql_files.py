@@ -26,11 +26,14 @@ def read_sql(name: str) -> str:
     return sql_path(name).read_text(encoding="utf-8")
 
 
-def checked_name(name: str) -> str:
-    """``name`` unchanged when it is a plain relation or column name (``schema.table`` allowed):
-    the one way a name enters SQL text by formatting (DEVELOPERS.md, "SQL text and values").
-    Values never do: they are bound parameters.
+def checked_name(name: str, qualified: bool = True) -> str:
+    """``name`` unchanged when it is a plain relation or column name (``schema.table`` allowed
+    unless ``qualified`` is false): the one way a name enters SQL text by formatting
+    (DEVELOPERS.md, "SQL text and values"). Values never do: they are bound parameters.
     """
-    if not all(_NAME.match(part) for part in name.split(".")) or name.count(".") > 1:
+    parts = name.split(".") if isinstance(name, str) else [name]
+    if len(parts) > (2 if qualified else 1) or not all(
+        isinstance(p, str) and _NAME.match(p) for p in parts
+    ):
         raise ValueError(f"not a plain relation name: {name!r}")
     return name

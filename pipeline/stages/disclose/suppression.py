@@ -950,15 +950,31 @@ def _exists(con: duckdb.DuckDBPyConnection, name: str) -> bool:
     )
 
 
+@dataclass(frozen=True)
+class DisclosureResult:
+    """What :func:`disclose_stage` leaves: the rows it published per table for the period, the
+    declared tables present in schema ``published`` afterwards, and what the joint audit did.
+    """
+
+    period: str
+    counts: dict[str, int]  # published rows per table for the period
+    present: tuple[str, ...]  # declared tables (PUBLISHED_TABLES) that exist in published.*
+    withheld: dict[str, str]  # table -> reason
+    notes: tuple[str, ...]
+    added: int  # cells the joint audit blanked
+
+
 def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, period: Period,
-                   summaries: object | None = None, audit_out: dict | None = None) -> dict[str, int]:  # fmt: skip
+                   summaries: object | None = None,
+                   internal: Mapping[str, int] | None = None) -> DisclosureResult:  # fmt: skip
     """Replace this period's rows of every published table.
 
     Each table is first protected on its own (this module), then everything the period
     publishes is audited together (:mod:`pipeline.stages.disclose.audit`), which may blank more or
     withhold a table. ``summaries`` (SummarySettings) lets the audit check the standardised
-    rates' integer splits. ``audit_out``, when given, receives ``withheld`` (table -> reason)
-    and ``notes``.
+    rates' integer splits. ``internal``: the internal tables the summarise stage left and their
+    rows for the period (``Summarised.tables``); a declared table not among them has nothing
+    this period. Without it (tests), the internal table of each declared name is read.
     """
     from pipeline.stages.disclose.audit import RateBasis, audit, table_from_frames
 
@@ -966,9 +982,12 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
     done: dict[str, _Disclosed] = {}
     audited = {}
     for table in PUBLISHED_TABLES:
-        frame = fetch_frame(
-            con, f"select * from {checked_name(table.name)} where period = ?", [period.label]
-        )
+        if internal is not None and not internal.get(table.name):
+            frame = pl.DataFrame()
+        else:
+            frame = fetch_frame(
+                con, f"select * from {checked_name(table.name)} where period = ?", [period.label]
+            )
         if frame.height == 0:  # nothing this period: drop what an earlier run published for it
             if _exists(con, table.name):
                 con.execute(
@@ -1028,11 +1047,14 @@ def disclose_stage(con: duckdb.DuckDBPyConnection, rules: DisclosureSettings, pe
             )
         counts[name] = published.height
     _record_cells(con, period, audited, result.withheld)
-    if audit_out is not None:
-        audit_out["withheld"] = dict(result.withheld)
-        audit_out["notes"] = list(result.notes)
-        audit_out["added"] = result.added
-    return counts
+    return DisclosureResult(
+        period.label,
+        counts,
+        tuple(t.name for t in PUBLISHED_TABLES if _exists(con, t.name)),
+        dict(result.withheld),
+        tuple(result.notes),
+        result.added,
+    )
 
 
 def audit_frames(

@@ -10,6 +10,7 @@ the call, one step.
 from __future__ import annotations
 
 import ast
+import re
 from pathlib import Path
 
 import pytest
@@ -29,8 +30,6 @@ SQL_CALLS = {
 
 #: The fragments formatted into SQL that are not names: (module, expression) -> why it is safe.
 FRAGMENTS = {
-    ("run/revisions.py", "new"): "a subquery built just above from checked names",
-    ("run/revisions.py", "old"): "a subquery built just above from checked names",
     ("run/revisions.py", "cols"): "quoted column names read from the catalog of the same table",
     ("stages/link/shards.py", "shard_expression()"): "a constant expression with a bound $shards",
     (
@@ -65,8 +64,6 @@ FRAGMENTS = {
         "base",
     ): "a constant FROM clause and a predicate from the gate's own list",
     ("stages/quality_gate.py", "predicate"): "a predicate from the gate's own constant list",
-    ("stages/summarise.py", "query"): "SQL text read from a file in sql/ (sql_over)",
-    ("warehouse/catalog.py", "existing[schema, table]"): "the keyword 'table' or 'view'",
     (
         "warehouse/catalog.py",
         "_quote(text)",
@@ -150,9 +147,26 @@ def _is_plain_name(node: ast.AST) -> bool:
     )
 
 
+def _is_safe(node: ast.AST, safe: set[str]) -> bool:
+    """A checked name, a keyword-like literal ("view", "temp table"), a name that holds one, or
+    an f-string or conditional made only of those.
+    """
+    if _is_checked(node) or isinstance(node, ast.Name) and node.id in safe:
+        return True
+    if isinstance(node, ast.Constant) and isinstance(node.value, str):
+        return bool(re.fullmatch(r"[a-z_ ,.$]*", node.value))
+    if isinstance(node, ast.JoinedStr):
+        return all(
+            _is_safe(v.value if isinstance(v, ast.FormattedValue) else v, safe) for v in node.values
+        )
+    if isinstance(node, ast.IfExp):
+        return _is_safe(node.body, safe) and _is_safe(node.orelse, safe)
+    return False
+
+
 def _safe_names(tree: ast.Module, func: ast.AST) -> set[str]:
-    """Names that hold a checked name: assigned (in ``func``) only from ``checked_name(...)`` or
-    a plain-name literal, or a module constant that is a plain-name literal.
+    """Names that hold only checked names and keywords: every assignment of them (in ``func``,
+    or at module level) is such a value.
     """
     values: dict[str, list[ast.AST]] = {}
     for scope in (tree.body, list(ast.walk(func))):
@@ -163,7 +177,14 @@ def _safe_names(tree: ast.Module, func: ast.AST) -> set[str]:
                 and isinstance(node.targets[0], ast.Name)
             ):
                 values.setdefault(node.targets[0].id, []).append(node.value)
-    return {n for n, vs in values.items() if all(_is_checked(v) or _is_plain_name(v) for v in vs)}
+    safe: set[str] = set()
+    while True:  # a name built from other safe names
+        more = {
+            n for n, vs in values.items() if n not in safe and all(_is_safe(v, safe) for v in vs)
+        }
+        if not more:
+            return safe
+        safe |= more
 
 
 def _findings() -> list[str]:
