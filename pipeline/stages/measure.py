@@ -19,9 +19,11 @@ from dataclasses import dataclass
 from typing import Any
 
 import duckdb
+import polars as pl
 
 from pipeline.core.measure_rules import MEASURE_COLUMNS, MEASURED_ANALYTES, measure_params
 from pipeline.core.settings import Settings
+from pipeline.warehouse.connection import fetch_frame, with_frame
 from pipeline.warehouse.sql import sql_over
 
 
@@ -165,15 +167,47 @@ def update_touched(con: duckdb.DuckDBPyConnection, settings: Settings, analytes:
 
 
 def measure_query(
-    settings: Settings, input_query: str, input_params: dict[str, Any]
+    settings: Settings, input_query: str, input_params: dict[str, Any], with_ages: bool = False
 ) -> tuple[str, dict[str, Any]]:
-    """``sql/derived/kidney_measures.sql`` over the rows of ``input_query`` (its relation
-    ``measure_input``), and the parameters it uses: ``input_params`` and the measure settings.
+    """``sql/derived/kidney_measures.sql`` over the rows of ``input_query`` (the relation
+    ``measure_input`` of ``sql/derived/measure_ages.sql``, inlined as ``measure_ages``), and the
+    parameters it uses: ``input_params`` and the measure settings. ``with_ages``: the rows of
+    ``input_query`` carry ``age_exact`` and ``female`` already (the equation tests give exact ages).
     """
-    sql = sql_over("kidney_measures", {"measure_input": input_query})
+    inputs = {"measure_input": input_query, "measure_ages": "sql:measure_ages"}
+    if with_ages:
+        inputs = {"measure_ages": input_query}
+    sql = sql_over("kidney_measures", inputs)
     code = re.sub(r"--[^\n]*", "", sql)
     params = {**measure_params(settings.pipeline.measures), **input_params}
     return sql, {k: v for k, v in params.items() if re.search(rf"\${k}\b", code)}
+
+
+def measure_rows(
+    con: duckdb.DuckDBPyConnection, results: pl.DataFrame, settings: Settings
+) -> pl.DataFrame:
+    """``kidney_measures`` rows of a frame of lab_results rows, by the SQL rules (the tables of
+    schema ``reference`` must be loaded in ``con``). Without ``birth_year`` the frame's
+    ``age_years`` is taken as the exact age, as :func:`pipeline.core.measure_rules.measure_frame`
+    takes it.
+    """
+    if "reported_unit" not in results.columns:
+        results = results.with_columns(pl.lit(None, dtype=pl.String).alias("reported_unit"))
+    if "reported_value" not in results.columns:
+        results = results.with_columns(pl.col("value").cast(pl.Float64).alias("reported_value"))
+    with_ages = "birth_year" not in results.columns
+    if with_ages:
+        results = results.with_columns(
+            pl.col("age_years").cast(pl.Float64).alias("age_exact"),
+            pl.when(pl.col("sex") == "F").then(True).when(pl.col("sex") == "M").then(False)
+            .alias("female"),
+        )  # fmt: skip
+    with_frame(con, results, "create or replace temp table measure_rows_in as select * from _frame")
+    sql, params = measure_query(settings, "select * from measure_rows_in", {}, with_ages)
+    try:
+        return fetch_frame(con, sql, params)
+    finally:
+        con.execute("drop table measure_rows_in")
 
 
 def _summary(con: duckdb.DuckDBPyConnection) -> MeasureSummary:

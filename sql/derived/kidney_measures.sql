@@ -1,8 +1,9 @@
 -- kidney_measures: eGFR per serum creatinine (and cystatin C), albuminuria on one scale, and
 -- their KDIGO categories, one row per measured result.
 --
--- Reads `measure_input`: the lab_results rows to measure (the measure stage defines it: every
--- measured analyte, or the rows near this month's changes). Every coefficient comes from
+-- Reads `measure_ages` (sql/derived/measure_ages.sql: the lab_results rows to measure, with the
+-- age at collection and sex as a boolean; the measure stage inlines it over the rows it
+-- measures). Every coefficient comes from
 -- `reference.equation_coefficients` (written each run from pipeline/core/equations.py, the one
 -- place a published number is written; one row per equation, one column per coefficient) and
 -- `reference.dipstick_categories`; the KDIGO G bounds from `reference.gfr_categories`. The
@@ -46,21 +47,6 @@ thresholds as (
     where form = 'albuminuria_thresholds'
 ),
 
--- age at collection in years of $days_per_year days, estimated from the birth year at mid-year
--- (pipeline/core/measure_rules.py, MID_YEAR; common practice for birth-year-only data), never below 0; completed years beside it
-aged as (
-    select * replace (floor(age_exact)::bigint as age_years)
-    from (
-        select *,
-               case when (collected_date - make_date(birth_year, $mid_year_month, $mid_year_day))
-                         * (1.0 / $days_per_year) < 0 then 0.0
-                    else (collected_date - make_date(birth_year, $mid_year_month, $mid_year_day))
-                         * (1.0 / $days_per_year) end as age_exact,
-               case when sex = 'F' then true when sex = 'M' then false end as female
-        from measure_input
-    )
-),
-
 -- which creatinine equation applies, by age (project decision 3)
 creatinine_rows as (
     select *,
@@ -72,7 +58,7 @@ creatinine_rows as (
                 when age_exact >= $min_age_years and age_exact < $adult_min_age_years
                     then $child_equation
            end as equation_chosen
-    from aged
+    from measure_ages
     where analyte = 'creatinine'
 ),
 creatinine_egfr as (
@@ -147,7 +133,7 @@ cystatin_rows as (
             * pow(cys.age_base, a.age_exact)
             * (case when a.female then cys.female_factor when not a.female then 1.0 end)
         end as egfr_cystatin_only
-    from aged as a, cys
+    from measure_ages as a, cys
     where a.analyte = 'cystatin_c' and $use_cystatin
 ),
 -- the day's mean uncensored cystatin C, for the combined equation on that day's creatinine
@@ -185,7 +171,7 @@ reported_egfr as (
     select source_id, person_key, specimen_id,
            first(value order by file_id, line_no) as lab_reported_egfr,
            first(comparator order by file_id, line_no) as lab_reported_egfr_comparator
-    from measure_input
+    from measure_ages
     where analyte = 'egfr_reported' and specimen_id is not null
     group by source_id, person_key, specimen_id
 ),
@@ -250,20 +236,20 @@ egfr_categorised as (
 urine_creatinine as (
     select source_id, person_key, specimen_id, collected_date, file_id, line_no,
            value as ucreat_mg_dl, comparator as ucreat_comparator
-    from aged
+    from measure_ages
     where analyte = 'urine_creatinine'
 ),
 albumin_with_creatinine as (
     -- the same specimen; without a specimen id, the same person and day (the first urine
     -- creatinine of the day in file order)
     select a.*, u.ucreat_mg_dl, u.ucreat_comparator
-    from aged as a
+    from measure_ages as a
     join urine_creatinine as u
         on u.source_id = a.source_id and u.person_key = a.person_key and u.specimen_id = a.specimen_id
     where a.analyte = 'urine_albumin' and a.specimen_id is not null
     union all
     select a.*, u.ucreat_mg_dl, u.ucreat_comparator
-    from aged as a
+    from measure_ages as a
     join (
         select * from urine_creatinine where specimen_id is null
         qualify row_number() over (partition by source_id, person_key, collected_date
@@ -276,9 +262,9 @@ albumin_with_creatinine as (
 albuminuria_rows as (
     select *, 'measured_acr' as acr_basis, value as acr_mg_g, comparator as acr_comparator,
            null::double as aer_mg_24h, null::varchar as reading
-    from aged where analyte = 'acr'
+    from measure_ages where analyte = 'acr'
     union all by name
-    select aged.* exclude (reported_value, reported_unit),
+    select measure_ages.* exclude (reported_value, reported_unit),
            null::double as reported_value, null::varchar as reported_unit,
            'estimated_from_pcr' as acr_basis,
            case when comparator is null and isfinite(value) and value > 0 then
@@ -288,7 +274,7 @@ albuminuria_rows as (
                    + k.b_high * ln(greatest(value * (1.0 / k.knot_high), 1.0)))
            end as acr_mg_g,
            null::varchar as acr_comparator, null::double as aer_mg_24h, null::varchar as reading
-    from aged, pcr_to_acr as k where analyte = 'pcr'
+    from measure_ages, pcr_to_acr as k where analyte = 'pcr'
     union all by name
     select * exclude (reported_value, reported_unit, ucreat_mg_dl, ucreat_comparator),
            null::double as reported_value, null::varchar as reported_unit,
@@ -303,7 +289,7 @@ albuminuria_rows as (
            null::double as reported_value, null::varchar as reported_unit,
            'timed_albumin_excretion' as acr_basis, null::double as acr_mg_g,
            comparator as acr_comparator, value as aer_mg_24h, null::varchar as reading
-    from aged where analyte = 'urine_albumin_24h'
+    from measure_ages where analyte = 'urine_albumin_24h'
     union all by name
     select * exclude (reported_value, reported_unit),
            null::double as reported_value, null::varchar as reported_unit,
@@ -312,7 +298,7 @@ albuminuria_rows as (
            (select o.reading from reference.ordinal_readings as o
             where o.analyte = 'urine_protein_dipstick'
               and o.spelling = lower(trim(value_text, e' \t\n\r\x0b\x0c'))) as reading
-    from aged where analyte = 'urine_protein_dipstick'
+    from measure_ages where analyte = 'urine_protein_dipstick'
 ),
 -- the value compared and its thresholds, in the unit KDIGO gives them for: a measured ACR
 -- reported in mg/mmol on the reported number, a timed excretion in mg/24 h, any other in mg/g
