@@ -4,6 +4,8 @@ coefficients of :mod:`pipeline.core.equations` (no warehouse).
 
 from __future__ import annotations
 
+from dataclasses import fields
+
 import polars as pl
 
 from pipeline.core import equations as eq
@@ -45,6 +47,8 @@ MEASURED_ANALYTES = (
 #: person born on 1 January is up to 0.5 years older, one born on 31 December up to 0.5 years
 #: younger). Common practice for birth-year-only data.
 MID_YEAR = (7, 1)
+#: Days in a mean calendar year (Julian year), to turn days of age into years.
+DAYS_PER_YEAR = 365.25
 
 
 def age_at_collection(columns: list[str]) -> pl.Expr:
@@ -56,7 +60,7 @@ def age_at_collection(columns: list[str]) -> pl.Expr:
         return pl.col("age_years").cast(pl.Float64)
     born = pl.date(pl.col("birth_year"), MID_YEAR[0], MID_YEAR[1])
     days = (pl.col("collected_date") - born).dt.total_days()
-    return (days / 365.25).clip(lower_bound=0.0).cast(pl.Float64)
+    return (days / DAYS_PER_YEAR).clip(lower_bound=0.0).cast(pl.Float64)
 
 
 def equation_for(m: MeasureSettings) -> pl.Expr:
@@ -456,3 +460,91 @@ def measure_frame(results: pl.DataFrame, settings: Settings) -> pl.DataFrame:
     return out.select(MEASURE_COLUMNS).sort(
         "person_key", "collected_date", "analyte", "file_id", "line_no"
     )
+
+
+# ---------------------------------------------------------------------------------------------
+# The same coefficients as rows, for the SQL of the measure stage (sql/derived/kidney_measures.sql)
+# ---------------------------------------------------------------------------------------------
+
+#: Every coefficient set of :mod:`pipeline.core.equations` the measure SQL reads, by the name the
+#: SQL (and ``measures.*_equation`` in config/pipeline.yaml) knows it by, with its form: which
+#: formula of the SQL its numbers go into.
+COEFFICIENT_SETS: dict[str, tuple[str, object]] = {
+    "ckd_epi_2021_creatinine": ("ckd_epi_creatinine", eq.CKD_EPI_2021_CREATININE),
+    "ckd_epi_2009_creatinine": ("ckd_epi_creatinine", eq.CKD_EPI_2009_CREATININE),
+    "ckd_epi_2012_cystatin": ("ckd_epi_cystatin", eq.CKD_EPI_2012_CYSTATIN),
+    "ckd_epi_2021_creatinine_cystatin": (
+        "ckd_epi_creatinine_cystatin",
+        eq.CKD_EPI_2021_CREATININE_CYSTATIN,
+    ),
+    "ekfc_creatinine": ("ekfc", eq.EKFC_CREATININE),
+    "ckid_u25_creatinine": ("ckid_u25", eq.CKID_U25_CREATININE),
+    "mdrd_4v_idms": ("mdrd_4v", eq.MDRD_4V_IDMS),
+    "sumida_pcr_to_acr": ("pcr_to_acr", eq.SUMIDA_PCR_TO_ACR),
+    "acr_mg_g": ("albuminuria_thresholds", eq.ACR_MG_G),
+    "acr_mg_mmol": ("albuminuria_thresholds", eq.ACR_MG_MMOL),
+    "aer_mg_24h": ("albuminuria_thresholds", eq.AER_MG_24H),
+    "pcr_mg_g": ("albuminuria_thresholds", eq.PCR_MG_G),
+}
+
+
+def equation_coefficients() -> pl.DataFrame:
+    """``reference.equation_coefficients``: one row per coefficient set of
+    :mod:`pipeline.core.equations` (:data:`COEFFICIENT_SETS`), one column per coefficient (null
+    where a set has no such coefficient), with its form, source and status. The numbers are read
+    from the dataclasses, never written twice: the EKFC child polynomials become
+    ``child_ln_q_male_c0`` ... ``_c4``, and the EKFC row carries the creatinine unit factor
+    (``creatinine_umol_l_per_mg_dl``) its child Q is converted by.
+    """
+    rows = []
+    for name, (form, coefficients) in COEFFICIENT_SETS.items():
+        row: dict[str, object] = {"equation": name, "form": form}
+        for field in fields(coefficients):  # type: ignore[arg-type]
+            value = getattr(coefficients, field.name)
+            if isinstance(value, tuple):
+                row.update({f"{field.name}_c{i}": float(v) for i, v in enumerate(value)})
+            elif isinstance(value, (int, float)) and not isinstance(value, bool):
+                row[field.name] = float(value)
+            elif field.name not in ("source", "status"):
+                row[field.name] = value
+        if form == "ekfc":
+            row["creatinine_umol_l_per_mg_dl"] = eq.CREATININE_UMOL_L_PER_MG_DL
+        row["source"], row["status"] = coefficients.source, coefficients.status  # type: ignore[attr-defined]
+        rows.append(row)
+    frame = pl.concat([pl.DataFrame([r]) for r in rows], how="diagonal_relaxed")
+    first = ["equation", "form"]
+    last = ["source", "status"]
+    middle = [c for c in frame.columns if c not in first + last]
+    return frame.select(*first, *middle, *last)
+
+
+def dipstick_categories() -> pl.DataFrame:
+    """``reference.dipstick_categories``: a dipstick reading's approximate albuminuria category
+    (``DIPSTICK_A_CATEGORY``), or null with ``spans_a1_a2`` for a reading on the A1/A2 border
+    (``DIPSTICK_SPANNING``), as in :func:`pipeline.core.equations.albuminuria_category_dipstick`.
+    """
+    rows = [{"reading": r, "a_category": a, "is_spanning": False}
+            for r, a in eq.DIPSTICK_A_CATEGORY.items()]  # fmt: skip
+    rows += [{"reading": r, "a_category": None, "is_spanning": True} for r in eq.DIPSTICK_SPANNING]
+    return pl.DataFrame(
+        rows, schema={"reading": pl.String, "a_category": pl.String, "is_spanning": pl.Boolean}
+    )
+
+
+def measure_params(m: MeasureSettings) -> dict[str, object]:
+    """The settings the measure SQL binds (``$name``), from ``measures`` in config/pipeline.yaml."""
+    return {
+        "adult_equation": m.adult_equation,
+        "child_equation": m.child_equation,
+        "child_equation_with_height": m.child_equation_with_height,
+        "use_height_for_children": m.use_height_for_children,
+        "adult_min_age_years": float(m.adult_min_age_years),
+        "min_age_years": float(m.min_age_years),
+        "hyperfiltration_ml_min_1_73m2": float(m.hyperfiltration_ml_min_1_73m2),
+        "use_cystatin": m.use_cystatin,
+        "combine_same_day_cystatin": m.combine_same_day_cystatin,
+        "acr_300_is_a2": m.acr_300_is_a2,
+        "mid_year_month": MID_YEAR[0],
+        "mid_year_day": MID_YEAR[1],
+        "days_per_year": DAYS_PER_YEAR,
+    }

@@ -3,18 +3,28 @@
 eGFR is recomputed from every accepted serum creatinine with the equation configured for the
 person's age (project decision 3); a lab-reported eGFR is kept beside it for comparison only.
 Albuminuria is brought onto one scale (``acr_mg_g``) with ``acr_basis`` saying how. Anything not
-computable gets a null and a reason. The equations themselves are in :mod:`pipeline.core.equations`.
+computable gets a null and a reason. The rules are DuckDB SQL, ``sql/derived/kidney_measures.sql``;
+their coefficients are those of :mod:`pipeline.core.equations`, read from
+``reference.equation_coefficients`` (:func:`pipeline.core.measure_rules.equation_coefficients`),
+and the choices of ``measures`` in config/pipeline.yaml are bound parameters. The same rules as
+polars expressions (:func:`pipeline.core.measure_rules.measure_frame`) measure the results known
+at a past period end in the link stage; both give the same rows, to the last bit
+(tests/unit/stages/test_measure_sql.py).
 """
 
 from __future__ import annotations
 
+import re
 from dataclasses import dataclass
+from typing import Any
 
 import duckdb
+import polars as pl
 
-from pipeline.core.measure_rules import MEASURE_COLUMNS, MEASURED_ANALYTES, measure_frame
+from pipeline.core.measure_rules import MEASURE_COLUMNS, MEASURED_ANALYTES, measure_params
 from pipeline.core.settings import Settings
 from pipeline.warehouse.connection import fetch_frame, with_frame
+from pipeline.warehouse.sql import sql_over
 from pipeline.warehouse.sql_files import checked_name
 
 
@@ -26,8 +36,8 @@ class MeasureSummary:
     acr_categorised: int
 
 
-#: Results measured per pass: the measure step holds one pass in memory (about 1 GB per million
-#: results with the polars frames), so a large warehouse is measured in person-hash chunks.
+#: Results measured per pass: a large warehouse is measured in person-key ranges, so that one
+#: statement's joins and sort stay within the memory limit.
 CHUNK_RESULTS = 400_000
 
 
@@ -76,21 +86,14 @@ def measure_stage(
     chunks = max(1, -(-total // CHUNK_RESULTS))
     for chunk in range(chunks):
         lower, upper = person_range(chunk, chunks)
-        results = fetch_frame(
-            con, "select * from lab_results where list_contains($analytes, analyte) "
-                 "and person_key >= $lower and person_key < $upper",
+        sql, params = measure_query(
+            settings,
+            "select * from lab_results where list_contains($analytes, analyte) "
+            "and person_key >= $lower and person_key < $upper",
             {"analytes": analytes, "lower": lower, "upper": upper},
-        )  # fmt: skip
-        frame = measure_frame(results, settings)
-        del results
-        exists = con.execute(
-            "select count(*) from duckdb_tables() where schema_name = 'main' and table_name = 'kidney_measures'"
-        ).fetchall()[0][0]
-        if exists:
-            with_frame(con, frame, "insert into kidney_measures select * from _frame")
-        else:
-            with_frame(con, frame, "create table kidney_measures as select * from _frame")
-        del frame
+        )
+        verb = "insert into kidney_measures" if chunk else "create table kidney_measures as"
+        con.execute(f"{verb}\n{sql}", params)
     return _summary(con)
 
 
@@ -106,7 +109,7 @@ def update_touched(
     Which rows can change: a measure row reads its own result and, besides it, only results of
     the same person on the same day (a cystatin C or creatinine of that day; a urine creatinine
     without specimen id) or of the same person, source and specimen (the lab's reported eGFR; a
-    urine creatinine with a specimen id) (:func:`measure_frame`). So only the rows sharing a day
+    urine creatinine with a specimen id) (sql/derived/kidney_measures.sql). So only the rows sharing a day
     or a specimen with a version that this run added, or whose outcome it changed
     (``changed``, named by the validate stage), are computed again, from every result that
     shares a day or a specimen with one of those rows. (Before, every row of every touched
@@ -139,21 +142,18 @@ def update_touched(
         f"and {near_changed(changed)}",
         {"analytes": analytes},
     )
-    results = fetch_frame(
-        con, "select * from lab_results where list_contains($analytes, analyte) "
-             "and person_key in (select person_key from measure_rows) "
-             f"and {near_changed('measure_rows')}",
+    sql, params = measure_query(
+        settings,
+        "select * from lab_results where list_contains($analytes, analyte) "
+        "and person_key in (select person_key from measure_rows) "
+        f"and {near_changed('measure_rows')}",
         {"analytes": analytes},
-    )  # fmt: skip
-    frame = measure_frame(results, settings)
-    del results
-    with_frame(
-        con,
-        frame,
-        "create or replace temp table measures_touched as select * from _frame "
-        "semi join measure_rows as r on r.file_id = _frame.file_id and r.line_no = _frame.line_no",
     )
-    del frame
+    con.execute(
+        f"create or replace temp table measures_touched as select * from (\n{sql}\n) as t "
+        "semi join measure_rows as r on r.file_id = t.file_id and r.line_no = t.line_no",
+        params,
+    )
     differs = " or ".join(
         f"s.{checked_name(c)} is distinct from t.{checked_name(c)}" for c in MEASURE_COLUMNS
     )
@@ -181,6 +181,50 @@ def update_touched(
     )
     for table in ("measure_rows", "measures_touched", "measures_changed", changed):
         con.execute(f"drop table {checked_name(table)}")
+
+
+def measure_query(
+    settings: Settings, input_query: str, input_params: dict[str, Any], with_ages: bool = False
+) -> tuple[str, dict[str, Any]]:
+    """``sql/derived/kidney_measures.sql`` over the rows of ``input_query`` (the relation
+    ``measure_input`` of ``sql/derived/measure_ages.sql``, inlined as ``measure_ages``), and the
+    parameters it uses: ``input_params`` and the measure settings. ``with_ages``: the rows of
+    ``input_query`` carry ``age_exact`` and ``female`` already (the equation tests give exact ages).
+    """
+    inputs = {"measure_input": input_query, "measure_ages": "sql:measure_ages"}
+    if with_ages:
+        inputs = {"measure_ages": input_query}
+    sql = sql_over("kidney_measures", inputs)
+    code = re.sub(r"--[^\n]*", "", sql)
+    params = {**measure_params(settings.pipeline.measures), **input_params}
+    return sql, {k: v for k, v in params.items() if re.search(rf"\${k}\b", code)}
+
+
+def measure_rows(
+    con: duckdb.DuckDBPyConnection, results: pl.DataFrame, settings: Settings
+) -> pl.DataFrame:
+    """``kidney_measures`` rows of a frame of lab_results rows, by the SQL rules (the tables of
+    schema ``reference`` must be loaded in ``con``). Without ``birth_year`` the frame's
+    ``age_years`` is taken as the exact age, as :func:`pipeline.core.measure_rules.measure_frame`
+    takes it.
+    """
+    if "reported_unit" not in results.columns:
+        results = results.with_columns(pl.lit(None, dtype=pl.String).alias("reported_unit"))
+    if "reported_value" not in results.columns:
+        results = results.with_columns(pl.col("value").cast(pl.Float64).alias("reported_value"))
+    with_ages = "birth_year" not in results.columns
+    if with_ages:
+        results = results.with_columns(
+            pl.col("age_years").cast(pl.Float64).alias("age_exact"),
+            pl.when(pl.col("sex") == "F").then(True).when(pl.col("sex") == "M").then(False)
+            .alias("female"),
+        )  # fmt: skip
+    with_frame(con, results, "create or replace temp table measure_rows_in as select * from _frame")
+    sql, params = measure_query(settings, "select * from measure_rows_in", {}, with_ages)
+    try:
+        return fetch_frame(con, sql, params)
+    finally:
+        con.execute("drop table measure_rows_in")
 
 
 def _summary(con: duckdb.DuckDBPyConnection) -> MeasureSummary:

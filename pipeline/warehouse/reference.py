@@ -11,6 +11,7 @@ import duckdb
 import polars as pl
 
 from pipeline.core.equations import KDIGO_GFR_LOWER_BOUNDS, KDIGO_RISK
+from pipeline.core.measure_rules import dipstick_categories, equation_coefficients
 from pipeline.core.regions import read_district_shapes
 from pipeline.core.settings import Settings
 from pipeline.warehouse.connection import with_frame
@@ -79,6 +80,9 @@ def load_reference_tables(con: duckdb.DuckDBPyConnection, settings: Settings) ->
         "age_bands": _age_bands(settings.pipeline.summaries.age_bands),
         "gfr_categories": _gfr_categories(),
         "gfr_categories_ordered": _gfr_categories().with_row_index("band_order"),
+        # the coefficients of pipeline/core/equations.py, for sql/derived/kidney_measures.sql
+        "equation_coefficients": equation_coefficients(),
+        "dipstick_categories": dipstick_categories(),
         "kdigo_risk": pl.DataFrame(
             [{"g_category": g, "a_category": a, "risk_category": r} for (g, a), r in KDIGO_RISK.items()]
         ),

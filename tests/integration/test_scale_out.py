@@ -1,6 +1,8 @@
-"""Scale-out: the person-level work run per person-hash shard, in this process and on a
-2-worker local Dask cluster, gives byte-identical published exports and the same tables as the
-local run."""
+"""Scale-out: the person-level work run per person-hash shard on a Dask cluster the run did not
+start (a real 2-worker ``distributed.LocalCluster``, reached through
+``execution.scheduler_address``), with a relative ``--out`` and an incremental next month on the
+same warehouse, gives byte-identical published exports and the same person tables as local runs
+of the same two months; and a worker running other code than the run is refused by name."""
 
 from __future__ import annotations
 
@@ -12,23 +14,21 @@ import duckdb
 import pytest
 
 from pipeline.run.flows import run_month_plain
+from pipeline.stages.link import shards
 
 REPO = Path(__file__).resolve().parents[2]
 SAMPLES = REPO / "sample_extracts"
-PERIOD = "2025-04"
+MONTHS = ("2024-11", "2024-12", "2025-01", "2025-02", "2025-03", "2025-04")
+NEXT = "2025-05"
 SOURCES = ("westerfold_general_lab", "corvale_lab_chain", "fallowmere_reference_lab")
-TABLES = ("person_status", "kidney_events", "measures_known", "daily_values_averaged",
+TABLES = ("person_status", "kidney_events", "kidney_measures",
           "published.district_ckd_prevalence", "published.district_screening_coverage",
           "published.district_decline_incidence")  # fmt: skip
 
 pytestmark = pytest.mark.slow
 
 
-@pytest.fixture(scope="module")
-def inbox(tmp_path_factory):
-    """The first six months of the samples: enough persons for every shard."""
-    root = tmp_path_factory.mktemp("scale") / "inbox"
-    months = ("2024-11", "2024-12", "2025-01", "2025-02", "2025-03", "2025-04")
+def copy_months(root: Path, months: tuple[str, ...]) -> None:
     for source in SOURCES:
         for path in (SAMPLES / source).rglob("*"):
             if path.is_file() and any(
@@ -37,28 +37,90 @@ def inbox(tmp_path_factory):
                 target = root / path.relative_to(SAMPLES)
                 target.parent.mkdir(parents=True, exist_ok=True)
                 shutil.copy2(path, target)
-    return root
 
 
-def _run(inbox: Path, out: Path, executor: str) -> tuple[dict[str, list[tuple]], dict[str, str]]:
-    run_month_plain(
-        PERIOD, str(REPO / "config"), str(inbox), str(out), demo=True, executor=executor
-    )
+@pytest.fixture(scope="module")
+def cluster():
+    """A cluster the run does not own: two worker processes, one thread each."""
+    from distributed import LocalCluster
+
+    with LocalCluster(
+        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None
+    ) as running:
+        yield running
+
+
+def dask_config(target: Path, address: str) -> Path:
+    """The shipped config, with the person-level work sent to the scheduler at ``address``."""
+    shutil.copytree(REPO / "config", target)
+    pipeline_yaml = target / "pipeline.yaml"
+    text = pipeline_yaml.read_text(encoding="utf-8")
+    for old, new in (("  executor: local\n", "  executor: dask\n"),
+                     ("  scheduler_address: null\n", f'  scheduler_address: "{address}"\n')):  # fmt: skip
+        assert old in text, old
+        text = text.replace(old, new)
+    pipeline_yaml.write_text(text, encoding="utf-8")
+    return target
+
+
+def two_months(config: Path, inbox: Path, out: str | Path) -> list[tuple[dict, dict]]:
+    """The first six sample months as one run for 2025-04, then 2025-05 added to the inbox and
+    run into the same warehouse (the monthly path); each run's tables and exports."""
+    copy_months(inbox, MONTHS)
+    seen = []
+    for period in (MONTHS[-1], NEXT):
+        if period == NEXT:
+            copy_months(inbox, (NEXT,))
+        run_month_plain(period, str(config), str(inbox), str(out), demo=True)
+        seen.append(state(Path(out), period))
+    return seen
+
+
+def state(out: Path, period: str) -> tuple[dict[str, list[tuple]], dict[str, str]]:
     con = duckdb.connect(str(out / "surveillance.duckdb"), read_only=True)
     try:
         tables = {t: con.execute(f"select * from {t} order by all").fetchall() for t in TABLES}
     finally:
         con.close()
     exports = {p.name: hashlib.sha256(p.read_bytes()).hexdigest()
-               for p in sorted((out / PERIOD).glob("*")) if p.suffix in (".csv", ".parquet")}  # fmt: skip
+               for p in sorted((out / period).glob("*")) if p.suffix in (".csv", ".parquet")}  # fmt: skip
     return tables, exports
 
 
-def test_shards_and_dask_equal_the_local_run(inbox, tmp_path):
-    local = _run(inbox, tmp_path / "local", "local")
-    for executor in ("shards", "dask"):
-        tables, exports = _run(inbox, tmp_path / executor, executor)
-        assert exports == local[1], executor
-        for table, rows in local[0].items():
-            assert tables[table] == rows, (executor, table)
-    assert local[0]["person_status"], "the sample months should give persons"
+def test_external_cluster_relative_out_and_next_month_equal_local_runs(
+    cluster, tmp_path, monkeypatch
+):
+    local = two_months(REPO / "config", tmp_path / "local_inbox", tmp_path / "local")
+    assert local[0][0]["person_status"], "the sample months should give persons"
+
+    config = dask_config(tmp_path / "dask_config", cluster.scheduler_address)
+    monkeypatch.chdir(tmp_path)  # "--out dask": relative to the run's working folder only
+    before = dict(cluster.scheduler.task_prefixes)
+    scaled = two_months(config, tmp_path / "dask_inbox", "dask")
+
+    # the shards went to the cluster given, four per month (execution.shards), none elsewhere
+    prefix = cluster.scheduler.task_prefixes.get("run_shard")
+    assert prefix is not None and "run_shard" not in before
+    assert prefix.state_counts["memory"] == 2 * 4
+    assert (tmp_path / "dask" / "surveillance.duckdb").is_file()
+    for (tables, exports), (local_tables, local_exports), period in zip(
+        scaled, local, (MONTHS[-1], NEXT), strict=True
+    ):
+        assert exports and exports == local_exports, period  # byte-identical published files
+        for table, rows in local_tables.items():
+            assert tables[table] == rows, (period, table)
+
+
+def test_a_worker_running_other_code_is_refused_by_name(cluster, monkeypatch):
+    from distributed import Client
+
+    with Client(cluster.scheduler_address) as client:
+        shards.check_workers_code(client)  # the same code everywhere: nothing to say
+        # this process now claims another version than the workers have installed
+        monkeypatch.setattr(shards, "version", lambda name: "0.0.0-other")
+        with pytest.raises(shards.WorkerCodeMismatch) as refused:
+            shards.check_workers_code(client)
+    message = str(refused.value)
+    assert "2 of 2 Dask workers run other code" in message
+    assert all(worker in message for worker in cluster.scheduler.workers)
+    assert "0.0.0-other" in message

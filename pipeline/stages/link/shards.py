@@ -11,11 +11,18 @@ Executors (``execution.executor`` in config/pipeline.yaml):
 - ``shards``: the shard path in this process, one shard after another (to test the path).
 - ``dask``: the shards as tasks of a ``distributed`` client: a local cluster of
   ``execution.dask_workers`` processes, or the scheduler at ``execution.scheduler_address``.
+
+Every path handed to a worker is absolute (a worker's working folder is not the run's: a relative
+``--out`` would name another folder there), and before any shard is sent every worker must run
+the same code as the run: the same package version and the same source files (Python and SQL),
+compared by :func:`code_fingerprint`; otherwise the run stops and names the workers that differ.
 """
 
 from __future__ import annotations
 
+import hashlib
 import shutil
+from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
 from typing import Any
 
@@ -41,7 +48,10 @@ def shard_expression() -> str:
 
 
 def export_shard_inputs(con: duckdb.DuckDBPyConnection, work: Path, shards: int) -> list[Path]:
-    """Write each shard's known results, and the reference tables, as Parquet under ``work``."""
+    """Write each shard's known results, and the reference tables, as Parquet under ``work``;
+    return the shard folders, absolute.
+    """
+    work = work.resolve()
     shutil.rmtree(work, ignore_errors=True)
     (work / "reference").mkdir(parents=True)
     for table in REFERENCE_TABLES:
@@ -100,7 +110,9 @@ def run_shard(folder: str, config_dir: str, period_label: str) -> str:
 def run_shards(folders: list[Path], settings: Settings, period: Period) -> list[str]:
     """Run every shard with the configured executor; return the finished folders in order."""
     e = settings.pipeline.execution
-    args = [(str(f), str(settings.config_dir.resolve()), period.label) for f in folders]
+    # absolute: a worker resolves a relative path against its own working folder
+    args = [(str(Path(f).resolve()), str(settings.config_dir.resolve()), period.label)
+            for f in folders]  # fmt: skip
     if e.executor != "dask":
         return [run_shard(*a) for a in args]
     from distributed import Client, LocalCluster
@@ -113,7 +125,49 @@ def run_shards(folders: list[Path], settings: Settings, period: Period) -> list[
         return _map(client, args)
 
 
+class WorkerCodeMismatch(RuntimeError):
+    """A Dask worker runs other code than the run (another version or other source files)."""
+
+
+def code_fingerprint() -> dict[str, str]:
+    """The code this process runs: the installed package's version and a SHA-256 of every
+    Python and SQL file of the package and its sql/ folder (relative path and content), so
+    that a worker with an edited or older copy is told apart from the run's own.
+    """
+    package = Path(__file__).resolve().parents[2]
+    digest = hashlib.sha256()
+    files = sorted([*package.rglob("*.py"), *(package.parent / "sql").rglob("*.sql")])
+    for path in files:
+        digest.update(path.relative_to(package.parent).as_posix().encode() + b"\0")
+        digest.update(path.read_bytes() + b"\0")
+    try:
+        installed = version("kidneysurv")
+    except PackageNotFoundError:  # pragma: no cover - running from a bare source tree
+        installed = "unknown"
+    return {"version": installed, "sources_sha256": digest.hexdigest()}
+
+
+def check_workers_code(client: Any) -> None:
+    """Stop before any shard is sent if a worker's :func:`code_fingerprint` differs from the
+    run's, naming the workers and what differs.
+    """
+    mine = code_fingerprint()
+    theirs = client.run(code_fingerprint)
+    differing = {w: f for w, f in theirs.items() if f != mine}
+    if differing:
+        detail = "; ".join(
+            f"{worker}: version {f.get('version')} (run: {mine['version']}), sources "
+            f"{str(f.get('sources_sha256'))[:12]} (run: {mine['sources_sha256'][:12]})"
+            for worker, f in sorted(differing.items())
+        )
+        raise WorkerCodeMismatch(
+            f"{len(differing)} of {len(theirs)} Dask workers run other code than this run "
+            f"(install the same kidneysurv on every worker): {detail}"
+        )
+
+
 def _map(client: Any, args: list[tuple[str, str, str]]) -> list[str]:
+    check_workers_code(client)
     futures = [client.submit(run_shard, *a, pure=False) for a in args]
     return client.gather(futures)
 

@@ -65,14 +65,15 @@ def test_ckd_epi_2021_scr_equal_kappa_leaves_age_and_sex_terms(age, female):
     assert got == pytest.approx(expected, rel=1e-12)
 
 
-@pytest.mark.parametrize(
-    ("scr", "age", "female", "expected"),
-    [
-        (1.2, 60, False, 69.2311),  # upper branch, man
-        (0.5, 30, True, 129.3170),  # lower branch, woman
-        (3.0, 80, False, 20.3589),
-    ],
-)
+#: Hand calculations, Inker et al., N Engl J Med 2021;385:1737 (scr, age, female, expected).
+CKD_EPI_2021_HAND = [
+    (1.2, 60, False, 69.2311),  # upper branch, man
+    (0.5, 30, True, 129.3170),  # lower branch, woman
+    (3.0, 80, False, 20.3589),
+]
+
+
+@pytest.mark.parametrize(("scr", "age", "female", "expected"), CKD_EPI_2021_HAND)
 def test_ckd_epi_2021_hand_calculations(scr, age, female, expected):
     # Hand calculations from the formula in Inker et al., N Engl J Med 2021;385:1737.
     got = one(eq.ckd_epi_2021_creatinine(SCR, AGE, FEMALE), scr=scr, age=age, female=female)
@@ -93,10 +94,15 @@ def test_ckd_epi_2009_scr_equal_kappa(female):
     assert got == pytest.approx(expected, rel=1e-12)
 
 
-@pytest.mark.parametrize(
-    ("scr", "age", "female", "expected"),
-    [(1.0, 50, True, 65.6376), (0.6, 40, False, 125.7658), (2.0, 70, False, 32.8398)],
-)
+#: Hand calculations, Levey et al., Ann Intern Med 2009;150:604 (scr, age, female, expected).
+CKD_EPI_2009_HAND = [
+    (1.0, 50, True, 65.6376),
+    (0.6, 40, False, 125.7658),
+    (2.0, 70, False, 32.8398),
+]
+
+
+@pytest.mark.parametrize(("scr", "age", "female", "expected"), CKD_EPI_2009_HAND)
 def test_ckd_epi_2009_hand_calculations(scr, age, female, expected):
     # Hand calculations from the formula in Levey et al., Ann Intern Med 2009;150:604.
     got = one(eq.ckd_epi_2009_creatinine(SCR, AGE, FEMALE), scr=scr, age=age, female=female)
@@ -116,9 +122,11 @@ def test_ckd_epi_2012_cystatin_at_kappa(female):
     assert got == pytest.approx(expected, rel=1e-12)
 
 
-@pytest.mark.parametrize(
-    ("scys", "age", "female", "expected"), [(0.6, 45, True, 119.4764), (1.4, 60, False, 49.7345)]
-)
+#: Hand calculations, Inker et al., N Engl J Med 2012;367:20 (scys, age, female, expected).
+CYSTATIN_2012_HAND = [(0.6, 45, True, 119.4764), (1.4, 60, False, 49.7345)]
+
+
+@pytest.mark.parametrize(("scys", "age", "female", "expected"), CYSTATIN_2012_HAND)
 def test_ckd_epi_2012_cystatin_hand_calculations(scys, age, female, expected):
     # Hand calculations from the formula in Inker et al., N Engl J Med 2012;367:20.
     got = one(eq.ckd_epi_2012_cystatin(SCYS, AGE, FEMALE), scys=scys, age=age, female=female)
@@ -146,10 +154,11 @@ def test_ckd_epi_2021_combined_at_both_kappas_from_memory(female):
     assert got == pytest.approx(expected, rel=1e-12)
 
 
-@pytest.mark.parametrize(
-    ("scr", "scys", "age", "female", "expected"),
-    [(1.2, 1.5, 60, True, 47.0327), (0.6, 0.7, 35, False, 130.3242)],
-)
+#: Hand calculations, Inker et al. 2021, coefficients from memory (scr, scys, age, female, expected).
+COMBINED_HAND = [(1.2, 1.5, 60, True, 47.0327), (0.6, 0.7, 35, False, 130.3242)]
+
+
+@pytest.mark.parametrize(("scr", "scys", "age", "female", "expected"), COMBINED_HAND)
 def test_ckd_epi_2021_combined_hand_calculations_from_memory(scr, scys, age, female, expected):
     # Hand calculations from the formula of Inker et al. 2021 with coefficients from memory.
     got = one(
@@ -180,10 +189,11 @@ def test_ekfc_adult_at_q(age, female, q):
     assert got == pytest.approx(expected, rel=1e-12)
 
 
-@pytest.mark.parametrize(
-    ("scr", "age", "female", "expected"),
-    [(1.4, 70, True, 36.2151), (0.5, 25, True, 119.5785), (1.2, 55, False, 66.6342)],
-)
+#: Hand calculations, Pottel et al., Ann Intern Med 2021;174:183 (scr, age, female, expected).
+EKFC_ADULT_HAND = [(1.4, 70, True, 36.2151), (0.5, 25, True, 119.5785), (1.2, 55, False, 66.6342)]
+
+
+@pytest.mark.parametrize(("scr", "age", "female", "expected"), EKFC_ADULT_HAND)
 def test_ekfc_adult_hand_calculations(scr, age, female, expected):
     # Hand calculations from the formula in Pottel et al., Ann Intern Med 2021;174:183.
     got = one(eq.ekfc_creatinine(SCR, AGE, FEMALE), scr=scr, age=age, female=female)
@@ -212,9 +222,11 @@ def test_ekfc_child_q_from_memory(age, female):
     assert got == pytest.approx(107.3, rel=1e-12)
 
 
-@pytest.mark.parametrize(
-    ("scr", "age", "female", "expected"), [(0.6, 10, False, 94.1654), (0.5, 8, True, 95.5173)]
-)
+#: Hand calculations, Pottel et al. 2021, child Q from memory (scr, age, female, expected).
+EKFC_CHILD_HAND = [(0.6, 10, False, 94.1654), (0.5, 8, True, 95.5173)]
+
+
+@pytest.mark.parametrize(("scr", "age", "female", "expected"), EKFC_CHILD_HAND)
 def test_ekfc_child_hand_calculations_from_memory(scr, age, female, expected):
     # Hand calculations from Pottel et al. 2021 with the child Q from memory.
     got = one(eq.ekfc_creatinine(SCR, AGE, FEMALE), scr=scr, age=age, female=female)
@@ -237,15 +249,16 @@ def test_ekfc_q_switches_to_adult_at_18_from_memory(female, adult_q):
 # ---------------------------------------------------------------------------------------------
 
 
-@pytest.mark.parametrize(
-    ("scr", "height_cm", "age", "female", "expected"),
-    [
-        (0.7, 150, 12, False, 39.0 * 1.5 / 0.7),  # K = 39.0 at 12 (end-point)
-        (0.7, 150, 12, True, 36.1 * 1.5 / 0.7),  # K = 36.1 at 12 (end-point)
-        (1.0, 175, 20, False, 50.8 * 1.75),  # K = 50.8 from 18 (end-point)
-        (0.9, 165, 22, True, 41.4 * 1.65 / 0.9),  # K = 41.4 from 18 (end-point)
-    ],
-)
+#: K end-points, Pierce et al., Kidney Int 2021;99:948 (scr, height_cm, age, female, expected).
+CKID_U25_END_POINTS = [
+    (0.7, 150, 12, False, 39.0 * 1.5 / 0.7),  # K = 39.0 at 12 (end-point)
+    (0.7, 150, 12, True, 36.1 * 1.5 / 0.7),  # K = 36.1 at 12 (end-point)
+    (1.0, 175, 20, False, 50.8 * 1.75),  # K = 50.8 from 18 (end-point)
+    (0.9, 165, 22, True, 41.4 * 1.65 / 0.9),  # K = 41.4 from 18 (end-point)
+]
+
+
+@pytest.mark.parametrize(("scr", "height_cm", "age", "female", "expected"), CKID_U25_END_POINTS)
 def test_ckid_u25_end_points_from_memory(scr, height_cm, age, female, expected):
     # Pierce et al. 2021, K end-points per DEVELOPERS.md, Methods and sources (from memory, end-points confirmed).
     got = one(
@@ -258,10 +271,11 @@ def test_ckid_u25_end_points_from_memory(scr, height_cm, age, female, expected):
     assert got == pytest.approx(expected, rel=1e-12)
 
 
-@pytest.mark.parametrize(
-    ("scr", "height_cm", "age", "female", "expected"),
-    [(0.8, 160, 15, True, 77.2973), (0.4, 115, 6, False, 106.8905)],
-)
+#: Hand calculations, Pierce et al. 2021, growth factors from memory (scr, height_cm, age, female, expected).
+CKID_U25_HAND = [(0.8, 160, 15, True, 77.2973), (0.4, 115, 6, False, 106.8905)]
+
+
+@pytest.mark.parametrize(("scr", "height_cm", "age", "female", "expected"), CKID_U25_HAND)
 def test_ckid_u25_hand_calculations_from_memory(scr, height_cm, age, female, expected):
     # Hand calculations from Pierce et al. 2021 with growth factors from memory.
     got = one(
@@ -626,16 +640,17 @@ def test_dipstick_case_spaces_unknown_and_null():
     assert got == [None, "A1", None, None, None, None]  # trace spans A1-A2 (KDIGO 2012)
 
 
-@pytest.mark.parametrize(
-    ("pcr", "expected"),
-    [
-        (50.0, 5.7865),  # PCR at the lower knot
-        (150.0, 32.8045),  # PCR at the KDIGO A1/A2 protein boundary
-        (500.0, math.exp(5.3920)),  # upper knot: only the intercept remains (219.64)
-        (1000.0, 479.5747),
-        (20.0, 4.3669),
-    ],
-)
+#: Hand calculations, Sumida et al., Ann Intern Med 2020;173:426, crude equation from memory (pcr, expected).
+SUMIDA_HAND = [
+    (50.0, 5.7865),  # PCR at the lower knot
+    (150.0, 32.8045),  # PCR at the KDIGO A1/A2 protein boundary
+    (500.0, math.exp(5.3920)),  # upper knot: only the intercept remains (219.64)
+    (1000.0, 479.5747),
+    (20.0, 4.3669),
+]
+
+
+@pytest.mark.parametrize(("pcr", "expected"), SUMIDA_HAND)
 def test_acr_from_pcr_sumida_hand_calculations_from_memory(pcr, expected):
     # Hand calculations from the Sumida et al. 2020 crude equation as recalled FROM MEMORY.
     assert one(eq.acr_from_pcr_sumida(X), x=pcr) == pytest.approx(expected, abs=1e-3)
