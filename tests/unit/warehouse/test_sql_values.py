@@ -26,6 +26,8 @@ SQL_CALLS = {
     "query": 0,
     "fetch_frame": 1,
     "with_frame": 2,
+    "measure_query": 1,  # the rows the measure SQL runs over
+    "sql_over": 1,  # the inputs put in front of a file of sql/
 }
 
 #: The fragments formatted into SQL that are not names: (module, expression) -> why it is safe.
@@ -67,6 +69,10 @@ FRAGMENTS = {
         "stages/quality_gate.py",
         "base",
     ): "a constant FROM clause and a predicate from the gate's own list",
+    (
+        "stages/quality_gate.py",
+        "columns",
+    ): "casts of the standard columns to their types (constants)",
     ("stages/quality_gate.py", "predicate"): "a predicate from the gate's own constant list",
     (
         "warehouse/catalog.py",
