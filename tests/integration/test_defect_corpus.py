@@ -523,7 +523,7 @@ def test_both_readers_land_the_same_rows(case_id, rel, config, configs, tmp_path
     landed rows, notes and faults for every file of the corpus (DEVELOPERS.md: row accounting
     does not depend on which reader ran)."""
     from pipeline.core.settings import load_settings
-    from tests.unit.stages.test_ingest_reader_paths import compare_paths
+    from tests.unit.stages.ingest.test_delimited import compare_paths
 
     settings = load_settings(configs[config])
     source = next(s for s in settings.sources if s.folder == rel.split("/")[0])

@@ -31,7 +31,7 @@ def _documented() -> set[str]:
     body = block.split("\nsql/", 1)[0]  # the pipeline/ part of the tree
     found, stack = set(), []
     for line in body.splitlines()[1:]:
-        m = re.match(r"^( +)(\w+(?:\.py|\.css|/))", line)
+        m = re.match(r"^( {2,12})(\w+(?:\.py|\.css|/))", line)  # a name, not a wrapped description
         if not m:
             continue
         depth = len(m.group(1)) // 2 - 1

@@ -44,7 +44,7 @@ def _header_fault(
 #: The characters Python's ``str.strip()`` removes (``str.isspace``): Unicode White_Space plus
 #: the information separators U+001C..U+001F, which polars' own ``strip_chars()`` keeps. The
 #: bulk reader strips with these so that a token or a blank line is judged as the csv reader's
-#: path judges it (test_reader_paths.py checks the set against ``str.isspace``).
+#: path judges it (tests/unit/stages/ingest/test_rows.py checks the set against ``str.isspace``).
 PY_WHITESPACE = (
     "\t\n\x0b\x0c\r\x1c\x1d\x1e\x1f \x85\xa0\u1680\u2000\u2001\u2002\u2003\u2004\u2005\u2006"
     "\u2007\u2008\u2009\u200a\u2028\u2029\u202f\u205f\u3000"

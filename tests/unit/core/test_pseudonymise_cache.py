@@ -1,6 +1,6 @@
 """The run's person-key cache: every (linkage domain, token) is hashed once per run, the keys are
 those of :func:`pipeline.core.pseudonymise.person_key` (HMAC-SHA256, RFC 2104, checked against
-Python's ``hmac`` module in test_ingest.py), and no token is ever shown by the cache.
+Python's ``hmac`` module in stages/ingest/test_landing_layouts.py), and no token is ever shown by the cache.
 
 Outside reference: Python's ``hmac`` module (``hmac.new(...).hexdigest()``), and its docs for
 ``HMAC.copy()`` (a copy of the keyed state gives the digest of the key and the later input).

@@ -31,7 +31,7 @@ from pipeline.core.settings import Settings, load_settings
 from pipeline.stages.ingest.inbox import FileFault, InboxFile, sha256_of
 from pipeline.stages.ingest.landing import read_inbox_file
 from tests.conftest import examples, make_small_config, rows, run_month, write_inbox
-from tests.unit.stages.test_ingest_reader_paths import compare_paths
+from tests.unit.stages.ingest.test_delimited import compare_paths
 
 LAB = "westerfold_general_lab"
 FHIR = "fallowmere_reference_lab"
