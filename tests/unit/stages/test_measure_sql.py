@@ -1,5 +1,5 @@
 """The measure stage's SQL (sql/derived/kidney_measures.sql) against the published worked examples
-of tests/unit/test_equations.py, same sources and tolerances, each example given to the SQL as a
+of tests/unit/core/test_equations.py, same sources and tolerances, each example given to the SQL as a
 lab result of the kind that gets that equation; and against the polars rules on many rows, to
 the last bit. The coefficients reach the SQL only through reference.equation_coefficients."""
 
@@ -20,7 +20,7 @@ from pipeline.core.settings import load_settings
 from pipeline.stages.measure import measure_rows
 from pipeline.warehouse.reference import load_reference_tables
 from tests.conftest import CONFIG_DIR
-from tests.unit import test_equations as examples
+from tests.unit.core import test_equations as examples
 
 SETTINGS = load_settings(CONFIG_DIR)
 DAY = dt.date(2026, 1, 10)
