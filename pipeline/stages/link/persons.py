@@ -164,7 +164,8 @@ LOGIC_FILES = tuple(
                             "stages/link/persons.py")]
     + [sql_path(n) for n in ("results_known", "daily_values_averaged", "kidney_events",
                              "result_versions_resolved", "kidney_events_carried",
-                             "person_status_carried", "link_seed_versions")]
+                             "person_status_carried", "link_seed_versions",
+                             "kidney_measures", "measure_ages")]  # the stored measures' rules
 )  # fmt: skip
 
 
