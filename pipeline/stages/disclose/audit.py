@@ -1153,7 +1153,11 @@ def audit(tables: dict[str, AuditTable], rules: DisclosureSettings, basis: RateB
                     t.marks[column][row] = "primary"
     relations = _relations()
     live = dict(tables)
-    before = sum(1 for t in tables.values() for c in t.counts for v in t.values[c] if v is None)
+
+    def blanks(t) -> int:
+        return sum(1 for c in t.counts for v in t.values[c] if v is None)
+
+    before = {name: blanks(t) for name, t in tables.items()}
     while live:
         system = build_system(live, relations, rate_bounds)
         outcome = _protect(system, live, rules, rate_bounds, notes, max_rounds)
@@ -1169,11 +1173,13 @@ def audit(tables: dict[str, AuditTable], rules: DisclosureSettings, basis: RateB
     for t in live.values():  # copies follow their source as it is finally published
         if t.copied_from is not None and t.copied_from.table in live:
             _recopy(t, live[t.copied_from.table])
-    after = sum(1 for t in live.values() for c in t.counts for v in t.values[c] if v is None)
+    # blanks the audit added to the tables it publishes (a withheld table is counted apart, in
+    # ``withheld``: its blanks before the audit are not taken away from the others' count)
+    added = sum(blanks(t) - before[name] for name, t in live.items())
     frames = {}
     for name, t in tables.items():
         frames[name] = finish(t) if name in live else t.published.clear()
-    return AuditResult(frames, withheld, notes, after - before)
+    return AuditResult(frames, withheld, notes, added)
 
 
 def _recopy(t: AuditTable, source: AuditTable) -> None:

@@ -226,6 +226,8 @@ def test_no_blank_is_narrowed_by_the_table_read_whole(cells):
     internal = prevalence(cells)
     result = audit_frames({PREVALENCE.name: internal}, RULES)
     published = result.frames[PREVALENCE.name]
+    # blanks the audit added: a count, never below 0 (a withheld table too)
+    assert result.added >= 0
     if PREVALENCE.name in result.withheld:
         assert published.height == 0 and result.withheld[PREVALENCE.name]
         return
@@ -450,6 +452,7 @@ def test_prevalence_and_categories_read_together_give_no_blank_away(persons):
     prevalence_in, categories_in = person_frames(persons)
     frames = {"district_ckd_prevalence": prevalence_in, "district_ckd_categories": categories_in}
     result = audit_frames(frames, RULES)
+    assert result.added >= 0  # a count of blanks added (a withheld table's own are not subtracted)
     if result.withheld:
         for name in result.withheld:
             assert result.frames[name].height == 0
