@@ -163,17 +163,8 @@ def _print_summary(summary: dict, out: Path) -> None:
         title=f"Period {summary['period']}: rows per source (files ingested for this period)",
         title_justify="left",
     )
-    cols = (
-        "files",
-        "read",
-        "accepted",
-        "rejected",
-        "superseded",
-        "duplicate",
-        "withdrawn",
-        "pending",
-        "held_back",
-    )
+    from pipeline.run.period_checks import PERIOD_COLUMNS as cols
+
     table.add_column("source")
     for c in cols:
         table.add_column(c.replace("_", " "), justify="right")
