@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import datetime as dt
 from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -115,14 +116,46 @@ def land_inbox(
     next_id = con.execute("select coalesce(max(file_id), 0) + 1 from ingest_files").fetchall()[0][0]
     files = begin_landed_files(con)
     keys = PersonKeyCache(key)
+    for item in items:  # ids in inbox order, as the files are recorded
+        if item.status != "already_ingested":
+            item.allowed_identifiers.clear()
+            item.file_id = next_id
+            next_id += 1
+    # Read ahead: the next new file is read in a second thread while this one is keyed and
+    # judged (polars and DuckDB release the GIL, so the two overlap on two cores); the files
+    # are still taken in inbox order and at most one is read ahead, so the ids, the ledger and
+    # every table are what the one-at-a-time loop gives (tests/unit/stages/ingest/test_landing.py).
+    ahead = [i for i in items if i.status == "new"]
+    reads: dict[int, Future[pl.DataFrame]] = {}
+    pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="read-ahead")
+
+    def read_next(after: int) -> None:
+        for candidate in ahead[after : after + 2]:  # this file and the next one
+            if id(candidate) not in reads:
+                reads[id(candidate)] = pool.submit(
+                    read_inbox_file, settings.source(candidate.source_id), candidate, settings,
+                    undated_on, ingested_on)  # fmt: skip
+
+    try:
+        return _land_items(con, settings, items, key, keys, files, summary, run_period,
+                           undated_on, ingested_on, sink, ahead, reads, read_next)  # fmt: skip
+    finally:
+        pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _land_items(con: duckdb.DuckDBPyConnection, settings: Settings, items: list[InboxFile],
+                key: PseudonymKey, keys: PersonKeyCache, files: str, summary: IngestSummary,
+                run_period: str, undated_on: dt.date, ingested_on: dt.date,
+                sink: Callable[[duckdb.DuckDBPyConnection, pl.DataFrame], None],
+                ahead: list[InboxFile], reads: dict[int, Future[pl.DataFrame]],
+                read_next: Callable[[int], None]) -> Landed:  # fmt: skip
+    """The loop of :func:`land_inbox` over the scanned files, with its read-ahead."""
+    position = {id(i): n for n, i in enumerate(ahead)}
     for item in items:
         if item.status == "already_ingested":
             summary.files_skipped += 1
             continue
-        item.allowed_identifiers.clear()
         source = settings.source(item.source_id)
-        item.file_id = next_id
-        next_id += 1
         # a file held back earlier is tried again: its old ledger row (no rows stored) goes
         con.execute(
             "delete from ingest_files where source_id = ? and file_path = ? and sha256 = ? "
@@ -152,7 +185,11 @@ def land_inbox(
             summary.files_skipped += 1
         else:  # new, or a copy of a file that was not ingested (held back): read it
             try:
-                frame = read_inbox_file(source, item, settings, undated_on, ingested_on)
+                if id(item) in position:
+                    read_next(position[id(item)])
+                    frame = reads.pop(id(item)).result()
+                else:  # a copy of a file held back earlier: read here
+                    frame = read_inbox_file(source, item, settings, undated_on, ingested_on)
             except FileFault as fault:
                 status, message = "held_back", item.safe(str(fault))
                 summary.files_held_back += 1
