@@ -252,3 +252,16 @@ def add_person_keys(
     return frame.join(
         keys, on=["linkage_domain", "person_token"], how="left", maintain_order="left"
     ).drop("person_token", "linkage_domain")
+
+
+def person_range(chunk: int, chunks: int) -> tuple[str, str]:
+    """The person keys of one chunk: ``lower <= person_key < upper``. A person key is the hex of
+    an HMAC-SHA256 (pipeline/core/pseudonymise.py), spread uniformly, so equal ranges of its first
+    eight hex digits hold about equal numbers of persons; comparing text is about four times
+    cheaper per row than hashing it again (measured at 10M results).
+    """
+    lower = f"{(chunk << 32) // chunks:08x}"
+    upper = (
+        f"{((chunk + 1) << 32) // chunks:08x}" if chunk + 1 < chunks else "g"
+    )  # after every hex digit
+    return lower, upper

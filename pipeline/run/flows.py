@@ -53,7 +53,7 @@ from pipeline.stages.publish import (  # noqa: E402
     write_exports,
     write_json,
 )
-from pipeline.stages.summarise import summarise_stage  # noqa: E402
+from pipeline.stages.summarise import PersonScope, summarise_stage  # noqa: E402
 from pipeline.stages.validate import (  # noqa: E402
     Judged,
     begin_judging,
@@ -82,6 +82,7 @@ class RunContext:
     touched_only: bool = False  # the validate stage settled only the versions new rows touch
     changed_versions: str | None = None  # the results it changed then, for the measure stage
     validated: ValidatedScope | None = None  # what the validate stage hands the link stage
+    person_scope: PersonScope | None = None  # what the link stage hands the summarise stage
     inbox_items: list[InboxFile] | None = None  # the scan stage's listing, read by the ingest stage
     landed: Landed | None = None  # what the ingest stage leaves (the table of this run's files)
     revise: str | None = None  # the reason given for a revision of an already published period
@@ -236,6 +237,7 @@ def link_task(run_id: str) -> dict[str, Any]:
             work=ctx.out / ".work" / ctx.period.label,
             validated=ctx.validated,
         )
+        ctx.person_scope = PersonScope(s.fingerprint, s.carried_from, s.changed_persons)
         return {
             "persons": s.persons,
             "events confirmed": s.events_confirmed,
@@ -250,7 +252,7 @@ def link_task(run_id: str) -> dict[str, Any]:
 def summarise_task(run_id: str) -> dict[str, Any]:
     def work(ctx: RunContext) -> dict[str, Any]:
         stash = stash_release(ctx.con, ctx.period.label)  # the release now published
-        summarised = summarise_stage(ctx.con, ctx.settings, ctx.period)
+        summarised = summarise_stage(ctx.con, ctx.settings, ctx.period, ctx.person_scope)
         counts = summarised.tables
         disclosed = disclose_stage(ctx.con, ctx.settings.pipeline.disclosure, ctx.period,
                                    ctx.settings.pipeline.summaries, summarised.tables)  # fmt: skip

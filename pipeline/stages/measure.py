@@ -22,6 +22,7 @@ import duckdb
 import polars as pl
 
 from pipeline.core.measure_rules import MEASURE_COLUMNS, MEASURED_ANALYTES, measure_params
+from pipeline.core.pseudonymise import person_range
 from pipeline.core.settings import Settings
 from pipeline.warehouse.connection import fetch_frame, with_frame
 from pipeline.warehouse.sql import sql_over
@@ -39,19 +40,6 @@ class MeasureSummary:
 #: Results measured per pass: a large warehouse is measured in person-key ranges, so that one
 #: statement's joins and sort stay within the memory limit.
 CHUNK_RESULTS = 400_000
-
-
-def person_range(chunk: int, chunks: int) -> tuple[str, str]:
-    """The person keys of one chunk: ``lower <= person_key < upper``. A person key is the hex of
-    an HMAC-SHA256 (pipeline/core/pseudonymise.py), spread uniformly, so equal ranges of its first
-    eight hex digits hold about equal numbers of persons; comparing text is about four times
-    cheaper per row than hashing it again (measured at 10M results).
-    """
-    lower = f"{(chunk << 32) // chunks:08x}"
-    upper = (
-        f"{((chunk + 1) << 32) // chunks:08x}" if chunk + 1 < chunks else "g"
-    )  # after every hex digit
-    return lower, upper
 
 
 def measure_stage(

@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import hashlib
 from dataclasses import dataclass
+from pathlib import Path
 
 import duckdb
 import polars as pl
@@ -16,6 +18,7 @@ from pipeline.core.equation_impact import (
     summary,
 )
 from pipeline.core.periods import Period
+from pipeline.core.pseudonymise import person_range
 from pipeline.core.rule_params import event_params
 from pipeline.core.settings import Settings
 from pipeline.core.statistics import (
@@ -32,7 +35,7 @@ from pipeline.warehouse.connection import (
     with_frame,
 )
 from pipeline.warehouse.sql import build_table, replace_period_frame, replace_period_rows, sql_over
-from pipeline.warehouse.sql_files import checked_name, read_sql
+from pipeline.warehouse.sql_files import checked_name, sql_path
 
 #: Internal summary tables, in the order they are built (each is sql/reports/<name>.sql).
 SUMMARY_TABLES = (
@@ -151,11 +154,139 @@ def build_undetected_albuminuria(
     return replace_period_frame(con, "district_undetected_albuminuria", period.label, frame)
 
 
+#: eGFRs recomputed under the comparison equation per pass: the persons are taken in person-key
+#: ranges, so that no pass holds more than about this many rows in memory at any warehouse size.
+COMPARISON_CHUNK_ROWS = 1_500_000
+
+#: The code and SQL behind equation_comparison_ckd besides the link stage's (its fingerprint).
+_COMPARISON_FILES = (
+    Path(__file__).resolve().parents[1] / "core" / "equation_impact.py",
+    *(sql_path(n) for n in ("equation_comparison_history", "equation_acr_days",
+                            "equation_confirmed_ckd")),
+)  # fmt: skip
+
+
+@dataclass(frozen=True)
+class PersonScope:
+    """What the link stage hands on to the summarise stage: the fingerprint of the rules and code
+    that made the period's person tables and, when the rows of unchanged persons were carried over
+    from an earlier period (``carried_from``), the temporary table of the persons computed anew
+    (``changed``, one column ``person_key``). The default: every person computed.
+    """
+
+    fingerprint: str = ""
+    carried_from: str | None = None
+    changed: str | None = None
+
+
+def comparison_fingerprint(scope: PersonScope, comparison: str) -> str:
+    """What equation_comparison_ckd depends on: the link stage's fingerprint, the comparison and
+    the code and SQL of the comparison.
+    """
+    digest = hashlib.sha256(f"{scope.fingerprint}\x1f{comparison}".encode())
+    for path in _COMPARISON_FILES:
+        digest.update(path.read_bytes())
+    return digest.hexdigest()
+
+
+def build_comparison_ckd(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period,
+                         scope: PersonScope) -> tuple[set[str], int]:  # fmt: skip
+    """``equation_comparison_ckd`` for the period: the persons with confirmed CKD when every known
+    adult creatinine eGFR made by the equation in force is recomputed under the comparison and the
+    CKD rules (sql/analysis/kidney_events.sql) are run again, other eGFRs and ACRs as they are.
+    Returns those persons and how many persons were computed anew.
+
+    Incremental as the link stage: when it carried the unchanged persons' rows over from an earlier
+    period whose comparison rows were built with the same fingerprint, only its changed persons
+    are computed again and the others' rows are that period's (a person's events depend on their
+    own values only). The persons computed are taken in person-key ranges, each pass holding at
+    most about :data:`COMPARISON_CHUNK_ROWS` eGFRs.
+    """
+    m = settings.pipeline.measures
+    comparison = settings.pipeline.summaries.equation_comparison
+    fingerprint = comparison_fingerprint(scope, comparison)
+    carry = bool(scope.changed and scope.carried_from) and con.execute(
+        "select count(*) from equation_comparison_builds where period = ? and comparison = ? "
+        "and fingerprint = ?",
+        [scope.carried_from, comparison, fingerprint],
+    ).fetchall()[0][0] == 1  # fmt: skip
+    persons_sql = (
+        f"select person_key from {checked_name(scope.changed or '')}"
+        if carry
+        else "select null::varchar as person_key where false"
+    )
+    inputs = {"comparison_persons": persons_sql}
+    history_sql = sql_over("equation_comparison_history", inputs)
+    acr_sql = sql_over("equation_acr_days", inputs)
+    total, persons = con.execute(
+        sql_over("equation_comparison_size", inputs), {"all_persons": not carry}
+    ).fetchall()[0]
+    chunks = max(1, -(-total // COMPARISON_CHUNK_ROWS))
+    con.execute(
+        "create or replace temp table equation_daily_values as "
+        "select * from daily_values_averaged limit 0"
+    )
+    for chunk in range(chunks):
+        lower, upper = person_range(chunk, chunks)
+        params = {"lower": lower, "upper": upper, "all_persons": not carry}
+        history = fetch_frame(con, history_sql, params)
+        daily = pl.concat(
+            [
+                daily_egfr_under(history, m.adult_equation, comparison, m.adult_min_age_years),
+                fetch_frame(con, acr_sql, params),
+            ],
+            how="vertical_relaxed",
+        )
+        del history
+        with_frame(con, daily, "insert into equation_daily_values by name select * from _frame")
+        del daily
+    rules = event_params(settings, period)
+    query = sql_over(
+        "kidney_events", {"daily_values_averaged": "select * from equation_daily_values"}
+    )
+    used = {k: v for k, v in rules.items() if f"${k}" in query}
+    confirmed = sql_over("equation_confirmed_ckd", {"comparison_events": query})
+    fresh = pl.DataFrame(
+        {"person_key": [k for (k,) in con.execute(confirmed, used).fetchall()]},
+        schema={"person_key": pl.String},
+    )
+    con.execute("drop table equation_daily_values")
+    con.execute("delete from equation_comparison_ckd where period = ?", [period.label])
+    if carry:
+        con.execute(
+            "insert into equation_comparison_ckd select $period, comparison, person_key "
+            "from equation_comparison_ckd where period = $carried and comparison = $comparison "
+            f"and person_key not in (select person_key from {checked_name(scope.changed or '')})",
+            {"period": period.label, "carried": scope.carried_from, "comparison": comparison},
+        )
+    with_frame(
+        con,
+        fresh.sort("person_key").with_columns(
+            pl.lit(period.label).alias("period"), pl.lit(comparison).alias("comparison")
+        ),
+        "insert into equation_comparison_ckd by name select * from _frame",
+    )
+    con.execute("delete from equation_comparison_builds where period = ?", [period.label])
+    con.execute(
+        "insert into equation_comparison_builds values (?, ?, ?, ?)",
+        [period.label, comparison, fingerprint, persons],
+    )
+    other = {k for (k,) in con.execute(
+        "select person_key from equation_comparison_ckd where period = ? and comparison = ?",
+        [period.label, comparison],
+    ).fetchall()}  # fmt: skip
+    return other, persons
+
+
 def build_equation_change(
-    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    period: Period,
+    scope: PersonScope | None = None,
 ) -> dict[str, int]:
     """equation_reclassification and district_equation_change for the period
-    (pipeline/core/equation_impact.py), from a transient person-level input never kept.
+    (pipeline/core/equation_impact.py), from a transient person-level input never kept, and
+    equation_comparison_ckd (:func:`build_comparison_ckd`).
     """
     params = {
         "period": period.label,
@@ -175,31 +306,7 @@ def build_equation_change(
     )
     totals, categories = summary(matrix)
     # confirmed CKD under the comparison: every known eGFR recomputed, the event rules run again
-    build_table(
-        con, "equation_comparison_history", "equation_comparison_history", params, temporary=True
-    )
-    history = fetch_frame(con, "select * from equation_comparison_history")
-    con.execute("drop table equation_comparison_history")
-    m = settings.pipeline.measures
-    daily = pl.concat(
-        [
-            daily_egfr_under(history, m.adult_equation, comparison, m.adult_min_age_years),
-            fetch_frame(con, read_sql("equation_acr_days")),
-        ],
-        how="vertical_relaxed",
-    )
-    del history
-    with_frame(
-        con, daily, "create or replace temp table equation_daily_values as select * from _frame"
-    )
-    rules = event_params(settings, period)
-    query = sql_over(
-        "kidney_events", {"daily_values_averaged": "select * from equation_daily_values"}
-    )
-    used = {k: v for k, v in rules.items() if f"${k}" in query}
-    confirmed = sql_over("equation_confirmed_ckd", {"comparison_events": query})
-    other = {k for (k,) in con.execute(confirmed, used).fetchall()}
-    con.execute("drop table equation_daily_values")
+    other, _ = build_comparison_ckd(con, settings, period, scope or PersonScope())
     in_force = {
         k
         for (k,) in con.execute(
@@ -236,8 +343,15 @@ class Summarised:
 
 
 def summarise_stage(
-    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    period: Period,
+    scope: PersonScope | None = None,
 ) -> Summarised:
+    """The internal district tables of the period; ``scope``: what the link stage handed on
+    (its fingerprint and the persons it computed anew), so that the equation comparison is
+    recomputed for those persons only (:func:`build_comparison_ckd`).
+    """
     params = {
         "period": period.label,
         "period_end": period.end,
@@ -263,7 +377,7 @@ def summarise_stage(
         add_missing_columns(con, "main", name, frame)
         counts[name] = replace_period_frame(con, name, period.label, frame)
     counts["district_undetected_albuminuria"] = build_undetected_albuminuria(con, settings, period)
-    counts.update(build_equation_change(con, settings, period))
+    counts.update(build_equation_change(con, settings, period, scope))
     for name in RETIRED_TABLES:
         drop_relation(con, name)
     return Summarised(period.label, counts)

@@ -29,6 +29,8 @@ LEDGER_TABLES = (
     "result_versions_replaced",
     "rejected_rows_replaced",
     "reprocess_log",
+    "equation_comparison_ckd",
+    "equation_comparison_builds",
 )
 
 

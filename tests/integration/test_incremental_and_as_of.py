@@ -26,6 +26,9 @@ PERIOD_TABLES = {
     "published.district_ckd_prevalence": "district_code, sex, age_band",
     "published.district_screening_coverage": "district_code",
     "lab_egfr_agreement": "source_id, month",
+    # the comparison's confirmed CKD, carried over for unchanged persons like kidney_events
+    "equation_comparison_ckd": "person_key",
+    "district_equation_change": "district_code, comparison",
 }
 
 
@@ -88,6 +91,10 @@ def month_by_month(tmp_path_factory):
             snapshots[month]["_link"] = con.execute(
                 "select persons, persons_recomputed from link_snapshots where period = ?", [month]
             ).fetchall()[0]
+            snapshots[month]["_comparison"] = con.execute(
+                "select persons_recomputed from equation_comparison_builds where period = ?",
+                [month],
+            ).fetchall()[0][0]
         finally:
             con.close()
         manifest = json.loads((out / month / "run_manifest.json").read_text(encoding="utf-8"))
@@ -103,6 +110,8 @@ def test_later_months_settle_and_recompute_only_what_changed(month_by_month):
     assert last["_settled"].endswith("(touched)"), last["_settled"]
     persons, recomputed = last["_link"]
     assert 0 < recomputed < persons, last["_link"]
+    # the equation comparison too: only persons the link stage computed anew (those with an eGFR)
+    assert 0 < last["_comparison"] <= recomputed, (last["_comparison"], recomputed)
 
 
 def _all_at_once(tmp_path: Path, period: str) -> dict[str, list[tuple]]:

@@ -127,7 +127,7 @@ def test_a_pending_decline_is_confirmed_by_the_next_month(month_by_month):
 
 
 def test_measures_in_person_chunks_equal_one_pass(tmp_path, monkeypatch):
-    # a full rebuild measures person-key ranges one at a time (pipeline.stages.measure.person_range);
+    # a full rebuild measures person-key ranges one at a time (pipeline.core.pseudonymise.person_range);
     # with chunks of 10 results, these 42 persons span a dozen chunks and nothing may differ
     from pipeline.stages import measure as measures
     from pipeline.warehouse.connection import connect
@@ -149,21 +149,6 @@ def test_measures_in_person_chunks_equal_one_pass(tmp_path, monkeypatch):
     finally:
         con.close()
     assert summary.egfr_rows == len(once) and chunked == once
-
-
-def test_person_ranges_cover_every_key_once():
-    import hashlib
-
-    from pipeline.stages.measure import person_range
-
-    keys = [hashlib.sha256(str(i).encode()).hexdigest()[:32] for i in range(2000)] + [
-        "0" * 32,
-        "f" * 32,
-    ]
-    for chunks in (1, 3, 14, 100):
-        ranges = [person_range(c, chunks) for c in range(chunks)]
-        for key in keys:
-            assert sum(lower <= key < upper for lower, upper in ranges) == 1
 
 
 # A measure row reads results besides its own: a same-day cystatin C (the combined equation), the

@@ -240,7 +240,7 @@ def carry_over(
     """Build this period's person-level rows from the snapshot's, for every person whose results did
     not change since it was built; the changed persons' rows computed from their own results in
     a scratch database with the same SQL (daily values, events, person status). Returns the
-    changed persons.
+    changed persons, who are left in the temporary table ``link_persons``.
 
     Why this equals a full rebuild: daily values and events depend on a person's values only;
     of person status only the age and age band depend on the period end, and they are
@@ -284,7 +284,8 @@ def carry_over(
     build_table(con, "person_status_carried", "person_status_new", carried, temporary=True)
     _insert_arrow(con, "person_status_new", fresh["person_status"])
     swap_period_rows(con, "person_status", period.label)
-    con.execute("drop table link_persons")  # this stage's own: not handed on
+    # ``link_persons`` stays: the link stage's result names it (LinkSummary.changed_persons),
+    # and the summarise stage recomputes the equation comparison for these persons only
     return n
 
 

@@ -69,7 +69,9 @@ def link_stage(
     write_trajectory_rules(con, settings)
     as_stored = build_known_at_period_end(con, period)
     fingerprint = logic_fingerprint(settings)
-    if settings.pipeline.execution.executor == "local" or work is None:
+    executor_local = settings.pipeline.execution.executor == "local" or work is None
+    snapshot = None
+    if executor_local:
         snapshot = usable_snapshot(con, period, fingerprint) if as_stored else None
         recomputed = build_person_tables(
             con, settings, period, as_stored=as_stored, snapshot=snapshot, validated=validated
@@ -78,6 +80,7 @@ def link_stage(
         build_person_tables_sharded(con, settings, period, work)
         recomputed = -1
     record_snapshot(con, period, fingerprint, recomputed)
+    carried = snapshot is not None  # the unchanged persons' rows came from it
     persons = con.execute(
         "select count(*) from person_status where period = ?", [period.label]
     ).fetchall()[0][0]
@@ -86,12 +89,29 @@ def link_stage(
         "count(*) filter (where event_status = 'pending') from kidney_events where period = ?",
         [period.label],
     ).fetchall()[0]
-    return LinkSummary(persons, confirmed, pending, persons if recomputed < 0 else recomputed)
+    return LinkSummary(
+        persons,
+        confirmed,
+        pending,
+        persons if recomputed < 0 else recomputed,
+        fingerprint=fingerprint,
+        carried_from=snapshot.period if snapshot is not None else None,
+        changed_persons="link_persons" if carried else None,
+    )
 
 
 @dataclass(frozen=True)
 class LinkSummary:
+    """What the link stage leaves: the period's counts, the fingerprint of the rules and code
+    that made its person tables and, when the rows of unchanged persons were carried over from an
+    earlier period (``carried_from``), the temporary table of the persons computed anew
+    (``changed_persons``, one column ``person_key``); both None when every person was computed.
+    """
+
     persons: int
     events_confirmed: int
     events_pending: int
     persons_recomputed: int = 0
+    fingerprint: str = ""
+    carried_from: str | None = None
+    changed_persons: str | None = None

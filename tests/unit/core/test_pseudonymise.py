@@ -207,3 +207,18 @@ def test_outputs_made_with_the_demo_key_say_so(tmp_path):
         assert rows(con, "select demo_key from runs") == [(True,)]
     finally:
         con.close()
+
+
+def test_person_ranges_cover_every_key_once():
+    import hashlib
+
+    from pipeline.core.pseudonymise import person_range
+
+    keys = [hashlib.sha256(str(i).encode()).hexdigest()[:32] for i in range(2000)] + [
+        "0" * 32,
+        "f" * 32,
+    ]
+    for chunks in (1, 3, 14, 100):
+        ranges = [person_range(c, chunks) for c in range(chunks)]
+        for key in keys:
+            assert sum(lower <= key < upper for lower, upper in ranges) == 1
