@@ -52,8 +52,10 @@ import generate  # noqa: E402  (bench/generate.py)
 SOURCE = generate.SOURCE
 STAGE_ORDER = ("scan", "ingest", "validate", "measure", "link", "summarise", "publish", "export")
 BEGIN, END = "<!-- bench:begin -->", "<!-- bench:end -->"
-TARGETS = {"ratio_vs_floor_10m": 3.0, "ratio_vs_floor_1m": 4.0, "peak_rss_gb_10m": 3.0,
-           "incremental_fraction": 0.10, "gx_share": 0.15}  # fmt: skip
+#: The targets of the scale issue: ratios to the floor at 10M and 1M, the driver's peak at 10M and
+#: 30M, the month of 1 % new results as a share of the full run at 10M and 30M, the gate's share.
+TARGETS = {"ratio_vs_floor_10m": 3.0, "ratio_vs_floor_1m": 5.0, "peak_rss_gb": 3.0,
+           "incremental_fraction": {10_000_000: 0.10, 30_000_000: 0.05}, "gx_share": 0.15}  # fmt: skip
 
 
 # --------------------------------------------------------------------------- children
@@ -636,6 +638,17 @@ def render_tables(results: dict) -> str:
                 f"| `{name}` | {t['calls']} | {_fmt_s(t['seconds'])} | {t['seconds'] / wall:.0%} |"
             )
 
+    months = [r for r in runs if r.get("incremental", {}).get("stages")]
+    if months:
+        lines += ["", "### The incremental month per stage (wall s)", "",
+                  "| | " + " | ".join(f"{r['rows']:,} rows" for r in months) + " |",
+                  "|---|" + "---:|" * len(months)]  # fmt: skip
+        for name in stage_names:
+            lines.append(f"| {name} | " + " | ".join(
+                _fmt_s(r["incremental"]["stages"].get(name)) for r in months) + " |")  # fmt: skip
+        lines.append("| **month wall** | " + " | ".join(
+            f"**{_fmt_s(r['incremental']['wall_seconds'])}**" for r in months) + " |")  # fmt: skip
+
     lines += ["", "### Targets", "", "| target | measured | met |", "|---|---|---|"]
     by_rows = {r["rows"]: r for r in runs}
 
@@ -652,23 +665,26 @@ def render_tables(results: dict) -> str:
     big_ratio = big and (big.get("ratio_vs_floor") or big.get("ratio_vs_floor_at_least"))
     target("10M end to end ≤ 3× floor", big_ratio, TARGETS["ratio_vs_floor_10m"], ".1f")
     target(
-        "1M end to end ≤ 4× floor",
+        "1M end to end ≤ 5× floor",
         one and one.get("ratio_vs_floor"),
         TARGETS["ratio_vs_floor_1m"],
         ".1f",
     )
-    big_rss = big and (
-        big["pipeline"].get("peak_rss_mb") or big["pipeline"].get("peak_rss_at_least_mb", 0)
-    )
-    target("peak RSS ≤ 3 GB at 10M (GB)", big_rss / 1024 if big_rss else None,
-           TARGETS["peak_rss_gb_10m"], ".2f")  # fmt: skip
+    for size, r in sorted(by_rows.items()):
+        if size < 10_000_000:
+            continue
+        rss = r["pipeline"].get("peak_rss_mb") or r["pipeline"].get("peak_rss_at_least_mb", 0)
+        target(f"peak RSS ≤ 3 GB at {size / 1e6:.0f}M (GB)", rss / 1024 if rss else None,
+               TARGETS["peak_rss_gb"], ".2f")  # fmt: skip
+    for size, limit in TARGETS["incremental_fraction"].items():
+        r = by_rows.get(size)
+        target(
+            f"incremental ≤ {limit:.0%} of full ({size:,} rows)",
+            r and r.get("incremental", {}).get("fraction"),
+            limit,
+            ".0%",
+        )
     largest = runs[-1]
-    target(
-        f"incremental ≤ 10 % of full ({largest['rows']:,} rows)",
-        largest.get("incremental", {}).get("fraction"),
-        TARGETS["incremental_fraction"],
-        ".0%",
-    )
     target(
         f"GX ≤ 15 % ({largest['rows']:,} rows; gate timed in the run)",
         largest.get("great_expectations", {}).get("traced_share"),
