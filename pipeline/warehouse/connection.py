@@ -75,8 +75,9 @@ def relation_kind(con: duckdb.DuckDBPyConnection, name: str) -> str | None:
 def with_frame(
     con: duckdb.DuckDBPyConnection, frame: Any, sql: str, batch_rows: int | None = None
 ) -> None:
-    """Run one statement ``sql`` in which ``frame`` (a polars frame or an Arrow table) is the
-    table ``_frame``: ``create ... as select * from _frame``, ``insert into t select ... from _frame``.
+    """Run one statement ``sql`` in which ``frame`` (a polars frame, an Arrow table or a stream of
+    record batches) is the table ``_frame``: ``create ... as select * from _frame``,
+    ``insert into t select ... from _frame``.
 
     Through a relation's ``query``, not ``register()``: inside a transaction (a run is one) a
     registered frame stays in memory until the transaction ends, even after ``unregister``.
