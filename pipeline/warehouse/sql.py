@@ -10,6 +10,7 @@ from typing import Any
 import duckdb
 import polars as pl
 
+from pipeline.core.pseudonymise import person_range
 from pipeline.warehouse.connection import drop_relation, with_frame
 from pipeline.warehouse.sql_files import _NAME, checked_name, read_sql
 
@@ -92,6 +93,53 @@ def replace_period_rows(
     """Rebuild this period's rows of a per-period table, keeping the other periods."""
     build_table(con, name, f"{name}_new", params, temporary=True)
     return swap_period_rows(con, name, period)
+
+
+def replace_period_rows_by_range(
+    con: duckdb.DuckDBPyConnection,
+    name: str,
+    period: str,
+    params: dict,
+    inputs: tuple[str, ...],
+    chunks: int,
+) -> int:
+    """Rebuild this period's rows of a per-period, per-person table one person-key range at a
+    time (:func:`pipeline.core.pseudonymise.person_range`), keeping the other periods.
+
+    ``inputs``: the relations the SQL reads per person (each is read through a common table
+    expression of the same name that keeps only the range's persons, so the file runs
+    unchanged). Its rows must depend on one person's rows only and be ordered by
+    ``person_key`` first, so the ranges, taken in order, give the rows of one whole build in
+    the same order. At 30M results one whole build of ``kidney_events`` ran DuckDB out of
+    memory at its 2 GB limit (bench/results.md).
+    """
+    if not _NAME.match(name):
+        raise ValueError(f"not a plain table name: {name!r}")
+    target = checked_name(f"{name}_new")
+    chunks = max(1, chunks)
+    for chunk in range(chunks):
+        lower, upper = person_range(chunk, chunks)
+        # the first range has no lower bound and the last no upper one, so a key of any form
+        # (not only the hex of the pseudonymiser) falls in exactly one range
+        where = _RANGE_FILTER[(chunk > 0, chunk + 1 < chunks)]
+        query = sql_over(name, {
+            relation: f"select * from {checked_name(relation)}{where}" for relation in inputs
+        })  # fmt: skip
+        code = re.sub(r"--[^\n]*", "", query)
+        bound = {**params, "lower": lower, "upper": upper}
+        used = {k: v for k, v in bound.items() if re.search(rf"\${k}\b", code)}
+        verb = f"insert into {target}" if chunk else f"create or replace temp table {target} as"
+        con.execute(f"{verb}\n{query}", used)
+    return swap_period_rows(con, name, period)
+
+
+#: The filter of a person-key range: (has a lower bound, has an upper bound) -> WHERE clause.
+_RANGE_FILTER = {
+    (False, False): "",
+    (True, False): " where person_key >= $lower",
+    (False, True): " where person_key < $upper",
+    (True, True): " where person_key >= $lower and person_key < $upper",
+}
 
 
 def swap_period_rows(con: duckdb.DuckDBPyConnection, name: str, period: str) -> int:

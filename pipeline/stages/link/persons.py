@@ -20,7 +20,7 @@ from pipeline.core.settings import Settings
 from pipeline.warehouse.connection import drop_relation, fetch_frame, with_frame
 from pipeline.warehouse.sql import (
     build_table,
-    replace_period_rows,
+    replace_period_rows_by_range,
     sql_over,
     swap_period_rows,
 )
@@ -122,9 +122,23 @@ def build_person_tables(
         build_table(con, "kidney_events", params=params)
         build_table(con, "person_status", params=params)
         return -1
-    replace_period_rows(con, "kidney_events", period.label, params)
-    replace_period_rows(con, "person_status", period.label, params)
+    daily = con.execute("select count(*) from daily_values_averaged").fetchall()[0][0]
+    chunks = max(1, -(-daily // CHUNK_DAILY_VALUES))
+    replace_period_rows_by_range(
+        con, "kidney_events", period.label, params,
+        ("daily_values_averaged", "measures_known", "results_known"), chunks,
+    )  # fmt: skip
+    replace_period_rows_by_range(
+        con, "person_status", period.label, params,
+        ("daily_values_averaged", "results_known", "kidney_events"), chunks,
+    )  # fmt: skip
     return -1
+
+
+#: Daily values per pass of the events and person status of a full build: a large warehouse is
+#: built in person-key ranges, so that one statement's windows and joins stay within DuckDB's
+#: memory limit.
+CHUNK_DAILY_VALUES = 4_000_000
 
 
 @dataclass(frozen=True)

@@ -19,7 +19,7 @@ from pipeline.core.settings import load_settings
 from pipeline.stages.link.persons import write_trajectory_rules
 from pipeline.warehouse.connection import connect
 from pipeline.warehouse.reference import load_reference_tables
-from pipeline.warehouse.sql import build_table
+from pipeline.warehouse.sql import build_table, replace_period_rows_by_range
 from tests.conftest import CONFIG_DIR, rows
 
 DAY0 = dt.date(2025, 1, 1)
@@ -317,6 +317,40 @@ def test_file_warehouse_works_too(settings, tmp_path: Path):
         on_disk.close()
     assert len(expected["person_status"]) == 6 and len(expected["kidney_events"]) >= 4
     assert got == expected
+
+
+@pytest.mark.parametrize("chunks", [1, 3, 7])
+def test_built_by_person_key_range_equals_one_build(settings, chunks):
+    # A person's events and status depend on that person's rows only (kidney_events.sql,
+    # person_status.sql), so person-key ranges taken in order give the rows of one whole build,
+    # in the same order, and the other periods' rows stay.
+    con = connect(":memory:")
+    con.execute("set threads = 1")  # rows read back in the order they were written
+    try:
+        linked_tables(con, settings)
+        for table in ("measures_known", "results_known"):  # hex keys, as the pseudonymiser's
+            con.execute(f"update {table} set person_key = sha256(person_key)")
+        params = {**event_params(settings, Period.parse(PERIOD)), "period_end": PERIOD_END}
+        build_table(con, "daily_values_averaged", params=params)
+        build_table(con, "kidney_events", params=params)
+        build_table(con, "person_status", params=params)
+        whole = {t: con.table(t).fetchall() for t in ("kidney_events", "person_status")}
+        for table in whole:  # an earlier period's rows, to be kept
+            con.execute(f"update {table} set period = '2025-11'")
+        inputs = {
+            "kidney_events": ("daily_values_averaged", "measures_known", "results_known"),
+            "person_status": ("daily_values_averaged", "results_known", "kidney_events"),
+        }
+        for table, relations in inputs.items():
+            replace_period_rows_by_range(con, table, PERIOD, params, relations, chunks)
+        for table, rows in whole.items():
+            got = con.execute(f"select * from {table} where period = ?", [PERIOD]).fetchall()
+            assert got == rows
+            kept = con.execute(f"select count(*) from {table} where period = '2025-11'")
+            assert kept.fetchall()[0][0] == len(rows)
+        assert len({r[1][:8] for r in whole["person_status"]}) == 6
+    finally:
+        con.close()
 
 
 # --------------------------------------------------------------------------- KDIGO slope and progression
