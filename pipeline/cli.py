@@ -143,6 +143,23 @@ def _failure_hint(exc: BaseException) -> str:
     return ""
 
 
+class ProgressMode(StrEnum):
+    auto = "auto"
+    live = "live"
+    plain = "plain"
+    off = "off"
+
+
+#: ``--progress`` of the commands that run months (pipeline/run/progress.py).
+ProgressOption = Annotated[
+    ProgressMode,
+    typer.Option(
+        help="Progress of long stages: live (redrawn on a terminal), plain (a line every 30 s, "
+        "for logs), off; auto: live on a terminal outside CI, else plain."
+    ),
+]
+
+
 class Executor(StrEnum):
     local = "local"
     shards = "shards"
@@ -287,6 +304,7 @@ def _run(
     verbose: bool,
     executor: str | None = None,
     revise: str | None = None,
+    progress: str = "auto",
 ) -> int:
     from pipeline.run.revisions import RevisionNeeded
 
@@ -312,6 +330,10 @@ def _run(
             from pipeline.run import flows
 
             flows.set_reporter(_stage_line)
+            from pipeline.run.progress import make_progress
+
+            display = make_progress(progress, console)
+            flows.set_progress(display)
             if not verbose:  # a failure is told in one line (report_failure), not by Prefect's log
                 import logging
 
@@ -338,9 +360,14 @@ def _run(
                     revise=revise,
                 )
             except KeyMissing as exc:
+                display.close()
                 _fail(str(exc))
             except RevisionNeeded as exc:
+                display.close()
                 _fail(str(exc))
+            finally:
+                display.close()
+                flows.set_progress(flows.RunProgress())
             if summary.get("revision_refused"):
                 _fail(summary["revision_refused"])
             console.print(f"  {'total':<10} {time.perf_counter() - started:6.1f} s (with Prefect)")
@@ -386,6 +413,7 @@ def run(
             help="Publish a revision of an already published period, with the reason shown in its report.",
         ),
     ] = None,
+    progress: ProgressOption = ProgressMode.auto,
 ) -> None:
     """Ingest what is new in the inbox and publish the indicators for one month."""
     raise typer.Exit(
@@ -398,6 +426,7 @@ def run(
             verbose=verbose,
             executor=executor.value if executor else None,
             revise=revise,
+            progress=progress.value,
         )
     )
 
@@ -409,6 +438,7 @@ def demo(
     verbose: Annotated[
         bool, typer.Option("--verbose", help="Show Prefect's own log lines.")
     ] = False,
+    progress: ProgressOption = ProgressMode.auto,
 ) -> None:
     """Run the latest complete month of the shipped sample extracts (public demo key)."""
     try:
@@ -416,7 +446,8 @@ def demo(
     except ConfigError as exc:
         _fail(str(exc))
     inbox = Path(__file__).resolve().parent.parent / "sample_extracts"
-    code = _run(settings.pipeline.demo.period, config, inbox, out, demo=True, verbose=verbose)
+    code = _run(settings.pipeline.demo.period, config, inbox, out, demo=True, verbose=verbose,
+                progress=progress.value)  # fmt: skip
     raise typer.Exit(EXIT_OK if code == EXIT_HELD_BACK else code)
 
 
@@ -444,6 +475,7 @@ def backfill(
     verbose: Annotated[
         bool, typer.Option("--verbose", help="Show Prefect's own log lines.")
     ] = False,
+    progress: ProgressOption = ProgressMode.auto,
 ) -> None:
     """Run a range of months in order, skipping those already published (unless --force)."""
     from pipeline.run.backfill import months_to_run
@@ -474,7 +506,8 @@ def backfill(
             )
             continue
         console.print(f"[{i}/{len(plan)}] {period}")
-        code = _run(period.label, config, inbox, out, demo=demo_key, verbose=verbose, revise=revise)
+        code = _run(period.label, config, inbox, out, demo=demo_key, verbose=verbose, revise=revise,
+                    progress=progress.value)  # fmt: skip
         worst = max(worst, code)
     raise typer.Exit(worst)
 

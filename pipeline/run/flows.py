@@ -29,6 +29,7 @@ from pipeline.core.settings import Settings, load_settings  # noqa: E402
 from pipeline.report.page import write_report  # noqa: E402
 from pipeline.run.manifest import build_manifest, input_files, record_run  # noqa: E402
 from pipeline.run.period_checks import period_checks  # noqa: E402
+from pipeline.run.progress import RunProgress  # noqa: E402
 from pipeline.run.reprocess import config_drift, hold_back_drifted  # noqa: E402
 from pipeline.run.revisions import (  # noqa: E402
     Release,
@@ -100,7 +101,11 @@ def _stage(run_id: str, name: str, work: Callable[[RunContext], dict[str, Any]])
     ctx = _RUNS[run_id]
     started = time.perf_counter()
     maybe_fail(f"{name}:before")
-    result = work(ctx)
+    _progress.start(name)
+    try:
+        result = work(ctx)
+    finally:
+        _progress.end(name)
     maybe_fail(f"{name}:after")
     seconds = time.perf_counter() - started
     ctx.stages[name] = {**result, "seconds": round(seconds, 3)}
@@ -149,6 +154,9 @@ def ingest_task(run_id: str) -> dict[str, Any]:
             dt.date.today(),
             items=ctx.inbox_items,
             sink=lambda con, frame: judge_file(con, frame, judged),
+            on_file=lambda done, total, rows: _progress.advance(
+                "ingest", done, total, "files", rows
+            ),
         )
         ctx.landed = s
         return {"new files": s.files_new, "skipped": s.files_skipped, "held back": s.files_held_back,
@@ -236,6 +244,7 @@ def link_task(run_id: str) -> dict[str, Any]:
             ctx.period,
             work=ctx.out / ".work" / ctx.period.label,
             validated=ctx.validated,
+            on_shard=lambda done, total: _progress.advance("link", done, total, "shards"),
         )
         ctx.person_scope = PersonScope(s.fingerprint, s.carried_from, s.changed_persons)
         return {
@@ -500,3 +509,14 @@ def set_reporter(report: Callable[[str, float, str], None]) -> None:
     """Where the flow writes its one line per stage."""
     global _reporter
     _reporter = report
+
+
+# The progress display of long stages (pipeline/run/progress.py), set by the CLI like the
+# reporter; by default none.
+_progress: RunProgress = RunProgress()
+
+
+def set_progress(progress: RunProgress) -> None:
+    """Which display the flow tells how far each stage is."""
+    global _progress
+    _progress = progress

@@ -160,3 +160,13 @@ def test_sources_check_names_an_unreadable_file(tmp_path, monkeypatch):
     assert result.exit_code == 1
     assert "results_2026-01.csv" in result.output and "Permission denied" in result.output
     assert "Traceback" not in result.output
+
+
+def test_progress_takes_one_of_its_modes():
+    for command in ("run", "demo", "backfill"):
+        result = runner.invoke(app, [command, "--help"])
+        assert "--progress" in result.output, command
+    bad = runner.invoke(app, ["run", "--period", "2026-10", "--progress", "fancy",
+                              "--config", str(REPO / "config")])  # fmt: skip
+    assert bad.exit_code == 2
+    assert "fancy" in bad.output

@@ -100,6 +100,7 @@ def land_inbox(
     items: list[InboxFile] | None = None,
     *,
     sink: Callable[[duckdb.DuckDBPyConnection, pl.DataFrame], None],
+    on_file: Callable[[int, int, int], None] | None = None,
 ) -> Landed:
     """Read every new file, hand its keyed rows to ``sink`` and record it in ``ingest_files``.
 
@@ -107,7 +108,9 @@ def land_inbox(
     Each file's rows go to ``sink`` (``pipeline.stages.validate.judge_file`` in a run) as soon as it is
     read, so only one file is held in memory. The result names the temporary table of this
     run's files that gave rows (``Landed.files``) and carries the counts. ``items`` replaces the inbox scan (``sources check``
-    reads one given file).
+    reads one given file). ``on_file(done, total, rows)``, when given, is told after each file
+    that is not skipped: files done of those to take, and the rows landed so far (the run's
+    progress display).
     """
     summary = IngestSummary()
     undated_on = undated_report_date(run_period, ingested_on)
@@ -138,9 +141,14 @@ def land_inbox(
 
     try:
         return _land_items(con, settings, items, key, keys, files, summary, run_period,
-                           undated_on, ingested_on, sink, ahead, reads, read_next)  # fmt: skip
+                           undated_on, ingested_on, sink, ahead, reads, read_next,
+                           on_file or _unheard)  # fmt: skip
     finally:
         pool.shutdown(wait=True, cancel_futures=True)
+
+
+def _unheard(done: int, total: int, rows: int) -> None:
+    """No one listens to the progress of the files."""
 
 
 def _land_items(con: duckdb.DuckDBPyConnection, settings: Settings, items: list[InboxFile],
@@ -148,9 +156,12 @@ def _land_items(con: duckdb.DuckDBPyConnection, settings: Settings, items: list[
                 run_period: str, undated_on: dt.date, ingested_on: dt.date,
                 sink: Callable[[duckdb.DuckDBPyConnection, pl.DataFrame], None],
                 ahead: list[InboxFile], reads: dict[int, Future[pl.DataFrame]],
-                read_next: Callable[[int], None]) -> Landed:  # fmt: skip
+                read_next: Callable[[int], None],
+                on_file: Callable[[int, int, int], None]) -> Landed:  # fmt: skip
     """The loop of :func:`land_inbox` over the scanned files, with its read-ahead."""
     position = {id(i): n for n, i in enumerate(ahead)}
+    to_take = sum(i.status != "already_ingested" for i in items)
+    taken = 0
     for item in items:
         if item.status == "already_ingested":
             summary.files_skipped += 1
@@ -226,6 +237,8 @@ def _land_items(con: duckdb.DuckDBPyConnection, settings: Settings, items: list[
              "run_period": run_period, "extract_month": extract_month(item.rel_path, run_period),
              "config_sha256": source_config_sha256(settings, item.source_id)},
         )  # fmt: skip
+        taken += 1
+        on_file(taken, to_take, summary.rows_landed)
     return Landed(
         files,
         summary.files_new,

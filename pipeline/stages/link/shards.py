@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import hashlib
 import shutil
+from collections.abc import Callable
 from importlib.metadata import PackageNotFoundError, version
 from pathlib import Path
 from typing import Any
@@ -107,22 +108,34 @@ def run_shard(folder: str, config_dir: str, period_label: str) -> str:
     return folder
 
 
-def run_shards(folders: list[Path], settings: Settings, period: Period) -> list[str]:
-    """Run every shard with the configured executor; return the finished folders in order."""
+def run_shards(
+    folders: list[Path],
+    settings: Settings,
+    period: Period,
+    on_done: Callable[[int, int], None] | None = None,
+) -> list[str]:
+    """Run every shard with the configured executor; return the finished folders in order.
+    ``on_done(done, total)``, when given, is told as each shard finishes (the progress display).
+    """
+    told = on_done or (lambda done, total: None)
     e = settings.pipeline.execution
     # absolute: a worker resolves a relative path against its own working folder
     args = [(str(Path(f).resolve()), str(settings.config_dir.resolve()), period.label)
             for f in folders]  # fmt: skip
     if e.executor != "dask":
-        return [run_shard(*a) for a in args]
+        finished = []
+        for a in args:
+            finished.append(run_shard(*a))
+            told(len(finished), len(args))
+        return finished
     from distributed import Client, LocalCluster
 
     if e.scheduler_address:
         with Client(e.scheduler_address) as client:
-            return _map(client, args)
+            return _map(client, args, told)
     with LocalCluster(n_workers=e.dask_workers, threads_per_worker=1, processes=True,
                       dashboard_address=None) as cluster, Client(cluster) as client:  # fmt: skip
-        return _map(client, args)
+        return _map(client, args, told)
 
 
 class WorkerCodeMismatch(RuntimeError):
@@ -166,9 +179,15 @@ def check_workers_code(client: Any) -> None:
         )
 
 
-def _map(client: Any, args: list[tuple[str, str, str]]) -> list[str]:
+def _map(
+    client: Any, args: list[tuple[str, str, str]], told: Callable[[int, int], None]
+) -> list[str]:
+    from distributed import as_completed
+
     check_workers_code(client)
     futures = [client.submit(run_shard, *a, pure=False) for a in args]
+    for done, _ in enumerate(as_completed(futures), start=1):
+        told(done, len(futures))
     return client.gather(futures)
 
 

@@ -5,6 +5,7 @@ incremental carry-over of unchanged persons.
 from __future__ import annotations
 
 import shutil
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -37,13 +38,19 @@ PERSON_TABLE_ORDER = {
 
 
 def build_person_tables_sharded(
-    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period, work: Path
+    con: duckdb.DuckDBPyConnection,
+    settings: Settings,
+    period: Period,
+    work: Path,
+    on_shard: Callable[[int, int], None] | None = None,
 ) -> int:
-    """The same tables through person-hash shards (executor ``shards`` or ``dask``)."""
+    """The same tables through person-hash shards (executor ``shards`` or ``dask``);
+    ``on_shard(done, total)`` is told as each shard finishes.
+    """
     from pipeline.stages.link.shards import export_shard_inputs, load_shard_outputs, run_shards
 
     folders = export_shard_inputs(con, work, settings.pipeline.execution.shards)
-    done = run_shards(folders, settings, period)
+    done = run_shards(folders, settings, period, on_shard)
     for table, order in PERSON_TABLE_ORDER.items():
         frame = load_shard_outputs(done, table).sort(order, nulls_last=False, maintain_order=True)
         if table in ("kidney_events", "person_status"):
@@ -61,6 +68,7 @@ def link_stage(
     period: Period,
     work: Path | None = None,
     validated: ValidatedScope | None = None,
+    on_shard: Callable[[int, int], None] | None = None,
 ) -> LinkSummary:
     """The link stage; with executor ``shards`` or ``dask`` the person-level tables are built
     per person-hash shard in ``work`` (pipeline/stages/link/shards.py). ``validated``: what this
@@ -77,7 +85,7 @@ def link_stage(
             con, settings, period, as_stored=as_stored, snapshot=snapshot, validated=validated
         )
     else:
-        build_person_tables_sharded(con, settings, period, work)
+        build_person_tables_sharded(con, settings, period, work, on_shard)
         recomputed = -1
     record_snapshot(con, period, fingerprint, recomputed)
     carried = snapshot is not None  # the unchanged persons' rows came from it

@@ -79,9 +79,14 @@ def test_each_file_is_landed_as_read_and_the_table_keeps_its_schema(
     items = scan_inbox(None, settings, inbox)
     con = warehouse.connect(tmp_path / "w.duckdb")
     try:
-        sink = Collect()
-        summary = land_inbox(con, settings, inbox, KEY, "2025-06", TODAY, sink=sink)
+        sink, told = Collect(), []
+        summary = land_inbox(con, settings, inbox, KEY, "2025-06", TODAY, sink=sink,
+                             on_file=lambda *progress: told.append(progress))  # fmt: skip
         assert len(sink.frames) == 4
+        # the progress display is told after each file: files done of those to take, rows so far
+        assert [(done, total) for done, total, _ in told] == [(1, 4), (2, 4), (3, 4), (4, 4)]
+        assert [r for *_, r in told] == sorted(r for *_, r in told)
+        assert told[-1][2] == summary.rows_landed == sum(f.height for f in sink.frames)
         assert all(described(con, f) == LANDED_TABLE for f in [*sink.frames, empty_landed()])
         landed = pl.concat(sink.frames)
         # what each file reads as, keyed one file at a time without the run's cache
