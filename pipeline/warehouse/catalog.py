@@ -4,6 +4,8 @@ the published tables with the shape their disclosure control needs.
 
 from __future__ import annotations
 
+import copy
+import functools
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -14,24 +16,47 @@ from pipeline.warehouse.sql_files import _NAME, SQL_DIR, checked_name
 
 
 def load_catalog() -> dict[str, Any]:
-    with (SQL_DIR / "catalog.yaml").open(encoding="utf-8") as fh:
-        return yaml.safe_load(fh)["tables"]
+    path = SQL_DIR / "catalog.yaml"
+    stat = path.stat()
+    return copy.deepcopy(_parsed_catalog(str(path), stat.st_mtime_ns, stat.st_size))
+
+
+@functools.lru_cache(maxsize=2)
+def _parsed_catalog(path: str, mtime_ns: int, size: int) -> dict[str, Any]:
+    """The parsed catalog, once per version of the file (every run writes its comments, and
+    parsing the file took a quarter of a second, a tenth of a small run); libyaml's loader when
+    PyYAML was built with it.
+    """
+    loader = getattr(yaml, "CSafeLoader", yaml.SafeLoader)
+    with open(path, encoding="utf-8") as fh:
+        return yaml.load(fh, Loader=loader)["tables"]
 
 
 def apply_comments(con: duckdb.DuckDBPyConnection) -> None:
-    """Write the catalog's descriptions as COMMENTs on every table, view and column it documents."""
+    """Write the catalog's descriptions as COMMENTs on every table, view and column it documents.
+
+    Only a comment that differs from the stored one is written (after the first month almost
+    none: a COMMENT statement per column took most of a small run's commit).
+    """
     existing = {
-        (s, t): "table"
-        for s, t in con.execute(
-            "select schema_name, table_name from duckdb_tables() where database_name = current_database()"
+        (s, t): ("table", c)
+        for s, t, c in con.execute(
+            "select schema_name, table_name, comment from duckdb_tables() "
+            "where database_name = current_database()"
         ).fetchall()
     }
     existing.update({
-        (s, t): "view" for s, t in con.execute(
-            "select schema_name, view_name from duckdb_views() where database_name = current_database() "
-            "and not internal and not temporary"
+        (s, t): ("view", c) for s, t, c in con.execute(
+            "select schema_name, view_name, comment from duckdb_views() "
+            "where database_name = current_database() and not internal and not temporary"
         ).fetchall()
     })  # fmt: skip
+    column_comments: dict[tuple[str, str], dict[str, str | None]] = {}
+    for s, t, column, comment in con.execute(
+        "select schema_name, table_name, column_name, comment from duckdb_columns() "
+        "where database_name = current_database()"
+    ).fetchall():
+        column_comments.setdefault((s, t), {})[column] = comment
     for qualified, entry in load_catalog().items():
         schema, _, table = qualified.rpartition(".")
         schema = schema or "main"
@@ -41,17 +66,13 @@ def apply_comments(con: duckdb.DuckDBPyConnection) -> None:
         if not all(_NAME.match(p) for p in (schema, table)):
             raise ValueError(f"catalog.yaml: not a plain table name {qualified!r}")
         text = f"{entry['description'].strip()} Grain: {entry['grain'].strip()}"
-        kind = "view" if existing[(schema, table)] == "view" else "table"
-        con.execute(f"comment on {kind} {target} is {_quote(text)}")
-        columns = {
-            c
-            for (c,) in con.execute(
-                "select column_name from duckdb_columns() where schema_name = ? and table_name = ?",
-                [schema, table],
-            ).fetchall()
-        }
+        stored = existing[(schema, table)][1]
+        kind = "view" if existing[(schema, table)][0] == "view" else "table"
+        if stored != text:
+            con.execute(f"comment on {kind} {target} is {_quote(text)}")
+        columns = column_comments.get((schema, table), {})
         for column, description in (entry.get("columns") or {}).items():
-            if column in columns:
+            if column in columns and columns[column] != str(description):
                 con.execute(
                     f'comment on column {target}."{checked_name(column)}" '
                     f"is {_quote(str(description))}"

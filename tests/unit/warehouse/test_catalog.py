@@ -111,3 +111,29 @@ def test_every_documented_column_exists(warehouse):
         present = {name for name, _ in columns(warehouse, schema, table)}
         extra = sorted(set(entry.get("columns") or {}) - present)
         assert not extra, f"{qualified(schema, table)}: catalog documents missing columns {extra}"
+
+
+def test_a_comment_that_differs_from_the_catalog_is_written_again(tmp_path):
+    # apply_comments skips a comment already stored as the catalog has it; one that differs
+    # (an older catalog, a hand edit) is written again
+    import duckdb
+
+    from pipeline.warehouse.catalog import apply_comments
+
+    entry = load_catalog()["ingest_files"]
+    column, description = next(iter(entry["columns"].items()))
+    with duckdb.connect(str(tmp_path / "w.duckdb")) as con:
+        con.execute(f'create table ingest_files ("{column}" varchar, other varchar)')
+        apply_comments(con)
+        expected = f"{entry['description'].strip()} Grain: {entry['grain'].strip()}"
+        assert rows(con, "select comment from duckdb_tables() where not temporary") == [(expected,)]
+        con.execute("comment on table ingest_files is 'stale'")
+        con.execute(f"comment on column ingest_files.\"{column}\" is 'stale'")
+        apply_comments(con)
+        assert rows(con, "select comment from duckdb_tables() where not temporary") == [(expected,)]
+        got = rows(
+            con,
+            "select column_name, comment from duckdb_columns() "
+            "where table_name = 'ingest_files' order by column_index",
+        )
+        assert got == [(column, str(description)), ("other", None)]
