@@ -34,7 +34,15 @@ from pipeline.warehouse.connection import (
     fetch_frame,
     with_frame,
 )
-from pipeline.warehouse.sql import build_table, replace_period_frame, replace_period_rows, sql_over
+from pipeline.warehouse.sql import (
+    build_table,
+    in_person_range,
+    ranges_for,
+    replace_period_frame,
+    replace_period_rows,
+    sql_over,
+    used_params,
+)
 from pipeline.warehouse.sql_files import checked_name, sql_path
 
 #: Internal summary tables, in the order they are built (each is sql/reports/<name>.sql).
@@ -240,16 +248,20 @@ def build_comparison_ckd(con: duckdb.DuckDBPyConnection, settings: Settings, per
         del history
         with_frame(con, daily, "insert into equation_daily_values by name select * from _frame")
         del daily
+    # the event rules, one person-key range at a time (at 30M results one pass ran DuckDB out
+    # of memory at its 2 GB limit)
     rules = event_params(settings, period)
-    query = sql_over(
-        "kidney_events", {"daily_values_averaged": "select * from equation_daily_values"}
-    )
-    used = {k: v for k, v in rules.items() if f"${k}" in query}
-    confirmed = sql_over("equation_confirmed_ckd", {"comparison_events": query})
-    fresh = pl.DataFrame(
-        {"person_key": [k for (k,) in con.execute(confirmed, used).fetchall()]},
-        schema={"person_key": pl.String},
-    )
+    sources = {"daily_values_averaged": "equation_daily_values",
+               "measures_known": "measures_known", "results_known": "results_known"}  # fmt: skip
+    ranges = ranges_for(con.execute("select count(*) from equation_daily_values").fetchall()[0][0])
+    keys: list[str] = []
+    for chunk in range(ranges):
+        ranged, bound = in_person_range(sources, rules, chunk, ranges)
+        confirmed = sql_over(
+            "equation_confirmed_ckd", {"comparison_events": sql_over("kidney_events", ranged)}
+        )
+        keys += [k for (k,) in con.execute(confirmed, used_params(confirmed, bound)).fetchall()]
+    fresh = pl.DataFrame({"person_key": keys}, schema={"person_key": pl.String})
     con.execute("drop table equation_daily_values")
     con.execute("delete from equation_comparison_ckd where period = ?", [period.label])
     if carry:

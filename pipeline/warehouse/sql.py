@@ -95,6 +95,44 @@ def replace_period_rows(
     return swap_period_rows(con, name, period)
 
 
+#: Daily values per person-key range of the event rules (sql/analysis/kidney_events.sql): a
+#: large warehouse runs them one range at a time, so that one statement's windows and joins stay
+#: within DuckDB's memory limit (at 30M results one whole pass ran out at its 2 GB limit).
+DAILY_VALUES_PER_RANGE = 4_000_000
+
+
+def ranges_for(rows: int, per_range: int | None = None) -> int:
+    """How many person-key ranges keep each within ``per_range`` rows (at least one; by default
+    :data:`DAILY_VALUES_PER_RANGE`).
+    """
+    return max(1, -(-rows // (per_range or DAILY_VALUES_PER_RANGE)))
+
+
+def in_person_range(
+    sources: dict[str, str], params: dict, chunk: int, chunks: int
+) -> tuple[dict[str, str], dict]:
+    """The inputs of :func:`sql_over` that keep only one person-key range's rows
+    (:func:`pipeline.core.pseudonymise.person_range`; ``sources``: relation the SQL reads ->
+    relation it reads from) and ``params`` with the range's bounds.
+
+    The first range has no lower bound and the last no upper one, so a key of any form (not only
+    the hex of the pseudonymiser) falls in exactly one range.
+    """
+    lower, upper = person_range(chunk, chunks)
+    where = _RANGE_FILTER[(chunk > 0, chunk + 1 < chunks)]
+    inputs = {
+        relation: f"select * from {checked_name(source)}{where}"
+        for relation, source in sources.items()
+    }
+    return inputs, {**params, "lower": lower, "upper": upper}
+
+
+def used_params(query: str, params: dict) -> dict:
+    """The parameters ``query`` names (a $name in a comment is not one)."""
+    code = re.sub(r"--[^\n]*", "", query)
+    return {k: v for k, v in params.items() if re.search(rf"\${k}\b", code)}
+
+
 def replace_period_rows_by_range(
     con: duckdb.DuckDBPyConnection,
     name: str,
@@ -104,32 +142,23 @@ def replace_period_rows_by_range(
     chunks: int,
 ) -> int:
     """Rebuild this period's rows of a per-period, per-person table one person-key range at a
-    time (:func:`pipeline.core.pseudonymise.person_range`), keeping the other periods.
+    time (:func:`in_person_range`), keeping the other periods.
 
     ``inputs``: the relations the SQL reads per person (each is read through a common table
     expression of the same name that keeps only the range's persons, so the file runs
     unchanged). Its rows must depend on one person's rows only and be ordered by
     ``person_key`` first, so the ranges, taken in order, give the rows of one whole build in
-    the same order. At 30M results one whole build of ``kidney_events`` ran DuckDB out of
-    memory at its 2 GB limit (bench/results.md).
+    the same order.
     """
     if not _NAME.match(name):
         raise ValueError(f"not a plain table name: {name!r}")
     target = checked_name(f"{name}_new")
     chunks = max(1, chunks)
     for chunk in range(chunks):
-        lower, upper = person_range(chunk, chunks)
-        # the first range has no lower bound and the last no upper one, so a key of any form
-        # (not only the hex of the pseudonymiser) falls in exactly one range
-        where = _RANGE_FILTER[(chunk > 0, chunk + 1 < chunks)]
-        query = sql_over(name, {
-            relation: f"select * from {checked_name(relation)}{where}" for relation in inputs
-        })  # fmt: skip
-        code = re.sub(r"--[^\n]*", "", query)
-        bound = {**params, "lower": lower, "upper": upper}
-        used = {k: v for k, v in bound.items() if re.search(rf"\${k}\b", code)}
+        ranged, bound = in_person_range({r: r for r in inputs}, params, chunk, chunks)
+        query = sql_over(name, ranged)
         verb = f"insert into {target}" if chunk else f"create or replace temp table {target} as"
-        con.execute(f"{verb}\n{query}", used)
+        con.execute(f"{verb}\n{query}", used_params(query, bound))
     return swap_period_rows(con, name, period)
 
 

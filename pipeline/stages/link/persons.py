@@ -20,6 +20,7 @@ from pipeline.core.settings import Settings
 from pipeline.warehouse.connection import drop_relation, fetch_frame, with_frame
 from pipeline.warehouse.sql import (
     build_table,
+    ranges_for,
     replace_period_rows_by_range,
     sql_over,
     swap_period_rows,
@@ -123,7 +124,7 @@ def build_person_tables(
         build_table(con, "person_status", params=params)
         return -1
     daily = con.execute("select count(*) from daily_values_averaged").fetchall()[0][0]
-    chunks = max(1, -(-daily // CHUNK_DAILY_VALUES))
+    chunks = ranges_for(daily)
     replace_period_rows_by_range(
         con, "kidney_events", period.label, params,
         ("daily_values_averaged", "measures_known", "results_known"), chunks,
@@ -133,12 +134,6 @@ def build_person_tables(
         ("daily_values_averaged", "results_known", "kidney_events"), chunks,
     )  # fmt: skip
     return -1
-
-
-#: Daily values per pass of the events and person status of a full build: a large warehouse is
-#: built in person-key ranges, so that one statement's windows and joins stay within DuckDB's
-#: memory limit.
-CHUNK_DAILY_VALUES = 4_000_000
 
 
 @dataclass(frozen=True)

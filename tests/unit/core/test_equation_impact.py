@@ -11,6 +11,7 @@ below are worked out by hand from the published formulas (shared/REFERENCES.md, 
 from __future__ import annotations
 
 import polars as pl
+import pytest
 
 from pipeline.core.equation_impact import COMBINED, daily_comparison, reclassification, summary
 
@@ -177,10 +178,18 @@ def test_confirmed_ckd_under_the_comparison_by_hand(tmp_path, small_config):
         ) == [(0, None)]
 
 
-def test_the_same_equation_on_both_sides_changes_nothing(tmp_path, small_config):
+@pytest.mark.parametrize("per_range", [None, 2], ids=["one_pass", "ranges_of_2_daily_values"])
+def test_the_same_equation_on_both_sides_changes_nothing(
+    tmp_path, small_config, monkeypatch, per_range
+):
     """Identity: compared with itself, the equation in force moves no one and the confirmed CKD
-    recomputed through the rules equals person_status's (the same rules on the same values)."""
+    recomputed through the rules equals person_status's (the same rules on the same values),
+    also when both run in person-key ranges of two daily values (as a large warehouse does)."""
+    from pipeline.warehouse import sql
     from tests.conftest import edit_pipeline_yaml, rows, run_month, write_inbox
+
+    if per_range:
+        monkeypatch.setattr(sql, "DAILY_VALUES_PER_RANGE", per_range)
 
     edit_pipeline_yaml(small_config, "summaries", "equation_comparison", "ckd_epi_2021_creatinine")
     header = "person_token,birth_year,sex,district_code,specimen_id,collected_date,test_code,value,unit,status"

@@ -43,7 +43,6 @@ FRAGMENTS = {
         "these_files",
     ): "a constant predicate over the checked name of the judged files",
     ("stages/validate.py", "changed"): "the constant name changed_versions",
-    ("warehouse/sql.py", "where"): "constant person-key bounds with bound $lower and $upper",
     (
         "warehouse/sql.py",
         "query",
