@@ -27,6 +27,7 @@ from pipeline.core.periods import Period  # noqa: E402
 from pipeline.core.pseudonymise import PseudonymKey, resolve_key, verify_warehouse_key  # noqa: E402
 from pipeline.core.settings import Settings, load_settings  # noqa: E402
 from pipeline.report.page import write_report  # noqa: E402
+from pipeline.run.buckets import prefect_submit  # noqa: E402
 from pipeline.run.manifest import build_manifest, input_files, record_run  # noqa: E402
 from pipeline.run.period_checks import period_checks  # noqa: E402
 from pipeline.run.progress import RunProgress  # noqa: E402
@@ -245,6 +246,7 @@ def link_task(run_id: str) -> dict[str, Any]:
             work=ctx.out / ".work" / ctx.period.label,
             validated=ctx.validated,
             on_shard=lambda done, total: _progress.advance("link", done, total, "shards"),
+            submit_shards=prefect_submit(),  # each bucket a Prefect task run, in a flow run
         )
         ctx.person_scope = PersonScope(s.fingerprint, s.carried_from, s.changed_persons)
         return {

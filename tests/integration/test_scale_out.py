@@ -87,10 +87,16 @@ def state(out: Path, period: str) -> tuple[dict[str, list[tuple]], dict[str, str
     return tables, exports
 
 
+@pytest.fixture(scope="module")
+def local(tmp_path_factory) -> list[tuple[dict, dict]]:
+    """The two months run locally (the reference every scaled-out run must equal)."""
+    base = tmp_path_factory.mktemp("local")
+    return two_months(REPO / "config", base / "inbox", base / "out")
+
+
 def test_external_cluster_relative_out_and_next_month_equal_local_runs(
-    cluster, tmp_path, monkeypatch
+    cluster, local, tmp_path, monkeypatch
 ):
-    local = two_months(REPO / "config", tmp_path / "local_inbox", tmp_path / "local")
     assert local[0][0]["person_status"], "the sample months should give persons"
 
     config = dask_config(tmp_path / "dask_config", cluster.scheduler_address)
@@ -124,3 +130,52 @@ def test_a_worker_running_other_code_is_refused_by_name(cluster, monkeypatch):
     assert "2 of 2 Dask workers run other code" in message
     assert all(worker in message for worker in cluster.scheduler.workers)
     assert "0.0.0-other" in message
+
+
+def test_in_a_prefect_flow_run_each_bucket_is_a_task_run_on_the_cluster(cluster, local, tmp_path):
+    """Through Prefect's Dask task runner (prefect-dask): the monthly flow sends each person
+    bucket to the cluster as a task run ``person-bucket`` of a subflow ``person-buckets``, which
+    the Prefect API (and so its UI) shows completed; the exports equal a local run's."""
+    from prefect.client.orchestration import get_client
+    from prefect.client.schemas.filters import (
+        FlowFilter,
+        FlowFilterName,
+        TaskRunFilter,
+        TaskRunFilterName,
+    )
+
+    from pipeline.run import prefect_env
+
+    prefect_env.configure()
+    from prefect.testing.utilities import prefect_test_harness
+
+    from pipeline.run.flows import monthly_surveillance
+
+    inbox = tmp_path / "inbox"
+    copy_months(inbox, MONTHS)
+    run_month_plain(
+        MONTHS[-1], str(REPO / "config"), str(inbox), str(tmp_path / "local"), demo=True
+    )
+    config = dask_config(tmp_path / "dask_config", cluster.scheduler_address)
+    before = _bucket_tasks(cluster)
+    with prefect_test_harness(server_startup_timeout=180):
+        monthly_surveillance(period=MONTHS[-1], config_dir=str(config), inbox=str(inbox),
+                             out=str(tmp_path / "flow"), demo=True)  # fmt: skip
+        with get_client(sync_client=True) as api:
+            buckets = api.read_task_runs(
+                task_run_filter=TaskRunFilter(name=TaskRunFilterName(like_="person-bucket"))
+            )
+            subflows = api.read_flow_runs(
+                flow_filter=FlowFilter(name=FlowFilterName(any_=["person-buckets"]))
+            )
+    assert len(buckets) == 4  # execution.shards of the shipped config
+    assert {b.state_name for b in buckets} == {"Completed"}
+    assert [f.state_name for f in subflows] == ["Completed"]
+    assert _bucket_tasks(cluster) > before  # run on the cluster's workers
+    assert state(tmp_path / "flow", MONTHS[-1])[1] == local[0][1]  # the exports, byte for byte
+
+
+def _bucket_tasks(cluster) -> int:
+    """How often the scheduler has counted a task of the bucket function's name in some state."""
+    prefix = cluster.scheduler.task_prefixes.get("run_shard")
+    return sum(prefix.state_counts.values()) if prefix is not None else 0

@@ -113,11 +113,17 @@ def run_shards(
     settings: Settings,
     period: Period,
     on_done: Callable[[int, int], None] | None = None,
+    submit: ShardMapper | None = None,
 ) -> list[str]:
     """Run every shard with the configured executor; return the finished folders in order.
     ``on_done(done, total)``, when given, is told as each shard finishes (the progress display).
+
+    On Dask, the workers' code is checked first (:func:`check_workers_code`), then ``submit``
+    sends the shards: by default straight to the cluster's client; in a Prefect flow run the run
+    layer gives one that sends each shard as a Prefect task run (pipeline/run/buckets.py).
     """
     told = on_done or (lambda done, total: None)
+    send = submit or map_on_client
     e = settings.pipeline.execution
     # absolute: a worker resolves a relative path against its own working folder
     args = [(str(Path(f).resolve()), str(settings.config_dir.resolve()), period.label)
@@ -132,10 +138,17 @@ def run_shards(
 
     if e.scheduler_address:
         with Client(e.scheduler_address) as client:
-            return _map(client, args, told)
+            check_workers_code(client)
+            return send(client, args, told)
     with LocalCluster(n_workers=e.dask_workers, threads_per_worker=1, processes=True,
                       dashboard_address=None) as cluster, Client(cluster) as client:  # fmt: skip
-        return _map(client, args, told)
+        check_workers_code(client)
+        return send(client, args, told)
+
+
+#: What sends the shards to a Dask cluster: (client, the arguments of :func:`run_shard` per
+#: shard, told as each finishes) -> the finished folders in shard order.
+ShardMapper = Callable[[Any, list[tuple[str, str, str]], Callable[[int, int], None]], list[str]]
 
 
 class WorkerCodeMismatch(RuntimeError):
@@ -179,12 +192,12 @@ def check_workers_code(client: Any) -> None:
         )
 
 
-def _map(
+def map_on_client(
     client: Any, args: list[tuple[str, str, str]], told: Callable[[int, int], None]
 ) -> list[str]:
+    """Each shard as a Dask task of ``client``; the finished folders in shard order."""
     from distributed import as_completed
 
-    check_workers_code(client)
     futures = [client.submit(run_shard, *a, pure=False) for a in args]
     for done, _ in enumerate(as_completed(futures), start=1):
         told(done, len(futures))

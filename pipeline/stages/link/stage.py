@@ -8,6 +8,7 @@ import shutil
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import duckdb
 
@@ -23,6 +24,9 @@ from pipeline.stages.link.persons import (
     write_trajectory_rules,
 )
 from pipeline.warehouse.connection import drop_relation, with_frame
+
+if TYPE_CHECKING:
+    from pipeline.stages.link.shards import ShardMapper
 from pipeline.warehouse.sql import (
     replace_period_frame,
 )
@@ -43,14 +47,16 @@ def build_person_tables_sharded(
     period: Period,
     work: Path,
     on_shard: Callable[[int, int], None] | None = None,
+    submit: ShardMapper | None = None,
 ) -> int:
     """The same tables through person-hash shards (executor ``shards`` or ``dask``);
-    ``on_shard(done, total)`` is told as each shard finishes.
+    ``on_shard(done, total)`` is told as each shard finishes; ``submit`` sends the shards to
+    Dask (:func:`pipeline.stages.link.shards.run_shards`).
     """
     from pipeline.stages.link.shards import export_shard_inputs, load_shard_outputs, run_shards
 
     folders = export_shard_inputs(con, work, settings.pipeline.execution.shards)
-    done = run_shards(folders, settings, period, on_shard)
+    done = run_shards(folders, settings, period, on_shard, submit)
     for table, order in PERSON_TABLE_ORDER.items():
         frame = load_shard_outputs(done, table).sort(order, nulls_last=False, maintain_order=True)
         if table in ("kidney_events", "person_status"):
@@ -69,6 +75,7 @@ def link_stage(
     work: Path | None = None,
     validated: ValidatedScope | None = None,
     on_shard: Callable[[int, int], None] | None = None,
+    submit_shards: ShardMapper | None = None,
 ) -> LinkSummary:
     """The link stage; with executor ``shards`` or ``dask`` the person-level tables are built
     per person-hash shard in ``work`` (pipeline/stages/link/shards.py). ``validated``: what this
@@ -85,7 +92,7 @@ def link_stage(
             con, settings, period, as_stored=as_stored, snapshot=snapshot, validated=validated
         )
     else:
-        build_person_tables_sharded(con, settings, period, work, on_shard)
+        build_person_tables_sharded(con, settings, period, work, on_shard, submit_shards)
         recomputed = -1
     record_snapshot(con, period, fingerprint, recomputed)
     carried = snapshot is not None  # the unchanged persons' rows came from it
