@@ -20,6 +20,9 @@ peak RSS from the kernel's accounting of that child, os.wait4):
       temporary copy of config/), into another fresh out dir; ``share`` = (on - off) / on;
   (e) Prefect overhead, on the smallest size only: the run through the flow
       ``monthly_surveillance`` with its temporary server; overhead = flow wall - plain wall;
+  (f) scale-out: (a) again with the person buckets on a local Dask cluster of two worker
+      processes (``execution.executor: dask``): wall beside (a)'s, the driver's peak RSS, and
+      whether every published file is byte-identical to (a)'s;
   (c) incremental: one more month of about 1 % new results added to the inbox of (a), the next
       period run into the same out dir; ``fraction`` = its wall / the full run's wall.
 
@@ -31,6 +34,7 @@ from __future__ import annotations
 
 import argparse
 import datetime as dt
+import hashlib
 import importlib.metadata as md
 import json
 import os
@@ -248,6 +252,28 @@ def gx_off_config(source: Path, target: Path) -> Path:
     return target
 
 
+def dask_config(source: Path, target: Path, workers: int = 2) -> Path:
+    """A copy of the config with the person buckets on a local Dask cluster of ``workers``
+    processes the run starts (text edit: comments kept)."""
+    shutil.rmtree(target, ignore_errors=True)
+    shutil.copytree(source, target)
+    path = target / "pipeline.yaml"
+    text = path.read_text(encoding="utf-8")
+    for old, new in (("  executor: local\n", "  executor: dask\n"),
+                     ("  dask_workers: 2\n", f"  dask_workers: {workers}\n")):  # fmt: skip
+        if old not in text:
+            raise RuntimeError(f"{path}: {old.strip()!r} not found")
+        text = text.replace(old, new, 1)
+    path.write_text(text, encoding="utf-8")
+    return target
+
+
+def export_hashes(folder: Path) -> dict[str, str]:
+    """SHA-256 of every published table file of one period's export folder."""
+    return {p.name: hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.glob("*")) if p.suffix in (".csv", ".parquet")}  # fmt: skip
+
+
 def code_fingerprint() -> dict:
     """What code was measured: a hash of pipeline/ and sql/ (other engineers edit the tree while a
     benchmark runs) and the time of the newest file."""
@@ -428,6 +454,26 @@ def bench_size(rows: int, args: argparse.Namespace, with_prefect: bool) -> dict:
             "prefect_home_was_fresh": fresh,
         }  # fmt: skip
 
+    if not args.skip_scale_out:
+        print(f"[bench] {rows:,} rows: (f) pipeline with the person buckets on a local Dask "
+              "cluster of 2 workers", flush=True)  # fmt: skip
+        shutil.rmtree(work / "dask", ignore_errors=True)
+        scaled = pipeline_child(period, dask_config(config, work / "config_dask"), inbox,
+                                work / "dask", logs / "dask", rss_cap_gb=cap)  # fmt: skip
+        local_exports = export_hashes(work / "full" / period)
+        result["scale_out"] = {
+            "workers": 2,
+            "wall_seconds": scaled["wall_seconds"],
+            "local_wall_seconds": full["wall_seconds"],
+            "driver_peak_rss_mb": scaled["peak_rss_mb"],
+            "stages": {k: v["seconds"] for k, v in scaled["stages"].items()},
+            "exports": len(local_exports),
+            "exports_identical": bool(local_exports)
+            and export_hashes(work / "dask" / period) == local_exports,
+        }
+        if not args.keep:
+            shutil.rmtree(work / "dask", ignore_errors=True)
+
     if not args.skip_incremental:
         extra_files = sorted((data / "extra" / SOURCE).glob("*.csv"))
         print(f"[bench] {rows:,} rows: (c) incremental month {extra_period} "
@@ -607,6 +653,11 @@ def render_tables(results: dict) -> str:
     row("**Prefect overhead, s**", lambda r: f"**{_fmt_s(r['prefect']['overhead_seconds'])}**"
         + (" (fresh home)" if r["prefect"]["prefect_home_was_fresh"] else ""))  # fmt: skip
     row("import of pipeline.run.flows, s", lambda r: _fmt_s(r["pipeline"]["import_seconds"]))
+    row("on a local Dask cluster (2 workers): wall, s", lambda r: f"{_fmt_s(r['scale_out']['wall_seconds'])}"
+        f" (local {_fmt_s(r['scale_out']['local_wall_seconds'])})")  # fmt: skip
+    row("on Dask: driver peak RSS, MB", lambda r: _fmt_mb(r["scale_out"]["driver_peak_rss_mb"]))
+    row("on Dask: published files byte-identical to local", lambda r:
+        f"{'yes' if r['scale_out']['exports_identical'] else '**no**'} ({r['scale_out']['exports']})")  # fmt: skip
 
     # results.json keeps keys sorted: put the stages back in the order they ran
     stage_names = list(next((r["pipeline"]["stage_order"] for r in reversed(runs)
@@ -729,6 +780,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--skip-prefect", action="store_true", help="no Prefect flow run")
     ap.add_argument("--skip-gx", action="store_true", help="no run without Great Expectations")
     ap.add_argument("--skip-incremental", action="store_true", help="no incremental month")
+    ap.add_argument("--skip-scale-out", action="store_true", help="no run on a local Dask cluster")
     ap.add_argument(
         "--repeat",
         type=int,

@@ -85,6 +85,11 @@ def test_pipeline_floor_and_incremental_figures(bench_results: tuple[dict, Path]
     assert _positive(run["incremental"]["wall_seconds"])
     assert _positive(run["incremental"]["fraction"])
     assert run["incremental"]["new_rows"] == round(ROWS * 0.01)
+    # (f) the same month with the person buckets on a local Dask cluster: the same files, byte
+    # for byte, and the driver's figures
+    scaled = run["scale_out"]
+    assert scaled["exports"] > 0 and scaled["exports_identical"] is True
+    assert _positive(scaled["wall_seconds"]) and _positive(scaled["driver_peak_rss_mb"])
     # skipped parts are absent, not zero
     assert "great_expectations" not in run and "prefect" not in run
 
