@@ -23,6 +23,11 @@ ROOT = Path(__file__).resolve().parent.parent
 if str(ROOT) not in sys.path:  # the project is importable from the repo root
     sys.path.insert(0, str(ROOT))
 
+# make test runs the tests in two processes (pytest-xdist): each gets a Prefect home of its own,
+# so that the two temporary Prefect servers never share one database file
+if os.environ.get("PYTEST_XDIST_WORKER") and os.environ.get("PREFECT_HOME"):
+    os.environ["PREFECT_HOME"] = f"{os.environ['PREFECT_HOME']}-{os.environ['PYTEST_XDIST_WORKER']}"
+
 #: Hypothesis profiles (select one with HYPOTHESIS_PROFILE; the default is "dev"). Both turn the
 #: deadline off: a two-core machine shared with other work makes one example's time meaningless.
 #: Tests that name their own ``max_examples`` keep it (the slowest name theirs through

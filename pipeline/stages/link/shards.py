@@ -28,7 +28,6 @@ from pathlib import Path
 from typing import Any
 
 import duckdb
-import polars as pl
 
 from pipeline.core.periods import Period
 from pipeline.core.settings import Settings, load_settings
@@ -84,7 +83,11 @@ def run_shard(folder: str, config_dir: str, period_label: str) -> str:
     settings = load_settings(config_dir)
     period = Period.parse(period_label)
     folder_path = Path(folder)
-    con = duckdb.connect(":memory:")
+    # the run's memory limit per worker, spilling into the shard's folder beyond it
+    con = duckdb.connect(":memory:", config={
+        "memory_limit": settings.pipeline.execution.memory_limit,
+        "temp_directory": str(folder_path / ".duckdb_tmp"),
+    })  # fmt: skip
     try:
         for schema in ("staging", "reference"):
             con.execute(f"create schema {checked_name(schema)}")
@@ -204,7 +207,6 @@ def map_on_client(
     return client.gather(futures)
 
 
-def load_shard_outputs(folders: list[str], table: str) -> pl.DataFrame:
-    """One output table of every shard, put back together."""
-    frames = [pl.read_parquet(Path(f) / f"{table}.out.parquet") for f in folders]
-    return pl.concat(frames, how="vertical_relaxed")
+def shard_outputs(folders: list[str], table: str) -> list[str]:
+    """The files of one output table of every shard, in shard order."""
+    return [str(Path(f) / f"{table}.out.parquet") for f in folders]
