@@ -31,11 +31,11 @@ lint: setup
 	$(BIN)/ruff format --check .
 
 test: setup
-	$(BIN)/python -m pytest -q
+	$(BIN)/python -m pytest -q -n 2
 
 # without the tests marked slow (whole months, flows, killed processes): under two minutes
 test-fast: setup
-	$(BIN)/python -m pytest -q -m "not slow"
+	$(BIN)/python -m pytest -q -n 2 -m "not slow"
 
 # Benchmark (bench/README.md): BENCH_ROWS results, the pipeline against a one-script floor.
 BENCH_ROWS ?= 1000000
@@ -46,4 +46,4 @@ samples:
 	$(PYTHON) sample_extracts/generate.py
 
 clean:
-	rm -rf out .prefect .pytest_cache .hypothesis
+	rm -rf out .prefect .prefect-gw* .pytest_cache .hypothesis

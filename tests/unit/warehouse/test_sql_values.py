@@ -43,6 +43,7 @@ FRAGMENTS = {
         "these_files",
     ): "a constant predicate over the checked name of the judged files",
     ("stages/validate.py", "changed"): "the constant name changed_versions",
+    ("stages/link/stage.py", "rows"): "a query built just above from checked column names",
     (
         "warehouse/sql.py",
         "query",
