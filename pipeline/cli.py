@@ -339,6 +339,12 @@ def _run(
 
                 for name in ("prefect.flow_runs", "prefect.task_runs"):
                     logging.getLogger(name).setLevel(logging.CRITICAL)
+                if (executor or settings.pipeline.execution.executor) == "dask":
+                    # a Dask cluster's start and stop is not news on the console; distributed
+                    # sets its loggers' levels when imported, so it is imported first
+                    import distributed  # noqa: F401
+
+                    logging.getLogger("distributed").setLevel(logging.WARNING)
             if not os.environ.get(
                 "PREFECT_API_URL"
             ):  # Prefect's temporary server: ended if this run is killed
