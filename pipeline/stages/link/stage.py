@@ -24,11 +24,11 @@ from pipeline.stages.link.persons import (
     write_trajectory_rules,
 )
 from pipeline.warehouse.connection import drop_relation
+from pipeline.warehouse.sql import swap_period_rows
+from pipeline.warehouse.sql_files import checked_name
 
 if TYPE_CHECKING:
     from pipeline.stages.link.shards import ShardMapper
-from pipeline.warehouse.sql import swap_period_rows
-from pipeline.warehouse.sql_files import checked_name
 
 #: Row order of the person-level tables (as their SQL orders them), for putting shards together.
 PERSON_TABLE_ORDER = {
