@@ -56,6 +56,13 @@ def _rejoin(fields: list[str], delimiter: str) -> str:
     return out.getvalue()[:-2].replace("\r\n", "\n").replace("\r", "\n")
 
 
+#: A person token this long or longer is masked wherever it occurs inside another field's value
+#: (a result value, unit or specimen id that holds the token). A shorter one is not: it would sit
+#: by chance inside real values ("1" in "1.0") and change them, while it identifies no one alone.
+#: The raw text of a row is masked at any token length (pipeline/stages/ingest/rows.py).
+MIN_TOKEN_MASKED_IN_VALUES = 6
+
+
 def _rows_by_csv(path: Path, text: str, delimiter: str, n_fields: int,
                  index: dict[str, int]) -> tuple[pl.DataFrame, list[tuple[int, list[str]]]]:  # fmt: skip
     """Rows of a file through the csv module: quoted fields, line breaks inside quotes."""
@@ -109,8 +116,12 @@ def _rows_by_csv(path: Path, text: str, delimiter: str, n_fields: int,
         columns["line_no"].append(line_no)
         columns["raw_text"].append(raw)
         columns["row_fault"].append(fault)
+        # the token is masked in the other fields' values too: a value, unit or specimen id that
+        # holds it would otherwise be kept, or quoted in a rejection's message
+        token = row[token_idx].strip()
+        mask = len(token) >= MIN_TOKEN_MASKED_IN_VALUES
         for f, i in index.items():
-            columns[f].append(row[i])
+            columns[f].append(row[i].replace(token, _MASK) if mask and i != token_idx else row[i])
         if len(columns["line_no"]) >= CHUNK_ROWS:
             flush()
     flush()
@@ -180,6 +191,13 @@ def _rows_in_bulk(text: str, delimiter: str, n_fields: int,
     frame = frame.with_columns(unusual.alias("_unusual"))
     fault = pl.format("wrong_field_count:{} fields, the header has {}", n, pl.lit(n_fields))
     values = [field(i).alias(f) for f, i in index.items()]
+    # as in _rows_by_csv, the token is masked in the other fields' values too
+    masked_values = [
+        field(i).alias(f) if i == token_idx
+        else pl.when(token.str.len_chars() >= MIN_TOKEN_MASKED_IN_VALUES)
+        .then(field(i).str.split(token).list.join(_MASK)).otherwise(field(i)).alias(f)
+        for f, i in index.items()
+    ]  # fmt: skip
     usual = frame.filter(~pl.col("_unusual")).select(
         "line_no",
         pl.when(token != "").then(pl.concat_str(
@@ -195,7 +213,7 @@ def _rows_in_bulk(text: str, delimiter: str, n_fields: int,
         pl.when(n != n_fields).then(withheld).otherwise(masked).alias("raw_text"),
         pl.when(n != n_fields).then(fault)
         .otherwise(pl.lit(None, dtype=pl.String)).alias("row_fault"),
-        *values,
+        *masked_values,
     )  # fmt: skip
     rows = pl.concat([usual, other]).sort("line_no") if other.height else usual
     return rows, sample

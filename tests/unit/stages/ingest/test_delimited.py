@@ -221,3 +221,21 @@ def test_a_token_inside_the_mask_is_masked_once(small_settings, tmp_path, token)
     assert_same(by_csv, bulk)
     expected = "[person],1950,F,WF01,S[person]1,2025-06-02,2160-0,1.0,mg/dL,final,2025-06-04"
     assert bulk[1]["raw_text"].to_list() == [expected]
+
+
+def test_a_token_inside_another_field_is_masked_in_its_value_too(small_settings, tmp_path):
+    """A person token sent again in the value or the specimen id is masked in the landed values,
+    not only in the raw text, by both readers alike: it would otherwise be kept with an accepted
+    row, or quoted in a rejection's message. A token too short to identify anyone ("F") is left
+    in the values it happens to sit in (a regression: the value held the token in clear)."""
+    source = small_settings.source("westerfold_general_lab")
+    header = ",".join(STANDARD_FIELDS[:11])
+    lines = ["WF-tok0001,1960,F,WF01,WF-tok0001-S1,2025-06-02,2160-0,WF-tok0001,mg/dL,final,",
+             "F,1961,F,WF02,S2,2025-06-02,2160-0,1.0,mg/dL,final,"]  # fmt: skip
+    path = _write(tmp_path, header + "\n" + "\n".join(lines) + "\n")
+    bulk, by_csv = read_with(source, path, "bulk"), read_with(source, path, "csv")
+    assert_same(by_csv, bulk)
+    first, second = bulk[1].iter_rows(named=True)
+    assert (first["specimen_id"], first["value_text"]) == ("[person]-S1", "[person]")
+    assert "tok0001" not in " ".join(str(v) for v in first.values() if v != first["person_token"])
+    assert (second["sex_text"], second["value_text"]) == ("F", "1.0")
