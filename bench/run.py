@@ -465,7 +465,10 @@ def bench_size(rows: int, args: argparse.Namespace, with_prefect: bool) -> dict:
             "workers": 2,
             "wall_seconds": scaled["wall_seconds"],
             "local_wall_seconds": full["wall_seconds"],
-            "driver_peak_rss_mb": scaled["peak_rss_mb"],
+            # the driver's own high-water marks per stage (VmHWM): the process figure may be a
+            # worker's, since the workers are the driver's descendants
+            "driver_peak_rss_mb": max(s["peak_rss_mb"] for s in scaled["stages"].values()),
+            "process_tree_peak_rss_mb": scaled["peak_rss_mb"],
             "stages": {k: v["seconds"] for k, v in scaled["stages"].items()},
             "exports": len(local_exports),
             "exports_identical": bool(local_exports)

@@ -23,6 +23,8 @@ from pipeline.core.errors import ConfigError
 from pipeline.core.periods import Period
 from pipeline.core.pseudonymise import KeyMissing, resolve_key
 from pipeline.core.settings import load_settings
+from pipeline.run.progress import MODES as PROGRESS_MODES
+from pipeline.run.progress import make_progress
 from pipeline.run.runlock import EXIT_LOCKED, RunLocked, run_lock
 
 app = typer.Typer(
@@ -143,11 +145,9 @@ def _failure_hint(exc: BaseException) -> str:
     return ""
 
 
-class ProgressMode(StrEnum):
-    auto = "auto"
-    live = "live"
-    plain = "plain"
-    off = "off"
+#: The modes of ``--progress`` (pipeline/run/progress.py keeps the one list of them).
+ProgressMode = StrEnum("ProgressMode", {mode: mode for mode in PROGRESS_MODES})
+PROGRESS_AUTO = ProgressMode("auto")
 
 
 #: ``--progress`` of the commands that run months (pipeline/run/progress.py).
@@ -330,10 +330,6 @@ def _run(
             from pipeline.run import flows
 
             flows.set_reporter(_stage_line)
-            from pipeline.run.progress import make_progress
-
-            display = make_progress(progress, console)
-            flows.set_progress(display)
             if not verbose:  # a failure is told in one line (report_failure), not by Prefect's log
                 import logging
 
@@ -355,6 +351,8 @@ def _run(
                 f"kidneysurv: monthly run for {period} ({len(settings.sources)} sources, inbox {inbox})"
             )
             started = time.perf_counter()
+            display = make_progress(progress, console)
+            flows.set_progress(display)
             try:
                 summary = flows.monthly_surveillance(
                     period=period,
@@ -419,7 +417,7 @@ def run(
             help="Publish a revision of an already published period, with the reason shown in its report.",
         ),
     ] = None,
-    progress: ProgressOption = ProgressMode.auto,
+    progress: ProgressOption = PROGRESS_AUTO,
 ) -> None:
     """Ingest what is new in the inbox and publish the indicators for one month."""
     raise typer.Exit(
@@ -444,7 +442,7 @@ def demo(
     verbose: Annotated[
         bool, typer.Option("--verbose", help="Show Prefect's own log lines.")
     ] = False,
-    progress: ProgressOption = ProgressMode.auto,
+    progress: ProgressOption = PROGRESS_AUTO,
 ) -> None:
     """Run the latest complete month of the shipped sample extracts (public demo key)."""
     try:
@@ -481,7 +479,7 @@ def backfill(
     verbose: Annotated[
         bool, typer.Option("--verbose", help="Show Prefect's own log lines.")
     ] = False,
-    progress: ProgressOption = ProgressMode.auto,
+    progress: ProgressOption = PROGRESS_AUTO,
 ) -> None:
     """Run a range of months in order, skipping those already published (unless --force)."""
     from pipeline.run.backfill import months_to_run

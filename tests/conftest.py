@@ -25,8 +25,9 @@ if str(ROOT) not in sys.path:  # the project is importable from the repo root
 
 # make test runs the tests in two processes (pytest-xdist): each gets a Prefect home of its own,
 # so that the two temporary Prefect servers never share one database file
-if os.environ.get("PYTEST_XDIST_WORKER") and os.environ.get("PREFECT_HOME"):
-    os.environ["PREFECT_HOME"] = f"{os.environ['PREFECT_HOME']}-{os.environ['PYTEST_XDIST_WORKER']}"
+if os.environ.get("PYTEST_XDIST_WORKER"):
+    _home = os.environ.get("PREFECT_HOME", str(ROOT / ".prefect"))
+    os.environ["PREFECT_HOME"] = f"{_home}-{os.environ['PYTEST_XDIST_WORKER']}"
 
 #: Hypothesis profiles (select one with HYPOTHESIS_PROFILE; the default is "dev"). Both turn the
 #: deadline off: a two-core machine shared with other work makes one example's time meaningless.

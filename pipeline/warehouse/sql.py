@@ -115,8 +115,8 @@ def in_person_range(
     (:func:`pipeline.core.pseudonymise.person_range`; ``sources``: relation the SQL reads ->
     relation it reads from) and ``params`` with the range's bounds.
 
-    The first range has no lower bound and the last no upper one, so a key of any form (not only
-    the hex of the pseudonymiser) falls in exactly one range.
+    The first range has no lower bound (and takes a missing key) and the last no upper one, so
+    every row, whatever the form of its key, falls in exactly one range, as in one whole pass.
     """
     lower, upper = person_range(chunk, chunks)
     where = _RANGE_FILTER[(chunk > 0, chunk + 1 < chunks)]
@@ -166,7 +166,7 @@ def replace_period_rows_by_range(
 _RANGE_FILTER = {
     (False, False): "",
     (True, False): " where person_key >= $lower",
-    (False, True): " where person_key < $upper",
+    (False, True): " where (person_key < $upper or person_key is null)",
     (True, True): " where person_key >= $lower and person_key < $upper",
 }
 

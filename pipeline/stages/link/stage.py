@@ -33,7 +33,8 @@ if TYPE_CHECKING:
 #: Row order of the person-level tables (as their SQL orders them), for putting shards together.
 PERSON_TABLE_ORDER = {
     "measures_known": ["person_key", "collected_date", "analyte", "file_id", "line_no"],
-    "daily_values_averaged": ["person_key", "measure", "day"],
+    # a day's eGFRs can fall in both families when labs send other birth years for one person
+    "daily_values_averaged": ["person_key", "measure", "day", "equation_family"],
     "kidney_events": ["person_key", "rule_id"],
     "person_status": ["person_key"],
 }
