@@ -16,6 +16,7 @@ from pipeline.core.settings import STANDARD_FIELDS, STANDARD_REQUIRED, SourceCon
 from pipeline.stages.ingest.inbox import FileFault, InboxFile, _decode, read_file_bytes
 from pipeline.stages.ingest.rows import (
     _MASK,
+    MIN_TOKEN_MASKED_IN_VALUES,
     PY_WHITESPACE,
     _apply_screen,
     _header_fault,
@@ -54,13 +55,6 @@ def _rejoin(fields: list[str], delimiter: str) -> str:
     # "\r\n" as the terminator: the csv module then quotes a field holding either character
     csv.writer(out, delimiter=delimiter, lineterminator="\r\n").writerow(fields)
     return out.getvalue()[:-2].replace("\r\n", "\n").replace("\r", "\n")
-
-
-#: A person token this long or longer is masked wherever it occurs inside another field's value
-#: (a result value, unit or specimen id that holds the token). A shorter one is not: it would sit
-#: by chance inside real values ("1" in "1.0") and change them, while it identifies no one alone.
-#: The raw text of a row is masked at any token length (pipeline/stages/ingest/rows.py).
-MIN_TOKEN_MASKED_IN_VALUES = 6
 
 
 def _rows_by_csv(path: Path, text: str, delimiter: str, n_fields: int,

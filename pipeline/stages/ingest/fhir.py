@@ -13,7 +13,13 @@ from pipeline.core.landed import LANDED_COLUMNS
 from pipeline.core.pseudonymise import SHARED_DOMAIN
 from pipeline.core.settings import Settings, SourceConfig
 from pipeline.stages.ingest.inbox import FileFault, InboxFile, _decode, read_file_bytes
-from pipeline.stages.ingest.rows import _MASK, _apply_screen, _quarantine, district_places
+from pipeline.stages.ingest.rows import (
+    _MASK,
+    _apply_screen,
+    _quarantine,
+    district_places,
+    mask_in_value,
+)
 
 _PATIENT_REF = re.compile(r"Patient/[^\"\s,}]+")
 
@@ -84,14 +90,15 @@ def _read_patients(
         ids_by_line[line_no] = res["id"]
         try:
             token, domain = None, source.id
+            values = []  # every identifier of the Patient, of any system
             for ident in _objects(res, "identifier"):
                 value = _text(ident, "value")
-                if system and _text(ident, "system") == system and value:
+                values.append(value or "")
+                if token is None and system and _text(ident, "system") == system and value:
                     token, domain = (
                         value,
                         SHARED_DOMAIN if source.linkage == "shared" else source.id,
                     )
-                    break
             addresses = _objects(res, "address")
             patients[res["id"]] = {
                 "person_token": token if token is not None else f"Patient/{res['id']}",
@@ -99,6 +106,8 @@ def _read_patients(
                 "birth_year_text": (_text(res, "birthDate") or "")[:4],
                 "sex_text": _text(res, "gender") or "",
                 "district_name": (_text(addresses[0], "district") if addresses else None) or "",
+                # masked wherever an Observation repeats one (PATIENT_ONLY: never a landed field)
+                "hidden": (res["id"], *values),
             }
         except _Malformed as exc:
             raise FileFault(f"{path}: line {line_no}: Patient {res['id']}: {exc}") from None
@@ -150,6 +159,26 @@ def _observation_fields(res: dict) -> dict[str, str | None]:
     return fields
 
 
+#: What a Patient entry holds beside the fields it gives its Observations.
+PATIENT_ONLY = ("district_name", "hidden", "quarantine")
+
+#: The fields of an Observation row that hold what the lab sent (masked for the person's
+#: identifiers); the others are the row's number, text, fault and person.
+_SENT_FIELDS = ("specimen_id", "collected_text", "test_code", "test_code_text", "value_text",
+                "value_clean", "unit_text", "status", "status_text", "reported_text")  # fmt: skip
+
+
+def _mask_identifiers(rec: dict, hidden: tuple[str, ...]) -> None:
+    """Mask the person's identifiers (the Patient's id and identifier values, long enough to
+    identify: :func:`mask_in_value`) wherever the Observation repeats them: in the fields it
+    lands and in its raw text. A Patient id that the lab also writes into a specimen id would
+    otherwise be kept with the result, or quoted in a rejection's message.
+    """
+    for f in _SENT_FIELDS:
+        rec[f] = mask_in_value(rec[f], hidden)
+    rec["raw_text"] = mask_in_value(rec["raw_text"], hidden)
+
+
 _FHIR_FIELDS = (
     "line_no", "raw_text", "row_fault", "linkage_domain", "person_token", "birth_year_text",
     "sex_text", "district_code", "specimen_id", "collected_text", "test_code", "test_code_text",
@@ -188,7 +217,8 @@ def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) 
             for f, v in rec.items():
                 rows[f].append(v)
             continue
-        patient = patients.get(subject.removeprefix("Patient/"))
+        subject_id = subject.removeprefix("Patient/")
+        patient = patients.get(subject_id)
         if patient is not None and "quarantine" in patient:
             rec["row_fault"] = patient["quarantine"]
             rec["raw_text"] = (
@@ -196,18 +226,21 @@ def read_fhir_export(source: SourceConfig, item: InboxFile, settings: Settings) 
             )
             rec["person_token"] = patient["person_token"]
             rec["linkage_domain"] = patient["linkage_domain"]
+            _mask_identifiers(rec, patient["hidden"])
             for f, v in rec.items():
                 rows[f].append(v)
             continue
         if patient is not None:
-            rec.update({k: v for k, v in patient.items() if k != "district_name"})
+            rec.update({k: v for k, v in patient.items() if k not in PATIENT_ONLY})
             name = patient["district_name"]
             rec["district_code"] = by_name.get(name.casefold(), name)
         elif subject:
-            rec["row_fault"] = f"unknown_patient:{subject} is not in Patient.ndjson"
+            # the reference is not quoted: a Patient id is the person's id at the lab
+            rec["row_fault"] = f"unknown_patient:{_MASK} is not in Patient.ndjson"
         rec["raw_text"] = _PATIENT_REF.sub(_MASK, line)
         if patient is not None and patient["person_token"] in rec["raw_text"]:
             rec["raw_text"] = rec["raw_text"].replace(patient["person_token"], _MASK)
+        _mask_identifiers(rec, patient["hidden"] if patient is not None else (subject_id,))
         for f, v in rec.items():
             rows[f].append(v)
     if not rows["line_no"]:

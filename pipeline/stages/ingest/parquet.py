@@ -12,6 +12,7 @@ from pipeline.core.settings import STANDARD_FIELDS, STANDARD_REQUIRED, SourceCon
 from pipeline.stages.ingest.inbox import FileFault, InboxFile, read_file_bytes
 from pipeline.stages.ingest.rows import (
     _MASK,
+    MIN_TOKEN_MASKED_IN_VALUES,
     PY_WHITESPACE,
     _apply_screen,
     _header_fault,
@@ -113,11 +114,24 @@ def read_parquet(
             .alias(col)
         )
 
+    def value(field: str, col: str) -> pl.Expr:
+        # as the delimited readers: a token long enough to identify is masked in the other
+        # fields' values too (a specimen id or a value that holds it)
+        if field == "person_token":
+            return pl.col(col).alias(field)
+        long = token.str.len_chars() >= MIN_TOKEN_MASKED_IN_VALUES
+        return (
+            pl.when(long)
+            .then(pl.col(col).str.split(token).list.join(_MASK))
+            .otherwise(pl.col(col))
+            .alias(field)
+        )
+
     rows = text.select(
         "line_no",
         pl.struct([masked(c) for c in header]).struct.json_encode().alias("raw_text"),
         pl.lit(None, dtype=pl.String).alias("row_fault"),
-        *(pl.col(c).alias(f) for f, c in wanted.items() if c in header),
+        *(value(f, c) for f, c in wanted.items() if c in header),
     )
     rows = rows.with_columns(
         pl.lit(None, dtype=pl.String).alias(f) for f in STANDARD_FIELDS if f not in rows.columns

@@ -5,6 +5,8 @@ flagged rows, control characters, and the landed columns a reader's rows end in.
 from __future__ import annotations
 
 import difflib
+import re
+from collections.abc import Iterable
 from pathlib import Path
 
 import polars as pl
@@ -15,6 +17,26 @@ from pipeline.core.settings import STANDARD_FIELDS, Settings, SourceConfig
 from pipeline.stages.ingest.inbox import FileFault, InboxFile
 
 _MASK = "[person]"
+
+#: A person token this long or longer is masked wherever it occurs inside another field's value
+#: (a result value, unit or specimen id that holds the token), by every reader. A shorter one is
+#: not: it would sit by chance inside real values ("1" in "1.0") and change them, while it
+#: identifies no one alone. The raw text of a row is masked at any token length.
+MIN_TOKEN_MASKED_IN_VALUES = 6
+
+
+def mask_in_value(value: str | None, tokens: Iterable[str]) -> str | None:
+    """``value`` with every occurrence of each token of ``tokens`` at least
+    :data:`MIN_TOKEN_MASKED_IN_VALUES` long replaced by the mask, in one pass (longest token
+    first, and a mask already written is not searched again).
+    """
+    if not value:
+        return value
+    kept = sorted({t for t in tokens if t and len(t) >= MIN_TOKEN_MASKED_IN_VALUES}, key=len,
+                  reverse=True)  # fmt: skip
+    if not kept or not any(t in value for t in kept):
+        return value
+    return re.sub("|".join(re.escape(t) for t in kept), lambda _: _MASK, value)
 
 
 def _header_fault(

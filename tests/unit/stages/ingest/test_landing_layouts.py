@@ -232,6 +232,41 @@ def test_fhir_malformed_record_masks_the_subject(settings: Settings, tmp_path: P
     assert "Patient/p2" not in raw
 
 
+def test_fhir_identifiers_repeated_in_an_observation_are_masked(settings: Settings, tmp_path: Path):
+    """A Patient's id or identifier (of any system, six characters or more) that an Observation
+    repeats, here in the specimen reference and a value string, is masked in the landed fields and
+    the raw text; the reference of a subject missing from Patient.ndjson is not quoted in the
+    row's fault, which becomes a rejection's message (a regression: both were kept in clear)."""
+    patients = (
+        '{"resourceType":"Patient","id":"srv-000123","identifier":[{"system":"urn:westerfold:linkage-token",'
+        '"value":"WF-tok00009"},{"system":"urn:fallowmere:mrn","value":"MRN-445566"}],"gender":"female",'
+        '"birthDate":"1960","address":[{"district":"Alderbank"}]}\n'
+    )
+    observation = (
+        '{"resourceType":"Observation","id":"o1","status":"final","code":{"coding":[{"system":'
+        '"http://loinc.org","code":"2160-0"}]},"subject":{"reference":"Patient/srv-000123"},'
+        '"specimen":{"reference":"Specimen/srv-000123-1"},"effectiveDateTime":"2025-03-10",'
+        '"valueString":"see WF-tok00009 and MRN-445566"}\n'
+        '{"resourceType":"Observation","id":"o2","status":"final","code":{"coding":[{"system":'
+        '"http://loinc.org","code":"2160-0"}]},"subject":{"reference":"Patient/srv-999999"},'
+        '"specimen":{"reference":"Specimen/srv-999999-1"},"effectiveDateTime":"2025-03-10",'
+        '"valueQuantity":{"value":1.0,"code":"mg/dL"}}\n'
+    )
+    inbox = write_inbox(tmp_path, {"2025-03/Patient.ndjson": patients,
+                                   "2025-03/Observation.ndjson": observation})  # fmt: skip
+    frame = read(FHIR, inbox / "2025-03" / "Observation.ndjson", settings)
+    first, second = frame.iter_rows(named=True)
+    assert first["person_token"] == "WF-tok00009"
+    assert (first["specimen_id"], first["value_text"]) == (
+        "[person]-1",
+        "see [person] and [person]",
+    )
+    for row, hidden in ((first, ("srv-000123", "tok00009", "445566")), (second, ("srv-999999",))):
+        kept = " ".join(str(v) for k, v in row.items() if k != "person_token")
+        assert not any(h in kept for h in hidden), kept
+    assert second["row_fault"] == "unknown_patient:[person] is not in Patient.ndjson"
+
+
 def test_crlf_line_endings(settings: Settings, tmp_path: Path):
     text = (INGEST / "standard_basic.csv").read_text(encoding="utf-8").replace("\n", "\r\n")
     inbox = write_inbox(tmp_path, {"crlf.csv": text})

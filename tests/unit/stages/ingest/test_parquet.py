@@ -117,6 +117,26 @@ def test_raw_text_is_the_record_as_json_with_the_token_masked(config: Path, tmp_
         assert not frame["raw_text"].str.contains(token, literal=True).any()
 
 
+def test_a_token_inside_another_column_is_masked_in_its_value_too(config: Path, tmp_path: Path):
+    """As the delimited readers (test_delimited.py): a person token sent again in the specimen id
+    or the value is masked in the landed values, not only in the raw text; a token too short to
+    identify anyone is left where it happens to sit (a regression: the Parquet reader kept it)."""
+    text = GOOD_CSV + "F,1961,F,WF02,F-S2,2025-06-02,2160-0,1.0,mg/dL,final,2025-06-03\n"
+    text = text.replace(",P1,", ",WF-pq000001-S1,").replace(
+        ",1.0,mg/dL,final,2025-06-03\n", ",WF-pq000001,mg/dL,final,2025-06-03\n", 1
+    )
+    records = list(csv.reader(io.StringIO(text)))
+    table = pa.table({h: [r[i] for r in records[1:]] for i, h in enumerate(records[0])})
+    inbox = write_inbox(tmp_path, {f"{PARQUET}/x.parquet": parquet_bytes(table)})
+    frame = read(
+        load_settings(config), PARQUET, inbox / PARQUET / "x.parquet", f"{PARQUET}/x.parquet"
+    )
+    first, second = frame.iter_rows(named=True)
+    assert (first["specimen_id"], first["value_text"]) == ("[person]-S1", "[person]")
+    assert "pq000001" not in " ".join(str(v) for k, v in first.items() if k != "person_token")
+    assert (second["specimen_id"], second["value_text"]) == ("F-S2", "1.0")
+
+
 def test_typed_columns_are_read_as_text_as_reported(config: Path, tmp_path: Path):
     table = pa.table({
         "person_token": ["WF-t1", None], "birth_year": pa.array([1960, 1971], pa.int32()), "sex": ["F", "M"],
