@@ -13,11 +13,11 @@ from pathlib import Path
 
 import duckdb
 
-from pipeline.core.measure_rules import MEASURED_ANALYTES, measure_frame
 from pipeline.core.periods import Period
 from pipeline.core.rule_params import event_params, trajectory_rules
 from pipeline.core.settings import Settings
-from pipeline.warehouse.connection import drop_relation, fetch_frame, with_frame
+from pipeline.stages.measure import measure_into
+from pipeline.warehouse.connection import drop_relation, with_frame
 from pipeline.warehouse.sql import (
     build_table,
     ranges_for,
@@ -108,14 +108,7 @@ def build_person_tables(
             "where collected_date <= (select period_end from reference.known_as_of)"
         )
     else:
-        results = fetch_frame(
-            con,
-            "select * from results_known where list_contains($analytes, analyte)",
-            {"analytes": list(MEASURED_ANALYTES)},
-        )
-        known = measure_frame(results, settings)
-        del results
-        with_frame(con, known, "create table measures_known as select * from _frame")
+        measure_into(con, settings, "results_known", "measures_known")
     if snapshot is not None:
         return carry_over(con, settings, period, snapshot, validated)
     build_table(con, "daily_values_averaged", params=params)
