@@ -258,7 +258,7 @@ def main() -> None:
     ap.add_argument("--profile", help="write a cProfile summary of the plain run to this file")
     ap.add_argument("--input-glob")
     ap.add_argument("--period-end")
-    ap.add_argument("--memory-limit", default="2GB")
+    ap.add_argument("--memory-limit", default="1.5GB")
     ap.add_argument(
         "--kept",
         help="floor: then write what the warehouse keeps (floor_kept.sql) to this DuckDB file",

@@ -237,6 +237,14 @@ def snapshot_config(target: Path) -> Path:
     return target
 
 
+def memory_limit_of(config: Path) -> str:
+    """The warehouse's DuckDB memory limit in ``config`` (``execution.memory_limit``): the floor
+    runs under the same limit."""
+    from pipeline.core.settings import load_settings
+
+    return load_settings(config).pipeline.execution.memory_limit
+
+
 def gx_off_config(source: Path, target: Path) -> Path:
     """A copy of the config with the Great Expectations gate switched off (text edit: comments kept)."""
     shutil.rmtree(target, ignore_errors=True)
@@ -368,7 +376,8 @@ def bench_size(rows: int, args: argparse.Namespace, with_prefect: bool) -> dict:
     print(f"[bench] {rows:,} rows: (b) floor", flush=True)
     floor, walls = best_of(args.repeat, "floor", lambda i: run_child(
         ["floor", "--input-glob", str(inbox / SOURCE / "*.csv"), "--out", str(work / "floor"),
-         "--period-end", month_end(period)], logs / f"floor_{i}"))  # fmt: skip
+         "--period-end", month_end(period), "--memory-limit", memory_limit_of(config)],
+        logs / f"floor_{i}"))  # fmt: skip
     result["floor"] = {k: floor.get(k) for k in (
         "wall_seconds", "process_wall_seconds", "cpu_seconds", "peak_rss_mb", "load_before",
         "egfr_rows", "persons_tested", "persons_sustained_decline_40")}  # fmt: skip
@@ -377,7 +386,8 @@ def bench_size(rows: int, args: argparse.Namespace, with_prefect: bool) -> dict:
     print(f"[bench] {rows:,} rows: (b2) floor, then what the warehouse keeps", flush=True)
     kept = run_child(
         ["floor", "--input-glob", str(inbox / SOURCE / "*.csv"), "--out", str(work / "floor_kept"),
-         "--period-end", month_end(period), "--kept", str(work / "floor_kept" / "kept.duckdb")],
+         "--period-end", month_end(period), "--kept", str(work / "floor_kept" / "kept.duckdb"),
+         "--memory-limit", memory_limit_of(config)],
         logs / "floor_kept")  # fmt: skip
     result["floor_kept"] = {
         "wall_seconds": round(kept["wall_seconds"] + kept["kept_seconds"], 3),

@@ -412,7 +412,7 @@ class ExecutionSettings(_Strict):
     scheduler_address: str | None = None
     #: DuckDB's memory limit for the warehouse connection; above it DuckDB spills to
     #: <out>/.duckdb_tmp/. Python's own frames (one measure chunk) come on top.
-    memory_limit: str = Field(default="2GB", pattern=r"^[1-9][0-9]*(\.[0-9]+)?(MB|GB)$")
+    memory_limit: str = Field(default="1.5GB", pattern=r"^[1-9][0-9]*(\.[0-9]+)?(MB|GB)$")
 
 
 class CompletenessSettings(_Strict):

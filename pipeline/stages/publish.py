@@ -33,7 +33,7 @@ TRANSIENT_TABLES = (
 )
 
 
-def open_warehouse(out_dir: Path, memory_limit: str = "2GB") -> duckdb.DuckDBPyConnection:
+def open_warehouse(out_dir: Path, memory_limit: str = "1.5GB") -> duckdb.DuckDBPyConnection:
     """Open ``<out>/surveillance.duckdb`` (owner-only folder) and begin the run's transaction."""
     out_dir.mkdir(parents=True, exist_ok=True)
     os.chmod(out_dir, 0o700)

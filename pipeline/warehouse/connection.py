@@ -34,7 +34,7 @@ LEDGER_TABLES = (
 )
 
 
-def connect(path: Path | str, memory_limit: str = "2GB") -> duckdb.DuckDBPyConnection:
+def connect(path: Path | str, memory_limit: str = "1.5GB") -> duckdb.DuckDBPyConnection:
     """Open (or create) a warehouse file with the ledger tables in place."""
     path = Path(path)
     con = duckdb.connect(str(path))
