@@ -255,6 +255,15 @@ def build_comparison_ckd(con: duckdb.DuckDBPyConnection, settings: Settings, per
     rules = event_params(settings, period)
     sources = {"daily_values_averaged": "equation_daily_values",
                "measures_known": "measures_known", "results_known": "results_known"}  # fmt: skip
+    if carry:
+        # only the changed persons' rows: the rules read a person's own rows, and the others'
+        # (the glycaemia of every person, at 10M results) were read for nothing
+        for name in ("measures_known", "results_known"):
+            con.execute(
+                f"create or replace temp view comparison_{name} as select * from {name} "
+                f"where person_key in (select person_key from {checked_name(scope.changed or '')})"
+            )
+            sources[name] = f"comparison_{name}"
     ranges = ranges_for(con.execute("select count(*) from equation_daily_values").fetchall()[0][0])
     keys: list[str] = []
     for chunk in range(ranges):
@@ -265,6 +274,8 @@ def build_comparison_ckd(con: duckdb.DuckDBPyConnection, settings: Settings, per
         keys += [k for (k,) in con.execute(confirmed, used_params(confirmed, bound)).fetchall()]
     fresh = pl.DataFrame({"person_key": keys}, schema={"person_key": pl.String})
     con.execute("drop table equation_daily_values")
+    for name in ("measures_known", "results_known"):
+        con.execute(f"drop view if exists comparison_{name}")
     con.execute("delete from equation_comparison_ckd where period = ?", [period.label])
     if carry:
         con.execute(
