@@ -407,6 +407,28 @@ def settle_scope(con: duckdb.DuckDBPyConnection, settled: Settled, full: bool = 
     return Scope("touched", size, persons, "scope_persons", "scope_versions")
 
 
+#: This run's versions stored per statement, a batch of whole files at a time, so that joining
+#: them to their outcome stays within DuckDB's memory limit (at 30M results one statement over
+#: every version ran out of memory at a 1.5 GB limit).
+STORE_BATCH_ROWS = 4_000_000
+
+
+def file_batches(con: duckdb.DuckDBPyConnection, relation: str, rows: int) -> list[tuple[int, int]]:
+    """Ranges of ``file_id`` (first, last, inclusive), in order, covering every row of
+    ``relation``, each of whole files and at most ``rows`` rows unless one file has more.
+    """
+    counts = con.execute(
+        f"select file_id, count(*) from {checked_name(relation)} group by file_id order by file_id"
+    ).fetchall()
+    batches: list[list[int]] = []  # [first, last, rows]
+    for file_id, n in counts:
+        if batches and batches[-1][2] + n <= rows:
+            batches[-1][1:] = [file_id, batches[-1][2] + n]
+        else:
+            batches.append([file_id, file_id, n])
+    return [(first, last) for first, last, _ in batches]
+
+
 def resolve_versions(
     con: duckdb.DuckDBPyConnection, settled: Settled, full: bool = False
 ) -> Resolved:
@@ -436,14 +458,18 @@ def resolve_versions(
           and v.outcome is distinct from r.outcome
         """
     )
-    con.execute(
-        f"""
-        insert into result_versions
-        select n.* replace (r.outcome as outcome)
-        from {new_versions} as n
-        join result_versions_resolved as r on r.file_id = n.file_id and r.line_no = n.line_no
-        """
-    )
+    for first, last in file_batches(con, new_versions, STORE_BATCH_ROWS):
+        con.execute(
+            f"""
+            insert into result_versions
+            select n.* replace (r.outcome as outcome)
+            from (select * from {new_versions} where file_id between $first and $last) as n
+            join (select file_id, line_no, outcome from result_versions_resolved
+                  where file_id between $first and $last) as r
+                on r.file_id = n.file_id and r.line_no = n.line_no
+            """,
+            {"first": first, "last": last},
+        )
     record_specimen_conflicts(con)
     con.execute("drop view all_versions")
     con.execute(f"drop view {new_versions}")

@@ -362,3 +362,25 @@ def test_quality_gate_per_source_limit_overrides_default(tmp_path: Path):
         assert rows(con, "select status, rows_accepted, rows_rejected from ingest_files") == [
             ("ingested", 5, 5)
         ]
+
+
+@pytest.mark.parametrize("limit", [1, 10, 30, 1000])
+def test_the_versions_are_stored_in_batches_of_whole_files_covering_every_row(limit):
+    """file_batches: ranges of file ids, in order, that together take every row once, each of
+    whole files and within the limit unless one file alone is over it (the insert of a run's
+    versions is made one batch at a time)."""
+    import duckdb
+
+    from pipeline.stages.validate import file_batches
+
+    con = duckdb.connect()
+    con.execute("create table v as select (i * 7919) % 9 * 3 + 1 as file_id from range(200) t(i)")
+    sizes = dict(con.execute("select file_id, count(*) from v group by file_id").fetchall())
+    batches = file_batches(con, "v", limit)
+    taken = [f for first, last in batches for f in sorted(sizes) if first <= f <= last]
+    assert taken == sorted(sizes)  # every file once, in order
+    for first, last in batches:
+        files = [f for f in sizes if first <= f <= last]
+        assert sum(sizes[f] for f in files) <= limit or len(files) == 1
+    con.execute("create table none as select * from v where false")
+    assert file_batches(con, "none", limit) == []
