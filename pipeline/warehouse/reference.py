@@ -117,3 +117,13 @@ def _age_bands(lower_bounds: list[int]) -> pl.DataFrame:
             }
         )
     return pl.DataFrame(rows)
+
+
+def reference_tables(con: duckdb.DuckDBPyConnection) -> list[str]:
+    """Every table of schema ``reference`` (small: the reference loader's, the trajectory rules,
+    the measure SQL's coefficients): a shard reads them as the warehouse does.
+    """
+    return [t for (t,) in con.execute(
+        "select table_name from information_schema.tables where table_schema = 'reference' "
+        "and table_type = 'BASE TABLE' order by table_name"
+    ).fetchall()]  # fmt: skip

@@ -18,6 +18,7 @@ from pipeline.core.rule_params import event_params, trajectory_rules
 from pipeline.core.settings import Settings
 from pipeline.stages.measure import measure_into
 from pipeline.warehouse.connection import drop_relation, with_frame
+from pipeline.warehouse.reference import reference_tables
 from pipeline.warehouse.sql import (
     build_table,
     ranges_for,
@@ -254,11 +255,7 @@ def carry_over(
     try:
         for schema in ("staging", "reference"):
             scratch.execute(f"create schema {checked_name(schema)}")
-        # every reference table (a listing of the schema the reference loader writes)
-        tables = [f"reference.{t}" for (t,) in con.execute(
-            "select table_name from information_schema.tables where table_schema = 'reference' "
-            "and table_type = 'BASE TABLE' order by table_name"
-        ).fetchall()]  # fmt: skip
+        tables = [f"reference.{t}" for t in reference_tables(con)]
         # rows pass between the two databases as streams of record batches, never as one
         # Arrow table: at 10M results a month's changed persons held whole took the run's peak
         # to 3.2 GB (2.5 GB streamed)

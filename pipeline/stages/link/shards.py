@@ -31,11 +31,9 @@ import duckdb
 
 from pipeline.core.periods import Period
 from pipeline.core.settings import Settings, load_settings
+from pipeline.warehouse.reference import reference_tables
 from pipeline.warehouse.sql_files import checked_name
 
-#: Tables a shard reads from the main warehouse (besides its own results).
-REFERENCE_TABLES = ("gfr_categories", "gfr_categories_ordered", "kdigo_risk", "age_bands",
-                    "districts", "trajectory_rules")  # fmt: skip
 #: Tables a shard writes, in the order they are built.
 SHARD_OUTPUTS = ("measures_known", "daily_values_averaged", "kidney_events", "person_status")
 
@@ -54,7 +52,7 @@ def export_shard_inputs(con: duckdb.DuckDBPyConnection, work: Path, shards: int)
     work = work.resolve()
     shutil.rmtree(work, ignore_errors=True)
     (work / "reference").mkdir(parents=True)
-    for table in REFERENCE_TABLES:
+    for table in reference_tables(con):
         con.execute(
             f"copy reference.{checked_name(table)} to $path (format parquet)",
             {"path": str(work / "reference" / (table + ".parquet"))},
