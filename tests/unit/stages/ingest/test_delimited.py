@@ -27,6 +27,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipeline.core.settings import STANDARD_FIELDS, Settings, SourceConfig, load_settings
+from pipeline.stages.ingest import delimited
 from pipeline.stages.ingest.delimited import read_delimited
 from pipeline.stages.ingest.inbox import FileFault, InboxFile
 from pipeline.stages.ingest.rows import PY_WHITESPACE
@@ -239,3 +240,27 @@ def test_a_token_inside_another_field_is_masked_in_its_value_too(small_settings,
     assert (first["specimen_id"], first["value_text"]) == ("[person]-S1", "[person]")
     assert "tok0001" not in " ".join(str(v) for v in first.values() if v != first["person_token"])
     assert (second["sex_text"], second["value_text"]) == ("F", "1.0")
+
+
+@pytest.mark.parametrize("slice_lines", [1, 2, 3, 100_000])
+def test_the_bulk_reader_gives_the_same_rows_a_slice_at_a_time(small_settings, tmp_path, monkeypatch,
+                                                               slice_lines):  # fmt: skip
+    """The bulk reader splits its lines BULK_SLICE_LINES at a time (to bound its memory): the rows,
+    line numbers, blank lines skipped, faults, masks and the identifier screen's quarantine are
+    those of the csv-module reader whatever the slice (a blank line and a flagged value fall on
+    slice boundaries here)."""
+    monkeypatch.setattr(delimited, "BULK_SLICE_LINES", slice_lines)
+    source = small_settings.source("westerfold_general_lab")
+    header = ",".join(STANDARD_FIELDS[:11])
+    lines = ["WF-tok0001,1960,F,WF01,S1,2025-06-02,2160-0,1.0,mg/dL,final,",
+             "",
+             "WF-tok0002,1961,F,WF02,S2,2025-06-02,2160-0,1.1,mg/dL,final",
+             "WF-tok0003,1962,M,WF01,S3,2025-06-02,2160-0,555-867-5309,mg/dL,final,",
+             "WF-tok0004,1963,M,WF02,WF-tok0004-S4,2025-06-02,2160-0,1.3,mg/dL,final,"]  # fmt: skip
+    path = _write(tmp_path, header + "\n" + "\n".join(lines) + "\n")
+    bulk, by_csv = read_with(source, path, "bulk"), read_with(source, path, "csv")
+    assert_same(by_csv, bulk)
+    frame = bulk[1]
+    assert frame["line_no"].to_list() == [2, 4, 5, 6]
+    faults = dict(zip(frame["line_no"], frame["row_fault"], strict=True))
+    assert faults[4].startswith("wrong_field_count") and faults[5] is not None and faults[2] is None

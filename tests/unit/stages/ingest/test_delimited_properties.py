@@ -28,6 +28,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from pipeline.core.settings import Settings, load_settings
+from pipeline.stages.ingest import delimited
 from pipeline.stages.ingest.inbox import FileFault, InboxFile, sha256_of
 from pipeline.stages.ingest.landing import read_inbox_file
 from tests.conftest import examples, make_small_config, rows, run_month, write_inbox
@@ -68,6 +69,15 @@ def small_settings(config: Path) -> Settings:
 @pytest.fixture(scope="module")
 def workdir(tmp_path_factory) -> Path:
     return tmp_path_factory.mktemp("property_files")
+
+
+@pytest.fixture(scope="module", autouse=True)
+def small_bulk_slices():
+    """The bulk reader splits its lines a few at a time here, so that the comparisons below
+    also cross its slice boundaries (blank lines, faults and screened values on either side)."""
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(delimited, "BULK_SLICE_LINES", 3)
+        yield
 
 
 _counter = itertools.count()
