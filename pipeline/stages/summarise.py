@@ -326,10 +326,13 @@ def build_equation_change(
     con.execute("drop table equation_comparison_inputs")
     comparison = settings.pipeline.summaries.equation_comparison
     persons = daily_comparison(inputs, comparison)
+    del inputs  # the frames of this function are freed as soon as they are used: at 30M
+    # results they stood beside the comparison below and took the stage's peak to 3 GB
     matrix = reclassification(
         persons, period.label, settings.pipeline.measures.adult_equation, [comparison, COMBINED]
     )
     totals, categories = summary(matrix)
+    persons = persons.select("district_code", "person_key", "comparison")  # what ckd_counts reads
     # confirmed CKD under the comparison: every known eGFR recomputed, the event rules run again
     other, _ = build_comparison_ckd(con, settings, period, scope or PersonScope())
     in_force = {
