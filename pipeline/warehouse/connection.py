@@ -9,6 +9,9 @@ against a plain-identifier pattern.
 
 from __future__ import annotations
 
+import re
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
@@ -32,6 +35,30 @@ LEDGER_TABLES = (
     "equation_comparison_ckd",
     "equation_comparison_builds",
 )
+
+
+def scaled_memory_limit(limit: str, share: float) -> str:
+    """``share`` of a memory limit written as in ``execution.memory_limit`` (``1.5GB``,
+    ``1500MB``), in whole MB.
+    """
+    match = re.fullmatch(r"([0-9]+(?:\.[0-9]+)?)(MB|GB)", limit)
+    if not match:
+        raise ValueError(f"not a memory limit: {limit!r} (e.g. 1.5GB or 1500MB)")
+    mb = float(match.group(1)) * (1000 if match.group(2) == "GB" else 1)
+    return f"{max(1, int(mb * share))}MB"
+
+
+@contextmanager
+def memory_limit_within(con: duckdb.DuckDBPyConnection, limit: str, share: float) -> Iterator[None]:
+    """DuckDB's memory limit lowered to ``share`` of ``limit`` while the block runs, then
+    ``limit`` again: for a stage that holds large frames in Python beside DuckDB's buffer and
+    needs little of the buffer itself (the ingest stage only appends rows, which spill).
+    """
+    con.execute("set memory_limit = ?", [scaled_memory_limit(limit, share)])
+    try:
+        yield
+    finally:
+        con.execute("set memory_limit = ?", [limit])
 
 
 def connect(path: Path | str, memory_limit: str = "1.5GB") -> duckdb.DuckDBPyConnection:

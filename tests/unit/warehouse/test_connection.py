@@ -81,3 +81,29 @@ def test_sql_over_puts_inputs_in_front_of_a_sql_file():
     assert "from landed_rows_typed as s" in text
     with pytest.raises(ValueError, match="not a plain relation name"):
         sql_over("results_validated", {"x; drop": "select 1"})
+
+
+def test_a_stage_can_run_under_a_share_of_the_memory_limit_and_gives_it_back():
+    """memory_limit_within: DuckDB's limit is the share while the block runs (the ingest stage's
+    two thirds) and the configured limit again after it, also when the block fails. DuckDB
+    reads "GB" as 1000 MB and shows the limit in MiB/GiB (DuckDB docs, configuration: from
+    memory)."""
+    from pipeline.warehouse.connection import memory_limit_within, scaled_memory_limit
+
+    assert scaled_memory_limit("1.5GB", 2 / 3) == "1000MB"
+    assert scaled_memory_limit("1500MB", 0.5) == "750MB"
+    with pytest.raises(ValueError, match="not a memory limit"):
+        scaled_memory_limit("1.5 GiB", 0.5)
+    con = duckdb.connect()
+    con.execute("set memory_limit = '1.5GB'")
+
+    def limit() -> str:
+        return con.execute("select current_setting('memory_limit')").fetchall()[0][0]
+
+    full = limit()
+    with memory_limit_within(con, "1.5GB", 2 / 3):
+        assert limit() == "953.6 MiB"  # 1000 MB
+    assert limit() == full
+    with pytest.raises(RuntimeError), memory_limit_within(con, "1.5GB", 0.5):
+        raise RuntimeError("a stage fails")
+    assert limit() == full
