@@ -124,10 +124,11 @@ def _rows_by_csv(path: Path, text: str, delimiter: str, n_fields: int,
 
 def _rows_in_bulk(text: str, delimiter: str, n_fields: int,
                   index: dict[str, int]) -> tuple[pl.DataFrame, pl.DataFrame] | None:  # fmt: skip
-    """The same rows as :func:`_rows_by_csv`, for a file :func:`fast_path_applies` to: every
-    line split in polars, :data:`BULK_SLICE_LINES` lines a pass. Returns the rows and the identifier screen's sample (line,
-    field position, value: the fields as read, before any padding), or None for a file with a
-    line over the csv module's field limit (left to the csv module, which names the line).
+    """The same rows as :func:`_rows_by_csv`, for a file :func:`fast_path_applies` to: the
+    lines split in polars, :data:`BULK_SLICE_LINES` lines a pass. Returns the rows and the
+    identifier screen's sample (line, field position, value: the fields as read, before any
+    padding), or None for a file with a line over the csv module's field limit (left to the
+    csv module, which names the line).
     """
     if "\r" in text:  # a line ends at \r\n, \n or \r, as for the csv module
         text = text.replace("\r\n", "\n").replace("\r", "\n")
