@@ -17,7 +17,12 @@ from pipeline.core.periods import Period
 from pipeline.core.rule_params import event_params, trajectory_rules
 from pipeline.core.settings import Settings
 from pipeline.stages.measure import measure_into
-from pipeline.warehouse.connection import drop_relation, with_frame
+from pipeline.warehouse.connection import (
+    drop_relation,
+    memory_limit_within,
+    scaled_memory_limit,
+    with_frame,
+)
 from pipeline.warehouse.reference import reference_tables
 from pipeline.warehouse.sql import (
     build_table,
@@ -251,37 +256,52 @@ def carry_over(
     """
     n = changed_persons(con, period, snapshot, validated)
     params = event_params(settings, period)
-    scratch = duckdb.connect(":memory:")
+    # the scratch database and the warehouse share the run's memory limit while both are open
+    # (the scratch database had DuckDB's default, most of the machine: at 30M results a month's
+    # link stage peaked at 4.7 GB), each spilling into the run's temporary folder beyond it
+    limit = settings.pipeline.execution.memory_limit
+    temp = con.execute("select current_setting('temp_directory')").fetchall()[0][0]
+    config = {"memory_limit": scaled_memory_limit(limit, SCRATCH_MEMORY_SHARE)}
+    if temp:
+        config["temp_directory"] = str(Path(temp) / "carry_over")
+    scratch = duckdb.connect(":memory:", config=config)
     try:
-        for schema in ("staging", "reference"):
-            scratch.execute(f"create schema {checked_name(schema)}")
-        tables = [f"reference.{t}" for t in reference_tables(con)]
-        # rows pass between the two databases as streams of record batches, never as one
-        # Arrow table: at 10M results a month's changed persons held whole took the run's peak
-        # to 3.2 GB (2.5 GB streamed)
-        for table in tables:
-            _copy_into(scratch, table, _stream(con, f"select * from {checked_name(table)}"))
-        for table in ("results_known", "measures_known"):
-            rows = _stream(
-                con,
-                f"select * from {checked_name(table)} semi join link_persons using (person_key)",
+        with memory_limit_within(con, limit, 1 - SCRATCH_MEMORY_SHARE):
+            for schema in ("staging", "reference"):
+                scratch.execute(f"create schema {checked_name(schema)}")
+            tables = [f"reference.{t}" for t in reference_tables(con)]
+            # rows pass between the two databases as streams of record batches, never as one
+            # Arrow table: at 10M results a month's changed persons held whole took the run's peak
+            # to 3.2 GB (2.5 GB streamed)
+            for table in tables:
+                _copy_into(scratch, table, _stream(con, f"select * from {checked_name(table)}"))
+            for table in ("results_known", "measures_known"):
+                rows = _stream(
+                    con,
+                    f"select * from {checked_name(table)} semi join link_persons using (person_key)",
+                )
+                _copy_into(scratch, table, rows)
+            build_table(scratch, "daily_values_averaged", params=params)
+            build_table(scratch, "kidney_events", params=params)
+            build_table(scratch, "person_status", params=params)
+            con.execute(
+                "delete from daily_values_averaged "
+                "where person_key in (select person_key from link_persons)"
             )
-            _copy_into(scratch, table, rows)
-        build_table(scratch, "daily_values_averaged", params=params)
-        build_table(scratch, "kidney_events", params=params)
-        build_table(scratch, "person_status", params=params)
-        con.execute(
-            "delete from daily_values_averaged "
-            "where person_key in (select person_key from link_persons)"
-        )
-        _insert_arrow(
-            con, "daily_values_averaged", _stream(scratch, "select * from daily_values_averaged")
-        )
-        carried = {"period": period.label, "period_end": period.end, "snapshot": snapshot.period}
-        build_table(con, "kidney_events_carried", "kidney_events_new", carried, temporary=True)
-        _insert_arrow(con, "kidney_events_new", _stream(scratch, "select * from kidney_events"))
-        build_table(con, "person_status_carried", "person_status_new", carried, temporary=True)
-        _insert_arrow(con, "person_status_new", _stream(scratch, "select * from person_status"))
+            _insert_arrow(
+                con,
+                "daily_values_averaged",
+                _stream(scratch, "select * from daily_values_averaged"),
+            )
+            carried = {
+                "period": period.label,
+                "period_end": period.end,
+                "snapshot": snapshot.period,
+            }
+            build_table(con, "kidney_events_carried", "kidney_events_new", carried, temporary=True)
+            _insert_arrow(con, "kidney_events_new", _stream(scratch, "select * from kidney_events"))
+            build_table(con, "person_status_carried", "person_status_new", carried, temporary=True)
+            _insert_arrow(con, "person_status_new", _stream(scratch, "select * from person_status"))
     finally:
         scratch.close()
     swap_period_rows(con, "kidney_events", period.label)
@@ -290,6 +310,10 @@ def carry_over(
     # and the summarise stage recomputes the equation comparison for these persons only
     return n
 
+
+#: The scratch database's share of ``execution.memory_limit`` in :func:`carry_over`; the
+#: warehouse has the rest meanwhile (it only streams rows out and appends the results).
+SCRATCH_MEMORY_SHARE = 1 / 2
 
 #: Rows per record batch of the streams between the warehouse and the scratch database.
 STREAM_BATCH_ROWS = 122_880
