@@ -7,7 +7,8 @@ computable gets a null and a reason. The rules are DuckDB SQL, ``sql/derived/kid
 their coefficients are those of :mod:`pipeline.core.equations`, read from
 ``reference.equation_coefficients`` (:func:`pipeline.core.measure_rules.equation_coefficients`),
 and the choices of ``measures`` in config/pipeline.yaml are bound parameters. The link stage
-measures the results known at a past period end with the same SQL (:func:`measure_into`). The
+measures the results known at a past period end with the same SQL (``measure_into`` of
+:mod:`pipeline.warehouse.measure_sql`). The
 same rules as polars expressions (:func:`pipeline.core.measure_rules.measure_frame`) are kept as
 a second, independent implementation: both give the same rows, to the last bit
 (tests/unit/stages/test_measure_sql.py).
@@ -15,18 +16,15 @@ a second, independent implementation: both give the same rows, to the last bit
 
 from __future__ import annotations
 
-import re
 from dataclasses import dataclass
-from typing import Any
 
 import duckdb
 import polars as pl
 
-from pipeline.core.measure_rules import MEASURE_COLUMNS, MEASURED_ANALYTES, measure_params
-from pipeline.core.pseudonymise import person_range
+from pipeline.core.measure_rules import MEASURE_COLUMNS, MEASURED_ANALYTES
 from pipeline.core.settings import Settings
 from pipeline.warehouse.connection import fetch_frame, with_frame
-from pipeline.warehouse.sql import sql_over
+from pipeline.warehouse.measure_sql import measure_into, measure_query
 from pipeline.warehouse.sql_files import checked_name
 
 
@@ -36,11 +34,6 @@ class MeasureSummary:
     egfr_computed: int
     acr_rows: int
     acr_categorised: int
-
-
-#: Results measured per pass: a large warehouse is measured in person-key ranges, so that one
-#: statement's joins and sort stay within the memory limit.
-CHUNK_RESULTS = 400_000
 
 
 def measure_stage(
@@ -71,37 +64,6 @@ def measure_stage(
     con.execute("drop table if exists kidney_measures")
     measure_into(con, settings, "lab_results", "kidney_measures")
     return _summary(con)
-
-
-def measure_into(
-    con: duckdb.DuckDBPyConnection, settings: Settings, results: str, table: str
-) -> None:
-    """Create ``table`` with the measures of every result of the relation ``results`` (columns
-    of ``lab_results``) of an analyte measured, by the SQL rules, :data:`CHUNK_RESULTS` results
-    per person-key range: the measure stage's ``kidney_measures`` from ``lab_results``, and the
-    link stage's ``measures_known`` from the results known at a past period end. Nothing is
-    gathered into Python (the polars rules of a past period end took 12.7 GB at 10M results).
-    """
-    analytes = list(MEASURED_ANALYTES)
-    total = con.execute(
-        f"select count(*) from {checked_name(results)} where list_contains($a, analyte)",
-        {"a": analytes},
-    ).fetchall()[0][0]
-    chunks = max(1, -(-total // CHUNK_RESULTS))
-    for chunk in range(chunks):
-        lower, upper = person_range(chunk, chunks)
-        sql, params = measure_query(
-            settings,
-            f"select * from {checked_name(results)} where list_contains($analytes, analyte) "
-            "and person_key >= $lower and person_key < $upper",
-            {"analytes": analytes, "lower": lower, "upper": upper},
-        )
-        verb = (
-            f"insert into {checked_name(table)}"
-            if chunk
-            else f"create table {checked_name(table)} as"
-        )
-        con.execute(f"{verb}\n{sql}", params)
 
 
 def update_touched(
@@ -188,23 +150,6 @@ def update_touched(
     )
     for table in ("measure_rows", "measures_touched", "measures_changed", changed):
         con.execute(f"drop table {checked_name(table)}")
-
-
-def measure_query(
-    settings: Settings, input_query: str, input_params: dict[str, Any], with_ages: bool = False
-) -> tuple[str, dict[str, Any]]:
-    """``sql/derived/kidney_measures.sql`` over the rows of ``input_query`` (the relation
-    ``measure_input`` of ``sql/derived/measure_ages.sql``, inlined as ``measure_ages``), and the
-    parameters it uses: ``input_params`` and the measure settings. ``with_ages``: the rows of
-    ``input_query`` carry ``age_exact`` and ``female`` already (the equation tests give exact ages).
-    """
-    inputs = {"measure_input": input_query, "measure_ages": "sql:measure_ages"}
-    if with_ages:
-        inputs = {"measure_ages": input_query}
-    sql = sql_over("kidney_measures", inputs)
-    code = re.sub(r"--[^\n]*", "", sql)
-    params = {**measure_params(settings.pipeline.measures), **input_params}
-    return sql, {k: v for k, v in params.items() if re.search(rf"\${k}\b", code)}
 
 
 def measure_rows(

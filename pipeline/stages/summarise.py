@@ -260,8 +260,9 @@ def build_comparison_ckd(con: duckdb.DuckDBPyConnection, settings: Settings, per
         # (the glycaemia of every person, at 10M results) were read for nothing
         for name in ("measures_known", "results_known"):
             con.execute(
-                f"create or replace temp view comparison_{name} as select * from {name} "
-                f"where person_key in (select person_key from {checked_name(scope.changed or '')})"
+                f"create or replace temp view {checked_name('comparison_' + name)} as "
+                f"select * from {checked_name(name)} where person_key in "
+                f"(select person_key from {checked_name(scope.changed or '')})"
             )
             sources[name] = f"comparison_{name}"
     ranges = ranges_for(con.execute("select count(*) from equation_daily_values").fetchall()[0][0])
@@ -275,7 +276,7 @@ def build_comparison_ckd(con: duckdb.DuckDBPyConnection, settings: Settings, per
     fresh = pl.DataFrame({"person_key": keys}, schema={"person_key": pl.String})
     con.execute("drop table equation_daily_values")
     for name in ("measures_known", "results_known"):
-        con.execute(f"drop view if exists comparison_{name}")
+        con.execute(f"drop view if exists {checked_name('comparison_' + name)}")
     con.execute("delete from equation_comparison_ckd where period = ?", [period.label])
     if carry:
         con.execute(

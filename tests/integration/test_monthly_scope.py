@@ -130,6 +130,7 @@ def test_measures_in_person_chunks_equal_one_pass(tmp_path, monkeypatch):
     # a full rebuild measures person-key ranges one at a time (pipeline.core.pseudonymise.person_range);
     # with chunks of 10 results, these 42 persons span a dozen chunks and nothing may differ
     from pipeline.stages import measure as measures
+    from pipeline.warehouse import measure_sql
     from pipeline.warehouse.connection import connect
     from tests.conftest import make_small_config
 
@@ -137,7 +138,7 @@ def test_measures_in_person_chunks_equal_one_pass(tmp_path, monkeypatch):
     inbox = write_inbox(tmp_path, FILES)
     with run_month(config, inbox, tmp_path / "out", period="2025-07") as con:
         once = snapshot(con, "2025-07")["kidney_measures"]
-    monkeypatch.setattr(measures, "CHUNK_RESULTS", 10)
+    monkeypatch.setattr(measure_sql, "CHUNK_RESULTS", 10)
     con = connect(tmp_path / "out" / "surveillance.duckdb")
     try:
         from pipeline.core.settings import load_settings

@@ -16,13 +16,13 @@ import duckdb
 from pipeline.core.periods import Period
 from pipeline.core.rule_params import event_params, trajectory_rules
 from pipeline.core.settings import Settings
-from pipeline.stages.measure import measure_into
 from pipeline.warehouse.connection import (
     drop_relation,
     memory_limit_within,
     scaled_memory_limit,
     with_frame,
 )
+from pipeline.warehouse.measure_sql import measure_into
 from pipeline.warehouse.reference import reference_tables
 from pipeline.warehouse.sql import (
     build_table,

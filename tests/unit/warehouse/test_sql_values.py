@@ -64,6 +64,10 @@ FRAGMENTS = {
         "stages/measure.py",
         "sql",
     ): "SQL of sql/derived/kidney_measures.sql with its inputs in front (sql_over)",
+    (
+        "warehouse/measure_sql.py",
+        "sql",
+    ): "SQL of sql/derived/kidney_measures.sql with its inputs in front (sql_over)",
     ("stages/measure.py", "stored"): "a constant query built just above",
     ("stages/measure.py", "differs"): "a predicate over the module's constant MEASURE_COLUMNS",
     ("stages/publish.py", "query"): "a query built just above from a checked table name",
