@@ -249,9 +249,31 @@ def add_person_keys(
         raise ValueError("the key cache was made for another key")
     pairs = frame.select("linkage_domain", "person_token").unique().drop_nulls()
     keys = cache.keys_for(pairs) if cache is not None else _hash_pairs(key, pairs)
-    return frame.join(
+    keyed = frame.join(
         keys, on=["linkage_domain", "person_token"], how="left", maintain_order="left"
     ).drop("person_token", "linkage_domain")
+    if "specimen_id" not in keyed.columns:
+        return keyed
+    # a specimen id that held the person's token has it masked by the reader; the mask is made
+    # the person's own (the start of their key), so that two persons' specimens "<token>-1" stay
+    # two specimens, not one specimen id under two persons (a specimen_conflict rejecting both)
+    own = pl.format(f"{SPECIMEN_MASK[:-1]}:{{}}]", pl.col("person_key").str.slice(0, 12)).fill_null(
+        ""
+    )
+    return keyed.with_columns(
+        pl.when(
+            pl.col("person_key").is_not_null()
+            & pl.col("specimen_id").str.contains(SPECIMEN_MASK, literal=True)
+        )
+        .then(pl.col("specimen_id").str.replace_all(SPECIMEN_MASK, own, literal=True))
+        .otherwise(pl.col("specimen_id"))
+        .alias("specimen_id")
+    )
+
+
+#: The readers' mask of a person token (pipeline/stages/ingest/rows.py), as it can stand in a
+#: specimen id.
+SPECIMEN_MASK = "[person]"
 
 
 def person_range(chunk: int, chunks: int) -> tuple[str, str]:

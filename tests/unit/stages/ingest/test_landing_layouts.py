@@ -407,3 +407,19 @@ def test_extra_columns_are_ignored_and_named_in_the_ledger(tmp_path):
         )[0]
     assert (status, accepted) == ("ingested", 1)
     assert "ignored: ward" in message
+
+
+def test_a_masked_token_in_two_persons_specimen_ids_keeps_them_two_specimens():
+    """A lab that builds specimen ids from the person's token ("<token>-1") has the token masked
+    by the reader; after keying, each person's mask carries the start of their own key, so two
+    persons' first specimens are not one specimen id under two persons (which the version rules
+    reject from both as specimen_conflict). Nothing of the token is kept (a regression: the two
+    became the same "[person]-1")."""
+    frame = pl.DataFrame({"linkage_domain": [SHARED_DOMAIN] * 3,
+                          "person_token": ["WF-tok00001", "WF-tok00002", "WF-tok00001"],
+                          "specimen_id": ["[person]-1", "[person]-1", "[person]-1"]})  # fmt: skip
+    keyed = add_person_keys(frame, KEY)
+    first, second, again = keyed["specimen_id"].to_list()
+    assert first != second and first == again  # two persons, two specimens; one person, one
+    assert first == f"[person:{keyed['person_key'][0][:12]}]-1"
+    assert "tok" not in " ".join(keyed["specimen_id"].to_list())
