@@ -1,8 +1,9 @@
 """Scale-out: the person-level work run per person-hash shard on a Dask cluster the run did not
 start (a real 2-worker ``distributed.LocalCluster``, reached through
 ``execution.scheduler_address``), with a relative ``--out`` and an incremental next month on the
-same warehouse, gives byte-identical published exports and the same person tables as local runs
-of the same two months; and a worker running other code than the run is refused by name."""
+same warehouse (only the persons whose results changed sent to the shards), gives
+byte-identical published exports and the same person tables as local runs of the same two
+months; and a worker running other code than the run is refused by name."""
 
 from __future__ import annotations
 
@@ -21,8 +22,9 @@ SAMPLES = REPO / "sample_extracts"
 MONTHS = ("2024-11", "2024-12", "2025-01", "2025-02", "2025-03", "2025-04")
 NEXT = "2025-05"
 SOURCES = ("westerfold_general_lab", "corvale_lab_chain", "fallowmere_reference_lab")
-TABLES = ("person_status", "kidney_events", "kidney_measures",
-          "published.district_ckd_prevalence", "published.district_screening_coverage",
+TABLES = ("person_status", "kidney_events", "kidney_measures", "daily_values_averaged",
+          "link_snapshots", "published.district_ckd_prevalence",
+          "published.district_screening_coverage",
           "published.district_decline_incidence")  # fmt: skip
 
 pytestmark = pytest.mark.slow
@@ -44,9 +46,7 @@ def cluster():
     """A cluster the run does not own: two worker processes, one thread each."""
     from distributed import LocalCluster
 
-    with LocalCluster(
-        n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None
-    ) as running:
+    with LocalCluster(n_workers=2, **shards.LOCAL_CLUSTER) as running:
         yield running
 
 
@@ -114,7 +114,13 @@ def test_external_cluster_relative_out_and_next_month_equal_local_runs(
     ):
         assert exports and exports == local_exports, period  # byte-identical published files
         for table, rows in local_tables.items():
+            # link_snapshots too: the same persons counted and recomputed each month
             assert tables[table] == rows, (period, table)
+    # the next month is incremental on the cluster as in process: its shards get only the
+    # persons whose results changed, the others' rows are carried over from the month before
+    snapshots = {row[0]: row for row in scaled[1][0]["link_snapshots"]}
+    *_, persons, recomputed = snapshots[NEXT]
+    assert 0 < recomputed < persons
 
 
 def test_a_worker_running_other_code_is_refused_by_name(cluster, monkeypatch):

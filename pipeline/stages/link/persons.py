@@ -8,6 +8,7 @@ and bound parameters.
 from __future__ import annotations
 
 import hashlib
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -94,6 +95,7 @@ def build_person_tables(
     as_stored: bool = False,
     snapshot: Snapshot | None = None,
     validated: ValidatedScope | None = None,
+    build_changed: ChangedPersonsBuilder | None = None,
 ) -> int:
     """From ``results_known``: the measures known at the period end, daily values, events
     and person status; returns the persons whose events were computed.
@@ -102,8 +104,9 @@ def build_person_tables(
     measures are ``kidney_measures`` as they are (not computed a second time). ``snapshot``: an
     earlier period whose person-level rows can be carried over for every person whose results
     did not change since (:func:`carry_over`; ``validated``: what the validate stage handed
-    over, see :class:`ValidatedScope`). ``sharded``: a shard's own throw-away database
-    (plain tables, no other periods to keep).
+    over, see :class:`ValidatedScope`; ``build_changed``: where the changed persons' rows are
+    computed, by default :func:`build_changed_in_scratch`). ``sharded``: a shard's own
+    throw-away database (plain tables, no other periods to keep).
     """
     params = event_params(settings, period)
     drop_relation(con, "measures_known")
@@ -116,12 +119,11 @@ def build_person_tables(
     else:
         measure_into(con, settings, "results_known", "measures_known")
     if snapshot is not None:
-        return carry_over(con, settings, period, snapshot, validated)
-    build_table(con, "daily_values_averaged", params=params)
+        return carry_over(con, settings, period, snapshot, validated, build_changed)
     if sharded:
-        build_table(con, "kidney_events", params=params)
-        build_table(con, "person_status", params=params)
+        build_from_measures(con, settings, period)
         return -1
+    build_table(con, "daily_values_averaged", params=params)
     daily = con.execute("select count(*) from daily_values_averaged").fetchall()[0][0]
     chunks = ranges_for(daily)
     replace_period_rows_by_range(
@@ -238,24 +240,69 @@ def _same_seed_as_validate(
     return other == 0
 
 
+def build_from_measures(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> None:
+    """Daily values, events and person status as plain tables of ``con``, from its
+    ``results_known`` and ``measures_known`` (a shard's or the carry-over's own database, which
+    holds no other period).
+    """
+    params = event_params(settings, period)
+    for table in CHANGED_PERSON_TABLES:
+        build_table(con, table, params=params)
+
+
+#: The person-level tables the changed persons' rows are computed for (in this order) by a
+#: :data:`ChangedPersonsBuilder`.
+CHANGED_PERSON_TABLES = ("daily_values_averaged", "kidney_events", "person_status")
+
+#: Computes the daily values, events and person status of the persons in ``link_persons`` from
+#: their rows of ``results_known`` and ``measures_known``, and appends them to the warehouse's
+#: ``daily_values_averaged``, ``kidney_events_new`` and ``person_status_new`` (in the order of
+#: ``pipeline.stages.link.stage.PERSON_TABLE_ORDER`` or any other: the tables are read sorted).
+#: :func:`build_changed_in_scratch` does it in a scratch database of this process; the link
+#: stage's bucket path sends the persons' buckets to Dask instead.
+ChangedPersonsBuilder = Callable[[duckdb.DuckDBPyConnection, Settings, Period], None]
+
+
 def carry_over(
     con: duckdb.DuckDBPyConnection,
     settings: Settings,
     period: Period,
     snapshot: Snapshot,
     validated: ValidatedScope | None = None,
+    build_changed: ChangedPersonsBuilder | None = None,
 ) -> int:
     """Build this period's person-level rows from the snapshot's, for every person whose results did
-    not change since it was built; the changed persons' rows computed from their own results in
-    a scratch database with the same SQL (daily values, events, person status). Returns the
-    changed persons, who are left in the temporary table ``link_persons``.
+    not change since it was built; the changed persons' rows computed from their own results
+    with the same SQL (daily values, events, person status) by ``build_changed`` (by default in
+    a scratch database, :func:`build_changed_in_scratch`). Returns the changed persons, who are
+    left in the temporary table ``link_persons``.
 
     Why this equals a full rebuild: daily values and events depend on a person's values only;
     of person status only the age and age band depend on the period end, and they are
     recomputed here as in ``sql/analysis/person_status.sql``.
     """
     n = changed_persons(con, period, snapshot, validated)
-    params = event_params(settings, period)
+    carried = {"period": period.label, "period_end": period.end, "snapshot": snapshot.period}
+    build_table(con, "kidney_events_carried", "kidney_events_new", carried, temporary=True)
+    build_table(con, "person_status_carried", "person_status_new", carried, temporary=True)
+    con.execute(
+        "delete from daily_values_averaged "
+        "where person_key in (select person_key from link_persons)"
+    )
+    (build_changed or build_changed_in_scratch)(con, settings, period)
+    swap_period_rows(con, "kidney_events", period.label)
+    swap_period_rows(con, "person_status", period.label)
+    # ``link_persons`` stays: the link stage's result names it (LinkSummary.changed_persons),
+    # and the summarise stage recomputes the equation comparison for these persons only
+    return n
+
+
+def build_changed_in_scratch(
+    con: duckdb.DuckDBPyConnection, settings: Settings, period: Period
+) -> None:
+    """The :data:`ChangedPersonsBuilder` of the in-process run: the changed persons' rows
+    computed in a scratch database of this process, streamed in and out of it.
+    """
     # the scratch database and the warehouse share the run's memory limit while both are open
     # (the scratch database had DuckDB's default, most of the machine: at 30M results a month's
     # link stage peaked at 4.7 GB), each spilling into the run's temporary folder beyond it
@@ -281,34 +328,15 @@ def carry_over(
                     f"select * from {checked_name(table)} semi join link_persons using (person_key)",
                 )
                 _copy_into(scratch, table, rows)
-            build_table(scratch, "daily_values_averaged", params=params)
-            build_table(scratch, "kidney_events", params=params)
-            build_table(scratch, "person_status", params=params)
-            con.execute(
-                "delete from daily_values_averaged "
-                "where person_key in (select person_key from link_persons)"
-            )
-            _insert_arrow(
-                con,
-                "daily_values_averaged",
-                _stream(scratch, "select * from daily_values_averaged"),
-            )
-            carried = {
-                "period": period.label,
-                "period_end": period.end,
-                "snapshot": snapshot.period,
-            }
-            build_table(con, "kidney_events_carried", "kidney_events_new", carried, temporary=True)
-            _insert_arrow(con, "kidney_events_new", _stream(scratch, "select * from kidney_events"))
-            build_table(con, "person_status_carried", "person_status_new", carried, temporary=True)
-            _insert_arrow(con, "person_status_new", _stream(scratch, "select * from person_status"))
+            build_from_measures(scratch, settings, period)
+            for table, target in zip(CHANGED_PERSON_TABLES, CHANGED_PERSON_TARGETS, strict=True):
+                _insert_arrow(con, target, _stream(scratch, f"select * from {checked_name(table)}"))
     finally:
         scratch.close()
-    swap_period_rows(con, "kidney_events", period.label)
-    swap_period_rows(con, "person_status", period.label)
-    # ``link_persons`` stays: the link stage's result names it (LinkSummary.changed_persons),
-    # and the summarise stage recomputes the equation comparison for these persons only
-    return n
+
+
+#: Where a :data:`ChangedPersonsBuilder` appends each of :data:`CHANGED_PERSON_TABLES`.
+CHANGED_PERSON_TARGETS = ("daily_values_averaged", "kidney_events_new", "person_status_new")
 
 
 #: The scratch database's share of ``execution.memory_limit`` in :func:`carry_over`; the

@@ -45,9 +45,15 @@ def shard_expression() -> str:
     return "(('0x' || substr(person_key, 1, 8))::ubigint % $shards)"
 
 
-def export_shard_inputs(con: duckdb.DuckDBPyConnection, work: Path, shards: int) -> list[Path]:
+def export_shard_inputs(
+    con: duckdb.DuckDBPyConnection, work: Path, shards: int, persons: str | None = None
+) -> list[Path]:
     """Write each shard's known results, and the reference tables, as Parquet under ``work``;
     return the shard folders, absolute.
+
+    ``persons``: a table of the persons to send (``person_key``), the changed persons of a month
+    whose other persons are carried over; each shard then gets their measures known at the
+    period end too (the warehouse's, not measured again).
     """
     work = work.resolve()
     shutil.rmtree(work, ignore_errors=True)
@@ -57,17 +63,25 @@ def export_shard_inputs(con: duckdb.DuckDBPyConnection, work: Path, shards: int)
             f"copy reference.{checked_name(table)} to $path (format parquet)",
             {"path": str(work / "reference" / (table + ".parquet"))},
         )
+    inputs = ("results_known",) if persons is None else SHARD_INPUTS
+    among = "" if persons is None else f"semi join {checked_name(persons)} using (person_key) "
     folders = []
     for shard in range(shards):
         folder = work / f"shard_{shard:03d}"
         folder.mkdir()
-        con.execute(
-            f"copy (select * from results_known where {shard_expression()} = $shard) "
-            "to $path (format parquet)",
-            {"shards": shards, "shard": shard, "path": str(folder / "results_known.parquet")},
-        )
+        for table in inputs:
+            con.execute(
+                f"copy (select * from {checked_name(table)} {among}"
+                f"where {shard_expression()} = $shard) to $path (format parquet)",
+                {"shards": shards, "shard": shard, "path": str(folder / f"{table}.parquet")},
+            )
         folders.append(folder)
     return folders
+
+
+#: What a shard may be given: its results known at the period end and, for the changed persons
+#: of a month (``export_shard_inputs(persons=...)``), their measures known then.
+SHARD_INPUTS = ("results_known", "measures_known")
 
 
 def run_shard(folder: str, config_dir: str, period_label: str) -> str:
@@ -76,7 +90,7 @@ def run_shard(folder: str, config_dir: str, period_label: str) -> str:
     A plain function of paths and names, so a Dask worker on another machine can run it (with
     the same project installed and the work folder on shared storage).
     """
-    from pipeline.stages.link.persons import build_person_tables
+    from pipeline.stages.link.persons import build_from_measures, build_person_tables
 
     settings = load_settings(config_dir)
     period = Period.parse(period_label)
@@ -94,11 +108,16 @@ def run_shard(folder: str, config_dir: str, period_label: str) -> str:
                 f"create table reference.{checked_name(path.stem)} as select * from read_parquet(?)",
                 [str(path)],
             )
-        con.execute(
-            "create table results_known as select * from read_parquet(?)",
-            [str(folder_path / "results_known.parquet")],
-        )
-        build_person_tables(con, settings, period, sharded=True)
+        given = [t for t in SHARD_INPUTS if (folder_path / f"{t}.parquet").is_file()]
+        for table in given:
+            con.execute(
+                f"create table {checked_name(table)} as select * from read_parquet(?)",
+                [str(folder_path / f"{table}.parquet")],
+            )
+        if "measures_known" in given:  # a month's changed persons: measured in the warehouse
+            build_from_measures(con, settings, period)
+        else:
+            build_person_tables(con, settings, period, sharded=True)
         for table in SHARD_OUTPUTS:
             con.execute(
                 f"copy (select * from {checked_name(table)}) to ? (format parquet)",
@@ -141,11 +160,24 @@ def run_shards(
         with Client(e.scheduler_address) as client:
             check_workers_code(client)
             return send(client, args, told)
-    with LocalCluster(n_workers=e.dask_workers, threads_per_worker=1, processes=True,
-                      dashboard_address=None) as cluster, Client(cluster) as client:  # fmt: skip
+    with (
+        LocalCluster(n_workers=e.dask_workers, **LOCAL_CLUSTER) as cluster,
+        Client(cluster) as client,
+    ):
         check_workers_code(client)
         return send(client, args, told)
 
+
+#: How the run starts a local cluster: worker processes of one thread each, and no dashboard.
+#: Without a dashboard the scheduler still serves HTTP (health, metrics) on port 8787 by
+#: default, and a second cluster on the machine (another run, a parallel test) then failed to
+#: start on the warning that the port is taken; a free port is asked for instead.
+LOCAL_CLUSTER: dict[str, Any] = {
+    "threads_per_worker": 1,
+    "processes": True,
+    "dashboard_address": None,
+    "scheduler_kwargs": {"dashboard_address": "127.0.0.1:0"},
+}
 
 #: What sends the shards to a Dask cluster: (client, the arguments of :func:`run_shard` per
 #: shard, told as each finishes) -> the finished folders in shard order.

@@ -1,5 +1,6 @@
 """Link stage: the person-level tables of the period (in process or in shards), with the
-incremental carry-over of unchanged persons.
+incremental carry-over of unchanged persons (in process or in shards alike: only the persons
+whose results changed are computed).
 """
 
 from __future__ import annotations
@@ -15,6 +16,9 @@ import duckdb
 from pipeline.core.periods import Period
 from pipeline.core.settings import Settings
 from pipeline.stages.link.persons import (
+    CHANGED_PERSON_TABLES,
+    CHANGED_PERSON_TARGETS,
+    ChangedPersonsBuilder,
     ValidatedScope,
     build_known_at_period_end,
     build_person_tables,
@@ -48,9 +52,9 @@ def build_person_tables_sharded(
     on_shard: Callable[[int, int], None] | None = None,
     submit: ShardMapper | None = None,
 ) -> int:
-    """The same tables through person-hash shards (executor ``shards`` or ``dask``);
-    ``on_shard(done, total)`` is told as each shard finishes; ``submit`` sends the shards to
-    Dask (:func:`pipeline.stages.link.shards.run_shards`).
+    """The same tables through person-hash shards (executor ``shards`` or ``dask``), every
+    person computed; ``on_shard(done, total)`` is told as each shard finishes; ``submit`` sends
+    the shards to Dask (:func:`pipeline.stages.link.shards.run_shards`).
     """
     from pipeline.stages.link.shards import export_shard_inputs, run_shards, shard_outputs
 
@@ -59,9 +63,7 @@ def build_person_tables_sharded(
     for table, order in PERSON_TABLE_ORDER.items():
         # DuckDB reads the shards' files and sorts within its memory limit: gathered into one
         # polars frame, the driver's memory grew with the warehouse (9.5 GB at 10M results)
-        rows = "select * from read_parquet($files, union_by_name = true) order by " + ", ".join(
-            f"{checked_name(c)} nulls first" for c in order
-        )
+        rows = _sorted_rows(order)
         files = {"files": shard_outputs(done, table)}
         if table in ("kidney_events", "person_status"):
             con.execute(
@@ -73,6 +75,40 @@ def build_person_tables_sharded(
             con.execute(f"create table {checked_name(table)} as {rows}", files)
     shutil.rmtree(work, ignore_errors=True)
     return len(done)
+
+
+def changed_in_shards(
+    work: Path,
+    on_shard: Callable[[int, int], None] | None = None,
+    submit: ShardMapper | None = None,
+) -> ChangedPersonsBuilder:
+    """The carry-over's :data:`~pipeline.stages.link.persons.ChangedPersonsBuilder` on the
+    bucket path: only the changed persons (``link_persons``) go to the shards, with their
+    results and measures known at the period end; their rows come back as the shards' files.
+    """
+
+    def build(con: duckdb.DuckDBPyConnection, settings: Settings, period: Period) -> None:
+        from pipeline.stages.link.shards import export_shard_inputs, run_shards, shard_outputs
+
+        shards = settings.pipeline.execution.shards
+        folders = export_shard_inputs(con, work, shards, persons="link_persons")
+        done = run_shards(folders, settings, period, on_shard, submit)
+        for table, target in zip(CHANGED_PERSON_TABLES, CHANGED_PERSON_TARGETS, strict=True):
+            con.execute(
+                f"insert into {checked_name(target)} by name "
+                + _sorted_rows(PERSON_TABLE_ORDER[table]),
+                {"files": shard_outputs(done, table)},
+            )
+        shutil.rmtree(work, ignore_errors=True)
+
+    return build
+
+
+def _sorted_rows(order: list[str]) -> str:
+    """The rows of the shards' files ``$files``, in the row order of one run."""
+    return "select * from read_parquet($files, union_by_name = true) order by " + ", ".join(
+        f"{checked_name(c)} nulls first" for c in order
+    )
 
 
 def link_stage(
@@ -92,12 +128,14 @@ def link_stage(
     as_stored = build_known_at_period_end(con, period)
     fingerprint = logic_fingerprint(settings)
     executor_local = settings.pipeline.execution.executor == "local" or work is None
-    snapshot = None
-    if executor_local:
-        snapshot = usable_snapshot(con, period, fingerprint) if as_stored else None
+    snapshot = usable_snapshot(con, period, fingerprint) if as_stored else None
+    if executor_local or snapshot is not None:
+        # a month with a usable snapshot sends only its changed persons to the shards
+        changed = None if executor_local else changed_in_shards(work, on_shard, submit_shards)
         recomputed = build_person_tables(
-            con, settings, period, as_stored=as_stored, snapshot=snapshot, validated=validated
-        )
+            con, settings, period, as_stored=as_stored, snapshot=snapshot, validated=validated,
+            build_changed=changed,
+        )  # fmt: skip
     else:
         build_person_tables_sharded(con, settings, period, work, on_shard, submit_shards)
         recomputed = -1
