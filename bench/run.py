@@ -24,7 +24,9 @@ peak RSS from the kernel's accounting of that child, os.wait4):
       processes (``execution.executor: dask``): wall beside (a)'s, the driver's peak RSS, and
       whether every published file is byte-identical to (a)'s;
   (c) incremental: one more month of about 1 % new results added to the inbox of (a), the next
-      period run into the same out dir; ``fraction`` = its wall / the full run's wall.
+      period run into the same out dir; ``fraction`` = its wall / the full run's wall; after
+      (f), the same month on (f)'s warehouse too (the month on Dask: wall beside the local
+      month's, whether its published files are byte-identical to the local month's).
 
 Writes ``results.json`` (sizes already there and not re-measured are kept) and the tables of
 ``results.md`` (between the ``bench:begin`` / ``bench:end`` markers; text around them is kept).
@@ -484,8 +486,7 @@ def bench_size(rows: int, args: argparse.Namespace, with_prefect: bool) -> dict:
             "exports_identical": bool(local_exports)
             and export_hashes(work / "dask" / period) == local_exports,
         }
-        if not args.keep:
-            shutil.rmtree(work / "dask", ignore_errors=True)
+        # the Dask warehouse is kept for the incremental month (c), run on it too
 
     if not args.skip_incremental:
         extra_files = sorted((data / "extra" / SOURCE).glob("*.csv"))
@@ -507,6 +508,23 @@ def bench_size(rows: int, args: argparse.Namespace, with_prefect: bool) -> dict:
             "stages": {k: v["seconds"] for k, v in incr["stages"].items()},
             "trace": incr.get("trace"),
         }
+        if "scale_out" in result:
+            print(f"[bench] {rows:,} rows: (c) the same month on the Dask run's warehouse",
+                  flush=True)  # fmt: skip
+            month = pipeline_child(extra_period, work / "config_dask", inbox, work / "dask",
+                                   logs / "dask_incremental", rss_cap_gb=cap)  # fmt: skip
+            local_month = export_hashes(work / "full" / extra_period)
+            result["scale_out"]["month"] = {
+                "wall_seconds": month["wall_seconds"],
+                "local_wall_seconds": incr["wall_seconds"],
+                "driver_peak_rss_mb": max(s["peak_rss_mb"] for s in month["stages"].values()),
+                "stages": {k: v["seconds"] for k, v in month["stages"].items()},
+                "exports": len(local_month),
+                "exports_identical": bool(local_month)
+                and export_hashes(work / "dask" / extra_period) == local_month,
+            }
+    if not args.keep:
+        shutil.rmtree(work / "dask", ignore_errors=True)
 
     if args.profile:
         print(f"[bench] {rows:,} rows: cProfile of the plain run (not timed)", flush=True)
@@ -671,6 +689,12 @@ def render_tables(results: dict) -> str:
     row("on Dask: driver peak RSS, MB", lambda r: _fmt_mb(r["scale_out"]["driver_peak_rss_mb"]))
     row("on Dask: published files byte-identical to local", lambda r:
         f"{'yes' if r['scale_out']['exports_identical'] else '**no**'} ({r['scale_out']['exports']})")  # fmt: skip
+    row("on Dask: the incremental month, wall, s", lambda r:
+        f"{_fmt_s(r['scale_out']['month']['wall_seconds'])} "
+        f"(local {_fmt_s(r['scale_out']['month']['local_wall_seconds'])})")  # fmt: skip
+    row("on Dask: the month's published files byte-identical to local", lambda r:
+        f"{'yes' if r['scale_out']['month']['exports_identical'] else '**no**'} "
+        f"({r['scale_out']['month']['exports']})")  # fmt: skip
 
     # results.json keeps keys sorted: put the stages back in the order they ran
     stage_names = list(next((r["pipeline"]["stage_order"] for r in reversed(runs)

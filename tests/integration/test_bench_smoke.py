@@ -90,6 +90,10 @@ def test_pipeline_floor_and_incremental_figures(bench_results: tuple[dict, Path]
     scaled = run["scale_out"]
     assert scaled["exports"] > 0 and scaled["exports_identical"] is True
     assert _positive(scaled["wall_seconds"]) and _positive(scaled["driver_peak_rss_mb"])
+    # ... and the incremental month on the Dask run's warehouse: the local month's files
+    month = scaled["month"]
+    assert month["exports"] > 0 and month["exports_identical"] is True
+    assert _positive(month["wall_seconds"]) and _positive(month["driver_peak_rss_mb"])
     # skipped parts are absent, not zero
     assert "great_expectations" not in run and "prefect" not in run
 
