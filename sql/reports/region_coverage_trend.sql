@@ -21,6 +21,11 @@ known_tests as (
                         and (acr_mg_g is not null or aer_mg_24h is not null or acr_comparator is not null),
                         false) as is_acr
         from measures_known
+        -- only what falls in some month's window (the earliest window starts $window_months
+        -- months before the earliest month end): the same rows, read once instead of scanning
+        -- every year of the warehouse in the range joins below
+        where collected_date > (select min(as_of) from month_ends)
+                               - to_months(cast($window_months as integer))
     )
     where is_egfr or is_acr
 ),
@@ -45,7 +50,11 @@ per_month as (
 active as (
     select distinct m.as_of, r.person_key
     from month_ends as m
-    join results_known as r
+    join (
+        select person_key, collected_date, reported_date from results_known
+        where collected_date > (select min(as_of) from month_ends)
+                               - to_months(cast($window_months as integer))
+    ) as r
         on r.collected_date > m.as_of - to_months(cast($window_months as integer))
        and r.collected_date <= m.as_of
        and r.reported_date <= m.as_of
