@@ -3,7 +3,8 @@ start (a real 2-worker ``distributed.LocalCluster``, reached through
 ``execution.scheduler_address``), with a relative ``--out`` and an incremental next month on the
 same warehouse (only the persons whose results changed sent to the shards), gives
 byte-identical published exports and the same person tables as local runs of the same two
-months; and a worker running other code than the run is refused by name."""
+months; so does the bucket path in this process (``executor: shards``); and a worker running
+other code than the run is refused by name."""
 
 from __future__ import annotations
 
@@ -52,11 +53,16 @@ def cluster():
 
 def dask_config(target: Path, address: str) -> Path:
     """The shipped config, with the person-level work sent to the scheduler at ``address``."""
+    return edited_config(target, (("  executor: local\n", "  executor: dask\n"),
+                                  ("  scheduler_address: null\n", f'  scheduler_address: "{address}"\n')))  # fmt: skip
+
+
+def edited_config(target: Path, edits: tuple[tuple[str, str], ...]) -> Path:
+    """A copy of the shipped config with ``edits`` (old, new) made to its pipeline.yaml."""
     shutil.copytree(REPO / "config", target)
     pipeline_yaml = target / "pipeline.yaml"
     text = pipeline_yaml.read_text(encoding="utf-8")
-    for old, new in (("  executor: local\n", "  executor: dask\n"),
-                     ("  scheduler_address: null\n", f'  scheduler_address: "{address}"\n')):  # fmt: skip
+    for old, new in edits:
         assert old in text, old
         text = text.replace(old, new)
     pipeline_yaml.write_text(text, encoding="utf-8")
@@ -121,6 +127,23 @@ def test_external_cluster_relative_out_and_next_month_equal_local_runs(
     snapshots = {row[0]: row for row in scaled[1][0]["link_snapshots"]}
     *_, persons, recomputed = snapshots[NEXT]
     assert 0 < recomputed < persons
+
+
+def test_buckets_in_process_give_the_local_runs_month_after_month(local, tmp_path):
+    """``executor: shards`` (the bucket path in this process, no cluster): the same tables and
+    files as the local runs, and the next month incremental as locally."""
+    config = edited_config(tmp_path / "shards_config",
+                           (("  executor: local\n", "  executor: shards\n"),))  # fmt: skip
+    sharded = two_months(config, tmp_path / "inbox", tmp_path / "out")
+    for (tables, exports), (local_tables, local_exports), period in zip(
+        sharded, local, (MONTHS[-1], NEXT), strict=True
+    ):
+        assert exports and exports == local_exports, period
+        for table, rows in local_tables.items():
+            # link_snapshots too: the month's persons recomputed are the local month's
+            assert tables[table] == rows, (period, table)
+    # the buckets' files are removed once their rows are in the warehouse
+    assert not list((tmp_path / "out" / ".work").rglob("*.parquet"))
 
 
 def test_a_worker_running_other_code_is_refused_by_name(cluster, monkeypatch):
