@@ -45,17 +45,20 @@ def sql_over(name: str, inputs: dict[str, str]) -> str:
     file to inline, given as ``"sql:<file>"``). A CTE shadows a table of the same name, so the
     file runs unchanged over, say, one frame instead of a whole table.
 
-    The file must be one query that starts (after its comments) with ``with``.
+    The file must be one query (starting, after its comments, with ``with`` or ``select``).
     """
     body = re.sub(r"\A(\s*--[^\n]*\n)*\s*", "", read_sql(name))
-    if not body[:5].lower() == "with ":
-        raise ValueError(f"sql/*/{name}.sql does not start with a WITH clause")
+    starts_with = body[:5].lower() == "with "
+    if not starts_with and body[:7].lower() != "select ":
+        raise ValueError(f"sql/*/{name}.sql does not start with a WITH clause or a SELECT")
     parts = []
     for relation, query in inputs.items():
         if not _NAME.match(relation):
             raise ValueError(f"not a plain relation name: {relation!r}")
         text = read_sql(query[4:]) if query.startswith("sql:") else query
         parts.append(f"{relation} as (\n{text}\n)")
+    if not starts_with:  # the common table expressions in front of the whole query
+        return "with " + ",\n".join(parts) + "\n" + body
     return "with " + ",\n".join(parts) + ",\n" + body[5:]
 
 

@@ -54,7 +54,7 @@ in_scope as not materialized (
     -- the values each rule looks at (decline rules only look after the baseline window);
     -- not materialized: joined again below rather than written out (rules x daily values rows)
     select r.rule_id, r.event_type, r.threshold, r.min_span_days,
-           d.person_key, d.day, d.value, b.baseline_egfr,
+           d.person_key, d.day, d.value, d.equation_family, b.baseline_egfr,
            -- rules against the baseline run within one equation family
            case when r.after_baseline then d.equation_family else '' end as segment,
            case r.comparison
@@ -81,8 +81,12 @@ candidates as (
 ),
 islands as (
     select s.*,
+           -- a day can hold a value of each equation family (labs sending other birth years for
+           -- one person): its non-qualifying value comes first, so such a day ends a run, and
+           -- the order is the same whatever order the rows arrive in
            sum(case when s.qualifies then 0 else 1 end) over (
-               partition by s.rule_id, s.person_key, s.segment order by s.day rows unbounded preceding
+               partition by s.rule_id, s.person_key, s.segment
+               order by s.day, s.qualifies, s.equation_family rows unbounded preceding
            ) as island,
            max(s.day) over (partition by s.rule_id, s.person_key) as last_day
     from in_scope as s
@@ -90,12 +94,15 @@ islands as (
 ),
 runs as (
     select rule_id, event_type, threshold, min_span_days, person_key, segment, island,
-           any_value(baseline_egfr) as baseline_egfr,
+           -- the baseline of the run's first value (a run of a rule not judged against the
+           -- baseline can hold both families; on a day with both, the adult one)
+           first(baseline_egfr order by (baseline_egfr is null), day, equation_family)
+               as baseline_egfr,
            min(day) as run_start,
            max(day) as run_end,
            any_value(last_day) as last_day,
            count(*) as n_values,
-           list(round(value, 1) order by day) as run_values,
+           list(round(value, 1) order by day, equation_family) as run_values,
            min(day) filter (where day - min_day >= min_span_days) as confirmation_date
     from (select *, min(day) over (partition by rule_id, person_key, segment, island) as min_day
           from islands where qualifies)
@@ -105,7 +112,7 @@ ranked as (
     select *,
            row_number() over (
                partition by rule_id, person_key
-               order by (confirmation_date is null), run_start
+               order by (confirmation_date is null), run_start, segment, island
            ) as pick
     from runs
     where confirmation_date is not null or run_end = last_day
@@ -151,7 +158,7 @@ rapid as (
     where s.n_values >= $rapid_min_values
       and s.last_day - s.first_day >= $rapid_min_span_days
       and s.slope < -cast($rapid_slope as double)
-    qualify row_number() over (partition by s.person_key order by s.first_day) = 1
+    qualify row_number() over (partition by s.person_key order by s.first_day, s.equation_family) = 1
 ),
 abnormal_glycaemia as (
     -- ADA Standards of Care thresholds, compared in the unit the lab reported; a censored value
@@ -190,7 +197,9 @@ new_onset as (
            cast(null as double) as threshold, 'confirmed' as event_status,
            cast(null as double) as baseline_egfr, min(a.day) as event_date,
            min(a.day) as confirmation_date, min(a.day) as last_qualifying_date, 1 as n_values,
-           [round(arg_min(coalesce(a.acr_mg_g, a.aer_mg_24h), a.day), 1)] as run_values,
+           -- the first day's value (of two on that day, the lower: the same whatever the order)
+           [round(arg_min(coalesce(a.acr_mg_g, a.aer_mg_24h),
+                          (a.day, coalesce(a.acr_mg_g, a.aer_mg_24h))), 1)] as run_values,
            cast(null as double) as slope_ml_min_per_year,
            cast(min(a.day) - any_value(x.diabetes_date) as integer) as days_since_diabetes
     from diabetes as x

@@ -20,7 +20,9 @@ demographics as (
 ),
 latest_egfr as (
     select person_key,
-           arg_max(value, day) as egfr,
+           -- the latest day's eGFR; of a day with one in each equation family (labs sending
+           -- other birth years for one person), the adult one, whatever order the rows come in
+           arg_max(value, (day, equation_family = 'adult')) as egfr,
            max(day) as last_egfr_date
     from daily_values_averaged
     where measure = 'egfr'

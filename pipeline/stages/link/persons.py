@@ -19,18 +19,16 @@ from pipeline.core.rule_params import event_params, trajectory_rules
 from pipeline.core.settings import Settings
 from pipeline.warehouse.connection import (
     drop_relation,
-    memory_limit_within,
-    scaled_memory_limit,
     with_frame,
 )
 from pipeline.warehouse.measure_sql import measure_into
-from pipeline.warehouse.reference import reference_tables
 from pipeline.warehouse.sql import (
     build_table,
     ranges_for,
     replace_period_rows_by_range,
     sql_over,
     swap_period_rows,
+    used_params,
 )
 from pipeline.warehouse.sql_files import checked_name, read_sql, sql_path
 from pipeline.warehouse.versions import close_over_partitions
@@ -105,7 +103,7 @@ def build_person_tables(
     earlier period whose person-level rows can be carried over for every person whose results
     did not change since (:func:`carry_over`; ``validated``: what the validate stage handed
     over, see :class:`ValidatedScope`; ``build_changed``: where the changed persons' rows are
-    computed, by default :func:`build_changed_in_scratch`). ``sharded``: a shard's own
+    computed, by default :func:`build_changed_in_warehouse`). ``sharded``: a shard's own
     throw-away database (plain tables, no other periods to keep).
     """
     params = event_params(settings, period)
@@ -258,7 +256,7 @@ CHANGED_PERSON_TABLES = ("daily_values_averaged", "kidney_events", "person_statu
 #: their rows of ``results_known`` and ``measures_known``, and appends them to the warehouse's
 #: ``daily_values_averaged``, ``kidney_events_new`` and ``person_status_new`` (in the order of
 #: ``pipeline.stages.link.stage.PERSON_TABLE_ORDER`` or any other: the tables are read sorted).
-#: :func:`build_changed_in_scratch` does it in a scratch database of this process; the link
+#: :func:`build_changed_in_warehouse` does it in the warehouse's own connection; the link
 #: stage's bucket path sends the persons' buckets to Dask instead.
 ChangedPersonsBuilder = Callable[[duckdb.DuckDBPyConnection, Settings, Period], None]
 
@@ -274,8 +272,8 @@ def carry_over(
     """Build this period's person-level rows from the snapshot's, for every person whose results did
     not change since it was built; the changed persons' rows computed from their own results
     with the same SQL (daily values, events, person status) by ``build_changed`` (by default in
-    a scratch database, :func:`build_changed_in_scratch`). Returns the changed persons, who are
-    left in the temporary table ``link_persons``.
+    the warehouse's connection, :func:`build_changed_in_warehouse`). Returns the changed
+    persons, who are left in the temporary table ``link_persons``.
 
     Why this equals a full rebuild: daily values and events depend on a person's values only;
     of person status only the age and age band depend on the period end, and they are
@@ -289,7 +287,7 @@ def carry_over(
         "delete from daily_values_averaged "
         "where person_key in (select person_key from link_persons)"
     )
-    (build_changed or build_changed_in_scratch)(con, settings, period)
+    (build_changed or build_changed_in_warehouse)(con, settings, period)
     swap_period_rows(con, "kidney_events", period.label)
     swap_period_rows(con, "person_status", period.label)
     # ``link_persons`` stays: the link stage's result names it (LinkSummary.changed_persons),
@@ -297,67 +295,37 @@ def carry_over(
     return n
 
 
-def build_changed_in_scratch(
+def build_changed_in_warehouse(
     con: duckdb.DuckDBPyConnection, settings: Settings, period: Period
 ) -> None:
     """The :data:`ChangedPersonsBuilder` of the in-process run: the changed persons' rows
-    computed in a scratch database of this process, streamed in and out of it.
+    computed in the warehouse's own connection. Their results and measures are taken once into
+    temporary tables, and each SQL file reads those (and the changed persons' rows built before
+    it) through common table expressions of the names it reads (:func:`sql_over`), so it runs
+    unchanged; nothing is copied between databases.
     """
-    # the scratch database and the warehouse share the run's memory limit while both are open
-    # (the scratch database had DuckDB's default, most of the machine: at 30M results a month's
-    # link stage peaked at 4.7 GB), each spilling into the run's temporary folder beyond it
-    limit = settings.pipeline.execution.memory_limit
-    temp = con.execute("select current_setting('temp_directory')").fetchall()[0][0]
-    config = {"memory_limit": scaled_memory_limit(limit, SCRATCH_MEMORY_SHARE)}
-    if temp:
-        config["temp_directory"] = str(Path(temp) / "carry_over")
-    scratch = duckdb.connect(":memory:", config=config)
-    try:
-        with memory_limit_within(con, limit, 1 - SCRATCH_MEMORY_SHARE):
-            for schema in ("staging", "reference"):
-                scratch.execute(f"create schema {checked_name(schema)}")
-            tables = [f"reference.{t}" for t in reference_tables(con)]
-            # rows pass between the two databases as streams of record batches, never as one
-            # Arrow table: at 10M results a month's changed persons held whole took the run's peak
-            # to 3.2 GB (2.5 GB streamed)
-            for table in tables:
-                _copy_into(scratch, table, _stream(con, f"select * from {checked_name(table)}"))
-            for table in ("results_known", "measures_known"):
-                rows = _stream(
-                    con,
-                    f"select * from {checked_name(table)} semi join link_persons using (person_key)",
-                )
-                _copy_into(scratch, table, rows)
-            build_from_measures(scratch, settings, period)
-            for table, target in zip(CHANGED_PERSON_TABLES, CHANGED_PERSON_TARGETS, strict=True):
-                _insert_arrow(con, target, _stream(scratch, f"select * from {checked_name(table)}"))
-    finally:
-        scratch.close()
+    params = event_params(settings, period)
+    shadow = {}
+    for table in ("results_known", "measures_known"):
+        shadow[table] = f"select * from {checked_name('changed_' + table)}"
+        con.execute(
+            f"create or replace temp table {checked_name('changed_' + table)} as "
+            f"select * from {checked_name(table)} semi join link_persons using (person_key)"
+        )
+    for table, target in zip(CHANGED_PERSON_TABLES, CHANGED_PERSON_TARGETS, strict=True):
+        query = sql_over(table, shadow)
+        changed = checked_name("changed_" + table)
+        con.execute(
+            f"create or replace temp table {changed} as\n{query}", used_params(query, params)
+        )
+        con.execute(f"insert into {checked_name(target)} by name select * from {changed}")
+        shadow[table] = f"select * from {changed}"
+    for table in ("results_known", "measures_known", *CHANGED_PERSON_TABLES):
+        con.execute(f"drop table {checked_name('changed_' + table)}")
 
 
 #: Where a :data:`ChangedPersonsBuilder` appends each of :data:`CHANGED_PERSON_TABLES`.
 CHANGED_PERSON_TARGETS = ("daily_values_averaged", "kidney_events_new", "person_status_new")
-
-
-#: The scratch database's share of ``execution.memory_limit`` in :func:`carry_over`; the
-#: warehouse has the rest meanwhile (it only streams rows out and appends the results).
-SCRATCH_MEMORY_SHARE = 1 / 2
-
-#: Rows per record batch of the streams between the warehouse and the scratch database.
-STREAM_BATCH_ROWS = 122_880
-
-
-def _stream(con: duckdb.DuckDBPyConnection, query: str) -> object:
-    """The rows of ``query`` as a stream of Arrow record batches (a ``RecordBatchReader``)."""
-    return con.sql(query).to_arrow_reader(STREAM_BATCH_ROWS)
-
-
-def _insert_arrow(con: duckdb.DuckDBPyConnection, table: str, rows: object) -> None:
-    with_frame(con, rows, f"insert into {checked_name(table)} by name select * from _frame")
-
-
-def _copy_into(con: duckdb.DuckDBPyConnection, table: str, rows: object) -> None:
-    with_frame(con, rows, f"create table {checked_name(table)} as select * from _frame")
 
 
 def record_snapshot(

@@ -83,6 +83,21 @@ def test_sql_over_puts_inputs_in_front_of_a_sql_file():
         sql_over("results_validated", {"x; drop": "select 1"})
 
 
+def test_sql_over_a_file_that_starts_with_select_shadows_its_tables_too():
+    """A file that is one SELECT (sql/derived/daily_values_averaged.sql) gets the inputs as a
+    WITH clause in front of it, and runs over them instead of the tables they name."""
+    from pipeline.warehouse.sql import sql_over
+
+    text = sql_over("daily_values_averaged", {"measures_known": "select * from changed_rows"})
+    assert text.startswith("with measures_known as (\nselect * from changed_rows\n)\nselect ")
+    con = duckdb.connect()
+    con.execute("create table measures_known as select 1 as x")  # would be read without the CTE
+    con.execute("create table t as select 2 as x")
+    assert con.execute(
+        "with measures_known as (select * from t) select x from measures_known"
+    ).fetchall() == [(2,)]  # the rule the runner relies on (SQL: a CTE name shadows a table)
+
+
 def test_a_stage_can_run_under_a_share_of_the_memory_limit_and_gives_it_back():
     """memory_limit_within: DuckDB's limit is the share while the block runs (the ingest stage's
     two thirds) and the configured limit again after it, also when the block fails. DuckDB

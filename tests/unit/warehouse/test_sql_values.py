@@ -44,6 +44,11 @@ FRAGMENTS = {
     ): "a constant predicate over the checked name of the judged files",
     ("stages/validate.py", "changed"): "the constant name changed_versions",
     ("stages/link/stage.py", "rows"): "a query built just above from checked column names",
+    ("stages/link/shards.py", "among"): "a semi join on a checked table name, or nothing",
+    (
+        "stages/link/persons.py",
+        "query",
+    ): "SQL text of a file in sql/ with checked names in front (sql_over)",
     (
         "warehouse/sql.py",
         "query",
