@@ -508,7 +508,8 @@ def test_a_day_with_both_equation_families_gives_the_same_events_in_any_row_orde
     family. A rule not judged against the baseline (CKD by eGFR below 60) then runs over both,
     and what it reports must not depend on the order the rows arrive in (common practice: a
     rerun gives the same tables): the run is ended by a day's non-qualifying value, and the
-    event carries the baseline of the run's first value, the adult one on a day with both."""
+    event carries the baseline of the run's first value, the adult one on a day with both; the
+    person's latest eGFR is the adult one too."""
     adult = [(0, 95.0), (30, 55.0), (60, 50.0), (100, 52.0), (130, 51.0), (200, 50.0)]
     child = [(0, 110.0), (30, 58.0), (60, 65.0), (100, 54.0), (130, 53.0), (200, 52.0)]
     rows_in = [("adult", d, v) for d, v in adult] + [("child", d, v) for d, v in child]
@@ -519,10 +520,30 @@ def test_a_day_with_both_equation_families_gives_the_same_events_in_any_row_orde
         for family, offset, value in order:
             insert(con, "p", [(offset, value)], age=18 if family == "adult" else 17)
         events = build(con)
-        seen.append({k: {c: v for c, v in e.items()} for k, e in events.items()})
+        # person_status's demographics come from results_known: one creatinine row
+        con.execute(
+            "create or replace table results_known as select 'p' as person_key, "
+            "?::date as collected_date, ?::date as reported_date, 'creatinine' as analyte, "
+            "null::varchar as comparator, 'mg/dL' as reported_unit, 1.4 as reported_value, "
+            "false as is_fasting, 'F' as sex, 2007::bigint as birth_year, "
+            "'WF01' as district_code, 'lab' as source_id, 1::bigint as file_id, "
+            "1::bigint as line_no",
+            [day(200), day(201)],
+        )
+        con.execute(  # source lines numbered by content: the same in every order
+            "create or replace table measures_known as select *, 'lab' as source_id, "
+            "1::bigint as file_id, row_number() over (order by collected_date, age_years) "
+            "as line_no from measures_known"
+        )
+        params = {**event_params(settings, Period.parse(PERIOD)), "period_end": PERIOD_END}
+        build_table(con, "person_status", params=params)
+        person = con.sql("select * from person_status").pl().row(0, named=True)
+        seen.append(({k: dict(e) for k, e in events.items()}, person))
         con.close()
     assert all(s == seen[0] for s in seen[1:])
-    ckd = seen[0][("p", "ckd_egfr")]
+    # the latest day (200) has adult 50 and child 52: the latest eGFR is the adult one
+    assert seen[0][1]["egfr"] == 50.0
+    ckd = seen[0][0][("p", "ckd_egfr")]
     # day 60's child value (65) is not below 60: the run that counts starts on day 60 with the
     # adult 50 and runs to day 200 (140 days >= 90: confirmed), its first value an adult one
     assert ckd["event_status"] == "confirmed" and ckd["event_date"] == day(60)
