@@ -7,7 +7,6 @@ at a past period end.
 
 from __future__ import annotations
 
-import re
 from typing import Any
 
 import duckdb
@@ -15,7 +14,7 @@ import duckdb
 from pipeline.core.measure_rules import MEASURED_ANALYTES, measure_params
 from pipeline.core.pseudonymise import person_range
 from pipeline.core.settings import Settings
-from pipeline.warehouse.sql import sql_over
+from pipeline.warehouse.sql import sql_over, used_params
 from pipeline.warehouse.sql_files import checked_name
 
 #: Results measured per pass: a large warehouse is measured in person-key ranges, so that one
@@ -66,6 +65,4 @@ def measure_query(
     if with_ages:
         inputs = {"measure_ages": input_query}
     sql = sql_over("kidney_measures", inputs)
-    code = re.sub(r"--[^\n]*", "", sql)
-    params = {**measure_params(settings.pipeline.measures), **input_params}
-    return sql, {k: v for k, v in params.items() if re.search(rf"\${k}\b", code)}
+    return sql, used_params(sql, {**measure_params(settings.pipeline.measures), **input_params})

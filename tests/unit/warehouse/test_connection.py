@@ -95,7 +95,7 @@ def test_sql_over_a_file_that_starts_with_select_shadows_its_tables_too():
     con.execute("create table t as select 2 as x")
     assert con.execute(
         "with measures_known as (select * from t) select x from measures_known"
-    ).fetchall() == [(2,)]  # the rule the runner relies on (SQL: a CTE name shadows a table)
+    ).fetchall() == [(2,)]  # a CTE's name hides a table's (SQL scoping; common practice)
 
 
 def test_a_stage_can_run_under_a_share_of_the_memory_limit_and_gives_it_back():
