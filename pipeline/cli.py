@@ -201,21 +201,8 @@ def _print_summary(summary: dict, out: Path) -> None:
         )
     _print_period_checks(summary)
     console.print(f"  persons with results up to {summary['period']}: {summary['persons']:,}")
-    h = summary.get("headline", {})
-    if h.get("persons_tested_12m") is not None:
-        share = h.get("ckd_share_of_tested")
-        console.print(
-            f"  tested in the last 12 months: {h['persons_tested_12m']:,}; confirmed CKD: "
-            f"{h.get('persons_confirmed_ckd') or 0:,}"
-            + (f" ({share:.1%} of tested)" if share is not None else "")
-        )
-    if h.get("persons_with_diabetes") is not None:
-        share = h.get("diabetes_share_with_both")
-        console.print(
-            f"  people with diabetes: {h['persons_with_diabetes']:,}; with both eGFR and ACR in 12 months: "
-            f"{h.get('diabetes_with_egfr_and_acr') or 0:,}"
-            + (f" ({share:.1%})" if share is not None else "")
-        )
+    for line in headline_lines(summary.get("headline", {})):
+        console.print(line)
     if summary.get("indicators_lack"):
         console.print(
             "  [yellow]these indicators lack[/] "
@@ -245,6 +232,29 @@ def _print_summary(summary: dict, out: Path) -> None:
     console.print(f"  exports:   {out / summary['period']}/")
     if summary.get("demo_key"):
         console.print("  [dim]made with the public DEMO pseudonymisation key: not for real data[/]")
+
+
+def headline_lines(h: dict) -> list[str]:
+    """The run's headline as printed, from the published (suppressed) tables: a cell the
+    disclosure step blanked reads "suppressed", never 0 (it printed 0 for a withheld count).
+    """
+
+    def count(key: str) -> str:
+        return "suppressed" if h.get(key) is None else f"{h[key]:,}"
+
+    def share(key: str, words: str) -> str:
+        return f" ({h[key]:.1%}{words})" if h.get(key) is not None else ""
+
+    lines = []
+    if "persons_tested_12m" in h:
+        lines.append(f"  tested in the last 12 months: {count('persons_tested_12m')}; confirmed "
+                     f"CKD: {count('persons_confirmed_ckd')}"
+                     + share("ckd_share_of_tested", " of tested"))  # fmt: skip
+    if "persons_with_diabetes" in h:
+        lines.append(f"  people with diabetes: {count('persons_with_diabetes')}; with both eGFR "
+                     f"and ACR in 12 months: {count('diabetes_with_egfr_and_acr')}"
+                     + share("diabetes_share_with_both", ""))  # fmt: skip
+    return lines
 
 
 def _print_period_checks(summary: dict) -> None:

@@ -170,3 +170,20 @@ def test_progress_takes_one_of_its_modes():
                               "--config", str(REPO / "config")])  # fmt: skip
     assert bad.exit_code == 2
     assert "fancy" in bad.output
+
+
+def test_a_suppressed_headline_count_reads_suppressed_not_zero():
+    """The published all-district prevalence row with its CKD count blanked by the disclosure
+    step (null): the run's printed headline must not show 0 persons with CKD (common practice:
+    a suppressed cell is shown as suppressed, never as a number)."""
+    from pipeline.cli import headline_lines
+
+    lines = headline_lines({"persons_tested_12m": 3432, "persons_confirmed_ckd": None,
+                            "ckd_share_of_tested": None, "persons_with_diabetes": 323,
+                            "diabetes_with_egfr_and_acr": 143,
+                            "diabetes_share_with_both": 0.4427})  # fmt: skip
+    assert lines == [
+        "  tested in the last 12 months: 3,432; confirmed CKD: suppressed",
+        "  people with diabetes: 323; with both eGFR and ACR in 12 months: 143 (44.3%)",
+    ]
+    assert headline_lines({}) == []  # no published prevalence row: nothing printed
