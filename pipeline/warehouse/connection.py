@@ -83,6 +83,7 @@ def ensure_schema(con: duckdb.DuckDBPyConnection) -> None:
     # columns added after a table was first written (warehouses made by an earlier version)
     con.execute("alter table ingest_files add column if not exists extract_month varchar")
     con.execute("alter table ingest_files add column if not exists config_sha256 varchar")
+    con.execute("alter table ingest_files add column if not exists file_stat varchar")
     con.execute("alter table runs add column if not exists revision integer")
     con.execute("alter table runs add column if not exists revision_reason varchar")
 

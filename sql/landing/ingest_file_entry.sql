@@ -15,4 +15,5 @@ select
     $run_period as run_period,
     $extract_month as extract_month,
     current_timestamp as ingested_at,
-    $config_sha256 as config_sha256
+    $config_sha256 as config_sha256,
+    $file_stat as file_stat

@@ -89,7 +89,8 @@ def warehouse_dump(out: Path, across_runs: bool = False) -> dict[str, str]:
     """sha256 of every table (its columns and all its rows, ordered), by schema.table.
 
     ``across_runs`` leaves out what differs between two runs by design: the ``runs`` table (run
-    id, start time, durations) and ``ingest_files.ingested_at`` (wall time; DEVELOPERS.md).
+    id, start time, durations) and ``ingest_files.ingested_at`` and ``file_stat`` (wall time,
+    and the inbox file's inode and times; DEVELOPERS.md).
     """
     con = duckdb.connect(str(out / WAREHOUSE_FILE), read_only=True)
     try:
@@ -103,7 +104,7 @@ def warehouse_dump(out: Path, across_runs: bool = False) -> dict[str, str]:
                                 "where schema_name = ? and table_name = ? order by column_index",
                            [schema, table])  # fmt: skip
             if across_runs and (schema, table) == ("main", "ingest_files"):
-                columns = [c for c in columns if c[0] != "ingested_at"]
+                columns = [c for c in columns if c[0] not in ("ingested_at", "file_stat")]
             select = ", ".join(f'"{c}"' for c, _ in columns)
             data = rows(con, f'select {select} from "{schema}"."{table}" order by all')
             dump[f"{schema}.{table}"] = hashlib.sha256(repr((columns, data)).encode()).hexdigest()

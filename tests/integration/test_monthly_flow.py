@@ -51,7 +51,8 @@ def _count_input_rows(inbox: Path) -> dict[str, int]:
     return counts
 
 
-#: Tables compared before and after a re-run, with their order (ingested_at is wall time).
+#: Tables compared before and after a re-run, with their order (ingested_at is wall time, and
+#: file_stat the inbox file's inode and times).
 RERUN_TABLES = {
     "ingest_files": "file_id",
     "lab_results": "file_id, line_no",
@@ -65,7 +66,7 @@ RERUN_TABLES = {
 
 
 def _table_dump(con: duckdb.DuckDBPyConnection, table: str) -> list[tuple]:
-    columns = "* exclude (ingested_at)" if table == "ingest_files" else "*"
+    columns = "* exclude (ingested_at, file_stat)" if table == "ingest_files" else "*"
     return con.execute(f"select {columns} from {table} order by {RERUN_TABLES[table]}").fetchall()
 
 

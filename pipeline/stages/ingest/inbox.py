@@ -7,7 +7,9 @@ from __future__ import annotations
 import calendar
 import datetime as dt
 import hashlib
+import os
 import re
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -42,6 +44,11 @@ class InboxFile:
     notes: list[str] = field(default_factory=list)
     #: the patterns the file's name matched: it is stored as its hash (rel_path), never in clear
     name_withheld: list[str] = field(default_factory=list)
+    #: the file's status as hashed (:func:`stat_signature`), kept in the ledger so that the next
+    #: scan need not read it again; None when it may have changed while it was hashed
+    stat: str | None = None
+    #: True when the hash was taken from the ledger, the file unchanged since it was hashed
+    hash_reused: bool = False
 
     def safe(self, message: str) -> str:
         """``message`` with the file's name withheld if the name looks identifying."""
@@ -87,19 +94,58 @@ def sha256_of(path: Path) -> str:
     return digest.hexdigest()
 
 
+#: A file changed less than this long before it was hashed gets no :func:`stat_signature` in
+#: the ledger: a second change within the file system's timestamp tick would leave its status as
+#: it was, so such a file is hashed again at the next scan.
+STAT_SETTLED_NS = 2_000_000_000
+
+
+def stat_signature(st: os.stat_result) -> str:
+    """What says a file is the one hashed before: its device, inode, size, modification time and
+    status-change time (ns). Writing to a file, replacing it, and setting its modification time
+    back all move its status-change time, which no program can set (POSIX ``stat``); a copy to
+    another disk or folder has another inode or device. As version-control systems do to tell an
+    unchanged working file (common practice).
+    """
+    return f"{st.st_dev}:{st.st_ino}:{st.st_size}:{st.st_mtime_ns}:{st.st_ctime_ns}"
+
+
+def hash_file(path: Path) -> tuple[str, int, str | None]:
+    """The file's SHA-256, size and :func:`stat_signature`; the signature is None when the file
+    changed while it was read, or had changed less than :data:`STAT_SETTLED_NS` before.
+    """
+    before = path.stat()
+    started = time.time_ns()
+    sha = sha256_of(path)
+    signature = stat_signature(before)
+    settled = max(before.st_mtime_ns, before.st_ctime_ns) < started - STAT_SETTLED_NS
+    unchanged = stat_signature(path.stat()) == signature
+    return sha, before.st_size, signature if settled and unchanged else None
+
+
 def scan_inbox(
     con: duckdb.DuckDBPyConnection | None, settings: Settings, inbox: Path
 ) -> list[InboxFile]:
-    """List every file of every source, in a stable order, marked new or already ingested."""
+    """List every file of every source, in a stable order, marked new or already ingested.
+
+    A file the ledger holds is not read again when its :func:`stat_signature` is the one
+    recorded when it was hashed: its hash is the recorded one. Otherwise every file is hashed,
+    so a month's scan reads only what arrived or changed, not the whole archive of past extracts.
+    """
     seen: dict[tuple[str, str], str] = {}  # (source, sha) -> path first ingested with it
     recorded: set[tuple[str, str, str]] = set()  # (source, sha, path) already in the ledger
+    hashed: dict[tuple[str, str], tuple[str, str]] = {}  # (source, path) -> (signature, sha)
     if con is not None:
-        for source_id, sha, path, status in con.execute(
+        for source_id, sha, path, status, stat in con.execute(
             read_sql("ingest_files_recorded")
         ).fetchall():
             recorded.add((source_id, sha, path))
             if status == "ingested":
                 seen.setdefault((source_id, sha), path)
+            if stat is not None:  # the latest row of the path wins
+                hashed[(source_id, path)] = (stat, sha)
+            else:
+                hashed.pop((source_id, path), None)
     found: list[InboxFile] = []
     for source in settings.sources:
         folder = inbox / source.folder
@@ -115,9 +161,13 @@ def scan_inbox(
             if name_flags:
                 month = _month_end_from_name(rel)
                 rel = identifiers.withheld_file_name(rel, f"{month:%Y-%m}" if month else None)
+            known = hashed.get((source.id, rel))
             try:
-                sha = sha256_of(path)
-                size = path.stat().st_size
+                now = path.stat()
+                if known is not None and stat_signature(now) == known[0]:
+                    (stat, sha), size, reused = known, now.st_size, True
+                else:
+                    (sha, size, stat), reused = hash_file(path), False
             except OSError as exc:  # held back by land_inbox, with the reason
                 bad = InboxFile(
                     source.id, path, rel, "", 0, status="unreadable", name_withheld=name_flags
@@ -125,7 +175,8 @@ def scan_inbox(
                 bad.fault = bad.safe(str(_unreadable(path, exc)))
                 found.append(bad)
                 continue
-            item = InboxFile(source.id, path, rel, sha, size, name_withheld=name_flags)
+            item = InboxFile(source.id, path, rel, sha, size, name_withheld=name_flags, stat=stat,
+                             hash_reused=reused)  # fmt: skip
             earlier = seen.get((source.id, sha))
             if (source.id, sha, rel) in recorded:
                 item.status = "already_ingested"

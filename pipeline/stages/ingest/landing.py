@@ -176,6 +176,16 @@ def _land_items(con: duckdb.DuckDBPyConnection, settings: Settings, items: list[
     for item in items:
         if item.status == "already_ingested":
             summary.files_skipped += 1
+            if item.stat is not None and not item.hash_reused:
+                # hashed again (first scan after an upgrade, or the file touched or copied, its
+                # content the same): its status now, so the next scan need not read it
+                con.execute(
+                    "update ingest_files set file_stat = $stat where file_id = (select max(file_id) "
+                    "from ingest_files where source_id = $source and file_path = $path "
+                    "and sha256 = $sha and status in ('ingested', 'duplicate_file'))",
+                    {"stat": item.stat, "source": item.source_id, "path": item.rel_path,
+                     "sha": item.sha256},
+                )  # fmt: skip
             continue
         source = settings.source(item.source_id)
         # a file held back earlier is tried again: its old ledger row (no rows stored) goes
@@ -246,7 +256,8 @@ def _land_items(con: duckdb.DuckDBPyConnection, settings: Settings, items: list[
              "status": status, "message": message, "rows_read": rows_read,
              "rows_duplicate": rows_read if status == "duplicate_file" else 0,
              "run_period": run_period, "extract_month": extract_month(item.rel_path, run_period),
-             "config_sha256": source_config_sha256(settings, item.source_id)},
+             "config_sha256": source_config_sha256(settings, item.source_id),
+             "file_stat": item.stat if status != "held_back" else None},
         )  # fmt: skip
         taken += 1
         on_file(taken, to_take, summary.rows_landed)

@@ -68,7 +68,7 @@ def tables(out: Path, period: str) -> dict[str, list[tuple]]:
                 con, "select * from person_status where period = ? order by all", [period]
             ),
             "ingest_files": rows(
-                con, "select * exclude (ingested_at) from ingest_files order by file_id"
+                con, "select * exclude (ingested_at, file_stat) from ingest_files order by file_id"
             ),
         }
         for (name,) in rows(
