@@ -11,6 +11,8 @@ path loses nothing. The values are invented."""
 
 from __future__ import annotations
 
+import shutil
+
 import duckdb
 import pytest
 
@@ -217,3 +219,30 @@ def test_measures_reading_other_results_are_recomputed_in_the_month(tmp_path):
     assert (june_file, 10) in july_rows.keys() - june_rows.keys()
     # the amendment moved M1 to another day: June's row is gone, July's is the amended one
     assert (june_file, 11) in june_rows.keys() - july_rows.keys()
+
+
+def test_a_month_without_new_results_computes_no_person_and_sends_no_bucket(
+    month_by_month, tmp_path, monkeypatch
+):
+    # August, nothing new in the inbox: on the bucket path (executor: shards) no bucket is sent
+    # (on Dask no cluster would be started); every person's rows are July's
+    config, base, july, _, _ = month_by_month
+    shards_config = tmp_path / "config"
+    shutil.copytree(config, shards_config)
+    pipeline_yaml = shards_config / "pipeline.yaml"
+    text = pipeline_yaml.read_text()
+    assert "  executor: local\n" in text
+    pipeline_yaml.write_text(text.replace("  executor: local\n", "  executor: shards\n"))
+    out = tmp_path / "out"
+    shutil.copytree(base / "out", out)
+
+    def no_buckets(*args, **kwargs):
+        raise AssertionError("a bucket was sent for a month without changed persons")
+
+    monkeypatch.setattr("pipeline.stages.link.shards.run_shards", no_buckets)
+    with run_month(shards_config, base / "inbox", out, period="2025-08") as con:
+        assert rows(con, "select persons, persons_recomputed from link_snapshots "
+                         "where period = '2025-08'") == [(42, 0)]  # fmt: skip
+        august = rows(con, "select * exclude (period, age_years, age_band) from person_status "
+                           "where period = '2025-08' order by person_key")  # fmt: skip
+    assert august == [row[1:4] + row[6:] for row in july["person_status"]]

@@ -287,7 +287,8 @@ def carry_over(
         "delete from daily_values_averaged "
         "where person_key in (select person_key from link_persons)"
     )
-    (build_changed or build_changed_in_warehouse)(con, settings, period)
+    if n:  # a month without new results sends nothing to the buckets, nor starts a cluster
+        (build_changed or build_changed_in_warehouse)(con, settings, period)
     swap_period_rows(con, "kidney_events", period.label)
     swap_period_rows(con, "person_status", period.label)
     # ``link_persons`` stays: the link stage's result names it (LinkSummary.changed_persons),
