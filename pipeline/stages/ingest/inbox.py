@@ -110,16 +110,26 @@ def stat_signature(st: os.stat_result) -> str:
     return f"{st.st_dev}:{st.st_ino}:{st.st_size}:{st.st_mtime_ns}:{st.st_ctime_ns}"
 
 
+def opened_status(path: Path) -> os.stat_result:
+    """The file's status, taken from the file opened for reading: on a network file system a
+    plain ``stat`` may answer from the client's cache, while opening a file revalidates it
+    (close-to-open consistency, as NFS gives; common practice); a file that cannot be read
+    fails here as it would when hashed.
+    """
+    with path.open("rb") as fh:
+        return os.fstat(fh.fileno())
+
+
 def hash_file(path: Path) -> tuple[str, int, str | None]:
     """The file's SHA-256, size and :func:`stat_signature`; the signature is None when the file
     changed while it was read, or had changed less than :data:`STAT_SETTLED_NS` before.
     """
-    before = path.stat()
+    before = opened_status(path)
     started = time.time_ns()
     sha = sha256_of(path)
     signature = stat_signature(before)
     settled = max(before.st_mtime_ns, before.st_ctime_ns) < started - STAT_SETTLED_NS
-    unchanged = stat_signature(path.stat()) == signature
+    unchanged = stat_signature(opened_status(path)) == signature
     return sha, before.st_size, signature if settled and unchanged else None
 
 
@@ -163,7 +173,7 @@ def scan_inbox(
                 rel = identifiers.withheld_file_name(rel, f"{month:%Y-%m}" if month else None)
             known = hashed.get((source.id, rel))
             try:
-                now = path.stat()
+                now = opened_status(path)
                 if known is not None and stat_signature(now) == known[0]:
                     (stat, sha), size, reused = known, now.st_size, True
                 else:
