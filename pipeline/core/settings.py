@@ -413,6 +413,10 @@ class ExecutionSettings(_Strict):
     #: DuckDB's memory limit for the warehouse connection; above it DuckDB spills to
     #: <out>/.duckdb_tmp/. Python's own frames (one measure chunk) come on top.
     memory_limit: str = Field(default="1.5GB", pattern=r"^[1-9][0-9]*(\.[0-9]+)?(MB|GB)$")
+    #: changed: a file already ingested is hashed again only when its status (inode, size,
+    #: times) changed since it was hashed; every_file: every file at every scan (for an inbox on
+    #: a file system without a real status-change time, e.g. one formatted FAT or exFAT)
+    inbox_hashing: Literal["changed", "every_file"] = "changed"
 
 
 class CompletenessSettings(_Strict):

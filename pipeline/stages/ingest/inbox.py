@@ -140,11 +140,13 @@ def scan_inbox(
 
     A file the ledger holds is not read again when its :func:`stat_signature` is the one
     recorded when it was hashed: its hash is the recorded one. Otherwise every file is hashed,
-    so a month's scan reads only what arrived or changed, not the whole archive of past extracts.
+    so a month's scan reads only what arrived or changed, not the whole archive of past extracts
+    (unless ``execution.inbox_hashing`` is ``every_file``).
     """
     seen: dict[tuple[str, str], str] = {}  # (source, sha) -> path first ingested with it
     recorded: set[tuple[str, str, str]] = set()  # (source, sha, path) already in the ledger
     hashed: dict[tuple[str, str], tuple[str, str]] = {}  # (source, path) -> (signature, sha)
+    reuse = settings.pipeline.execution.inbox_hashing == "changed"
     if con is not None:
         for source_id, sha, path, status, stat in con.execute(
             read_sql("ingest_files_recorded")
@@ -171,7 +173,7 @@ def scan_inbox(
             if name_flags:
                 month = _month_end_from_name(rel)
                 rel = identifiers.withheld_file_name(rel, f"{month:%Y-%m}" if month else None)
-            known = hashed.get((source.id, rel))
+            known = hashed.get((source.id, rel)) if reuse else None
             try:
                 now = opened_status(path)
                 if known is not None and stat_signature(now) == known[0]:

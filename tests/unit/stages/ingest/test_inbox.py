@@ -170,3 +170,27 @@ def test_a_warehouse_without_file_status_hashes_every_file_and_then_records_it(
         assert hashes.paths == []
     finally:
         con.close()
+
+
+def test_with_every_file_hashing_each_scan_reads_every_file(small_config, tmp_path, monkeypatch):
+    # execution.inbox_hashing: every_file, for an inbox on a file system without a real
+    # status-change time: nothing is taken from the ledger
+    monkeypatch.setattr(inbox_module, "STAT_SETTLED_NS", 50_000_000)
+    settings = load_settings(small_config)
+    inbox = write_inbox(tmp_path, {n: (SAMPLES / n).read_bytes() for n in (MAY, JUNE)})
+    time.sleep(0.1)
+    con = warehouse.connect(tmp_path / "w.duckdb")
+    try:
+        warehouse.ensure_schema(con)
+        _land(con, settings, inbox)
+        pipeline_yaml = small_config / "pipeline.yaml"
+        text = pipeline_yaml.read_text()
+        assert "  inbox_hashing: changed\n" in text
+        pipeline_yaml.write_text(text.replace("inbox_hashing: changed", "inbox_hashing: every_file"))
+        every = load_settings(small_config)
+        hashes = CountedHashes()
+        monkeypatch.setattr(inbox_module, "sha256_of", hashes)
+        assert [i.status for i in scan_inbox(con, every, inbox)] == ["already_ingested"] * 2
+        assert hashes.paths == ["results_2025-05.csv", "results_2025-06.csv"]
+    finally:
+        con.close()
