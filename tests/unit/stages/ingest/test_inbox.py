@@ -26,7 +26,10 @@ from pipeline.warehouse import connection as warehouse
 from tests.conftest import ROOT, rows, write_inbox
 
 SAMPLES = ROOT / "sample_extracts"
-MAY, JUNE = "westerfold_general_lab/results_2025-05.csv", "westerfold_general_lab/results_2025-06.csv"
+MAY, JUNE = (
+    "westerfold_general_lab/results_2025-05.csv",
+    "westerfold_general_lab/results_2025-06.csv",
+)
 
 
 @pytest.mark.parametrize(
@@ -106,7 +109,10 @@ def test_a_scan_reads_again_only_the_files_changed_since_they_were_hashed(
         data[at + 5 : at + 7] = b"07" if data[at + 5 : at + 7] != b"07" else b"08"
         june.write_bytes(bytes(data))
         os.utime(june, ns=(before.st_atime_ns, before.st_mtime_ns))
-        assert (june.stat().st_size, june.stat().st_mtime_ns) == (before.st_size, before.st_mtime_ns)
+        assert (june.stat().st_size, june.stat().st_mtime_ns) == (
+            before.st_size,
+            before.st_mtime_ns,
+        )
         changed = scan_inbox(con, settings, inbox)
         assert hashes.paths == ["results_2025-06.csv"]  # its status-change time moved
         assert changed[1].status == "new"
@@ -186,7 +192,9 @@ def test_with_every_file_hashing_each_scan_reads_every_file(small_config, tmp_pa
         pipeline_yaml = small_config / "pipeline.yaml"
         text = pipeline_yaml.read_text()
         assert "  inbox_hashing: changed\n" in text
-        pipeline_yaml.write_text(text.replace("inbox_hashing: changed", "inbox_hashing: every_file"))
+        pipeline_yaml.write_text(
+            text.replace("inbox_hashing: changed", "inbox_hashing: every_file")
+        )
         every = load_settings(small_config)
         hashes = CountedHashes()
         monkeypatch.setattr(inbox_module, "sha256_of", hashes)
