@@ -82,10 +82,11 @@ def _land(con, settings, inbox: Path) -> None:
                "2025-06", dt.date(2025, 7, 1), sink=lambda con, frame: None)  # fmt: skip
 
 
-def test_a_scan_reads_again_only_the_files_changed_since_they_were_hashed(
-    small_config, tmp_path, monkeypatch
-):
-    monkeypatch.setattr(inbox_module, "STAT_SETTLED_NS", 50_000_000)  # 50 ms, not 2 s
+@pytest.fixture
+def landed(small_config, tmp_path, monkeypatch):
+    """May and June landed in a warehouse after they settled (STAT_SETTLED_NS set to 50 ms,
+    not 2 s, and the files 100 ms old): (settings, inbox, connection)."""
+    monkeypatch.setattr(inbox_module, "STAT_SETTLED_NS", 50_000_000)
     settings = load_settings(small_config)
     inbox = write_inbox(tmp_path, {n: (SAMPLES / n).read_bytes() for n in (MAY, JUNE)})
     time.sleep(0.1)  # settled: each file's last change is older than STAT_SETTLED_NS
@@ -93,44 +94,49 @@ def test_a_scan_reads_again_only_the_files_changed_since_they_were_hashed(
     try:
         warehouse.ensure_schema(con)
         _land(con, settings, inbox)
-        assert rows(con, "select count(file_stat) from ingest_files") == [(2,)]
-        hashes = CountedHashes()
-        monkeypatch.setattr(inbox_module, "sha256_of", hashes)
-        again = scan_inbox(con, settings, inbox)
-        assert hashes.paths == []  # nothing read: both unchanged since they were hashed
-        assert [i.status for i in again] == ["already_ingested", "already_ingested"]
-        assert [i.sha256 for i in again] == [sha256_of(i.path) for i in again]  # the true hashes
-
-        # a lab rewrites June in place, the same size, and sets its modification time back
-        june = inbox / JUNE
-        before = june.stat()
-        data = bytearray(june.read_bytes())
-        at = data.index(b"2025-06-")
-        data[at + 5 : at + 7] = b"07" if data[at + 5 : at + 7] != b"07" else b"08"
-        june.write_bytes(bytes(data))
-        os.utime(june, ns=(before.st_atime_ns, before.st_mtime_ns))
-        assert (june.stat().st_size, june.stat().st_mtime_ns) == (
-            before.st_size,
-            before.st_mtime_ns,
-        )
-        changed = scan_inbox(con, settings, inbox)
-        assert hashes.paths == ["results_2025-06.csv"]  # its status-change time moved
-        assert changed[1].status == "new"
-        assert changed[1].sha256 == hashlib.sha256(bytes(data)).hexdigest()
-
-        # touched, the content the same: read again, still already ingested, and its new status
-        # recorded by the run, so the scan after that reads nothing
-        hashes.paths.clear()
-        os.utime(inbox / MAY)
-        time.sleep(0.1)
-        touched = scan_inbox(con, settings, inbox)
-        assert touched[0].status == "already_ingested" and hashes.paths[0] == "results_2025-05.csv"
-        _land(con, settings, inbox)  # lands the new June; records May's status
-        hashes.paths.clear()
-        assert [i.status for i in scan_inbox(con, settings, inbox)] == ["already_ingested"] * 2
-        assert hashes.paths == []
+        yield settings, inbox, con
     finally:
         con.close()
+
+
+def test_a_scan_reads_again_only_the_files_changed_since_they_were_hashed(landed, monkeypatch):
+    settings, inbox, con = landed
+    assert rows(con, "select count(file_stat) from ingest_files") == [(2,)]
+    hashes = CountedHashes()
+    monkeypatch.setattr(inbox_module, "sha256_of", hashes)
+    again = scan_inbox(con, settings, inbox)
+    assert hashes.paths == []  # nothing read: both unchanged since they were hashed
+    assert [i.status for i in again] == ["already_ingested", "already_ingested"]
+    assert [i.sha256 for i in again] == [sha256_of(i.path) for i in again]  # the true hashes
+
+    # a lab rewrites June in place, the same size, and sets its modification time back
+    june = inbox / JUNE
+    before = june.stat()
+    data = bytearray(june.read_bytes())
+    at = data.index(b"2025-06-")
+    data[at + 5 : at + 7] = b"07" if data[at + 5 : at + 7] != b"07" else b"08"
+    june.write_bytes(bytes(data))
+    os.utime(june, ns=(before.st_atime_ns, before.st_mtime_ns))
+    assert (june.stat().st_size, june.stat().st_mtime_ns) == (
+        before.st_size,
+        before.st_mtime_ns,
+    )
+    changed = scan_inbox(con, settings, inbox)
+    assert hashes.paths == ["results_2025-06.csv"]  # its status-change time moved
+    assert changed[1].status == "new"
+    assert changed[1].sha256 == hashlib.sha256(bytes(data)).hexdigest()
+
+    # touched, the content the same: read again, still already ingested, and its new status
+    # recorded by the run, so the scan after that reads nothing
+    hashes.paths.clear()
+    os.utime(inbox / MAY)
+    time.sleep(0.1)
+    touched = scan_inbox(con, settings, inbox)
+    assert touched[0].status == "already_ingested" and hashes.paths[0] == "results_2025-05.csv"
+    _land(con, settings, inbox)  # lands the new June; records May's status
+    hashes.paths.clear()
+    assert [i.status for i in scan_inbox(con, settings, inbox)] == ["already_ingested"] * 2
+    assert hashes.paths == []
 
 
 def test_a_file_changed_just_before_it_was_hashed_is_read_again_at_the_next_scan(
@@ -153,52 +159,30 @@ def test_a_file_changed_just_before_it_was_hashed_is_read_again_at_the_next_scan
         con.close()
 
 
-def test_a_warehouse_without_file_status_hashes_every_file_and_then_records_it(
-    small_config, tmp_path, monkeypatch
-):
+def test_a_warehouse_without_file_status_hashes_every_file_and_then_records_it(landed, monkeypatch):
     # a warehouse made before file_stat was kept (or a row whose status was not settled)
-    monkeypatch.setattr(inbox_module, "STAT_SETTLED_NS", 50_000_000)
-    settings = load_settings(small_config)
-    inbox = write_inbox(tmp_path, {n: (SAMPLES / n).read_bytes() for n in (MAY, JUNE)})
-    time.sleep(0.1)
-    con = warehouse.connect(tmp_path / "w.duckdb")
-    try:
-        warehouse.ensure_schema(con)
-        _land(con, settings, inbox)
-        con.execute("update ingest_files set file_stat = null")
-        hashes = CountedHashes()
-        monkeypatch.setattr(inbox_module, "sha256_of", hashes)
-        assert len(scan_inbox(con, settings, inbox)) == 2 and len(hashes.paths) == 2
-        _land(con, settings, inbox)  # nothing new; each file's status recorded
-        assert rows(con, "select count(file_stat), count(*) from ingest_files") == [(2, 2)]
-        hashes.paths.clear()
-        scan_inbox(con, settings, inbox)
-        assert hashes.paths == []
-    finally:
-        con.close()
+    settings, inbox, con = landed
+    con.execute("update ingest_files set file_stat = null")
+    hashes = CountedHashes()
+    monkeypatch.setattr(inbox_module, "sha256_of", hashes)
+    assert len(scan_inbox(con, settings, inbox)) == 2 and len(hashes.paths) == 2
+    _land(con, settings, inbox)  # nothing new; each file's status recorded
+    assert rows(con, "select count(file_stat), count(*) from ingest_files") == [(2, 2)]
+    hashes.paths.clear()
+    scan_inbox(con, settings, inbox)
+    assert hashes.paths == []
 
 
-def test_with_every_file_hashing_each_scan_reads_every_file(small_config, tmp_path, monkeypatch):
+def test_with_every_file_hashing_each_scan_reads_every_file(landed, small_config, monkeypatch):
     # execution.inbox_hashing: every_file, for an inbox on a file system without a real
     # status-change time: nothing is taken from the ledger
-    monkeypatch.setattr(inbox_module, "STAT_SETTLED_NS", 50_000_000)
-    settings = load_settings(small_config)
-    inbox = write_inbox(tmp_path, {n: (SAMPLES / n).read_bytes() for n in (MAY, JUNE)})
-    time.sleep(0.1)
-    con = warehouse.connect(tmp_path / "w.duckdb")
-    try:
-        warehouse.ensure_schema(con)
-        _land(con, settings, inbox)
-        pipeline_yaml = small_config / "pipeline.yaml"
-        text = pipeline_yaml.read_text()
-        assert "  inbox_hashing: changed\n" in text
-        pipeline_yaml.write_text(
-            text.replace("inbox_hashing: changed", "inbox_hashing: every_file")
-        )
-        every = load_settings(small_config)
-        hashes = CountedHashes()
-        monkeypatch.setattr(inbox_module, "sha256_of", hashes)
-        assert [i.status for i in scan_inbox(con, every, inbox)] == ["already_ingested"] * 2
-        assert hashes.paths == ["results_2025-05.csv", "results_2025-06.csv"]
-    finally:
-        con.close()
+    settings, inbox, con = landed
+    pipeline_yaml = small_config / "pipeline.yaml"
+    text = pipeline_yaml.read_text()
+    assert "  inbox_hashing: changed\n" in text
+    pipeline_yaml.write_text(text.replace("inbox_hashing: changed", "inbox_hashing: every_file"))
+    every = load_settings(small_config)
+    hashes = CountedHashes()
+    monkeypatch.setattr(inbox_module, "sha256_of", hashes)
+    assert [i.status for i in scan_inbox(con, every, inbox)] == ["already_ingested"] * 2
+    assert hashes.paths == ["results_2025-05.csv", "results_2025-06.csv"]
