@@ -96,7 +96,7 @@ runs as (
     select rule_id, event_type, threshold, min_span_days, person_key, segment, island,
            -- the baseline of the run's first value (a run of a rule not judged against the
            -- baseline can hold both families; on a day with both, the adult one)
-           first(baseline_egfr order by (baseline_egfr is null), day, equation_family)
+           first(baseline_egfr order by (baseline_egfr is null), day, equation_family <> 'adult')
                as baseline_egfr,
            min(day) as run_start,
            max(day) as run_end,

@@ -545,7 +545,8 @@ def test_a_day_with_both_equation_families_gives_the_same_events_in_any_row_orde
     assert seen[0][1]["egfr"] == 50.0
     ckd = seen[0][0][("p", "ckd_egfr")]
     # day 60's child value (65) is not below 60: the run that counts starts on day 60 with the
-    # adult 50 and runs to day 200 (140 days >= 90: confirmed), its first value an adult one
+    # adult 50 and runs to day 200 (140 days >= 90: confirmed, KDIGO 2012's eGFR below 60 for
+    # more than 3 months), its first value an adult one
     assert ckd["event_status"] == "confirmed" and ckd["event_date"] == day(60)
     assert ckd["baseline_egfr"] == round((95.0 + 55.0 + 50.0) / 3, 2)  # the adult baseline
 
