@@ -512,13 +512,17 @@ def test_a_day_with_both_equation_families_gives_the_same_events_in_any_row_orde
     person's latest eGFR is the adult one too."""
     adult = [(0, 95.0), (30, 55.0), (60, 50.0), (100, 52.0), (130, 51.0), (200, 50.0)]
     child = [(0, 110.0), (30, 58.0), (60, 65.0), (100, 54.0), (130, 53.0), (200, 52.0)]
-    rows_in = [("adult", d, v) for d, v in adult] + [("child", d, v) for d, v in child]
+    rows_in = [("p", "adult", d, v) for d, v in adult] + [("p", "child", d, v) for d, v in child]
+    # q: both families below 60 on the run's first day (30) and after it; adult baseline
+    # (95 + 55) / 2 = 75, child (110 + 58) / 2 = 84
+    rows_in += [("q", "adult", d, v) for d, v in ((0, 95.0), (30, 55.0), (130, 50.0))]
+    rows_in += [("q", "child", d, v) for d, v in ((0, 110.0), (30, 58.0), (130, 52.0))]
     seen = []
     for order in (rows_in, rows_in[::-1], rows_in[1::2] + rows_in[::2], sorted(rows_in, key=str)):
         con = connect(":memory:")
         prepare(con, settings)
-        for family, offset, value in order:
-            insert(con, "p", [(offset, value)], age=18 if family == "adult" else 17)
+        for person, family, offset, value in order:
+            insert(con, person, [(offset, value)], age=18 if family == "adult" else 17)
         events = build(con)
         # person_status's demographics come from results_known: one creatinine row
         con.execute(
@@ -537,7 +541,9 @@ def test_a_day_with_both_equation_families_gives_the_same_events_in_any_row_orde
         )
         params = {**event_params(settings, Period.parse(PERIOD)), "period_end": PERIOD_END}
         build_table(con, "person_status", params=params)
-        person = con.sql("select * from person_status").pl().row(0, named=True)
+        person = (
+            con.sql("select * from person_status where person_key = 'p'").pl().row(0, named=True)
+        )
         seen.append(({k: dict(e) for k, e in events.items()}, person))
         con.close()
     assert all(s == seen[0] for s in seen[1:])
@@ -549,6 +555,9 @@ def test_a_day_with_both_equation_families_gives_the_same_events_in_any_row_orde
     # more than 3 months), its first value an adult one
     assert ckd["event_status"] == "confirmed" and ckd["event_date"] == day(60)
     assert ckd["baseline_egfr"] == round((95.0 + 55.0 + 50.0) / 3, 2)  # the adult baseline
+    # q's run starts on a day with a value of each family: it carries the adult baseline
+    both = seen[0][0][("q", "ckd_egfr")]
+    assert both["event_date"] == day(30) and both["baseline_egfr"] == 75.0
 
 
 def test_a_new_adult_baseline_starts_at_18(warehouse):
